@@ -1,0 +1,253 @@
+//! FITS decoding through the bundled cfitsio: the first image HDU (primary or
+//! extension, tile-compressed included, gzip-wrapped files included) into `f32`
+//! physical values with BZERO/BSCALE applied and BLANK/NaN pixels as NaN.
+//!
+//! This module opens files and nothing else reads pixels from disk. It never writes
+//! to the file it reads.
+
+use std::ffi::{CStr, CString};
+use std::os::raw::{c_char, c_int};
+use std::path::Path;
+use std::sync::Mutex;
+
+use fitsio::sys;
+use ndarray::Array2;
+
+use super::header::{parse_card, HeaderCard};
+use super::FrameError;
+
+/// cfitsio keeps its error-message stack in global state; one decode at a time keeps
+/// messages attached to the right file. Decoding is a small part of a frame's cost.
+static CFITSIO: Mutex<()> = Mutex::new(());
+
+/// What the decoder hands to the rest of the program.
+pub struct DecodedImage {
+    pub pixels: Array2<f32>,
+    pub cards: Vec<HeaderCard>,
+    /// BITPIX of the stored data as the file declares it (after tile decompression).
+    pub bitpix: i32,
+    /// 0-based HDU index the image came from.
+    pub hdu_index: usize,
+}
+
+/// Limits applied before any allocation sized from the header.
+#[derive(Debug, Clone, Copy)]
+pub struct DecodeLimits {
+    pub max_pixels: u64,
+}
+
+impl Default for DecodeLimits {
+    fn default() -> Self {
+        // 400 megapixels: larger than any camera sensor in use by the users we serve,
+        // and 1.6 GB as f32, which a 4 GB observatory PC can still hold.
+        Self {
+            max_pixels: 400_000_000,
+        }
+    }
+}
+
+struct OpenFile(*mut sys::fitsfile);
+
+impl Drop for OpenFile {
+    fn drop(&mut self) {
+        let mut status = 0;
+        // SAFETY: the pointer came from a successful ffdkopn and is closed once.
+        unsafe {
+            sys::ffclos(self.0, &mut status);
+        }
+    }
+}
+
+fn cfitsio_message(status: c_int) -> String {
+    let mut text = [0 as c_char; 32];
+    // SAFETY: ffgerr writes at most 31 characters plus NUL into a 31-char buffer.
+    unsafe { sys::ffgerr(status, text.as_mut_ptr()) };
+    let short = unsafe { CStr::from_ptr(text.as_ptr()) }
+        .to_string_lossy()
+        .trim()
+        .to_string();
+    // Drain the detailed message stack; keep its first line, which names the cause.
+    let mut detail = String::new();
+    let mut buf = [0 as c_char; 81];
+    loop {
+        // SAFETY: ffgmsg writes at most 80 characters plus NUL.
+        let got = unsafe { sys::ffgmsg(buf.as_mut_ptr()) };
+        if got == 0 {
+            break;
+        }
+        if detail.is_empty() {
+            detail = unsafe { CStr::from_ptr(buf.as_ptr()) }
+                .to_string_lossy()
+                .trim()
+                .to_string();
+        }
+    }
+    if detail.is_empty() || detail.eq_ignore_ascii_case(&short) {
+        format!("{short} (cfitsio status {status})")
+    } else {
+        format!("{short}: {detail} (cfitsio status {status})")
+    }
+}
+
+fn check(status: c_int, what: &str) -> Result<(), String> {
+    if status == 0 {
+        Ok(())
+    } else {
+        Err(format!("{what}: {}", cfitsio_message(status)))
+    }
+}
+
+/// Decode the first image HDU with data in `path`.
+pub fn decode(path: &Path, limits: DecodeLimits) -> Result<DecodedImage, FrameError> {
+    let fail = |reason: String| FrameError::Decode {
+        path: path.to_path_buf(),
+        reason,
+    };
+    let meta = std::fs::metadata(path).map_err(|e| FrameError::Io {
+        path: path.to_path_buf(),
+        source: e,
+    })?;
+    if !meta.is_file() {
+        return Err(fail("not a regular file".into()));
+    }
+    if meta.len() == 0 {
+        return Err(fail("empty file (0 bytes)".into()));
+    }
+    let c_path = CString::new(path.as_os_str().as_encoded_bytes())
+        .map_err(|_| fail("path contains a NUL byte".into()))?;
+
+    let _guard = CFITSIO.lock().unwrap_or_else(|p| p.into_inner());
+    unsafe { sys::ffcmsg() };
+    let mut status: c_int = 0;
+    let mut raw: *mut sys::fitsfile = std::ptr::null_mut();
+    // ffdkopn: no extended-filename syntax, so brackets or a leading '!' in a user's
+    // path are taken literally; gzip-wrapped files are still decompressed in memory.
+    // SAFETY: valid C string and out-pointers.
+    unsafe { sys::ffdkopn(&mut raw, c_path.as_ptr(), 0, &mut status) };
+    if status != 0 || raw.is_null() {
+        return Err(fail(format!(
+            "not a readable FITS file: {}",
+            cfitsio_message(status)
+        )));
+    }
+    let file = OpenFile(raw);
+
+    let mut hdu_count: c_int = 0;
+    unsafe { sys::ffthdu(file.0, &mut hdu_count, &mut status) };
+    check(status, "counting HDUs").map_err(fail)?;
+
+    let mut seen = Vec::new();
+    for hdu in 1..=hdu_count {
+        let mut hdu_type: c_int = 0;
+        unsafe { sys::ffmahd(file.0, hdu, &mut hdu_type, &mut status) };
+        check(status, &format!("moving to HDU {hdu}")).map_err(fail)?;
+        // ffghdt reports a tile-compressed image (a binary table underneath) as an image.
+        unsafe { sys::ffghdt(file.0, &mut hdu_type, &mut status) };
+        check(status, "reading HDU type").map_err(fail)?;
+        if hdu_type != sys::IMAGE_HDU as c_int {
+            seen.push(if hdu_type == sys::BINARY_TBL as c_int {
+                "binary table"
+            } else {
+                "ASCII table"
+            });
+            continue;
+        }
+        let mut naxis: c_int = 0;
+        unsafe { sys::ffgidm(file.0, &mut naxis, &mut status) };
+        check(status, "reading NAXIS").map_err(fail)?;
+        if naxis == 0 {
+            seen.push("header without data");
+            continue;
+        }
+        if !(2..=3).contains(&naxis) {
+            return Err(fail(format!(
+                "HDU {hdu} has NAXIS = {naxis}; only 2-D images (or a 3-D cube with one plane) are supported"
+            )));
+        }
+        let mut axes = [0 as sys::LONGLONG; 3];
+        unsafe { sys::ffgiszll(file.0, naxis, axes.as_mut_ptr(), &mut status) };
+        check(status, "reading NAXISn").map_err(fail)?;
+        if naxis == 3 && axes[2] != 1 {
+            return Err(fail(format!(
+                "HDU {hdu} is a {}-plane cube; colour-separated cubes are not supported (one plane expected)",
+                axes[2]
+            )));
+        }
+        let (width, height) = (axes[0], axes[1]);
+        if width <= 0 || height <= 0 {
+            seen.push("empty image");
+            continue;
+        }
+        let pixels = (width as u64).checked_mul(height as u64).unwrap_or(u64::MAX);
+        if pixels > limits.max_pixels {
+            return Err(fail(format!(
+                "image is {width} x {height} = {pixels} pixels, over the limit of {} (raise max_pixels if this is real)",
+                limits.max_pixels
+            )));
+        }
+        let mut bitpix: c_int = 0;
+        unsafe { sys::ffgiet(file.0, &mut bitpix, &mut status) };
+        check(status, "reading BITPIX").map_err(fail)?;
+
+        let cards = read_cards(file.0).map_err(fail)?;
+
+        let mut data: Vec<f32> = Vec::new();
+        data.try_reserve_exact(pixels as usize)
+            .map_err(|_| fail(format!("cannot allocate {pixels} pixels")))?;
+        data.resize(pixels as usize, 0.0);
+        let mut any_null: c_int = 0;
+        // A NaN null value makes cfitsio replace BLANK (integer) pixels by NaN.
+        // SAFETY: `data` holds exactly `pixels` elements.
+        unsafe {
+            sys::ffgpve(
+                file.0,
+                0,
+                1,
+                pixels as sys::LONGLONG,
+                f32::NAN,
+                data.as_mut_ptr(),
+                &mut any_null,
+                &mut status,
+            )
+        };
+        if status != 0 {
+            return Err(fail(format!(
+                "pixel data unreadable (truncated file?): {}",
+                cfitsio_message(status)
+            )));
+        }
+        let pixels = Array2::from_shape_vec((height as usize, width as usize), data)
+            .map_err(|e| fail(format!("bad image shape: {e}")))?;
+        return Ok(DecodedImage {
+            pixels,
+            cards,
+            bitpix,
+            hdu_index: (hdu - 1) as usize,
+        });
+    }
+    Err(fail(if seen.is_empty() {
+        "no HDU with image data".into()
+    } else {
+        format!("no image data (found: {})", seen.join(", "))
+    }))
+}
+
+fn read_cards(file: *mut sys::fitsfile) -> Result<Vec<HeaderCard>, String> {
+    let mut status: c_int = 0;
+    let mut count: c_int = 0;
+    let mut more: c_int = 0;
+    unsafe { sys::ffghsp(file, &mut count, &mut more, &mut status) };
+    check(status, "reading header size")?;
+    let mut cards = Vec::with_capacity(count.max(0) as usize);
+    let mut buf = [0 as c_char; 81];
+    for n in 1..=count {
+        // SAFETY: ffgrec writes one 80-character card plus NUL.
+        unsafe { sys::ffgrec(file, n, buf.as_mut_ptr(), &mut status) };
+        check(status, &format!("reading header card {n}"))?;
+        let text = unsafe { CStr::from_ptr(buf.as_ptr()) }.to_string_lossy();
+        if let Some(card) = parse_card(&text) {
+            cards.push(card);
+        }
+    }
+    Ok(cards)
+}

@@ -1,0 +1,341 @@
+//! FITS header cards and the typed metadata subwatch uses from them. Pure: text in,
+//! values out. Unknown or malformed keywords are ignored, never fatal.
+
+use serde::Serialize;
+
+use super::bayer::BayerPattern;
+use super::wcs::Wcs;
+
+/// A keyword value as written in a card (FITS Standard 4.0, section 4.2).
+#[derive(Debug, Clone, PartialEq)]
+pub enum CardValue {
+    Text(String),
+    Logical(bool),
+    Number(f64),
+    /// A value field we could not read as any of the above.
+    Other(String),
+}
+
+#[derive(Debug, Clone, PartialEq)]
+pub struct HeaderCard {
+    pub key: String,
+    pub value: CardValue,
+}
+
+/// Parse one 80-character card. Comment-only cards (COMMENT, HISTORY, blank) give `None`.
+pub fn parse_card(card: &str) -> Option<HeaderCard> {
+    let (key, rest) = if let Some(h) = card.strip_prefix("HIERARCH ") {
+        let eq = h.find('=')?;
+        (h[..eq].trim().to_string(), &h[eq + 1..])
+    } else {
+        if card.len() < 10 || &card.as_bytes()[8..10] != b"= " {
+            return None;
+        }
+        (card[..8].trim().to_string(), &card[10..])
+    };
+    if key.is_empty() {
+        return None;
+    }
+    Some(HeaderCard {
+        key: key.to_ascii_uppercase(),
+        value: parse_value(rest),
+    })
+}
+
+fn parse_value(field: &str) -> CardValue {
+    let field = field.trim_start();
+    if let Some(body) = field.strip_prefix('\'') {
+        // A string: '' inside stands for one quote; trailing blanks are not significant.
+        let mut out = String::new();
+        let mut chars = body.chars().peekable();
+        while let Some(c) = chars.next() {
+            if c == '\'' {
+                if chars.peek() == Some(&'\'') {
+                    chars.next();
+                    out.push('\'');
+                } else {
+                    break;
+                }
+            } else {
+                out.push(c);
+            }
+        }
+        return CardValue::Text(out.trim_end().to_string());
+    }
+    let value = field.split('/').next().unwrap_or("").trim();
+    match value {
+        "T" => CardValue::Logical(true),
+        "F" => CardValue::Logical(false),
+        _ => value
+            .replace(['D', 'd'], "E")
+            .parse::<f64>()
+            .map(CardValue::Number)
+            .unwrap_or_else(|_| CardValue::Other(value.to_string())),
+    }
+}
+
+/// Look-ups over a card list.
+pub trait Cards {
+    fn card(&self, key: &str) -> Option<&CardValue>;
+    fn number(&self, key: &str) -> Option<f64> {
+        match self.card(key)? {
+            CardValue::Number(v) if v.is_finite() => Some(*v),
+            // Some writers quote numbers.
+            CardValue::Text(s) => s.trim().parse::<f64>().ok().filter(|v| v.is_finite()),
+            _ => None,
+        }
+    }
+    fn text(&self, key: &str) -> Option<String> {
+        match self.card(key)? {
+            CardValue::Text(s) if !s.trim().is_empty() => Some(s.trim().to_string()),
+            CardValue::Number(v) => Some(format!("{v}")),
+            _ => None,
+        }
+    }
+}
+
+impl Cards for [HeaderCard] {
+    fn card(&self, key: &str) -> Option<&CardValue> {
+        self.iter().find(|c| c.key == key).map(|c| &c.value)
+    }
+}
+
+/// What a frame is, from IMAGETYP.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum ImageKind {
+    Light,
+    Dark,
+    Flat,
+    Bias,
+    Unknown,
+}
+
+impl ImageKind {
+    /// Capture programs spell these many ways ("Light Frame", "LIGHT", "Flat Field",
+    /// "Bias Frame", "Offset", "Object"); match on the word, not the spelling.
+    pub fn from_imagetyp(value: &str) -> Self {
+        let v = value.to_ascii_lowercase();
+        if v.contains("dark") {
+            ImageKind::Dark
+        } else if v.contains("flat") {
+            ImageKind::Flat
+        } else if v.contains("bias") || v.contains("offset") || v.contains("zero") {
+            ImageKind::Bias
+        } else if v.contains("light") || v.contains("object") || v.contains("science") {
+            ImageKind::Light
+        } else {
+            ImageKind::Unknown
+        }
+    }
+}
+
+/// The metadata subwatch uses, typed. Every field is optional: headers vary widely.
+#[derive(Debug, Clone, Default, PartialEq, Serialize)]
+pub struct FrameHeader {
+    pub date_obs: Option<String>,
+    /// DATE-OBS as seconds since 1970-01-01T00:00:00 UTC.
+    pub time_unix: Option<f64>,
+    pub exposure_s: Option<f64>,
+    pub filter: Option<String>,
+    pub object: Option<String>,
+    pub image_kind: Option<ImageKind>,
+    pub x_binning: Option<f64>,
+    pub y_binning: Option<f64>,
+    /// Unbinned pixel size in micrometres (XPIXSZ).
+    pub pixel_size_um: Option<f64>,
+    pub pixel_size_y_um: Option<f64>,
+    pub focal_length_mm: Option<f64>,
+    pub ccd_temp_c: Option<f64>,
+    /// GAIN as written: often a camera's gain setting rather than electrons per ADU.
+    pub gain_setting: Option<f64>,
+    /// Electrons per ADU, from EGAIN, or from GAIN when its value is plausible for e-/ADU.
+    pub gain_e_per_adu: Option<f64>,
+    pub saturation_adu: Option<f64>,
+    #[serde(skip)]
+    pub bayer: Option<BayerPattern>,
+    pub bayer_pattern: Option<String>,
+    /// Pointing from RA/DEC (or OBJCTRA/OBJCTDEC), degrees, equinox as written.
+    pub ra_deg: Option<f64>,
+    pub dec_deg: Option<f64>,
+    #[serde(skip)]
+    pub wcs: Option<Wcs>,
+}
+
+impl FrameHeader {
+    pub fn from_cards(cards: &[HeaderCard]) -> Self {
+        let date_obs = cards.text("DATE-OBS");
+        let time_unix = date_obs.as_deref().and_then(parse_iso_time);
+        let gain_setting = cards.number("GAIN");
+        let gain_e_per_adu = cards
+            .number("EGAIN")
+            .filter(|g| *g > 0.0)
+            // A GAIN between 0.05 and 20 reads as e-/ADU; larger values are camera
+            // gain settings (common practice among camera drivers).
+            .or(gain_setting.filter(|g| (0.05..=20.0).contains(g)));
+        let bayer_pattern = cards.text("BAYERPAT");
+        let (ra_deg, dec_deg) = pointing(cards);
+        FrameHeader {
+            date_obs,
+            time_unix,
+            exposure_s: cards
+                .number("EXPTIME")
+                .or_else(|| cards.number("EXPOSURE")),
+            filter: cards.text("FILTER"),
+            object: cards.text("OBJECT"),
+            image_kind: cards
+                .text("IMAGETYP")
+                .or_else(|| cards.text("FRAME"))
+                .map(|t| ImageKind::from_imagetyp(&t)),
+            x_binning: cards.number("XBINNING").filter(|b| *b >= 1.0),
+            y_binning: cards.number("YBINNING").filter(|b| *b >= 1.0),
+            pixel_size_um: cards.number("XPIXSZ").filter(|p| *p > 0.0),
+            pixel_size_y_um: cards.number("YPIXSZ").filter(|p| *p > 0.0),
+            focal_length_mm: cards.number("FOCALLEN").filter(|f| *f > 0.0),
+            ccd_temp_c: cards.number("CCD-TEMP"),
+            gain_setting,
+            gain_e_per_adu,
+            saturation_adu: cards.number("SATURATE").filter(|s| *s > 0.0),
+            bayer: bayer_pattern.as_deref().and_then(BayerPattern::parse),
+            bayer_pattern,
+            ra_deg,
+            dec_deg,
+            wcs: Wcs::from_cards(cards),
+        }
+    }
+
+    /// Plate scale in arcsec per pixel: 206.265 × pixel size (µm) × binning / focal
+    /// length (mm) (small-angle formula; common practice). `fallback_*` come from config.
+    pub fn plate_scale(&self, fallback_focal_mm: Option<f64>, fallback_pixel_um: Option<f64>) -> Option<f64> {
+        let pixel = self.pixel_size_um.or(fallback_pixel_um)?;
+        let focal = self.focal_length_mm.or(fallback_focal_mm)?;
+        let binning = self.x_binning.unwrap_or(1.0);
+        Some(206.264_806 * pixel * binning / focal)
+    }
+}
+
+fn pointing(cards: &[HeaderCard]) -> (Option<f64>, Option<f64>) {
+    let ra = match cards.card("RA") {
+        Some(CardValue::Number(v)) => Some(*v),
+        Some(CardValue::Text(s)) => parse_sexagesimal(s).map(|h| h * 15.0),
+        _ => None,
+    }
+    .or_else(|| {
+        cards
+            .text("OBJCTRA")
+            .and_then(|s| parse_sexagesimal(&s))
+            .map(|h| h * 15.0)
+    });
+    let dec = match cards.card("DEC") {
+        Some(CardValue::Number(v)) => Some(*v),
+        Some(CardValue::Text(s)) => parse_sexagesimal(s),
+        _ => None,
+    }
+    .or_else(|| cards.text("OBJCTDEC").and_then(|s| parse_sexagesimal(&s)));
+    (
+        ra.filter(|r| (0.0..360.0).contains(r)),
+        dec.filter(|d| (-90.0..=90.0).contains(d)),
+    )
+}
+
+/// "12 34 56.7", "12:34:56.7", "-05 06 07" → decimal units of the first field.
+pub fn parse_sexagesimal(s: &str) -> Option<f64> {
+    let s = s.trim();
+    let negative = s.starts_with('-');
+    let parts: Vec<f64> = s
+        .trim_start_matches(['-', '+'])
+        .split([' ', ':', 'h', 'm', 's', 'd', '\''])
+        .filter(|p| !p.is_empty())
+        .map(|p| p.parse::<f64>())
+        .collect::<Result<_, _>>()
+        .ok()?;
+    if parts.is_empty() || parts.len() > 3 {
+        return None;
+    }
+    let value = parts
+        .iter()
+        .zip([1.0, 60.0, 3600.0])
+        .map(|(p, d)| p / d)
+        .sum::<f64>();
+    Some(if negative { -value } else { value })
+}
+
+/// ISO 8601 "YYYY-MM-DD[Thh:mm:ss[.fff]]" (UTC, as FITS requires for DATE-OBS) to Unix
+/// seconds. Days from the civil calendar by the algorithm of Hinnant (2013), from memory.
+pub fn parse_iso_time(s: &str) -> Option<f64> {
+    let s = s.trim().trim_end_matches('Z');
+    let (date, time) = match s.split_once('T') {
+        Some((d, t)) => (d, Some(t)),
+        None => (s, None),
+    };
+    let mut d = date.split('-');
+    let y: i64 = d.next()?.parse().ok()?;
+    let m: i64 = d.next()?.parse().ok()?;
+    let day: i64 = d.next()?.parse().ok()?;
+    if !(1..=12).contains(&m) || !(1..=31).contains(&day) {
+        return None;
+    }
+    let mut seconds = 0.0;
+    if let Some(t) = time {
+        let mut parts = t.split(':');
+        let h: f64 = parts.next()?.parse().ok()?;
+        let mi: f64 = parts.next().unwrap_or("0").parse().ok()?;
+        let se: f64 = parts.next().unwrap_or("0").parse().ok()?;
+        if !(0.0..24.0).contains(&h) || !(0.0..60.0).contains(&mi) || !(0.0..61.0).contains(&se) {
+            return None;
+        }
+        seconds = h * 3600.0 + mi * 60.0 + se;
+    }
+    Some(days_from_civil(y, m, day) as f64 * 86_400.0 + seconds)
+}
+
+fn days_from_civil(y: i64, m: i64, d: i64) -> i64 {
+    let y = if m <= 2 { y - 1 } else { y };
+    let era = if y >= 0 { y } else { y - 399 } / 400;
+    let yoe = y - era * 400;
+    let mp = (m + 9) % 12;
+    let doy = (153 * mp + 2) / 5 + d - 1;
+    let doe = yoe * 365 + yoe / 4 - yoe / 100 + doy;
+    era * 146_097 + doe - 719_468
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn card(s: &str) -> HeaderCard {
+        parse_card(&format!("{s:<80}")).unwrap()
+    }
+
+    #[test]
+    fn parses_the_value_kinds_of_the_fits_standard() {
+        assert_eq!(card("OBJECT  = 'It''s M  '  / name").value, CardValue::Text("It's M".into()));
+        assert_eq!(card("SIMPLE  =                    T").value, CardValue::Logical(true));
+        assert_eq!(card("EXPTIME =                120.5 / s").value, CardValue::Number(120.5));
+        assert_eq!(card("CDELT1  =              1.5D-04").value, CardValue::Number(1.5e-4));
+        assert!(parse_card("COMMENT hello").is_none());
+        assert_eq!(card("HIERARCH ESO DET GAIN = 2.5").key, "ESO DET GAIN");
+    }
+
+    #[test]
+    fn unix_time_of_known_dates() {
+        // 2000-01-01T12:00:00 UTC is Unix 946728000 (the J2000.0 epoch in UTC terms).
+        assert_eq!(parse_iso_time("2000-01-01T12:00:00"), Some(946_728_000.0));
+        assert_eq!(parse_iso_time("1970-01-01"), Some(0.0));
+        assert_eq!(parse_iso_time("2026-13-01T00:00:00"), None);
+    }
+
+    #[test]
+    fn sexagesimal_fields() {
+        assert_eq!(parse_sexagesimal("12 30 00"), Some(12.5));
+        assert!((parse_sexagesimal("-05:30:36").unwrap() + 5.51).abs() < 1e-12);
+    }
+
+    #[test]
+    fn image_kinds_from_common_spellings() {
+        assert_eq!(ImageKind::from_imagetyp("Light Frame"), ImageKind::Light);
+        assert_eq!(ImageKind::from_imagetyp("FLAT FIELD"), ImageKind::Flat);
+        assert_eq!(ImageKind::from_imagetyp("Bias Frame"), ImageKind::Bias);
+        assert_eq!(ImageKind::from_imagetyp("dark"), ImageKind::Dark);
+    }
+}

@@ -1,0 +1,76 @@
+//! Writing frames: used by the synthetic renderer's command and by tests, never on a
+//! user's files. Writes a new file and refuses to overwrite an existing one.
+
+use std::path::Path;
+
+use fitsio::images::{ImageDescription, ImageType};
+use fitsio::FitsFile;
+use ndarray::Array2;
+
+use super::FrameError;
+
+/// A header keyword to write.
+#[derive(Debug, Clone, PartialEq)]
+pub enum OutValue {
+    Text(String),
+    Int(i64),
+    Real(f64),
+}
+
+/// How to store the pixels.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Encoding {
+    /// BITPIX 16 with BZERO 32768, as most cameras write: values rounded and clamped
+    /// to 0..=65535.
+    Unsigned16,
+    Float32,
+}
+
+pub fn write_frame(
+    path: &Path,
+    pixels: &Array2<f32>,
+    encoding: Encoding,
+    keys: &[(String, OutValue)],
+) -> Result<(), FrameError> {
+    let fail = |reason: String| FrameError::Write {
+        path: path.to_path_buf(),
+        reason,
+    };
+    if path.exists() {
+        return Err(fail("file exists; refusing to overwrite".into()));
+    }
+    let dims = [pixels.nrows(), pixels.ncols()];
+    let desc = ImageDescription {
+        data_type: match encoding {
+            Encoding::Unsigned16 => ImageType::UnsignedShort,
+            Encoding::Float32 => ImageType::Float,
+        },
+        dimensions: &dims,
+    };
+    let mut file = FitsFile::create(path)
+        .with_custom_primary(&desc)
+        .open()
+        .map_err(|e| fail(e.to_string()))?;
+    let hdu = file.primary_hdu().map_err(|e| fail(e.to_string()))?;
+    let flat: Vec<f32> = pixels.iter().copied().collect();
+    match encoding {
+        Encoding::Unsigned16 => {
+            let data: Vec<u16> = flat
+                .iter()
+                .map(|&v| if v.is_finite() { v.round().clamp(0.0, 65535.0) as u16 } else { 0 })
+                .collect();
+            hdu.write_image(&mut file, &data)
+        }
+        Encoding::Float32 => hdu.write_image(&mut file, &flat),
+    }
+    .map_err(|e| fail(e.to_string()))?;
+    for (key, value) in keys {
+        match value {
+            OutValue::Text(s) => hdu.write_key(&mut file, key, s.as_str()),
+            OutValue::Int(i) => hdu.write_key(&mut file, key, *i),
+            OutValue::Real(r) => hdu.write_key(&mut file, key, *r),
+        }
+        .map_err(|e| fail(format!("keyword {key}: {e}")))?;
+    }
+    Ok(())
+}

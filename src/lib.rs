@@ -1,0 +1,11 @@
+//! subwatch: grades every sub of an imaging night as it lands and flags what is unusual.
+//!
+//! The library is a pure core (`measure`, `sim`, and the header/WCS parsing in `frame`)
+//! wrapped by thin I/O shells (`frame::fits` decoding, `pipeline`, the binary's CLI).
+//! See ARCHITECTURE.md for the map and the invariants.
+
+pub mod contract;
+pub mod frame;
+pub mod measure;
+pub mod pipeline;
+pub mod sim;

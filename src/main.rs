@@ -1,0 +1,245 @@
+//! The `subwatch` command line: parse, dispatch, report errors. No logic lives here.
+
+use std::io::Write;
+use std::panic::{catch_unwind, AssertUnwindSafe};
+use std::path::PathBuf;
+use std::process::ExitCode;
+
+use anyhow::{Context, Result};
+use clap::{Parser, Subcommand, ValueEnum};
+
+use subwatch::contract::{HeaderFacts, MeasureRecord, Metrics, StarRecord};
+use subwatch::frame::bayer::BayerPattern;
+use subwatch::frame::write::{write_frame, Encoding};
+use subwatch::pipeline::{measure_file, MeasureOptions};
+use subwatch::sim::{render, PsfShape, SimParams};
+
+#[derive(Parser)]
+#[command(name = "subwatch", version, about = "Grades every sub of an imaging night as it lands and flags what is unusual.")]
+struct Cli {
+    #[command(subcommand)]
+    command: Command,
+}
+
+#[derive(Subcommand)]
+enum Command {
+    /// Measure frames: FWHM, eccentricity, background, noise, star count, SNR.
+    Measure {
+        /// Print one JSON object per file (JSON Lines) instead of a table.
+        #[arg(long)]
+        json: bool,
+        /// Include every measured star in the JSON output.
+        #[arg(long)]
+        stars: bool,
+        /// Refuse images with more pixels than this (checked before allocating).
+        #[arg(long, default_value_t = 400_000_000)]
+        max_pixels: u64,
+        /// Focal length (mm) when the header has no FOCALLEN.
+        #[arg(long)]
+        focal_length_mm: Option<f64>,
+        /// Unbinned pixel size (µm) when the header has no XPIXSZ.
+        #[arg(long)]
+        pixel_size_um: Option<f64>,
+        #[arg(required = true)]
+        files: Vec<PathBuf>,
+    },
+    /// Render a synthetic frame with known truth (for tests and demonstrations).
+    Render {
+        #[arg(long)]
+        out: PathBuf,
+        /// Where to write the truth as JSON.
+        #[arg(long)]
+        truth: Option<PathBuf>,
+        #[arg(long, default_value_t = 1)]
+        seed: u64,
+        #[arg(long, default_value_t = 1024)]
+        width: usize,
+        #[arg(long, default_value_t = 1024)]
+        height: usize,
+        #[arg(long, default_value_t = 300)]
+        stars: usize,
+        #[arg(long, value_enum, default_value_t = PsfArg::Moffat)]
+        psf: PsfArg,
+        /// Optical FWHM in pixels (geometric mean of the axes).
+        #[arg(long, default_value_t = 3.5)]
+        fwhm: f64,
+        #[arg(long, default_value_t = 3.5)]
+        beta: f64,
+        #[arg(long, default_value_t = 0.0)]
+        eccentricity: f64,
+        #[arg(long, default_value_t = 0.0)]
+        angle: f64,
+        /// Sky level in electrons per pixel.
+        #[arg(long, default_value_t = 800.0)]
+        sky: f64,
+        /// Sky change across the frame (fraction of the sky level) along x and y.
+        #[arg(long, num_args = 2, value_names = ["GX", "GY"])]
+        gradient: Option<Vec<f64>>,
+        #[arg(long, default_value_t = 1.0)]
+        gain: f64,
+        #[arg(long, default_value_t = 0)]
+        hot_pixels: usize,
+        #[arg(long, default_value_t = 0)]
+        cosmic_rays: usize,
+        /// Render a one-shot-colour mosaic with this pattern (RGGB, BGGR, GRBG, GBRG).
+        #[arg(long)]
+        bayer: Option<String>,
+        /// Store as float32 instead of 16-bit unsigned.
+        #[arg(long)]
+        float: bool,
+    },
+}
+
+#[derive(Clone, Copy, ValueEnum)]
+enum PsfArg {
+    Gaussian,
+    Moffat,
+}
+
+fn main() -> ExitCode {
+    tracing_subscriber::fmt()
+        .with_writer(std::io::stderr)
+        .with_ansi(std::io::IsTerminal::is_terminal(&std::io::stderr()))
+        .with_env_filter(
+            tracing_subscriber::EnvFilter::try_from_env("SUBWATCH_LOG")
+                .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new("warn")),
+        )
+        .init();
+    // A panic anywhere is reported as one line; the per-file guard below keeps the
+    // other files going.
+    std::panic::set_hook(Box::new(|info| {
+        tracing::error!("internal error: {info}");
+    }));
+    let cli = Cli::parse();
+    match run(cli) {
+        Ok(code) => code,
+        Err(e) => {
+            eprintln!("subwatch: {e:#}");
+            ExitCode::from(2)
+        }
+    }
+}
+
+fn run(cli: Cli) -> Result<ExitCode> {
+    match cli.command {
+        Command::Measure { json, stars, max_pixels, focal_length_mm, pixel_size_um, files } => {
+            let mut opts = MeasureOptions {
+                focal_length_mm,
+                pixel_size_um,
+                ..Default::default()
+            };
+            opts.limits.max_pixels = max_pixels;
+            measure_command(&files, &opts, json, stars)
+        }
+        Command::Render {
+            out,
+            truth,
+            seed,
+            width,
+            height,
+            stars,
+            psf,
+            fwhm,
+            beta,
+            eccentricity,
+            angle,
+            sky,
+            gradient,
+            gain,
+            hot_pixels,
+            cosmic_rays,
+            bayer,
+            float,
+        } => {
+            let bayer = match bayer {
+                Some(name) => Some(BayerPattern::parse(&name).with_context(|| format!("unknown Bayer pattern {name:?}"))?),
+                None => None,
+            };
+            let params = SimParams {
+                width,
+                height,
+                seed,
+                star_count: stars,
+                psf: match psf {
+                    PsfArg::Gaussian => PsfShape::Gaussian,
+                    PsfArg::Moffat => PsfShape::Moffat { beta },
+                },
+                fwhm_px: fwhm,
+                eccentricity,
+                angle_deg: angle,
+                sky_e: sky,
+                gradient: gradient.map_or((0.0, 0.0), |g| (g[0], g[1])),
+                gain_e_per_adu: gain,
+                hot_pixels,
+                cosmic_rays,
+                bayer,
+                ..Default::default()
+            };
+            let (pixels, keys, t) = render(&params);
+            let encoding = if float { Encoding::Float32 } else { Encoding::Unsigned16 };
+            write_frame(&out, &pixels, encoding, &keys)?;
+            if let Some(path) = truth {
+                let text = serde_json::to_string_pretty(&t)?;
+                std::fs::write(&path, text).with_context(|| format!("writing {}", path.display()))?;
+            }
+            Ok(ExitCode::SUCCESS)
+        }
+    }
+}
+
+fn measure_command(files: &[PathBuf], opts: &MeasureOptions, json: bool, with_stars: bool) -> Result<ExitCode> {
+    let stdout = std::io::stdout();
+    let mut out = stdout.lock();
+    let mut failed = false;
+    if !json {
+        writeln!(out, "{:<40} {:>6} {:>7} {:>7} {:>6} {:>9} {:>8} {:>7}", "file", "stars", "fwhm_px", "fwhm_\"", "ecc", "bkg_adu", "noise", "snr")?;
+    }
+    for path in files {
+        let shown = path.display().to_string();
+        let result = catch_unwind(AssertUnwindSafe(|| measure_file(path, opts)));
+        let record = match result {
+            Ok(Ok(m)) => MeasureRecord {
+                path: shown.clone(),
+                status: "ok",
+                error: None,
+                metrics: Some(Metrics::new(&m.measurement, m.plate_scale)),
+                header: Some(HeaderFacts::new(&m.frame_header)),
+                stars: with_stars.then(|| m.measurement.stars.iter().map(|s| StarRecord::new(s, &m.frame_header)).collect()),
+                rejected: with_stars.then(|| m.measurement.rejected.clone()),
+            },
+            Ok(Err(e)) => MeasureRecord::error(&shown, e.reason()),
+            Err(_) => MeasureRecord::error(&shown, "internal error while measuring (a bug; please report it)".into()),
+        };
+        if record.status != "ok" {
+            failed = true;
+            tracing::warn!("{shown}: {}", record.error.as_deref().unwrap_or(""));
+        }
+        if json {
+            serde_json::to_writer(&mut out, &record)?;
+            writeln!(out)?;
+        } else {
+            print_row(&mut out, &record)?;
+        }
+    }
+    Ok(if failed { ExitCode::from(1) } else { ExitCode::SUCCESS })
+}
+
+fn print_row(out: &mut impl Write, r: &MeasureRecord) -> Result<()> {
+    let opt = |v: Option<f64>, p: usize| v.map_or("-".to_string(), |x| format!("{x:.p$}"));
+    match &r.metrics {
+        Some(m) => writeln!(
+            out,
+            "{:<40} {:>6} {:>7} {:>7} {:>6} {:>9.1} {:>8.2} {:>7}",
+            r.path,
+            m.star_count,
+            opt(m.fwhm_px, 2),
+            opt(m.fwhm_arcsec, 2),
+            opt(m.eccentricity, 2),
+            m.background_adu,
+            m.noise_adu,
+            opt(m.snr_median, 1)
+        )?,
+        None => writeln!(out, "{:<40} error: {}", r.path, r.error.as_deref().unwrap_or("unknown"))?,
+    }
+    Ok(())
+}

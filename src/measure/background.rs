@@ -1,0 +1,324 @@
+//! Sky background and its noise as smooth maps: a mesh of boxes, each summarised by
+//! sigma-clipped statistics and the mode estimate of Bertin & Arnouts (1996), a 3×3
+//! median filter over the mesh, and a natural bicubic spline between box centres
+//! (linear beyond the outermost centres), so gradients from the Moon or light
+//! pollution are followed rather than averaged. Pure: pixels in, map out.
+
+use ndarray::Array2;
+use rayon::prelude::*;
+
+use super::stats::{median_f64, sigma_clip};
+
+/// The standard deviation of a normal distribution truncated at ±3σ is 0.98658σ
+/// (variance 1 − 2·3·φ(3)/(2Φ(3) − 1) = 0.97334); dividing by it undoes the clipping.
+const CLIP3_STD_CORRECTION: f64 = 0.986_58;
+
+#[derive(Debug, Clone, Copy)]
+pub struct BackgroundParams {
+    /// Mesh box side in pixels.
+    pub box_size: usize,
+    /// Side of the median filter over the mesh (odd; 1 disables it).
+    pub filter_size: usize,
+}
+
+impl Default for BackgroundParams {
+    fn default() -> Self {
+        Self {
+            box_size: 64,
+            filter_size: 3,
+        }
+    }
+}
+
+/// Background level and noise at mesh resolution, with spline evaluation per row.
+#[derive(Debug, Clone)]
+pub struct BackgroundMap {
+    centers_x: Vec<f64>,
+    centers_y: Vec<f64>,
+    /// Row-major ny × nx.
+    level: Vec<f64>,
+    rms: Vec<f64>,
+}
+
+impl BackgroundMap {
+    /// Estimate the map. `mask[i] == true` excludes pixel `i` (row-major) from the
+    /// statistics. `None` when the image has no finite pixel.
+    pub fn estimate(
+        image: &Array2<f32>,
+        mask: Option<&[bool]>,
+        params: BackgroundParams,
+    ) -> Option<Self> {
+        let (h, w) = image.dim();
+        let data = image.as_slice()?;
+        let bs = params.box_size.max(8).min(w.max(h));
+        let edges = |n: usize| -> Vec<(usize, usize)> {
+            let count = n.div_ceil(bs).max(1);
+            // Spread the remainder evenly instead of leaving a thin last box.
+            (0..count)
+                .map(|i| (i * n / count, (i + 1) * n / count))
+                .collect()
+        };
+        let xs = edges(w);
+        let ys = edges(h);
+        let cells: Vec<Option<(f64, f64)>> = ys
+            .par_iter()
+            .flat_map_iter(|&(y0, y1)| {
+                let xs = &xs;
+                let mut buf: Vec<f32> = Vec::with_capacity(bs * bs);
+                xs.iter()
+                    .map(move |&(x0, x1)| {
+                        buf.clear();
+                        for y in y0..y1 {
+                            let row = &data[y * w..(y + 1) * w];
+                            for (x, &v) in row.iter().enumerate().take(x1).skip(x0) {
+                                if v.is_finite() && mask.is_none_or(|m| !m[y * w + x]) {
+                                    buf.push(v);
+                                }
+                            }
+                        }
+                        let area = (y1 - y0) * (x1 - x0);
+                        // A box mostly covered by sources or bad pixels says little
+                        // about the sky; its neighbours fill it in below.
+                        if buf.len() * 10 < area * 3 {
+                            return None;
+                        }
+                        let s = sigma_clip(&mut buf, 3.0, 10)?;
+                        Some((s.mode(), s.std / CLIP3_STD_CORRECTION))
+                    })
+                    .collect::<Vec<_>>()
+            })
+            .collect();
+        let (nx, ny) = (xs.len(), ys.len());
+        let mut level: Vec<Option<f64>> = cells.iter().map(|c| c.map(|v| v.0)).collect();
+        let mut rms: Vec<Option<f64>> = cells.iter().map(|c| c.map(|v| v.1)).collect();
+        fill_missing(&mut level, nx, ny)?;
+        fill_missing(&mut rms, nx, ny)?;
+        let mut level: Vec<f64> = level.into_iter().map(|v| v.unwrap_or(0.0)).collect();
+        let mut rms: Vec<f64> = rms.into_iter().map(|v| v.unwrap_or(0.0)).collect();
+        if params.filter_size > 1 {
+            level = median_filter(&level, nx, ny, params.filter_size / 2);
+            rms = median_filter(&rms, nx, ny, params.filter_size / 2);
+        }
+        let center = |&(a, b): &(usize, usize)| (a + b) as f64 / 2.0 - 0.5;
+        Some(Self {
+            centers_x: xs.iter().map(center).collect(),
+            centers_y: ys.iter().map(center).collect(),
+            level,
+            rms,
+        })
+    }
+
+    /// Background level along row `y` (0-based) into `out` (one value per column).
+    pub fn level_row(&self, y: usize, out: &mut [f32]) {
+        self.eval_row(&self.level, y, out);
+    }
+
+    /// Sky noise (1σ per pixel) along row `y`.
+    pub fn rms_row(&self, y: usize, out: &mut [f32]) {
+        self.eval_row(&self.rms, y, out);
+    }
+
+    /// Background level at one position (0-based pixel coordinates).
+    pub fn level_at(&self, x: f64, y: f64) -> f64 {
+        self.eval_point(&self.level, x, y)
+    }
+
+    /// Sky noise at one position (0-based pixel coordinates).
+    pub fn rms_at(&self, x: f64, y: f64) -> f64 {
+        self.eval_point(&self.rms, x, y)
+    }
+
+    fn column_values(&self, grid: &[f64], y: f64) -> Vec<f64> {
+        let nx = self.centers_x.len();
+        (0..nx)
+            .map(|i| {
+                let column: Vec<f64> = (0..self.centers_y.len())
+                    .map(|j| grid[j * nx + i])
+                    .collect();
+                Spline::new(&self.centers_y, &column).eval(y)
+            })
+            .collect()
+    }
+
+    fn eval_point(&self, grid: &[f64], x: f64, y: f64) -> f64 {
+        let column_values = self.column_values(grid, y);
+        Spline::new(&self.centers_x, &column_values).eval(x)
+    }
+
+    /// Median of the mesh levels: the frame's typical sky level.
+    pub fn median_level(&self) -> f64 {
+        median_f64(&self.level).unwrap_or(0.0)
+    }
+
+    /// Median of the mesh noise values.
+    pub fn median_rms(&self) -> f64 {
+        median_f64(&self.rms).unwrap_or(0.0)
+    }
+
+    /// Largest minus smallest mesh level: how much the sky changes across the frame.
+    pub fn level_range(&self) -> f64 {
+        let max = self.level.iter().copied().fold(f64::MIN, f64::max);
+        let min = self.level.iter().copied().fold(f64::MAX, f64::min);
+        max - min
+    }
+
+    fn eval_row(&self, grid: &[f64], y: usize, out: &mut [f32]) {
+        // Down each mesh column to this row, then across the row.
+        let column_values = self.column_values(grid, y as f64);
+        let across = Spline::new(&self.centers_x, &column_values);
+        for (x, o) in out.iter_mut().enumerate() {
+            *o = across.eval(x as f64) as f32;
+        }
+    }
+}
+
+/// Replace missing mesh cells by the median of their valid neighbours, growing outward;
+/// `None` when no cell is valid.
+fn fill_missing(grid: &mut [Option<f64>], nx: usize, ny: usize) -> Option<()> {
+    if grid.iter().all(|c| c.is_none()) {
+        return None;
+    }
+    while grid.iter().any(|c| c.is_none()) {
+        let snapshot = grid.to_vec();
+        for j in 0..ny {
+            for i in 0..nx {
+                if snapshot[j * nx + i].is_some() {
+                    continue;
+                }
+                let mut near = Vec::new();
+                for dj in -1i64..=1 {
+                    for di in -1i64..=1 {
+                        let (a, b) = (i as i64 + di, j as i64 + dj);
+                        if a >= 0 && b >= 0 && (a as usize) < nx && (b as usize) < ny {
+                            if let Some(v) = snapshot[b as usize * nx + a as usize] {
+                                near.push(v);
+                            }
+                        }
+                    }
+                }
+                grid[j * nx + i] = median_f64(&near);
+            }
+        }
+    }
+    Some(())
+}
+
+fn median_filter(grid: &[f64], nx: usize, ny: usize, half: usize) -> Vec<f64> {
+    let mut out = vec![0.0; grid.len()];
+    let mut near = Vec::new();
+    for j in 0..ny {
+        for i in 0..nx {
+            near.clear();
+            // A window kept symmetric about the cell, shrinking at the edges, so a
+            // gradient is not pulled inwards at the border.
+            let hx = half.min(i).min(nx - 1 - i);
+            let hy = half.min(j).min(ny - 1 - j);
+            for b in j - hy..=j + hy {
+                for a in i - hx..=i + hx {
+                    near.push(grid[b * nx + a]);
+                }
+            }
+            out[j * nx + i] = median_f64(&near).unwrap_or(grid[j * nx + i]);
+        }
+    }
+    out
+}
+
+/// Natural cubic spline through (t, v) with linear continuation beyond the end knots
+/// (the natural end condition has zero curvature there, so the line is its continuation).
+struct Spline<'a> {
+    t: &'a [f64],
+    v: &'a [f64],
+    m: Vec<f64>,
+}
+
+impl<'a> Spline<'a> {
+    fn new(t: &'a [f64], v: &'a [f64]) -> Self {
+        let n = t.len();
+        let mut m = vec![0.0; n];
+        if n >= 3 {
+            // Tridiagonal system for the second derivatives (Thomas algorithm).
+            let mut c_prime = vec![0.0; n];
+            let mut d_prime = vec![0.0; n];
+            for i in 1..n - 1 {
+                let h0 = t[i] - t[i - 1];
+                let h1 = t[i + 1] - t[i];
+                let a = h0 / 6.0;
+                let b = (h0 + h1) / 3.0;
+                let c = h1 / 6.0;
+                let d = (v[i + 1] - v[i]) / h1 - (v[i] - v[i - 1]) / h0;
+                let denom = b - a * c_prime[i - 1];
+                c_prime[i] = c / denom;
+                d_prime[i] = (d - a * d_prime[i - 1]) / denom;
+            }
+            for i in (1..n - 1).rev() {
+                m[i] = d_prime[i] - c_prime[i] * m[i + 1];
+            }
+        }
+        Self { t, v, m }
+    }
+
+    fn eval(&self, x: f64) -> f64 {
+        let (t, v, m) = (self.t, self.v, &self.m);
+        let n = t.len();
+        if n == 1 {
+            return v[0];
+        }
+        if x <= t[0] {
+            let h = t[1] - t[0];
+            let slope = (v[1] - v[0]) / h - h * (2.0 * m[0] + m[1]) / 6.0;
+            return v[0] + slope * (x - t[0]);
+        }
+        if x >= t[n - 1] {
+            let h = t[n - 1] - t[n - 2];
+            let slope = (v[n - 1] - v[n - 2]) / h + h * (m[n - 2] + 2.0 * m[n - 1]) / 6.0;
+            return v[n - 1] + slope * (x - t[n - 1]);
+        }
+        let j = t.partition_point(|&k| k <= x).clamp(1, n - 1) - 1;
+        let h = t[j + 1] - t[j];
+        let a = (t[j + 1] - x) / h;
+        let b = 1.0 - a;
+        a * v[j] + b * v[j + 1] + ((a * a * a - a) * m[j] + (b * b * b - b) * m[j + 1]) * h * h / 6.0
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn spline_reproduces_a_straight_line_everywhere() {
+        // A natural cubic spline through collinear points is that line (analytic).
+        let t = [0.0, 1.0, 2.5, 4.0];
+        let v: Vec<f64> = t.iter().map(|x| 3.0 - 2.0 * x).collect();
+        let s = Spline::new(&t, &v);
+        for x in [-2.0, 0.3, 1.7, 3.9, 6.0] {
+            assert!((s.eval(x) - (3.0 - 2.0 * x)).abs() < 1e-12);
+        }
+    }
+
+    #[test]
+    fn planar_gradient_is_followed_to_the_edges() {
+        let (h, w) = (300, 500);
+        let img = Array2::from_shape_fn((h, w), |(y, x)| {
+            // Deterministic ±1 pattern as "noise" with zero mean per box.
+            let n = if (x + y) % 2 == 0 { 1.0 } else { -1.0 };
+            (1000.0 + 0.5 * x as f64 - 0.25 * y as f64 + n) as f32
+        });
+        let map = BackgroundMap::estimate(&img, None, BackgroundParams::default()).unwrap();
+        let mut row = vec![0.0; w];
+        for y in [0, 150, 299] {
+            map.level_row(y, &mut row);
+            for x in [0, 250, 499] {
+                let truth = 1000.0 + 0.5 * x as f64 - 0.25 * y as f64;
+                assert!((row[x] as f64 - truth).abs() < 0.6, "({x},{y}) {} vs {truth}", row[x]);
+            }
+        }
+    }
+
+    #[test]
+    fn empty_image_has_no_map() {
+        let img = Array2::from_elem((50, 50), f32::NAN);
+        assert!(BackgroundMap::estimate(&img, None, BackgroundParams::default()).is_none());
+    }
+}

@@ -1,0 +1,701 @@
+//! Measurement of one frame: image in, numbers out. No files, clocks or network here.
+//!
+//! The way through: background map (`background`) → matched-filter detection and
+//! deblending (`detect`) → per-candidate PSF fits (`psf`) → rejection of what no PSF can
+//! produce (hot pixels, cosmic rays), saturated and edge-clipped sources → aperture
+//! photometry, half-flux radius and SNR (`photometry`) → frame metrics.
+
+pub mod background;
+pub mod detect;
+pub mod photometry;
+pub mod psf;
+pub mod stats;
+
+use ndarray::Array2;
+use rayon::prelude::*;
+use serde::Serialize;
+
+use crate::frame::bayer::{channel_plane, superpixel_luminance, BayerPattern, Channel};
+use background::{BackgroundMap, BackgroundParams};
+use detect::{detect, Candidate, DetectParams};
+use psf::{fit_gaussian, fit_moffat, Guess, PsfFit, PsfModel, Stamp};
+use stats::{mad_sigma, median_f64, median_in_place};
+
+#[derive(Debug, Clone, Copy)]
+pub struct MeasureParams {
+    pub background: BackgroundParams,
+    pub detect: DetectParams,
+    /// Electrons per ADU, for the source shot noise in the SNR.
+    pub gain_e_per_adu: Option<f64>,
+    /// Pixel value (physical units) at which the sensor saturates. When absent, a
+    /// plateau of several pixels at the image maximum is taken as saturation.
+    pub saturation_adu: Option<f64>,
+    /// Stars below this SNR do not vote on the frame's FWHM and eccentricity.
+    pub min_shape_snr: f64,
+}
+
+impl Default for MeasureParams {
+    fn default() -> Self {
+        Self {
+            background: BackgroundParams::default(),
+            detect: DetectParams::default(),
+            gain_e_per_adu: None,
+            saturation_adu: None,
+            min_shape_snr: 20.0,
+        }
+    }
+}
+
+#[derive(Debug, thiserror::Error, PartialEq)]
+pub enum MeasureError {
+    #[error("the image has no valid pixels (all NaN or blank)")]
+    NoValidPixels,
+    #[error("the image is too small to measure ({width} x {height} pixels)")]
+    TooSmall { width: usize, height: usize },
+}
+
+/// One measured star. Positions are FITS 1-based (centre of the first pixel is 1.0).
+#[derive(Debug, Clone, Serialize)]
+pub struct Star {
+    pub x: f64,
+    pub y: f64,
+    /// Background-subtracted total in the aperture (radius 2.5 × frame FWHM), ADU.
+    pub flux: f64,
+    pub fwhm_px: f64,
+    pub eccentricity: f64,
+    pub snr: f64,
+    pub fwhm_major_px: f64,
+    pub fwhm_minor_px: f64,
+    pub angle_deg: f64,
+    pub hfr_px: Option<f64>,
+    /// Integral of the fitted PSF model, ADU.
+    pub psf_flux: f64,
+    pub psf_model: PsfModel,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub moffat_beta: Option<f64>,
+    /// Highest background-subtracted pixel, ADU.
+    pub peak_adu: f64,
+    pub blended: bool,
+    /// [r, g, b] fluxes for one-shot-colour frames.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub rgb: Option<[f64; 3]>,
+}
+
+/// Why a detection was not counted as a star.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum RejectKind {
+    /// Sharper than any PSF: a hot pixel or a cosmic-ray hit.
+    Sharp,
+    Saturated,
+    EdgeClipped,
+    /// The PSF fit failed or ran away from the detection.
+    Unfit,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct Rejected {
+    pub x: f64,
+    pub y: f64,
+    pub kind: RejectKind,
+    pub peak_adu: f64,
+}
+
+/// Everything measured on one frame.
+#[derive(Debug, Clone, Serialize)]
+pub struct FrameMeasurement {
+    pub width: usize,
+    pub height: usize,
+    pub star_count: usize,
+    pub fwhm_px: Option<f64>,
+    pub eccentricity: Option<f64>,
+    pub background_adu: f64,
+    pub noise_adu: f64,
+    pub snr_median: Option<f64>,
+    pub hfr_px: Option<f64>,
+    pub saturated_count: usize,
+    pub sharp_count: usize,
+    /// Largest minus smallest sky level over the background mesh, ADU.
+    pub background_range_adu: f64,
+    /// Stars that voted on the frame's FWHM and eccentricity.
+    pub shape_star_count: usize,
+    pub stars: Vec<Star>,
+    pub rejected: Vec<Rejected>,
+}
+
+impl FrameMeasurement {
+    fn empty(width: usize, height: usize, background: f64, noise: f64) -> Self {
+        Self {
+            width,
+            height,
+            star_count: 0,
+            fwhm_px: None,
+            eccentricity: None,
+            background_adu: background,
+            noise_adu: noise,
+            snr_median: None,
+            hfr_px: None,
+            saturated_count: 0,
+            sharp_count: 0,
+            background_range_adu: 0.0,
+            shape_star_count: 0,
+            stars: Vec::new(),
+            rejected: Vec::new(),
+        }
+    }
+}
+
+/// Saturation level from a plateau at the image maximum (at least 3 pixels share it).
+fn plateau_saturation(pixels: &Array2<f32>) -> Option<f64> {
+    let max = pixels
+        .iter()
+        .copied()
+        .filter(|v| v.is_finite())
+        .fold(f32::NEG_INFINITY, f32::max);
+    if !max.is_finite() {
+        return None;
+    }
+    let tol = (max.abs() * 1e-6).max(1e-3);
+    let at_max = pixels.iter().filter(|&&v| v >= max - tol).take(3).count();
+    (at_max >= 3).then_some(f64::from(max))
+}
+
+/// Measure a single-channel image. Takes ownership so the background can be removed
+/// in place (memory is the limit on large frames).
+pub fn measure_image(mut pixels: Array2<f32>, params: &MeasureParams) -> Result<FrameMeasurement, MeasureError> {
+    let (h, w) = pixels.dim();
+    if w < 8 || h < 8 {
+        return Err(MeasureError::TooSmall { width: w, height: h });
+    }
+    if !pixels.iter().any(|v| v.is_finite()) {
+        return Err(MeasureError::NoValidPixels);
+    }
+    let saturation = params.saturation_adu.or_else(|| plateau_saturation(&pixels));
+    let mut bkg = BackgroundMap::estimate(&pixels, None, params.background).ok_or(MeasureError::NoValidPixels)?;
+    subtract_rows(&mut pixels, &bkg, None);
+    if bkg.median_rms() <= 0.0 {
+        // A constant image (or a fully saturated one): nothing to detect.
+        return Ok(FrameMeasurement::empty(w, h, bkg.median_level(), 0.0));
+    }
+
+    // First detection with the configured kernel; re-detect with a kernel matched to
+    // the stars when the frame's PSF turns out much wider or narrower.
+    let mut dparams = params.detect;
+    let mut candidates = detect(&pixels, &bkg, &dparams);
+    let mut fwhm_guess = estimate_fwhm(&pixels, &candidates, &bkg, saturation, dparams.kernel_fwhm)
+        .unwrap_or(dparams.kernel_fwhm);
+    if (fwhm_guess / dparams.kernel_fwhm - 1.0).abs() > 0.35 {
+        dparams.kernel_fwhm = fwhm_guess.clamp(1.5, 15.0);
+        candidates = detect(&pixels, &bkg, &dparams);
+        fwhm_guess = estimate_fwhm(&pixels, &candidates, &bkg, saturation, fwhm_guess).unwrap_or(fwhm_guess);
+    }
+
+    // Mask the sources and re-estimate the sky without them (crowded fields), then the
+    // noise as the robust scatter of the unmasked pixels about the local background.
+    let mask = source_mask(w, h, &candidates, fwhm_guess);
+    let raw_free = {
+        // Put the first background back only where needed: re-estimate on image = residual + bkg.
+        let mut restored = pixels.clone();
+        add_rows(&mut restored, &bkg);
+        BackgroundMap::estimate(&restored, Some(&mask), params.background)
+    };
+    if let Some(better) = raw_free {
+        subtract_rows(&mut pixels, &better, Some(&bkg));
+        bkg = better;
+    }
+    let noise = robust_noise(&pixels, &mask).unwrap_or_else(|| bkg.median_rms());
+    let background_adu = bkg.median_level();
+
+    let sat_residual = |x: usize, y: usize| saturation.map(|s| s - bkg.level_at(x as f64, y as f64));
+    let grid = CandidateGrid::new(&candidates, w, h, 32);
+    let half = ((2.0 * fwhm_guess + 2.0).ceil() as usize).clamp(4, 30);
+    // A star whose centre lies half a FWHM inside the frame still shows its core.
+    let edge_margin = (0.5 * fwhm_guess).max(1.0);
+    // Narrow PSFs are fitted with the model averaged over each pixel (see `psf::Stamp`).
+    let subsample = if fwhm_guess < 4.0 { 3 } else { 1 };
+
+    let outcomes: Vec<Outcome> = candidates
+        .par_iter()
+        .enumerate()
+        .map(|(i, c)| {
+            measure_candidate(&pixels, c, i, &candidates, &grid, half, edge_margin, noise, sat_residual(c.x, c.y), fwhm_guess, subsample)
+        })
+        .collect();
+
+    // Sharper than any PSF this frame shows: a fitted (optical) minor FWHM under half
+    // the typical one. The principle of van Dokkum (2001, PASP 113, 1420): a cosmic ray
+    // or hot pixel changes faster from pixel to pixel than the seeing allows. The floor
+    // sits just above the narrowest width a fit may take (0.5 px, see `psf`), or at
+    // 0.8 px where the model is fitted to pixel centres (which then carry the pixel's
+    // own width of ~0.7 px FWHM on top).
+    let floor = if subsample > 1 { 0.55 } else { 0.8 };
+    let typical_minor = median_f64(
+        &outcomes
+            .iter()
+            .filter_map(|o| match o {
+                Outcome::Fitted(f) if !f.blended && f.fit.model_axes().1 >= 1.5 * floor => Some(f.fit.model_axes().1),
+                _ => None,
+            })
+            .collect::<Vec<_>>(),
+    )
+    .unwrap_or(fwhm_guess);
+    let sharp_limit = (0.5 * typical_minor).max(floor);
+    let typical_fwhm = median_f64(
+        &outcomes
+            .iter()
+            .filter_map(|o| match o {
+                Outcome::Fitted(f) if !f.blended && f.fit.model_axes().1 >= sharp_limit => Some(f.fit.fwhm()),
+                _ => None,
+            })
+            .collect::<Vec<_>>(),
+    )
+    .unwrap_or(fwhm_guess);
+
+    let mut fitted = Vec::new();
+    let mut rejected = Vec::new();
+    for o in outcomes {
+        match o {
+            Outcome::Fitted(f) if f.fit.model_axes().1 < sharp_limit => rejected.push(Rejected {
+                x: f.fit.x0 + 1.0,
+                y: f.fit.y0 + 1.0,
+                kind: RejectKind::Sharp,
+                peak_adu: f.peak,
+            }),
+            // A position known no better than a quarter of the FWHM is noise or a
+            // fit that wandered, not a star worth reporting.
+            Outcome::Fitted(f) if f.fit.pos_err.0.hypot(f.fit.pos_err.1) > 0.25 * typical_fwhm => {
+                rejected.push(Rejected {
+                    x: f.fit.x0 + 1.0,
+                    y: f.fit.y0 + 1.0,
+                    kind: RejectKind::Unfit,
+                    peak_adu: f.peak,
+                })
+            }
+            Outcome::Fitted(f) => fitted.push(f),
+            Outcome::Rejected(r) => rejected.push(r),
+        }
+    }
+
+    // The frame's FWHM from the stars fit well enough to vote; then photometry with an
+    // aperture scaled to it.
+    let frame_fwhm = median_f64(&fitted.iter().filter(|f| !f.blended).map(|f| f.fit.fwhm()).collect::<Vec<_>>())
+        .unwrap_or(fwhm_guess);
+    let r_ap = (2.5 * frame_fwhm).max(3.0);
+    let r_in = r_ap + 2.0;
+    let r_out = r_in + (1.5 * frame_fwhm).max(6.0);
+    let gain = params.gain_e_per_adu;
+    let mut stars: Vec<Star> = fitted
+        .par_iter()
+        .filter_map(|f| {
+            let (cx, cy) = (f.fit.x0, f.fit.y0);
+            let ap = photometry::aperture(&pixels, cx, cy, r_ap, r_in, r_out)?;
+            let snr = photometry::ccd_snr(ap.flux, ap.n_pix, ap.n_sky, noise, gain);
+            let hfr = photometry::half_flux_radius(&pixels, cx, cy, r_ap, ap.local_sky);
+            let (major, minor) = f.fit.fwhm_axes();
+            Some(Star {
+                x: cx + 1.0,
+                y: cy + 1.0,
+                flux: ap.flux,
+                fwhm_px: f.fit.fwhm(),
+                eccentricity: f.fit.eccentricity(),
+                snr,
+                fwhm_major_px: major,
+                fwhm_minor_px: minor,
+                angle_deg: f.fit.angle_deg(),
+                hfr_px: hfr,
+                psf_flux: f.fit.total_flux(),
+                psf_model: f.fit.model,
+                moffat_beta: (f.fit.model == PsfModel::Moffat).then_some(f.fit.beta),
+                peak_adu: f.peak,
+                blended: f.blended,
+                rgb: None,
+            })
+        })
+        .collect();
+    stars.sort_by(|a, b| b.flux.total_cmp(&a.flux));
+
+    let mut shape: Vec<&Star> = stars
+        .iter()
+        .filter(|s| !s.blended && s.snr >= params.min_shape_snr)
+        .collect();
+    if shape.len() < 5 {
+        shape = stars.iter().filter(|s| !s.blended).collect();
+    }
+    let med = |f: &dyn Fn(&Star) -> Option<f64>| median_f64(&shape.iter().filter_map(|s| f(s)).collect::<Vec<_>>());
+    let fwhm_px = med(&|s| Some(s.fwhm_px));
+    let eccentricity = med(&|s| Some(s.eccentricity));
+    let hfr_px = med(&|s| s.hfr_px);
+    let snr_median = median_f64(&stars.iter().map(|s| s.snr).collect::<Vec<_>>());
+    let saturated_count = rejected.iter().filter(|r| r.kind == RejectKind::Saturated).count();
+    let sharp_count = rejected.iter().filter(|r| r.kind == RejectKind::Sharp).count();
+    Ok(FrameMeasurement {
+        width: w,
+        height: h,
+        star_count: stars.len(),
+        fwhm_px,
+        eccentricity,
+        background_adu,
+        noise_adu: noise,
+        snr_median,
+        hfr_px,
+        saturated_count,
+        sharp_count,
+        background_range_adu: bkg.level_range(),
+        shape_star_count: shape.len(),
+        stars,
+        rejected,
+    })
+}
+
+/// Measure a one-shot-colour mosaic: shape on 2×2 superpixel luminance, positions and
+/// widths reported in mosaic pixels, and per-star [r, g, b] aperture fluxes.
+pub fn measure_mosaic(
+    mosaic: Array2<f32>,
+    pattern: BayerPattern,
+    params: &MeasureParams,
+) -> Result<FrameMeasurement, MeasureError> {
+    let (h, w) = mosaic.dim();
+    let planes: Vec<Array2<f32>> = [Channel::Red, Channel::Green, Channel::Blue]
+        .iter()
+        .map(|&c| channel_plane(&mosaic, pattern, c))
+        .collect();
+    let lum = superpixel_luminance(&mosaic);
+    drop(mosaic);
+    let mut p = *params;
+    p.saturation_adu = params.saturation_adu.map(|s| 4.0 * s);
+    p.detect.kernel_fwhm = (params.detect.kernel_fwhm / 2.0).max(1.5);
+    let mut m = measure_image(lum, &p)?;
+    // Per-channel residual planes for colour photometry.
+    let residual_planes: Vec<Array2<f32>> = planes
+        .into_iter()
+        .filter_map(|mut plane| {
+            let b = BackgroundMap::estimate(&plane, None, params.background)?;
+            subtract_rows(&mut plane, &b, None);
+            Some(plane)
+        })
+        .collect();
+    let frame_fwhm_sp = m.fwhm_px.unwrap_or(2.0);
+    let r_ap = (2.5 * frame_fwhm_sp).max(3.0);
+    for s in m.stars.iter_mut() {
+        let (cx, cy) = (s.x - 1.0, s.y - 1.0);
+        if residual_planes.len() == 3 {
+            let mut rgb = [0.0; 3];
+            for (k, plane) in residual_planes.iter().enumerate() {
+                rgb[k] = photometry::aperture(plane, cx, cy, r_ap, r_ap + 2.0, r_ap + 2.0 + (1.5 * frame_fwhm_sp).max(6.0))
+                    .map_or(f64::NAN, |a| a.flux);
+            }
+            s.rgb = Some(rgb);
+        }
+        to_mosaic_star(s);
+    }
+    for r in m.rejected.iter_mut() {
+        r.x = 2.0 * r.x - 0.5;
+        r.y = 2.0 * r.y - 0.5;
+    }
+    m.width = w;
+    m.height = h;
+    m.fwhm_px = m.fwhm_px.map(|f| 2.0 * f);
+    m.hfr_px = m.hfr_px.map(|f| 2.0 * f);
+    // Per mosaic pixel: a superpixel holds four, whose noises add in quadrature.
+    m.background_adu /= 4.0;
+    m.noise_adu /= 2.0;
+    m.background_range_adu /= 4.0;
+    Ok(m)
+}
+
+/// Superpixel (FITS X_s) to mosaic (FITS X_m): superpixel 1 covers mosaic pixels 1 and 2,
+/// so X_m = 2·X_s − 0.5; widths double.
+fn to_mosaic_star(s: &mut Star) {
+    s.x = 2.0 * s.x - 0.5;
+    s.y = 2.0 * s.y - 0.5;
+    s.fwhm_px *= 2.0;
+    s.fwhm_major_px *= 2.0;
+    s.fwhm_minor_px *= 2.0;
+    s.hfr_px = s.hfr_px.map(|v| 2.0 * v);
+}
+
+fn subtract_rows(img: &mut Array2<f32>, bkg: &BackgroundMap, add_back: Option<&BackgroundMap>) {
+    let w = img.ncols();
+    img.as_slice_mut()
+        .expect("standard layout")
+        .par_chunks_mut(w)
+        .enumerate()
+        .for_each(|(y, row)| {
+            let mut level = vec![0.0f32; w];
+            bkg.level_row(y, &mut level);
+            let mut old = vec![0.0f32; w];
+            if let Some(b) = add_back {
+                b.level_row(y, &mut old);
+            }
+            for ((v, l), o) in row.iter_mut().zip(&level).zip(&old) {
+                *v = *v - l + o;
+            }
+        });
+}
+
+fn add_rows(img: &mut Array2<f32>, bkg: &BackgroundMap) {
+    let w = img.ncols();
+    img.as_slice_mut()
+        .expect("standard layout")
+        .par_chunks_mut(w)
+        .enumerate()
+        .for_each(|(y, row)| {
+            let mut level = vec![0.0f32; w];
+            bkg.level_row(y, &mut level);
+            for (v, l) in row.iter_mut().zip(&level) {
+                *v += l;
+            }
+        });
+}
+
+/// Circles around detections, wider for brighter ones, so their wings stay out of the
+/// sky statistics.
+fn source_mask(w: usize, h: usize, candidates: &[Candidate], fwhm: f64) -> Vec<bool> {
+    let mut mask = vec![false; w * h];
+    for c in candidates {
+        let r = fwhm * (1.5 + c.significance.max(1.0).log10());
+        let ri = r.ceil() as i64;
+        for dy in -ri..=ri {
+            for dx in -ri..=ri {
+                if ((dx * dx + dy * dy) as f64) > r * r {
+                    continue;
+                }
+                let (x, y) = (c.x as i64 + dx, c.y as i64 + dy);
+                if x >= 0 && y >= 0 && (x as usize) < w && (y as usize) < h {
+                    mask[y as usize * w + x as usize] = true;
+                }
+            }
+        }
+    }
+    mask
+}
+
+/// 1.4826 × MAD of unmasked residual pixels; at most about two million are sampled.
+fn robust_noise(residual: &Array2<f32>, mask: &[bool]) -> Option<f64> {
+    let data = residual.as_slice()?;
+    let stride = (data.len() / 2_000_000).max(1);
+    let mut sample: Vec<f32> = data
+        .iter()
+        .zip(mask)
+        .step_by(stride)
+        .filter(|(v, m)| !**m && v.is_finite())
+        .map(|(v, _)| *v)
+        .collect();
+    if sample.len() < 10 {
+        return None;
+    }
+    let center = median_in_place(&mut sample)?;
+    mad_sigma(&sample, center, &mut Vec::new())
+}
+
+/// Candidates bucketed on a coarse grid, to find a stamp's neighbours quickly.
+struct CandidateGrid {
+    cell: usize,
+    nx: usize,
+    buckets: Vec<Vec<usize>>,
+}
+
+impl CandidateGrid {
+    fn new(c: &[Candidate], w: usize, h: usize, cell: usize) -> Self {
+        let nx = w.div_ceil(cell);
+        let ny = h.div_ceil(cell);
+        let mut buckets = vec![Vec::new(); nx * ny];
+        for (i, k) in c.iter().enumerate() {
+            buckets[(k.y / cell) * nx + k.x / cell].push(i);
+        }
+        Self { cell, nx, buckets }
+    }
+
+    fn near(&self, x: usize, y: usize, radius: usize) -> impl Iterator<Item = usize> + '_ {
+        let ny = self.buckets.len() / self.nx;
+        let (cx0, cx1) = (x.saturating_sub(radius) / self.cell, ((x + radius) / self.cell).min(self.nx - 1));
+        let (cy0, cy1) = (y.saturating_sub(radius) / self.cell, ((y + radius) / self.cell).min(ny - 1));
+        (cy0..=cy1).flat_map(move |cy| (cx0..=cx1).flat_map(move |cx| self.buckets[cy * self.nx + cx].iter().copied()))
+    }
+}
+
+struct FittedStar {
+    fit: PsfFit,
+    peak: f64,
+    blended: bool,
+}
+
+enum Outcome {
+    Fitted(FittedStar),
+    Rejected(Rejected),
+}
+
+#[allow(clippy::too_many_arguments)]
+fn measure_candidate(
+    residual: &Array2<f32>,
+    c: &Candidate,
+    index: usize,
+    all: &[Candidate],
+    grid: &CandidateGrid,
+    half: usize,
+    edge_margin: f64,
+    noise: f64,
+    saturation_residual: Option<f64>,
+    fwhm_guess: f64,
+    subsample: usize,
+) -> Outcome {
+    let (h, w) = residual.dim();
+    // Brightest pixel near the filtered peak.
+    let (mut px, mut py, mut peak) = (c.x, c.y, f32::NEG_INFINITY);
+    for y in c.y.saturating_sub(1)..=(c.y + 1).min(h - 1) {
+        for x in c.x.saturating_sub(1)..=(c.x + 1).min(w - 1) {
+            let v = residual[(y, x)];
+            if v.is_finite() && v > peak {
+                (px, py, peak) = (x, y, v);
+            }
+        }
+    }
+    let peak = f64::from(peak);
+    let reject = |kind, x: f64, y: f64| {
+        Outcome::Rejected(Rejected {
+            x: x + 1.0,
+            y: y + 1.0,
+            kind,
+            peak_adu: peak,
+        })
+    };
+    if !peak.is_finite() {
+        return reject(RejectKind::Unfit, c.x as f64, c.y as f64);
+    }
+    // Saturated: any pixel of the core at the saturation level.
+    if let Some(sat) = saturation_residual {
+        let r = 2usize;
+        for y in py.saturating_sub(r)..=(py + r).min(h - 1) {
+            for x in px.saturating_sub(r)..=(px + r).min(w - 1) {
+                if f64::from(residual[(y, x)]) >= sat - 0.5 {
+                    return reject(RejectKind::Saturated, px as f64, py as f64);
+                }
+            }
+        }
+    }
+    // A single pixel far above its four neighbours cannot be a star however sharp the
+    // seeing (a pixel-sampled PSF of FWHM 1.3 px still has the centre only ~3.6 times
+    // its side neighbours); the Laplacian test of van Dokkum (2001) in its simplest form.
+    let neighbours: Vec<f64> = [(0i64, -1i64), (0, 1), (-1, 0), (1, 0)]
+        .iter()
+        .filter_map(|&(dx, dy)| {
+            let (x, y) = (px as i64 + dx, py as i64 + dy);
+            (x >= 0 && y >= 0 && (x as usize) < w && (y as usize) < h).then(|| f64::from(residual[(y as usize, x as usize)]))
+        })
+        .filter(|v| v.is_finite())
+        .collect();
+    let mean4 = neighbours.iter().sum::<f64>() / neighbours.len().max(1) as f64;
+    if peak > 5.0 * noise && peak > 5.0 * mean4.max(0.0) + 2.0 * noise {
+        return reject(RejectKind::Sharp, px as f64, py as f64);
+    }
+    let (fx, fy) = (px as f64, py as f64);
+    if fx < edge_margin || fy < edge_margin || fx > (w - 1) as f64 - edge_margin || fy > (h - 1) as f64 - edge_margin {
+        return reject(RejectKind::EdgeClipped, fx, fy);
+    }
+
+    // The stamp, leaving out pixels nearer to another detection than to this one.
+    let others: Vec<(f64, f64)> = grid
+        .near(px, py, 2 * half)
+        .filter(|&j| j != index)
+        .map(|j| (all[j].x as f64, all[j].y as f64))
+        .collect();
+    let (x0, x1) = (px.saturating_sub(half), (px + half).min(w - 1));
+    let (y0, y1) = (py.saturating_sub(half), (py + half).min(h - 1));
+    let mut stamp = Stamp {
+        x_range: (x0 as f64, x1 as f64),
+        y_range: (y0 as f64, y1 as f64),
+        subsample,
+        ..Default::default()
+    };
+    for y in y0..=y1 {
+        for x in x0..=x1 {
+            let v = residual[(y, x)];
+            if !v.is_finite() {
+                continue;
+            }
+            let (xf, yf) = (x as f64, y as f64);
+            let d_self = (xf - fx).powi(2) + (yf - fy).powi(2);
+            if others.iter().any(|&(ox, oy)| (xf - ox).powi(2) + (yf - oy).powi(2) < d_self) {
+                continue;
+            }
+            stamp.x.push(xf);
+            stamp.y.push(yf);
+            stamp.v.push(f64::from(v));
+        }
+    }
+    let guess = Guess {
+        sky: 0.0,
+        amplitude: peak.max(noise),
+        x0: fx,
+        y0: fy,
+        fwhm: fwhm_guess,
+    };
+    let Some(gauss) = fit_gaussian(&stamp, guess) else {
+        return reject(RejectKind::Unfit, fx, fy);
+    };
+    let fit = match fit_moffat(&stamp, &gauss) {
+        Some(m) if m.ssr < gauss.ssr => m,
+        _ => gauss,
+    };
+    // A fit whose centre wandered off the detection found something else.
+    if (fit.x0 - fx).hypot(fit.y0 - fy) > 0.5 * fwhm_guess + 1.5 {
+        return reject(RejectKind::Unfit, fx, fy);
+    }
+    Outcome::Fitted(FittedStar {
+        fit,
+        peak,
+        blended: c.blended || !others.iter().all(|&(ox, oy)| (ox - fx).hypot(oy - fy) > 1.5 * fwhm_guess + 2.0),
+    })
+}
+
+/// FWHM of the brightest isolated, unsaturated detections, from Gaussian fits.
+fn estimate_fwhm(
+    residual: &Array2<f32>,
+    candidates: &[Candidate],
+    bkg: &BackgroundMap,
+    saturation: Option<f64>,
+    start: f64,
+) -> Option<f64> {
+    let mut bright: Vec<&Candidate> = candidates.iter().filter(|c| !c.blended).collect();
+    bright.sort_by(|a, b| b.significance.total_cmp(&a.significance));
+    let (h, w) = residual.dim();
+    let half = ((2.5 * start + 3.0).ceil() as usize).clamp(6, 30);
+    let fits: Vec<f64> = bright
+        .iter()
+        .filter(|c| c.x >= half && c.y >= half && c.x + half < w && c.y + half < h)
+        .filter(|c| {
+            saturation.is_none_or(|s| {
+                f64::from(residual[(c.y, c.x)]) < 0.5 * (s - bkg.level_at(c.x as f64, c.y as f64))
+            })
+        })
+        .take(60)
+        .filter_map(|c| {
+            let mut stamp = Stamp {
+                x_range: ((c.x - half) as f64, (c.x + half) as f64),
+                y_range: ((c.y - half) as f64, (c.y + half) as f64),
+                ..Default::default()
+            };
+            for y in c.y - half..=c.y + half {
+                for x in c.x - half..=c.x + half {
+                    let v = residual[(y, x)];
+                    if v.is_finite() {
+                        stamp.x.push(x as f64);
+                        stamp.y.push(y as f64);
+                        stamp.v.push(f64::from(v));
+                    }
+                }
+            }
+            let peak = f64::from(residual[(c.y, c.x)]);
+            let fit = fit_gaussian(
+                &stamp,
+                Guess { sky: 0.0, amplitude: peak.max(1e-6), x0: c.x as f64, y0: c.y as f64, fwhm: start },
+            )?;
+            let (_, minor) = fit.fwhm_axes();
+            (minor >= 0.8).then(|| fit.fwhm())
+        })
+        .collect();
+    if fits.len() < 3 {
+        return None;
+    }
+    median_f64(&fits)
+}

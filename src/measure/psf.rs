@@ -1,0 +1,593 @@
+//! Point-spread-function fitting on a small stamp: an elliptical Gaussian and an
+//! elliptical Moffat (1969, A&A 3, 455) profile, both fitted by Levenberg–Marquardt
+//! (Levenberg 1944; Marquardt 1963) with analytic derivatives.
+//!
+//! The models are evaluated at pixel centres and fitted to pixel values, so the fitted
+//! width is the PSF as the pixels sample it (the optical PSF averaged over each pixel),
+//! which is what the measurement contract asks for.
+//!
+//! Shape is the quadratic form u = qa·dx² + 2·qb·dx·dy + qc·dy²:
+//! Gaussian  m = sky + A·exp(−u/2),        FWHM along an axis with eigenvalue λ = 2·sqrt(2 ln 2 / λ)
+//! Moffat    m = sky + A·(1 + u)^(−β),     FWHM along an axis with eigenvalue λ = 2·sqrt((2^(1/β) − 1) / λ)
+//! (the second is Moffat's 2α·sqrt(2^(1/β) − 1) with α = 1/sqrt(λ)).
+
+/// Pixels to fit: 0-based centre coordinates and values; masked pixels are left out.
+#[derive(Debug, Clone, Default)]
+pub struct Stamp {
+    pub x: Vec<f64>,
+    pub y: Vec<f64>,
+    pub v: Vec<f64>,
+    /// Bounds of the stamp (inclusive), for keeping the centre inside.
+    pub x_range: (f64, f64),
+    pub y_range: (f64, f64),
+    /// 3: the model is averaged over each pixel (3×3 Gauss–Legendre points), so the fit
+    /// gives the optical PSF and the pixel's own blur is added back exactly afterwards;
+    /// needed for narrow PSFs, whose point-sampled fits depend on where the star falls
+    /// within its pixel. 1 (or 0): the model is evaluated at pixel centres.
+    pub subsample: usize,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize)]
+#[serde(rename_all = "lowercase")]
+pub enum PsfModel {
+    Gaussian,
+    Moffat,
+}
+
+#[derive(Debug, Clone, Copy)]
+pub struct PsfFit {
+    pub model: PsfModel,
+    pub sky: f64,
+    pub amplitude: f64,
+    pub x0: f64,
+    pub y0: f64,
+    pub q: [f64; 3],
+    pub beta: f64,
+    /// Sum of squared residuals and number of pixels fitted.
+    pub ssr: f64,
+    pub n: usize,
+    /// Covariance of (qa, qb, qc) at the solution (sandwich estimator).
+    pub q_cov: [[f64; 3]; 3],
+    /// Standard errors of x0 and y0.
+    pub pos_err: (f64, f64),
+    /// (major, minor) FWHM of the fitted profile as the pixels sample it.
+    pub sampled_axes: (f64, f64),
+}
+
+const MAX_PARAMS: usize = 8;
+
+impl PsfFit {
+    fn width_factor(&self) -> f64 {
+        match self.model {
+            PsfModel::Gaussian => 2.0 * std::f64::consts::LN_2,
+            PsfModel::Moffat => 2f64.powf(1.0 / self.beta) - 1.0,
+        }
+    }
+
+    /// Eigenvalues of the shape form, (largest, smallest).
+    fn eigen(&self) -> (f64, f64) {
+        let [a, b, c] = self.q;
+        let mean = 0.5 * (a + c);
+        let d = (0.25 * (a - c).powi(2) + b * b).sqrt();
+        (mean + d, mean - d)
+    }
+
+    /// (major, minor) FWHM of the fitted model itself, pixels.
+    pub fn model_axes(&self) -> (f64, f64) {
+        let (big, small) = self.eigen();
+        let k = self.width_factor();
+        (2.0 * (k / small).sqrt(), 2.0 * (k / big).sqrt())
+    }
+
+    /// (major, minor) FWHM as the pixels sample the star, pixels.
+    pub fn fwhm_axes(&self) -> (f64, f64) {
+        self.sampled_axes
+    }
+
+    /// Profile of unit amplitude at offset (dx, dy).
+    fn shape_at(&self, dx: f64, dy: f64) -> f64 {
+        let [a, b, c] = self.q;
+        let u = a * dx * dx + 2.0 * b * dx * dy + c * dy * dy;
+        match self.model {
+            PsfModel::Gaussian => (-0.5 * u).exp(),
+            PsfModel::Moffat => (1.0 + u).powf(-self.beta),
+        }
+    }
+
+    /// FWHM along the model's principal axes of the model averaged over a unit pixel:
+    /// half-maximum found by bisection, the pixel average by 8×8 midpoint sampling.
+    fn pixel_averaged_axes(&self) -> (f64, f64) {
+        let average = |x: f64, y: f64| {
+            let mut s = 0.0;
+            for i in 0..8 {
+                for j in 0..8 {
+                    s += self.shape_at(x - 0.4375 + 0.125 * f64::from(i), y - 0.4375 + 0.125 * f64::from(j));
+                }
+            }
+            s / 64.0
+        };
+        let half = 0.5 * average(0.0, 0.0);
+        let (major, _) = self.model_axes();
+        let theta = self.angle_deg().to_radians();
+        let half_width = |dx: f64, dy: f64| {
+            let (mut lo, mut hi) = (0.0, 2.0 * major + 2.0);
+            for _ in 0..40 {
+                let mid = 0.5 * (lo + hi);
+                if average(mid * dx, mid * dy) > half {
+                    lo = mid;
+                } else {
+                    hi = mid;
+                }
+            }
+            lo + hi
+        };
+        let (s, c) = theta.sin_cos();
+        (half_width(c, s), half_width(-s, c))
+    }
+
+    /// Geometric mean of the axes: the star's FWHM by the contract.
+    pub fn fwhm(&self) -> f64 {
+        let (a, b) = self.fwhm_axes();
+        (a * b).sqrt()
+    }
+
+    /// Position angle of the major axis, degrees from +x towards +y, in [0, 180).
+    pub fn angle_deg(&self) -> f64 {
+        let [a, b, c] = self.q;
+        // The major axis is the eigenvector of the smallest eigenvalue.
+        let theta = 0.5 * (2.0 * b).atan2(a - c) + std::f64::consts::FRAC_PI_2;
+        theta.to_degrees().rem_euclid(180.0)
+    }
+
+    /// sqrt(1 − (b/a)²) of the star as sampled, without noise-bias correction.
+    pub fn eccentricity_raw(&self) -> f64 {
+        let (major, minor) = self.sampled_axes;
+        (1.0 - (minor / major).powi(2)).max(0.0).sqrt()
+    }
+
+    /// Eccentricity with the fit noise's upward bias removed.
+    ///
+    /// The shape components e1 = (qa − qc)/(qa + qc), e2 = 2qb/(qa + qc) carry noise, and
+    /// |e| = sqrt(e1² + e2²) is biased upwards like a polarisation amplitude; the
+    /// estimator of Wardle & Kronberg (1974, ApJ 194, 249), |e|² − σ², is applied with the
+    /// variances of e1 and e2 propagated from the fit covariance. |e| relates to the axis
+    /// ratio by (b/a)² = (1 − |e|)/(1 + |e|), so the eccentricity is sqrt(2|e|/(1 + |e|)).
+    pub fn eccentricity(&self) -> f64 {
+        let [a, b, c] = self.q;
+        let t = a + c;
+        let e1 = (a - c) / t;
+        let e2 = 2.0 * b / t;
+        // Gradients with respect to (qa, qb, qc).
+        let g1 = [2.0 * c / (t * t), 0.0, -2.0 * a / (t * t)];
+        let g2 = [-2.0 * b / (t * t), 2.0 / t, -2.0 * b / (t * t)];
+        let var = |g: [f64; 3]| {
+            let mut s = 0.0;
+            for i in 0..3 {
+                for j in 0..3 {
+                    s += g[i] * self.q_cov[i][j] * g[j];
+                }
+            }
+            s.max(0.0)
+        };
+        let raw = (e1 * e1 + e2 * e2).sqrt();
+        let debiased = (e1 * e1 + e2 * e2 - var(g1) - var(g2)).max(0.0).sqrt();
+        // The same relative correction applies to the pixel-sampled shape, whose |e|
+        // follows from its axis ratio.
+        let (major, minor) = self.sampled_axes;
+        let q2 = (minor / major).powi(2);
+        let sampled = (1.0 - q2) / (1.0 + q2);
+        let e = if raw > 0.0 { sampled * debiased / raw } else { 0.0 }.min(0.999_999);
+        (2.0 * e / (1.0 + e)).sqrt()
+    }
+
+    /// Integral of the fitted profile above the sky over the whole plane, ADU.
+    /// Gaussian: 2πA / sqrt(det Q); Moffat: πA / ((β − 1) sqrt(det Q)).
+    pub fn total_flux(&self) -> f64 {
+        let [a, b, c] = self.q;
+        let det = (a * c - b * b).max(1e-300);
+        match self.model {
+            PsfModel::Gaussian => 2.0 * std::f64::consts::PI * self.amplitude / det.sqrt(),
+            PsfModel::Moffat if self.beta > 1.0 => {
+                std::f64::consts::PI * self.amplitude / ((self.beta - 1.0) * det.sqrt())
+            }
+            PsfModel::Moffat => f64::INFINITY,
+        }
+    }
+
+    /// Root-mean-square residual per pixel.
+    pub fn rms_residual(&self) -> f64 {
+        (self.ssr / self.n.max(1) as f64).sqrt()
+    }
+}
+
+/// Starting point for a fit.
+#[derive(Debug, Clone, Copy)]
+pub struct Guess {
+    pub sky: f64,
+    pub amplitude: f64,
+    pub x0: f64,
+    pub y0: f64,
+    pub fwhm: f64,
+}
+
+/// Fit an elliptical Gaussian. `None` when the fit fails or leaves the allowed region.
+pub fn fit_gaussian(stamp: &Stamp, guess: Guess) -> Option<PsfFit> {
+    let sigma = guess.fwhm / (2.0 * (2.0 * std::f64::consts::LN_2).sqrt());
+    let q = 1.0 / (sigma * sigma);
+    let p0 = [guess.sky, guess.amplitude, guess.x0, guess.y0, q, 0.0, q];
+    fit(stamp, PsfModel::Gaussian, &p0)
+}
+
+/// Fit an elliptical Moffat profile, starting from a Gaussian fit's shape.
+pub fn fit_moffat(stamp: &Stamp, from: &PsfFit) -> Option<PsfFit> {
+    let beta = 3.0;
+    // Same FWHM as the Gaussian: λ_m = λ_g · (2^(1/β) − 1) / (2 ln 2).
+    let scale = (2f64.powf(1.0 / beta) - 1.0) / (2.0 * std::f64::consts::LN_2);
+    let p0 = [
+        from.sky,
+        from.amplitude,
+        from.x0,
+        from.y0,
+        from.q[0] * scale,
+        from.q[1] * scale,
+        from.q[2] * scale,
+        beta,
+    ];
+    fit(stamp, PsfModel::Moffat, &p0)
+}
+
+/// 3-point Gauss–Legendre nodes and weights on [−½, ½].
+const GL3: [(f64, f64); 3] = [(-0.387_298_334_620_741_7, 5.0 / 18.0), (0.0, 8.0 / 18.0), (0.387_298_334_620_741_7, 5.0 / 18.0)];
+
+/// Model value and gradient for the pixel centred at (x, y): point-sampled, or averaged
+/// over the pixel when `subsample` > 1.
+fn pixel_model(model: PsfModel, p: &[f64], x: f64, y: f64, subsample: usize, grad: &mut [f64]) -> f64 {
+    if subsample <= 1 {
+        return model_and_grad(model, p, x, y, grad);
+    }
+    let mut g = [0.0; MAX_PARAMS];
+    let mut value = 0.0;
+    grad.iter_mut().for_each(|v| *v = 0.0);
+    for &(ox, wx) in &GL3 {
+        for &(oy, wy) in &GL3 {
+            let w = wx * wy;
+            value += w * model_and_grad(model, p, x + ox, y + oy, &mut g);
+            for (a, b) in grad.iter_mut().zip(&g) {
+                *a += w * b;
+            }
+        }
+    }
+    value
+}
+
+/// Model value and its gradient with respect to the parameters.
+fn model_and_grad(model: PsfModel, p: &[f64], x: f64, y: f64, grad: &mut [f64]) -> f64 {
+    let (sky, amp, x0, y0, qa, qb, qc) = (p[0], p[1], p[2], p[3], p[4], p[5], p[6]);
+    let dx = x - x0;
+    let dy = y - y0;
+    let u = qa * dx * dx + 2.0 * qb * dx * dy + qc * dy * dy;
+    let (shape, dm_du) = match model {
+        PsfModel::Gaussian => {
+            let e = (-0.5 * u).exp();
+            (e, -0.5 * amp * e)
+        }
+        PsfModel::Moffat => {
+            let beta = p[7];
+            let l = (1.0 + u).ln();
+            let s = (-beta * l).exp();
+            grad[7] = -amp * s * l;
+            (s, -amp * beta * s / (1.0 + u))
+        }
+    };
+    grad[0] = 1.0;
+    grad[1] = shape;
+    grad[2] = dm_du * (-2.0 * (qa * dx + qb * dy));
+    grad[3] = dm_du * (-2.0 * (qb * dx + qc * dy));
+    grad[4] = dm_du * dx * dx;
+    grad[5] = dm_du * 2.0 * dx * dy;
+    grad[6] = dm_du * dy * dy;
+    sky + amp * shape
+}
+
+fn allowed(model: PsfModel, p: &[f64], stamp: &Stamp) -> bool {
+    let (amp, x0, y0, qa, qb, qc) = (p[1], p[2], p[3], p[4], p[5], p[6]);
+    if !p.iter().all(|v| v.is_finite()) || amp <= 0.0 || qa <= 0.0 || qc <= 0.0 {
+        return false;
+    }
+    if qa * qc - qb * qb <= 0.0 {
+        return false;
+    }
+    if x0 < stamp.x_range.0 || x0 > stamp.x_range.1 || y0 < stamp.y_range.0 || y0 > stamp.y_range.1 {
+        return false;
+    }
+    let k = match model {
+        PsfModel::Gaussian => 2.0 * std::f64::consts::LN_2,
+        PsfModel::Moffat => {
+            let beta = p[7];
+            if !(1.01..=60.0).contains(&beta) {
+                return false;
+            }
+            2f64.powf(1.0 / beta) - 1.0
+        }
+    };
+    let mean = 0.5 * (qa + qc);
+    let d = (0.25 * (qa - qc).powi(2) + qb * qb).sqrt();
+    let (big, small) = (mean + d, mean - d);
+    let minor = 2.0 * (k / big).sqrt();
+    let major = 2.0 * (k / small).sqrt();
+    let span = (stamp.x_range.1 - stamp.x_range.0).max(stamp.y_range.1 - stamp.y_range.0);
+    // Narrower than half a pixel is no longer a width the pixels can show; wider than
+    // twice the stamp is no longer constrained by it.
+    minor >= 0.5 && major <= 2.0 * span.max(1.0)
+}
+
+fn fit(stamp: &Stamp, model: PsfModel, p0: &[f64]) -> Option<PsfFit> {
+    let np = p0.len();
+    let n = stamp.v.len();
+    if n <= np + 2 {
+        return None;
+    }
+    let mut p = [0.0; MAX_PARAMS];
+    p[..np].copy_from_slice(p0);
+    if !allowed(model, &p[..np], stamp) {
+        return None;
+    }
+    let mut grad = [0.0; MAX_PARAMS];
+    let evaluate = |p: &[f64], grad: &mut [f64; MAX_PARAMS], build: bool| {
+        let mut jtj = [[0.0; MAX_PARAMS]; MAX_PARAMS];
+        let mut jtr = [0.0; MAX_PARAMS];
+        let mut ssr = 0.0;
+        for i in 0..n {
+            let m = pixel_model(model, p, stamp.x[i], stamp.y[i], stamp.subsample, grad);
+            let r = stamp.v[i] - m;
+            ssr += r * r;
+            if build {
+                for a in 0..np {
+                    jtr[a] += grad[a] * r;
+                    for b in a..np {
+                        jtj[a][b] += grad[a] * grad[b];
+                    }
+                }
+            }
+        }
+        for a in 0..np {
+            for b in 0..a {
+                jtj[a][b] = jtj[b][a];
+            }
+        }
+        (ssr, jtj, jtr)
+    };
+    let (mut ssr, mut jtj, mut jtr) = evaluate(&p[..np], &mut grad, true);
+    let mut lambda = 1e-3;
+    let mut converged = false;
+    for _ in 0..100 {
+        let mut a = jtj;
+        for i in 0..np {
+            a[i][i] += lambda * jtj[i][i].max(1e-12);
+        }
+        let Some(step) = solve(&a, &jtr, np) else {
+            lambda *= 10.0;
+            if lambda > 1e12 {
+                break;
+            }
+            continue;
+        };
+        let mut trial = p;
+        for i in 0..np {
+            trial[i] += step[i];
+        }
+        let ok = allowed(model, &trial[..np], stamp);
+        let trial_ssr = if ok {
+            evaluate(&trial[..np], &mut grad, false).0
+        } else {
+            f64::INFINITY
+        };
+        if trial_ssr < ssr {
+            let improvement = (ssr - trial_ssr) / ssr.max(1e-300);
+            p = trial;
+            let (s, j, r) = evaluate(&p[..np], &mut grad, true);
+            ssr = s;
+            jtj = j;
+            jtr = r;
+            lambda = (lambda / 3.0).max(1e-9);
+            if improvement < 1e-9 {
+                converged = true;
+                break;
+            }
+        } else {
+            lambda *= 4.0;
+            if lambda > 1e10 {
+                // No downhill step left: at a minimum (or a bound).
+                converged = true;
+                break;
+            }
+        }
+    }
+    if !converged && ssr.is_finite() {
+        converged = true; // iteration cap reached with a valid, improved solution
+    }
+    if !converged {
+        return None;
+    }
+    // Covariance by the heteroscedasticity-consistent "sandwich" estimator of White
+    // (1980, Econometrica 48, 817): (JᵀJ)⁻¹ (Σ rᵢ² jᵢ jᵢᵀ) (JᵀJ)⁻¹.
+    // Pixel noise grows with the star's own light (Poisson), so one variance for all
+    // pixels would understate the errors that matter most, those of the core.
+    let inv = invert(&jtj, np)?;
+    let mut meat = [[0.0; MAX_PARAMS]; MAX_PARAMS];
+    for i in 0..n {
+        let m = pixel_model(model, &p[..np], stamp.x[i], stamp.y[i], stamp.subsample, &mut grad);
+        // Leverage h = jᵀ(JᵀJ)⁻¹j: the core pixels that pin the shape down have high
+        // leverage and small residuals; the HC3 form of MacKinnon & White (1985, J.
+        // Econometrics 29, 305) divides their squared residuals by (1 − h)².
+        let mut lev = 0.0;
+        for a in 0..np {
+            for b in 0..np {
+                lev += grad[a] * inv[a][b] * grad[b];
+            }
+        }
+        let r2 = (stamp.v[i] - m).powi(2) / (1.0 - lev.min(0.99)).powi(2);
+        for a in 0..np {
+            for b in a..np {
+                meat[a][b] += r2 * grad[a] * grad[b];
+            }
+        }
+    }
+    for a in 0..np {
+        for b in 0..a {
+            meat[a][b] = meat[b][a];
+        }
+    }
+    let scale = 1.0;
+    let cov = |i: usize, j: usize| {
+        let mut s = 0.0;
+        for a in 0..np {
+            for b in 0..np {
+                s += inv[i][a] * meat[a][b] * inv[b][j];
+            }
+        }
+        s * scale
+    };
+    let mut q_cov = [[0.0; 3]; 3];
+    for i in 0..3 {
+        for j in 0..3 {
+            q_cov[i][j] = cov(4 + i, 4 + j);
+        }
+    }
+    let mut fit = PsfFit {
+        model,
+        sky: p[0],
+        amplitude: p[1],
+        x0: p[2],
+        y0: p[3],
+        q: [p[4], p[5], p[6]],
+        beta: if model == PsfModel::Moffat { p[7] } else { f64::INFINITY },
+        ssr,
+        n,
+        q_cov,
+        pos_err: (cov(2, 2).max(0.0).sqrt(), cov(3, 3).max(0.0).sqrt()),
+        sampled_axes: (0.0, 0.0),
+    };
+    fit.sampled_axes = if stamp.subsample > 1 {
+        fit.pixel_averaged_axes()
+    } else {
+        fit.model_axes()
+    };
+    Some(fit)
+}
+
+/// Solve A·x = b for a small symmetric positive-definite A by Cholesky decomposition.
+fn solve(a: &[[f64; MAX_PARAMS]; MAX_PARAMS], b: &[f64; MAX_PARAMS], n: usize) -> Option<[f64; MAX_PARAMS]> {
+    let mut l = [[0.0; MAX_PARAMS]; MAX_PARAMS];
+    for i in 0..n {
+        for j in 0..=i {
+            let mut s = a[i][j];
+            for k in 0..j {
+                s -= l[i][k] * l[j][k];
+            }
+            if i == j {
+                if s <= 0.0 || !s.is_finite() {
+                    return None;
+                }
+                l[i][i] = s.sqrt();
+            } else {
+                l[i][j] = s / l[j][j];
+            }
+        }
+    }
+    let mut y = [0.0; MAX_PARAMS];
+    for i in 0..n {
+        let mut s = b[i];
+        for k in 0..i {
+            s -= l[i][k] * y[k];
+        }
+        y[i] = s / l[i][i];
+    }
+    let mut x = [0.0; MAX_PARAMS];
+    for i in (0..n).rev() {
+        let mut s = y[i];
+        for k in i + 1..n {
+            s -= l[k][i] * x[k];
+        }
+        x[i] = s / l[i][i];
+    }
+    Some(x)
+}
+
+fn invert(a: &[[f64; MAX_PARAMS]; MAX_PARAMS], n: usize) -> Option<[[f64; MAX_PARAMS]; MAX_PARAMS]> {
+    let mut inv = [[0.0; MAX_PARAMS]; MAX_PARAMS];
+    for col in 0..n {
+        let mut e = [0.0; MAX_PARAMS];
+        e[col] = 1.0;
+        let x = solve(a, &e, n)?;
+        for row in 0..n {
+            inv[row][col] = x[row];
+        }
+    }
+    Some(inv)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn stamp_from(f: impl Fn(f64, f64) -> f64, half: i64) -> Stamp {
+        let mut s = Stamp {
+            x_range: (0.0, (2 * half) as f64),
+            y_range: (0.0, (2 * half) as f64),
+            ..Default::default()
+        };
+        for y in 0..=2 * half {
+            for x in 0..=2 * half {
+                s.x.push(x as f64);
+                s.y.push(y as f64);
+                s.v.push(f(x as f64, y as f64));
+            }
+        }
+        s
+    }
+
+    #[test]
+    fn gaussian_fwhm_is_2_sqrt_2ln2_sigma() {
+        // Analytic: FWHM = 2·sqrt(2 ln 2)·σ for a Gaussian.
+        let sigma = 1.7;
+        let s = stamp_from(
+            |x, y| 10.0 + 500.0 * (-((x - 10.3).powi(2) + (y - 9.8).powi(2)) / (2.0 * sigma * sigma)).exp(),
+            10,
+        );
+        let g = Guess { sky: 10.0, amplitude: 400.0, x0: 10.0, y0: 10.0, fwhm: 3.0 };
+        let fit = fit_gaussian(&s, g).unwrap();
+        let expected = 2.0 * (2.0 * std::f64::consts::LN_2).sqrt() * sigma;
+        assert!((fit.fwhm() - expected).abs() < 1e-6, "{} vs {expected}", fit.fwhm());
+        assert!((fit.x0 - 10.3).abs() < 1e-8 && (fit.y0 - 9.8).abs() < 1e-8);
+        assert!(fit.eccentricity_raw() < 1e-3);
+        // Flux: 2π A σ² (analytic integral).
+        let flux = 2.0 * std::f64::consts::PI * 500.0 * sigma * sigma;
+        assert!((fit.total_flux() - flux).abs() / flux < 1e-6);
+    }
+
+    #[test]
+    fn moffat_fwhm_is_2_alpha_sqrt_2_pow_inv_beta_minus_1() {
+        // Moffat (1969): FWHM = 2α·sqrt(2^(1/β) − 1); elongated along 30°.
+        let (alpha_major, alpha_minor, beta, th) = (3.0f64, 2.0f64, 3.2f64, 30f64.to_radians());
+        let (c, s) = (th.cos(), th.sin());
+        let f = |x: f64, y: f64| {
+            let (dx, dy) = (x - 12.2, y - 11.6);
+            let u = (c * dx + s * dy) / alpha_major;
+            let v = (-s * dx + c * dy) / alpha_minor;
+            5.0 + 800.0 * (1.0 + u * u + v * v).powf(-beta)
+        };
+        let s = stamp_from(f, 12);
+        let g = fit_gaussian(&s, Guess { sky: 5.0, amplitude: 700.0, x0: 12.0, y0: 12.0, fwhm: 4.0 }).unwrap();
+        let m = fit_moffat(&s, &g).unwrap();
+        assert!(m.ssr < g.ssr);
+        let k = (2f64.powf(1.0 / beta) - 1.0).sqrt();
+        let (maj, min) = m.fwhm_axes();
+        assert!((maj - 2.0 * alpha_major * k).abs() < 1e-5, "{maj}");
+        assert!((min - 2.0 * alpha_minor * k).abs() < 1e-5, "{min}");
+        assert!((m.beta - beta).abs() < 1e-5);
+        assert!((m.angle_deg() - 30.0).abs() < 1e-4, "{}", m.angle_deg());
+        let ecc = (1.0 - (alpha_minor / alpha_major).powi(2)).sqrt();
+        assert!((m.eccentricity_raw() - ecc).abs() < 1e-6);
+    }
+}
