@@ -15,7 +15,11 @@ use subwatch::pipeline::{measure_file, MeasureOptions};
 use subwatch::sim::{render, PsfShape, SimParams};
 
 #[derive(Parser)]
-#[command(name = "subwatch", version, about = "Grades every sub of an imaging night as it lands and flags what is unusual.")]
+#[command(
+    name = "subwatch",
+    version,
+    about = "Grades every sub of an imaging night as it lands and flags what is unusual."
+)]
 struct Cli {
     #[command(subcommand)]
     command: Command,
@@ -122,7 +126,14 @@ fn main() -> ExitCode {
 
 fn run(cli: Cli) -> Result<ExitCode> {
     match cli.command {
-        Command::Measure { json, stars, max_pixels, focal_length_mm, pixel_size_um, files } => {
+        Command::Measure {
+            json,
+            stars,
+            max_pixels,
+            focal_length_mm,
+            pixel_size_um,
+            files,
+        } => {
             let mut opts = MeasureOptions {
                 focal_length_mm,
                 pixel_size_um,
@@ -152,7 +163,10 @@ fn run(cli: Cli) -> Result<ExitCode> {
             float,
         } => {
             let bayer = match bayer {
-                Some(name) => Some(BayerPattern::parse(&name).with_context(|| format!("unknown Bayer pattern {name:?}"))?),
+                Some(name) => Some(
+                    BayerPattern::parse(&name)
+                        .with_context(|| format!("unknown Bayer pattern {name:?}"))?,
+                ),
                 None => None,
             };
             let params = SimParams {
@@ -176,23 +190,37 @@ fn run(cli: Cli) -> Result<ExitCode> {
                 ..Default::default()
             };
             let (pixels, keys, t) = render(&params);
-            let encoding = if float { Encoding::Float32 } else { Encoding::Unsigned16 };
+            let encoding = if float {
+                Encoding::Float32
+            } else {
+                Encoding::Unsigned16
+            };
             write_frame(&out, &pixels, encoding, &keys)?;
             if let Some(path) = truth {
                 let text = serde_json::to_string_pretty(&t)?;
-                std::fs::write(&path, text).with_context(|| format!("writing {}", path.display()))?;
+                std::fs::write(&path, text)
+                    .with_context(|| format!("writing {}", path.display()))?;
             }
             Ok(ExitCode::SUCCESS)
         }
     }
 }
 
-fn measure_command(files: &[PathBuf], opts: &MeasureOptions, json: bool, with_stars: bool) -> Result<ExitCode> {
+fn measure_command(
+    files: &[PathBuf],
+    opts: &MeasureOptions,
+    json: bool,
+    with_stars: bool,
+) -> Result<ExitCode> {
     let stdout = std::io::stdout();
     let mut out = stdout.lock();
     let mut failed = false;
     if !json {
-        writeln!(out, "{:<40} {:>6} {:>7} {:>7} {:>6} {:>9} {:>8} {:>7}", "file", "stars", "fwhm_px", "fwhm_\"", "ecc", "bkg_adu", "noise", "snr")?;
+        writeln!(
+            out,
+            "{:<40} {:>6} {:>7} {:>7} {:>6} {:>9} {:>8} {:>7}",
+            "file", "stars", "fwhm_px", "fwhm_\"", "ecc", "bkg_adu", "noise", "snr"
+        )?;
     }
     for path in files {
         let shown = path.display().to_string();
@@ -204,11 +232,20 @@ fn measure_command(files: &[PathBuf], opts: &MeasureOptions, json: bool, with_st
                 error: None,
                 metrics: Some(Metrics::new(&m.measurement, m.plate_scale)),
                 header: Some(HeaderFacts::new(&m.frame_header)),
-                stars: with_stars.then(|| m.measurement.stars.iter().map(|s| StarRecord::new(s, &m.frame_header)).collect()),
+                stars: with_stars.then(|| {
+                    m.measurement
+                        .stars
+                        .iter()
+                        .map(|s| StarRecord::new(s, &m.frame_header))
+                        .collect()
+                }),
                 rejected: with_stars.then(|| m.measurement.rejected.clone()),
             },
             Ok(Err(e)) => MeasureRecord::error(&shown, e.reason()),
-            Err(_) => MeasureRecord::error(&shown, "internal error while measuring (a bug; please report it)".into()),
+            Err(_) => MeasureRecord::error(
+                &shown,
+                "internal error while measuring (a bug; please report it)".into(),
+            ),
         };
         if record.status != "ok" {
             failed = true;
@@ -221,7 +258,11 @@ fn measure_command(files: &[PathBuf], opts: &MeasureOptions, json: bool, with_st
             print_row(&mut out, &record)?;
         }
     }
-    Ok(if failed { ExitCode::from(1) } else { ExitCode::SUCCESS })
+    Ok(if failed {
+        ExitCode::from(1)
+    } else {
+        ExitCode::SUCCESS
+    })
 }
 
 fn print_row(out: &mut impl Write, r: &MeasureRecord) -> Result<()> {
@@ -239,7 +280,12 @@ fn print_row(out: &mut impl Write, r: &MeasureRecord) -> Result<()> {
             m.noise_adu,
             opt(m.snr_median, 1)
         )?,
-        None => writeln!(out, "{:<40} error: {}", r.path, r.error.as_deref().unwrap_or("unknown"))?,
+        None => writeln!(
+            out,
+            "{:<40} error: {}",
+            r.path,
+            r.error.as_deref().unwrap_or("unknown")
+        )?,
     }
     Ok(())
 }

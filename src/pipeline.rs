@@ -4,7 +4,9 @@
 use std::path::Path;
 
 use crate::frame::{read_frame, DecodeLimits, Frame, FrameError};
-use crate::measure::{measure_image, measure_mosaic, FrameMeasurement, MeasureError, MeasureParams};
+use crate::measure::{
+    measure_image, measure_mosaic, FrameMeasurement, MeasureError, MeasureParams,
+};
 
 /// Settings that come from the configuration rather than the file.
 #[derive(Debug, Clone, Copy, Default)]

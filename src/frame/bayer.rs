@@ -80,7 +80,10 @@ mod tests {
         assert_eq!(p.offsets(Channel::Red), vec![(0, 0)]);
         assert_eq!(p.offsets(Channel::Blue), vec![(1, 1)]);
         assert_eq!(p.offsets(Channel::Green), vec![(0, 1), (1, 0)]);
-        assert_eq!(BayerPattern::parse("GBRG").unwrap().offsets(Channel::Red), vec![(1, 0)]);
+        assert_eq!(
+            BayerPattern::parse("GBRG").unwrap().offsets(Channel::Red),
+            vec![(1, 0)]
+        );
         assert!(BayerPattern::parse("RGBG2").is_none());
         assert!(BayerPattern::parse("RRGB").is_none());
     }

@@ -178,7 +178,9 @@ pub fn decode(path: &Path, limits: DecodeLimits) -> Result<DecodedImage, FrameEr
             seen.push("empty image");
             continue;
         }
-        let pixels = (width as u64).checked_mul(height as u64).unwrap_or(u64::MAX);
+        let pixels = (width as u64)
+            .checked_mul(height as u64)
+            .unwrap_or(u64::MAX);
         if pixels > limits.max_pixels {
             return Err(fail(format!(
                 "image is {width} x {height} = {pixels} pixels, over the limit of {} (raise max_pixels if this is real)",

@@ -178,9 +178,7 @@ impl FrameHeader {
         FrameHeader {
             date_obs,
             time_unix,
-            exposure_s: cards
-                .number("EXPTIME")
-                .or_else(|| cards.number("EXPOSURE")),
+            exposure_s: cards.number("EXPTIME").or_else(|| cards.number("EXPOSURE")),
             filter: cards.text("FILTER"),
             object: cards.text("OBJECT"),
             image_kind: cards
@@ -206,7 +204,11 @@ impl FrameHeader {
 
     /// Plate scale in arcsec per pixel: 206.265 × pixel size (µm) × binning / focal
     /// length (mm) (small-angle formula; common practice). `fallback_*` come from config.
-    pub fn plate_scale(&self, fallback_focal_mm: Option<f64>, fallback_pixel_um: Option<f64>) -> Option<f64> {
+    pub fn plate_scale(
+        &self,
+        fallback_focal_mm: Option<f64>,
+        fallback_pixel_um: Option<f64>,
+    ) -> Option<f64> {
         let pixel = self.pixel_size_um.or(fallback_pixel_um)?;
         let focal = self.focal_length_mm.or(fallback_focal_mm)?;
         let binning = self.x_binning.unwrap_or(1.0);
@@ -309,10 +311,22 @@ mod tests {
 
     #[test]
     fn parses_the_value_kinds_of_the_fits_standard() {
-        assert_eq!(card("OBJECT  = 'It''s M  '  / name").value, CardValue::Text("It's M".into()));
-        assert_eq!(card("SIMPLE  =                    T").value, CardValue::Logical(true));
-        assert_eq!(card("EXPTIME =                120.5 / s").value, CardValue::Number(120.5));
-        assert_eq!(card("CDELT1  =              1.5D-04").value, CardValue::Number(1.5e-4));
+        assert_eq!(
+            card("OBJECT  = 'It''s M  '  / name").value,
+            CardValue::Text("It's M".into())
+        );
+        assert_eq!(
+            card("SIMPLE  =                    T").value,
+            CardValue::Logical(true)
+        );
+        assert_eq!(
+            card("EXPTIME =                120.5 / s").value,
+            CardValue::Number(120.5)
+        );
+        assert_eq!(
+            card("CDELT1  =              1.5D-04").value,
+            CardValue::Number(1.5e-4)
+        );
         assert!(parse_card("COMMENT hello").is_none());
         assert_eq!(card("HIERARCH ESO DET GAIN = 2.5").key, "ESO DET GAIN");
     }

@@ -92,7 +92,10 @@ impl Wcs {
                 .any(|k| cards.card(k).is_some());
             let pc = if has_pc {
                 let g = |k: &str, d: f64| cards.number(k).unwrap_or(d);
-                [[g("PC1_1", 1.0), g("PC1_2", 0.0)], [g("PC2_1", 0.0), g("PC2_2", 1.0)]]
+                [
+                    [g("PC1_1", 1.0), g("PC1_2", 0.0)],
+                    [g("PC2_1", 0.0), g("PC2_2", 1.0)],
+                ]
             } else {
                 // CROTA2 (the AIPS convention, Greisen & Calabretta 2002 §6.1).
                 let rho = cards.number("CROTA2").unwrap_or(0.0).to_radians();
@@ -114,7 +117,11 @@ impl Wcs {
             // For zenithal projections with δ0 = θ0 = 90° the default is 180°.
             _ => 180.0,
         };
-        let sip = if c1.ends_with("-SIP") { read_sip(cards) } else { None };
+        let sip = if c1.ends_with("-SIP") {
+            read_sip(cards)
+        } else {
+            None
+        };
         Some(Wcs {
             crpix,
             crval,
@@ -191,7 +198,10 @@ fn native_to_celestial(phi: f64, theta: f64, crval: [f64; 2], lonpole: f64) -> (
     let y = -th.cos() * dphi.sin();
     let x = th.sin() * dp.cos() - th.cos() * dp.sin() * dphi.cos();
     let alpha = ap + y.atan2(x);
-    (alpha.to_degrees(), sin_d.clamp(-1.0, 1.0).asin().to_degrees())
+    (
+        alpha.to_degrees(),
+        sin_d.clamp(-1.0, 1.0).asin().to_degrees(),
+    )
 }
 
 /// C&G 2002 eq. 5; returns (φ, θ) in radians.
@@ -240,7 +250,12 @@ mod tests {
     #[test]
     fn reference_pixel_maps_to_reference_value() {
         let mut c = BASE.to_vec();
-        c.extend(["CD1_1 = -0.0004", "CD1_2 = 0.0", "CD2_1 = 0.0", "CD2_2 = 0.0004"]);
+        c.extend([
+            "CD1_1 = -0.0004",
+            "CD1_2 = 0.0",
+            "CD2_1 = 0.0",
+            "CD2_2 = 0.0004",
+        ]);
         let w = wcs(&c);
         let (ra, dec) = w.pixel_to_sky(512.5, 512.5);
         assert!((ra - 84.2).abs() < 1e-12 && (dec - 27.6).abs() < 1e-12);
@@ -274,7 +289,10 @@ mod tests {
         for &(x, y) in &[(1.0, 1.0), (2000.0, 50.0), (1500.0, 3000.0)] {
             let (ra, dec) = w.pixel_to_sky(x, y);
             let (x2, y2) = w.sky_to_pixel(ra, dec).unwrap();
-            assert!((x - x2).abs() < 1e-7 && (y - y2).abs() < 1e-7, "{x},{y} -> {x2},{y2}");
+            assert!(
+                (x - x2).abs() < 1e-7 && (y - y2).abs() < 1e-7,
+                "{x},{y} -> {x2},{y2}"
+            );
         }
     }
 

@@ -57,7 +57,13 @@ pub fn write_frame(
         Encoding::Unsigned16 => {
             let data: Vec<u16> = flat
                 .iter()
-                .map(|&v| if v.is_finite() { v.round().clamp(0.0, 65535.0) as u16 } else { 0 })
+                .map(|&v| {
+                    if v.is_finite() {
+                        v.round().clamp(0.0, 65535.0) as u16
+                    } else {
+                        0
+                    }
+                })
                 .collect();
             hdu.write_image(&mut file, &data)
         }

@@ -278,7 +278,9 @@ impl<'a> Spline<'a> {
         let h = t[j + 1] - t[j];
         let a = (t[j + 1] - x) / h;
         let b = 1.0 - a;
-        a * v[j] + b * v[j + 1] + ((a * a * a - a) * m[j] + (b * b * b - b) * m[j + 1]) * h * h / 6.0
+        a * v[j]
+            + b * v[j + 1]
+            + ((a * a * a - a) * m[j] + (b * b * b - b) * m[j + 1]) * h * h / 6.0
     }
 }
 
@@ -311,7 +313,11 @@ mod tests {
             map.level_row(y, &mut row);
             for x in [0, 250, 499] {
                 let truth = 1000.0 + 0.5 * x as f64 - 0.25 * y as f64;
-                assert!((row[x] as f64 - truth).abs() < 0.6, "({x},{y}) {} vs {truth}", row[x]);
+                assert!(
+                    (row[x] as f64 - truth).abs() < 0.6,
+                    "({x},{y}) {} vs {truth}",
+                    row[x]
+                );
             }
         }
     }

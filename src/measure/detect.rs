@@ -132,19 +132,16 @@ pub fn detect(
 
     // 1 = above threshold, 2 = above and already assigned to a component.
     let mut above = vec![0u8; h * w];
-    above
-        .par_chunks_mut(w)
-        .enumerate()
-        .for_each(|(y, row)| {
-            let mut rms = vec![0.0f32; w];
-            background.rms_row(y, &mut rms);
-            for x in 0..w {
-                let sigma_f = f64::from(rms[x]) * noise_gain;
-                if sigma_f > 0.0 && f64::from(f[y * w + x]) > params.sigma * sigma_f {
-                    row[x] = 1;
-                }
+    above.par_chunks_mut(w).enumerate().for_each(|(y, row)| {
+        let mut rms = vec![0.0f32; w];
+        background.rms_row(y, &mut rms);
+        for x in 0..w {
+            let sigma_f = f64::from(rms[x]) * noise_gain;
+            if sigma_f > 0.0 && f64::from(f[y * w + x]) > params.sigma * sigma_f {
+                row[x] = 1;
             }
-        });
+        }
+    });
     let noise_at = |x: usize, y: usize| background.rms_at(x as f64, y as f64) * noise_gain;
 
     let mut candidates = Vec::new();

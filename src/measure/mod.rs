@@ -32,6 +32,9 @@ pub struct MeasureParams {
     pub saturation_adu: Option<f64>,
     /// Stars below this SNR do not vote on the frame's FWHM and eccentricity.
     pub min_shape_snr: f64,
+    /// Detections below this SNR are not reported as stars: their positions and shapes
+    /// are mostly noise.
+    pub min_snr: f64,
 }
 
 impl Default for MeasureParams {
@@ -42,6 +45,7 @@ impl Default for MeasureParams {
             gain_e_per_adu: None,
             saturation_adu: None,
             min_shape_snr: 20.0,
+            min_snr: 7.0,
         }
     }
 }
@@ -76,6 +80,9 @@ pub struct Star {
     /// Highest background-subtracted pixel, ADU.
     pub peak_adu: f64,
     pub blended: bool,
+    /// Shape components (see `PsfFit::shape_components`).
+    #[serde(skip)]
+    pub shape_e: (f64, f64),
     /// [r, g, b] fluxes for one-shot-colour frames.
     #[serde(skip_serializing_if = "Option::is_none")]
     pub rgb: Option<[f64; 3]>,
@@ -91,6 +98,8 @@ pub enum RejectKind {
     EdgeClipped,
     /// The PSF fit failed or ran away from the detection.
     Unfit,
+    /// Much wider than the frame's stars.
+    Extended,
 }
 
 #[derive(Debug, Clone, Serialize)]
@@ -145,6 +154,29 @@ impl FrameMeasurement {
     }
 }
 
+/// Median of values with weights: the smallest value at which the cumulative weight
+/// reaches half the total.
+fn weighted_median(pairs: &[(f64, f64)]) -> Option<f64> {
+    let mut v: Vec<(f64, f64)> = pairs
+        .iter()
+        .copied()
+        .filter(|(x, w)| x.is_finite() && *w > 0.0)
+        .collect();
+    if v.is_empty() {
+        return None;
+    }
+    v.sort_by(|a, b| a.0.total_cmp(&b.0));
+    let total: f64 = v.iter().map(|p| p.1).sum();
+    let mut acc = 0.0;
+    for &(x, w) in &v {
+        acc += w;
+        if acc >= 0.5 * total {
+            return Some(x);
+        }
+    }
+    v.last().map(|p| p.0)
+}
+
 /// Saturation level from a plateau at the image maximum (at least 3 pixels share it).
 fn plateau_saturation(pixels: &Array2<f32>) -> Option<f64> {
     let max = pixels
@@ -162,21 +194,34 @@ fn plateau_saturation(pixels: &Array2<f32>) -> Option<f64> {
 
 /// Measure a single-channel image. Takes ownership so the background can be removed
 /// in place (memory is the limit on large frames).
-pub fn measure_image(mut pixels: Array2<f32>, params: &MeasureParams) -> Result<FrameMeasurement, MeasureError> {
+pub fn measure_image(
+    mut pixels: Array2<f32>,
+    params: &MeasureParams,
+) -> Result<FrameMeasurement, MeasureError> {
     let (h, w) = pixels.dim();
     if w < 8 || h < 8 {
-        return Err(MeasureError::TooSmall { width: w, height: h });
+        return Err(MeasureError::TooSmall {
+            width: w,
+            height: h,
+        });
     }
     if !pixels.iter().any(|v| v.is_finite()) {
         return Err(MeasureError::NoValidPixels);
     }
-    let saturation = params.saturation_adu.or_else(|| plateau_saturation(&pixels));
-    let mut bkg = BackgroundMap::estimate(&pixels, None, params.background).ok_or(MeasureError::NoValidPixels)?;
+    let saturation = params
+        .saturation_adu
+        .or_else(|| plateau_saturation(&pixels));
+    let mut bkg = BackgroundMap::estimate(&pixels, None, params.background)
+        .ok_or(MeasureError::NoValidPixels)?;
     subtract_rows(&mut pixels, &bkg, None);
     if bkg.median_rms() <= 0.0 {
         // A constant image (or a fully saturated one): nothing to detect.
         return Ok(FrameMeasurement::empty(w, h, bkg.median_level(), 0.0));
     }
+
+    // Hot pixels and cosmic-ray hits are taken out before detection, so their filtered
+    // wings cannot swallow a star nearby; they are reported as sharp detections.
+    let cleaned = clean_sharp_pixels(&mut pixels, &bkg);
 
     // First detection with the configured kernel; re-detect with a kernel matched to
     // the stars when the frame's PSF turns out much wider or narrower.
@@ -187,7 +232,8 @@ pub fn measure_image(mut pixels: Array2<f32>, params: &MeasureParams) -> Result<
     if (fwhm_guess / dparams.kernel_fwhm - 1.0).abs() > 0.35 {
         dparams.kernel_fwhm = fwhm_guess.clamp(1.5, 15.0);
         candidates = detect(&pixels, &bkg, &dparams);
-        fwhm_guess = estimate_fwhm(&pixels, &candidates, &bkg, saturation, fwhm_guess).unwrap_or(fwhm_guess);
+        fwhm_guess =
+            estimate_fwhm(&pixels, &candidates, &bkg, saturation, fwhm_guess).unwrap_or(fwhm_guess);
     }
 
     // Mask the sources and re-estimate the sky without them (crowded fields), then the
@@ -206,7 +252,8 @@ pub fn measure_image(mut pixels: Array2<f32>, params: &MeasureParams) -> Result<
     let noise = robust_noise(&pixels, &mask).unwrap_or_else(|| bkg.median_rms());
     let background_adu = bkg.median_level();
 
-    let sat_residual = |x: usize, y: usize| saturation.map(|s| s - bkg.level_at(x as f64, y as f64));
+    let sat_residual =
+        |x: usize, y: usize| saturation.map(|s| s - bkg.level_at(x as f64, y as f64));
     let grid = CandidateGrid::new(&candidates, w, h, 32);
     let half = ((2.0 * fwhm_guess + 2.0).ceil() as usize).clamp(4, 30);
     // A star whose centre lies half a FWHM inside the frame still shows its core.
@@ -218,7 +265,19 @@ pub fn measure_image(mut pixels: Array2<f32>, params: &MeasureParams) -> Result<
         .par_iter()
         .enumerate()
         .map(|(i, c)| {
-            measure_candidate(&pixels, c, i, &candidates, &grid, half, edge_margin, noise, sat_residual(c.x, c.y), fwhm_guess, subsample)
+            measure_candidate(
+                &pixels,
+                c,
+                i,
+                &candidates,
+                &grid,
+                half,
+                edge_margin,
+                noise,
+                sat_residual(c.x, c.y),
+                fwhm_guess,
+                subsample,
+            )
         })
         .collect();
 
@@ -233,7 +292,9 @@ pub fn measure_image(mut pixels: Array2<f32>, params: &MeasureParams) -> Result<
         &outcomes
             .iter()
             .filter_map(|o| match o {
-                Outcome::Fitted(f) if !f.blended && f.fit.model_axes().1 >= 1.5 * floor => Some(f.fit.model_axes().1),
+                Outcome::Fitted(f) if !f.blended && f.fit.model_axes().1 >= 1.5 * floor => {
+                    Some(f.fit.model_axes().1)
+                }
                 _ => None,
             })
             .collect::<Vec<_>>(),
@@ -244,7 +305,9 @@ pub fn measure_image(mut pixels: Array2<f32>, params: &MeasureParams) -> Result<
         &outcomes
             .iter()
             .filter_map(|o| match o {
-                Outcome::Fitted(f) if !f.blended && f.fit.model_axes().1 >= sharp_limit => Some(f.fit.fwhm()),
+                Outcome::Fitted(f) if !f.blended && f.fit.model_axes().1 >= sharp_limit => {
+                    Some(f.fit.fwhm())
+                }
                 _ => None,
             })
             .collect::<Vec<_>>(),
@@ -252,7 +315,7 @@ pub fn measure_image(mut pixels: Array2<f32>, params: &MeasureParams) -> Result<
     .unwrap_or(fwhm_guess);
 
     let mut fitted = Vec::new();
-    let mut rejected = Vec::new();
+    let mut rejected = cleaned;
     for o in outcomes {
         match o {
             Outcome::Fitted(f) if f.fit.model_axes().1 < sharp_limit => rejected.push(Rejected {
@@ -271,6 +334,13 @@ pub fn measure_image(mut pixels: Array2<f32>, params: &MeasureParams) -> Result<
                     peak_adu: f.peak,
                 })
             }
+            // Much wider than the stars: a galaxy, a blend or noise around a faint star.
+            Outcome::Fitted(f) if f.fit.fwhm() > 2.0 * typical_fwhm => rejected.push(Rejected {
+                x: f.fit.x0 + 1.0,
+                y: f.fit.y0 + 1.0,
+                kind: RejectKind::Extended,
+                peak_adu: f.peak,
+            }),
             Outcome::Fitted(f) => fitted.push(f),
             Outcome::Rejected(r) => rejected.push(r),
         }
@@ -278,9 +348,16 @@ pub fn measure_image(mut pixels: Array2<f32>, params: &MeasureParams) -> Result<
 
     // The frame's FWHM from the stars fit well enough to vote; then photometry with an
     // aperture scaled to it.
-    let frame_fwhm = median_f64(&fitted.iter().filter(|f| !f.blended).map(|f| f.fit.fwhm()).collect::<Vec<_>>())
-        .unwrap_or(fwhm_guess);
+    let frame_fwhm = median_f64(
+        &fitted
+            .iter()
+            .filter(|f| !f.blended)
+            .map(|f| f.fit.fwhm())
+            .collect::<Vec<_>>(),
+    )
+    .unwrap_or(fwhm_guess);
     let r_ap = (2.5 * frame_fwhm).max(3.0);
+    let r_snr = frame_fwhm.max(1.5);
     let r_in = r_ap + 2.0;
     let r_out = r_in + (1.5 * frame_fwhm).max(6.0);
     let gain = params.gain_e_per_adu;
@@ -289,7 +366,13 @@ pub fn measure_image(mut pixels: Array2<f32>, params: &MeasureParams) -> Result<
         .filter_map(|f| {
             let (cx, cy) = (f.fit.x0, f.fit.y0);
             let ap = photometry::aperture(&pixels, cx, cy, r_ap, r_in, r_out)?;
-            let snr = photometry::ccd_snr(ap.flux, ap.n_pix, ap.n_sky, noise, gain);
+            // SNR in an aperture of radius 1 × FWHM, near the radius that maximises it
+            // for a faint star (Howell 1989, PASP 101, 616), with the same local sky.
+            let core = photometry::aperture(&pixels, cx, cy, r_snr, r_in, r_out)?;
+            let snr = photometry::ccd_snr(core.flux, core.n_pix, core.n_sky, noise, gain);
+            if snr < params.min_snr {
+                return None;
+            }
             let hfr = photometry::half_flux_radius(&pixels, cx, cy, r_ap, ap.local_sky);
             let (major, minor) = f.fit.fwhm_axes();
             Some(Star {
@@ -308,6 +391,7 @@ pub fn measure_image(mut pixels: Array2<f32>, params: &MeasureParams) -> Result<
                 moffat_beta: (f.fit.model == PsfModel::Moffat).then_some(f.fit.beta),
                 peak_adu: f.peak,
                 blended: f.blended,
+                shape_e: f.fit.shape_components(),
                 rgb: None,
             })
         })
@@ -321,13 +405,31 @@ pub fn measure_image(mut pixels: Array2<f32>, params: &MeasureParams) -> Result<
     if shape.len() < 5 {
         shape = stars.iter().filter(|s| !s.blended).collect();
     }
-    let med = |f: &dyn Fn(&Star) -> Option<f64>| median_f64(&shape.iter().filter_map(|s| f(s)).collect::<Vec<_>>());
+    let med = |f: &dyn Fn(&Star) -> Option<f64>| {
+        median_f64(&shape.iter().filter_map(|s| f(s)).collect::<Vec<_>>())
+    };
     let fwhm_px = med(&|s| Some(s.fwhm_px));
-    let eccentricity = med(&|s| Some(s.eccentricity));
+    // Near round, one star's eccentricity is dominated by noise (it grows as the
+    // square root of the noise in its shape, so a round star at SNR 100 reads about
+    // 0.2 before correction). Each star's value is corrected for that bias (see
+    // `PsfFit::eccentricity`), and the median is weighted by SNR² (the inverse of the
+    // shape variance; capped at SNR 300 so a few bright stars cannot outvote the rest).
+    let eccentricity = weighted_median(
+        &shape
+            .iter()
+            .map(|s| (s.eccentricity, s.snr.min(300.0).powi(2)))
+            .collect::<Vec<_>>(),
+    );
     let hfr_px = med(&|s| s.hfr_px);
     let snr_median = median_f64(&stars.iter().map(|s| s.snr).collect::<Vec<_>>());
-    let saturated_count = rejected.iter().filter(|r| r.kind == RejectKind::Saturated).count();
-    let sharp_count = rejected.iter().filter(|r| r.kind == RejectKind::Sharp).count();
+    let saturated_count = rejected
+        .iter()
+        .filter(|r| r.kind == RejectKind::Saturated)
+        .count();
+    let sharp_count = rejected
+        .iter()
+        .filter(|r| r.kind == RejectKind::Sharp)
+        .count();
     Ok(FrameMeasurement {
         width: w,
         height: h,
@@ -381,8 +483,15 @@ pub fn measure_mosaic(
         if residual_planes.len() == 3 {
             let mut rgb = [0.0; 3];
             for (k, plane) in residual_planes.iter().enumerate() {
-                rgb[k] = photometry::aperture(plane, cx, cy, r_ap, r_ap + 2.0, r_ap + 2.0 + (1.5 * frame_fwhm_sp).max(6.0))
-                    .map_or(f64::NAN, |a| a.flux);
+                rgb[k] = photometry::aperture(
+                    plane,
+                    cx,
+                    cy,
+                    r_ap,
+                    r_ap + 2.0,
+                    r_ap + 2.0 + (1.5 * frame_fwhm_sp).max(6.0),
+                )
+                .map_or(f64::NAN, |a| a.flux);
             }
             s.rgb = Some(rgb);
         }
@@ -448,6 +557,78 @@ fn add_rows(img: &mut Array2<f32>, bkg: &BackgroundMap) {
         });
 }
 
+/// Find pixels that stand far above the median of their eight neighbours (more than
+/// 6σ, and more than eight times that median): no pixel-sampled star is that sharp (the
+/// centre of a star of FWHM 1.3 px is about 5.5 times the median of its neighbours).
+/// This is the Laplacian-edge idea of van Dokkum (2001, PASP 113, 1420) in the form of
+/// a median contrast. Flagged pixels are replaced by that median, and each group of
+/// adjacent flagged pixels is returned once as a sharp rejection.
+fn clean_sharp_pixels(residual: &mut Array2<f32>, bkg: &BackgroundMap) -> Vec<Rejected> {
+    let (h, w) = residual.dim();
+    let mut flagged: Vec<(usize, usize, f32, f32)> = Vec::new();
+    for _pass in 0..2 {
+        let img = &*residual;
+        let found: Vec<(usize, usize, f32, f32)> = (1..h - 1)
+            .into_par_iter()
+            .flat_map_iter(|y| {
+                let mut rms = vec![0.0f32; w];
+                bkg.rms_row(y, &mut rms);
+                let mut out = Vec::new();
+                for x in 1..w - 1 {
+                    let v = img[(y, x)];
+                    let sigma = rms[x];
+                    if !(v > 6.0 * sigma) {
+                        continue;
+                    }
+                    let mut n = [0.0f32; 8];
+                    let mut k = 0;
+                    for dy in 0..3 {
+                        for dx in 0..3 {
+                            if dx == 1 && dy == 1 {
+                                continue;
+                            }
+                            let u = img[(y + dy - 1, x + dx - 1)];
+                            n[k] = if u.is_finite() { u } else { 0.0 };
+                            k += 1;
+                        }
+                    }
+                    n.sort_by(f32::total_cmp);
+                    let med = 0.5 * (n[3] + n[4]);
+                    if v - med > 6.0 * sigma && v > 8.0 * med.max(sigma) {
+                        out.push((x, y, v, med));
+                    }
+                }
+                out
+            })
+            .collect();
+        if found.is_empty() {
+            break;
+        }
+        for &(x, y, _, med) in &found {
+            residual[(y, x)] = med;
+        }
+        flagged.extend(found);
+    }
+    // Group adjacent pixels (a cosmic-ray track) into one rejection at the brightest.
+    flagged.sort_by(|a, b| b.2.total_cmp(&a.2));
+    let mut groups: Vec<Rejected> = Vec::new();
+    for &(x, y, v, _) in &flagged {
+        let (fx, fy) = (x as f64 + 1.0, y as f64 + 1.0);
+        if !groups
+            .iter()
+            .any(|g| (g.x - fx).abs() <= 3.0 && (g.y - fy).abs() <= 3.0)
+        {
+            groups.push(Rejected {
+                x: fx,
+                y: fy,
+                kind: RejectKind::Sharp,
+                peak_adu: f64::from(v),
+            });
+        }
+    }
+    groups
+}
+
 /// Circles around detections, wider for brighter ones, so their wings stay out of the
 /// sky statistics.
 fn source_mask(w: usize, h: usize, candidates: &[Candidate], fwhm: f64) -> Vec<bool> {
@@ -508,9 +689,17 @@ impl CandidateGrid {
 
     fn near(&self, x: usize, y: usize, radius: usize) -> impl Iterator<Item = usize> + '_ {
         let ny = self.buckets.len() / self.nx;
-        let (cx0, cx1) = (x.saturating_sub(radius) / self.cell, ((x + radius) / self.cell).min(self.nx - 1));
-        let (cy0, cy1) = (y.saturating_sub(radius) / self.cell, ((y + radius) / self.cell).min(ny - 1));
-        (cy0..=cy1).flat_map(move |cy| (cx0..=cx1).flat_map(move |cx| self.buckets[cy * self.nx + cx].iter().copied()))
+        let (cx0, cx1) = (
+            x.saturating_sub(radius) / self.cell,
+            ((x + radius) / self.cell).min(self.nx - 1),
+        );
+        let (cy0, cy1) = (
+            y.saturating_sub(radius) / self.cell,
+            ((y + radius) / self.cell).min(ny - 1),
+        );
+        (cy0..=cy1).flat_map(move |cy| {
+            (cx0..=cx1).flat_map(move |cx| self.buckets[cy * self.nx + cx].iter().copied())
+        })
     }
 }
 
@@ -580,7 +769,8 @@ fn measure_candidate(
         .iter()
         .filter_map(|&(dx, dy)| {
             let (x, y) = (px as i64 + dx, py as i64 + dy);
-            (x >= 0 && y >= 0 && (x as usize) < w && (y as usize) < h).then(|| f64::from(residual[(y as usize, x as usize)]))
+            (x >= 0 && y >= 0 && (x as usize) < w && (y as usize) < h)
+                .then(|| f64::from(residual[(y as usize, x as usize)]))
         })
         .filter(|v| v.is_finite())
         .collect();
@@ -589,7 +779,12 @@ fn measure_candidate(
         return reject(RejectKind::Sharp, px as f64, py as f64);
     }
     let (fx, fy) = (px as f64, py as f64);
-    if fx < edge_margin || fy < edge_margin || fx > (w - 1) as f64 - edge_margin || fy > (h - 1) as f64 - edge_margin {
+    // Distances to the physical edge of the sensor (pixel centres sit 0.5 px inside).
+    if fx + 0.5 < edge_margin
+        || fy + 0.5 < edge_margin
+        || (w as f64 - 0.5) - fx < edge_margin
+        || (h as f64 - 0.5) - fy < edge_margin
+    {
         return reject(RejectKind::EdgeClipped, fx, fy);
     }
 
@@ -615,7 +810,10 @@ fn measure_candidate(
             }
             let (xf, yf) = (x as f64, y as f64);
             let d_self = (xf - fx).powi(2) + (yf - fy).powi(2);
-            if others.iter().any(|&(ox, oy)| (xf - ox).powi(2) + (yf - oy).powi(2) < d_self) {
+            if others
+                .iter()
+                .any(|&(ox, oy)| (xf - ox).powi(2) + (yf - oy).powi(2) < d_self)
+            {
                 continue;
             }
             stamp.x.push(xf);
@@ -644,7 +842,10 @@ fn measure_candidate(
     Outcome::Fitted(FittedStar {
         fit,
         peak,
-        blended: c.blended || !others.iter().all(|&(ox, oy)| (ox - fx).hypot(oy - fy) > 1.5 * fwhm_guess + 2.0),
+        blended: c.blended
+            || !others
+                .iter()
+                .all(|&(ox, oy)| (ox - fx).hypot(oy - fy) > 1.5 * fwhm_guess + 2.0),
     })
 }
 
@@ -688,7 +889,13 @@ fn estimate_fwhm(
             let peak = f64::from(residual[(c.y, c.x)]);
             let fit = fit_gaussian(
                 &stamp,
-                Guess { sky: 0.0, amplitude: peak.max(1e-6), x0: c.x as f64, y0: c.y as f64, fwhm: start },
+                Guess {
+                    sky: 0.0,
+                    amplitude: peak.max(1e-6),
+                    x0: c.x as f64,
+                    y0: c.y as f64,
+                    fwhm: start,
+                },
             )?;
             let (_, minor) = fit.fwhm_axes();
             (minor >= 0.8).then(|| fit.fwhm())

@@ -44,7 +44,14 @@ fn overlap(px: f64, py: f64, cx: f64, cy: f64, r: f64) -> f64 {
 /// Circular aperture of radius `r` at 0-based (cx, cy), sky from the annulus
 /// [r_in, r_out] (sigma-clipped median). NaN pixels are skipped. `None` when the
 /// aperture holds no valid pixel.
-pub fn aperture(residual: &Array2<f32>, cx: f64, cy: f64, r: f64, r_in: f64, r_out: f64) -> Option<Aperture> {
+pub fn aperture(
+    residual: &Array2<f32>,
+    cx: f64,
+    cy: f64,
+    r: f64,
+    r_in: f64,
+    r_out: f64,
+) -> Option<Aperture> {
     let (h, w) = residual.dim();
     let x0 = (cx - r_out).floor().max(0.0) as usize;
     let x1 = ((cx + r_out).ceil() as usize).min(w.saturating_sub(1));
@@ -76,7 +83,9 @@ pub fn aperture(residual: &Array2<f32>, cx: f64, cy: f64, r: f64, r_in: f64, r_o
     }
     let n_sky = sky.len();
     let local_sky = if n_sky >= 8 {
-        sigma_clip(&mut sky, 3.0, 5).map(|s| s.median).unwrap_or(0.0)
+        sigma_clip(&mut sky, 3.0, 5)
+            .map(|s| s.median)
+            .unwrap_or(0.0)
     } else {
         0.0
     };
@@ -90,7 +99,13 @@ pub fn aperture(residual: &Array2<f32>, cx: f64, cy: f64, r: f64, r_in: f64, r_o
 
 /// Radius enclosing half of the flux inside `r_max`, pixels. Each pixel is split into
 /// 4×4 parts so the growth curve is smooth at small radii. `None` for no positive flux.
-pub fn half_flux_radius(residual: &Array2<f32>, cx: f64, cy: f64, r_max: f64, local_sky: f64) -> Option<f64> {
+pub fn half_flux_radius(
+    residual: &Array2<f32>,
+    cx: f64,
+    cy: f64,
+    r_max: f64,
+    local_sky: f64,
+) -> Option<f64> {
     let (h, w) = residual.dim();
     let x0 = (cx - r_max).floor().max(0.0) as usize;
     let x1 = ((cx + r_max).ceil() as usize).min(w.saturating_sub(1));
@@ -126,7 +141,11 @@ pub fn half_flux_radius(residual: &Array2<f32>, cx: f64, cy: f64, r_max: f64, lo
     for &(d, v) in &parts {
         let next = acc + v;
         if next >= 0.5 * total {
-            let t = if v > 0.0 { (0.5 * total - acc) / v } else { 1.0 };
+            let t = if v > 0.0 {
+                (0.5 * total - acc) / v
+            } else {
+                1.0
+            };
             return Some(prev_r + t.clamp(0.0, 1.0) * (d - prev_r));
         }
         acc = next;
@@ -177,7 +196,8 @@ mod tests {
     fn libm_erf(x: f64) -> f64 {
         let t = 1.0 / (1.0 + 0.327_591_1 * x.abs());
         let y = 1.0
-            - (((((1.061_405_429 * t - 1.453_152_027) * t) + 1.421_413_741) * t - 0.284_496_736) * t
+            - (((((1.061_405_429 * t - 1.453_152_027) * t) + 1.421_413_741) * t - 0.284_496_736)
+                * t
                 + 0.254_829_592)
                 * t
                 * (-x * x).exp();

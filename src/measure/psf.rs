@@ -101,7 +101,10 @@ impl PsfFit {
             let mut s = 0.0;
             for i in 0..8 {
                 for j in 0..8 {
-                    s += self.shape_at(x - 0.4375 + 0.125 * f64::from(i), y - 0.4375 + 0.125 * f64::from(j));
+                    s += self.shape_at(
+                        x - 0.4375 + 0.125 * f64::from(i),
+                        y - 0.4375 + 0.125 * f64::from(j),
+                    );
                 }
             }
             s / 64.0
@@ -176,8 +179,23 @@ impl PsfFit {
         let (major, minor) = self.sampled_axes;
         let q2 = (minor / major).powi(2);
         let sampled = (1.0 - q2) / (1.0 + q2);
-        let e = if raw > 0.0 { sampled * debiased / raw } else { 0.0 }.min(0.999_999);
+        let e = if raw > 0.0 {
+            sampled * debiased / raw
+        } else {
+            0.0
+        }
+        .min(0.999_999);
         (2.0 * e / (1.0 + e)).sqrt()
+    }
+
+    /// Shape components (e1, e2) of the star as sampled: |e| = (1 − q²)/(1 + q²) with
+    /// q the axis ratio, oriented at twice the position angle.
+    pub fn shape_components(&self) -> (f64, f64) {
+        let (major, minor) = self.sampled_axes;
+        let q2 = (minor / major).powi(2);
+        let e = (1.0 - q2) / (1.0 + q2);
+        let two_theta = 2.0 * self.angle_deg().to_radians();
+        (e * two_theta.cos(), e * two_theta.sin())
     }
 
     /// Integral of the fitted profile above the sky over the whole plane, ADU.
@@ -237,11 +255,22 @@ pub fn fit_moffat(stamp: &Stamp, from: &PsfFit) -> Option<PsfFit> {
 }
 
 /// 3-point Gauss–Legendre nodes and weights on [−½, ½].
-const GL3: [(f64, f64); 3] = [(-0.387_298_334_620_741_7, 5.0 / 18.0), (0.0, 8.0 / 18.0), (0.387_298_334_620_741_7, 5.0 / 18.0)];
+const GL3: [(f64, f64); 3] = [
+    (-0.387_298_334_620_741_7, 5.0 / 18.0),
+    (0.0, 8.0 / 18.0),
+    (0.387_298_334_620_741_7, 5.0 / 18.0),
+];
 
 /// Model value and gradient for the pixel centred at (x, y): point-sampled, or averaged
 /// over the pixel when `subsample` > 1.
-fn pixel_model(model: PsfModel, p: &[f64], x: f64, y: f64, subsample: usize, grad: &mut [f64]) -> f64 {
+fn pixel_model(
+    model: PsfModel,
+    p: &[f64],
+    x: f64,
+    y: f64,
+    subsample: usize,
+    grad: &mut [f64],
+) -> f64 {
     if subsample <= 1 {
         return model_and_grad(model, p, x, y, grad);
     }
@@ -297,7 +326,8 @@ fn allowed(model: PsfModel, p: &[f64], stamp: &Stamp) -> bool {
     if qa * qc - qb * qb <= 0.0 {
         return false;
     }
-    if x0 < stamp.x_range.0 || x0 > stamp.x_range.1 || y0 < stamp.y_range.0 || y0 > stamp.y_range.1 {
+    if x0 < stamp.x_range.0 || x0 > stamp.x_range.1 || y0 < stamp.y_range.0 || y0 > stamp.y_range.1
+    {
         return false;
     }
     let k = match model {
@@ -416,7 +446,14 @@ fn fit(stamp: &Stamp, model: PsfModel, p0: &[f64]) -> Option<PsfFit> {
     let inv = invert(&jtj, np)?;
     let mut meat = [[0.0; MAX_PARAMS]; MAX_PARAMS];
     for i in 0..n {
-        let m = pixel_model(model, &p[..np], stamp.x[i], stamp.y[i], stamp.subsample, &mut grad);
+        let m = pixel_model(
+            model,
+            &p[..np],
+            stamp.x[i],
+            stamp.y[i],
+            stamp.subsample,
+            &mut grad,
+        );
         // Leverage h = jᵀ(JᵀJ)⁻¹j: the core pixels that pin the shape down have high
         // leverage and small residuals; the HC3 form of MacKinnon & White (1985, J.
         // Econometrics 29, 305) divides their squared residuals by (1 − h)².
@@ -461,7 +498,11 @@ fn fit(stamp: &Stamp, model: PsfModel, p0: &[f64]) -> Option<PsfFit> {
         x0: p[2],
         y0: p[3],
         q: [p[4], p[5], p[6]],
-        beta: if model == PsfModel::Moffat { p[7] } else { f64::INFINITY },
+        beta: if model == PsfModel::Moffat {
+            p[7]
+        } else {
+            f64::INFINITY
+        },
         ssr,
         n,
         q_cov,
@@ -477,7 +518,11 @@ fn fit(stamp: &Stamp, model: PsfModel, p0: &[f64]) -> Option<PsfFit> {
 }
 
 /// Solve A·x = b for a small symmetric positive-definite A by Cholesky decomposition.
-fn solve(a: &[[f64; MAX_PARAMS]; MAX_PARAMS], b: &[f64; MAX_PARAMS], n: usize) -> Option<[f64; MAX_PARAMS]> {
+fn solve(
+    a: &[[f64; MAX_PARAMS]; MAX_PARAMS],
+    b: &[f64; MAX_PARAMS],
+    n: usize,
+) -> Option<[f64; MAX_PARAMS]> {
     let mut l = [[0.0; MAX_PARAMS]; MAX_PARAMS];
     for i in 0..n {
         for j in 0..=i {
@@ -514,7 +559,10 @@ fn solve(a: &[[f64; MAX_PARAMS]; MAX_PARAMS], b: &[f64; MAX_PARAMS], n: usize) -
     Some(x)
 }
 
-fn invert(a: &[[f64; MAX_PARAMS]; MAX_PARAMS], n: usize) -> Option<[[f64; MAX_PARAMS]; MAX_PARAMS]> {
+fn invert(
+    a: &[[f64; MAX_PARAMS]; MAX_PARAMS],
+    n: usize,
+) -> Option<[[f64; MAX_PARAMS]; MAX_PARAMS]> {
     let mut inv = [[0.0; MAX_PARAMS]; MAX_PARAMS];
     for col in 0..n {
         let mut e = [0.0; MAX_PARAMS];
@@ -552,13 +600,26 @@ mod tests {
         // Analytic: FWHM = 2·sqrt(2 ln 2)·σ for a Gaussian.
         let sigma = 1.7;
         let s = stamp_from(
-            |x, y| 10.0 + 500.0 * (-((x - 10.3).powi(2) + (y - 9.8).powi(2)) / (2.0 * sigma * sigma)).exp(),
+            |x, y| {
+                10.0 + 500.0
+                    * (-((x - 10.3).powi(2) + (y - 9.8).powi(2)) / (2.0 * sigma * sigma)).exp()
+            },
             10,
         );
-        let g = Guess { sky: 10.0, amplitude: 400.0, x0: 10.0, y0: 10.0, fwhm: 3.0 };
+        let g = Guess {
+            sky: 10.0,
+            amplitude: 400.0,
+            x0: 10.0,
+            y0: 10.0,
+            fwhm: 3.0,
+        };
         let fit = fit_gaussian(&s, g).unwrap();
         let expected = 2.0 * (2.0 * std::f64::consts::LN_2).sqrt() * sigma;
-        assert!((fit.fwhm() - expected).abs() < 1e-6, "{} vs {expected}", fit.fwhm());
+        assert!(
+            (fit.fwhm() - expected).abs() < 1e-6,
+            "{} vs {expected}",
+            fit.fwhm()
+        );
         assert!((fit.x0 - 10.3).abs() < 1e-8 && (fit.y0 - 9.8).abs() < 1e-8);
         assert!(fit.eccentricity_raw() < 1e-3);
         // Flux: 2π A σ² (analytic integral).
@@ -578,7 +639,17 @@ mod tests {
             5.0 + 800.0 * (1.0 + u * u + v * v).powf(-beta)
         };
         let s = stamp_from(f, 12);
-        let g = fit_gaussian(&s, Guess { sky: 5.0, amplitude: 700.0, x0: 12.0, y0: 12.0, fwhm: 4.0 }).unwrap();
+        let g = fit_gaussian(
+            &s,
+            Guess {
+                sky: 5.0,
+                amplitude: 700.0,
+                x0: 12.0,
+                y0: 12.0,
+                fwhm: 4.0,
+            },
+        )
+        .unwrap();
         let m = fit_moffat(&s, &g).unwrap();
         assert!(m.ssr < g.ssr);
         let k = (2f64.powf(1.0 / beta) - 1.0).sqrt();

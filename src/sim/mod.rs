@@ -89,7 +89,7 @@ pub struct TrueStar {
     pub y: f64,
     /// Noise-free flux deposited in the frame, ADU (for a mosaic: summed over channels).
     pub flux: f64,
-    /// CCD-equation SNR in an aperture of radius 2.5 × the sampled FWHM.
+    /// CCD-equation SNR in an aperture of radius 1 × the sampled FWHM.
     pub snr: f64,
     pub saturated: bool,
     #[serde(skip_serializing_if = "Option::is_none")]
@@ -150,7 +150,14 @@ impl Psf {
             PsfShape::Moffat { beta } => (beta - 1.0) / (std::f64::consts::PI * major * minor),
         };
         let (sin, cos) = angle_deg.to_radians().sin_cos();
-        Self { shape, major, minor, cos, sin, norm }
+        Self {
+            shape,
+            major,
+            minor,
+            cos,
+            sin,
+            norm,
+        }
     }
 
     /// Value per unit area at offset (dx, dy) from the centre.
@@ -169,7 +176,9 @@ impl Psf {
     fn render_radius(&self) -> f64 {
         let r = match self.shape {
             PsfShape::Gaussian => (2.0 * 1000f64.ln()).sqrt() * self.major,
-            PsfShape::Moffat { beta } => (0.001f64.powf(-1.0 / (beta - 1.0)) - 1.0).sqrt() * self.major,
+            PsfShape::Moffat { beta } => {
+                (0.001f64.powf(-1.0 / (beta - 1.0)) - 1.0).sqrt() * self.major
+            }
         };
         r.min(80.0) + 1.0
     }
@@ -181,7 +190,10 @@ impl Psf {
         let mut s = 0.0;
         for i in 0..n {
             for j in 0..n {
-                s += self.at(dx - 0.5 + (i as f64 + 0.5) * step, dy - 0.5 + (j as f64 + 0.5) * step);
+                s += self.at(
+                    dx - 0.5 + (i as f64 + 0.5) * step,
+                    dy - 0.5 + (j as f64 + 0.5) * step,
+                );
             }
         }
         s / (n * n) as f64
@@ -203,7 +215,10 @@ impl Psf {
             }
             0.5 * (lo + hi)
         };
-        (2.0 * half_width((self.cos, self.sin)), 2.0 * half_width((-self.sin, self.cos)))
+        (
+            2.0 * half_width((self.cos, self.sin)),
+            2.0 * half_width((-self.sin, self.cos)),
+        )
     }
 }
 
@@ -259,10 +274,20 @@ pub fn render(p: &SimParams) -> (Array2<f32>, Vec<(String, OutValue)>, SimTruth)
         });
         stars.push((x, y, flux_e, rgb));
     }
+    // The SNR aperture: radius 1 × sampled FWHM, as the measurement uses.
+    let r_snr = fwhm_sampled.max(1.5);
+    let mut core = Vec::with_capacity(p.star_count);
     for &(sx, sy, flux_e, rgb) in &stars {
         let mut sum = 0.0;
-        let (x0, x1) = ((sx - radius).floor().max(0.0) as usize, ((sx + radius).ceil() as usize).min(w - 1));
-        let (y0, y1) = ((sy - radius).floor().max(0.0) as usize, ((sy + radius).ceil() as usize).min(h - 1));
+        let (mut core_e, mut core_n) = (0.0, 0.0);
+        let (x0, x1) = (
+            (sx - radius).floor().max(0.0) as usize,
+            ((sx + radius).ceil() as usize).min(w - 1),
+        );
+        let (y0, y1) = (
+            (sy - radius).floor().max(0.0) as usize,
+            ((sy + radius).ceil() as usize).min(h - 1),
+        );
         for y in y0..=y1 {
             for x in x0..=x1 {
                 let (dx, dy) = (x as f64 - sx, y as f64 - sy);
@@ -275,9 +300,14 @@ pub fn render(p: &SimParams) -> (Array2<f32>, Vec<(String, OutValue)>, SimTruth)
                 let e = flux_e * weight * psf.pixel_average(dx, dy, n);
                 signal[(y, x)] += e;
                 sum += e;
+                if dx.hypot(dy) <= r_snr {
+                    core_e += e;
+                    core_n += 1.0;
+                }
             }
         }
         deposited.push(sum);
+        core.push((core_e, core_n));
     }
 
     // Camera: Poisson electrons, read noise, gain, bias, 16-bit ADC.
@@ -286,7 +316,9 @@ pub fn render(p: &SimParams) -> (Array2<f32>, Vec<(String, OutValue)>, SimTruth)
     for ((y, x), out) in pixels.indexed_iter_mut() {
         let mean = signal[(y, x)].max(0.0);
         let e = if mean > 0.0 {
-            Poisson::new(mean).map(|d| d.sample(&mut rng)).unwrap_or(mean)
+            Poisson::new(mean)
+                .map(|d| d.sample(&mut rng))
+                .unwrap_or(mean)
         } else {
             0.0
         };
@@ -299,36 +331,56 @@ pub fn render(p: &SimParams) -> (Array2<f32>, Vec<(String, OutValue)>, SimTruth)
         let (x, y) = (rng.gen_range(0..w), rng.gen_range(0..h));
         let v = pixels[(y, x)] + rng.gen_range(3000.0..40000.0);
         pixels[(y, x)] = v.min(65535.0);
-        hot.push(TruePoint { x: x as f64 + 1.0, y: y as f64 + 1.0 });
+        hot.push(TruePoint {
+            x: x as f64 + 1.0,
+            y: y as f64 + 1.0,
+        });
     }
     let mut rays = Vec::new();
     for _ in 0..p.cosmic_rays {
-        let (x, y) = (rng.gen_range(2.0..w as f64 - 2.0), rng.gen_range(2.0..h as f64 - 2.0));
+        let (x, y) = (
+            rng.gen_range(2.0..w as f64 - 2.0),
+            rng.gen_range(2.0..h as f64 - 2.0),
+        );
         let len: f64 = rng.gen_range(0.0..5.0);
         let ang: f64 = rng.gen_range(0.0..std::f64::consts::PI);
         let energy_adu: f64 = rng.gen_range(2000.0..20000.0) / gain;
         let steps = (len * 4.0).ceil().max(1.0) as usize;
         for i in 0..steps {
-            let t = if steps == 1 { 0.0 } else { i as f64 / (steps - 1) as f64 - 0.5 };
-            let (px, py) = ((x + t * len * ang.cos()).round(), (y + t * len * ang.sin()).round());
+            let t = if steps == 1 {
+                0.0
+            } else {
+                i as f64 / (steps - 1) as f64 - 0.5
+            };
+            let (px, py) = (
+                (x + t * len * ang.cos()).round(),
+                (y + t * len * ang.sin()).round(),
+            );
             if px >= 0.0 && py >= 0.0 && (px as usize) < w && (py as usize) < h {
                 let v = &mut pixels[(py as usize, px as usize)];
-                *v = (*v + (energy_adu / steps as f64) as f32).round().min(65535.0);
+                *v = (*v + (energy_adu / steps as f64) as f32)
+                    .round()
+                    .min(65535.0);
             }
         }
-        rays.push(TruePoint { x: x + 1.0, y: y + 1.0 });
+        rays.push(TruePoint {
+            x: x + 1.0,
+            y: y + 1.0,
+        });
     }
 
     // Truth per star: saturation from the noise-free peak; SNR by the CCD equation in
-    // an aperture of 2.5 × sampled FWHM (Merline & Howell 1995).
+    // an aperture of radius 1 × sampled FWHM (Merline & Howell 1995).
     let sky_var_e = p.sky_e + p.read_noise_e.powi(2) + gain * gain / 12.0;
-    let r_ap = (2.5 * fwhm_sampled).max(3.0);
-    let n_pix = std::f64::consts::PI * r_ap * r_ap;
     let truth_stars = stars
         .iter()
         .zip(&deposited)
-        .map(|(&(sx, sy, _flux_e, rgb), &dep)| {
-            let (ix, iy) = (sx.round().clamp(0.0, (w - 1) as f64) as usize, sy.round().clamp(0.0, (h - 1) as f64) as usize);
+        .zip(&core)
+        .map(|((&(sx, sy, _flux_e, rgb), &dep), &(core_e, n_pix))| {
+            let (ix, iy) = (
+                sx.round().clamp(0.0, (w - 1) as f64) as usize,
+                sy.round().clamp(0.0, (h - 1) as f64) as usize,
+            );
             let mut saturated = false;
             for y in iy.saturating_sub(1)..=(iy + 1).min(h - 1) {
                 for x in ix.saturating_sub(1)..=(ix + 1).min(w - 1) {
@@ -341,7 +393,7 @@ pub fn render(p: &SimParams) -> (Array2<f32>, Vec<(String, OutValue)>, SimTruth)
                 x: sx + 1.0,
                 y: sy + 1.0,
                 flux: dep / gain,
-                snr: dep / (dep + n_pix * sky_var_e).sqrt(),
+                snr: core_e / (core_e + n_pix * sky_var_e).sqrt(),
                 saturated,
                 rgb_weights: rgb,
             }
@@ -380,12 +432,22 @@ fn header_keys(p: &SimParams) -> Vec<(String, OutValue)> {
         ("OBJECT".into(), Text(p.object.clone())),
         ("DATE-OBS".into(), Text(p.date_obs.clone())),
         ("EXPTIME".into(), Real(120.0)),
-        ("FILTER".into(), Text(if p.bayer.is_some() { "None".into() } else { "L".into() })),
+        (
+            "FILTER".into(),
+            Text(if p.bayer.is_some() {
+                "None".into()
+            } else {
+                "L".into()
+            }),
+        ),
         ("XBINNING".into(), Int(1)),
         ("YBINNING".into(), Int(1)),
         ("XPIXSZ".into(), Real(pixel_um)),
         ("YPIXSZ".into(), Real(pixel_um)),
-        ("FOCALLEN".into(), Real((focal_mm * 1000.0).round() / 1000.0)),
+        (
+            "FOCALLEN".into(),
+            Real((focal_mm * 1000.0).round() / 1000.0),
+        ),
         ("CCD-TEMP".into(), Real(-10.0)),
         ("GAIN".into(), Int(120)),
         ("EGAIN".into(), Real(p.gain_e_per_adu)),
@@ -405,15 +467,14 @@ fn header_keys(p: &SimParams) -> Vec<(String, OutValue)> {
         ("EQUINOX".into(), Real(2000.0)),
     ];
     if let Some(b) = p.bayer {
-        let name: String = b
-            .0
-            .iter()
-            .map(|c| match c {
-                Channel::Red => 'R',
-                Channel::Green => 'G',
-                Channel::Blue => 'B',
-            })
-            .collect();
+        let name: String =
+            b.0.iter()
+                .map(|c| match c {
+                    Channel::Red => 'R',
+                    Channel::Green => 'G',
+                    Channel::Blue => 'B',
+                })
+                .collect();
         keys.push(("BAYERPAT".into(), Text(name)));
     }
     keys
@@ -445,6 +506,9 @@ mod tests {
         let (a, b) = psf.sampled_fwhm_axes();
         let sigma = 3.0 / 2.354_820_045;
         let expected = 2.354_820_045 * (sigma * sigma + 1.0 / 12.0f64).sqrt();
-        assert!((a - expected).abs() < 0.01 && (b - expected).abs() < 0.01, "{a} {b} {expected}");
+        assert!(
+            (a - expected).abs() < 0.01 && (b - expected).abs() < 0.01,
+            "{a} {b} {expected}"
+        );
     }
 }

@@ -80,7 +80,8 @@ def render(binary: str, out: str, truth: str, **opts) -> dict:
     """Run `subwatch render` and return the truth JSON as a dict."""
     argv = [binary, "render", "--out", out, "--truth", truth]
     for key, val in opts.items():
-        argv += ["--" + key.replace("_", "-"), str(val)]
+        # --key=value so that negative numbers are not taken for options
+        argv.append(f"--{key.replace('_', '-')}={val}")
     proc = run_cmd(argv)
     if proc.returncode != 0:
         raise BinaryError(f"render failed (exit {proc.returncode}): {proc.stderr.strip()[:500]}")
@@ -113,7 +114,7 @@ def measure(binary: str, paths: list[str], with_stars: bool = True) -> tuple[lis
 # each encoding, so they are dropped from the header we carry over.
 _STRUCTURAL = {
     "SIMPLE", "XTENSION", "BITPIX", "NAXIS", "NAXIS1", "NAXIS2", "NAXIS3",
-    "EXTEND", "PCOUNT", "GCOUNT", "BSCALE", "BZERO", "BLANK", "CHECKSUM", "DATASUM",
+    "EXTEND", "PCOUNT", "GCOUNT", "BSCALE", "BZERO", "BLANK", "CHECKSUM", "DATASUM", "EXTNAME",
 }
 
 
@@ -139,7 +140,8 @@ def carried_header(header: fits.Header) -> fits.Header:
 
 def write_uint16(path: str, data_u16: np.ndarray, header: fits.Header) -> None:
     # astropy stores uint16 as BITPIX 16 with BZERO 32768 (FITS standard
-    # unsigned-integer convention, FITS 4.0 sec. 5.2.5).
+    # unsigned-integer convention of the FITS standard 4.0; section number
+    # not quoted, from memory).
     assert data_u16.dtype == np.uint16
     fits.PrimaryHDU(data_u16, header=carried_header(header)).writeto(path, overwrite=True)
 

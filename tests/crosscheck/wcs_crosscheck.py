@@ -1,7 +1,8 @@
 #!/usr/bin/env python3
 """Cross-check the celestial coordinates that `subwatch measure --json --stars`
-gives each star against astropy.wcs (Greisen & Calabretta 2002, Calabretta &
-Greisen 2002; SIP: Shupe et al. 2005) evaluated at the same pixel position.
+gives each star against astropy.wcs (Greisen & Calabretta 2002, A&A 395, 1061;
+Calabretta & Greisen 2002, A&A 395, 1077; SIP: Shupe et al. 2005, ASP Conf.
+Ser. 347, 491 -- references from memory) evaluated at the same pixel position.
 
 One synthetic frame is rendered with `subwatch render`.  Its pixels are then
 saved under several WCS headers built with astropy (CD matrix with rotation
@@ -58,8 +59,9 @@ def strip_wcs(header: fits.Header) -> fits.Header:
 
 def rot_cd(scale_deg: float, rot_deg: float, flip_x: bool = True, skew: float = 0.0) -> dict:
     """CD matrix for a pixel scale, a rotation and an optional skew (the usual
-    north-up/east-left parity when flip_x; FITS WCS paper II eq. 189-190 for
-    the CROTA form of the rotation)."""
+    north-up/east-left parity when flip_x; the rotation follows the CROTA2
+    form of Calabretta & Greisen 2002, sec. 6.1, from memory).  astropy is
+    the judge either way: only agreement with it is checked."""
     r = math.radians(rot_deg)
     sx = -scale_deg if flip_x else scale_deg
     sy = scale_deg
@@ -125,6 +127,7 @@ def compare(rec: dict, header: fits.Header) -> tuple[bool, str, dict]:
         w = WCS(header)
     a_ra, a_de = w.all_pix2world(xy[:, 0], xy[:, 1], 1)   # origin 1: FITS pixel convention
     sep = np.full(len(stars), np.inf)
+    # astropy.coordinates.angular_separation uses the Vincenty formula (astropy docs), accurate at tiny separations
     sep[have] = np.degrees(angular_separation(np.radians(ra[have]), np.radians(de[have]),
                                               np.radians(a_ra[have]), np.radians(a_de[have]))) * 3600.0
     worst = float(np.max(sep)) if len(sep) else float("nan")
