@@ -113,6 +113,19 @@ pub fn decode(path: &Path, limits: DecodeLimits) -> Result<DecodedImage, FrameEr
     if meta.len() == 0 {
         return Err(fail("empty file (0 bytes)".into()));
     }
+    // A FITS file starts with the SIMPLE card; a gzip stream with 1f 8b.
+    let mut head = [0u8; 6];
+    let got = std::fs::File::open(path)
+        .and_then(|mut f| std::io::Read::read(&mut f, &mut head))
+        .map_err(|e| FrameError::Io {
+            path: path.to_path_buf(),
+            source: e,
+        })?;
+    if !(head[..got].starts_with(b"SIMPLE") || head[..got].starts_with(&[0x1f, 0x8b])) {
+        return Err(fail(
+            "not a FITS file (it does not begin with the SIMPLE keyword)".into(),
+        ));
+    }
     let c_path = CString::new(path.as_os_str().as_encoded_bytes())
         .map_err(|_| fail("path contains a NUL byte".into()))?;
 
@@ -178,9 +191,7 @@ pub fn decode(path: &Path, limits: DecodeLimits) -> Result<DecodedImage, FrameEr
             seen.push("empty image");
             continue;
         }
-        let pixels = (width as u64)
-            .checked_mul(height as u64)
-            .unwrap_or(u64::MAX);
+        let pixels = (width as u64).saturating_mul(height as u64);
         if pixels > limits.max_pixels {
             return Err(fail(format!(
                 "image is {width} x {height} = {pixels} pixels, over the limit of {} (raise max_pixels if this is real)",

@@ -35,6 +35,9 @@ pub struct MeasureParams {
     /// Detections below this SNR are not reported as stars: their positions and shapes
     /// are mostly noise.
     pub min_snr: f64,
+    /// Set for a colour mosaic's superpixel image: widths are reported as sampled by
+    /// pixels of this side (0.5 superpixel = one mosaic pixel). 0 = the image's own.
+    pub report_pixel: f64,
 }
 
 impl Default for MeasureParams {
@@ -46,6 +49,7 @@ impl Default for MeasureParams {
             saturation_adu: None,
             min_shape_snr: 20.0,
             min_snr: 7.0,
+            report_pixel: 0.0,
         }
     }
 }
@@ -259,7 +263,11 @@ pub fn measure_image(
     // A star whose centre lies half a FWHM inside the frame still shows its core.
     let edge_margin = (0.5 * fwhm_guess).max(1.0);
     // Narrow PSFs are fitted with the model averaged over each pixel (see `psf::Stamp`).
-    let subsample = if fwhm_guess < 4.0 { 3 } else { 1 };
+    let subsample = if fwhm_guess < 4.0 || params.report_pixel > 0.0 {
+        3
+    } else {
+        1
+    };
 
     let outcomes: Vec<Outcome> = candidates
         .par_iter()
@@ -276,7 +284,7 @@ pub fn measure_image(
                 noise,
                 sat_residual(c.x, c.y),
                 fwhm_guess,
-                subsample,
+                (subsample, params.report_pixel),
             )
         })
         .collect();
@@ -313,6 +321,18 @@ pub fn measure_image(
             .collect::<Vec<_>>(),
     )
     .unwrap_or(fwhm_guess);
+    let typical_major = median_f64(
+        &outcomes
+            .iter()
+            .filter_map(|o| match o {
+                Outcome::Fitted(f) if !f.blended && f.fit.model_axes().1 >= sharp_limit => {
+                    Some(f.fit.fwhm_axes().0)
+                }
+                _ => None,
+            })
+            .collect::<Vec<_>>(),
+    )
+    .unwrap_or(fwhm_guess);
 
     let mut fitted = Vec::new();
     let mut rejected = cleaned;
@@ -334,13 +354,19 @@ pub fn measure_image(
                     peak_adu: f.peak,
                 })
             }
-            // Much wider than the stars: a galaxy, a blend or noise around a faint star.
-            Outcome::Fitted(f) if f.fit.fwhm() > 2.0 * typical_fwhm => rejected.push(Rejected {
-                x: f.fit.x0 + 1.0,
-                y: f.fit.y0 + 1.0,
-                kind: RejectKind::Extended,
-                peak_adu: f.peak,
-            }),
+            // Much wider than the stars, or much longer along one axis: a galaxy, a blend
+            // of faint stars, or noise around a faint star.
+            Outcome::Fitted(f)
+                if f.fit.fwhm() > 1.5 * typical_fwhm
+                    || f.fit.fwhm_axes().0 > 1.6 * typical_major =>
+            {
+                rejected.push(Rejected {
+                    x: f.fit.x0 + 1.0,
+                    y: f.fit.y0 + 1.0,
+                    kind: RejectKind::Extended,
+                    peak_adu: f.peak,
+                })
+            }
             Outcome::Fitted(f) => fitted.push(f),
             Outcome::Rejected(r) => rejected.push(r),
         }
@@ -373,7 +399,9 @@ pub fn measure_image(
             if snr < params.min_snr {
                 return None;
             }
-            let hfr = photometry::half_flux_radius(&pixels, cx, cy, r_ap, ap.local_sky);
+            // Out to 3.5 FWHM: heavy Moffat wings (β ≈ 2.5) still hold 1 % of the light
+            // beyond 2.5 FWHM, which would pull the half-flux radius in.
+            let hfr = photometry::half_flux_radius(&pixels, cx, cy, 3.5 * frame_fwhm, ap.local_sky);
             let (major, minor) = f.fit.fwhm_axes();
             Some(Star {
                 x: cx + 1.0,
@@ -412,12 +440,12 @@ pub fn measure_image(
     // Near round, one star's eccentricity is dominated by noise (it grows as the
     // square root of the noise in its shape, so a round star at SNR 100 reads about
     // 0.2 before correction). Each star's value is corrected for that bias (see
-    // `PsfFit::eccentricity`), and the median is weighted by SNR² (the inverse of the
-    // shape variance; capped at SNR 300 so a few bright stars cannot outvote the rest).
+    // `PsfFit::eccentricity`), and the median is weighted by SNR (capped at 300), so
+    // the better-measured stars count for more without a few bright ones deciding.
     let eccentricity = weighted_median(
         &shape
             .iter()
-            .map(|s| (s.eccentricity, s.snr.min(300.0).powi(2)))
+            .map(|s| (s.eccentricity, s.snr.min(300.0)))
             .collect::<Vec<_>>(),
     );
     let hfr_px = med(&|s| s.hfr_px);
@@ -466,6 +494,7 @@ pub fn measure_mosaic(
     let mut p = *params;
     p.saturation_adu = params.saturation_adu.map(|s| 4.0 * s);
     p.detect.kernel_fwhm = (params.detect.kernel_fwhm / 2.0).max(1.5);
+    p.report_pixel = 0.5;
     let mut m = measure_image(lum, &p)?;
     // Per-channel residual planes for colour photometry.
     let residual_planes: Vec<Array2<f32>> = planes
@@ -577,7 +606,7 @@ fn clean_sharp_pixels(residual: &mut Array2<f32>, bkg: &BackgroundMap) -> Vec<Re
                 for x in 1..w - 1 {
                     let v = img[(y, x)];
                     let sigma = rms[x];
-                    if !(v > 6.0 * sigma) {
+                    if v.is_nan() || v <= 6.0 * sigma {
                         continue;
                     }
                     let mut n = [0.0f32; 8];
@@ -726,7 +755,7 @@ fn measure_candidate(
     noise: f64,
     saturation_residual: Option<f64>,
     fwhm_guess: f64,
-    subsample: usize,
+    (subsample, report_pixel): (usize, f64),
 ) -> Outcome {
     let (h, w) = residual.dim();
     // Brightest pixel near the filtered peak.
@@ -800,6 +829,7 @@ fn measure_candidate(
         x_range: (x0 as f64, x1 as f64),
         y_range: (y0 as f64, y1 as f64),
         subsample,
+        report_pixel,
         ..Default::default()
     };
     for y in y0..=y1 {

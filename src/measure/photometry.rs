@@ -132,7 +132,7 @@ pub fn half_flux_radius(
         }
     }
     let total: f64 = parts.iter().map(|p| p.1).sum();
-    if !(total > 0.0) {
+    if total.is_nan() || total <= 0.0 {
         return None;
     }
     parts.sort_by(|a, b| a.0.total_cmp(&b.0));
@@ -160,7 +160,7 @@ pub fn half_flux_radius(
 /// equation) and g the gain in e⁻/ADU. Without a gain the source's own shot noise is
 /// left out, which overstates the SNR of bright stars only.
 pub fn ccd_snr(flux: f64, n_pix: f64, n_sky: usize, sky_sigma: f64, gain: Option<f64>) -> f64 {
-    if !(flux > 0.0) {
+    if flux.is_nan() || flux <= 0.0 {
         return 0.0;
     }
     let shot = gain.filter(|g| *g > 0.0).map_or(0.0, |g| flux / g);

@@ -25,6 +25,10 @@ pub struct Stamp {
     /// needed for narrow PSFs, whose point-sampled fits depend on where the star falls
     /// within its pixel. 1 (or 0): the model is evaluated at pixel centres.
     pub subsample: usize,
+    /// Side of the pixel the reported widths are sampled with, in stamp pixels (0 means
+    /// 1). A colour mosaic is fitted on 2×2 superpixels but reports widths as its own
+    /// pixels sample the star: 0.5.
+    pub report_pixel: f64,
 }
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize)]
@@ -94,16 +98,17 @@ impl PsfFit {
         }
     }
 
-    /// FWHM along the model's principal axes of the model averaged over a unit pixel:
+    /// FWHM along the model's principal axes of the model averaged over a pixel of side
+    /// `pixel`:
     /// half-maximum found by bisection, the pixel average by 8×8 midpoint sampling.
-    fn pixel_averaged_axes(&self) -> (f64, f64) {
+    fn pixel_averaged_axes(&self, pixel: f64) -> (f64, f64) {
         let average = |x: f64, y: f64| {
             let mut s = 0.0;
             for i in 0..8 {
                 for j in 0..8 {
                     s += self.shape_at(
-                        x - 0.4375 + 0.125 * f64::from(i),
-                        y - 0.4375 + 0.125 * f64::from(j),
+                        x + pixel * (-0.4375 + 0.125 * f64::from(i)),
+                        y + pixel * (-0.4375 + 0.125 * f64::from(j)),
                     );
                 }
             }
@@ -510,7 +515,11 @@ fn fit(stamp: &Stamp, model: PsfModel, p0: &[f64]) -> Option<PsfFit> {
         sampled_axes: (0.0, 0.0),
     };
     fit.sampled_axes = if stamp.subsample > 1 {
-        fit.pixel_averaged_axes()
+        fit.pixel_averaged_axes(if stamp.report_pixel > 0.0 {
+            stamp.report_pixel
+        } else {
+            1.0
+        })
     } else {
         fit.model_axes()
     };

@@ -144,7 +144,7 @@ mod tests {
         let mut values: Vec<f32> = (0..1000)
             .map(|i| 100.0 + 5.0 * inverse_normal((i as f64 + 0.5) / 1000.0) as f32)
             .collect();
-        values.extend(std::iter::repeat(5000.0).take(20));
+        values.extend(std::iter::repeat_n(5000.0, 20));
         let s = sigma_clip(&mut values, 3.0, 10).unwrap();
         assert!((s.median - 100.0).abs() < 0.3, "{s:?}");
         assert!((s.std - 5.0).abs() < 0.3, "{s:?}");
