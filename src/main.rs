@@ -91,6 +91,15 @@ enum Command {
         /// Store as float32 instead of 16-bit unsigned.
         #[arg(long)]
         float: bool,
+        /// OBJECT keyword.
+        #[arg(long)]
+        object: Option<String>,
+        /// DATE-OBS keyword (UTC, ISO 8601).
+        #[arg(long)]
+        date_obs: Option<String>,
+        /// Scale every star's flux by this factor (thin cloud: below 1).
+        #[arg(long, default_value_t = 1.0)]
+        transparency: f64,
     },
 }
 
@@ -161,6 +170,9 @@ fn run(cli: Cli) -> Result<ExitCode> {
             cosmic_rays,
             bayer,
             float,
+            object,
+            date_obs,
+            transparency,
         } => {
             let bayer = match bayer {
                 Some(name) => Some(
@@ -169,7 +181,12 @@ fn run(cli: Cli) -> Result<ExitCode> {
                 ),
                 None => None,
             };
+            let defaults = SimParams::default();
+            let (lo, hi) = defaults.flux_range_e;
             let params = SimParams {
+                object: object.unwrap_or(defaults.object.clone()),
+                date_obs: date_obs.unwrap_or(defaults.date_obs.clone()),
+                flux_range_e: (lo * transparency, hi * transparency),
                 width,
                 height,
                 seed,
