@@ -34,10 +34,12 @@ impl Default for BackgroundParams {
 #[derive(Debug, Clone)]
 pub struct BackgroundMap {
     centers_x: Vec<f64>,
-    centers_y: Vec<f64>,
     /// Row-major ny × nx.
     level: Vec<f64>,
     rms: Vec<f64>,
+    /// Splines down each mesh column, built once: a row is then one spline across.
+    level_columns: Vec<Spline>,
+    rms_columns: Vec<Spline>,
 }
 
 impl BackgroundMap {
@@ -46,6 +48,17 @@ impl BackgroundMap {
     pub fn estimate(
         image: &Array2<f32>,
         mask: Option<&[bool]>,
+        params: BackgroundParams,
+    ) -> Option<Self> {
+        Self::estimate_with_offset(image, mask, None, params)
+    }
+
+    /// As [`Self::estimate`], for an image from which `offset` was already subtracted:
+    /// the statistics are taken of image + offset, without a second copy of the image.
+    pub fn estimate_with_offset(
+        image: &Array2<f32>,
+        mask: Option<&[bool]>,
+        offset: Option<&BackgroundMap>,
         params: BackgroundParams,
     ) -> Option<Self> {
         let (h, w) = image.dim();
@@ -65,14 +78,23 @@ impl BackgroundMap {
             .flat_map_iter(|&(y0, y1)| {
                 let xs = &xs;
                 let mut buf: Vec<f32> = Vec::with_capacity(bs * bs);
+                // The offset along this band of rows, evaluated once for all its boxes.
+                let mut band = vec![0.0f32; if offset.is_some() { (y1 - y0) * w } else { 0 }];
+                if let Some(o) = offset {
+                    for (k, row) in band.chunks_mut(w).enumerate() {
+                        o.level_row(y0 + k, row);
+                    }
+                }
                 xs.iter()
                     .map(move |&(x0, x1)| {
                         buf.clear();
                         for y in y0..y1 {
                             let row = &data[y * w..(y + 1) * w];
+                            let add =
+                                (!band.is_empty()).then(|| &band[(y - y0) * w..(y - y0 + 1) * w]);
                             for (x, &v) in row.iter().enumerate().take(x1).skip(x0) {
                                 if v.is_finite() && mask.is_none_or(|m| !m[y * w + x]) {
-                                    buf.push(v);
+                                    buf.push(add.map_or(v, |a| v + a[x]));
                                 }
                             }
                         }
@@ -81,6 +103,14 @@ impl BackgroundMap {
                         // about the sky; its neighbours fill it in below.
                         if buf.len() * 10 < area * 3 {
                             return None;
+                        }
+                        // Above ~2000 sky values the mode estimate no longer gets better
+                        // than a few hundredths of σ; a regular subsample keeps it cheap.
+                        if buf.len() > 2048 {
+                            let stride = buf.len().div_ceil(2048);
+                            let kept: Vec<f32> = buf.iter().step_by(stride).copied().collect();
+                            buf.clear();
+                            buf.extend(kept);
                         }
                         let s = sigma_clip(&mut buf, 3.0, 10)?;
                         Some((s.mode(), s.std / CLIP3_STD_CORRECTION))
@@ -100,49 +130,103 @@ impl BackgroundMap {
             rms = median_filter(&rms, nx, ny, params.filter_size / 2);
         }
         let center = |&(a, b): &(usize, usize)| (a + b) as f64 / 2.0 - 0.5;
+        let centers_y: Vec<f64> = ys.iter().map(center).collect();
+        let columns = |grid: &[f64]| -> Vec<Spline> {
+            (0..nx)
+                .map(|i| {
+                    Spline::new(
+                        centers_y.clone(),
+                        (0..ny).map(|j| grid[j * nx + i]).collect(),
+                    )
+                })
+                .collect()
+        };
         Some(Self {
             centers_x: xs.iter().map(center).collect(),
-            centers_y: ys.iter().map(center).collect(),
+            level_columns: columns(&level),
+            rms_columns: columns(&rms),
             level,
             rms,
         })
     }
 
-    /// Background level along row `y` (0-based) into `out` (one value per column).
-    pub fn level_row(&self, y: usize, out: &mut [f32]) {
-        self.eval_row(&self.level, y, out);
+    /// The map of `self − other` (same mesh required; the knots are taken from `self`).
+    pub fn minus(&self, other: &BackgroundMap) -> BackgroundMap {
+        let level: Vec<f64> = self
+            .level
+            .iter()
+            .zip(&other.level)
+            .map(|(a, b)| a - b)
+            .collect();
+        let nx = self.centers_x.len();
+        let ny = level.len() / nx.max(1);
+        let centers_y = self
+            .level_columns
+            .first()
+            .map(|c| c.t.clone())
+            .unwrap_or_default();
+        let level_columns = (0..nx)
+            .map(|i| {
+                Spline::new(
+                    centers_y.clone(),
+                    (0..ny).map(|j| level[j * nx + i]).collect(),
+                )
+            })
+            .collect();
+        BackgroundMap {
+            centers_x: self.centers_x.clone(),
+            level,
+            rms: self.rms.clone(),
+            level_columns,
+            rms_columns: self.rms_columns.clone(),
+        }
     }
 
-    /// Sky noise (1σ per pixel) along row `y`.
+    /// Background level along row `y` (0-based) into `out` (one value per column).
+    pub fn level_row(&self, y: usize, out: &mut [f32]) {
+        self.across(&self.level_columns, y as f64).eval_into(out);
+    }
+
+    /// Sky noise (1σ per pixel) along row `y`. The noise map changes slowly (it comes
+    /// from 64-pixel boxes), so the spline is evaluated every 8 pixels and joined by
+    /// straight lines.
     pub fn rms_row(&self, y: usize, out: &mut [f32]) {
-        self.eval_row(&self.rms, y, out);
+        let spline = self.across(&self.rms_columns, y as f64);
+        const STEP: usize = 8;
+        let n = out.len();
+        let mut x0 = 0;
+        let mut v0 = spline.eval(0.0);
+        while x0 < n {
+            let x1 = (x0 + STEP).min(n - 1);
+            let v1 = spline.eval(x1 as f64);
+            let span = (x1 - x0).max(1) as f64;
+            for (k, o) in out[x0..=x1].iter_mut().enumerate() {
+                *o = (v0 + (v1 - v0) * k as f64 / span) as f32;
+            }
+            if x1 == n - 1 {
+                break;
+            }
+            x0 = x1;
+            v0 = v1;
+        }
     }
 
     /// Background level at one position (0-based pixel coordinates).
     pub fn level_at(&self, x: f64, y: f64) -> f64 {
-        self.eval_point(&self.level, x, y)
+        self.across(&self.level_columns, y).eval(x)
     }
 
     /// Sky noise at one position (0-based pixel coordinates).
     pub fn rms_at(&self, x: f64, y: f64) -> f64 {
-        self.eval_point(&self.rms, x, y)
+        self.across(&self.rms_columns, y).eval(x)
     }
 
-    fn column_values(&self, grid: &[f64], y: f64) -> Vec<f64> {
-        let nx = self.centers_x.len();
-        (0..nx)
-            .map(|i| {
-                let column: Vec<f64> = (0..self.centers_y.len())
-                    .map(|j| grid[j * nx + i])
-                    .collect();
-                Spline::new(&self.centers_y, &column).eval(y)
-            })
-            .collect()
-    }
-
-    fn eval_point(&self, grid: &[f64], x: f64, y: f64) -> f64 {
-        let column_values = self.column_values(grid, y);
-        Spline::new(&self.centers_x, &column_values).eval(x)
+    /// The spline across the mesh at height `y`: down each column, then across.
+    fn across(&self, columns: &[Spline], y: f64) -> Spline {
+        Spline::new(
+            self.centers_x.clone(),
+            columns.iter().map(|c| c.eval(y)).collect(),
+        )
     }
 
     /// Median of the mesh levels: the frame's typical sky level.
@@ -160,15 +244,6 @@ impl BackgroundMap {
         let max = self.level.iter().copied().fold(f64::MIN, f64::max);
         let min = self.level.iter().copied().fold(f64::MAX, f64::min);
         max - min
-    }
-
-    fn eval_row(&self, grid: &[f64], y: usize, out: &mut [f32]) {
-        // Down each mesh column to this row, then across the row.
-        let column_values = self.column_values(grid, y as f64);
-        let across = Spline::new(&self.centers_x, &column_values);
-        for (x, o) in out.iter_mut().enumerate() {
-            *o = across.eval(x as f64) as f32;
-        }
     }
 }
 
@@ -226,14 +301,18 @@ fn median_filter(grid: &[f64], nx: usize, ny: usize, half: usize) -> Vec<f64> {
 
 /// Natural cubic spline through (t, v) with linear continuation beyond the end knots
 /// (the natural end condition has zero curvature there, so the line is its continuation).
-struct Spline<'a> {
-    t: &'a [f64],
-    v: &'a [f64],
+#[derive(Debug, Clone)]
+struct Spline {
+    t: Vec<f64>,
+    v: Vec<f64>,
     m: Vec<f64>,
+    /// Per interval: 1/h and h²/6.
+    inv_h: Vec<f64>,
+    h2_6: Vec<f64>,
 }
 
-impl<'a> Spline<'a> {
-    fn new(t: &'a [f64], v: &'a [f64]) -> Self {
+impl Spline {
+    fn new(t: Vec<f64>, v: Vec<f64>) -> Self {
         let n = t.len();
         let mut m = vec![0.0; n];
         if n >= 3 {
@@ -255,11 +334,49 @@ impl<'a> Spline<'a> {
                 m[i] = d_prime[i] - c_prime[i] * m[i + 1];
             }
         }
-        Self { t, v, m }
+        let inv_h = t.windows(2).map(|w| 1.0 / (w[1] - w[0])).collect();
+        let h2_6 = t.windows(2).map(|w| (w[1] - w[0]).powi(2) / 6.0).collect();
+        Self {
+            t,
+            v,
+            m,
+            inv_h,
+            h2_6,
+        }
+    }
+
+    /// Values at x = 0, 1, 2, … into `out`, walking the knot intervals once.
+    fn eval_into(&self, out: &mut [f32]) {
+        let n = self.t.len();
+        if n < 2 {
+            out.fill(self.v.first().copied().unwrap_or(0.0) as f32);
+            return;
+        }
+        let mut j = 0;
+        for (x, o) in out.iter_mut().enumerate() {
+            let x = x as f64;
+            if x <= self.t[0] || x >= self.t[n - 1] {
+                *o = self.eval(x) as f32;
+                continue;
+            }
+            while self.t[j + 1] < x {
+                j += 1;
+            }
+            *o = self.interior(j, x) as f32;
+        }
+    }
+
+    fn interior(&self, j: usize, x: f64) -> f64 {
+        let (t, v, m) = (&self.t, &self.v, &self.m);
+        let a = (t[j + 1] - x) * self.inv_h[j];
+        let b = 1.0 - a;
+        a * v[j]
+            + b * v[j + 1]
+            + ((a * a * a - a) * m[j] + (b * b * b - b) * m[j + 1]) * self.h2_6[j]
     }
 
     fn eval(&self, x: f64) -> f64 {
-        let (t, v, m) = (self.t, self.v, &self.m);
+        let (t, v, m) = (&self.t, &self.v, &self.m);
         let n = t.len();
         if n == 1 {
             return v[0];
@@ -275,12 +392,7 @@ impl<'a> Spline<'a> {
             return v[n - 1] + slope * (x - t[n - 1]);
         }
         let j = t.partition_point(|&k| k <= x).clamp(1, n - 1) - 1;
-        let h = t[j + 1] - t[j];
-        let a = (t[j + 1] - x) / h;
-        let b = 1.0 - a;
-        a * v[j]
-            + b * v[j + 1]
-            + ((a * a * a - a) * m[j] + (b * b * b - b) * m[j + 1]) * h * h / 6.0
+        self.interior(j, x)
     }
 }
 
@@ -293,7 +405,7 @@ mod tests {
         // A natural cubic spline through collinear points is that line (analytic).
         let t = [0.0, 1.0, 2.5, 4.0];
         let v: Vec<f64> = t.iter().map(|x| 3.0 - 2.0 * x).collect();
-        let s = Spline::new(&t, &v);
+        let s = Spline::new(t.to_vec(), v);
         for x in [-2.0, 0.3, 1.7, 3.9, 6.0] {
             assert!((s.eval(x) - (3.0 - 2.0 * x)).abs() < 1e-12);
         }

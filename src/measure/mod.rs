@@ -217,7 +217,7 @@ pub fn measure_image(
         .or_else(|| plateau_saturation(&pixels));
     let mut bkg = BackgroundMap::estimate(&pixels, None, params.background)
         .ok_or(MeasureError::NoValidPixels)?;
-    subtract_rows(&mut pixels, &bkg, None);
+    subtract_rows(&mut pixels, &bkg);
     if bkg.median_rms() <= 0.0 {
         // A constant image (or a fully saturated one): nothing to detect.
         return Ok(FrameMeasurement::empty(w, h, bkg.median_level(), 0.0));
@@ -243,14 +243,12 @@ pub fn measure_image(
     // Mask the sources and re-estimate the sky without them (crowded fields), then the
     // noise as the robust scatter of the unmasked pixels about the local background.
     let mask = source_mask(w, h, &candidates, fwhm_guess);
-    let raw_free = {
-        // Put the first background back only where needed: re-estimate on image = residual + bkg.
-        let mut restored = pixels.clone();
-        add_rows(&mut restored, &bkg);
-        BackgroundMap::estimate(&restored, Some(&mask), params.background)
-    };
+    let raw_free =
+        BackgroundMap::estimate_with_offset(&pixels, Some(&mask), Some(&bkg), params.background);
     if let Some(better) = raw_free {
-        subtract_rows(&mut pixels, &better, Some(&bkg));
+        // Both maps share their mesh, and the spline is linear in the mesh values, so
+        // the change is one spline of the differences.
+        subtract_rows(&mut pixels, &better.minus(&bkg));
         bkg = better;
     }
     let noise = robust_noise(&pixels, &mask).unwrap_or_else(|| bkg.median_rms());
@@ -263,7 +261,7 @@ pub fn measure_image(
     // A star whose centre lies half a FWHM inside the frame still shows its core.
     let edge_margin = (0.5 * fwhm_guess).max(1.0);
     // Narrow PSFs are fitted with the model averaged over each pixel (see `psf::Stamp`).
-    let subsample = if fwhm_guess < 4.0 || params.report_pixel > 0.0 {
+    let subsample = if fwhm_guess < 2.8 || params.report_pixel > 0.0 {
         3
     } else {
         1
@@ -285,6 +283,7 @@ pub fn measure_image(
                 sat_residual(c.x, c.y),
                 fwhm_guess,
                 (subsample, params.report_pixel),
+                0.8 * params.min_shape_snr,
             )
         })
         .collect();
@@ -501,7 +500,7 @@ pub fn measure_mosaic(
         .into_iter()
         .filter_map(|mut plane| {
             let b = BackgroundMap::estimate(&plane, None, params.background)?;
-            subtract_rows(&mut plane, &b, None);
+            subtract_rows(&mut plane, &b);
             Some(plane)
         })
         .collect();
@@ -552,26 +551,7 @@ fn to_mosaic_star(s: &mut Star) {
     s.hfr_px = s.hfr_px.map(|v| 2.0 * v);
 }
 
-fn subtract_rows(img: &mut Array2<f32>, bkg: &BackgroundMap, add_back: Option<&BackgroundMap>) {
-    let w = img.ncols();
-    img.as_slice_mut()
-        .expect("standard layout")
-        .par_chunks_mut(w)
-        .enumerate()
-        .for_each(|(y, row)| {
-            let mut level = vec![0.0f32; w];
-            bkg.level_row(y, &mut level);
-            let mut old = vec![0.0f32; w];
-            if let Some(b) = add_back {
-                b.level_row(y, &mut old);
-            }
-            for ((v, l), o) in row.iter_mut().zip(&level).zip(&old) {
-                *v = *v - l + o;
-            }
-        });
-}
-
-fn add_rows(img: &mut Array2<f32>, bkg: &BackgroundMap) {
+fn subtract_rows(img: &mut Array2<f32>, bkg: &BackgroundMap) {
     let w = img.ncols();
     img.as_slice_mut()
         .expect("standard layout")
@@ -581,7 +561,7 @@ fn add_rows(img: &mut Array2<f32>, bkg: &BackgroundMap) {
             let mut level = vec![0.0f32; w];
             bkg.level_row(y, &mut level);
             for (v, l) in row.iter_mut().zip(&level) {
-                *v += l;
+                *v -= l;
             }
         });
 }
@@ -756,6 +736,7 @@ fn measure_candidate(
     saturation_residual: Option<f64>,
     fwhm_guess: f64,
     (subsample, report_pixel): (usize, f64),
+    moffat_min_snr: f64,
 ) -> Outcome {
     let (h, w) = residual.dim();
     // Brightest pixel near the filtered peak.
@@ -830,6 +811,7 @@ fn measure_candidate(
         y_range: (y0 as f64, y1 as f64),
         subsample,
         report_pixel,
+        core_radius: 1.5 * fwhm_guess,
         ..Default::default()
     };
     for y in y0..=y1 {
@@ -861,9 +843,20 @@ fn measure_candidate(
     let Some(gauss) = fit_gaussian(&stamp, guess) else {
         return reject(RejectKind::Unfit, fx, fy);
     };
-    let fit = match fit_moffat(&stamp, &gauss) {
-        Some(m) if m.ssr < gauss.ssr => m,
-        _ => gauss,
+    // The Moffat profile's extra freedom (its wings) is only measurable on stars well
+    // above the noise; stars fainter than the ones that vote on the frame's shape keep
+    // the Gaussian, which halves the fitting time on a typical frame. The SNR here is
+    // the Gaussian's flux over the noise in its optimal footprint, 4πσ_aσ_b pixels.
+    let (ga, gb) = gauss.model_axes();
+    let footprint = 4.0 * std::f64::consts::PI * (ga / 2.3548) * (gb / 2.3548);
+    let snr_estimate = gauss.total_flux() / (noise * footprint.max(1.0).sqrt());
+    let fit = if snr_estimate >= moffat_min_snr {
+        match fit_moffat(&stamp, &gauss) {
+            Some(m) if m.ssr < gauss.ssr => m,
+            _ => gauss,
+        }
+    } else {
+        gauss
     };
     // A fit whose centre wandered off the detection found something else.
     if (fit.x0 - fx).hypot(fit.y0 - fy) > 0.5 * fwhm_guess + 1.5 {

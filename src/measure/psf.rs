@@ -29,6 +29,23 @@ pub struct Stamp {
     /// 1). A colour mosaic is fitted on 2×2 superpixels but reports widths as its own
     /// pixels sample the star: 0.5.
     pub report_pixel: f64,
+    /// Pixels farther than this from the centre are fitted at their centres even when
+    /// `subsample` > 1: the wings are smooth enough (0 = no limit).
+    pub core_radius: f64,
+}
+
+impl Stamp {
+    fn sampling_at(&self, p: &[f64], i: usize) -> usize {
+        if self.subsample <= 1 || self.core_radius <= 0.0 {
+            return self.subsample;
+        }
+        let r2 = (self.x[i] - p[2]).powi(2) + (self.y[i] - p[3]).powi(2);
+        if r2 <= self.core_radius * self.core_radius {
+            self.subsample
+        } else {
+            1
+        }
+    }
 }
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize)]
@@ -368,20 +385,25 @@ fn fit(stamp: &Stamp, model: PsfModel, p0: &[f64]) -> Option<PsfFit> {
         return None;
     }
     let mut grad = [0.0; MAX_PARAMS];
-    let evaluate = |p: &[f64], grad: &mut [f64; MAX_PARAMS], build: bool| {
+    let evaluate = |p: &[f64], grad: &mut [f64; MAX_PARAMS]| {
         let mut jtj = [[0.0; MAX_PARAMS]; MAX_PARAMS];
         let mut jtr = [0.0; MAX_PARAMS];
         let mut ssr = 0.0;
         for i in 0..n {
-            let m = pixel_model(model, p, stamp.x[i], stamp.y[i], stamp.subsample, grad);
+            let m = pixel_model(
+                model,
+                p,
+                stamp.x[i],
+                stamp.y[i],
+                stamp.sampling_at(p, i),
+                grad,
+            );
             let r = stamp.v[i] - m;
             ssr += r * r;
-            if build {
-                for a in 0..np {
-                    jtr[a] += grad[a] * r;
-                    for b in a..np {
-                        jtj[a][b] += grad[a] * grad[b];
-                    }
+            for a in 0..np {
+                jtr[a] += grad[a] * r;
+                for b in a..np {
+                    jtj[a][b] += grad[a] * grad[b];
                 }
             }
         }
@@ -392,56 +414,44 @@ fn fit(stamp: &Stamp, model: PsfModel, p0: &[f64]) -> Option<PsfFit> {
         }
         (ssr, jtj, jtr)
     };
-    let (mut ssr, mut jtj, mut jtr) = evaluate(&p[..np], &mut grad, true);
+    let (mut ssr, mut jtj, mut jtr) = evaluate(&p[..np], &mut grad);
     let mut lambda = 1e-3;
-    let mut converged = false;
-    for _ in 0..100 {
+    for _ in 0..60 {
         let mut a = jtj;
         for i in 0..np {
             a[i][i] += lambda * jtj[i][i].max(1e-12);
         }
-        let Some(step) = solve(&a, &jtr, np) else {
+        let step = solve(&a, &jtr, np);
+        let mut trial = p;
+        if let Some(step) = step {
+            for i in 0..np {
+                trial[i] += step[i];
+            }
+        }
+        if step.is_none() || !allowed(model, &trial[..np], stamp) {
             lambda *= 10.0;
-            if lambda > 1e12 {
+            if lambda > 1e10 {
                 break;
             }
             continue;
-        };
-        let mut trial = p;
-        for i in 0..np {
-            trial[i] += step[i];
         }
-        let ok = allowed(model, &trial[..np], stamp);
-        let trial_ssr = if ok {
-            evaluate(&trial[..np], &mut grad, false).0
-        } else {
-            f64::INFINITY
-        };
+        let (trial_ssr, trial_jtj, trial_jtr) = evaluate(&trial[..np], &mut grad);
         if trial_ssr < ssr {
             let improvement = (ssr - trial_ssr) / ssr.max(1e-300);
-            p = trial;
-            let (s, j, r) = evaluate(&p[..np], &mut grad, true);
-            ssr = s;
-            jtj = j;
-            jtr = r;
+            (p, ssr, jtj, jtr) = (trial, trial_ssr, trial_jtj, trial_jtr);
             lambda = (lambda / 3.0).max(1e-9);
-            if improvement < 1e-9 {
-                converged = true;
+            if improvement < 1e-6 {
                 break;
             }
         } else {
             lambda *= 4.0;
             if lambda > 1e10 {
-                // No downhill step left: at a minimum (or a bound).
-                converged = true;
+                // No downhill step left: at a minimum (or against a bound).
                 break;
             }
         }
     }
-    if !converged && ssr.is_finite() {
-        converged = true; // iteration cap reached with a valid, improved solution
-    }
-    if !converged {
+    if !ssr.is_finite() {
         return None;
     }
     // Covariance by the heteroscedasticity-consistent "sandwich" estimator of White
