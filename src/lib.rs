@@ -4,6 +4,7 @@
 //! wrapped by thin I/O shells (`frame::fits` decoding, `pipeline`, the binary's CLI).
 //! See ARCHITECTURE.md for the map and the invariants.
 
+pub mod buffer;
 pub mod contract;
 pub mod frame;
 pub mod measure;

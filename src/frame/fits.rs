@@ -204,10 +204,8 @@ pub fn decode(path: &Path, limits: DecodeLimits) -> Result<DecodedImage, FrameEr
 
         let cards = read_cards(file.0).map_err(fail)?;
 
-        let mut data: Vec<f32> = Vec::new();
-        data.try_reserve_exact(pixels as usize)
-            .map_err(|_| fail(format!("cannot allocate {pixels} pixels")))?;
-        data.resize(pixels as usize, 0.0);
+        let mut data: Vec<f32> = crate::buffer::try_zeroed(pixels as usize)
+            .ok_or_else(|| fail(format!("cannot allocate {pixels} pixels")))?;
         let mut any_null: c_int = 0;
         // A NaN null value makes cfitsio replace BLANK (integer) pixels by NaN.
         // SAFETY: `data` holds exactly `pixels` elements.

@@ -111,7 +111,7 @@ impl BackgroundMap {
                         if buf.len() * 10 < area * 3 {
                             return None;
                         }
-                        let s = sigma_clip(&mut buf, 3.0, 10)?;
+                        let s = sigma_clip(&mut buf, 3.0, 5)?;
                         Some((s.mode(), s.std / CLIP3_STD_CORRECTION))
                     })
                     .collect::<Vec<_>>()

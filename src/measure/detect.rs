@@ -67,7 +67,8 @@ pub fn convolve_separable(image: &Array2<f32>, kernel: &[f32]) -> Array2<f32> {
     let (h, w) = image.dim();
     let r = kernel.len() / 2;
     let src = image.as_slice().expect("standard layout");
-    let mut out = Array2::<f32>::zeros((h, w));
+    let mut out =
+        Array2::from_shape_vec((h, w), crate::buffer::zeroed(h * w)).expect("shape matches");
     const BAND: usize = 32;
     out.as_slice_mut()
         .expect("standard layout")
@@ -78,21 +79,20 @@ pub fn convolve_separable(image: &Array2<f32>, kernel: &[f32]) -> Array2<f32> {
             let rows = out_rows.len() / w;
             let lo = y0.saturating_sub(r);
             let hi = (y0 + rows + r).min(h);
-            // Horizontal pass for the rows this band needs.
+            // Horizontal pass for the rows this band needs, on a zero-padded copy of each
+            // row (NaN counts as zero) so the inner loop is a plain dot product.
             let mut horiz = vec![0.0f32; (hi - lo) * w];
+            let mut padded = vec![0.0f32; w + 2 * r];
             for y in lo..hi {
-                let s = &src[y * w..(y + 1) * w];
+                for (p, &v) in padded[r..r + w].iter_mut().zip(&src[y * w..(y + 1) * w]) {
+                    *p = if v.is_finite() { v } else { 0.0 };
+                }
                 let d = &mut horiz[(y - lo) * w..(y - lo + 1) * w];
-                for x in 0..w {
-                    let mut acc = 0.0f32;
-                    let k0 = x.saturating_sub(r);
-                    let k1 = (x + r).min(w - 1);
-                    for (xx, &v) in s.iter().enumerate().take(k1 + 1).skip(k0) {
-                        if v.is_finite() {
-                            acc += v * kernel[xx + r - x];
-                        }
+                // One shifted multiply-add per tap: long, vectorisable loops.
+                for (k, &kv) in kernel.iter().enumerate() {
+                    for (o, &p) in d.iter_mut().zip(&padded[k..k + w]) {
+                        *o += kv * p;
                     }
-                    d[x] = acc;
                 }
             }
             // Vertical pass into the output band.
@@ -131,7 +131,7 @@ pub fn detect(
     let f = filtered.as_slice().expect("standard layout");
 
     // 1 = above threshold, 2 = above and already assigned to a component.
-    let mut above = vec![0u8; h * w];
+    let mut above = crate::buffer::zeroed::<u8>(h * w);
     above.par_chunks_mut(w).enumerate().for_each(|(y, row)| {
         let mut rms = vec![0.0f32; w];
         background.rms_row(y, &mut rms);

@@ -243,8 +243,14 @@ pub fn measure_image(
     // Mask the sources and re-estimate the sky without them (crowded fields), then the
     // noise as the robust scatter of the unmasked pixels about the local background.
     let mask = source_mask(w, h, &candidates, fwhm_guess);
-    let raw_free =
-        BackgroundMap::estimate_with_offset(&pixels, Some(&mask), Some(&bkg), params.background);
+    // Clipping alone copes with a sparse field; the masked second estimate is worth its
+    // cost only when sources cover a noticeable part of the sky.
+    let masked_fraction = mask.iter().filter(|&&m| m).count() as f64 / mask.len() as f64;
+    let raw_free = (masked_fraction > 0.03)
+        .then(|| {
+            BackgroundMap::estimate_with_offset(&pixels, Some(&mask), Some(&bkg), params.background)
+        })
+        .flatten();
     if let Some(better) = raw_free {
         // Both maps share their mesh, and the spline is linear in the mesh values, so
         // the change is one spline of the differences.
@@ -641,7 +647,7 @@ fn clean_sharp_pixels(residual: &mut Array2<f32>, bkg: &BackgroundMap) -> Vec<Re
 /// Circles around detections, wider for brighter ones, so their wings stay out of the
 /// sky statistics.
 fn source_mask(w: usize, h: usize, candidates: &[Candidate], fwhm: f64) -> Vec<bool> {
-    let mut mask = vec![false; w * h];
+    let mut mask = crate::buffer::zeroed::<bool>(w * h);
     for c in candidates {
         let r = fwhm * (1.5 + c.significance.max(1.0).log10());
         let ri = r.ceil() as i64;
