@@ -182,18 +182,25 @@ fn weighted_median(pairs: &[(f64, f64)]) -> Option<f64> {
 }
 
 /// Saturation level from a plateau at the image maximum (at least 3 pixels share it).
-fn plateau_saturation(pixels: &Array2<f32>) -> Option<f64> {
-    let max = pixels
-        .iter()
-        .copied()
-        .filter(|v| v.is_finite())
-        .fold(f32::NEG_INFINITY, f32::max);
-    if !max.is_finite() {
-        return None;
-    }
+fn plateau_saturation(pixels: &Array2<f32>, max: f32) -> Option<f64> {
     let tol = (max.abs() * 1e-6).max(1e-3);
-    let at_max = pixels.iter().filter(|&&v| v >= max - tol).take(3).count();
+    let data = pixels.as_slice()?;
+    let at_max = data.par_iter().filter(|&&v| v >= max - tol).count();
     (at_max >= 3).then_some(f64::from(max))
+}
+
+/// Largest finite pixel value; −∞ when there is none.
+fn finite_max(pixels: &Array2<f32>) -> f32 {
+    pixels.as_slice().map_or(f32::NEG_INFINITY, |d| {
+        d.par_chunks(1 << 16)
+            .map(|c| {
+                c.iter()
+                    .copied()
+                    .filter(|v| v.is_finite())
+                    .fold(f32::NEG_INFINITY, f32::max)
+            })
+            .reduce(|| f32::NEG_INFINITY, f32::max)
+    })
 }
 
 /// Measure a single-channel image. Takes ownership so the background can be removed
@@ -209,12 +216,13 @@ pub fn measure_image(
             height: h,
         });
     }
-    if !pixels.iter().any(|v| v.is_finite()) {
+    let max = finite_max(&pixels);
+    if max == f32::NEG_INFINITY {
         return Err(MeasureError::NoValidPixels);
     }
     let saturation = params
         .saturation_adu
-        .or_else(|| plateau_saturation(&pixels));
+        .or_else(|| plateau_saturation(&pixels, max));
     let mut bkg = BackgroundMap::estimate(&pixels, None, params.background)
         .ok_or(MeasureError::NoValidPixels)?;
     subtract_rows(&mut pixels, &bkg);
@@ -263,7 +271,7 @@ pub fn measure_image(
     let sat_residual =
         |x: usize, y: usize| saturation.map(|s| s - bkg.level_at(x as f64, y as f64));
     let grid = CandidateGrid::new(&candidates, w, h, 32);
-    let half = ((2.0 * fwhm_guess + 2.0).ceil() as usize).clamp(4, 30);
+    let half = ((1.6 * fwhm_guess + 2.0).ceil() as usize).clamp(4, 30);
     // A star whose centre lies half a FWHM inside the frame still shows its core.
     let edge_margin = (0.5 * fwhm_guess).max(1.0);
     // Narrow PSFs are fitted with the model averaged over each pixel (see `psf::Stamp`).
@@ -572,6 +580,30 @@ fn subtract_rows(img: &mut Array2<f32>, bkg: &BackgroundMap) {
         });
 }
 
+/// The test of `clean_sharp_pixels` for one interior pixel: its value and the median
+/// of its eight neighbours when it is sharp.
+fn sharp_pixel(img: &Array2<f32>, x: usize, y: usize, sigma: f32) -> Option<(f32, f32)> {
+    let v = img[(y, x)];
+    if v.is_nan() || v <= 6.0 * sigma {
+        return None;
+    }
+    let mut n = [0.0f32; 8];
+    let mut k = 0;
+    for dy in 0..3 {
+        for dx in 0..3 {
+            if dx == 1 && dy == 1 {
+                continue;
+            }
+            let u = img[(y + dy - 1, x + dx - 1)];
+            n[k] = if u.is_finite() { u } else { 0.0 };
+            k += 1;
+        }
+    }
+    n.sort_unstable_by(f32::total_cmp);
+    let med = 0.5 * (n[3] + n[4]);
+    (v - med > 6.0 * sigma && v > 8.0 * med.max(sigma)).then_some((v, med))
+}
+
 /// Find pixels that stand far above the median of their eight neighbours (more than
 /// 6σ, and more than eight times that median): no pixel-sampled star is that sharp (the
 /// centre of a star of FWHM 1.3 px is about 5.5 times the median of its neighbours).
@@ -580,50 +612,47 @@ fn subtract_rows(img: &mut Array2<f32>, bkg: &BackgroundMap) {
 /// adjacent flagged pixels is returned once as a sharp rejection.
 fn clean_sharp_pixels(residual: &mut Array2<f32>, bkg: &BackgroundMap) -> Vec<Rejected> {
     let (h, w) = residual.dim();
-    let mut flagged: Vec<(usize, usize, f32, f32)> = Vec::new();
-    for _pass in 0..2 {
-        let img = &*residual;
-        let found: Vec<(usize, usize, f32, f32)> = (1..h - 1)
-            .into_par_iter()
-            .flat_map_iter(|y| {
-                let mut rms = vec![0.0f32; w];
-                bkg.rms_row(y, &mut rms);
-                let mut out = Vec::new();
-                for x in 1..w - 1 {
-                    let v = img[(y, x)];
-                    let sigma = rms[x];
-                    if v.is_nan() || v <= 6.0 * sigma {
-                        continue;
-                    }
-                    let mut n = [0.0f32; 8];
-                    let mut k = 0;
-                    for dy in 0..3 {
-                        for dx in 0..3 {
-                            if dx == 1 && dy == 1 {
-                                continue;
-                            }
-                            let u = img[(y + dy - 1, x + dx - 1)];
-                            n[k] = if u.is_finite() { u } else { 0.0 };
-                            k += 1;
-                        }
-                    }
-                    n.sort_by(f32::total_cmp);
-                    let med = 0.5 * (n[3] + n[4]);
-                    if v - med > 6.0 * sigma && v > 8.0 * med.max(sigma) {
-                        out.push((x, y, v, med));
-                    }
-                }
-                out
-            })
-            .collect();
+    let img = &*residual;
+    let mut found: Vec<(usize, usize, f32, f32)> = (1..h - 1)
+        .into_par_iter()
+        .flat_map_iter(|y| {
+            let mut rms = vec![0.0f32; w];
+            bkg.rms_row(y, &mut rms);
+            (1..w - 1)
+                .filter_map(|x| sharp_pixel(img, x, y, rms[x]).map(|(v, med)| (x, y, v, med)))
+                .collect::<Vec<_>>()
+        })
+        .collect();
+    let mut flagged = Vec::new();
+    // Replacing a pixel of a cosmic-ray track can expose its neighbour as the next sharp
+    // one; look again only around what was just replaced.
+    for _ in 0..3 {
         if found.is_empty() {
             break;
         }
         for &(x, y, _, med) in &found {
             residual[(y, x)] = med;
         }
-        flagged.extend(found);
+        let mut again: Vec<(usize, usize)> = found
+            .iter()
+            .flat_map(|&(x, y, _, _)| {
+                (y - 1..=y + 1).flat_map(move |ny| (x - 1..=x + 1).map(move |nx| (nx, ny)))
+            })
+            .filter(|&(nx, ny)| nx >= 1 && ny >= 1 && nx < w - 1 && ny < h - 1)
+            .collect();
+        again.sort_unstable();
+        again.dedup();
+        flagged.append(&mut found);
+        let img = &*residual;
+        found = again
+            .into_iter()
+            .filter_map(|(x, y)| {
+                let sigma = bkg.rms_at(x as f64, y as f64) as f32;
+                sharp_pixel(img, x, y, sigma).map(|(v, med)| (x, y, v, med))
+            })
+            .collect();
     }
+    flagged.append(&mut found);
     // Group adjacent pixels (a cosmic-ray track) into one rejection at the brightest.
     flagged.sort_by(|a, b| b.2.total_cmp(&a.2));
     let mut groups: Vec<Rejected> = Vec::new();
