@@ -5,8 +5,12 @@
 //! See ARCHITECTURE.md for the map and the invariants.
 
 pub mod buffer;
+pub mod config;
 pub mod contract;
 pub mod frame;
 pub mod measure;
 pub mod pipeline;
 pub mod sim;
+pub mod sky;
+pub mod store;
+pub mod watch;

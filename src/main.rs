@@ -47,6 +47,26 @@ enum Command {
         #[arg(required = true)]
         files: Vec<PathBuf>,
     },
+    /// Watch the configured folders and record every frame in the store (the daemon).
+    Watch {
+        #[arg(long)]
+        config: PathBuf,
+    },
+    /// Check a configuration file: every key, the folders, the store, the password file.
+    CheckConfig {
+        #[arg(long)]
+        config: PathBuf,
+    },
+    /// Tonight so far: frames seen, measured, errors, last frame, the daemon's queue.
+    Status {
+        #[arg(long)]
+        config: PathBuf,
+        /// Night label (YYYY-MM-DD); default: the night in progress.
+        #[arg(long)]
+        night: Option<String>,
+        #[arg(long)]
+        json: bool,
+    },
     /// Render a synthetic frame with known truth (for tests and demonstrations).
     Render {
         #[arg(long)]
@@ -135,6 +155,39 @@ fn main() -> ExitCode {
 
 fn run(cli: Cli) -> Result<ExitCode> {
     match cli.command {
+        Command::Watch { config } => {
+            let cfg = subwatch::config::load(&config)?;
+            let (errors, warnings) = cfg.check_environment();
+            for w in &warnings {
+                tracing::warn!("{w}");
+            }
+            if !errors.is_empty() {
+                anyhow::bail!("{}: {}", config.display(), errors.join("; "));
+            }
+            subwatch::watch::run(cfg)?;
+            Ok(ExitCode::SUCCESS)
+        }
+        Command::CheckConfig { config } => {
+            let cfg = subwatch::config::load(&config)?;
+            let (errors, warnings) = cfg.check_environment();
+            for w in &warnings {
+                println!("warning: {w}");
+            }
+            for e in &errors {
+                println!("error: {e}");
+            }
+            if errors.is_empty() {
+                println!("{}: ok", config.display());
+                Ok(ExitCode::SUCCESS)
+            } else {
+                Ok(ExitCode::from(1))
+            }
+        }
+        Command::Status {
+            config,
+            night,
+            json,
+        } => status_command(&config, night, json),
         Command::Measure {
             json,
             stars,
@@ -221,6 +274,52 @@ fn run(cli: Cli) -> Result<ExitCode> {
             Ok(ExitCode::SUCCESS)
         }
     }
+}
+
+fn status_command(config: &std::path::Path, night: Option<String>, json: bool) -> Result<ExitCode> {
+    let cfg = subwatch::config::load(config)?;
+    let now = std::time::SystemTime::now()
+        .duration_since(std::time::UNIX_EPOCH)
+        .map_or(0.0, |d| d.as_secs_f64());
+    let night = match night {
+        Some(n) => n,
+        None => subwatch::sky::night_label(now, cfg.timezone()).context("clock out of range")?,
+    };
+    let store = subwatch::store::Store::open(&cfg.store.path)?;
+    let counts = store.night_counts(&night)?;
+    let daemon: Option<serde_json::Value> = store
+        .meta("daemon")?
+        .and_then(|s| serde_json::from_str(&s).ok());
+    let alive = daemon
+        .as_ref()
+        .and_then(|d| d["updated_unix"].as_f64())
+        .is_some_and(|t| now - t < 10.0);
+    if json {
+        let doc = serde_json::json!({
+            "night": night,
+            "counts": counts,
+            "daemon": daemon,
+            "daemon_running": alive,
+        });
+        println!("{doc}");
+    } else {
+        println!("night {night}");
+        println!(
+            "  frames {}  measured {}  errors {}  skipped {}",
+            counts.frames, counts.measured, counts.errors, counts.skipped
+        );
+        if let Some(t) = counts.last_recorded_unix {
+            println!("  last frame recorded {:.0} s ago", now - t);
+        }
+        match (&daemon, alive) {
+            (Some(d), true) => println!(
+                "  daemon running: {} waiting, {} being measured",
+                d["waiting"], d["in_flight"]
+            ),
+            _ => println!("  daemon not running (no heartbeat in the last 10 s)"),
+        }
+    }
+    Ok(ExitCode::SUCCESS)
 }
 
 fn measure_command(

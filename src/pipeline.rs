@@ -73,3 +73,100 @@ pub fn measure_frame(frame: Frame, opts: &MeasureOptions) -> Result<MeasuredFram
         plate_scale,
     })
 }
+
+/// What the daemon needs to turn a file into a stored record.
+#[derive(Debug, Clone)]
+pub struct RecordOptions {
+    pub measure: MeasureOptions,
+    pub timezone: chrono_tz::Tz,
+    /// Folder names that mark calibration frames (lower case).
+    pub calibration_folders: Vec<String>,
+}
+
+/// Why a file is not measured as a light frame, if it is not.
+fn calibration_kind(
+    path: &Path,
+    header: &crate::frame::FrameHeader,
+    folders: &[String],
+) -> Option<String> {
+    use crate::frame::ImageKind;
+    match header.image_kind {
+        Some(ImageKind::Dark) => return Some("dark frame (IMAGETYP)".into()),
+        Some(ImageKind::Flat) => return Some("flat frame (IMAGETYP)".into()),
+        Some(ImageKind::Bias) => return Some("bias frame (IMAGETYP)".into()),
+        Some(ImageKind::Light) => return None,
+        _ => {}
+    }
+    path.parent()?.components().find_map(|c| {
+        let name = c.as_os_str().to_string_lossy().to_lowercase();
+        folders
+            .contains(&name)
+            .then(|| format!("calibration folder {name:?}"))
+    })
+}
+
+/// Decode, classify and measure one file into the record the store keeps. Never fails:
+/// a problem becomes a record with status "error" naming it.
+pub fn record_file(
+    path: &Path,
+    identity: crate::store::Identity,
+    mtime_unix: f64,
+    opts: &RecordOptions,
+) -> crate::store::FrameRecord {
+    use crate::contract::{HeaderFacts, Metrics, StarRecord};
+    use crate::store::{FrameRecord, FrameStatus};
+    let mut rec = FrameRecord {
+        identity,
+        status: FrameStatus::Error,
+        error: None,
+        night: crate::sky::night_label(mtime_unix, opts.timezone),
+        target: folder_name(path),
+        filter: None,
+        time_unix: None,
+        header: None,
+        metrics: None,
+        stars: Vec::new(),
+        rejected: Vec::new(),
+    };
+    let cards = match crate::frame::fits::read_header(path, opts.measure.limits) {
+        Ok(c) => c,
+        Err(e) => {
+            rec.error = Some(e.reason());
+            return rec;
+        }
+    };
+    let header = crate::frame::FrameHeader::from_cards(&cards);
+    if let Some(t) = header.time_unix {
+        rec.time_unix = Some(t);
+        rec.night = crate::sky::night_label(t, opts.timezone);
+    }
+    rec.target = header.object.clone().or(rec.target);
+    rec.filter = header.filter.clone();
+    rec.header = Some(HeaderFacts::new(&header));
+    if let Some(kind) = calibration_kind(path, &header, &opts.calibration_folders) {
+        rec.status = FrameStatus::Skipped;
+        rec.error = Some(kind);
+        return rec;
+    }
+    match measure_file(path, &opts.measure) {
+        Ok(m) => {
+            rec.status = FrameStatus::Ok;
+            rec.metrics = Some(Metrics::new(&m.measurement, m.plate_scale));
+            rec.stars = m
+                .measurement
+                .stars
+                .iter()
+                .map(|s| StarRecord::new(s, &m.frame_header))
+                .collect();
+            rec.rejected = m.measurement.rejected;
+        }
+        Err(e) => rec.error = Some(e.reason()),
+    }
+    rec
+}
+
+fn folder_name(path: &Path) -> Option<String> {
+    path.parent()?
+        .file_name()
+        .map(|n| n.to_string_lossy().into_owned())
+}

@@ -99,6 +99,19 @@ fn check(status: c_int, what: &str) -> Result<(), String> {
 
 /// Decode the first image HDU with data in `path`.
 pub fn decode(path: &Path, limits: DecodeLimits) -> Result<DecodedImage, FrameError> {
+    decode_hdu(path, limits, true)
+}
+
+/// The header cards of the first image HDU with data, without reading its pixels.
+pub fn read_header(path: &Path, limits: DecodeLimits) -> Result<Vec<HeaderCard>, FrameError> {
+    decode_hdu(path, limits, false).map(|d| d.cards)
+}
+
+fn decode_hdu(
+    path: &Path,
+    limits: DecodeLimits,
+    with_pixels: bool,
+) -> Result<DecodedImage, FrameError> {
     let fail = |reason: String| FrameError::Decode {
         path: path.to_path_buf(),
         reason,
@@ -203,6 +216,14 @@ pub fn decode(path: &Path, limits: DecodeLimits) -> Result<DecodedImage, FrameEr
         check(status, "reading BITPIX").map_err(fail)?;
 
         let cards = read_cards(file.0).map_err(fail)?;
+        if !with_pixels {
+            return Ok(DecodedImage {
+                pixels: Array2::zeros((0, 0)),
+                cards,
+                bitpix,
+                hdu_index: (hdu - 1) as usize,
+            });
+        }
 
         let mut data: Vec<f32> = crate::buffer::try_zeroed(pixels as usize)
             .ok_or_else(|| fail(format!("cannot allocate {pixels} pixels")))?;
@@ -261,4 +282,92 @@ fn read_cards(file: *mut sys::fitsfile) -> Result<Vec<HeaderCard>, String> {
         }
     }
     Ok(cards)
+}
+
+/// Whether a plain (not gzip-wrapped) FITS file holds all the bytes its headers promise:
+/// every header block up to END, and each HDU's data, |BITPIX|/8 × GCOUNT × (PCOUNT +
+/// NAXIS1 × … × NAXISn) bytes rounded up to 2880 (FITS Standard 4.0, section 4.4.1).
+/// `None` when the file cannot be read or is not plain FITS (then only the settle time
+/// decides). Reads only the header blocks.
+pub fn looks_complete(path: &Path) -> Option<bool> {
+    use std::io::{Read, Seek, SeekFrom};
+    let mut f = std::fs::File::open(path).ok()?;
+    let len = f.metadata().ok()?.len();
+    let mut magic = [0u8; 6];
+    if f.read_exact(&mut magic).is_err() || &magic != b"SIMPLE" {
+        // Not plain FITS (gzip, or not FITS at all): only the settle time can decide.
+        return None;
+    }
+    let mut offset = 0u64;
+    let mut first = true;
+    let mut block = [0u8; 2880];
+    loop {
+        if offset == len && !first {
+            return Some(true);
+        }
+        // Header: blocks until an END card.
+        let mut values: std::collections::HashMap<String, i64> = std::collections::HashMap::new();
+        let mut ended = false;
+        let mut blocks = 0u64;
+        while !ended {
+            if offset + (blocks + 1) * 2880 > len {
+                return Some(false);
+            }
+            f.seek(SeekFrom::Start(offset + blocks * 2880)).ok()?;
+            f.read_exact(&mut block).ok()?;
+            if !first && blocks == 0 && !block.starts_with(b"XTENSION") {
+                // Trailing bytes that are not an extension: nothing more is promised.
+                return Some(true);
+            }
+            blocks += 1;
+            if blocks > 10_000 {
+                return None;
+            }
+            for card in block.chunks(80) {
+                let text = String::from_utf8_lossy(card);
+                let key = text.get(..8).unwrap_or("").trim().to_string();
+                if key == "END" {
+                    ended = true;
+                    break;
+                }
+                if key == "BITPIX" || key == "GCOUNT" || key == "PCOUNT" || key.starts_with("NAXIS")
+                {
+                    if let Some(v) = text
+                        .get(10..)
+                        .and_then(|v| v.split('/').next())
+                        .and_then(|v| v.trim().parse::<i64>().ok())
+                    {
+                        values.insert(key, v);
+                    }
+                }
+            }
+        }
+        offset += blocks * 2880;
+        let naxis = *values.get("NAXIS").unwrap_or(&0);
+        let bitpix = values.get("BITPIX").copied().unwrap_or(8).unsigned_abs();
+        let mut data = if naxis == 0 { 0u64 } else { 1u64 };
+        for i in 1..=naxis.clamp(0, 999) {
+            let n = values
+                .get(&format!("NAXIS{i}"))
+                .copied()
+                .unwrap_or(0)
+                .max(0) as u64;
+            data = data.saturating_mul(n);
+        }
+        let pcount = values.get("PCOUNT").copied().unwrap_or(0).max(0) as u64;
+        let gcount = values.get("GCOUNT").copied().unwrap_or(1).max(1) as u64;
+        let bytes = (bitpix / 8)
+            .saturating_mul(gcount)
+            .saturating_mul(data.saturating_add(if naxis == 0 { 0 } else { pcount }));
+        let padded = bytes.div_ceil(2880).saturating_mul(2880);
+        if offset.saturating_add(padded) > len {
+            // The last data block may legally lack its padding; the data itself must be there.
+            return Some(offset.saturating_add(bytes) <= len);
+        }
+        offset += padded;
+        first = false;
+        if offset >= len {
+            return Some(true);
+        }
+    }
 }

@@ -1,0 +1,450 @@
+//! The SQLite store: the only module that speaks SQL. One file, WAL mode, a schema version
+//! and forward migrations. A frame and its stars are written in one transaction, and a
+//! frame's identity (path, size, modification time) is unique, so a frame is recorded
+//! exactly once however often the daemon is killed and restarted.
+
+use std::path::{Path, PathBuf};
+
+use rusqlite::{params, Connection, OptionalExtension};
+use serde::Serialize;
+
+use crate::contract::{HeaderFacts, Metrics, StarRecord};
+use crate::measure::Rejected;
+
+#[derive(Debug, thiserror::Error)]
+pub enum StoreError {
+    #[error("store {path}: {source}")]
+    Sqlite {
+        path: PathBuf,
+        #[source]
+        source: rusqlite::Error,
+    },
+    #[error("store {path}: schema version {found} is newer than this program understands ({known}); upgrade subwatch")]
+    TooNew {
+        path: PathBuf,
+        found: i64,
+        known: i64,
+    },
+}
+
+/// What makes a file the same file: replacing it (new size or time) makes a new frame.
+#[derive(Debug, Clone, PartialEq, Eq, Hash)]
+pub struct Identity {
+    pub path: String,
+    pub size: u64,
+    pub mtime_ns: i64,
+}
+
+impl Identity {
+    pub fn of(path: &Path) -> std::io::Result<Self> {
+        let m = std::fs::metadata(path)?;
+        let mtime = m.modified()?;
+        let mtime_ns = match mtime.duration_since(std::time::UNIX_EPOCH) {
+            Ok(d) => d.as_nanos() as i64,
+            Err(e) => -(e.duration().as_nanos() as i64),
+        };
+        Ok(Self {
+            path: path.to_string_lossy().into_owned(),
+            size: m.len(),
+            mtime_ns,
+        })
+    }
+}
+
+/// How a frame ended up.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "lowercase")]
+pub enum FrameStatus {
+    Ok,
+    Error,
+    /// Not a light frame (dark, flat, bias).
+    Skipped,
+}
+
+impl FrameStatus {
+    fn as_str(self) -> &'static str {
+        match self {
+            FrameStatus::Ok => "ok",
+            FrameStatus::Error => "error",
+            FrameStatus::Skipped => "skipped",
+        }
+    }
+}
+
+/// Everything recorded about one frame.
+#[derive(Debug, Clone)]
+pub struct FrameRecord {
+    pub identity: Identity,
+    pub status: FrameStatus,
+    pub error: Option<String>,
+    pub night: Option<String>,
+    /// OBJECT, else the frame's folder name.
+    pub target: Option<String>,
+    pub filter: Option<String>,
+    pub time_unix: Option<f64>,
+    pub header: Option<HeaderFacts>,
+    pub metrics: Option<Metrics>,
+    pub stars: Vec<StarRecord>,
+    pub rejected: Vec<Rejected>,
+}
+
+/// A row for reports and status.
+#[derive(Debug, Clone, Serialize)]
+pub struct StoredFrame {
+    pub id: i64,
+    pub path: String,
+    pub status: String,
+    pub error: Option<String>,
+    pub night: Option<String>,
+    pub target: Option<String>,
+    pub filter: Option<String>,
+    pub time_unix: Option<f64>,
+    pub metrics: Option<serde_json::Value>,
+    pub recorded_at: f64,
+}
+
+/// Counts for `subwatch status`.
+#[derive(Debug, Clone, Default, Serialize)]
+pub struct NightCounts {
+    pub frames: i64,
+    pub measured: i64,
+    pub errors: i64,
+    pub skipped: i64,
+    pub last_frame_time_unix: Option<f64>,
+    pub last_recorded_unix: Option<f64>,
+}
+
+pub const SCHEMA_VERSION: i64 = 1;
+
+const MIGRATIONS: &[&str] = &[
+    // 1: frames, their stars and rejected detections, and a key-value table.
+    "CREATE TABLE meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
+     CREATE TABLE frames (
+        id INTEGER PRIMARY KEY,
+        path TEXT NOT NULL,
+        size INTEGER NOT NULL,
+        mtime_ns INTEGER NOT NULL,
+        status TEXT NOT NULL,
+        error TEXT,
+        night TEXT,
+        target TEXT,
+        filter TEXT,
+        time_unix REAL,
+        header_json TEXT,
+        metrics_json TEXT,
+        star_count INTEGER,
+        fwhm_px REAL,
+        eccentricity REAL,
+        background_adu REAL,
+        noise_adu REAL,
+        recorded_at REAL NOT NULL,
+        UNIQUE (path, size, mtime_ns)
+     );
+     CREATE INDEX frames_night ON frames (night, target, filter);
+     CREATE TABLE stars (
+        frame_id INTEGER NOT NULL REFERENCES frames (id) ON DELETE CASCADE,
+        x REAL NOT NULL, y REAL NOT NULL, flux REAL, fwhm_px REAL, eccentricity REAL,
+        snr REAL, ra_deg REAL, dec_deg REAL, r REAL, g REAL, b REAL
+     );
+     CREATE INDEX stars_frame ON stars (frame_id);
+     CREATE TABLE rejected (
+        frame_id INTEGER NOT NULL REFERENCES frames (id) ON DELETE CASCADE,
+        x REAL NOT NULL, y REAL NOT NULL, kind TEXT NOT NULL, peak_adu REAL
+     );",
+];
+
+pub struct Store {
+    conn: Connection,
+    path: PathBuf,
+}
+
+impl Store {
+    /// Open (creating if needed) and migrate the store.
+    pub fn open(path: &Path) -> Result<Self, StoreError> {
+        let err = |source| StoreError::Sqlite {
+            path: path.to_path_buf(),
+            source,
+        };
+        let conn = Connection::open(path).map_err(err)?;
+        conn.busy_timeout(std::time::Duration::from_secs(10))
+            .map_err(err)?;
+        conn.execute_batch(
+            "PRAGMA journal_mode = WAL; PRAGMA synchronous = NORMAL; PRAGMA foreign_keys = ON;",
+        )
+        .map_err(err)?;
+        let mut store = Store {
+            conn,
+            path: path.to_path_buf(),
+        };
+        store.migrate()?;
+        Ok(store)
+    }
+
+    fn err(&self, source: rusqlite::Error) -> StoreError {
+        StoreError::Sqlite {
+            path: self.path.clone(),
+            source,
+        }
+    }
+
+    fn migrate(&mut self) -> Result<(), StoreError> {
+        let version: i64 = self
+            .conn
+            .query_row("PRAGMA user_version", [], |r| r.get(0))
+            .map_err(|e| self.err(e))?;
+        if version > SCHEMA_VERSION {
+            return Err(StoreError::TooNew {
+                path: self.path.clone(),
+                found: version,
+                known: SCHEMA_VERSION,
+            });
+        }
+        for (i, sql) in MIGRATIONS.iter().enumerate().skip(version as usize) {
+            let tx = self.conn.transaction().map_err(|e| StoreError::Sqlite {
+                path: self.path.clone(),
+                source: e,
+            })?;
+            tx.execute_batch(sql)
+                .and_then(|_| tx.execute_batch(&format!("PRAGMA user_version = {}", i + 1)))
+                .and_then(|_| tx.commit())
+                .map_err(|e| StoreError::Sqlite {
+                    path: self.path.clone(),
+                    source: e,
+                })?;
+        }
+        Ok(())
+    }
+
+    /// Whether this exact file (path, size, time) is already recorded.
+    pub fn contains(&self, id: &Identity) -> Result<bool, StoreError> {
+        self.conn
+            .query_row(
+                "SELECT 1 FROM frames WHERE path = ?1 AND size = ?2 AND mtime_ns = ?3",
+                params![id.path, id.size as i64, id.mtime_ns],
+                |_| Ok(()),
+            )
+            .optional()
+            .map(|r| r.is_some())
+            .map_err(|e| self.err(e))
+    }
+
+    /// Record a frame with its stars, atomically. Returns false when that identity was
+    /// already recorded (nothing is written then).
+    pub fn record(&mut self, f: &FrameRecord, now_unix: f64) -> Result<bool, StoreError> {
+        let path = self.path.clone();
+        let err = |source| StoreError::Sqlite {
+            path: path.clone(),
+            source,
+        };
+        let tx = self.conn.transaction().map_err(err)?;
+        let metrics_json = f
+            .metrics
+            .as_ref()
+            .map(|m| serde_json::to_string(m).unwrap_or_default());
+        let header_json = f
+            .header
+            .as_ref()
+            .map(|h| serde_json::to_string(h).unwrap_or_default());
+        let m = f.metrics.as_ref();
+        let inserted = tx
+            .execute(
+                "INSERT OR IGNORE INTO frames (path, size, mtime_ns, status, error, night, target, filter,
+                    time_unix, header_json, metrics_json, star_count, fwhm_px, eccentricity,
+                    background_adu, noise_adu, recorded_at)
+                 VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17)",
+                params![
+                    f.identity.path,
+                    f.identity.size as i64,
+                    f.identity.mtime_ns,
+                    f.status.as_str(),
+                    f.error,
+                    f.night,
+                    f.target,
+                    f.filter,
+                    f.time_unix,
+                    header_json,
+                    metrics_json,
+                    m.map(|m| m.star_count as i64),
+                    m.and_then(|m| m.fwhm_px),
+                    m.and_then(|m| m.eccentricity),
+                    m.map(|m| m.background_adu),
+                    m.map(|m| m.noise_adu),
+                    now_unix,
+                ],
+            )
+            .map_err(err)?;
+        if inserted == 0 {
+            return Ok(false);
+        }
+        let frame_id = tx.last_insert_rowid();
+        {
+            let mut st = tx
+                .prepare_cached(
+                    "INSERT INTO stars (frame_id, x, y, flux, fwhm_px, eccentricity, snr, ra_deg, dec_deg, r, g, b)
+                     VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12)",
+                )
+                .map_err(err)?;
+            for s in &f.stars {
+                let c = |i: usize| s.rgb.and_then(|c| c[i]);
+                st.execute(params![
+                    frame_id,
+                    s.x,
+                    s.y,
+                    s.flux,
+                    s.fwhm_px,
+                    s.eccentricity,
+                    s.snr,
+                    s.ra_deg,
+                    s.dec_deg,
+                    c(0),
+                    c(1),
+                    c(2)
+                ])
+                .map_err(err)?;
+            }
+            let mut rj = tx
+                .prepare_cached("INSERT INTO rejected (frame_id, x, y, kind, peak_adu) VALUES (?1, ?2, ?3, ?4, ?5)")
+                .map_err(err)?;
+            for r in &f.rejected {
+                let kind = serde_json::to_value(r.kind)
+                    .ok()
+                    .and_then(|v| v.as_str().map(String::from))
+                    .unwrap_or_default();
+                rj.execute(params![frame_id, r.x, r.y, kind, r.peak_adu])
+                    .map_err(err)?;
+            }
+        }
+        tx.commit().map_err(err)?;
+        Ok(true)
+    }
+
+    /// All recorded identities (for the catch-up scan).
+    pub fn identities(&self) -> Result<std::collections::HashSet<Identity>, StoreError> {
+        let mut st = self
+            .conn
+            .prepare("SELECT path, size, mtime_ns FROM frames")
+            .map_err(|e| self.err(e))?;
+        let rows = st
+            .query_map([], |r| {
+                Ok(Identity {
+                    path: r.get(0)?,
+                    size: r.get::<_, i64>(1)? as u64,
+                    mtime_ns: r.get(2)?,
+                })
+            })
+            .map_err(|e| self.err(e))?;
+        rows.collect::<Result<_, _>>().map_err(|e| self.err(e))
+    }
+
+    /// Frames of one night, in time order.
+    pub fn frames_of_night(&self, night: &str) -> Result<Vec<StoredFrame>, StoreError> {
+        let mut st = self
+            .conn
+            .prepare(
+                "SELECT id, path, status, error, night, target, filter, time_unix, metrics_json, recorded_at
+                 FROM frames WHERE night = ?1 ORDER BY COALESCE(time_unix, recorded_at), id",
+            )
+            .map_err(|e| self.err(e))?;
+        let rows = st
+            .query_map(params![night], |r| {
+                let metrics: Option<String> = r.get(8)?;
+                Ok(StoredFrame {
+                    id: r.get(0)?,
+                    path: r.get(1)?,
+                    status: r.get(2)?,
+                    error: r.get(3)?,
+                    night: r.get(4)?,
+                    target: r.get(5)?,
+                    filter: r.get(6)?,
+                    time_unix: r.get(7)?,
+                    metrics: metrics.and_then(|m| serde_json::from_str(&m).ok()),
+                    recorded_at: r.get(9)?,
+                })
+            })
+            .map_err(|e| self.err(e))?;
+        rows.collect::<Result<_, _>>().map_err(|e| self.err(e))
+    }
+
+    /// Counts for one night.
+    pub fn night_counts(&self, night: &str) -> Result<NightCounts, StoreError> {
+        self.conn
+            .query_row(
+                "SELECT COUNT(*),
+                        COALESCE(SUM(status = 'ok'), 0),
+                        COALESCE(SUM(status = 'error'), 0),
+                        COALESCE(SUM(status = 'skipped'), 0),
+                        MAX(time_unix), MAX(recorded_at)
+                 FROM frames WHERE night = ?1",
+                params![night],
+                |r| {
+                    Ok(NightCounts {
+                        frames: r.get(0)?,
+                        measured: r.get(1)?,
+                        errors: r.get(2)?,
+                        skipped: r.get(3)?,
+                        last_frame_time_unix: r.get(4)?,
+                        last_recorded_unix: r.get(5)?,
+                    })
+                },
+            )
+            .map_err(|e| self.err(e))
+    }
+
+    pub fn set_meta(&self, key: &str, value: &str) -> Result<(), StoreError> {
+        self.conn
+            .execute(
+                "INSERT INTO meta (key, value) VALUES (?1, ?2) ON CONFLICT (key) DO UPDATE SET value = excluded.value",
+                params![key, value],
+            )
+            .map(|_| ())
+            .map_err(|e| self.err(e))
+    }
+
+    pub fn meta(&self, key: &str) -> Result<Option<String>, StoreError> {
+        self.conn
+            .query_row("SELECT value FROM meta WHERE key = ?1", params![key], |r| {
+                r.get(0)
+            })
+            .optional()
+            .map_err(|e| self.err(e))
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn record(path: &str, size: u64) -> FrameRecord {
+        FrameRecord {
+            identity: Identity {
+                path: path.into(),
+                size,
+                mtime_ns: 7,
+            },
+            status: FrameStatus::Ok,
+            error: None,
+            night: Some("2026-03-14".into()),
+            target: Some("Kestrel Field A".into()),
+            filter: Some("L".into()),
+            time_unix: Some(1.0),
+            header: None,
+            metrics: None,
+            stars: Vec::new(),
+            rejected: Vec::new(),
+        }
+    }
+
+    #[test]
+    fn a_frame_is_recorded_once_and_a_replaced_file_again() {
+        let dir = tempfile::tempdir().unwrap();
+        let mut s = Store::open(&dir.path().join("s.db")).unwrap();
+        assert!(s.record(&record("/a.fits", 10), 1.0).unwrap());
+        assert!(!s.record(&record("/a.fits", 10), 2.0).unwrap());
+        assert!(s.record(&record("/a.fits", 11), 3.0).unwrap());
+        assert_eq!(s.night_counts("2026-03-14").unwrap().frames, 2);
+        // Reopening migrates nothing and keeps the rows.
+        drop(s);
+        let s = Store::open(&dir.path().join("s.db")).unwrap();
+        assert_eq!(s.identities().unwrap().len(), 2);
+    }
+}

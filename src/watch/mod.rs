@@ -1,0 +1,454 @@
+//! The daemon: decides *when* a file goes through the pipeline. File events (or polling)
+//! name candidate files; the settle tracker says when each is complete; a bounded number
+//! of workers measure them; the store records each exactly once. A periodic rescan of
+//! the folders against the store catches anything an event missed, and at start-up it
+//! catches up on frames that landed while the daemon was down.
+//!
+//! This module reads the wall clock and the file system; measurement and recording live
+//! in `pipeline` and `store`.
+
+pub mod patterns;
+pub mod settle;
+
+use std::collections::{HashSet, VecDeque};
+use std::panic::{catch_unwind, AssertUnwindSafe};
+use std::path::{Path, PathBuf};
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::{Arc, Mutex};
+use std::time::{Duration, Instant, SystemTime, UNIX_EPOCH};
+
+use notify::Watcher;
+use tokio::sync::mpsc;
+use tokio::task::JoinSet;
+
+use crate::config::Config;
+use crate::pipeline::{record_file, MeasureOptions, RecordOptions};
+use crate::store::{FrameStatus, Identity, Store, StoreError};
+use settle::{Observation, SettleTracker};
+
+#[derive(Debug, thiserror::Error)]
+pub enum WatchError {
+    #[error(transparent)]
+    Store(#[from] StoreError),
+    #[error("cannot watch {path}: {source}")]
+    Notify {
+        path: PathBuf,
+        #[source]
+        source: notify::Error,
+    },
+    #[error("cannot start the runtime: {0}")]
+    Runtime(std::io::Error),
+}
+
+fn unix_now() -> f64 {
+    SystemTime::now()
+        .duration_since(UNIX_EPOCH)
+        .map_or(0.0, |d| d.as_secs_f64())
+}
+
+fn observe(path: &Path) -> Option<(Observation, SystemTime)> {
+    let m = std::fs::metadata(path).ok()?;
+    if !m.is_file() {
+        return None;
+    }
+    let mtime = m.modified().ok()?;
+    let mtime_ns = mtime
+        .duration_since(UNIX_EPOCH)
+        .map_or(0, |d| d.as_nanos() as i64);
+    Some((
+        Observation {
+            size: m.len(),
+            mtime_ns,
+        },
+        mtime,
+    ))
+}
+
+/// Options derived from the configuration for each frame.
+pub fn record_options(config: &Config) -> RecordOptions {
+    let mut measure = MeasureOptions {
+        focal_length_mm: config.optics.focal_length_mm,
+        pixel_size_um: config.optics.pixel_size_um,
+        ..Default::default()
+    };
+    measure.limits.max_pixels = config.measure.max_pixels;
+    measure.params.detect.sigma = config.measure.detect_sigma;
+    measure.params.gain_e_per_adu = config.optics.gain_e_per_adu;
+    measure.params.saturation_adu = config.optics.saturation_adu;
+    RecordOptions {
+        measure,
+        timezone: config.timezone(),
+        calibration_folders: config
+            .watch
+            .calibration_folders
+            .iter()
+            .map(|s| s.to_lowercase())
+            .collect(),
+    }
+}
+
+/// Every candidate frame under the watched folders (recursively).
+fn scan(config: &Config) -> Vec<PathBuf> {
+    let mut out = Vec::new();
+    let mut stack: Vec<PathBuf> = config.watch.folders.clone();
+    while let Some(dir) = stack.pop() {
+        let Ok(entries) = std::fs::read_dir(&dir) else {
+            tracing::warn!("cannot read folder {}", dir.display());
+            continue;
+        };
+        for e in entries.flatten() {
+            let path = e.path();
+            let Ok(ft) = e.file_type() else { continue };
+            let name = e.file_name().to_string_lossy().into_owned();
+            if ft.is_dir() {
+                if !name.starts_with('.') {
+                    stack.push(path);
+                }
+            } else if ft.is_file()
+                && patterns::is_candidate(&name, &config.watch.include, &config.watch.exclude)
+            {
+                out.push(path);
+            }
+        }
+    }
+    out
+}
+
+/// Tell systemd (Type=notify) about our state, when it is listening.
+fn sd_notify(state: &str) {
+    let Some(socket) = std::env::var_os("NOTIFY_SOCKET") else {
+        return;
+    };
+    let Ok(sock) = std::os::unix::net::UnixDatagram::unbound() else {
+        return;
+    };
+    let name = socket.to_string_lossy().into_owned();
+    let sent = if let Some(abstract_name) = name.strip_prefix('@') {
+        #[cfg(target_os = "linux")]
+        {
+            use std::os::linux::net::SocketAddrExt;
+            std::os::unix::net::SocketAddr::from_abstract_name(abstract_name.as_bytes())
+                .and_then(|addr| sock.send_to_addr(state.as_bytes(), &addr))
+        }
+        #[cfg(not(target_os = "linux"))]
+        {
+            let _ = abstract_name;
+            Ok(0)
+        }
+    } else {
+        sock.send_to(state.as_bytes(), &name)
+    };
+    if let Err(e) = sent {
+        tracing::debug!("sd_notify {state}: {e}");
+    }
+}
+
+struct Shared {
+    store: Mutex<Store>,
+    options: RecordOptions,
+}
+
+/// Measure and record one file on a worker thread. Returns what to log.
+fn process(shared: &Shared, path: &Path) -> Option<String> {
+    let (obs, mtime) = observe(path)?;
+    let identity = Identity {
+        path: path.to_string_lossy().into_owned(),
+        size: obs.size,
+        mtime_ns: obs.mtime_ns,
+    };
+    let mtime_unix = mtime
+        .duration_since(UNIX_EPOCH)
+        .map_or(0.0, |d| d.as_secs_f64());
+    let record = match catch_unwind(AssertUnwindSafe(|| {
+        record_file(path, identity.clone(), mtime_unix, &shared.options)
+    })) {
+        Ok(r) => r,
+        Err(_) => {
+            let mut r = record_file_error(
+                identity,
+                "internal error while measuring (a bug; please report it)",
+            );
+            r.night = crate::sky::night_label(mtime_unix, shared.options.timezone);
+            r
+        }
+    };
+    let line = match (&record.status, &record.metrics) {
+        (FrameStatus::Ok, Some(m)) => format!(
+            "{} ok stars={} fwhm_px={} ecc={} bkg={:.1} noise={:.2}",
+            path.display(),
+            m.star_count,
+            m.fwhm_px.map_or("-".into(), |v| format!("{v:.2}")),
+            m.eccentricity.map_or("-".into(), |v| format!("{v:.2}")),
+            m.background_adu,
+            m.noise_adu
+        ),
+        (FrameStatus::Skipped, _) => format!(
+            "{} skipped: {}",
+            path.display(),
+            record.error.as_deref().unwrap_or("")
+        ),
+        _ => format!(
+            "{} error: {}",
+            path.display(),
+            record.error.as_deref().unwrap_or("")
+        ),
+    };
+    let mut store = shared.store.lock().unwrap_or_else(|p| p.into_inner());
+    match store.record(&record, unix_now()) {
+        Ok(true) => Some(line),
+        Ok(false) => None,
+        Err(e) => Some(format!("{}: not recorded: {e}", path.display())),
+    }
+}
+
+fn record_file_error(identity: Identity, reason: &str) -> crate::store::FrameRecord {
+    crate::store::FrameRecord {
+        identity,
+        status: FrameStatus::Error,
+        error: Some(reason.into()),
+        night: None,
+        target: None,
+        filter: None,
+        time_unix: None,
+        header: None,
+        metrics: None,
+        stars: Vec::new(),
+        rejected: Vec::new(),
+    }
+}
+
+/// Run the daemon until SIGTERM or SIGINT.
+pub fn run(config: Config) -> Result<(), WatchError> {
+    let workers = if config.watch.workers == 0 {
+        std::thread::available_parallelism().map_or(2, |n| n.get())
+    } else {
+        config.watch.workers
+    };
+    let runtime = tokio::runtime::Builder::new_multi_thread()
+        .worker_threads(1)
+        .max_blocking_threads(workers.max(1) + 1)
+        .enable_all()
+        .build()
+        .map_err(WatchError::Runtime)?;
+    runtime.block_on(daemon(config, workers))
+}
+
+async fn daemon(mut config: Config, workers: usize) -> Result<(), WatchError> {
+    // One spelling per file: events, scans and the store all see canonical paths.
+    for folder in config.watch.folders.iter_mut() {
+        *folder = std::fs::canonicalize(&*folder).map_err(|e| WatchError::Notify {
+            path: folder.clone(),
+            source: notify::Error::io(e),
+        })?;
+    }
+    let store = Store::open(&config.store.path)?;
+    let mut recorded: HashSet<Identity> = store.identities()?;
+    let shared = Arc::new(Shared {
+        store: Mutex::new(store),
+        options: record_options(&config),
+    });
+
+    // File events: notify runs its own thread and only forwards paths.
+    let (tx, mut rx) = mpsc::channel::<PathBuf>(8192);
+    let overflow = Arc::new(AtomicBool::new(false));
+    let _watcher = if config.watch.poll_seconds == 0.0 {
+        let overflow = overflow.clone();
+        let mut w =
+            notify::recommended_watcher(move |res: notify::Result<notify::Event>| match res {
+                Ok(ev) => {
+                    for p in ev.paths {
+                        if tx.try_send(p).is_err() {
+                            overflow.store(true, Ordering::Relaxed);
+                        }
+                    }
+                }
+                Err(_) => overflow.store(true, Ordering::Relaxed),
+            })
+            .map_err(|source| WatchError::Notify {
+                path: PathBuf::new(),
+                source,
+            })?;
+        for folder in &config.watch.folders {
+            w.watch(folder, notify::RecursiveMode::Recursive)
+                .map_err(|source| WatchError::Notify {
+                    path: folder.clone(),
+                    source,
+                })?;
+        }
+        Some(w)
+    } else {
+        drop(tx);
+        None
+    };
+
+    let settle = config.watch.settle_seconds;
+    let start = Instant::now();
+    let clock = || start.elapsed().as_secs_f64();
+    let mut tracker = SettleTracker::default();
+    let mut ready: VecDeque<PathBuf> = VecDeque::new();
+    let mut in_flight: HashSet<PathBuf> = HashSet::new();
+    let mut jobs: JoinSet<(PathBuf, Option<String>)> = JoinSet::new();
+
+    let consider = |path: PathBuf,
+                    tracker: &mut SettleTracker,
+                    recorded: &HashSet<Identity>,
+                    in_flight: &HashSet<PathBuf>,
+                    ready: &VecDeque<PathBuf>,
+                    now: f64| {
+        if in_flight.contains(&path) || tracker.contains(&path) || ready.contains(&path) {
+            return;
+        }
+        let name = path
+            .file_name()
+            .map(|n| n.to_string_lossy().into_owned())
+            .unwrap_or_default();
+        if !patterns::is_candidate(&name, &config.watch.include, &config.watch.exclude) {
+            return;
+        }
+        let Some((obs, mtime)) = observe(&path) else {
+            return;
+        };
+        let id = Identity {
+            path: path.to_string_lossy().into_owned(),
+            size: obs.size,
+            mtime_ns: obs.mtime_ns,
+        };
+        if recorded.contains(&id) {
+            return;
+        }
+        let age = SystemTime::now()
+            .duration_since(mtime)
+            .map_or(0.0, |d| d.as_secs_f64());
+        tracker.track(path, obs, now, age);
+    };
+
+    // Catch up: everything already in the folders that the store has not recorded.
+    let mut initial = scan(&config);
+    initial.sort_by_key(|p| observe(p).map(|(o, _)| o.mtime_ns).unwrap_or(0));
+    for p in initial {
+        consider(p, &mut tracker, &recorded, &in_flight, &ready, clock());
+    }
+    tracing::info!(
+        "watching {} folder(s), {} frame(s) to catch up on, {} worker(s)",
+        config.watch.folders.len(),
+        tracker.len(),
+        workers
+    );
+    sd_notify("READY=1");
+
+    let tick = Duration::from_secs_f64((settle / 4.0).clamp(0.05, 1.0));
+    let mut ticker = tokio::time::interval(tick);
+    let rescan_every = if config.watch.poll_seconds > 0.0 {
+        config.watch.poll_seconds
+    } else {
+        config.watch.rescan_seconds
+    };
+    let mut rescan = tokio::time::interval(Duration::from_secs_f64(rescan_every));
+    rescan.tick().await;
+    let mut heartbeat = tokio::time::interval(Duration::from_secs(2));
+    let mut sigterm = tokio::signal::unix::signal(tokio::signal::unix::SignalKind::terminate())
+        .map_err(WatchError::Runtime)?;
+    let mut sigint = tokio::signal::unix::signal(tokio::signal::unix::SignalKind::interrupt())
+        .map_err(WatchError::Runtime)?;
+
+    loop {
+        tokio::select! {
+            _ = sigterm.recv() => break,
+            _ = sigint.recv() => break,
+            Some(path) = rx.recv() => {
+                consider(path, &mut tracker, &recorded, &in_flight, &ready, clock());
+            }
+            _ = rescan.tick() => {
+                overflow.store(false, Ordering::Relaxed);
+                for p in scan(&config) {
+                    consider(p, &mut tracker, &recorded, &in_flight, &ready, clock());
+                }
+            }
+            _ = heartbeat.tick() => {
+                let state = serde_json::json!({
+                    "pid": std::process::id(),
+                    "waiting": tracker.len() + ready.len(),
+                    "in_flight": in_flight.len(),
+                    "updated_unix": unix_now(),
+                });
+                let shared = shared.clone();
+                let _ = tokio::task::spawn_blocking(move || {
+                    let store = shared.store.lock().unwrap_or_else(|p| p.into_inner());
+                    store.set_meta("daemon", &state.to_string())
+                }).await;
+            }
+            Some(done) = jobs.join_next() => {
+                match done {
+                    Ok((path, line)) => {
+                        in_flight.remove(&path);
+                        if let Some(line) = line {
+                            tracing::info!("{line}");
+                        }
+                        if let Some((obs, _)) = observe(&path) {
+                            recorded.insert(Identity {
+                                path: path.to_string_lossy().into_owned(),
+                                size: obs.size,
+                                mtime_ns: obs.mtime_ns,
+                            });
+                        }
+                    }
+                    Err(e) => tracing::error!("worker failed: {e}"),
+                }
+            }
+            _ = ticker.tick() => {
+                if overflow.swap(false, Ordering::Relaxed) {
+                    // Events were dropped: the folders themselves are the truth.
+                    for p in scan(&config) {
+                        consider(p, &mut tracker, &recorded, &in_flight, &ready, clock());
+                    }
+                }
+                let now = clock();
+                for path in tracker.paths() {
+                    if ready.len() >= config.watch.queue_limit {
+                        break;
+                    }
+                    let obs = observe(&path).map(|(o, _)| o);
+                    if tracker.observe(&path, obs, now, settle) {
+                        // Complete by the header's own account (plain FITS), or not
+                        // checkable (compressed): the settle time alone decides.
+                        // A file that stays short for a long time was cut off (a
+                        // crash mid-write): it is measured, and recorded with its error.
+                        let given_up = tracker.stable_for(&path, now) > (10.0 * settle).max(60.0);
+                        if given_up || crate::frame::fits::looks_complete(&path) != Some(false) {
+                            tracker.forget(&path);
+                            ready.push_back(path);
+                        }
+                    }
+                }
+            }
+        }
+        while in_flight.len() < workers {
+            let Some(path) = ready.pop_front() else { break };
+            in_flight.insert(path.clone());
+            let shared = shared.clone();
+            jobs.spawn_blocking(move || {
+                let line = process(&shared, &path);
+                (path, line)
+            });
+        }
+    }
+
+    tracing::info!("stopping: finishing {} frame(s) in flight", in_flight.len());
+    sd_notify("STOPPING=1");
+    let deadline = tokio::time::sleep(Duration::from_secs(120));
+    tokio::pin!(deadline);
+    while !jobs.is_empty() {
+        tokio::select! {
+            _ = &mut deadline => {
+                tracing::warn!("gave up waiting for {} frame(s); they will be measured at the next start", jobs.len());
+                break;
+            }
+            Some(done) = jobs.join_next() => {
+                if let Ok((_, Some(line))) = done {
+                    tracing::info!("{line}");
+                }
+            }
+        }
+    }
+    Ok(())
+}
