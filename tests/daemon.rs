@@ -1,0 +1,285 @@
+//! The watch daemon as a user runs it: a real process, real folders, a real SQLite file.
+//! Frames written slowly, renamed into place, dropped by the hundred, mixed with broken
+//! files and calibration frames; the process killed with SIGKILL and restarted. Each
+//! frame must be recorded exactly once.
+
+mod common;
+
+use std::io::Write;
+use std::path::{Path, PathBuf};
+use std::process::{Child, Command, Stdio};
+use std::time::{Duration, Instant};
+
+use subwatch::frame::write::{write_frame, Encoding, OutValue};
+use subwatch::sim::{render, SimParams};
+
+struct Daemon {
+    child: Child,
+}
+
+impl Daemon {
+    fn start(config: &Path) -> Daemon {
+        let child = Command::new(common::binary())
+            .args(["watch", "--config"])
+            .arg(config)
+            .env("SUBWATCH_LOG", "info")
+            .stdout(Stdio::null())
+            .stderr(Stdio::null())
+            .spawn()
+            .expect("start daemon");
+        Daemon { child }
+    }
+
+    fn pid(&self) -> u32 {
+        self.child.id()
+    }
+
+    fn kill9(mut self) {
+        let _ = self.child.kill();
+        let _ = self.child.wait();
+    }
+
+    /// SIGTERM, then the exit status.
+    fn terminate(mut self) -> std::process::ExitStatus {
+        unsafe {
+            libc::kill(self.child.id() as i32, libc::SIGTERM);
+        }
+        self.child.wait().expect("wait")
+    }
+}
+
+impl Drop for Daemon {
+    fn drop(&mut self) {
+        let _ = self.child.kill();
+        let _ = self.child.wait();
+    }
+}
+
+struct Site {
+    _dir: tempfile::TempDir,
+    root: PathBuf,
+    capture: PathBuf,
+    config: PathBuf,
+    db: PathBuf,
+}
+
+fn site(extra_watch: &str) -> Site {
+    let dir = tempfile::tempdir().unwrap();
+    let root = dir.path().canonicalize().unwrap();
+    let capture = root.join("capture");
+    std::fs::create_dir_all(&capture).unwrap();
+    let config = root.join("subwatch.toml");
+    let db = root.join("subwatch.db");
+    std::fs::write(
+        &config,
+        format!(
+            "[watch]\nfolders = [\"{}\"]\nsettle_seconds = 0.5\nrescan_seconds = 2\n{extra_watch}\n[store]\npath = \"{}\"\n[site]\ntimezone = \"UTC\"\n",
+            capture.display(),
+            db.display()
+        ),
+    )
+    .unwrap();
+    Site {
+        _dir: dir,
+        root,
+        capture,
+        config,
+        db,
+    }
+}
+
+/// A small rendered frame as FITS bytes (written to a scratch file and read back).
+fn frame_bytes(seed: u64, scratch: &Path, image_type: &str) -> Vec<u8> {
+    let params = SimParams {
+        width: 160,
+        height: 120,
+        star_count: 25,
+        seed,
+        ..Default::default()
+    };
+    let (pixels, mut keys, _) = render(&params);
+    for (k, v) in keys.iter_mut() {
+        if k == "IMAGETYP" {
+            *v = OutValue::Text(image_type.into());
+        }
+    }
+    let path = scratch.join(format!("scratch-{seed}-{image_type}.fits"));
+    let _ = std::fs::remove_file(&path);
+    write_frame(&path, &pixels, Encoding::Unsigned16, &keys).unwrap();
+    let bytes = std::fs::read(&path).unwrap();
+    std::fs::remove_file(&path).unwrap();
+    bytes
+}
+
+/// (path, status, error) for every recorded frame.
+fn recorded(db: &Path) -> Vec<(String, String, Option<String>)> {
+    let Ok(conn) = rusqlite::Connection::open_with_flags(db, rusqlite::OpenFlags::SQLITE_OPEN_READ_ONLY) else {
+        return Vec::new();
+    };
+    let Ok(mut st) = conn.prepare("SELECT path, status, error FROM frames ORDER BY path") else {
+        return Vec::new();
+    };
+    st.query_map([], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)))
+        .map(|rows| rows.filter_map(Result::ok).collect())
+        .unwrap_or_default()
+}
+
+fn wait_for(db: &Path, count: usize, limit: Duration) -> Vec<(String, String, Option<String>)> {
+    let start = Instant::now();
+    loop {
+        let rows = recorded(db);
+        if rows.len() >= count || start.elapsed() > limit {
+            return rows;
+        }
+        std::thread::sleep(Duration::from_millis(100));
+    }
+}
+
+#[test]
+fn slow_writes_renames_bad_files_and_calibration_frames() {
+    let s = site("");
+    let d = Daemon::start(&s.config);
+    std::thread::sleep(Duration::from_millis(500));
+
+    // Written in chunks over ~2 s: must be measured once, complete.
+    let slow = frame_bytes(1, &s.root, "Light Frame");
+    let slow_path = s.capture.join("slow.fits");
+    {
+        let mut f = std::fs::File::create(&slow_path).unwrap();
+        for chunk in slow.chunks(slow.len() / 8 + 1) {
+            f.write_all(chunk).unwrap();
+            f.flush().unwrap();
+            std::thread::sleep(Duration::from_millis(250));
+        }
+    }
+    // Temporary name, then renamed into place.
+    let tmp = s.capture.join("renamed.fits.part");
+    std::fs::write(&tmp, frame_bytes(2, &s.root, "Light Frame")).unwrap();
+    std::fs::rename(&tmp, s.capture.join("renamed.fits")).unwrap();
+    // Broken files among good ones; a dark frame; a nested folder.
+    std::fs::write(s.capture.join("junk.fits"), b"not a frame at all").unwrap();
+    std::fs::write(s.capture.join("empty.fits"), b"").unwrap();
+    std::fs::create_dir_all(s.capture.join("night2/sub")).unwrap();
+    std::fs::write(s.capture.join("night2/sub/nested.fits"), frame_bytes(3, &s.root, "Light Frame")).unwrap();
+    std::fs::write(s.capture.join("dark_001.fits"), frame_bytes(4, &s.root, "Dark Frame")).unwrap();
+    std::fs::write(s.capture.join("notes.txt"), b"not a frame").unwrap();
+
+    let rows = wait_for(&s.db, 6, Duration::from_secs(30));
+    assert_eq!(d.terminate().code(), Some(0), "SIGTERM gives a clean exit");
+    let by_name = |n: &str| rows.iter().find(|r| r.0.ends_with(n)).unwrap_or_else(|| panic!("{n} not recorded: {rows:?}"));
+    assert_eq!(rows.len(), 6, "{rows:?}");
+    assert_eq!(by_name("/slow.fits").1, "ok");
+    assert_eq!(by_name("/renamed.fits").1, "ok");
+    assert_eq!(by_name("/nested.fits").1, "ok");
+    assert_eq!(by_name("/dark_001.fits").1, "skipped");
+    let junk = by_name("/junk.fits");
+    assert_eq!(junk.1, "error");
+    assert!(junk.2.as_deref().unwrap().contains("not a FITS file"), "{junk:?}");
+    assert!(by_name("/empty.fits").2.as_deref().unwrap().contains("empty"));
+}
+
+#[test]
+fn polling_mode_finds_frames_without_file_events() {
+    let s = site("poll_seconds = 0.5");
+    let d = Daemon::start(&s.config);
+    std::thread::sleep(Duration::from_millis(300));
+    for i in 0..5 {
+        std::fs::write(s.capture.join(format!("p{i}.fits")), frame_bytes(10 + i, &s.root, "Light Frame")).unwrap();
+    }
+    let rows = wait_for(&s.db, 5, Duration::from_secs(30));
+    d.kill9();
+    assert_eq!(rows.len(), 5, "{rows:?}");
+    assert!(rows.iter().all(|r| r.1 == "ok"));
+}
+
+#[test]
+fn five_hundred_frames_at_once_are_each_recorded_once_in_bounded_memory() {
+    let s = site("");
+    let d = Daemon::start(&s.config);
+    std::thread::sleep(Duration::from_millis(300));
+    let bytes = frame_bytes(20, &s.root, "Light Frame");
+    for i in 0..500 {
+        std::fs::write(s.capture.join(format!("burst_{i:03}.fits")), &bytes).unwrap();
+    }
+    let mut peak_kib = 0;
+    let start = Instant::now();
+    let rows = loop {
+        if let Ok(status) = std::fs::read_to_string(format!("/proc/{}/status", d.pid())) {
+            if let Some(v) = status.lines().find(|l| l.starts_with("VmHWM:")) {
+                peak_kib = v.split_whitespace().nth(1).and_then(|n| n.parse().ok()).unwrap_or(peak_kib);
+            }
+        }
+        let rows = recorded(&s.db);
+        if rows.len() >= 500 || start.elapsed() > Duration::from_secs(120) {
+            break rows;
+        }
+        std::thread::sleep(Duration::from_millis(200));
+    };
+    std::thread::sleep(Duration::from_millis(500));
+    let rows_after = recorded(&s.db);
+    d.kill9();
+    assert_eq!(rows.len(), 500);
+    assert_eq!(rows_after.len(), 500, "nothing recorded twice");
+    assert!(rows.iter().all(|r| r.1 == "ok"));
+    println!("500 frames in {:.1} s, peak resident memory {} MiB", start.elapsed().as_secs_f64(), peak_kib / 1024);
+    assert!(peak_kib < 300 * 1024, "peak resident memory {peak_kib} KiB");
+}
+
+#[test]
+fn killed_at_random_moments_nothing_is_lost_or_doubled() {
+    let s = site("");
+    // Full-size sample frames, so that a kill lands while frames are being measured.
+    let sample = Path::new(env!("CARGO_MANIFEST_DIR")).join("sample-frames");
+    let bytes: Vec<Vec<u8>> = ["kfa-001-good.fits", "kfa-014-soft-focus.fits", "kfa-021-wind.fits", "kfa-033-cloud.fits"]
+        .iter()
+        .map(|n| std::fs::read(sample.join(n)).unwrap())
+        .collect();
+    // Seeded "random" kill moments, so a failure replays.
+    let mut state: u64 = 0x5eed;
+    let mut next = || {
+        state = state.wrapping_mul(6_364_136_223_846_793_005).wrapping_add(1_442_695_040_888_963_407);
+        (state >> 33) % 900
+    };
+    let mut written = 0;
+    for round in 0..4 {
+        let d = Daemon::start(&s.config);
+        for _ in 0..25 {
+            std::fs::write(s.capture.join(format!("k{written:03}.fits")), &bytes[written % 4]).unwrap();
+            written += 1;
+        }
+        std::thread::sleep(Duration::from_millis(550 + next()));
+        d.kill9();
+        println!("round {round}: {} recorded when killed", recorded(&s.db).len());
+    }
+    let d = Daemon::start(&s.config);
+    let rows = wait_for(&s.db, written, Duration::from_secs(60));
+    std::thread::sleep(Duration::from_millis(1000));
+    let rows_after = recorded(&s.db);
+    d.kill9();
+    assert_eq!(rows.len(), written, "every frame recorded after the restarts");
+    assert_eq!(rows_after.len(), written, "and none twice");
+    let mut paths: Vec<&String> = rows_after.iter().map(|r| &r.0).collect();
+    paths.dedup();
+    assert_eq!(paths.len(), written);
+}
+
+#[test]
+fn check_config_names_every_unknown_key_with_its_line() {
+    let s = site("");
+    let bad = s.root.join("bad.toml");
+    std::fs::write(
+        &bad,
+        format!(
+            "[watch]\nfolders = [\"{}\"]\nsettle = 2\n[site]\ntimezone = \"Nowhere/Special\"\n[mial]\nto = []\n",
+            s.capture.display()
+        ),
+    )
+    .unwrap();
+    let out = Command::new(common::binary()).args(["check-config", "--config"]).arg(&bad).output().unwrap();
+    assert!(!out.status.success());
+    let text = String::from_utf8_lossy(&out.stderr);
+    assert!(text.contains("line 3: watch.settle: unknown key"), "{text}");
+    assert!(text.contains("line 6: mial: unknown section"), "{text}");
+    let ok = Command::new(common::binary()).args(["check-config", "--config"]).arg(&s.config).output().unwrap();
+    assert!(ok.status.success(), "{}", String::from_utf8_lossy(&ok.stdout));
+}
