@@ -19,6 +19,37 @@ pub enum PsfShape {
     Moffat { beta: f64 },
 }
 
+/// A star placed by the caller: 0-based pixel position, electrons, colour weights.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct SceneStar {
+    pub x: f64,
+    pub y: f64,
+    pub flux_e: f64,
+    pub rgb: Option<[f64; 3]>,
+}
+
+/// A straight streak (satellite, aircraft, meteor): 0-based end points, electrons per
+/// pixel of length, with the PSF's width across it.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct TrailSpec {
+    pub from: (f64, f64),
+    pub to: (f64, f64),
+    pub flux_per_px_e: f64,
+}
+
+/// An explicit scene instead of a random field: used to render nights, where the same
+/// stars appear frame after frame.
+#[derive(Debug, Clone, Default)]
+pub struct Scene {
+    pub stars: Vec<SceneStar>,
+    /// Fixed detector defects: 0-based column, row, and ADU added.
+    pub hot_pixels: Vec<(usize, usize, f64)>,
+    pub trails: Vec<TrailSpec>,
+    /// The frame's WCS: FITS CRPIX and CD matrix (the reference value stays `center_deg`).
+    pub crpix: Option<(f64, f64)>,
+    pub cd: Option<[[f64; 2]; 2]>,
+}
+
 #[derive(Debug, Clone)]
 pub struct SimParams {
     pub width: usize,
@@ -50,6 +81,9 @@ pub struct SimParams {
     pub rotation_deg: f64,
     pub date_obs: String,
     pub object: String,
+    pub exposure_s: f64,
+    pub filter: String,
+    pub scene: Option<Scene>,
 }
 
 impl Default for SimParams {
@@ -78,6 +112,9 @@ impl Default for SimParams {
             rotation_deg: 0.0,
             date_obs: "2026-03-14T21:30:00".into(),
             object: "Kestrel Field A".into(),
+            exposure_s: 120.0,
+            filter: "L".into(),
+            scene: None,
         }
     }
 }
@@ -258,7 +295,11 @@ pub fn render(p: &SimParams) -> (Array2<f32>, Vec<(String, OutValue)>, SimTruth)
     let radius = psf.render_radius();
     let mut stars = Vec::with_capacity(p.star_count);
     let mut deposited = Vec::with_capacity(p.star_count);
-    for _ in 0..p.star_count {
+    if let Some(scene) = &p.scene {
+        stars.extend(scene.stars.iter().map(|s| (s.x, s.y, s.flux_e, s.rgb)));
+    }
+    let random_stars = if p.scene.is_some() { 0 } else { p.star_count };
+    for _ in 0..random_stars {
         let u: f64 = rng.gen();
         // Inverse CDF of dN/dm ∝ 10^(0.3 m) between m_lo and m_hi.
         let a = 10f64.powf(0.3 * m_lo);
@@ -276,7 +317,7 @@ pub fn render(p: &SimParams) -> (Array2<f32>, Vec<(String, OutValue)>, SimTruth)
     }
     // The SNR aperture: radius 1 × sampled FWHM, as the measurement uses.
     let r_snr = fwhm_sampled.max(1.5);
-    let mut core = Vec::with_capacity(p.star_count);
+    let mut core = Vec::with_capacity(stars.len());
     for &(sx, sy, flux_e, rgb) in &stars {
         let mut sum = 0.0;
         let (mut core_e, mut core_n) = (0.0, 0.0);
@@ -310,6 +351,33 @@ pub fn render(p: &SimParams) -> (Array2<f32>, Vec<(String, OutValue)>, SimTruth)
         core.push((core_e, core_n));
     }
 
+    // Trails: the PSF's width (as a Gaussian) across a straight line.
+    let sigma_across = fwhm_sampled / 2.354_820_045;
+    for t in p.scene.iter().flat_map(|s| &s.trails) {
+        let (ax, ay) = t.from;
+        let (bx, by) = t.to;
+        let len = (bx - ax).hypot(by - ay).max(1e-9);
+        let (ux, uy) = ((bx - ax) / len, (by - ay) / len);
+        let reach = 4.0 * sigma_across + 1.0;
+        let (x0, x1) = (ax.min(bx) - reach, ax.max(bx) + reach);
+        let (y0, y1) = (ay.min(by) - reach, ay.max(by) + reach);
+        for y in (y0.floor().max(0.0) as usize)..=(y1.ceil().max(0.0) as usize).min(h - 1) {
+            for x in (x0.floor().max(0.0) as usize)..=(x1.ceil().max(0.0) as usize).min(w - 1) {
+                let (dx, dy) = (x as f64 - ax, y as f64 - ay);
+                let along = dx * ux + dy * uy;
+                if !(0.0..=len).contains(&along) {
+                    continue;
+                }
+                let across = (dx * uy - dy * ux).abs();
+                if across > reach {
+                    continue;
+                }
+                let g = (-0.5 * (across / sigma_across).powi(2)).exp() / (sigma_across * (2.0 * std::f64::consts::PI).sqrt());
+                signal[(y, x)] += t.flux_per_px_e * g;
+            }
+        }
+    }
+
     // Camera: Poisson electrons, read noise, gain, bias, 16-bit ADC.
     let read = Normal::new(0.0, p.read_noise_e.max(1e-9)).expect("valid normal");
     let mut pixels = Array2::<f32>::zeros((h, w));
@@ -327,6 +395,12 @@ pub fn render(p: &SimParams) -> (Array2<f32>, Vec<(String, OutValue)>, SimTruth)
     }
 
     let mut hot = Vec::new();
+    for &(x, y, adu) in p.scene.iter().flat_map(|s| &s.hot_pixels) {
+        if x < w && y < h {
+            pixels[(y, x)] = (pixels[(y, x)] + adu as f32).min(65535.0);
+            hot.push(TruePoint { x: x as f64 + 1.0, y: y as f64 + 1.0 });
+        }
+    }
     for _ in 0..p.hot_pixels {
         let (x, y) = (rng.gen_range(0..w), rng.gen_range(0..h));
         let v = pixels[(y, x)] + rng.gen_range(3000.0..40000.0);
@@ -421,12 +495,24 @@ pub fn render(p: &SimParams) -> (Array2<f32>, Vec<(String, OutValue)>, SimTruth)
     (pixels, header_keys(p), truth)
 }
 
+/// The CD matrix of a frame with this plate scale and rotation: east to the left (RA
+/// grows towards −x), as on a sky image seen from the front.
+pub fn base_cd(scale_arcsec: f64, rotation_deg: f64) -> [[f64; 2]; 2] {
+    let s = scale_arcsec / 3600.0;
+    let (sin, cos) = rotation_deg.to_radians().sin_cos();
+    [[-s * cos, s * sin], [s * sin, s * cos]]
+}
+
 fn header_keys(p: &SimParams) -> Vec<(String, OutValue)> {
     use OutValue::*;
     let pixel_um = 3.76;
     let focal_mm = 206.264_806 * pixel_um / p.scale_arcsec;
-    let s = p.scale_arcsec / 3600.0;
-    let (sin, cos) = p.rotation_deg.to_radians().sin_cos();
+    let crpix = p
+        .scene
+        .as_ref()
+        .and_then(|s| s.crpix)
+        .unwrap_or(((p.width as f64 + 1.0) / 2.0, (p.height as f64 + 1.0) / 2.0));
+    let cd = p.scene.as_ref().and_then(|s| s.cd).unwrap_or_else(|| base_cd(p.scale_arcsec, p.rotation_deg));
     let mut keys = vec![
         ("IMAGETYP".into(), Text("Light Frame".into())),
         ("OBJECT".into(), Text(p.object.clone())),
@@ -454,15 +540,14 @@ fn header_keys(p: &SimParams) -> Vec<(String, OutValue)> {
         ("TELESCOP".into(), Text("Kestrel Ridge 0.2m".into())),
         ("CTYPE1".into(), Text("RA---TAN".into())),
         ("CTYPE2".into(), Text("DEC--TAN".into())),
-        ("CRPIX1".into(), Real((p.width as f64 + 1.0) / 2.0)),
-        ("CRPIX2".into(), Real((p.height as f64 + 1.0) / 2.0)),
+        ("CRPIX1".into(), Real(crpix.0)),
+        ("CRPIX2".into(), Real(crpix.1)),
         ("CRVAL1".into(), Real(p.center_deg.0)),
         ("CRVAL2".into(), Real(p.center_deg.1)),
-        // East to the left (RA grows towards −x) as on a sky image seen from the front.
-        ("CD1_1".into(), Real(-s * cos)),
-        ("CD1_2".into(), Real(s * sin)),
-        ("CD2_1".into(), Real(s * sin)),
-        ("CD2_2".into(), Real(s * cos)),
+        ("CD1_1".into(), Real(cd[0][0])),
+        ("CD1_2".into(), Real(cd[0][1])),
+        ("CD2_1".into(), Real(cd[1][0])),
+        ("CD2_2".into(), Real(cd[1][1])),
         ("RADESYS".into(), Text("ICRS".into())),
         ("EQUINOX".into(), Real(2000.0)),
     ];
