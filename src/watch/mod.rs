@@ -305,6 +305,17 @@ async fn daemon(mut config: Config, workers: usize) -> Result<(), WatchError> {
         if !patterns::is_candidate(&name, &config.watch.include, &config.watch.exclude) {
             return;
         }
+        // Hidden folders (a capture program's scratch space) are left alone, as the
+        // rescan leaves them.
+        let hidden = config.watch.folders.iter().any(|f| {
+            path.strip_prefix(f).is_ok_and(|rel| {
+                rel.components()
+                    .any(|c| c.as_os_str().to_string_lossy().starts_with('.'))
+            })
+        });
+        if hidden {
+            return;
+        }
         let Some((obs, mtime)) = observe(&path) else {
             return;
         };
