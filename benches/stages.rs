@@ -57,7 +57,7 @@ fn main() {
     println!("matched filter (convolution)    {t_conv:7.3} s");
     println!(
         "detection (filter + components) {t_detect:7.3} s  ({} candidates)",
-        found.len()
+        found.candidates.len()
     );
     println!(
         "full measurement                {t_all:7.3} s  ({} stars, FWHM {:.3} px)",

@@ -32,6 +32,8 @@ pub struct StarRecord {
     pub eccentricity: f64,
     #[serde(serialize_with = "finite_num")]
     pub snr: f64,
+    #[serde(serialize_with = "finite_num")]
+    pub flux_err: f64,
     #[serde(serialize_with = "finite")]
     pub hfr_px: Option<f64>,
     #[serde(serialize_with = "finite_num")]
@@ -67,6 +69,7 @@ impl StarRecord {
             fwhm_px: s.fwhm_px,
             eccentricity: s.eccentricity,
             snr: s.snr,
+            flux_err: s.flux_err,
             hfr_px: s.hfr_px,
             fwhm_major_px: s.fwhm_major_px,
             fwhm_minor_px: s.fwhm_minor_px,
@@ -110,6 +113,8 @@ pub struct Metrics {
     pub background_range_adu: f64,
     #[serde(serialize_with = "finite")]
     pub plate_scale_arcsec: Option<f64>,
+    /// Streaks found (satellites, aircraft, meteors), FITS 1-based end points.
+    pub trails: Vec<crate::measure::detect::Trail>,
 }
 
 impl Metrics {
@@ -129,6 +134,7 @@ impl Metrics {
             sharp_count: m.sharp_count,
             background_range_adu: m.background_range_adu,
             plate_scale_arcsec: plate_scale,
+            trails: m.trails.clone(),
         }
     }
 }
@@ -191,4 +197,55 @@ impl MeasureRecord {
             rejected: None,
         }
     }
+}
+
+/// One frame of `subwatch night --json`: the measure fields plus the verdict.
+#[derive(Debug, Clone, Serialize)]
+pub struct NightFrameRecord {
+    pub path: String,
+    pub status: &'static str,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub error: Option<String>,
+    #[serde(flatten, skip_serializing_if = "Option::is_none")]
+    pub metrics: Option<Metrics>,
+    pub verdict: crate::rules::Verdict,
+    pub reasons: Vec<String>,
+    pub explanations: Vec<String>,
+    pub night: Option<String>,
+    pub target: Option<String>,
+    pub filter: Option<String>,
+    #[serde(serialize_with = "finite")]
+    pub time_unix: Option<f64>,
+    pub registered: bool,
+    #[serde(serialize_with = "finite")]
+    pub registration_rms_px: Option<f64>,
+    #[serde(serialize_with = "finite")]
+    pub transparency_loss_mag: Option<f64>,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct DetectionRecord {
+    pub path: String,
+    pub x: f64,
+    pub y: f64,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct AnomalyRecord {
+    pub kind: crate::night::AnomalyKind,
+    #[serde(serialize_with = "finite")]
+    pub ra_deg: Option<f64>,
+    #[serde(serialize_with = "finite")]
+    pub dec_deg: Option<f64>,
+    pub detections: Vec<DetectionRecord>,
+    pub detail: serde_json::Value,
+    pub target: Option<String>,
+    pub filter: Option<String>,
+}
+
+/// The document `subwatch night --json` prints.
+#[derive(Debug, Clone, Serialize)]
+pub struct NightDocument {
+    pub frames: Vec<NightFrameRecord>,
+    pub anomalies: Vec<AnomalyRecord>,
 }

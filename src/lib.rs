@@ -4,12 +4,15 @@
 //! wrapped by thin I/O shells (`frame::fits` decoding, `pipeline`, the binary's CLI).
 //! See ARCHITECTURE.md for the map and the invariants.
 
+pub mod batch;
 pub mod buffer;
 pub mod config;
 pub mod contract;
 pub mod frame;
 pub mod measure;
+pub mod night;
 pub mod pipeline;
+pub mod rules;
 pub mod sim;
 pub mod sky;
 pub mod store;

@@ -67,6 +67,33 @@ enum Command {
         #[arg(long)]
         json: bool,
     },
+    /// Process every light frame under DIR as one night and report verdicts and anomalies.
+    Night {
+        dir: PathBuf,
+        /// Print the night document as JSON.
+        #[arg(long)]
+        json: bool,
+        /// Configuration (site time zone, optics, patterns, and the store whose earlier
+        /// nights are compared for new sources).
+        #[arg(long)]
+        config: Option<PathBuf>,
+    },
+    /// Render a synthetic night of frames with known events into a folder.
+    RenderNight {
+        #[arg(long)]
+        out: PathBuf,
+        #[arg(long, default_value_t = 1)]
+        seed: u64,
+        /// The same field a night later, with one new source.
+        #[arg(long)]
+        second_night: bool,
+        /// A one-shot-colour sequence with one very red star.
+        #[arg(long)]
+        colour: bool,
+        /// Number of frames (default: 40, or 10 for colour).
+        #[arg(long)]
+        frames: Option<usize>,
+    },
     /// Render a synthetic frame with known truth (for tests and demonstrations).
     Render {
         #[arg(long)]
@@ -188,6 +215,14 @@ fn run(cli: Cli) -> Result<ExitCode> {
             night,
             json,
         } => status_command(&config, night, json),
+        Command::Night { dir, json, config } => night_command(&dir, json, config.as_deref()),
+        Command::RenderNight {
+            out,
+            seed,
+            second_night,
+            colour,
+            frames,
+        } => render_night_command(&out, seed, second_night, colour, frames),
         Command::Measure {
             json,
             stars,
@@ -274,6 +309,124 @@ fn run(cli: Cli) -> Result<ExitCode> {
             Ok(ExitCode::SUCCESS)
         }
     }
+}
+
+fn render_night_command(
+    out: &std::path::Path,
+    seed: u64,
+    second_night: bool,
+    colour: bool,
+    frames: Option<usize>,
+) -> Result<ExitCode> {
+    use subwatch::sim::night::{render_night, NightPlan};
+    let mut plan = NightPlan::full(seed);
+    if second_night {
+        plan = NightPlan {
+            seed: seed + 1000,
+            start: "2026-03-15T20:40:00".into(),
+            new_source: true,
+            variable_star: false,
+            moving_object: false,
+            flash_frame: None,
+            trail_frames: vec![],
+            cloud_frames: vec![],
+            gust_frames: vec![],
+            focus_drift_from: None,
+            frames: 12,
+            ..plan
+        };
+    }
+    if colour {
+        plan = NightPlan {
+            object: "Kestrel Field B".into(),
+            center_deg: (201.3, -12.4),
+            field_seed: 91,
+            bayer: BayerPattern::parse("RGGB"),
+            red_star: true,
+            frames: 10,
+            flip_at: None,
+            cloud_frames: vec![],
+            gust_frames: vec![],
+            focus_drift_from: None,
+            trail_frames: vec![],
+            moving_object: false,
+            variable_star: false,
+            flash_frame: None,
+            start: "2026-03-15T01:00:00".into(),
+            ..plan
+        };
+    }
+    if let Some(n) = frames {
+        plan.frames = n;
+    }
+    std::fs::create_dir_all(out).with_context(|| format!("creating {}", out.display()))?;
+    let (frames, truth) = render_night(&plan);
+    for f in &frames {
+        write_frame(&out.join(&f.name), &f.pixels, Encoding::Unsigned16, &f.keys)?;
+    }
+    let names: Vec<&str> = frames.iter().map(|f| f.name.as_str()).collect();
+    let doc = serde_json::json!({"frames": names, "anomalies": truth});
+    std::fs::write(out.join("truth.json"), serde_json::to_string_pretty(&doc)?)?;
+    Ok(ExitCode::SUCCESS)
+}
+
+fn night_command(
+    dir: &std::path::Path,
+    json: bool,
+    config: Option<&std::path::Path>,
+) -> Result<ExitCode> {
+    let cfg = match config {
+        Some(p) => Some(subwatch::config::load(p)?),
+        None => None,
+    };
+    let defaults = subwatch::config::Config::default();
+    let c = cfg.as_ref().unwrap_or(&defaults);
+    let options = subwatch::watch::record_options(c);
+    let mut store = match &cfg {
+        Some(c) => Some(subwatch::store::Store::open(&c.store.path)?),
+        None => None,
+    };
+    if !dir.is_dir() {
+        anyhow::bail!("{} is not a folder", dir.display());
+    }
+    let show = !json && std::io::IsTerminal::is_terminal(&std::io::stderr());
+    let doc = subwatch::batch::run_night(
+        dir,
+        &options,
+        &c.watch.include,
+        &c.watch.exclude,
+        store.as_mut(),
+        |done, total| {
+            if show {
+                eprint!("\rmeasuring {done}/{total}");
+            }
+        },
+    )?;
+    if show {
+        eprintln!();
+    }
+    if json {
+        println!("{}", serde_json::to_string(&doc)?);
+    } else {
+        for f in &doc.frames {
+            println!(
+                "{:<50} {:<7} {}",
+                f.path,
+                format!("{:?}", f.verdict).to_lowercase(),
+                f.reasons.join(",")
+            );
+        }
+        for a in &doc.anomalies {
+            println!(
+                "{:<10} ra={} dec={} seen in {} frame(s)",
+                format!("{:?}", a.kind).to_lowercase(),
+                a.ra_deg.map_or("-".into(), |v| format!("{v:.5}")),
+                a.dec_deg.map_or("-".into(), |v| format!("{v:.5}")),
+                a.detections.len()
+            );
+        }
+    }
+    Ok(ExitCode::SUCCESS)
 }
 
 fn status_command(config: &std::path::Path, night: Option<String>, json: bool) -> Result<ExitCode> {

@@ -127,6 +127,7 @@ pub fn record_file(
         metrics: None,
         stars: Vec::new(),
         rejected: Vec::new(),
+        wcs: None,
     };
     let cards = match crate::frame::fits::read_header(path, opts.measure.limits) {
         Ok(c) => c,
@@ -143,6 +144,7 @@ pub fn record_file(
     rec.target = header.object.clone().or(rec.target);
     rec.filter = header.filter.clone();
     rec.header = Some(HeaderFacts::new(&header));
+    rec.wcs = header.wcs.clone();
     if let Some(kind) = calibration_kind(path, &header, &opts.calibration_folders) {
         rec.status = FrameStatus::Skipped;
         rec.error = Some(kind);

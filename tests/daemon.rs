@@ -113,7 +113,9 @@ fn frame_bytes(seed: u64, scratch: &Path, image_type: &str) -> Vec<u8> {
 
 /// (path, status, error) for every recorded frame.
 fn recorded(db: &Path) -> Vec<(String, String, Option<String>)> {
-    let Ok(conn) = rusqlite::Connection::open_with_flags(db, rusqlite::OpenFlags::SQLITE_OPEN_READ_ONLY) else {
+    let Ok(conn) =
+        rusqlite::Connection::open_with_flags(db, rusqlite::OpenFlags::SQLITE_OPEN_READ_ONLY)
+    else {
         return Vec::new();
     };
     let Ok(mut st) = conn.prepare("SELECT path, status, error FROM frames ORDER BY path") else {
@@ -160,13 +162,25 @@ fn slow_writes_renames_bad_files_and_calibration_frames() {
     std::fs::write(s.capture.join("junk.fits"), b"not a frame at all").unwrap();
     std::fs::write(s.capture.join("empty.fits"), b"").unwrap();
     std::fs::create_dir_all(s.capture.join("night2/sub")).unwrap();
-    std::fs::write(s.capture.join("night2/sub/nested.fits"), frame_bytes(3, &s.root, "Light Frame")).unwrap();
-    std::fs::write(s.capture.join("dark_001.fits"), frame_bytes(4, &s.root, "Dark Frame")).unwrap();
+    std::fs::write(
+        s.capture.join("night2/sub/nested.fits"),
+        frame_bytes(3, &s.root, "Light Frame"),
+    )
+    .unwrap();
+    std::fs::write(
+        s.capture.join("dark_001.fits"),
+        frame_bytes(4, &s.root, "Dark Frame"),
+    )
+    .unwrap();
     std::fs::write(s.capture.join("notes.txt"), b"not a frame").unwrap();
 
     let rows = wait_for(&s.db, 6, Duration::from_secs(30));
     assert_eq!(d.terminate().code(), Some(0), "SIGTERM gives a clean exit");
-    let by_name = |n: &str| rows.iter().find(|r| r.0.ends_with(n)).unwrap_or_else(|| panic!("{n} not recorded: {rows:?}"));
+    let by_name = |n: &str| {
+        rows.iter()
+            .find(|r| r.0.ends_with(n))
+            .unwrap_or_else(|| panic!("{n} not recorded: {rows:?}"))
+    };
     assert_eq!(rows.len(), 6, "{rows:?}");
     assert_eq!(by_name("/slow.fits").1, "ok");
     assert_eq!(by_name("/renamed.fits").1, "ok");
@@ -174,8 +188,15 @@ fn slow_writes_renames_bad_files_and_calibration_frames() {
     assert_eq!(by_name("/dark_001.fits").1, "skipped");
     let junk = by_name("/junk.fits");
     assert_eq!(junk.1, "error");
-    assert!(junk.2.as_deref().unwrap().contains("not a FITS file"), "{junk:?}");
-    assert!(by_name("/empty.fits").2.as_deref().unwrap().contains("empty"));
+    assert!(
+        junk.2.as_deref().unwrap().contains("not a FITS file"),
+        "{junk:?}"
+    );
+    assert!(by_name("/empty.fits")
+        .2
+        .as_deref()
+        .unwrap()
+        .contains("empty"));
 }
 
 #[test]
@@ -184,7 +205,11 @@ fn polling_mode_finds_frames_without_file_events() {
     let d = Daemon::start(&s.config);
     std::thread::sleep(Duration::from_millis(300));
     for i in 0..5 {
-        std::fs::write(s.capture.join(format!("p{i}.fits")), frame_bytes(10 + i, &s.root, "Light Frame")).unwrap();
+        std::fs::write(
+            s.capture.join(format!("p{i}.fits")),
+            frame_bytes(10 + i, &s.root, "Light Frame"),
+        )
+        .unwrap();
     }
     let rows = wait_for(&s.db, 5, Duration::from_secs(30));
     d.kill9();
@@ -206,7 +231,11 @@ fn five_hundred_frames_at_once_are_each_recorded_once_in_bounded_memory() {
     let rows = loop {
         if let Ok(status) = std::fs::read_to_string(format!("/proc/{}/status", d.pid())) {
             if let Some(v) = status.lines().find(|l| l.starts_with("VmHWM:")) {
-                peak_kib = v.split_whitespace().nth(1).and_then(|n| n.parse().ok()).unwrap_or(peak_kib);
+                peak_kib = v
+                    .split_whitespace()
+                    .nth(1)
+                    .and_then(|n| n.parse().ok())
+                    .unwrap_or(peak_kib);
             }
         }
         let rows = recorded(&s.db);
@@ -221,7 +250,11 @@ fn five_hundred_frames_at_once_are_each_recorded_once_in_bounded_memory() {
     assert_eq!(rows.len(), 500);
     assert_eq!(rows_after.len(), 500, "nothing recorded twice");
     assert!(rows.iter().all(|r| r.1 == "ok"));
-    println!("500 frames in {:.1} s, peak resident memory {} MiB", start.elapsed().as_secs_f64(), peak_kib / 1024);
+    println!(
+        "500 frames in {:.1} s, peak resident memory {} MiB",
+        start.elapsed().as_secs_f64(),
+        peak_kib / 1024
+    );
     assert!(peak_kib < 300 * 1024, "peak resident memory {peak_kib} KiB");
 }
 
@@ -230,33 +263,51 @@ fn killed_at_random_moments_nothing_is_lost_or_doubled() {
     let s = site("");
     // Full-size sample frames, so that a kill lands while frames are being measured.
     let sample = Path::new(env!("CARGO_MANIFEST_DIR")).join("sample-frames");
-    let bytes: Vec<Vec<u8>> = ["kfa-001-good.fits", "kfa-014-soft-focus.fits", "kfa-021-wind.fits", "kfa-033-cloud.fits"]
-        .iter()
-        .map(|n| std::fs::read(sample.join(n)).unwrap())
-        .collect();
+    let bytes: Vec<Vec<u8>> = [
+        "kfa-001-good.fits",
+        "kfa-014-soft-focus.fits",
+        "kfa-021-wind.fits",
+        "kfa-033-cloud.fits",
+    ]
+    .iter()
+    .map(|n| std::fs::read(sample.join(n)).unwrap())
+    .collect();
     // Seeded "random" kill moments, so a failure replays.
     let mut state: u64 = 0x5eed;
     let mut next = || {
-        state = state.wrapping_mul(6_364_136_223_846_793_005).wrapping_add(1_442_695_040_888_963_407);
+        state = state
+            .wrapping_mul(6_364_136_223_846_793_005)
+            .wrapping_add(1_442_695_040_888_963_407);
         (state >> 33) % 900
     };
     let mut written = 0;
     for round in 0..4 {
         let d = Daemon::start(&s.config);
         for _ in 0..25 {
-            std::fs::write(s.capture.join(format!("k{written:03}.fits")), &bytes[written % 4]).unwrap();
+            std::fs::write(
+                s.capture.join(format!("k{written:03}.fits")),
+                &bytes[written % 4],
+            )
+            .unwrap();
             written += 1;
         }
         std::thread::sleep(Duration::from_millis(550 + next()));
         d.kill9();
-        println!("round {round}: {} recorded when killed", recorded(&s.db).len());
+        println!(
+            "round {round}: {} recorded when killed",
+            recorded(&s.db).len()
+        );
     }
     let d = Daemon::start(&s.config);
     let rows = wait_for(&s.db, written, Duration::from_secs(60));
     std::thread::sleep(Duration::from_millis(1000));
     let rows_after = recorded(&s.db);
     d.kill9();
-    assert_eq!(rows.len(), written, "every frame recorded after the restarts");
+    assert_eq!(
+        rows.len(),
+        written,
+        "every frame recorded after the restarts"
+    );
     assert_eq!(rows_after.len(), written, "and none twice");
     let mut paths: Vec<&String> = rows_after.iter().map(|r| &r.0).collect();
     paths.dedup();
@@ -275,11 +326,23 @@ fn check_config_names_every_unknown_key_with_its_line() {
         ),
     )
     .unwrap();
-    let out = Command::new(common::binary()).args(["check-config", "--config"]).arg(&bad).output().unwrap();
+    let out = Command::new(common::binary())
+        .args(["check-config", "--config"])
+        .arg(&bad)
+        .output()
+        .unwrap();
     assert!(!out.status.success());
     let text = String::from_utf8_lossy(&out.stderr);
     assert!(text.contains("line 3: watch.settle: unknown key"), "{text}");
     assert!(text.contains("line 6: mial: unknown section"), "{text}");
-    let ok = Command::new(common::binary()).args(["check-config", "--config"]).arg(&s.config).output().unwrap();
-    assert!(ok.status.success(), "{}", String::from_utf8_lossy(&ok.stdout));
+    let ok = Command::new(common::binary())
+        .args(["check-config", "--config"])
+        .arg(&s.config)
+        .output()
+        .unwrap();
+    assert!(
+        ok.status.success(),
+        "{}",
+        String::from_utf8_lossy(&ok.stdout)
+    );
 }

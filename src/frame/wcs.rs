@@ -8,7 +8,7 @@
 
 use super::header::{CardValue, Cards, HeaderCard};
 
-#[derive(Debug, Clone, PartialEq)]
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct Wcs {
     pub crpix: [f64; 2],
     /// Reference sky position (RA, Dec), degrees.
@@ -21,7 +21,7 @@ pub struct Wcs {
 }
 
 /// Simple Imaging Polynomial: forward terms A, B (pixel offsets → corrected offsets).
-#[derive(Debug, Clone, PartialEq)]
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct Sip {
     pub a: Vec<(u32, u32, f64)>,
     pub b: Vec<(u32, u32, f64)>,

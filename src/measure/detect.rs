@@ -35,6 +35,76 @@ impl Default for DetectParams {
     }
 }
 
+/// A straight streak found as one long, thin component (satellite, aircraft, meteor).
+/// Positions are FITS 1-based.
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+pub struct Trail {
+    pub x0: f64,
+    pub y0: f64,
+    pub x1: f64,
+    pub y1: f64,
+    /// Direction from +x towards +y, degrees in [0, 180).
+    pub angle_deg: f64,
+    /// Full width across the streak (from its second moment, as a FWHM), pixels.
+    pub width_px: f64,
+    pub length_px: f64,
+}
+
+/// What detection found.
+#[derive(Debug, Clone, Default)]
+pub struct Detections {
+    pub candidates: Vec<Candidate>,
+    pub trails: Vec<Trail>,
+}
+
+/// A component's shape from the second moments of its pixel positions: a trail when
+/// it is long (at least `min_length` px) and thin (length over width at least 6).
+fn as_trail(pixels: &[u32], w: usize, min_length: f64) -> Option<Trail> {
+    let n = pixels.len() as f64;
+    if n < 20.0 {
+        return None;
+    }
+    let (mut sx, mut sy) = (0.0, 0.0);
+    for &p in pixels {
+        sx += (p as usize % w) as f64;
+        sy += (p as usize / w) as f64;
+    }
+    let (mx, my) = (sx / n, sy / n);
+    let (mut cxx, mut cyy, mut cxy) = (0.0, 0.0, 0.0);
+    for &p in pixels {
+        let (dx, dy) = ((p as usize % w) as f64 - mx, (p as usize / w) as f64 - my);
+        cxx += dx * dx;
+        cyy += dy * dy;
+        cxy += dx * dy;
+    }
+    let (cxx, cyy, cxy) = (cxx / n, cyy / n, cxy / n);
+    let mean = 0.5 * (cxx + cyy);
+    let d = (0.25 * (cxx - cyy).powi(2) + cxy * cxy).sqrt();
+    let (major, minor) = (mean + d, (mean - d).max(1.0 / 12.0));
+    let theta = 0.5 * (2.0 * cxy).atan2(cxx - cyy);
+    let (ux, uy) = (theta.cos(), theta.sin());
+    // Extent along the axis from the extreme projections.
+    let (mut lo, mut hi) = (f64::INFINITY, f64::NEG_INFINITY);
+    for &p in pixels {
+        let t = ((p as usize % w) as f64 - mx) * ux + ((p as usize / w) as f64 - my) * uy;
+        lo = lo.min(t);
+        hi = hi.max(t);
+    }
+    let length = hi - lo;
+    // A uniform bar of width W has variance W²/12 across it.
+    let width = (12.0 * minor).sqrt();
+    let _ = major;
+    (length >= min_length && length >= 6.0 * width).then(|| Trail {
+        x0: mx + lo * ux + 1.0,
+        y0: my + lo * uy + 1.0,
+        x1: mx + hi * ux + 1.0,
+        y1: my + hi * uy + 1.0,
+        angle_deg: theta.to_degrees().rem_euclid(180.0),
+        width_px: width,
+        length_px: length,
+    })
+}
+
 /// A detected peak, before any measurement.
 #[derive(Debug, Clone)]
 pub struct Candidate {
@@ -118,10 +188,11 @@ pub fn detect(
     residual: &Array2<f32>,
     background: &BackgroundMap,
     params: &DetectParams,
-) -> Vec<Candidate> {
+) -> Detections {
     let (h, w) = residual.dim();
+    let mut trails = Vec::new();
     if h == 0 || w == 0 {
-        return Vec::new();
+        return Detections::default();
     }
     let kernel = gaussian_kernel(params.kernel_fwhm);
     // White noise filtered by k has σ_f = σ · sqrt(Σ k²) (2-D kernel = outer product).
@@ -176,6 +247,11 @@ pub fn detect(
         if pixels.len() < params.min_area {
             continue;
         }
+        // A streak is reported whole; its peaks are not stars.
+        if let Some(t) = as_trail(&pixels, w, 10.0 * params.kernel_fwhm.max(2.0)) {
+            trails.push(t);
+            continue;
+        }
         component += 1;
         // Local maxima of the filtered image inside the component.
         let mut peaks: Vec<(usize, f32)> = pixels
@@ -212,7 +288,7 @@ pub fn detect(
             });
         }
     }
-    candidates
+    Detections { candidates, trails }
 }
 
 fn is_local_max(f: &[f32], w: usize, h: usize, p: usize) -> bool {

@@ -72,6 +72,8 @@ pub struct Star {
     pub fwhm_px: f64,
     pub eccentricity: f64,
     pub snr: f64,
+    /// 1σ uncertainty of `flux` (CCD equation for the same aperture), ADU.
+    pub flux_err: f64,
     pub fwhm_major_px: f64,
     pub fwhm_minor_px: f64,
     pub angle_deg: f64,
@@ -132,6 +134,8 @@ pub struct FrameMeasurement {
     pub background_range_adu: f64,
     /// Stars that voted on the frame's FWHM and eccentricity.
     pub shape_star_count: usize,
+    /// Streaks across the frame.
+    pub trails: Vec<detect::Trail>,
     pub stars: Vec<Star>,
     pub rejected: Vec<Rejected>,
 }
@@ -152,6 +156,7 @@ impl FrameMeasurement {
             sharp_count: 0,
             background_range_adu: 0.0,
             shape_star_count: 0,
+            trails: Vec::new(),
             stars: Vec::new(),
             rejected: Vec::new(),
         }
@@ -238,12 +243,14 @@ pub fn measure_image(
     // First detection with the configured kernel; re-detect with a kernel matched to
     // the stars when the frame's PSF turns out much wider or narrower.
     let mut dparams = params.detect;
-    let mut candidates = detect(&pixels, &bkg, &dparams);
+    let mut found = detect(&pixels, &bkg, &dparams);
+    let mut candidates = std::mem::take(&mut found.candidates);
     let mut fwhm_guess = estimate_fwhm(&pixels, &candidates, &bkg, saturation, dparams.kernel_fwhm)
         .unwrap_or(dparams.kernel_fwhm);
     if (fwhm_guess / dparams.kernel_fwhm - 1.0).abs() > 0.35 {
         dparams.kernel_fwhm = fwhm_guess.clamp(1.5, 15.0);
-        candidates = detect(&pixels, &bkg, &dparams);
+        found = detect(&pixels, &bkg, &dparams);
+        candidates = std::mem::take(&mut found.candidates);
         fwhm_guess =
             estimate_fwhm(&pixels, &candidates, &bkg, saturation, fwhm_guess).unwrap_or(fwhm_guess);
     }
@@ -420,6 +427,7 @@ pub fn measure_image(
                 x: cx + 1.0,
                 y: cy + 1.0,
                 flux: ap.flux,
+                flux_err: photometry::ccd_flux_error(ap.flux, ap.n_pix, ap.n_sky, noise, gain),
                 fwhm_px: f.fit.fwhm(),
                 eccentricity: f.fit.eccentricity(),
                 snr,
@@ -485,6 +493,7 @@ pub fn measure_image(
         sharp_count,
         background_range_adu: bkg.level_range(),
         shape_star_count: shape.len(),
+        trails: found.trails,
         stars,
         rejected,
     })
@@ -538,6 +547,16 @@ pub fn measure_mosaic(
             s.rgb = Some(rgb);
         }
         to_mosaic_star(s);
+    }
+    for t in m.trails.iter_mut() {
+        (t.x0, t.y0, t.x1, t.y1) = (
+            2.0 * t.x0 - 0.5,
+            2.0 * t.y0 - 0.5,
+            2.0 * t.x1 - 0.5,
+            2.0 * t.y1 - 0.5,
+        );
+        t.width_px *= 2.0;
+        t.length_px *= 2.0;
     }
     for r in m.rejected.iter_mut() {
         r.x = 2.0 * r.x - 0.5;

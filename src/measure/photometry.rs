@@ -156,6 +156,19 @@ pub fn half_flux_radius(
     Some(r_max)
 }
 
+/// The 1σ uncertainty of an aperture flux by the same CCD equation, ADU.
+pub fn ccd_flux_error(
+    flux: f64,
+    n_pix: f64,
+    n_sky: usize,
+    sky_sigma: f64,
+    gain: Option<f64>,
+) -> f64 {
+    let shot = gain.filter(|g| *g > 0.0).map_or(0.0, |g| flux.max(0.0) / g);
+    let sky = n_pix * (1.0 + n_pix / n_sky.max(1) as f64) * sky_sigma * sky_sigma;
+    (shot + sky).sqrt()
+}
+
 /// Signal-to-noise ratio by the CCD equation (Merline & Howell 1995, Exp. Astron. 6, 163):
 /// SNR = F / sqrt(F/g + n_pix·(1 + n_pix/n_sky)·σ²), all in ADU, with σ² the measured
 /// per-pixel sky variance (which holds the sky, dark and read-noise terms of the

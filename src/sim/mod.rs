@@ -4,6 +4,8 @@
 //! pixels and cosmic rays. Pure and seeded: the same parameters give the same frame.
 
 use ndarray::Array2;
+
+pub mod night;
 use rand::rngs::StdRng;
 use rand::{Rng, SeedableRng};
 use rand_distr::{Distribution, Normal, Poisson};
@@ -372,7 +374,8 @@ pub fn render(p: &SimParams) -> (Array2<f32>, Vec<(String, OutValue)>, SimTruth)
                 if across > reach {
                     continue;
                 }
-                let g = (-0.5 * (across / sigma_across).powi(2)).exp() / (sigma_across * (2.0 * std::f64::consts::PI).sqrt());
+                let g = (-0.5 * (across / sigma_across).powi(2)).exp()
+                    / (sigma_across * (2.0 * std::f64::consts::PI).sqrt());
                 signal[(y, x)] += t.flux_per_px_e * g;
             }
         }
@@ -398,7 +401,10 @@ pub fn render(p: &SimParams) -> (Array2<f32>, Vec<(String, OutValue)>, SimTruth)
     for &(x, y, adu) in p.scene.iter().flat_map(|s| &s.hot_pixels) {
         if x < w && y < h {
             pixels[(y, x)] = (pixels[(y, x)] + adu as f32).min(65535.0);
-            hot.push(TruePoint { x: x as f64 + 1.0, y: y as f64 + 1.0 });
+            hot.push(TruePoint {
+                x: x as f64 + 1.0,
+                y: y as f64 + 1.0,
+            });
         }
     }
     for _ in 0..p.hot_pixels {
@@ -512,7 +518,11 @@ fn header_keys(p: &SimParams) -> Vec<(String, OutValue)> {
         .as_ref()
         .and_then(|s| s.crpix)
         .unwrap_or(((p.width as f64 + 1.0) / 2.0, (p.height as f64 + 1.0) / 2.0));
-    let cd = p.scene.as_ref().and_then(|s| s.cd).unwrap_or_else(|| base_cd(p.scale_arcsec, p.rotation_deg));
+    let cd = p
+        .scene
+        .as_ref()
+        .and_then(|s| s.cd)
+        .unwrap_or_else(|| base_cd(p.scale_arcsec, p.rotation_deg));
     let mut keys = vec![
         ("IMAGETYP".into(), Text("Light Frame".into())),
         ("OBJECT".into(), Text(p.object.clone())),

@@ -86,6 +86,8 @@ pub struct FrameRecord {
     pub metrics: Option<Metrics>,
     pub stars: Vec<StarRecord>,
     pub rejected: Vec<Rejected>,
+    /// The frame's celestial WCS, when it has one.
+    pub wcs: Option<crate::frame::wcs::Wcs>,
 }
 
 /// A row for reports and status.
@@ -114,7 +116,7 @@ pub struct NightCounts {
     pub last_recorded_unix: Option<f64>,
 }
 
-pub const SCHEMA_VERSION: i64 = 1;
+pub const SCHEMA_VERSION: i64 = 2;
 
 const MIGRATIONS: &[&str] = &[
     // 1: frames, their stars and rejected detections, and a key-value table.
@@ -151,6 +153,19 @@ const MIGRATIONS: &[&str] = &[
         frame_id INTEGER NOT NULL REFERENCES frames (id) ON DELETE CASCADE,
         x REAL NOT NULL, y REAL NOT NULL, kind TEXT NOT NULL, peak_adu REAL
      );",
+    // 2: each frame's WCS; the catalogue of persistent sources each night, per target,
+    // against which later nights look for new sources.
+    "ALTER TABLE frames ADD COLUMN wcs_json TEXT;
+     CREATE TABLE catalog_nights (
+        target TEXT NOT NULL, night TEXT NOT NULL, limit_mag REAL NOT NULL,
+        footprint_json TEXT,
+        PRIMARY KEY (target, night)
+     );
+     CREATE TABLE catalog (
+        target TEXT NOT NULL, night TEXT NOT NULL,
+        ra_deg REAL NOT NULL, dec_deg REAL NOT NULL, mag REAL NOT NULL
+     );
+     CREATE INDEX catalog_target ON catalog (target, night);",
 ];
 
 pub struct Store {
@@ -250,8 +265,8 @@ impl Store {
             .execute(
                 "INSERT OR IGNORE INTO frames (path, size, mtime_ns, status, error, night, target, filter,
                     time_unix, header_json, metrics_json, star_count, fwhm_px, eccentricity,
-                    background_adu, noise_adu, recorded_at)
-                 VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17)",
+                    background_adu, noise_adu, recorded_at, wcs_json)
+                 VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17, ?18)",
                 params![
                     f.identity.path,
                     f.identity.size as i64,
@@ -270,6 +285,7 @@ impl Store {
                     m.map(|m| m.background_adu),
                     m.map(|m| m.noise_adu),
                     now_unix,
+                    f.wcs.as_ref().and_then(|w| serde_json::to_string(w).ok()),
                 ],
             )
             .map_err(err)?;
@@ -390,6 +406,95 @@ impl Store {
             .map_err(|e| self.err(e))
     }
 
+    /// Replace the catalogue of `target` for `night`.
+    pub fn save_catalog(
+        &mut self,
+        target: &str,
+        night: &str,
+        limit_mag: f64,
+        footprint: &[(f64, f64)],
+        sources: &[crate::night::CatalogSource],
+    ) -> Result<(), StoreError> {
+        let path = self.path.clone();
+        let err = |source| StoreError::Sqlite {
+            path: path.clone(),
+            source,
+        };
+        let tx = self.conn.transaction().map_err(err)?;
+        tx.execute(
+            "DELETE FROM catalog WHERE target = ?1 AND night = ?2",
+            params![target, night],
+        )
+        .map_err(err)?;
+        tx.execute(
+            "INSERT OR REPLACE INTO catalog_nights (target, night, limit_mag, footprint_json) VALUES (?1, ?2, ?3, ?4)",
+            params![target, night, limit_mag, serde_json::to_string(footprint).ok()],
+        )
+        .map_err(err)?;
+        {
+            let mut st = tx
+                .prepare_cached("INSERT INTO catalog (target, night, ra_deg, dec_deg, mag) VALUES (?1, ?2, ?3, ?4, ?5)")
+                .map_err(err)?;
+            for s in sources {
+                st.execute(params![target, night, s.ra_deg, s.dec_deg, s.mag])
+                    .map_err(err)?;
+            }
+        }
+        tx.commit().map_err(err)
+    }
+
+    /// Catalogues of `target` from nights before `night`, newest first.
+    pub fn earlier_catalogs(
+        &self,
+        target: &str,
+        night: &str,
+    ) -> Result<Vec<crate::night::EarlierNight>, StoreError> {
+        let mut st = self
+            .conn
+            .prepare(
+                "SELECT night, limit_mag, footprint_json FROM catalog_nights
+                 WHERE target = ?1 AND night < ?2 ORDER BY night DESC",
+            )
+            .map_err(|e| self.err(e))?;
+        let nights: Vec<(String, f64, Option<String>)> = st
+            .query_map(params![target, night], |r| {
+                Ok((r.get(0)?, r.get(1)?, r.get(2)?))
+            })
+            .map_err(|e| self.err(e))?
+            .collect::<Result<_, _>>()
+            .map_err(|e| self.err(e))?;
+        let mut out = Vec::new();
+        for (n, limit_mag, footprint) in nights {
+            let footprint: Vec<(f64, f64)> = footprint
+                .and_then(|f| serde_json::from_str(&f).ok())
+                .unwrap_or_default();
+            let mut q = self
+                .conn
+                .prepare(
+                    "SELECT ra_deg, dec_deg, mag FROM catalog WHERE target = ?1 AND night = ?2",
+                )
+                .map_err(|e| self.err(e))?;
+            let sources = q
+                .query_map(params![target, n], |r| {
+                    Ok(crate::night::CatalogSource {
+                        ra_deg: r.get(0)?,
+                        dec_deg: r.get(1)?,
+                        mag: r.get(2)?,
+                    })
+                })
+                .map_err(|e| self.err(e))?
+                .collect::<Result<_, _>>()
+                .map_err(|e| self.err(e))?;
+            out.push(crate::night::EarlierNight {
+                night: n,
+                sources,
+                limit_mag,
+                footprint,
+            });
+        }
+        Ok(out)
+    }
+
     pub fn set_meta(&self, key: &str, value: &str) -> Result<(), StoreError> {
         self.conn
             .execute(
@@ -431,6 +536,7 @@ mod tests {
             metrics: None,
             stars: Vec::new(),
             rejected: Vec::new(),
+            wcs: None,
         }
     }
 

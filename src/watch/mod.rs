@@ -214,6 +214,7 @@ fn record_file_error(identity: Identity, reason: &str) -> crate::store::FrameRec
         metrics: None,
         stars: Vec::new(),
         rejected: Vec::new(),
+        wcs: None,
     }
 }
 

@@ -1,0 +1,260 @@
+//! `subwatch night DIR`: every light frame under a folder as one night, through the same
+//! pipeline the daemon uses, then the night analysis and the verdicts, as one document.
+//! An I/O shell around `pipeline`, `night` and `rules`.
+
+use std::collections::BTreeMap;
+use std::path::{Path, PathBuf};
+
+use crate::contract::{AnomalyRecord, DetectionRecord, NightDocument, NightFrameRecord};
+use crate::measure::RejectKind;
+use crate::night::{analyse, FrameInput, StarInput};
+use crate::pipeline::{record_file, RecordOptions};
+use crate::rules::{judge_group, FrameFacts};
+use crate::store::{FrameRecord, FrameStatus, Identity, Store, StoreError};
+
+/// Every file under `dirs` whose name matches the patterns (recursively, hidden folders
+/// left out), sorted by path.
+pub fn find_frames(dirs: &[PathBuf], include: &[String], exclude: &[String]) -> Vec<PathBuf> {
+    let mut out = Vec::new();
+    let mut stack: Vec<PathBuf> = dirs.to_vec();
+    while let Some(dir) = stack.pop() {
+        let Ok(entries) = std::fs::read_dir(&dir) else {
+            continue;
+        };
+        for e in entries.flatten() {
+            let name = e.file_name().to_string_lossy().into_owned();
+            let Ok(ft) = e.file_type() else { continue };
+            if ft.is_dir() && !name.starts_with('.') {
+                stack.push(e.path());
+            } else if ft.is_file() && crate::watch::patterns::is_candidate(&name, include, exclude)
+            {
+                out.push(e.path());
+            }
+        }
+    }
+    out.sort();
+    out
+}
+
+fn frame_input(r: &FrameRecord) -> FrameInput {
+    let m = r.metrics.as_ref();
+    FrameInput {
+        path: r.identity.path.clone(),
+        time_unix: r.time_unix,
+        width: m.map_or(0, |m| m.width),
+        height: m.map_or(0, |m| m.height),
+        fwhm_px: m.and_then(|m| m.fwhm_px),
+        noise_adu: m.map_or(0.0, |m| m.noise_adu),
+        stars: r
+            .stars
+            .iter()
+            .map(|s| StarInput {
+                x: s.x,
+                y: s.y,
+                flux: s.flux,
+                flux_err: s.flux_err,
+                snr: s.snr,
+                fwhm_px: s.fwhm_px,
+                rgb: s.rgb.and_then(|c| Some([c[0]?, c[1]?, c[2]?])),
+                blended: s.blended,
+            })
+            .collect(),
+        sharp: r
+            .rejected
+            .iter()
+            .filter(|x| x.kind == RejectKind::Sharp)
+            .map(|x| (x.x, x.y, x.peak_adu))
+            .collect(),
+        trails: m.map(|m| m.trails.clone()).unwrap_or_default(),
+        wcs: r.wcs.clone(),
+    }
+}
+
+/// Analyse already-recorded frames as one night; `store` (optional) supplies earlier
+/// nights' catalogues and keeps tonight's.
+pub fn analyse_records(
+    records: &[FrameRecord],
+    mut store: Option<&mut Store>,
+) -> Result<NightDocument, StoreError> {
+    let mut doc = NightDocument {
+        frames: Vec::new(),
+        anomalies: Vec::new(),
+    };
+    // Group by target and filter; unreadable frames form their own group.
+    let mut groups: BTreeMap<(String, String), Vec<usize>> = BTreeMap::new();
+    for (i, r) in records.iter().enumerate() {
+        if r.status == FrameStatus::Skipped {
+            continue;
+        }
+        let key = (
+            r.target.clone().unwrap_or_default(),
+            r.filter.clone().unwrap_or_default(),
+        );
+        groups.entry(key).or_default().push(i);
+    }
+    for ((target, filter), idx) in groups {
+        let measured: Vec<usize> = idx
+            .iter()
+            .copied()
+            .filter(|&i| records[i].status == FrameStatus::Ok)
+            .collect();
+        let inputs: Vec<FrameInput> = measured.iter().map(|&i| frame_input(&records[i])).collect();
+        let night_label = majority(measured.iter().filter_map(|&i| records[i].night.clone()));
+        let earlier = match (&mut store, &night_label) {
+            (Some(s), Some(n)) if !target.is_empty() => s.earlier_catalogs(&target, n)?,
+            _ => Vec::new(),
+        };
+        let result = analyse(&inputs, &earlier);
+        if let (Some(s), Some(n), Some(limit)) = (&mut store, &night_label, result.limit_mag) {
+            if !target.is_empty() && !result.catalog.is_empty() {
+                s.save_catalog(&target, n, limit, &result.footprint, &result.catalog)?;
+            }
+        }
+        // Verdicts over the whole group (unreadable frames included).
+        let facts: Vec<FrameFacts> = idx
+            .iter()
+            .map(|&i| {
+                let r = &records[i];
+                let pos = measured.iter().position(|&m| m == i);
+                let fr = pos.map(|p| &result.frames[p]);
+                let m = r.metrics.as_ref();
+                FrameFacts {
+                    readable: r.status == FrameStatus::Ok,
+                    fwhm_px: m.and_then(|m| m.fwhm_px),
+                    eccentricity: m.and_then(|m| m.eccentricity),
+                    background_adu: m.map(|m| m.background_adu),
+                    noise_adu: m.map(|m| m.noise_adu),
+                    star_count: m.map(|m| m.star_count),
+                    trails: m.map_or(0, |m| m.trails.len()),
+                    transparency_loss_mag: fr.and_then(|f| f.transparency_loss_mag),
+                    registered: fr.map(|f| f.registered),
+                }
+            })
+            .collect();
+        let judged = judge_group(&facts);
+        for (k, &i) in idx.iter().enumerate() {
+            let r = &records[i];
+            let fr = measured
+                .iter()
+                .position(|&m| m == i)
+                .map(|p| result.frames[p].clone())
+                .unwrap_or_default();
+            doc.frames.push(NightFrameRecord {
+                path: r.identity.path.clone(),
+                status: if r.status == FrameStatus::Ok {
+                    "ok"
+                } else {
+                    "error"
+                },
+                error: r.error.clone(),
+                metrics: r.metrics.clone(),
+                verdict: judged[k].verdict,
+                reasons: judged[k].reasons.clone(),
+                explanations: judged[k].explanations.clone(),
+                night: r.night.clone(),
+                target: r.target.clone(),
+                filter: r.filter.clone(),
+                time_unix: r.time_unix,
+                registered: fr.registered,
+                registration_rms_px: fr.registration_rms_px,
+                transparency_loss_mag: fr.transparency_loss_mag,
+            });
+        }
+        for a in result.anomalies {
+            doc.anomalies.push(AnomalyRecord {
+                kind: a.kind,
+                ra_deg: a.ra_deg,
+                dec_deg: a.dec_deg,
+                detections: a
+                    .detections
+                    .iter()
+                    .map(|d| DetectionRecord {
+                        path: inputs[d.frame].path.clone(),
+                        x: d.x,
+                        y: d.y,
+                    })
+                    .collect(),
+                detail: a.detail,
+                target: Some(target.clone()).filter(|t| !t.is_empty()),
+                filter: Some(filter.clone()).filter(|t| !t.is_empty()),
+            });
+        }
+    }
+    doc.frames.sort_by(|a, b| {
+        a.time_unix
+            .unwrap_or(0.0)
+            .total_cmp(&b.time_unix.unwrap_or(0.0))
+            .then(a.path.cmp(&b.path))
+    });
+    Ok(doc)
+}
+
+fn majority(labels: impl Iterator<Item = String>) -> Option<String> {
+    let mut counts: BTreeMap<String, usize> = BTreeMap::new();
+    for l in labels {
+        *counts.entry(l).or_default() += 1;
+    }
+    counts.into_iter().max_by_key(|(_, c)| *c).map(|(l, _)| l)
+}
+
+/// Measure every frame under `dir` (calibration frames left out) and analyse the night.
+/// `progress` is called after each file with (done, total).
+pub fn run_night(
+    dir: &Path,
+    options: &RecordOptions,
+    include: &[String],
+    exclude: &[String],
+    store: Option<&mut Store>,
+    mut progress: impl FnMut(usize, usize),
+) -> Result<NightDocument, StoreError> {
+    let files = find_frames(&[dir.to_path_buf()], include, exclude);
+    let total = files.len();
+    let mut records = Vec::with_capacity(total);
+    for (k, path) in files.iter().enumerate() {
+        let (identity, mtime_unix) = match std::fs::metadata(path) {
+            Ok(m) => {
+                let mtime = m
+                    .modified()
+                    .ok()
+                    .and_then(|t| t.duration_since(std::time::UNIX_EPOCH).ok());
+                (
+                    Identity {
+                        path: path.to_string_lossy().into_owned(),
+                        size: m.len(),
+                        mtime_ns: mtime.map_or(0, |d| d.as_nanos() as i64),
+                    },
+                    mtime.map_or(0.0, |d| d.as_secs_f64()),
+                )
+            }
+            Err(_) => continue,
+        };
+        let rec = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
+            record_file(path, identity.clone(), mtime_unix, options)
+        }))
+        .unwrap_or_else(|_| {
+            let mut r = record_file_placeholder(identity);
+            r.error = Some("internal error while measuring (a bug; please report it)".into());
+            r
+        });
+        records.push(rec);
+        progress(k + 1, total);
+    }
+    analyse_records(&records, store)
+}
+
+fn record_file_placeholder(identity: Identity) -> FrameRecord {
+    FrameRecord {
+        identity,
+        status: FrameStatus::Error,
+        error: None,
+        night: None,
+        target: None,
+        filter: None,
+        time_unix: None,
+        header: None,
+        metrics: None,
+        stars: Vec::new(),
+        rejected: Vec::new(),
+        wcs: None,
+    }
+}

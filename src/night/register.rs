@@ -1,0 +1,385 @@
+//! Registration of one frame's stars onto a reference frame's: triangle (asterism)
+//! invariants (Groth 1986, AJ 91, 1244; Valdes et al. 1995, PASP 107, 1119) vote for
+//! star correspondences, a consensus search over pairs of them finds a similarity
+//! transform (rotation, scale, shift: dithers, drift, field rotation and the 180° turn of
+//! a meridian flip are all of this kind), and least squares on every matched star
+//! refines it to an affine transform with its residual RMS. Pure.
+
+/// p_ref = A · p + t, positions in FITS pixels.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Affine {
+    pub a: [[f64; 2]; 2],
+    pub t: [f64; 2],
+}
+
+impl Affine {
+    pub const IDENTITY: Affine = Affine {
+        a: [[1.0, 0.0], [0.0, 1.0]],
+        t: [0.0, 0.0],
+    };
+
+    pub fn apply(&self, p: (f64, f64)) -> (f64, f64) {
+        (
+            self.a[0][0] * p.0 + self.a[0][1] * p.1 + self.t[0],
+            self.a[1][0] * p.0 + self.a[1][1] * p.1 + self.t[1],
+        )
+    }
+
+    pub fn inverse(&self) -> Option<Affine> {
+        let det = self.a[0][0] * self.a[1][1] - self.a[0][1] * self.a[1][0];
+        if det.abs() < 1e-12 {
+            return None;
+        }
+        let inv = [
+            [self.a[1][1] / det, -self.a[0][1] / det],
+            [-self.a[1][0] / det, self.a[0][0] / det],
+        ];
+        let t = [
+            -(inv[0][0] * self.t[0] + inv[0][1] * self.t[1]),
+            -(inv[1][0] * self.t[0] + inv[1][1] * self.t[1]),
+        ];
+        Some(Affine { a: inv, t })
+    }
+
+    /// Rotation of the transform, degrees.
+    pub fn rotation_deg(&self) -> f64 {
+        self.a[1][0].atan2(self.a[0][0]).to_degrees()
+    }
+}
+
+#[derive(Debug, Clone, PartialEq)]
+pub struct Registration {
+    pub transform: Affine,
+    /// RMS distance between matched stars after the transform, pixels.
+    pub rms_px: f64,
+    pub matched: usize,
+}
+
+#[derive(Debug, Clone, Copy)]
+struct Triangle {
+    /// Invariants: middle over longest side, shortest over longest side.
+    inv: (f64, f64),
+    /// Vertices ordered: opposite the longest, the middle, the shortest side.
+    v: [usize; 3],
+}
+
+fn triangles(points: &[(f64, f64)]) -> Vec<Triangle> {
+    let n = points.len();
+    let d = |i: usize, j: usize| (points[i].0 - points[j].0).hypot(points[i].1 - points[j].1);
+    let mut seen = std::collections::HashSet::new();
+    let mut out = Vec::new();
+    for i in 0..n {
+        // Each star with pairs of its nearest neighbours: local triangles survive partial
+        // overlap between frames better than triangles spanning the whole field.
+        let mut near: Vec<usize> = (0..n).filter(|&j| j != i).collect();
+        near.sort_by(|&a, &b| d(i, a).total_cmp(&d(i, b)));
+        near.truncate(7);
+        for (ai, &j) in near.iter().enumerate() {
+            for &k in &near[ai + 1..] {
+                let mut key = [i, j, k];
+                key.sort_unstable();
+                if !seen.insert(key) {
+                    continue;
+                }
+                // Side opposite each vertex.
+                let mut sides = [(d(j, k), i), (d(i, k), j), (d(i, j), k)];
+                sides.sort_by(|a, b| b.0.total_cmp(&a.0));
+                if sides[0].0 < 1e-6 || sides[2].0 < 3.0 {
+                    continue;
+                }
+                out.push(Triangle {
+                    inv: (sides[1].0 / sides[0].0, sides[2].0 / sides[0].0),
+                    v: [sides[0].1, sides[1].1, sides[2].1],
+                });
+            }
+        }
+    }
+    out.sort_by(|a, b| a.inv.0.total_cmp(&b.inv.0));
+    out
+}
+
+/// Similarity transform from two point pairs (frame → reference).
+fn similarity(p1: (f64, f64), p2: (f64, f64), q1: (f64, f64), q2: (f64, f64)) -> Option<Affine> {
+    let (dpx, dpy) = (p2.0 - p1.0, p2.1 - p1.1);
+    let (dqx, dqy) = (q2.0 - q1.0, q2.1 - q1.1);
+    let n = dpx * dpx + dpy * dpy;
+    if n < 1e-9 {
+        return None;
+    }
+    // Complex ratio (dq / dp) = a + ib.
+    let a = (dqx * dpx + dqy * dpy) / n;
+    let b = (dqy * dpx - dqx * dpy) / n;
+    let t = [q1.0 - (a * p1.0 - b * p1.1), q1.1 - (b * p1.0 + a * p1.1)];
+    Some(Affine {
+        a: [[a, -b], [b, a]],
+        t,
+    })
+}
+
+/// Least-squares affine transform from matched pairs.
+/// A matched pair: (frame position, reference position).
+type Pair = ((f64, f64), (f64, f64));
+
+fn fit_affine(pairs: &[Pair]) -> Option<Affine> {
+    if pairs.len() < 3 {
+        return None;
+    }
+    // Normal equations for [x y 1] · [a00 a01 t0]ᵀ = x', likewise for y'.
+    let mut m = [[0.0; 3]; 3];
+    let mut bx = [0.0; 3];
+    let mut by = [0.0; 3];
+    for &((x, y), (u, v)) in pairs {
+        let r = [x, y, 1.0];
+        for i in 0..3 {
+            for j in 0..3 {
+                m[i][j] += r[i] * r[j];
+            }
+            bx[i] += r[i] * u;
+            by[i] += r[i] * v;
+        }
+    }
+    let solve3 = |m: [[f64; 3]; 3], b: [f64; 3]| -> Option<[f64; 3]> {
+        let det = |m: &[[f64; 3]; 3]| {
+            m[0][0] * (m[1][1] * m[2][2] - m[1][2] * m[2][1])
+                - m[0][1] * (m[1][0] * m[2][2] - m[1][2] * m[2][0])
+                + m[0][2] * (m[1][0] * m[2][1] - m[1][1] * m[2][0])
+        };
+        let d = det(&m);
+        if d.abs() < 1e-12 {
+            return None;
+        }
+        let mut out = [0.0; 3];
+        for (c, o) in out.iter_mut().enumerate() {
+            let mut mc = m;
+            for r in 0..3 {
+                mc[r][c] = b[r];
+            }
+            *o = det(&mc) / d;
+        }
+        Some(out)
+    };
+    let sx = solve3(m, bx)?;
+    let sy = solve3(m, by)?;
+    Some(Affine {
+        a: [[sx[0], sx[1]], [sy[0], sy[1]]],
+        t: [sx[2], sy[2]],
+    })
+}
+
+/// Pairs (frame star, reference star) within `tol` px after `t`, each star used once.
+fn match_all(
+    frame: &[(f64, f64)],
+    reference: &[(f64, f64)],
+    t: &Affine,
+    tol: f64,
+) -> Vec<(usize, usize, f64)> {
+    let cell = tol.max(1.0) * 2.0;
+    let mut grid: std::collections::HashMap<(i64, i64), Vec<usize>> =
+        std::collections::HashMap::new();
+    for (j, q) in reference.iter().enumerate() {
+        grid.entry(((q.0 / cell).floor() as i64, (q.1 / cell).floor() as i64))
+            .or_default()
+            .push(j);
+    }
+    let mut cand = Vec::new();
+    for (i, p) in frame.iter().enumerate() {
+        let q = t.apply(*p);
+        let (cx, cy) = ((q.0 / cell).floor() as i64, (q.1 / cell).floor() as i64);
+        for gx in cx - 1..=cx + 1 {
+            for gy in cy - 1..=cy + 1 {
+                for &j in grid.get(&(gx, gy)).into_iter().flatten() {
+                    let d = (reference[j].0 - q.0).hypot(reference[j].1 - q.1);
+                    if d <= tol {
+                        cand.push((i, j, d));
+                    }
+                }
+            }
+        }
+    }
+    cand.sort_by(|a, b| a.2.total_cmp(&b.2));
+    let mut used_f = vec![false; frame.len()];
+    let mut used_r = vec![false; reference.len()];
+    cand.into_iter()
+        .filter(|&(i, j, _)| {
+            if used_f[i] || used_r[j] {
+                return false;
+            }
+            used_f[i] = true;
+            used_r[j] = true;
+            true
+        })
+        .collect()
+}
+
+/// Register `frame` stars onto `reference` stars. Each list holds (x, y, flux), FITS
+/// pixels. `None` when no consistent transform is found (clouds, another target).
+pub fn register(reference: &[(f64, f64, f64)], frame: &[(f64, f64, f64)]) -> Option<Registration> {
+    let brightest = |stars: &[(f64, f64, f64)], n: usize| -> Vec<(f64, f64)> {
+        let mut s: Vec<&(f64, f64, f64)> = stars.iter().collect();
+        s.sort_by(|a, b| b.2.total_cmp(&a.2));
+        s.into_iter().take(n).map(|p| (p.0, p.1)).collect()
+    };
+    let rb = brightest(reference, 40);
+    let fb = brightest(frame, 40);
+    if rb.len() < 4 || fb.len() < 4 {
+        return None;
+    }
+    let rt = triangles(&rb);
+    let ft = triangles(&fb);
+    let eps = 0.008;
+    let mut votes = vec![vec![0u32; rb.len()]; fb.len()];
+    for tri in &ft {
+        let lo = rt.partition_point(|r| r.inv.0 < tri.inv.0 - eps);
+        for r in &rt[lo..] {
+            if r.inv.0 > tri.inv.0 + eps {
+                break;
+            }
+            if (r.inv.1 - tri.inv.1).abs() <= eps {
+                for k in 0..3 {
+                    votes[tri.v[k]][r.v[k]] += 1;
+                }
+            }
+        }
+    }
+    // The strongest correspondences.
+    let mut pairs: Vec<(usize, usize, u32)> = votes
+        .iter()
+        .enumerate()
+        .filter_map(|(i, row)| {
+            let (j, &v) = row.iter().enumerate().max_by_key(|(_, v)| **v)?;
+            (v >= 2).then_some((i, j, v))
+        })
+        .collect();
+    pairs.sort_by_key(|p| std::cmp::Reverse(p.2));
+    pairs.truncate(25);
+    if pairs.len() < 2 {
+        return None;
+    }
+    // Consensus over every pair of correspondences (deterministic).
+    let mut best: Option<(usize, Affine)> = None;
+    for a in 0..pairs.len() {
+        for b in a + 1..pairs.len() {
+            let (fa, ra, _) = pairs[a];
+            let (fb_, rb_, _) = pairs[b];
+            let Some(t) = similarity(fb[fa], fb[fb_], rb[ra], rb[rb_]) else {
+                continue;
+            };
+            let scale = t.a[0][0].hypot(t.a[1][0]);
+            if !(0.8..=1.25).contains(&scale) {
+                continue;
+            }
+            let inliers = pairs
+                .iter()
+                .filter(|&&(f, r, _)| {
+                    let q = t.apply(fb[f]);
+                    (q.0 - rb[r].0).hypot(q.1 - rb[r].1) < 2.0
+                })
+                .count();
+            if best.as_ref().is_none_or(|(n, _)| inliers > *n) {
+                best = Some((inliers, t));
+            }
+        }
+    }
+    let (inliers, mut t) = best?;
+    if inliers < 3 {
+        return None;
+    }
+    // Refine on all stars: match, fit affine, repeat with a tighter tolerance.
+    let fp: Vec<(f64, f64)> = frame.iter().map(|p| (p.0, p.1)).collect();
+    let rp: Vec<(f64, f64)> = reference.iter().map(|p| (p.0, p.1)).collect();
+    let mut matched = Vec::new();
+    for tol in [3.0, 1.5, 1.0] {
+        matched = match_all(&fp, &rp, &t, tol);
+        if matched.len() < 6 {
+            return None;
+        }
+        let data: Vec<Pair> =
+            matched.iter().map(|&(i, j, _)| (fp[i], rp[j])).collect();
+        t = fit_affine(&data)?;
+    }
+    let sq: f64 = matched
+        .iter()
+        .map(|&(i, j, _)| {
+            let q = t.apply(fp[i]);
+            (q.0 - rp[j].0).powi(2) + (q.1 - rp[j].1).powi(2)
+        })
+        .sum();
+    Some(Registration {
+        transform: t,
+        rms_px: (sq / matched.len() as f64).sqrt(),
+        matched: matched.len(),
+    })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn field() -> Vec<(f64, f64, f64)> {
+        // A deterministic scatter of 60 stars.
+        (0..60)
+            .map(|i| {
+                let f = i as f64;
+                (
+                    (f * 97.31).rem_euclid(900.0) + 50.0,
+                    (f * 53.77 + f * f * 0.7).rem_euclid(700.0) + 40.0,
+                    1000.0 + (f * 37.0).rem_euclid(500.0),
+                )
+            })
+            .collect()
+    }
+
+    #[test]
+    fn recovers_a_known_shift_rotation_and_meridian_flip() {
+        let reference = field();
+        for (angle, shift) in [
+            (0.0f64, (12.5, -7.25)),
+            (1.5, (-20.0, 3.0)),
+            (180.0, (8.0, 15.0)),
+        ] {
+            let truth = {
+                let (s, c) = angle.to_radians().sin_cos();
+                Affine {
+                    a: [[c, -s], [s, c]],
+                    t: [shift.0, shift.1],
+                }
+            };
+            let inv = truth.inverse().unwrap();
+            // The frame sees reference stars through the inverse; drop a few, add a few.
+            let mut frame: Vec<(f64, f64, f64)> = reference
+                .iter()
+                .skip(3)
+                .map(|&(x, y, f)| {
+                    let p = inv.apply((x, y));
+                    (p.0, p.1, f)
+                })
+                .collect();
+            frame.push((500.0, 500.0, 1200.0));
+            let r = register(&reference, &frame).expect("registered");
+            assert!(r.rms_px < 1e-6, "{angle}: rms {}", r.rms_px);
+            for k in 0..2 {
+                for l in 0..2 {
+                    assert!((r.transform.a[k][l] - truth.a[k][l]).abs() < 1e-9);
+                }
+                assert!((r.transform.t[k] - truth.t[k]).abs() < 1e-6);
+            }
+            assert_eq!(r.matched, 57);
+        }
+    }
+
+    #[test]
+    fn unrelated_fields_do_not_register() {
+        let reference = field();
+        let other: Vec<(f64, f64, f64)> = (0..60)
+            .map(|i| {
+                let f = i as f64;
+                (
+                    (f * 71.9).rem_euclid(800.0),
+                    (f * 31.3 + f * f * 1.3).rem_euclid(600.0),
+                    900.0 + f,
+                )
+            })
+            .collect();
+        assert!(register(&reference, &other).is_none());
+    }
+}
