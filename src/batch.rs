@@ -66,6 +66,12 @@ fn frame_input(r: &FrameRecord) -> FrameInput {
             .map(|x| (x.x, x.y, x.peak_adu))
             .collect(),
         trails: m.map(|m| m.trails.clone()).unwrap_or_default(),
+        extended: r
+            .rejected
+            .iter()
+            .filter(|x| x.kind == RejectKind::Extended)
+            .map(|x| (x.x, x.y))
+            .collect(),
         wcs: r.wcs.clone(),
     }
 }
@@ -157,6 +163,7 @@ pub fn analyse_records(
                 time_unix: r.time_unix,
                 registered: fr.registered,
                 registration_rms_px: fr.registration_rms_px,
+                registration_transform: fr.transform,
                 transparency_loss_mag: fr.transparency_loss_mag,
             });
         }

@@ -219,6 +219,8 @@ pub struct NightFrameRecord {
     pub registered: bool,
     #[serde(serialize_with = "finite")]
     pub registration_rms_px: Option<f64>,
+    /// Frame → reference transform [a00, a01, a10, a11, t0, t1] in FITS pixels.
+    pub registration_transform: Option<[f64; 6]>,
     #[serde(serialize_with = "finite")]
     pub transparency_loss_mag: Option<f64>,
 }

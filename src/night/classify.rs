@@ -3,7 +3,7 @@
 
 use serde_json::json;
 
-use super::register::{register, Affine};
+use super::register::{register, Affine, RegStar};
 use super::tracks::{covers, Source, TrackPoint, Tracks};
 use super::{
     Anomaly, AnomalyKind, CatalogSource, Detection, EarlierNight, FrameInput, FrameResult,
@@ -127,27 +127,36 @@ pub fn analyse(frames: &[FrameInput], earlier: &[EarlierNight]) -> NightResult {
 
     // Reference: the frame with the most stars.
     let reference = (0..n).max_by_key(|&i| frames[i].stars.len()).unwrap_or(0);
-    let ref_stars: Vec<(f64, f64, f64)> = frames[reference]
-        .stars
-        .iter()
-        .map(|s| (s.x, s.y, s.flux))
-        .collect();
+    let reg_stars = |f: &FrameInput| -> Vec<RegStar> {
+        f.stars
+            .iter()
+            .map(|s| RegStar {
+                x: s.x,
+                y: s.y,
+                flux: s.flux,
+                snr: s.snr,
+            })
+            .collect()
+    };
+    let ref_stars = reg_stars(&frames[reference]);
     let mut transforms: Vec<Option<Affine>> = vec![None; n];
     for i in 0..n {
         if i == reference {
             transforms[i] = Some(Affine::IDENTITY);
             result.frames[i] = FrameResult {
                 registered: true,
+                transform: Some([1.0, 0.0, 0.0, 1.0, 0.0, 0.0]),
                 registration_rms_px: Some(0.0),
                 matched_stars: frames[i].stars.len(),
                 transparency_loss_mag: Some(0.0),
             };
             continue;
         }
-        let stars: Vec<(f64, f64, f64)> =
-            frames[i].stars.iter().map(|s| (s.x, s.y, s.flux)).collect();
-        if let Some(r) = register(&ref_stars, &stars) {
+        if let Some(r) = register(&ref_stars, &reg_stars(&frames[i])) {
             transforms[i] = Some(r.transform);
+            let t = r.transform;
+            result.frames[i].transform =
+                Some([t.a[0][0], t.a[0][1], t.a[1][0], t.a[1][1], t.t[0], t.t[1]]);
             result.frames[i].registered = true;
             result.frames[i].registration_rms_px = Some(r.rms_px);
             result.frames[i].matched_stars = r.matched;
@@ -714,7 +723,7 @@ pub fn analyse(frames: &[FrameInput], earlier: &[EarlierNight]) -> NightResult {
                 CatalogSource {
                     ra_deg: ra.rem_euclid(360.0),
                     dec_deg: dec,
-                    mag: m,
+                    mag: Some(m),
                 },
             ))
         })
@@ -747,7 +756,7 @@ pub fn analyse(frames: &[FrameInput], earlier: &[EarlierNight]) -> NightResult {
                 e.sources
                     .iter()
                     .find(|o| sep(c, o) < match_arcsec)
-                    .map(|o| c.mag - o.mag)
+                    .and_then(|o| Some(c.mag? - o.mag?))
             })
             .collect();
         if offsets.len() < 5 {
@@ -777,7 +786,8 @@ pub fn analyse(frames: &[FrameInput], earlier: &[EarlierNight]) -> NightResult {
                 continue;
             }
             // Would that night have seen it? Its limit, moved to tonight's scale.
-            if c.mag + 0.75 < e.limit_mag + offset {
+            let Some(m) = c.mag else { continue };
+            if m + 0.75 < e.limit_mag + offset {
                 let dets: Vec<Detection> = sources[*s]
                     .points
                     .iter()
@@ -791,12 +801,79 @@ pub fn analyse(frames: &[FrameInput], earlier: &[EarlierNight]) -> NightResult {
                     frames,
                     AnomalyKind::NewSource,
                     dets,
-                    json!({"absent_on": e.night, "instrumental_mag": c.mag, "earlier_limit_mag": e.limit_mag + offset}),
+                    json!({"absent_on": e.night, "instrumental_mag": m, "earlier_limit_mag": e.limit_mag + offset}),
                 ));
             }
         }
     }
     result.catalog = catalog.into_iter().map(|(_, c)| c).collect();
+    // Also keep what was seen but not measured as a persistent star: sources found in
+    // two or more frames, and extended objects seen twice or more. A later night must
+    // not call these new.
+    let sky_mean = |pts: &[(usize, f64, f64)]| -> Option<(f64, f64)> {
+        let sky: Vec<(f64, f64)> = pts
+            .iter()
+            .filter_map(|&(i, x, y)| frames[i].wcs.as_ref().map(|w| w.pixel_to_sky(x, y)))
+            .collect();
+        let &(ra0, _) = sky.first()?;
+        let ra = median_f64(
+            &sky.iter()
+                .map(|p| ra0 + ((p.0 - ra0 + 540.0).rem_euclid(360.0) - 180.0))
+                .collect::<Vec<_>>(),
+        )?;
+        Some((
+            ra.rem_euclid(360.0),
+            median_f64(&sky.iter().map(|p| p.1).collect::<Vec<_>>())?,
+        ))
+    };
+    for (s, p) in sources.iter().zip(&persistent) {
+        if !*p && s.points.len() >= 2 {
+            let pts: Vec<(usize, f64, f64)> =
+                s.points.iter().map(|p| (p.frame, p.x, p.y)).collect();
+            if let Some((ra, dec)) = sky_mean(&pts) {
+                result.catalog.push(CatalogSource {
+                    ra_deg: ra,
+                    dec_deg: dec,
+                    mag: None,
+                });
+            }
+        }
+    }
+    let mut extended = Tracks::new(radius.max(2.0));
+    for &i in &order {
+        let Some(t) = transforms[i] else { continue };
+        let pts: Vec<TrackPoint> = frames[i]
+            .extended
+            .iter()
+            .map(|&(x, y)| {
+                let (xr, yr) = t.apply((x, y));
+                TrackPoint {
+                    frame: i,
+                    x,
+                    y,
+                    xr,
+                    yr,
+                    flux: 0.0,
+                    flux_err: 0.0,
+                    snr: 0.0,
+                    fwhm_px: 0.0,
+                    rgb: None,
+                    blended: false,
+                }
+            })
+            .collect();
+        extended.add_frame(&pts);
+    }
+    for s in extended.sources.iter().filter(|s| s.points.len() >= 2) {
+        let pts: Vec<(usize, f64, f64)> = s.points.iter().map(|p| (p.frame, p.x, p.y)).collect();
+        if let Some((ra, dec)) = sky_mean(&pts) {
+            result.catalog.push(CatalogSource {
+                ra_deg: ra,
+                dec_deg: dec,
+                mag: None,
+            });
+        }
+    }
     anomalies.sort_by_key(|a| a.kind);
     result.anomalies = anomalies;
     result
@@ -805,6 +882,24 @@ pub fn analyse(frames: &[FrameInput], earlier: &[EarlierNight]) -> NightResult {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn variability_index_of_a_worked_series() {
+        // Residuals 0.10, −0.10, 0.05, −0.05 mag with σ = 0.05 mag each (worked by hand):
+        // χ² = 4 + 4 + 1 + 1 = 10 with 3 degrees of freedom; P(χ²₃ > 10) = 0.0186
+        // (closed form for 3 d.o.f., 2Q(√x) + 2φ(√x)√x with Q the normal tail and φ its
+        // density: 2·0.000783 + 2·0.002688·3.1623 = 0.0186; the identity from memory).
+        let chi2: f64 = [0.10f64, -0.10, 0.05, -0.05]
+            .iter()
+            .map(|r| (r / 0.05).powi(2))
+            .sum();
+        assert!((chi2 - 10.0).abs() < 1e-12);
+        assert!(
+            (chi2_tail(chi2, 3.0) - 0.0186).abs() < 0.002,
+            "{}",
+            chi2_tail(chi2, 3.0)
+        );
+    }
 
     #[test]
     fn chi_square_tail_matches_tables() {

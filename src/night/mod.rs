@@ -39,6 +39,8 @@ pub struct FrameInput {
     /// peak above the sky in ADU.
     pub sharp: Vec<(f64, f64, f64)>,
     pub trails: Vec<Trail>,
+    /// Detections set aside as wider than the stars (galaxies, blends), FITS pixels.
+    pub extended: Vec<(f64, f64)>,
     pub wcs: Option<Wcs>,
 }
 
@@ -75,6 +77,8 @@ pub struct Anomaly {
 #[derive(Debug, Clone, Default, Serialize)]
 pub struct FrameResult {
     pub registered: bool,
+    /// Frame → reference-frame transform [a00, a01, a10, a11, t0, t1] (FITS pixels).
+    pub transform: Option<[f64; 6]>,
     pub registration_rms_px: Option<f64>,
     pub matched_stars: usize,
     /// Extinction relative to the reference frame from matched stars, magnitudes
@@ -100,8 +104,10 @@ pub struct NightResult {
 pub struct CatalogSource {
     pub ra_deg: f64,
     pub dec_deg: f64,
-    /// Instrumental magnitude −2.5 log10(flux) in the night's reference frame.
-    pub mag: f64,
+    /// Instrumental magnitude −2.5 log10(flux) on the night's reference-frame scale;
+    /// `None` for objects seen but not measured as persistent stars (blends, extended
+    /// objects, sources at the detection limit), which still count as "was there".
+    pub mag: Option<f64>,
 }
 
 /// An earlier night's catalogue of the same target.

@@ -117,9 +117,10 @@ fn similarity(p1: (f64, f64), p2: (f64, f64), q1: (f64, f64), q2: (f64, f64)) ->
 }
 
 /// Least-squares affine transform from matched pairs.
-/// A matched pair: (frame position, reference position).
-type Pair = ((f64, f64), (f64, f64));
+/// A matched pair: (frame position, reference position, weight).
+type Pair = ((f64, f64), (f64, f64), f64);
 
+/// Weighted least-squares affine transform from matched pairs.
 fn fit_affine(pairs: &[Pair]) -> Option<Affine> {
     if pairs.len() < 3 {
         return None;
@@ -128,14 +129,14 @@ fn fit_affine(pairs: &[Pair]) -> Option<Affine> {
     let mut m = [[0.0; 3]; 3];
     let mut bx = [0.0; 3];
     let mut by = [0.0; 3];
-    for &((x, y), (u, v)) in pairs {
+    for &((x, y), (u, v), w) in pairs {
         let r = [x, y, 1.0];
         for i in 0..3 {
             for j in 0..3 {
-                m[i][j] += r[i] * r[j];
+                m[i][j] += w * r[i] * r[j];
             }
-            bx[i] += r[i] * u;
-            by[i] += r[i] * v;
+            bx[i] += w * r[i] * u;
+            by[i] += w * r[i] * v;
         }
     }
     let solve3 = |m: [[f64; 3]; 3], b: [f64; 3]| -> Option<[f64; 3]> {
@@ -211,13 +212,24 @@ fn match_all(
         .collect()
 }
 
-/// Register `frame` stars onto `reference` stars. Each list holds (x, y, flux), FITS
-/// pixels. `None` when no consistent transform is found (clouds, another target).
-pub fn register(reference: &[(f64, f64, f64)], frame: &[(f64, f64, f64)]) -> Option<Registration> {
-    let brightest = |stars: &[(f64, f64, f64)], n: usize| -> Vec<(f64, f64)> {
-        let mut s: Vec<&(f64, f64, f64)> = stars.iter().collect();
-        s.sort_by(|a, b| b.2.total_cmp(&a.2));
-        s.into_iter().take(n).map(|p| (p.0, p.1)).collect()
+/// A star for registration: FITS position, flux (for choosing the brightest) and SNR
+/// (a centroid's error goes as 1/SNR, so the fit weighs each match by
+/// 1 / (1/SNR_frame² + 1/SNR_reference²)).
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct RegStar {
+    pub x: f64,
+    pub y: f64,
+    pub flux: f64,
+    pub snr: f64,
+}
+
+/// Register `frame` stars onto `reference` stars. `None` when no consistent transform is
+/// found (clouds, another target).
+pub fn register(reference: &[RegStar], frame: &[RegStar]) -> Option<Registration> {
+    let brightest = |stars: &[RegStar], n: usize| -> Vec<(f64, f64)> {
+        let mut s: Vec<&RegStar> = stars.iter().collect();
+        s.sort_by(|a, b| b.flux.total_cmp(&a.flux));
+        s.into_iter().take(n).map(|p| (p.x, p.y)).collect()
     };
     let rb = brightest(reference, 40);
     let fb = brightest(frame, 40);
@@ -285,16 +297,22 @@ pub fn register(reference: &[(f64, f64, f64)], frame: &[(f64, f64, f64)]) -> Opt
         return None;
     }
     // Refine on all stars: match, fit affine, repeat with a tighter tolerance.
-    let fp: Vec<(f64, f64)> = frame.iter().map(|p| (p.0, p.1)).collect();
-    let rp: Vec<(f64, f64)> = reference.iter().map(|p| (p.0, p.1)).collect();
+    let fp: Vec<(f64, f64)> = frame.iter().map(|p| (p.x, p.y)).collect();
+    let rp: Vec<(f64, f64)> = reference.iter().map(|p| (p.x, p.y)).collect();
+    let weight = |i: usize, j: usize| {
+        let (a, b) = (frame[i].snr.max(1.0), reference[j].snr.max(1.0));
+        1.0 / (1.0 / (a * a) + 1.0 / (b * b))
+    };
     let mut matched = Vec::new();
     for tol in [3.0, 1.5, 1.0] {
         matched = match_all(&fp, &rp, &t, tol);
         if matched.len() < 6 {
             return None;
         }
-        let data: Vec<Pair> =
-            matched.iter().map(|&(i, j, _)| (fp[i], rp[j])).collect();
+        let data: Vec<Pair> = matched
+            .iter()
+            .map(|&(i, j, _)| (fp[i], rp[j], weight(i, j)))
+            .collect();
         t = fit_affine(&data)?;
     }
     let sq: f64 = matched
@@ -315,12 +333,21 @@ pub fn register(reference: &[(f64, f64, f64)], frame: &[(f64, f64, f64)]) -> Opt
 mod tests {
     use super::*;
 
-    fn field() -> Vec<(f64, f64, f64)> {
+    fn star(x: f64, y: f64, flux: f64) -> RegStar {
+        RegStar {
+            x,
+            y,
+            flux,
+            snr: flux / 10.0,
+        }
+    }
+
+    fn field() -> Vec<RegStar> {
         // A deterministic scatter of 60 stars.
         (0..60)
             .map(|i| {
                 let f = i as f64;
-                (
+                star(
                     (f * 97.31).rem_euclid(900.0) + 50.0,
                     (f * 53.77 + f * f * 0.7).rem_euclid(700.0) + 40.0,
                     1000.0 + (f * 37.0).rem_euclid(500.0),
@@ -346,15 +373,15 @@ mod tests {
             };
             let inv = truth.inverse().unwrap();
             // The frame sees reference stars through the inverse; drop a few, add a few.
-            let mut frame: Vec<(f64, f64, f64)> = reference
+            let mut frame: Vec<RegStar> = reference
                 .iter()
                 .skip(3)
-                .map(|&(x, y, f)| {
-                    let p = inv.apply((x, y));
-                    (p.0, p.1, f)
+                .map(|s| {
+                    let p = inv.apply((s.x, s.y));
+                    star(p.0, p.1, s.flux)
                 })
                 .collect();
-            frame.push((500.0, 500.0, 1200.0));
+            frame.push(star(500.0, 500.0, 1200.0));
             let r = register(&reference, &frame).expect("registered");
             assert!(r.rms_px < 1e-6, "{angle}: rms {}", r.rms_px);
             for k in 0..2 {
@@ -370,10 +397,10 @@ mod tests {
     #[test]
     fn unrelated_fields_do_not_register() {
         let reference = field();
-        let other: Vec<(f64, f64, f64)> = (0..60)
+        let other: Vec<RegStar> = (0..60)
             .map(|i| {
                 let f = i as f64;
-                (
+                star(
                     (f * 71.9).rem_euclid(800.0),
                     (f * 31.3 + f * f * 1.3).rem_euclid(600.0),
                     900.0 + f,

@@ -91,6 +91,10 @@ pub struct NightFrame {
     pub keys: Vec<(String, OutValue)>,
     pub truth: SimTruth,
     pub time_unix: f64,
+    /// Where the field lies in this frame: p_frame = R(rotation)·(p_ref − c) + c + dither,
+    /// 0-based pixels, c the frame centre.
+    pub dither: (f64, f64),
+    pub rotation_deg: f64,
 }
 
 /// Where a reference-frame position (0-based) lands in a frame dithered by `d` and
@@ -378,6 +382,8 @@ pub fn render_night(plan: &NightPlan) -> (Vec<NightFrame>, Vec<TrueAnomaly>) {
             keys,
             truth,
             time_unix: t,
+            dither,
+            rotation_deg: rot,
         });
     }
     for a in [moving, variable, red, new] {

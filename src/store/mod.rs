@@ -163,7 +163,7 @@ const MIGRATIONS: &[&str] = &[
      );
      CREATE TABLE catalog (
         target TEXT NOT NULL, night TEXT NOT NULL,
-        ra_deg REAL NOT NULL, dec_deg REAL NOT NULL, mag REAL NOT NULL
+        ra_deg REAL NOT NULL, dec_deg REAL NOT NULL, mag REAL
      );
      CREATE INDEX catalog_target ON catalog (target, night);",
 ];

@@ -1,0 +1,272 @@
+//! `subwatch night` on rendered nights whose events are known: every injected anomaly
+//! must be found, with at most two false ones per 40 frames, and the registration must
+//! match the rendered dithers and meridian flip.
+
+mod common;
+
+use std::path::Path;
+use std::process::Command;
+
+use serde_json::Value;
+use subwatch::frame::write::{write_frame, Encoding};
+use subwatch::sim::night::{render_night, NightFrame, NightPlan, TrueAnomaly};
+
+fn write_night(dir: &Path, plan: &NightPlan) -> (Vec<NightFrame>, Vec<TrueAnomaly>) {
+    std::fs::create_dir_all(dir).unwrap();
+    let (frames, truth) = render_night(plan);
+    for f in &frames {
+        write_frame(&dir.join(&f.name), &f.pixels, Encoding::Unsigned16, &f.keys).unwrap();
+    }
+    (frames, truth)
+}
+
+fn run_night(dir: &Path, config: Option<&Path>) -> Value {
+    let mut cmd = Command::new(common::binary());
+    cmd.arg("night").arg(dir).arg("--json");
+    if let Some(c) = config {
+        cmd.arg("--config").arg(c);
+    }
+    let out = cmd.output().unwrap();
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    serde_json::from_slice(&out.stdout).unwrap()
+}
+
+/// Per kind: (injected, found among them, reported, false reports).
+fn score(
+    doc: &Value,
+    frames: &[NightFrame],
+    truth: &[TrueAnomaly],
+    kind: &str,
+) -> (usize, usize, usize, usize) {
+    let reported: Vec<&Value> = doc["anomalies"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .filter(|a| a["kind"] == kind)
+        .collect();
+    let tol = if kind == "trail" { 30.0 } else { 3.0 };
+    let matches = |t: &TrueAnomaly, a: &Value| {
+        a["detections"].as_array().unwrap().iter().any(|d| {
+            let path = d["path"].as_str().unwrap();
+            t.frames.iter().enumerate().any(|(k, &fi)| {
+                let pos = t.positions[k.min(t.positions.len() - 1)];
+                (kind == "hot_pixel" || path.ends_with(&frames[fi].name))
+                    && (d["x"].as_f64().unwrap() - pos.0).hypot(d["y"].as_f64().unwrap() - pos.1)
+                        < tol
+            })
+        })
+    };
+    let injected: Vec<&TrueAnomaly> = truth.iter().filter(|t| t.kind == kind).collect();
+    let found = injected
+        .iter()
+        .filter(|t| reported.iter().any(|a| matches(t, a)))
+        .count();
+    let false_reports = reported
+        .iter()
+        .filter(|a| !injected.iter().any(|t| matches(t, a)))
+        .count();
+    (injected.len(), found, reported.len(), false_reports)
+}
+
+#[test]
+fn a_rendered_night_gives_back_what_was_put_in() {
+    let dir = tempfile::tempdir().unwrap();
+    let plan = NightPlan::full(3);
+    let (frames, truth) = write_night(dir.path(), &plan);
+    let doc = run_night(dir.path(), None);
+
+    let mut false_total = 0;
+    for kind in ["transient", "trail", "moving", "variable", "hot_pixel"] {
+        let (injected, found, reported, false_reports) = score(&doc, &frames, &truth, kind);
+        println!("{kind}: injected {injected}, found {found}, reported {reported}, false {false_reports}");
+        assert!(injected > 0, "{kind}: the scenario injects it");
+        assert_eq!(found, injected, "{kind}: every injected one is found");
+        false_total += false_reports;
+    }
+    for kind in ["color", "new_source"] {
+        let (_, _, reported, _) = score(&doc, &frames, &truth, kind);
+        false_total += reported;
+    }
+    println!("false anomalies: {false_total} in {} frames", frames.len());
+    assert!(
+        false_total <= 2,
+        "at most two false anomalies per 40 frames"
+    );
+
+    // Verdicts: the gust, the cloud and the end of the focus drift are caught; trails warned.
+    let verdict = |i: usize| {
+        let f = doc["frames"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .find(|f| f["path"].as_str().unwrap().ends_with(&frames[i].name))
+            .unwrap();
+        (
+            f["verdict"].as_str().unwrap().to_string(),
+            f["reasons"].clone(),
+        )
+    };
+    assert_eq!(verdict(7).0, "reject", "{:?}", verdict(7));
+    for i in plan.cloud_frames.clone() {
+        let (v, reasons) = verdict(i);
+        assert_eq!(v, "reject");
+        assert!(
+            reasons
+                .as_array()
+                .unwrap()
+                .iter()
+                .any(|r| r == "transparency_low"),
+            "{reasons}"
+        );
+    }
+    assert_eq!(verdict(39).0, "reject");
+    assert!(verdict(5)
+        .1
+        .as_array()
+        .unwrap()
+        .iter()
+        .any(|r| r == "trail"));
+    assert_eq!(verdict(2).0, "ok");
+
+    // Registration against the rendered geometry: map each frame's corners to the
+    // reference frame both ways and compare.
+    let records = doc["frames"].as_array().unwrap();
+    let reference = records
+        .iter()
+        .position(|f| f["registration_rms_px"].as_f64() == Some(0.0))
+        .unwrap();
+    let ref_frame = frames
+        .iter()
+        .find(|f| {
+            records[reference]["path"]
+                .as_str()
+                .unwrap()
+                .ends_with(&f.name)
+        })
+        .unwrap();
+    let c = (
+        (plan.width as f64 + 1.0) / 2.0,
+        (plan.height as f64 + 1.0) / 2.0,
+    );
+    // Frame FITS position → rendered field position (inverse of the renderer's placement).
+    let to_field = |f: &NightFrame, p: (f64, f64)| {
+        let (s, co) = f.rotation_deg.to_radians().sin_cos();
+        let (x, y) = (p.0 - c.0 - f.dither.0, p.1 - c.1 - f.dither.1);
+        (co * x + s * y + c.0, -s * x + co * y + c.1)
+    };
+    let from_field = |f: &NightFrame, p: (f64, f64)| {
+        let (s, co) = f.rotation_deg.to_radians().sin_cos();
+        let (x, y) = (p.0 - c.0, p.1 - c.1);
+        (
+            co * x - s * y + c.0 + f.dither.0,
+            s * x + co * y + c.1 + f.dither.1,
+        )
+    };
+    let mut worst: f64 = 0.0;
+    for rec in records {
+        let f = frames
+            .iter()
+            .find(|f| rec["path"].as_str().unwrap().ends_with(&f.name))
+            .unwrap();
+        let t: Vec<f64> = rec["registration_transform"]
+            .as_array()
+            .expect("registered")
+            .iter()
+            .map(|v| v.as_f64().unwrap())
+            .collect();
+        for corner in [(50.0, 50.0), (700.0, 60.0), (60.0, 700.0), (700.0, 700.0)] {
+            let ours = (
+                t[0] * corner.0 + t[1] * corner.1 + t[4],
+                t[2] * corner.0 + t[3] * corner.1 + t[5],
+            );
+            let truth = from_field(ref_frame, to_field(f, corner));
+            worst = worst.max((ours.0 - truth.0).hypot(ours.1 - truth.1));
+        }
+    }
+    println!("registration: worst transform error at the frame corners {worst:.4} px");
+    assert!(worst <= 0.05, "registration error {worst} px");
+}
+
+#[test]
+fn colour_night_finds_the_very_red_star() {
+    let dir = tempfile::tempdir().unwrap();
+    let mut plan = NightPlan::full(5);
+    plan.object = "Kestrel Field B".into();
+    plan.field_seed = 91;
+    plan.bayer = subwatch::frame::bayer::BayerPattern::parse("RGGB");
+    plan.red_star = true;
+    plan.frames = 10;
+    plan.flip_at = None;
+    plan.cloud_frames.clear();
+    plan.gust_frames.clear();
+    plan.focus_drift_from = None;
+    plan.trail_frames.clear();
+    plan.moving_object = false;
+    plan.variable_star = false;
+    plan.flash_frame = None;
+    let (frames, truth) = write_night(dir.path(), &plan);
+    let doc = run_night(dir.path(), None);
+    let (injected, found, reported, false_reports) = score(&doc, &frames, &truth, "color");
+    assert_eq!((injected, found, reported, false_reports), (1, 1, 1, 0));
+    let red = doc["anomalies"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|a| a["kind"] == "color")
+        .unwrap();
+    assert!(
+        red["detail"]["color_rg_mag"].as_f64().unwrap() < -0.8,
+        "{red}"
+    );
+    assert!(red["ra_deg"].is_number() && red["dec_deg"].is_number());
+}
+
+#[test]
+fn a_second_night_shows_its_new_source() {
+    let dir = tempfile::tempdir().unwrap();
+    let store = dir.path().join("store");
+    std::fs::create_dir_all(&store).unwrap();
+    let config = store.join("subwatch.toml");
+    std::fs::write(
+        &config,
+        format!("[watch]\nfolders = [\"{}\"]\n[store]\npath = \"subwatch.db\"\n[site]\ntimezone = \"Europe/Madrid\"\n", store.display()),
+    )
+    .unwrap();
+    let mut first = NightPlan::full(7);
+    first.frames = 12;
+    first.flip_at = Some(6);
+    first.moving_object = false;
+    first.variable_star = false;
+    first.flash_frame = None;
+    first.trail_frames.clear();
+    first.cloud_frames.clear();
+    first.gust_frames.clear();
+    first.focus_drift_from = None;
+    let mut second = first.clone();
+    second.seed = 8;
+    second.start = "2026-03-15T20:40:00".into();
+    second.new_source = true;
+    write_night(&dir.path().join("n1"), &first);
+    let (frames, truth) = write_night(&dir.path().join("n2"), &second);
+    let first_doc = run_night(&dir.path().join("n1"), Some(&config));
+    assert!(!first_doc["anomalies"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .any(|a| a["kind"] == "new_source"));
+    let doc = run_night(&dir.path().join("n2"), Some(&config));
+    let (injected, found, reported, false_reports) = score(&doc, &frames, &truth, "new_source");
+    for a in doc["anomalies"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .filter(|a| a["kind"] == "new_source")
+    {
+        println!("new source: {} at {}", a["detail"], a["detections"][0]);
+    }
+    assert_eq!((injected, found, reported, false_reports), (1, 1, 1, 0));
+}
