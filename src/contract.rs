@@ -87,7 +87,7 @@ impl StarRecord {
 }
 
 /// Frame metrics (the contract's fields plus extras).
-#[derive(Debug, Clone, Serialize)]
+#[derive(Debug, Clone, Serialize, serde::Deserialize)]
 pub struct Metrics {
     pub width: usize,
     pub height: usize,
@@ -114,6 +114,7 @@ pub struct Metrics {
     #[serde(serialize_with = "finite")]
     pub plate_scale_arcsec: Option<f64>,
     /// Streaks found (satellites, aircraft, meteors), FITS 1-based end points.
+    #[serde(default)]
     pub trails: Vec<crate::measure::detect::Trail>,
 }
 

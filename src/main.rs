@@ -458,8 +458,13 @@ fn status_command(config: &std::path::Path, night: Option<String>, json: bool) -
     } else {
         println!("night {night}");
         println!(
-            "  frames {}  measured {}  errors {}  skipped {}",
-            counts.frames, counts.measured, counts.errors, counts.skipped
+            "  frames {}  measured {}  errors {}  skipped {}  warned {}  rejected {}",
+            counts.frames,
+            counts.measured,
+            counts.errors,
+            counts.skipped,
+            counts.warned,
+            counts.rejected
         );
         if let Some(t) = counts.last_recorded_unix {
             println!("  last frame recorded {:.0} s ago", now - t);

@@ -346,3 +346,62 @@ fn check_config_names_every_unknown_key_with_its_line() {
         String::from_utf8_lossy(&ok.stdout)
     );
 }
+
+#[test]
+fn live_verdicts_and_the_accepted_list() {
+    use subwatch::sim::night::{render_night, NightPlan};
+    let s = site("");
+    let mut cfg = std::fs::read_to_string(&s.config).unwrap();
+    cfg.push_str(&format!(
+        "[actions]\naccepted_lists = true\nlists_folder = \"{}\"\n",
+        s.root.join("lists").display()
+    ));
+    std::fs::write(&s.config, cfg).unwrap();
+    let mut plan = NightPlan::full(11);
+    plan.frames = 8;
+    plan.flip_at = None;
+    plan.gust_frames = vec![6];
+    plan.cloud_frames = vec![7];
+    plan.trail_frames.clear();
+    plan.focus_drift_from = None;
+    let (frames, _) = render_night(&plan);
+    let d = Daemon::start(&s.config);
+    std::thread::sleep(Duration::from_millis(300));
+    for f in &frames {
+        write_frame(
+            &s.capture.join(&f.name),
+            &f.pixels,
+            Encoding::Unsigned16,
+            &f.keys,
+        )
+        .unwrap();
+        // One at a time, as a camera delivers them: each verdict sees the night so far.
+        let start = Instant::now();
+        while recorded(&s.db).len() < frames.iter().position(|g| g.name == f.name).unwrap() + 1
+            && start.elapsed() < Duration::from_secs(20)
+        {
+            std::thread::sleep(Duration::from_millis(50));
+        }
+    }
+    d.kill9();
+    let conn = rusqlite::Connection::open(&s.db).unwrap();
+    let verdict = |name: &str| -> (String, String) {
+        conn.query_row(
+            "SELECT verdict, reasons_json FROM frames WHERE path LIKE ?1",
+            [format!("%{name}")],
+            |r| Ok((r.get(0)?, r.get(1)?)),
+        )
+        .unwrap()
+    };
+    assert_eq!(verdict(&frames[2].name).0, "ok");
+    let gust = verdict(&frames[6].name);
+    assert_eq!(gust.0, "reject", "{gust:?}");
+    assert!(gust.1.contains("eccentricity_high"));
+    let cloud = verdict(&frames[7].name);
+    assert_eq!(cloud.0, "reject", "{cloud:?}");
+    assert!(cloud.1.contains("transparency_low"), "{cloud:?}");
+    let list =
+        std::fs::read_to_string(s.root.join("lists/2026-03-14/Kestrel_Field_A__L.txt")).unwrap();
+    assert_eq!(list.lines().count(), 6, "{list}");
+    assert!(!list.contains(&frames[6].name) && !list.contains(&frames[7].name));
+}

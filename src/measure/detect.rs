@@ -37,7 +37,7 @@ impl Default for DetectParams {
 
 /// A straight streak found as one long, thin component (satellite, aircraft, meteor).
 /// Positions are FITS 1-based.
-#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct Trail {
     pub x0: f64,
     pub y0: f64,

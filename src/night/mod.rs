@@ -149,6 +149,47 @@ pub fn inside_footprint(poly: &[(f64, f64)], ra: f64, dec: f64, margin_deg: f64)
     inside && min_edge >= margin_deg
 }
 
+/// Transparency of one frame against a reference frame, for live use: register the
+/// stars, then the median magnitude difference of stars with SNR > 20 in both. Returns
+/// (loss in magnitudes, registration RMS in pixels); `None` when registration fails.
+/// Stars are (x, y, flux, snr). Its cost does not depend on how many frames came before.
+pub fn transparency_against(
+    reference: &[(f64, f64, f64, f64)],
+    frame: &[(f64, f64, f64, f64)],
+) -> Option<(Option<f64>, f64)> {
+    use register::RegStar;
+    let to = |v: &[(f64, f64, f64, f64)]| -> Vec<RegStar> {
+        v.iter()
+            .map(|s| RegStar {
+                x: s.0,
+                y: s.1,
+                flux: s.2,
+                snr: s.3,
+            })
+            .collect()
+    };
+    let (r, f) = (to(reference), to(frame));
+    let reg = register::register(&r, &f)?;
+    let t = reg.transform;
+    let mut diffs = Vec::new();
+    for s in f.iter().filter(|s| s.snr > 20.0 && s.flux > 0.0) {
+        let (x, y) = t.apply((s.x, s.y));
+        if let Some(m) = r
+            .iter()
+            .filter(|q| q.snr > 20.0 && q.flux > 0.0)
+            .find(|q| (q.x - x).hypot(q.y - y) < 1.5)
+        {
+            diffs.push(-2.5 * (s.flux / m.flux).log10());
+        }
+    }
+    let loss = if diffs.len() >= 3 {
+        crate::measure::stats::median_f64(&diffs)
+    } else {
+        None
+    };
+    Some((loss, reg.rms_px))
+}
+
 /// Analyse one target-and-filter group of frames (any order; time order is used).
 pub fn analyse(frames: &[FrameInput], earlier: &[EarlierNight]) -> NightResult {
     classify::analyse(frames, earlier)

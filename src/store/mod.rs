@@ -105,6 +105,16 @@ pub struct StoredFrame {
     pub recorded_at: f64,
 }
 
+/// One frame of a night-target-filter group, for live verdicts.
+#[derive(Debug, Clone)]
+pub struct GroupFrame {
+    pub id: i64,
+    pub status: String,
+    pub metrics: Option<Metrics>,
+    pub transparency_loss_mag: Option<f64>,
+    pub registration_rms_px: Option<f64>,
+}
+
 /// Counts for `subwatch status`.
 #[derive(Debug, Clone, Default, Serialize)]
 pub struct NightCounts {
@@ -112,6 +122,8 @@ pub struct NightCounts {
     pub measured: i64,
     pub errors: i64,
     pub skipped: i64,
+    pub warned: i64,
+    pub rejected: i64,
     pub last_frame_time_unix: Option<f64>,
     pub last_recorded_unix: Option<f64>,
 }
@@ -156,6 +168,10 @@ const MIGRATIONS: &[&str] = &[
     // 2: each frame's WCS; the catalogue of persistent sources each night, per target,
     // against which later nights look for new sources.
     "ALTER TABLE frames ADD COLUMN wcs_json TEXT;
+     ALTER TABLE frames ADD COLUMN verdict TEXT;
+     ALTER TABLE frames ADD COLUMN transparency_loss_mag REAL;
+     ALTER TABLE frames ADD COLUMN registration_rms_px REAL;
+     ALTER TABLE frames ADD COLUMN reasons_json TEXT;
      CREATE TABLE catalog_nights (
         target TEXT NOT NULL, night TEXT NOT NULL, limit_mag REAL NOT NULL,
         footprint_json TEXT,
@@ -246,6 +262,15 @@ impl Store {
     /// Record a frame with its stars, atomically. Returns false when that identity was
     /// already recorded (nothing is written then).
     pub fn record(&mut self, f: &FrameRecord, now_unix: f64) -> Result<bool, StoreError> {
+        self.record_returning_id(f, now_unix).map(|id| id.is_some())
+    }
+
+    /// As [`Store::record`], returning the new row's id.
+    pub fn record_returning_id(
+        &mut self,
+        f: &FrameRecord,
+        now_unix: f64,
+    ) -> Result<Option<i64>, StoreError> {
         let path = self.path.clone();
         let err = |source| StoreError::Sqlite {
             path: path.clone(),
@@ -290,7 +315,7 @@ impl Store {
             )
             .map_err(err)?;
         if inserted == 0 {
-            return Ok(false);
+            return Ok(None);
         }
         let frame_id = tx.last_insert_rowid();
         {
@@ -331,7 +356,7 @@ impl Store {
             }
         }
         tx.commit().map_err(err)?;
-        Ok(true)
+        Ok(Some(frame_id))
     }
 
     /// All recorded identities (for the catch-up scan).
@@ -381,6 +406,112 @@ impl Store {
         rows.collect::<Result<_, _>>().map_err(|e| self.err(e))
     }
 
+    /// Metrics of the frames of one night, target and filter recorded so far, in the
+    /// order they were recorded: (id, status, metrics).
+    pub fn group_metrics(
+        &self,
+        night: &str,
+        target: Option<&str>,
+        filter: Option<&str>,
+    ) -> Result<Vec<GroupFrame>, StoreError> {
+        let mut st = self
+            .conn
+            .prepare(
+                "SELECT id, status, metrics_json, transparency_loss_mag, registration_rms_px FROM frames
+                 WHERE night = ?1 AND target IS ?2 AND filter IS ?3 AND status != 'skipped'
+                 ORDER BY id",
+            )
+            .map_err(|e| self.err(e))?;
+        let rows = st
+            .query_map(params![night, target, filter], |r| {
+                let m: Option<String> = r.get(2)?;
+                Ok(GroupFrame {
+                    id: r.get(0)?,
+                    status: r.get(1)?,
+                    metrics: m.and_then(|m| serde_json::from_str(&m).ok()),
+                    transparency_loss_mag: r.get(3)?,
+                    registration_rms_px: r.get(4)?,
+                })
+            })
+            .map_err(|e| self.err(e))?;
+        rows.collect::<Result<_, _>>().map_err(|e| self.err(e))
+    }
+
+    /// The stars of one frame: (x, y, flux, snr).
+    pub fn frame_stars(&self, id: i64) -> Result<Vec<(f64, f64, f64, f64)>, StoreError> {
+        let mut st = self
+            .conn
+            .prepare_cached("SELECT x, y, flux, snr FROM stars WHERE frame_id = ?1")
+            .map_err(|e| self.err(e))?;
+        let rows = st
+            .query_map(params![id], |r| {
+                Ok((
+                    r.get(0)?,
+                    r.get(1)?,
+                    r.get::<_, Option<f64>>(2)?.unwrap_or(0.0),
+                    r.get::<_, Option<f64>>(3)?.unwrap_or(0.0),
+                ))
+            })
+            .map_err(|e| self.err(e))?;
+        rows.collect::<Result<_, _>>().map_err(|e| self.err(e))
+    }
+
+    /// Record what registration against the night's reference frame found.
+    pub fn set_registration(
+        &self,
+        id: i64,
+        transparency_loss_mag: Option<f64>,
+        rms_px: Option<f64>,
+    ) -> Result<(), StoreError> {
+        self.conn
+            .execute(
+                "UPDATE frames SET transparency_loss_mag = ?2, registration_rms_px = ?3 WHERE id = ?1",
+                params![id, transparency_loss_mag, rms_px],
+            )
+            .map(|_| ())
+            .map_err(|e| self.err(e))
+    }
+
+    /// Record a frame's verdict and reasons.
+    pub fn set_verdict(
+        &self,
+        id: i64,
+        verdict: &str,
+        reasons: &[String],
+    ) -> Result<(), StoreError> {
+        self.conn
+            .execute(
+                "UPDATE frames SET verdict = ?2, reasons_json = ?3 WHERE id = ?1",
+                params![
+                    id,
+                    verdict,
+                    serde_json::to_string(reasons).unwrap_or_default()
+                ],
+            )
+            .map(|_| ())
+            .map_err(|e| self.err(e))
+    }
+
+    /// Paths of the frames of one night, target and filter whose verdict is not reject.
+    pub fn accepted_paths(
+        &self,
+        night: &str,
+        target: Option<&str>,
+        filter: Option<&str>,
+    ) -> Result<Vec<String>, StoreError> {
+        let mut st = self
+            .conn
+            .prepare(
+                "SELECT path FROM frames WHERE night = ?1 AND target IS ?2 AND filter IS ?3
+                 AND status = 'ok' AND verdict IN ('ok', 'warn') ORDER BY COALESCE(time_unix, recorded_at), id",
+            )
+            .map_err(|e| self.err(e))?;
+        let rows = st
+            .query_map(params![night, target, filter], |r| r.get(0))
+            .map_err(|e| self.err(e))?;
+        rows.collect::<Result<_, _>>().map_err(|e| self.err(e))
+    }
+
     /// Counts for one night.
     pub fn night_counts(&self, night: &str) -> Result<NightCounts, StoreError> {
         self.conn
@@ -389,6 +520,8 @@ impl Store {
                         COALESCE(SUM(status = 'ok'), 0),
                         COALESCE(SUM(status = 'error'), 0),
                         COALESCE(SUM(status = 'skipped'), 0),
+                        COALESCE(SUM(verdict = 'warn'), 0),
+                        COALESCE(SUM(verdict = 'reject'), 0),
                         MAX(time_unix), MAX(recorded_at)
                  FROM frames WHERE night = ?1",
                 params![night],
@@ -398,8 +531,10 @@ impl Store {
                         measured: r.get(1)?,
                         errors: r.get(2)?,
                         skipped: r.get(3)?,
-                        last_frame_time_unix: r.get(4)?,
-                        last_recorded_unix: r.get(5)?,
+                        warned: r.get(4)?,
+                        rejected: r.get(5)?,
+                        last_frame_time_unix: r.get(6)?,
+                        last_recorded_unix: r.get(7)?,
                     })
                 },
             )

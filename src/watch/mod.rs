@@ -146,6 +146,8 @@ fn sd_notify(state: &str) {
 struct Shared {
     store: Mutex<Store>,
     options: RecordOptions,
+    /// Where accepted-frame lists go, when that action is on.
+    lists_folder: Option<PathBuf>,
 }
 
 /// Measure and record one file on a worker thread. Returns what to log.
@@ -194,10 +196,143 @@ fn process(shared: &Shared, path: &Path) -> Option<String> {
         ),
     };
     let mut store = shared.store.lock().unwrap_or_else(|p| p.into_inner());
-    match store.record(&record, unix_now()) {
-        Ok(true) => Some(line),
-        Ok(false) => None,
+    match store.record_returning_id(&record, unix_now()) {
+        Ok(Some(id)) => {
+            let verdict = judge_in_store(&store, &record, id, shared.lists_folder.as_deref());
+            Some(match verdict {
+                Ok(Some(v)) => format!("{line} verdict={v}"),
+                Ok(None) => line,
+                Err(e) => format!("{line} (verdict not recorded: {e})"),
+            })
+        }
+        Ok(None) => None,
         Err(e) => Some(format!("{}: not recorded: {e}", path.display())),
+    }
+}
+
+/// Judge a just-recorded frame against the night so far (same target and filter), store
+/// the verdict, and refresh the accepted-frames list when asked to. Later frames do not
+/// change an earlier frame's verdict: what was logged stays what was decided.
+fn judge_in_store(
+    store: &Store,
+    record: &crate::store::FrameRecord,
+    id: i64,
+    lists_folder: Option<&Path>,
+) -> Result<Option<String>, StoreError> {
+    let Some(night) = record.night.as_deref() else {
+        return Ok(None);
+    };
+    if record.status == FrameStatus::Skipped {
+        return Ok(None);
+    }
+    let mut group =
+        store.group_metrics(night, record.target.as_deref(), record.filter.as_deref())?;
+    // Transparency against the night's reference: the frame with the most stars among
+    // the first ten of the group (fixed early, so each frame costs one registration).
+    let reference = group
+        .iter()
+        .take(10)
+        .filter(|g| g.status == "ok")
+        .max_by_key(|g| g.metrics.as_ref().map_or(0, |m| m.star_count))
+        .map(|g| g.id);
+    if let (Some(r), FrameStatus::Ok) = (reference, record.status) {
+        let (loss, rms) = if r == id {
+            (Some(0.0), Some(0.0))
+        } else {
+            let stars: Vec<(f64, f64, f64, f64)> = record
+                .stars
+                .iter()
+                .map(|s| (s.x, s.y, s.flux, s.snr))
+                .collect();
+            match crate::night::transparency_against(&store.frame_stars(r)?, &stars) {
+                Some((loss, rms)) => (loss, Some(rms)),
+                None => (None, None),
+            }
+        };
+        store.set_registration(id, loss, rms)?;
+        if let Some(g) = group.iter_mut().find(|g| g.id == id) {
+            g.transparency_loss_mag = loss;
+            g.registration_rms_px = rms;
+        }
+    }
+    let facts: Vec<crate::rules::FrameFacts> = group
+        .iter()
+        .map(|g| {
+            let m = g.metrics.as_ref();
+            crate::rules::FrameFacts {
+                readable: g.status == "ok",
+                fwhm_px: m.and_then(|m| m.fwhm_px),
+                eccentricity: m.and_then(|m| m.eccentricity),
+                background_adu: m.map(|m| m.background_adu),
+                noise_adu: m.map(|m| m.noise_adu),
+                star_count: m.map(|m| m.star_count),
+                trails: m.map_or(0, |m| m.trails.len()),
+                transparency_loss_mag: g.transparency_loss_mag,
+                registered: None,
+            }
+        })
+        .collect();
+    let judged = crate::rules::judge_group(&facts);
+    let Some(k) = group.iter().position(|g| g.id == id) else {
+        return Ok(None);
+    };
+    let j = &judged[k];
+    let verdict = serde_json::to_value(j.verdict)
+        .ok()
+        .and_then(|v| v.as_str().map(String::from))
+        .unwrap_or_default();
+    store.set_verdict(id, &verdict, &j.reasons)?;
+    if let Some(folder) = lists_folder {
+        write_accepted_list(
+            store,
+            folder,
+            night,
+            record.target.as_deref(),
+            record.filter.as_deref(),
+        );
+    }
+    let reasons = if j.reasons.is_empty() {
+        String::new()
+    } else {
+        format!(" ({})", j.reasons.join(","))
+    };
+    Ok(Some(format!("{verdict}{reasons}")))
+}
+
+/// `<folder>/<night>/<target>__<filter>.txt`: one accepted frame path per line, replaced
+/// atomically (written beside, then renamed).
+fn write_accepted_list(
+    store: &Store,
+    folder: &Path,
+    night: &str,
+    target: Option<&str>,
+    filter: Option<&str>,
+) {
+    let clean = |s: Option<&str>| {
+        s.unwrap_or("unknown")
+            .chars()
+            .map(|c| {
+                if c.is_ascii_alphanumeric() || c == '-' || c == '_' {
+                    c
+                } else {
+                    '_'
+                }
+            })
+            .collect::<String>()
+    };
+    let dir = folder.join(night);
+    let file = dir.join(format!("{}__{}.txt", clean(target), clean(filter)));
+    let result = store
+        .accepted_paths(night, target, filter)
+        .map_err(|e| e.to_string())
+        .and_then(|paths| {
+            std::fs::create_dir_all(&dir).map_err(|e| e.to_string())?;
+            let tmp = file.with_extension("txt.tmp");
+            std::fs::write(&tmp, paths.join("\n") + "\n").map_err(|e| e.to_string())?;
+            std::fs::rename(&tmp, &file).map_err(|e| e.to_string())
+        });
+    if let Err(e) = result {
+        tracing::warn!("cannot write {}: {e}", file.display());
     }
 }
 
@@ -244,9 +379,20 @@ async fn daemon(mut config: Config, workers: usize) -> Result<(), WatchError> {
     }
     let store = Store::open(&config.store.path)?;
     let mut recorded: HashSet<Identity> = store.identities()?;
+    let lists_folder = config.actions.accepted_lists.then(|| {
+        config.actions.lists_folder.clone().unwrap_or_else(|| {
+            config
+                .store
+                .path
+                .parent()
+                .unwrap_or(Path::new("."))
+                .join("accepted")
+        })
+    });
     let shared = Arc::new(Shared {
         store: Mutex::new(store),
         options: record_options(&config),
+        lists_folder,
     });
 
     // File events: notify runs its own thread and only forwards paths.
