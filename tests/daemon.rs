@@ -312,6 +312,16 @@ fn killed_at_random_moments_nothing_is_lost_or_doubled() {
     let mut paths: Vec<&String> = rows_after.iter().map(|r| &r.0).collect();
     paths.dedup();
     assert_eq!(paths.len(), written);
+    // A kill between recording a frame and judging it is mended at the next start.
+    let conn = rusqlite::Connection::open(&s.db).unwrap();
+    let unjudged: i64 = conn
+        .query_row(
+            "SELECT COUNT(*) FROM frames WHERE verdict IS NULL AND status != 'skipped'",
+            [],
+            |r| r.get(0),
+        )
+        .unwrap();
+    assert_eq!(unjudged, 0);
 }
 
 #[test]
@@ -383,8 +393,23 @@ fn live_verdicts_and_the_accepted_list() {
             std::thread::sleep(Duration::from_millis(50));
         }
     }
-    d.kill9();
+    // Every frame judged (the verdict is written just after the frame itself).
     let conn = rusqlite::Connection::open(&s.db).unwrap();
+    let start = Instant::now();
+    while start.elapsed() < Duration::from_secs(20) {
+        let judged: i64 = conn
+            .query_row(
+                "SELECT COUNT(*) FROM frames WHERE verdict IS NOT NULL",
+                [],
+                |r| r.get(0),
+            )
+            .unwrap();
+        if judged == frames.len() as i64 {
+            break;
+        }
+        std::thread::sleep(Duration::from_millis(50));
+    }
+    d.kill9();
     let verdict = |name: &str| -> (String, String) {
         conn.query_row(
             "SELECT verdict, reasons_json FROM frames WHERE path LIKE ?1",

@@ -105,6 +105,16 @@ pub struct StoredFrame {
     pub recorded_at: f64,
 }
 
+/// What places a frame in its group, for judging it.
+#[derive(Debug, Clone)]
+pub struct GroupKey {
+    pub night: Option<String>,
+    pub target: Option<String>,
+    pub filter: Option<String>,
+    pub ok: bool,
+    pub skipped: bool,
+}
+
 /// One frame of a night-target-filter group, for live verdicts.
 #[derive(Debug, Clone)]
 pub struct GroupFrame {
@@ -432,6 +442,33 @@ impl Store {
                     transparency_loss_mag: r.get(3)?,
                     registration_rms_px: r.get(4)?,
                 })
+            })
+            .map_err(|e| self.err(e))?;
+        rows.collect::<Result<_, _>>().map_err(|e| self.err(e))
+    }
+
+    /// Frames that have no verdict yet (oldest first).
+    pub fn frames_without_verdict(&self) -> Result<Vec<(i64, GroupKey)>, StoreError> {
+        let mut st = self
+            .conn
+            .prepare(
+                "SELECT id, night, target, filter, status FROM frames
+                 WHERE verdict IS NULL AND status != 'skipped' ORDER BY id",
+            )
+            .map_err(|e| self.err(e))?;
+        let rows = st
+            .query_map([], |r| {
+                let status: String = r.get(4)?;
+                Ok((
+                    r.get(0)?,
+                    GroupKey {
+                        night: r.get(1)?,
+                        target: r.get(2)?,
+                        filter: r.get(3)?,
+                        ok: status == "ok",
+                        skipped: false,
+                    },
+                ))
             })
             .map_err(|e| self.err(e))?;
         rows.collect::<Result<_, _>>().map_err(|e| self.err(e))

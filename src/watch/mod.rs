@@ -219,10 +219,43 @@ fn judge_in_store(
     id: i64,
     lists_folder: Option<&Path>,
 ) -> Result<Option<String>, StoreError> {
+    let stars: Vec<(f64, f64, f64, f64)> = record
+        .stars
+        .iter()
+        .map(|s| (s.x, s.y, s.flux, s.snr))
+        .collect();
+    let key = crate::store::GroupKey {
+        night: record.night.clone(),
+        target: record.target.clone(),
+        filter: record.filter.clone(),
+        ok: record.status == FrameStatus::Ok,
+        skipped: record.status == FrameStatus::Skipped,
+    };
+    judge_frame(store, &key, &stars, id, lists_folder)
+}
+
+/// Frames recorded without a verdict (the daemon was stopped between the two writes)
+/// are judged at start-up.
+fn judge_missing(store: &Store, lists_folder: Option<&Path>) -> Result<usize, StoreError> {
+    let missing = store.frames_without_verdict()?;
+    for (id, key) in &missing {
+        let stars = store.frame_stars(*id)?;
+        judge_frame(store, key, &stars, *id, lists_folder)?;
+    }
+    Ok(missing.len())
+}
+
+fn judge_frame(
+    store: &Store,
+    record: &crate::store::GroupKey,
+    stars: &[(f64, f64, f64, f64)],
+    id: i64,
+    lists_folder: Option<&Path>,
+) -> Result<Option<String>, StoreError> {
     let Some(night) = record.night.as_deref() else {
         return Ok(None);
     };
-    if record.status == FrameStatus::Skipped {
+    if record.skipped {
         return Ok(None);
     }
     let mut group =
@@ -235,16 +268,11 @@ fn judge_in_store(
         .filter(|g| g.status == "ok")
         .max_by_key(|g| g.metrics.as_ref().map_or(0, |m| m.star_count))
         .map(|g| g.id);
-    if let (Some(r), FrameStatus::Ok) = (reference, record.status) {
+    if let (Some(r), true) = (reference, record.ok) {
         let (loss, rms) = if r == id {
             (Some(0.0), Some(0.0))
         } else {
-            let stars: Vec<(f64, f64, f64, f64)> = record
-                .stars
-                .iter()
-                .map(|s| (s.x, s.y, s.flux, s.snr))
-                .collect();
-            match crate::night::transparency_against(&store.frame_stars(r)?, &stars) {
+            match crate::night::transparency_against(&store.frame_stars(r)?, stars) {
                 Some((loss, rms)) => (loss, Some(rms)),
                 None => (None, None),
             }
@@ -480,6 +508,15 @@ async fn daemon(mut config: Config, workers: usize) -> Result<(), WatchError> {
         tracker.track(path, obs, now, age);
     };
 
+    {
+        let store = shared.store.lock().unwrap_or_else(|p| p.into_inner());
+        let judged = judge_missing(&store, shared.lists_folder.as_deref())?;
+        if judged > 0 {
+            tracing::info!(
+                "judged {judged} frame(s) recorded before the last stop without a verdict"
+            );
+        }
+    }
     // Catch up: everything already in the folders that the store has not recorded.
     let mut initial = scan(&config);
     initial.sort_by_key(|p| observe(p).map(|(o, _)| o.mtime_ns).unwrap_or(0));
