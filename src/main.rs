@@ -78,6 +78,16 @@ enum Command {
         #[arg(long)]
         config: Option<PathBuf>,
     },
+    /// The night document (frames with verdicts, anomalies) from the daemon's store.
+    Report {
+        #[arg(long)]
+        config: PathBuf,
+        /// Night label (YYYY-MM-DD): the local date of the evening the night began.
+        #[arg(long)]
+        night: Option<String>,
+        #[arg(long)]
+        json: bool,
+    },
     /// Render a synthetic night of frames with known events into a folder.
     RenderNight {
         #[arg(long)]
@@ -216,6 +226,11 @@ fn run(cli: Cli) -> Result<ExitCode> {
             json,
         } => status_command(&config, night, json),
         Command::Night { dir, json, config } => night_command(&dir, json, config.as_deref()),
+        Command::Report {
+            config,
+            night,
+            json,
+        } => report_command(&config, night, json),
         Command::RenderNight {
             out,
             seed,
@@ -370,6 +385,48 @@ fn render_night_command(
     Ok(ExitCode::SUCCESS)
 }
 
+fn report_command(config: &std::path::Path, night: Option<String>, json: bool) -> Result<ExitCode> {
+    let cfg = subwatch::config::load(config)?;
+    let night = match night {
+        Some(n) => n,
+        None => {
+            let now = std::time::SystemTime::now()
+                .duration_since(std::time::UNIX_EPOCH)
+                .map_or(0.0, |d| d.as_secs_f64());
+            subwatch::sky::night_label(now, cfg.timezone()).context("clock out of range")?
+        }
+    };
+    let mut store = subwatch::store::Store::open(&cfg.store.path)?;
+    let records = store.night_records(&night)?;
+    let doc = subwatch::batch::analyse_records(&records, Some(&mut store))?;
+    print_night(&doc, json)
+}
+
+fn print_night(doc: &subwatch::contract::NightDocument, json: bool) -> Result<ExitCode> {
+    if json {
+        println!("{}", serde_json::to_string(doc)?);
+    } else {
+        for f in &doc.frames {
+            println!(
+                "{:<50} {:<7} {}",
+                f.path,
+                format!("{:?}", f.verdict).to_lowercase(),
+                f.reasons.join(",")
+            );
+        }
+        for a in &doc.anomalies {
+            println!(
+                "{:<10} ra={} dec={} seen in {} frame(s)",
+                format!("{:?}", a.kind).to_lowercase(),
+                a.ra_deg.map_or("-".into(), |v| format!("{v:.5}")),
+                a.dec_deg.map_or("-".into(), |v| format!("{v:.5}")),
+                a.detections.len()
+            );
+        }
+    }
+    Ok(ExitCode::SUCCESS)
+}
+
 fn night_command(
     dir: &std::path::Path,
     json: bool,
@@ -405,28 +462,7 @@ fn night_command(
     if show {
         eprintln!();
     }
-    if json {
-        println!("{}", serde_json::to_string(&doc)?);
-    } else {
-        for f in &doc.frames {
-            println!(
-                "{:<50} {:<7} {}",
-                f.path,
-                format!("{:?}", f.verdict).to_lowercase(),
-                f.reasons.join(",")
-            );
-        }
-        for a in &doc.anomalies {
-            println!(
-                "{:<10} ra={} dec={} seen in {} frame(s)",
-                format!("{:?}", a.kind).to_lowercase(),
-                a.ra_deg.map_or("-".into(), |v| format!("{v:.5}")),
-                a.dec_deg.map_or("-".into(), |v| format!("{v:.5}")),
-                a.detections.len()
-            );
-        }
-    }
-    Ok(ExitCode::SUCCESS)
+    print_night(&doc, json)
 }
 
 fn status_command(config: &std::path::Path, night: Option<String>, json: bool) -> Result<ExitCode> {

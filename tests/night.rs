@@ -270,3 +270,93 @@ fn a_second_night_shows_its_new_source() {
     }
     assert_eq!((injected, found, reported, false_reports), (1, 1, 1, 0));
 }
+
+#[test]
+fn the_daemon_store_gives_the_same_night_as_the_batch_command() {
+    let dir = tempfile::tempdir().unwrap();
+    let root = dir.path().canonicalize().unwrap();
+    let capture = root.join("capture");
+    let config = root.join("subwatch.toml");
+    std::fs::write(
+        &config,
+        format!(
+            "[watch]\nfolders = [\"{}\"]\nsettle_seconds = 0.2\n[store]\npath = \"{}\"\n[site]\ntimezone = \"Europe/Madrid\"\n",
+            capture.display(),
+            root.join("s.db").display()
+        ),
+    )
+    .unwrap();
+    let mut plan = NightPlan::full(9);
+    plan.frames = 12;
+    plan.flip_at = Some(6);
+    plan.cloud_frames = vec![4];
+    plan.gust_frames = vec![8];
+    plan.trail_frames = vec![3];
+    plan.focus_drift_from = None;
+    plan.flash_frame = Some(5);
+    let (frames, _) = write_night(&capture, &plan);
+    let mut daemon = Command::new(common::binary())
+        .args(["watch", "--config"])
+        .arg(&config)
+        .spawn()
+        .unwrap();
+    let db = root.join("s.db");
+    let start = std::time::Instant::now();
+    loop {
+        let done: i64 = rusqlite::Connection::open(&db)
+            .and_then(|c| {
+                c.query_row(
+                    "SELECT COUNT(*) FROM frames WHERE verdict IS NOT NULL",
+                    [],
+                    |r| r.get(0),
+                )
+            })
+            .unwrap_or(0);
+        if done as usize == frames.len() || start.elapsed().as_secs() > 60 {
+            break;
+        }
+        std::thread::sleep(std::time::Duration::from_millis(100));
+    }
+    let _ = daemon.kill();
+    let _ = daemon.wait();
+    let out = Command::new(common::binary())
+        .args(["report", "--json", "--night", "2026-03-14", "--config"])
+        .arg(&config)
+        .output()
+        .unwrap();
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let from_store: Value = serde_json::from_slice(&out.stdout).unwrap();
+    let batch = run_night(&capture, None);
+    let summary = |d: &Value| {
+        let mut kinds: Vec<(String, usize)> = d["anomalies"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|a| {
+                (
+                    a["kind"].as_str().unwrap().to_string(),
+                    a["detections"].as_array().unwrap().len(),
+                )
+            })
+            .collect();
+        kinds.sort();
+        let verdicts: Vec<(String, String)> = d["frames"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|f| {
+                (
+                    f["path"].as_str().unwrap().to_string(),
+                    f["verdict"].as_str().unwrap().to_string(),
+                )
+            })
+            .collect();
+        (kinds, verdicts)
+    };
+    assert_eq!(summary(&from_store), summary(&batch));
+    assert_eq!(from_store["frames"].as_array().unwrap().len(), frames.len());
+}

@@ -95,7 +95,7 @@ pub struct Star {
 }
 
 /// Why a detection was not counted as a star.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, serde::Deserialize)]
 #[serde(rename_all = "snake_case")]
 pub enum RejectKind {
     /// Sharper than any PSF: a hot pixel or a cosmic-ray hit.

@@ -178,6 +178,8 @@ const MIGRATIONS: &[&str] = &[
     // 2: each frame's WCS; the catalogue of persistent sources each night, per target,
     // against which later nights look for new sources.
     "ALTER TABLE frames ADD COLUMN wcs_json TEXT;
+     ALTER TABLE stars ADD COLUMN flux_err REAL;
+     ALTER TABLE stars ADD COLUMN blended INTEGER;
      ALTER TABLE frames ADD COLUMN verdict TEXT;
      ALTER TABLE frames ADD COLUMN transparency_loss_mag REAL;
      ALTER TABLE frames ADD COLUMN registration_rms_px REAL;
@@ -331,8 +333,9 @@ impl Store {
         {
             let mut st = tx
                 .prepare_cached(
-                    "INSERT INTO stars (frame_id, x, y, flux, fwhm_px, eccentricity, snr, ra_deg, dec_deg, r, g, b)
-                     VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12)",
+                    "INSERT INTO stars (frame_id, x, y, flux, fwhm_px, eccentricity, snr, ra_deg, dec_deg, r, g, b,
+                        flux_err, blended)
+                     VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14)",
                 )
                 .map_err(err)?;
             for s in &f.stars {
@@ -349,7 +352,9 @@ impl Store {
                     s.dec_deg,
                     c(0),
                     c(1),
-                    c(2)
+                    c(2),
+                    s.flux_err,
+                    s.blended
                 ])
                 .map_err(err)?;
             }
@@ -385,6 +390,115 @@ impl Store {
             })
             .map_err(|e| self.err(e))?;
         rows.collect::<Result<_, _>>().map_err(|e| self.err(e))
+    }
+
+    /// Everything recorded for one night, rebuilt as records for the night analysis.
+    /// Star fields the store does not keep (half-flux radius, axes, angle, PSF model)
+    /// come back as their simplest stand-ins.
+    pub fn night_records(&self, night: &str) -> Result<Vec<FrameRecord>, StoreError> {
+        let mut st = self
+            .conn
+            .prepare(
+                "SELECT id, path, size, mtime_ns, status, error, night, target, filter, time_unix,
+                        metrics_json, wcs_json
+                 FROM frames WHERE night = ?1 ORDER BY COALESCE(time_unix, recorded_at), id",
+            )
+            .map_err(|e| self.err(e))?;
+        type Row = (i64, FrameRecord);
+        let rows: Vec<Row> = st
+            .query_map(params![night], |r| {
+                let status: String = r.get(4)?;
+                let metrics: Option<String> = r.get(10)?;
+                let wcs: Option<String> = r.get(11)?;
+                Ok((
+                    r.get(0)?,
+                    FrameRecord {
+                        identity: Identity {
+                            path: r.get(1)?,
+                            size: r.get::<_, i64>(2)? as u64,
+                            mtime_ns: r.get(3)?,
+                        },
+                        status: match status.as_str() {
+                            "ok" => FrameStatus::Ok,
+                            "skipped" => FrameStatus::Skipped,
+                            _ => FrameStatus::Error,
+                        },
+                        error: r.get(5)?,
+                        night: r.get(6)?,
+                        target: r.get(7)?,
+                        filter: r.get(8)?,
+                        time_unix: r.get(9)?,
+                        header: None,
+                        metrics: metrics.and_then(|m| serde_json::from_str(&m).ok()),
+                        stars: Vec::new(),
+                        rejected: Vec::new(),
+                        wcs: wcs.and_then(|w| serde_json::from_str(&w).ok()),
+                    },
+                ))
+            })
+            .map_err(|e| self.err(e))?
+            .collect::<Result<_, _>>()
+            .map_err(|e| self.err(e))?;
+        let mut out = Vec::with_capacity(rows.len());
+        let mut stars = self
+            .conn
+            .prepare_cached(
+                "SELECT x, y, flux, fwhm_px, eccentricity, snr, ra_deg, dec_deg, r, g, b, flux_err, blended
+                 FROM stars WHERE frame_id = ?1",
+            )
+            .map_err(|e| self.err(e))?;
+        let mut rejected = self
+            .conn
+            .prepare_cached("SELECT x, y, kind, peak_adu FROM rejected WHERE frame_id = ?1")
+            .map_err(|e| self.err(e))?;
+        for (id, mut rec) in rows {
+            rec.stars = stars
+                .query_map(params![id], |r| {
+                    let flux: f64 = r.get::<_, Option<f64>>(2)?.unwrap_or(0.0);
+                    let fwhm: f64 = r.get::<_, Option<f64>>(3)?.unwrap_or(f64::NAN);
+                    let rgb: [Option<f64>; 3] = [r.get(8)?, r.get(9)?, r.get(10)?];
+                    Ok(StarRecord {
+                        x: r.get(0)?,
+                        y: r.get(1)?,
+                        flux,
+                        fwhm_px: fwhm,
+                        eccentricity: r.get::<_, Option<f64>>(4)?.unwrap_or(f64::NAN),
+                        snr: r.get::<_, Option<f64>>(5)?.unwrap_or(0.0),
+                        flux_err: r.get::<_, Option<f64>>(11)?.unwrap_or(f64::NAN),
+                        hfr_px: None,
+                        fwhm_major_px: fwhm,
+                        fwhm_minor_px: fwhm,
+                        angle_deg: 0.0,
+                        psf_flux: flux,
+                        psf_model: crate::measure::psf::PsfModel::Gaussian,
+                        moffat_beta: None,
+                        peak_adu: f64::NAN,
+                        blended: r.get::<_, Option<i64>>(12)?.unwrap_or(0) != 0,
+                        ra_deg: r.get(6)?,
+                        dec_deg: r.get(7)?,
+                        rgb: rgb.iter().any(|c| c.is_some()).then_some(rgb),
+                    })
+                })
+                .map_err(|e| self.err(e))?
+                .collect::<Result<_, _>>()
+                .map_err(|e| self.err(e))?;
+            rec.rejected = rejected
+                .query_map(params![id], |r| {
+                    let kind: String = r.get(2)?;
+                    Ok(Rejected {
+                        x: r.get(0)?,
+                        y: r.get(1)?,
+                        kind: serde_json::from_value(serde_json::Value::String(kind))
+                            .unwrap_or(crate::measure::RejectKind::Unfit),
+                        peak_adu: r.get::<_, Option<f64>>(3)?.unwrap_or(0.0),
+                    })
+                })
+                .map_err(|e| self.err(e))?
+                .collect::<Result<_, _>>()
+                .map_err(|e| self.err(e))?;
+            out.push(rec);
+        }
+        Ok(out)
     }
 
     /// Frames of one night, in time order.
