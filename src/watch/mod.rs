@@ -213,7 +213,7 @@ fn process(shared: &Shared, path: &Path) -> Option<String> {
 /// Judge a just-recorded frame against the night so far (same target and filter), store
 /// the verdict, and refresh the accepted-frames list when asked to. Later frames do not
 /// change an earlier frame's verdict: what was logged stays what was decided.
-fn judge_in_store(
+pub fn judge_in_store(
     store: &Store,
     record: &crate::store::FrameRecord,
     id: i64,
