@@ -88,6 +88,22 @@ enum Command {
         #[arg(long)]
         json: bool,
     },
+    /// Sun, Moon, twilight and a target's altitude for a site and moment (JSON).
+    Sky {
+        #[arg(long, allow_hyphen_values = true)]
+        latitude: f64,
+        /// East positive.
+        #[arg(long, allow_hyphen_values = true)]
+        longitude: f64,
+        /// UTC, ISO 8601.
+        #[arg(long)]
+        time: String,
+        /// A target's RA and Dec of date, degrees (also converted to J2000).
+        #[arg(long, allow_hyphen_values = true)]
+        ra: Option<f64>,
+        #[arg(long, allow_hyphen_values = true)]
+        dec: Option<f64>,
+    },
     /// Render a synthetic night of frames with known events into a folder.
     RenderNight {
         #[arg(long)]
@@ -231,6 +247,13 @@ fn run(cli: Cli) -> Result<ExitCode> {
             night,
             json,
         } => report_command(&config, night, json),
+        Command::Sky {
+            latitude,
+            longitude,
+            time,
+            ra,
+            dec,
+        } => sky_command(latitude, longitude, &time, ra, dec),
         Command::RenderNight {
             out,
             seed,
@@ -382,6 +405,44 @@ fn render_night_command(
     let names: Vec<&str> = frames.iter().map(|f| f.name.as_str()).collect();
     let doc = serde_json::json!({"frames": names, "anomalies": truth});
     std::fs::write(out.join("truth.json"), serde_json::to_string_pretty(&doc)?)?;
+    Ok(ExitCode::SUCCESS)
+}
+
+fn sky_command(
+    latitude: f64,
+    longitude: f64,
+    time: &str,
+    ra: Option<f64>,
+    dec: Option<f64>,
+) -> Result<ExitCode> {
+    use subwatch::sky;
+    let t = subwatch::frame::header::parse_iso_time(time)
+        .with_context(|| format!("not an ISO 8601 time: {time}"))?;
+    let jd = sky::julian_date(t);
+    let (sra, sdec) = sky::sun_radec(jd);
+    let (sun_alt, sun_az) = sky::alt_az(sra, sdec, jd, latitude, longitude);
+    let crossing = |alt: f64| {
+        let (down, up) = sky::sun_crossings(t, alt, latitude, longitude);
+        serde_json::json!({"sets_unix": down, "rises_unix": up})
+    };
+    let target = ra.zip(dec).map(|(r, d)| {
+        let (alt, az) = sky::alt_az(r, d, jd, latitude, longitude);
+        let (r2000, d2000) = sky::to_j2000(r, d, jd);
+        serde_json::json!({"alt_deg": alt, "az_deg": az, "airmass": sky::airmass(alt), "ra_j2000_deg": r2000, "dec_j2000_deg": d2000})
+    });
+    let doc = serde_json::json!({
+        "jd": jd,
+        "sun_alt_deg": sun_alt,
+        "sun_az_deg": sun_az,
+        "twilight": sky::twilight(sun_alt),
+        "moon_alt_deg": sky::moon_altitude(jd, latitude, longitude),
+        "moon_illumination": sky::moon_illumination(jd),
+        "civil": crossing(-6.0),
+        "nautical": crossing(-12.0),
+        "astronomical": crossing(-18.0),
+        "target": target,
+    });
+    println!("{doc}");
     Ok(ExitCode::SUCCESS)
 }
 

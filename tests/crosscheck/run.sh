@@ -22,7 +22,7 @@ if ! "$py" -c 'import numpy, scipy, astropy, photutils, sep' 2>/dev/null; then
     exit 1
 fi
 
-for script in measure_crosscheck.py wcs_crosscheck.py; do
+for script in measure_crosscheck.py wcs_crosscheck.py sky_crosscheck.py; do
     label="${script%.py}"
     echo "### $label ($bin)"
     "$py" "$here/$script" "$bin" 2>&1 | tee "$log"
