@@ -9,7 +9,7 @@ use crate::contract::{AnomalyRecord, DetectionRecord, NightDocument, NightFrameR
 use crate::measure::RejectKind;
 use crate::night::{analyse, FrameInput, StarInput};
 use crate::pipeline::{record_file, RecordOptions};
-use crate::rules::{judge_group, FrameFacts};
+use crate::rules::{judge_group_with, FrameFacts, RuleSpec};
 use crate::store::{FrameRecord, FrameStatus, Identity, Store, StoreError};
 
 /// Every file under `dirs` whose name matches the patterns (recursively, hidden folders
@@ -80,6 +80,7 @@ fn frame_input(r: &FrameRecord) -> FrameInput {
 /// nights' catalogues and keeps tonight's.
 pub fn analyse_records(
     records: &[FrameRecord],
+    rules: &[RuleSpec],
     mut store: Option<&mut Store>,
 ) -> Result<NightDocument, StoreError> {
     let mut doc = NightDocument {
@@ -123,21 +124,15 @@ pub fn analyse_records(
                 let r = &records[i];
                 let pos = measured.iter().position(|&m| m == i);
                 let fr = pos.map(|p| &result.frames[p]);
-                let m = r.metrics.as_ref();
-                FrameFacts {
-                    readable: r.status == FrameStatus::Ok,
-                    fwhm_px: m.and_then(|m| m.fwhm_px),
-                    eccentricity: m.and_then(|m| m.eccentricity),
-                    background_adu: m.map(|m| m.background_adu),
-                    noise_adu: m.map(|m| m.noise_adu),
-                    star_count: m.map(|m| m.star_count),
-                    trails: m.map_or(0, |m| m.trails.len()),
-                    transparency_loss_mag: fr.and_then(|f| f.transparency_loss_mag),
-                    registered: fr.map(|f| f.registered),
-                }
+                let metrics = r.metrics.as_ref().filter(|_| r.status == FrameStatus::Ok);
+                FrameFacts::from_metrics(
+                    metrics,
+                    fr.and_then(|f| f.transparency_loss_mag),
+                    fr.map(|f| f.registered),
+                )
             })
             .collect();
-        let judged = judge_group(&facts);
+        let judged = judge_group_with(&facts, rules);
         for (k, &i) in idx.iter().enumerate() {
             let r = &records[i];
             let fr = measured
@@ -211,6 +206,7 @@ pub fn run_night(
     options: &RecordOptions,
     include: &[String],
     exclude: &[String],
+    rules: &[RuleSpec],
     store: Option<&mut Store>,
     mut progress: impl FnMut(usize, usize),
 ) -> Result<NightDocument, StoreError> {
@@ -246,7 +242,7 @@ pub fn run_night(
         records.push(rec);
         progress(k + 1, total);
     }
-    analyse_records(&records, store)
+    analyse_records(&records, rules, store)
 }
 
 fn record_file_placeholder(identity: Identity) -> FrameRecord {

@@ -474,6 +474,25 @@ impl Config {
                 );
             }
         }
+        for (k, t) in self.rules.iter().enumerate() {
+            let key = format!("rules[{}]", k + 1);
+            match crate::rules::RuleSpec::deserialize(toml::Value::Table(t.clone())) {
+                Ok(r) => {
+                    for problem in r.problems() {
+                        p.push(ConfigProblem {
+                            key: key.clone(),
+                            line: None,
+                            message: problem,
+                        });
+                    }
+                }
+                Err(e) => p.push(ConfigProblem {
+                    key,
+                    line: None,
+                    message: e.to_string().trim().to_string(),
+                }),
+            }
+        }
         p
     }
 
@@ -522,6 +541,15 @@ impl Config {
         (errors, warnings)
     }
 
+    /// The `[[rules]]` tables as rules (validated at load; a table that does not read is
+    /// left out here and was reported by `load`).
+    pub fn rule_specs(&self) -> Vec<crate::rules::RuleSpec> {
+        self.rules
+            .iter()
+            .filter_map(|t| crate::rules::RuleSpec::deserialize(toml::Value::Table(t.clone())).ok())
+            .collect()
+    }
+
     /// The site's time zone (validated at load).
     pub fn timezone(&self) -> chrono_tz::Tz {
         self.site.timezone.parse().unwrap_or(chrono_tz::UTC)
@@ -549,6 +577,17 @@ mod tests {
         assert_eq!(problems[0].line, Some(7));
         assert_eq!(problems[1].key, "watch.settle");
         assert_eq!(problems[1].line, Some(3));
+    }
+
+    #[test]
+    fn rules_are_read_and_checked() {
+        let ok = "[watch]\nfolders = [\"/tmp\"]\n[[rules]]\nreason = \"soft\"\nmetric = \"fwhm_arcsec\"\ntest = \"above\"\nvalue = 4.5\nverdict = \"reject\"\n";
+        let c = parse(ok, Path::new("/")).unwrap();
+        assert_eq!(c.rule_specs().len(), 1);
+        let bad = "[watch]\nfolders = [\"/tmp\"]\n[[rules]]\nreason = \"soft\"\nmetric = \"seeing\"\ntest = \"above\"\nvalue = 4.5\nverdict = \"reject\"\n";
+        let problems = parse(bad, Path::new("/")).unwrap_err();
+        assert_eq!(problems[0].key, "rules[1]");
+        assert!(problems[0].message.contains("seeing"), "{problems:?}");
     }
 
     #[test]

@@ -459,7 +459,7 @@ fn report_command(config: &std::path::Path, night: Option<String>, json: bool) -
     };
     let mut store = subwatch::store::Store::open(&cfg.store.path)?;
     let records = store.night_records(&night)?;
-    let doc = subwatch::batch::analyse_records(&records, Some(&mut store))?;
+    let doc = subwatch::batch::analyse_records(&records, &cfg.rule_specs(), Some(&mut store))?;
     print_night(&doc, json)
 }
 
@@ -513,6 +513,7 @@ fn night_command(
         &options,
         &c.watch.include,
         &c.watch.exclude,
+        &c.rule_specs(),
         store.as_mut(),
         |done, total| {
             if show {

@@ -1,12 +1,13 @@
 //! Verdicts: which frames to keep. Pure: a group's frame facts in, a verdict and the
-//! reasons for each frame out. These are the defaults that work with no rules
-//! configured; each reason says which test fired and with what values.
+//! reasons for each frame out. Built-in defaults work with no rules configured; rules
+//! from the configuration (`[[rules]]` tables) add to them, or replace the default with
+//! the same reason code. Each reason says which test fired and with what values.
 
-use serde::Serialize;
+use serde::{Deserialize, Serialize};
 
 use crate::measure::stats::median_f64;
 
-#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Serialize, Deserialize)]
 #[serde(rename_all = "lowercase")]
 pub enum Verdict {
     Ok,
@@ -26,6 +27,128 @@ pub struct FrameFacts {
     pub trails: usize,
     pub transparency_loss_mag: Option<f64>,
     pub registered: Option<bool>,
+    pub fwhm_arcsec: Option<f64>,
+    pub snr_median: Option<f64>,
+    pub hfr_px: Option<f64>,
+}
+
+impl FrameFacts {
+    /// Facts from a frame's metrics (None: the frame could not be measured).
+    pub fn from_metrics(
+        m: Option<&crate::contract::Metrics>,
+        transparency_loss_mag: Option<f64>,
+        registered: Option<bool>,
+    ) -> Self {
+        FrameFacts {
+            readable: m.is_some(),
+            fwhm_px: m.and_then(|m| m.fwhm_px),
+            eccentricity: m.and_then(|m| m.eccentricity),
+            background_adu: m.map(|m| m.background_adu),
+            noise_adu: m.map(|m| m.noise_adu),
+            star_count: m.map(|m| m.star_count),
+            trails: m.map_or(0, |m| m.trails.len()),
+            transparency_loss_mag,
+            registered,
+            fwhm_arcsec: m.and_then(|m| m.fwhm_arcsec),
+            snr_median: m.and_then(|m| m.snr_median),
+            hfr_px: m.and_then(|m| m.hfr_px),
+        }
+    }
+}
+
+/// A per-frame quantity a rule can test.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum Metric {
+    FwhmPx,
+    FwhmArcsec,
+    Eccentricity,
+    BackgroundAdu,
+    NoiseAdu,
+    StarCount,
+    SnrMedian,
+    HfrPx,
+    TransparencyLossMag,
+}
+
+impl Metric {
+    fn of(self, f: &FrameFacts) -> Option<f64> {
+        match self {
+            Metric::FwhmPx => f.fwhm_px,
+            Metric::FwhmArcsec => f.fwhm_arcsec,
+            Metric::Eccentricity => f.eccentricity,
+            Metric::BackgroundAdu => f.background_adu,
+            Metric::NoiseAdu => f.noise_adu,
+            Metric::StarCount => f.star_count.map(|c| c as f64),
+            Metric::SnrMedian => f.snr_median,
+            Metric::HfrPx => f.hfr_px,
+            Metric::TransparencyLossMag => f.transparency_loss_mag,
+        }
+    }
+}
+
+/// How a rule compares.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum Test {
+    /// The value is above `value`.
+    Above,
+    /// The value is below `value`.
+    Below,
+    /// The value is above `value` × the median of the night so far (same target, filter).
+    AboveMedianRatio,
+    /// The value is below `value` × that median.
+    BelowMedianRatio,
+    /// The value is more than `value` robust σ (1.4826 × MAD) above the night's median.
+    SigmasAbove,
+    /// The value is more than `value` robust σ below the night's median.
+    SigmasBelow,
+    /// Over the last `frames` frames (this one included) the value rose by more than
+    /// `value` (least-squares slope × span): focus drift, dew.
+    Rising,
+}
+
+/// One `[[rules]]` table of the configuration.
+#[derive(Debug, Clone, PartialEq, Deserialize, Serialize)]
+#[serde(deny_unknown_fields)]
+pub struct RuleSpec {
+    /// The reason code it reports (e.g. "fwhm_high"); a default with the same code is
+    /// replaced by this rule.
+    pub reason: String,
+    pub metric: Metric,
+    pub test: Test,
+    pub value: f64,
+    pub verdict: Verdict,
+    /// For `rising`: how many frames the trend spans (at least 3).
+    #[serde(default)]
+    pub frames: Option<usize>,
+}
+
+impl RuleSpec {
+    /// Problems with the rule's values (its keys were checked when it was read).
+    pub fn problems(&self) -> Vec<String> {
+        let mut p = Vec::new();
+        if self.reason.trim().is_empty() {
+            p.push("reason: must name a reason code".into());
+        }
+        if !self.value.is_finite() {
+            p.push("value: must be a number".into());
+        }
+        if self.verdict == Verdict::Ok {
+            p.push("verdict: must be \"warn\" or \"reject\"".into());
+        }
+        match (self.test, self.frames) {
+            (Test::Rising, None) => {
+                p.push("frames: a rising test needs the number of frames it spans".into())
+            }
+            (Test::Rising, Some(n)) if n < 3 => p.push("frames: at least 3".into()),
+            (t, Some(_)) if t != Test::Rising => {
+                p.push("frames: only for test = \"rising\"".into())
+            }
+            _ => {}
+        }
+        p
+    }
 }
 
 #[derive(Debug, Clone, Serialize)]
@@ -45,8 +168,16 @@ struct Ctx {
     stars: Option<f64>,
 }
 
-/// Judge every frame of one target-and-filter group against the group's medians.
+/// Judge every frame of one target-and-filter group against the group's medians, with
+/// the built-in rules only.
 pub fn judge_group(frames: &[FrameFacts]) -> Vec<Judgement> {
+    judge_group_with(frames, &[])
+}
+
+/// Judge every frame of a group with the built-in rules and `rules` (a configured rule
+/// replaces the built-in one with the same reason code). Frames are in time order; a
+/// trend looks at the frames before each one.
+pub fn judge_group_with(frames: &[FrameFacts], rules: &[RuleSpec]) -> Vec<Judgement> {
     let med = |f: &dyn Fn(&FrameFacts) -> Option<f64>| {
         median_f64(
             &frames
@@ -63,16 +194,120 @@ pub fn judge_group(frames: &[FrameFacts]) -> Vec<Judgement> {
         noise: med(&|f| f.noise_adu),
         stars: med(&|f| f.star_count.map(|c| c as f64)),
     };
-    frames.iter().map(|f| judge(f, &ctx)).collect()
+    let replaced: Vec<&str> = rules.iter().map(|r| r.reason.as_str()).collect();
+    let stats: Vec<(Option<f64>, Option<f64>)> = rules
+        .iter()
+        .map(|r| {
+            let v: Vec<f64> = frames
+                .iter()
+                .filter(|f| f.readable)
+                .filter_map(|f| r.metric.of(f))
+                .collect();
+            let m = median_f64(&v);
+            let sigma = m
+                .and_then(|m| median_f64(&v.iter().map(|x| (x - m).abs()).collect::<Vec<_>>()))
+                .map(|d| d * 1.482_602_218_505_602);
+            (m, sigma)
+        })
+        .collect();
+    frames
+        .iter()
+        .enumerate()
+        .map(|(i, f)| {
+            let mut j = judge(f, &ctx, &replaced);
+            if f.readable {
+                for (r, &(median, sigma)) in rules.iter().zip(&stats) {
+                    if let Some(text) = fires(r, &frames[..=i], median, sigma) {
+                        j.verdict = j.verdict.max(r.verdict);
+                        if !j.reasons.contains(&r.reason) {
+                            j.reasons.push(r.reason.clone());
+                            j.explanations.push(text);
+                        }
+                    }
+                }
+            }
+            j
+        })
+        .collect()
 }
 
-fn judge(f: &FrameFacts, c: &Ctx) -> Judgement {
+/// Whether a configured rule fires on the last of `upto`, and the sentence saying why.
+fn fires(
+    r: &RuleSpec,
+    upto: &[FrameFacts],
+    median: Option<f64>,
+    sigma: Option<f64>,
+) -> Option<String> {
+    let f = upto.last()?;
+    let v = r.metric.of(f)?;
+    let name = serde_json::to_value(r.metric).ok()?.as_str()?.to_string();
+    let limit = r.value;
+    match r.test {
+        Test::Above => (v > limit).then(|| format!("{name} {v:.3} is above {limit}")),
+        Test::Below => (v < limit).then(|| format!("{name} {v:.3} is below {limit}")),
+        Test::AboveMedianRatio => {
+            let m = median?;
+            (v > limit * m)
+                .then(|| format!("{name} {v:.3} is above {limit} × the night's median {m:.3}"))
+        }
+        Test::BelowMedianRatio => {
+            let m = median?;
+            (v < limit * m)
+                .then(|| format!("{name} {v:.3} is below {limit} × the night's median {m:.3}"))
+        }
+        Test::SigmasAbove | Test::SigmasBelow => {
+            let (m, s) = (median?, sigma?);
+            if s <= 0.0 {
+                return None;
+            }
+            let z = (v - m) / s;
+            let hit = if r.test == Test::SigmasAbove {
+                z > limit
+            } else {
+                -z > limit
+            };
+            hit.then(|| format!("{name} {v:.3} is {z:+.1} robust σ from the night's median {m:.3} (limit {limit})"))
+        }
+        Test::Rising => {
+            let n = r.frames.unwrap_or(3);
+            let window: Vec<f64> = upto
+                .iter()
+                .rev()
+                .filter(|f| f.readable)
+                .take(n)
+                .filter_map(|f| r.metric.of(f))
+                .collect();
+            if window.len() < n {
+                return None;
+            }
+            // Least-squares slope over the window, oldest first.
+            let ys: Vec<f64> = window.into_iter().rev().collect();
+            let mx = (n as f64 - 1.0) / 2.0;
+            let my = ys.iter().sum::<f64>() / n as f64;
+            let num: f64 = ys
+                .iter()
+                .enumerate()
+                .map(|(k, y)| (k as f64 - mx) * (y - my))
+                .sum();
+            let den: f64 = (0..n).map(|k| (k as f64 - mx).powi(2)).sum();
+            let rise = num / den * (n as f64 - 1.0);
+            (rise > limit).then(|| {
+                format!("{name} rose by {rise:.3} over the last {n} frames (limit {limit})")
+            })
+        }
+    }
+}
+
+fn judge(f: &FrameFacts, c: &Ctx, replaced: &[&str]) -> Judgement {
     let mut j = Judgement {
         verdict: Verdict::Ok,
         reasons: Vec::new(),
         explanations: Vec::new(),
     };
     let mut fire = |verdict: Verdict, code: &str, text: String| {
+        if replaced.contains(&code) {
+            return;
+        }
         j.verdict = j.verdict.max(verdict);
         if !j.reasons.iter().any(|r| r == code) {
             j.reasons.push(code.to_string());
@@ -174,7 +409,66 @@ mod tests {
             trails: 0,
             transparency_loss_mag: Some(0.0),
             registered: Some(true),
+            fwhm_arcsec: Some(6.0),
+            snr_median: Some(40.0),
+            hfr_px: Some(1.6),
         }
+    }
+
+    fn rule(text: &str) -> RuleSpec {
+        toml::from_str(text).unwrap()
+    }
+
+    #[test]
+    fn configured_rules_of_every_test_kind() {
+        let mut frames = vec![good(); 8];
+        for (k, f) in frames.iter_mut().enumerate() {
+            f.hfr_px = Some(1.6 + 0.01 * k as f64);
+            f.noise_adu = Some(10.0 + 0.1 * (k % 3) as f64);
+        }
+        frames[3].fwhm_arcsec = Some(9.5);
+        frames[4].snr_median = Some(12.0);
+        frames[5].noise_adu = Some(40.0);
+        // A steady rise over the last four frames.
+        frames[7].hfr_px = Some(2.4);
+        frames[6].hfr_px = Some(2.1);
+        frames[5].hfr_px = Some(1.9);
+        let rules = vec![
+            rule("reason = \"soft\"\nmetric = \"fwhm_arcsec\"\ntest = \"above\"\nvalue = 9.0\nverdict = \"reject\""),
+            rule("reason = \"faint\"\nmetric = \"snr_median\"\ntest = \"below_median_ratio\"\nvalue = 0.5\nverdict = \"warn\""),
+            rule("reason = \"noisy\"\nmetric = \"noise_adu\"\ntest = \"sigmas_above\"\nvalue = 5\nverdict = \"warn\""),
+            rule("reason = \"drift\"\nmetric = \"hfr_px\"\ntest = \"rising\"\nframes = 4\nvalue = 0.6\nverdict = \"warn\""),
+            // Replaces the built-in star-count rule: nothing fires on star count now.
+            rule("reason = \"star_count_low\"\nmetric = \"star_count\"\ntest = \"below\"\nvalue = 1\nverdict = \"reject\""),
+        ];
+        assert!(rules.iter().all(|r| r.problems().is_empty()));
+        frames[1].star_count = Some(10);
+        let j = judge_group_with(&frames, &rules);
+        assert!(
+            j[0].reasons.is_empty() && j[1].reasons.is_empty(),
+            "{:?}",
+            j[1]
+        );
+        assert_eq!(
+            (j[3].verdict, j[3].reasons.clone()),
+            (Verdict::Reject, vec!["soft".to_string()])
+        );
+        assert_eq!(j[4].reasons, vec!["faint".to_string()]);
+        assert_eq!(j[5].reasons, vec!["noisy".to_string()]);
+        assert_eq!(j[7].reasons, vec!["drift".to_string()]);
+        assert!(j[6].reasons.is_empty(), "{:?}", j[6]);
+    }
+
+    #[test]
+    fn bad_rule_values_are_reported() {
+        let r = rule(
+            "reason = \"x\"\nmetric = \"hfr_px\"\ntest = \"rising\"\nvalue = 1\nverdict = \"ok\"",
+        );
+        assert_eq!(r.problems().len(), 2);
+        assert!(toml::from_str::<RuleSpec>(
+            "reason = \"x\"\nmetric = \"colour\"\ntest = \"above\"\nvalue = 1\nverdict = \"warn\""
+        )
+        .is_err());
     }
 
     #[test]

@@ -148,6 +148,7 @@ struct Shared {
     options: RecordOptions,
     /// Where accepted-frame lists go, when that action is on.
     lists_folder: Option<PathBuf>,
+    rules: Vec<crate::rules::RuleSpec>,
 }
 
 /// Measure and record one file on a worker thread. Returns what to log.
@@ -198,7 +199,13 @@ fn process(shared: &Shared, path: &Path) -> Option<String> {
     let mut store = shared.store.lock().unwrap_or_else(|p| p.into_inner());
     match store.record_returning_id(&record, unix_now()) {
         Ok(Some(id)) => {
-            let verdict = judge_in_store(&store, &record, id, shared.lists_folder.as_deref());
+            let verdict = judge_in_store(
+                &store,
+                &record,
+                id,
+                &shared.rules,
+                shared.lists_folder.as_deref(),
+            );
             Some(match verdict {
                 Ok(Some(v)) => format!("{line} verdict={v}"),
                 Ok(None) => line,
@@ -217,6 +224,7 @@ pub fn judge_in_store(
     store: &Store,
     record: &crate::store::FrameRecord,
     id: i64,
+    rules: &[crate::rules::RuleSpec],
     lists_folder: Option<&Path>,
 ) -> Result<Option<String>, StoreError> {
     let stars: Vec<(f64, f64, f64, f64)> = record
@@ -231,16 +239,20 @@ pub fn judge_in_store(
         ok: record.status == FrameStatus::Ok,
         skipped: record.status == FrameStatus::Skipped,
     };
-    judge_frame(store, &key, &stars, id, lists_folder)
+    judge_frame(store, &key, &stars, id, rules, lists_folder)
 }
 
 /// Frames recorded without a verdict (the daemon was stopped between the two writes)
 /// are judged at start-up.
-fn judge_missing(store: &Store, lists_folder: Option<&Path>) -> Result<usize, StoreError> {
+fn judge_missing(
+    store: &Store,
+    rules: &[crate::rules::RuleSpec],
+    lists_folder: Option<&Path>,
+) -> Result<usize, StoreError> {
     let missing = store.frames_without_verdict()?;
     for (id, key) in &missing {
         let stars = store.frame_stars(*id)?;
-        judge_frame(store, key, &stars, *id, lists_folder)?;
+        judge_frame(store, key, &stars, *id, rules, lists_folder)?;
     }
     Ok(missing.len())
 }
@@ -250,6 +262,7 @@ fn judge_frame(
     record: &crate::store::GroupKey,
     stars: &[(f64, f64, f64, f64)],
     id: i64,
+    rules: &[crate::rules::RuleSpec],
     lists_folder: Option<&Path>,
 ) -> Result<Option<String>, StoreError> {
     let Some(night) = record.night.as_deref() else {
@@ -286,21 +299,11 @@ fn judge_frame(
     let facts: Vec<crate::rules::FrameFacts> = group
         .iter()
         .map(|g| {
-            let m = g.metrics.as_ref();
-            crate::rules::FrameFacts {
-                readable: g.status == "ok",
-                fwhm_px: m.and_then(|m| m.fwhm_px),
-                eccentricity: m.and_then(|m| m.eccentricity),
-                background_adu: m.map(|m| m.background_adu),
-                noise_adu: m.map(|m| m.noise_adu),
-                star_count: m.map(|m| m.star_count),
-                trails: m.map_or(0, |m| m.trails.len()),
-                transparency_loss_mag: g.transparency_loss_mag,
-                registered: None,
-            }
+            let m = g.metrics.as_ref().filter(|_| g.status == "ok");
+            crate::rules::FrameFacts::from_metrics(m, g.transparency_loss_mag, None)
         })
         .collect();
-    let judged = crate::rules::judge_group(&facts);
+    let judged = crate::rules::judge_group_with(&facts, rules);
     let Some(k) = group.iter().position(|g| g.id == id) else {
         return Ok(None);
     };
@@ -421,6 +424,7 @@ async fn daemon(mut config: Config, workers: usize) -> Result<(), WatchError> {
         store: Mutex::new(store),
         options: record_options(&config),
         lists_folder,
+        rules: config.rule_specs(),
     });
 
     // File events: notify runs its own thread and only forwards paths.
@@ -510,7 +514,7 @@ async fn daemon(mut config: Config, workers: usize) -> Result<(), WatchError> {
 
     {
         let store = shared.store.lock().unwrap_or_else(|p| p.into_inner());
-        let judged = judge_missing(&store, shared.lists_folder.as_deref())?;
+        let judged = judge_missing(&store, &shared.rules, shared.lists_folder.as_deref())?;
         if judged > 0 {
             tracing::info!(
                 "judged {judged} frame(s) recorded before the last stop without a verdict"
