@@ -47,7 +47,7 @@ fn main() {
             .record_returning_id(&record, 0.0)
             .expect("record")
             .expect("new");
-        subwatch::watch::judge_in_store(&store, &record, id, &[], None).expect("judge");
+        subwatch::watch::judge_in_store(&store, &record, id, &Default::default()).expect("judge");
         live_ms.push(t.elapsed().as_secs_f64() * 1e3);
         let _ = i;
     }

@@ -8,7 +8,7 @@ use std::path::{Path, PathBuf};
 use crate::contract::{AnomalyRecord, DetectionRecord, NightDocument, NightFrameRecord};
 use crate::measure::RejectKind;
 use crate::night::{analyse, FrameInput, StarInput};
-use crate::pipeline::{record_file, RecordOptions};
+use crate::pipeline::record_file;
 use crate::rules::{judge_group_with, FrameFacts, RuleSpec};
 use crate::store::{FrameRecord, FrameStatus, Identity, Store, StoreError};
 
@@ -78,9 +78,23 @@ fn frame_input(r: &FrameRecord) -> FrameInput {
 
 /// Analyse already-recorded frames as one night; `store` (optional) supplies earlier
 /// nights' catalogues and keeps tonight's.
+/// Sky context of a recorded frame: at mid-exposure when the exposure time is known,
+/// the target at the WCS centre when there is one.
+pub fn sky_of(r: &FrameRecord, site: Option<(f64, f64, f64)>) -> Option<crate::sky::FrameSky> {
+    let (lat, lon, _) = site?;
+    let start = r.time_unix?;
+    let half = r.header.as_ref().and_then(|h| h.exposure_s).unwrap_or(0.0) / 2.0;
+    let target =
+        r.wcs.as_ref().zip(r.metrics.as_ref()).map(|(w, m)| {
+            w.pixel_to_sky((m.width as f64 + 1.0) / 2.0, (m.height as f64 + 1.0) / 2.0)
+        });
+    Some(crate::sky::frame_sky(start + half, lat, lon, target))
+}
+
 pub fn analyse_records(
     records: &[FrameRecord],
     rules: &[RuleSpec],
+    site: Option<(f64, f64, f64)>,
     mut store: Option<&mut Store>,
 ) -> Result<NightDocument, StoreError> {
     let mut doc = NightDocument {
@@ -159,6 +173,7 @@ pub fn analyse_records(
                 registered: fr.registered,
                 registration_rms_px: fr.registration_rms_px,
                 registration_transform: fr.transform,
+                sky: sky_of(r, site),
                 transparency_loss_mag: fr.transparency_loss_mag,
             });
         }
@@ -203,14 +218,16 @@ fn majority(labels: impl Iterator<Item = String>) -> Option<String> {
 /// `progress` is called after each file with (done, total).
 pub fn run_night(
     dir: &Path,
-    options: &RecordOptions,
-    include: &[String],
-    exclude: &[String],
-    rules: &[RuleSpec],
+    config: &crate::config::Config,
     store: Option<&mut Store>,
     mut progress: impl FnMut(usize, usize),
 ) -> Result<NightDocument, StoreError> {
-    let files = find_frames(&[dir.to_path_buf()], include, exclude);
+    let options = crate::watch::record_options(config);
+    let files = find_frames(
+        &[dir.to_path_buf()],
+        &config.watch.include,
+        &config.watch.exclude,
+    );
     let total = files.len();
     let mut records = Vec::with_capacity(total);
     for (k, path) in files.iter().enumerate() {
@@ -232,7 +249,7 @@ pub fn run_night(
             Err(_) => continue,
         };
         let rec = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
-            record_file(path, identity.clone(), mtime_unix, options)
+            record_file(path, identity.clone(), mtime_unix, &options)
         }))
         .unwrap_or_else(|_| {
             let mut r = record_file_placeholder(identity);
@@ -242,7 +259,12 @@ pub fn run_night(
         records.push(rec);
         progress(k + 1, total);
     }
-    analyse_records(&records, rules, store)
+    analyse_records(
+        &records,
+        &config.rule_specs(),
+        config.site_position(),
+        store,
+    )
 }
 
 fn record_file_placeholder(identity: Identity) -> FrameRecord {

@@ -75,8 +75,10 @@ impl Default for StoreConfig {
 #[derive(Debug, Clone, Deserialize)]
 #[serde(deny_unknown_fields, default)]
 pub struct SiteConfig {
-    pub latitude: f64,
-    pub longitude: f64,
+    /// Degrees, north positive; unset: no Sun, Moon or twilight context.
+    pub latitude: Option<f64>,
+    /// Degrees, east positive.
+    pub longitude: Option<f64>,
     pub elevation_m: f64,
     /// IANA time-zone name, e.g. "Europe/Madrid".
     pub timezone: String,
@@ -85,8 +87,8 @@ pub struct SiteConfig {
 impl Default for SiteConfig {
     fn default() -> Self {
         Self {
-            latitude: 0.0,
-            longitude: 0.0,
+            latitude: None,
+            longitude: None,
             elevation_m: 0.0,
             timezone: "UTC".into(),
         }
@@ -421,14 +423,29 @@ impl Config {
                 "no file pattern: nothing would be measured".into(),
             );
         }
-        if !(-90.0..=90.0).contains(&self.site.latitude) {
+        if self.site.latitude.is_some() != self.site.longitude.is_some() {
+            bad(
+                "site",
+                "latitude",
+                "give both latitude and longitude, or neither".into(),
+            );
+        }
+        if self
+            .site
+            .latitude
+            .is_some_and(|l| !(-90.0..=90.0).contains(&l))
+        {
             bad(
                 "site",
                 "latitude",
                 "must be between -90 and 90 degrees".into(),
             );
         }
-        if !(-180.0..=360.0).contains(&self.site.longitude) {
+        if self
+            .site
+            .longitude
+            .is_some_and(|l| !(-180.0..=360.0).contains(&l))
+        {
             bad(
                 "site",
                 "longitude",
@@ -550,6 +567,15 @@ impl Config {
             .collect()
     }
 
+    /// The site's position (latitude, east longitude, elevation), when configured.
+    pub fn site_position(&self) -> Option<(f64, f64, f64)> {
+        Some((
+            self.site.latitude?,
+            self.site.longitude?,
+            self.site.elevation_m,
+        ))
+    }
+
     /// The site's time zone (validated at load).
     pub fn timezone(&self) -> chrono_tz::Tz {
         self.site.timezone.parse().unwrap_or(chrono_tz::UTC)
@@ -592,7 +618,7 @@ mod tests {
 
     #[test]
     fn bad_values_are_all_collected() {
-        let text = "[watch]\nfolders = []\npoll_seconds = -1\n[site]\nlatitude = 123\ntimezone = \"Mars/Olympus\"\n";
+        let text = "[watch]\nfolders = []\npoll_seconds = -1\n[site]\nlatitude = 123\nlongitude = 0\ntimezone = \"Mars/Olympus\"\n";
         let problems = parse(text, Path::new("/")).unwrap_err();
         let keys: Vec<&str> = problems.iter().map(|p| p.key.as_str()).collect();
         assert_eq!(

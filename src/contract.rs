@@ -141,7 +141,7 @@ impl Metrics {
 }
 
 /// Header facts worth showing with the metrics.
-#[derive(Debug, Clone, Serialize, Default)]
+#[derive(Debug, Clone, Serialize, serde::Deserialize, Default)]
 pub struct HeaderFacts {
     pub object: Option<String>,
     pub filter: Option<String>,
@@ -222,6 +222,8 @@ pub struct NightFrameRecord {
     pub registration_rms_px: Option<f64>,
     /// Frame → reference transform [a00, a01, a10, a11, t0, t1] in FITS pixels.
     pub registration_transform: Option<[f64; 6]>,
+    /// Sun, Moon, twilight and the target's altitude at mid-exposure (with a site).
+    pub sky: Option<crate::sky::FrameSky>,
     #[serde(serialize_with = "finite")]
     pub transparency_loss_mag: Option<f64>,
 }

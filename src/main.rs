@@ -459,7 +459,12 @@ fn report_command(config: &std::path::Path, night: Option<String>, json: bool) -
     };
     let mut store = subwatch::store::Store::open(&cfg.store.path)?;
     let records = store.night_records(&night)?;
-    let doc = subwatch::batch::analyse_records(&records, &cfg.rule_specs(), Some(&mut store))?;
+    let doc = subwatch::batch::analyse_records(
+        &records,
+        &cfg.rule_specs(),
+        cfg.site_position(),
+        Some(&mut store),
+    )?;
     print_night(&doc, json)
 }
 
@@ -499,7 +504,6 @@ fn night_command(
     };
     let defaults = subwatch::config::Config::default();
     let c = cfg.as_ref().unwrap_or(&defaults);
-    let options = subwatch::watch::record_options(c);
     let mut store = match &cfg {
         Some(c) => Some(subwatch::store::Store::open(&c.store.path)?),
         None => None,
@@ -508,19 +512,11 @@ fn night_command(
         anyhow::bail!("{} is not a folder", dir.display());
     }
     let show = !json && std::io::IsTerminal::is_terminal(&std::io::stderr());
-    let doc = subwatch::batch::run_night(
-        dir,
-        &options,
-        &c.watch.include,
-        &c.watch.exclude,
-        &c.rule_specs(),
-        store.as_mut(),
-        |done, total| {
-            if show {
-                eprint!("\rmeasuring {done}/{total}");
-            }
-        },
-    )?;
+    let doc = subwatch::batch::run_night(dir, c, store.as_mut(), |done, total| {
+        if show {
+            eprint!("\rmeasuring {done}/{total}");
+        }
+    })?;
     if show {
         eprintln!();
     }

@@ -101,7 +101,7 @@ impl Cards for [HeaderCard] {
 }
 
 /// What a frame is, from IMAGETYP.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, serde::Deserialize)]
 #[serde(rename_all = "snake_case")]
 pub enum ImageKind {
     Light,

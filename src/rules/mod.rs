@@ -30,6 +30,8 @@ pub struct FrameFacts {
     pub fwhm_arcsec: Option<f64>,
     pub snr_median: Option<f64>,
     pub hfr_px: Option<f64>,
+    /// The Sun's altitude at mid-exposure, when the site is known.
+    pub sun_alt_deg: Option<f64>,
 }
 
 impl FrameFacts {
@@ -52,6 +54,7 @@ impl FrameFacts {
             fwhm_arcsec: m.and_then(|m| m.fwhm_arcsec),
             snr_median: m.and_then(|m| m.snr_median),
             hfr_px: m.and_then(|m| m.hfr_px),
+            sun_alt_deg: None,
         }
     }
 }
@@ -377,6 +380,22 @@ fn judge(f: &FrameFacts, c: &Ctx, replaced: &[&str]) -> Judgement {
             fire(verdict, "transparency_low", format!("stars {loss:.2} mag fainter than in the reference frame (warn above 0.3, reject above 0.75)"));
         }
     }
+    if let Some(sun) = f.sun_alt_deg {
+        // Astronomical twilight (Sun above −18°) brightens the sky; by nautical twilight
+        // (above −12°) a frame is rarely worth stacking.
+        if sun > -18.0 {
+            let verdict = if sun > -12.0 {
+                Verdict::Reject
+            } else {
+                Verdict::Warn
+            };
+            fire(
+                verdict,
+                "twilight",
+                format!("the Sun was at {sun:.1}° (warn above −18°, reject above −12°)"),
+            );
+        }
+    }
     if f.trails > 0 {
         fire(
             Verdict::Warn,
@@ -412,6 +431,7 @@ mod tests {
             fwhm_arcsec: Some(6.0),
             snr_median: Some(40.0),
             hfr_px: Some(1.6),
+            sun_alt_deg: Some(-30.0),
         }
     }
 
@@ -473,7 +493,8 @@ mod tests {
 
     #[test]
     fn each_default_rule_fires_on_its_fault_and_stays_quiet_otherwise() {
-        let mut frames = vec![good(); 9];
+        let mut frames = vec![good(); 10];
+        frames[9].sun_alt_deg = Some(-10.0);
         frames[1].fwhm_px = Some(4.8);
         frames[2].eccentricity = Some(0.7);
         frames[3].background_adu = Some(1200.0);
@@ -492,6 +513,7 @@ mod tests {
             (5, "transparency_low", Verdict::Reject),
             (6, "trail", Verdict::Warn),
             (7, "unreadable", Verdict::Reject),
+            (9, "twilight", Verdict::Reject),
         ];
         for (i, code, verdict) in expect {
             assert_eq!(j[i].reasons, vec![code.to_string()], "frame {i}");

@@ -302,3 +302,30 @@ mod tests {
         assert!((shift - 26.0 * 46.1).abs() < 5.0, "{shift}");
     }
 }
+
+/// What the sky was doing during one exposure (at its middle).
+#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+pub struct FrameSky {
+    pub sun_alt_deg: f64,
+    pub twilight: Twilight,
+    pub moon_alt_deg: f64,
+    pub moon_illumination: f64,
+    pub target_alt_deg: Option<f64>,
+    pub airmass: Option<f64>,
+}
+
+/// Sky context of a frame: `mid_unix` the middle of the exposure, the site, and the
+/// target's J2000 position when known (its altitude needs no better than J2000).
+pub fn frame_sky(mid_unix: f64, lat: f64, lon_east: f64, target: Option<(f64, f64)>) -> FrameSky {
+    let jd = julian_date(mid_unix);
+    let sun = sun_altitude(jd, lat, lon_east);
+    let target_alt = target.map(|(ra, dec)| alt_az(ra, dec, jd, lat, lon_east).0);
+    FrameSky {
+        sun_alt_deg: sun,
+        twilight: twilight(sun),
+        moon_alt_deg: moon_altitude(jd, lat, lon_east),
+        moon_illumination: moon_illumination(jd),
+        target_alt_deg: target_alt,
+        airmass: target_alt.and_then(airmass),
+    }
+}

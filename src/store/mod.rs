@@ -123,6 +123,7 @@ pub struct GroupFrame {
     pub metrics: Option<Metrics>,
     pub transparency_loss_mag: Option<f64>,
     pub registration_rms_px: Option<f64>,
+    pub time_unix: Option<f64>,
 }
 
 /// Counts for `subwatch status`.
@@ -400,7 +401,7 @@ impl Store {
             .conn
             .prepare(
                 "SELECT id, path, size, mtime_ns, status, error, night, target, filter, time_unix,
-                        metrics_json, wcs_json
+                        metrics_json, wcs_json, header_json
                  FROM frames WHERE night = ?1 ORDER BY COALESCE(time_unix, recorded_at), id",
             )
             .map_err(|e| self.err(e))?;
@@ -410,6 +411,7 @@ impl Store {
                 let status: String = r.get(4)?;
                 let metrics: Option<String> = r.get(10)?;
                 let wcs: Option<String> = r.get(11)?;
+                let header: Option<String> = r.get(12)?;
                 Ok((
                     r.get(0)?,
                     FrameRecord {
@@ -428,7 +430,7 @@ impl Store {
                         target: r.get(7)?,
                         filter: r.get(8)?,
                         time_unix: r.get(9)?,
-                        header: None,
+                        header: header.and_then(|h| serde_json::from_str(&h).ok()),
                         metrics: metrics.and_then(|m| serde_json::from_str(&m).ok()),
                         stars: Vec::new(),
                         rejected: Vec::new(),
@@ -541,7 +543,7 @@ impl Store {
         let mut st = self
             .conn
             .prepare(
-                "SELECT id, status, metrics_json, transparency_loss_mag, registration_rms_px FROM frames
+                "SELECT id, status, metrics_json, transparency_loss_mag, registration_rms_px, time_unix FROM frames
                  WHERE night = ?1 AND target IS ?2 AND filter IS ?3 AND status != 'skipped'
                  ORDER BY id",
             )
@@ -555,6 +557,7 @@ impl Store {
                     metrics: m.and_then(|m| serde_json::from_str(&m).ok()),
                     transparency_loss_mag: r.get(3)?,
                     registration_rms_px: r.get(4)?,
+                    time_unix: r.get(5)?,
                 })
             })
             .map_err(|e| self.err(e))?;

@@ -146,9 +146,7 @@ fn sd_notify(state: &str) {
 struct Shared {
     store: Mutex<Store>,
     options: RecordOptions,
-    /// Where accepted-frame lists go, when that action is on.
-    lists_folder: Option<PathBuf>,
-    rules: Vec<crate::rules::RuleSpec>,
+    judging: Judging,
 }
 
 /// Measure and record one file on a worker thread. Returns what to log.
@@ -199,13 +197,7 @@ fn process(shared: &Shared, path: &Path) -> Option<String> {
     let mut store = shared.store.lock().unwrap_or_else(|p| p.into_inner());
     match store.record_returning_id(&record, unix_now()) {
         Ok(Some(id)) => {
-            let verdict = judge_in_store(
-                &store,
-                &record,
-                id,
-                &shared.rules,
-                shared.lists_folder.as_deref(),
-            );
+            let verdict = judge_in_store(&store, &record, id, &shared.judging);
             Some(match verdict {
                 Ok(Some(v)) => format!("{line} verdict={v}"),
                 Ok(None) => line,
@@ -220,12 +212,21 @@ fn process(shared: &Shared, path: &Path) -> Option<String> {
 /// Judge a just-recorded frame against the night so far (same target and filter), store
 /// the verdict, and refresh the accepted-frames list when asked to. Later frames do not
 /// change an earlier frame's verdict: what was logged stays what was decided.
+/// What the live verdict needs besides the store.
+#[derive(Debug, Clone, Default)]
+pub struct Judging {
+    pub rules: Vec<crate::rules::RuleSpec>,
+    /// Latitude, east longitude, elevation.
+    pub site: Option<(f64, f64, f64)>,
+    /// Where accepted-frame lists go, when that action is on.
+    pub lists_folder: Option<PathBuf>,
+}
+
 pub fn judge_in_store(
     store: &Store,
     record: &crate::store::FrameRecord,
     id: i64,
-    rules: &[crate::rules::RuleSpec],
-    lists_folder: Option<&Path>,
+    judging: &Judging,
 ) -> Result<Option<String>, StoreError> {
     let stars: Vec<(f64, f64, f64, f64)> = record
         .stars
@@ -239,20 +240,16 @@ pub fn judge_in_store(
         ok: record.status == FrameStatus::Ok,
         skipped: record.status == FrameStatus::Skipped,
     };
-    judge_frame(store, &key, &stars, id, rules, lists_folder)
+    judge_frame(store, &key, &stars, id, judging)
 }
 
 /// Frames recorded without a verdict (the daemon was stopped between the two writes)
 /// are judged at start-up.
-fn judge_missing(
-    store: &Store,
-    rules: &[crate::rules::RuleSpec],
-    lists_folder: Option<&Path>,
-) -> Result<usize, StoreError> {
+fn judge_missing(store: &Store, judging: &Judging) -> Result<usize, StoreError> {
     let missing = store.frames_without_verdict()?;
     for (id, key) in &missing {
         let stars = store.frame_stars(*id)?;
-        judge_frame(store, key, &stars, *id, rules, lists_folder)?;
+        judge_frame(store, key, &stars, *id, judging)?;
     }
     Ok(missing.len())
 }
@@ -262,9 +259,9 @@ fn judge_frame(
     record: &crate::store::GroupKey,
     stars: &[(f64, f64, f64, f64)],
     id: i64,
-    rules: &[crate::rules::RuleSpec],
-    lists_folder: Option<&Path>,
+    judging: &Judging,
 ) -> Result<Option<String>, StoreError> {
+    let site = judging.site;
     let Some(night) = record.night.as_deref() else {
         return Ok(None);
     };
@@ -300,10 +297,15 @@ fn judge_frame(
         .iter()
         .map(|g| {
             let m = g.metrics.as_ref().filter(|_| g.status == "ok");
-            crate::rules::FrameFacts::from_metrics(m, g.transparency_loss_mag, None)
+            let mut facts =
+                crate::rules::FrameFacts::from_metrics(m, g.transparency_loss_mag, None);
+            facts.sun_alt_deg = site.zip(g.time_unix).map(|((lat, lon, _), t)| {
+                crate::sky::sun_altitude(crate::sky::julian_date(t), lat, lon)
+            });
+            facts
         })
         .collect();
-    let judged = crate::rules::judge_group_with(&facts, rules);
+    let judged = crate::rules::judge_group_with(&facts, &judging.rules);
     let Some(k) = group.iter().position(|g| g.id == id) else {
         return Ok(None);
     };
@@ -313,7 +315,7 @@ fn judge_frame(
         .and_then(|v| v.as_str().map(String::from))
         .unwrap_or_default();
     store.set_verdict(id, &verdict, &j.reasons)?;
-    if let Some(folder) = lists_folder {
+    if let Some(folder) = judging.lists_folder.as_deref() {
         write_accepted_list(
             store,
             folder,
@@ -423,8 +425,11 @@ async fn daemon(mut config: Config, workers: usize) -> Result<(), WatchError> {
     let shared = Arc::new(Shared {
         store: Mutex::new(store),
         options: record_options(&config),
-        lists_folder,
-        rules: config.rule_specs(),
+        judging: Judging {
+            rules: config.rule_specs(),
+            site: config.site_position(),
+            lists_folder,
+        },
     });
 
     // File events: notify runs its own thread and only forwards paths.
@@ -514,7 +519,7 @@ async fn daemon(mut config: Config, workers: usize) -> Result<(), WatchError> {
 
     {
         let store = shared.store.lock().unwrap_or_else(|p| p.into_inner());
-        let judged = judge_missing(&store, &shared.rules, shared.lists_folder.as_deref())?;
+        let judged = judge_missing(&store, &shared.judging)?;
         if judged > 0 {
             tracing::info!(
                 "judged {judged} frame(s) recorded before the last stop without a verdict"
