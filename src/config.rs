@@ -209,8 +209,13 @@ pub fn load(path: &Path) -> Result<Config, ConfigError> {
         path: path.to_path_buf(),
         source,
     })?;
-    let base = path.parent().unwrap_or(Path::new("."));
-    parse(&text, base).map_err(|problems| ConfigError::Invalid {
+    // Relative paths in the file are relative to the file's own folder.
+    let folder = path
+        .parent()
+        .filter(|p| !p.as_os_str().is_empty())
+        .unwrap_or(Path::new("."));
+    let base = std::fs::canonicalize(folder).unwrap_or_else(|_| folder.to_path_buf());
+    parse(&text, &base).map_err(|problems| ConfigError::Invalid {
         path: path.to_path_buf(),
         problems,
     })

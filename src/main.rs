@@ -78,7 +78,8 @@ enum Command {
         #[arg(long)]
         config: Option<PathBuf>,
     },
-    /// The night document (frames with verdicts, anomalies) from the daemon's store.
+    /// The night document (frames with verdicts, anomalies) from the daemon's store;
+    /// with --send, the morning summary (HTML and CSV in the report folder) by mail now.
     Report {
         #[arg(long)]
         config: PathBuf,
@@ -87,6 +88,9 @@ enum Command {
         night: Option<String>,
         #[arg(long)]
         json: bool,
+        /// Write the summary files and mail the summary (to a .eml file without a server).
+        #[arg(long)]
+        send: bool,
     },
     /// Sun, Moon, twilight and a target's altitude for a site and moment (JSON).
     Sky {
@@ -246,7 +250,8 @@ fn run(cli: Cli) -> Result<ExitCode> {
             config,
             night,
             json,
-        } => report_command(&config, night, json),
+            send,
+        } => report_command(&config, night, json, send),
         Command::Sky {
             latitude,
             longitude,
@@ -446,26 +451,54 @@ fn sky_command(
     Ok(ExitCode::SUCCESS)
 }
 
-fn report_command(config: &std::path::Path, night: Option<String>, json: bool) -> Result<ExitCode> {
+fn report_command(
+    config: &std::path::Path,
+    night: Option<String>,
+    json: bool,
+    send: bool,
+) -> Result<ExitCode> {
     let cfg = subwatch::config::load(config)?;
+    let now = std::time::SystemTime::now()
+        .duration_since(std::time::UNIX_EPOCH)
+        .map_or(0.0, |d| d.as_secs_f64());
     let night = match night {
         Some(n) => n,
-        None => {
-            let now = std::time::SystemTime::now()
-                .duration_since(std::time::UNIX_EPOCH)
-                .map_or(0.0, |d| d.as_secs_f64());
-            subwatch::sky::night_label(now, cfg.timezone()).context("clock out of range")?
-        }
+        None => subwatch::sky::night_label(now, cfg.timezone()).context("clock out of range")?,
     };
     let mut store = subwatch::store::Store::open(&cfg.store.path)?;
-    let records = store.night_records(&night)?;
-    let doc = subwatch::batch::analyse_records(
-        &records,
-        &cfg.rule_specs(),
-        cfg.site_position(),
-        Some(&mut store),
-    )?;
-    print_night(&doc, json)
+    if !send {
+        let records = store.night_records(&night)?;
+        let doc = subwatch::batch::analyse_records(
+            &records,
+            &cfg.rule_specs(),
+            cfg.site_position(),
+            Some(&mut store),
+        )?;
+        return print_night(&doc, json);
+    }
+    let prepared = subwatch::morning::prepare(&mut store, &cfg, &night)?;
+    if json {
+        print_night(&prepared.doc, true)?;
+    }
+    let id = subwatch::morning::queue_mail(&store, &cfg, &prepared, now)?;
+    let flushed = subwatch::morning::flush(&store, &cfg, now)?;
+    eprintln!("report: {}", prepared.html_path.display());
+    eprintln!("frames: {}", prepared.csv_path.display());
+    for p in &flushed.written {
+        eprintln!("mail (no server configured): {}", p.display());
+    }
+    if flushed.sent > 0 {
+        eprintln!("mail sent ({} message(s))", flushed.sent);
+    }
+    for f in &flushed.failed {
+        eprintln!("mail not sent yet, kept in the outbox: {f}");
+    }
+    let _ = id;
+    Ok(if flushed.failed.is_empty() {
+        ExitCode::SUCCESS
+    } else {
+        ExitCode::from(3)
+    })
 }
 
 fn print_night(doc: &subwatch::contract::NightDocument, json: bool) -> Result<ExitCode> {

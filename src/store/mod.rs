@@ -139,7 +139,7 @@ pub struct NightCounts {
     pub last_recorded_unix: Option<f64>,
 }
 
-pub const SCHEMA_VERSION: i64 = 2;
+pub const SCHEMA_VERSION: i64 = 3;
 
 const MIGRATIONS: &[&str] = &[
     // 1: frames, their stars and rejected detections, and a key-value table.
@@ -195,6 +195,21 @@ const MIGRATIONS: &[&str] = &[
         ra_deg REAL NOT NULL, dec_deg REAL NOT NULL, mag REAL
      );
      CREATE INDEX catalog_target ON catalog (target, night);",
+    // 3: the mail outbox. A message waits here until the server took it, across
+    // restarts, so a summary is never lost.
+    "CREATE TABLE outbox (
+        id INTEGER PRIMARY KEY,
+        created_unix REAL NOT NULL,
+        subject TEXT NOT NULL,
+        envelope_from TEXT NOT NULL,
+        envelope_to TEXT NOT NULL,
+        message BLOB NOT NULL,
+        status TEXT NOT NULL DEFAULT 'queued',
+        attempts INTEGER NOT NULL DEFAULT 0,
+        next_attempt_unix REAL NOT NULL,
+        last_error TEXT,
+        done_unix REAL
+     );",
 ];
 
 pub struct Store {
@@ -782,6 +797,79 @@ impl Store {
             });
         }
         Ok(out)
+    }
+
+    /// Put a composed message in the outbox; returns its id.
+    pub fn enqueue_mail(
+        &self,
+        c: &crate::mail::Composed,
+        now_unix: f64,
+    ) -> Result<i64, StoreError> {
+        self.conn
+            .execute(
+                "INSERT INTO outbox (created_unix, subject, envelope_from, envelope_to, message, next_attempt_unix)
+                 VALUES (?1, ?2, ?3, ?4, ?5, ?1)",
+                params![now_unix, c.subject, c.from, serde_json::to_string(&c.to).unwrap_or_default(), c.bytes],
+            )
+            .map_err(|e| self.err(e))?;
+        Ok(self.conn.last_insert_rowid())
+    }
+
+    /// Messages due for (another) attempt.
+    pub fn due_mail(
+        &self,
+        now_unix: f64,
+    ) -> Result<Vec<(i64, crate::mail::Composed, i64)>, StoreError> {
+        let mut st = self
+            .conn
+            .prepare(
+                "SELECT id, subject, envelope_from, envelope_to, message, attempts FROM outbox
+                 WHERE status = 'queued' AND next_attempt_unix <= ?1 ORDER BY id",
+            )
+            .map_err(|e| self.err(e))?;
+        let rows = st
+            .query_map(params![now_unix], |r| {
+                let to: String = r.get(3)?;
+                Ok((
+                    r.get(0)?,
+                    crate::mail::Composed {
+                        subject: r.get(1)?,
+                        from: r.get(2)?,
+                        to: serde_json::from_str(&to).unwrap_or_default(),
+                        bytes: r.get(4)?,
+                    },
+                    r.get(5)?,
+                ))
+            })
+            .map_err(|e| self.err(e))?;
+        rows.collect::<Result<_, _>>().map_err(|e| self.err(e))
+    }
+
+    /// Mark a message delivered (`status` "sent") or written to a file ("written").
+    pub fn mail_done(&self, id: i64, status: &str, now_unix: f64) -> Result<(), StoreError> {
+        self.conn
+            .execute(
+                "UPDATE outbox SET status = ?2, done_unix = ?3 WHERE id = ?1",
+                params![id, status, now_unix],
+            )
+            .map(|_| ())
+            .map_err(|e| self.err(e))
+    }
+
+    /// Record a failed attempt and when to try again.
+    pub fn mail_failed(
+        &self,
+        id: i64,
+        error: &str,
+        next_attempt_unix: f64,
+    ) -> Result<(), StoreError> {
+        self.conn
+            .execute(
+                "UPDATE outbox SET attempts = attempts + 1, last_error = ?2, next_attempt_unix = ?3 WHERE id = ?1",
+                params![id, error, next_attempt_unix],
+            )
+            .map(|_| ())
+            .map_err(|e| self.err(e))
     }
 
     pub fn set_meta(&self, key: &str, value: &str) -> Result<(), StoreError> {

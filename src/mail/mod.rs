@@ -1,0 +1,279 @@
+//! Mail: composing the morning summary (multipart: plain text, HTML with inline images by
+//! Content-ID, CSV attachment) and delivering it over SMTP (STARTTLS, implicit TLS, or
+//! plain on a trusted network) through the on-disk outbox in the store. The only module
+//! that speaks SMTP. A password is read from a file or the environment and never logged.
+
+use std::path::Path;
+use std::time::Duration;
+
+use lettre::message::header::ContentType;
+use lettre::message::{Attachment, Mailbox, MultiPart, SinglePart};
+use lettre::transport::smtp::authentication::Credentials;
+use lettre::{Address, Message, SmtpTransport, Transport};
+
+use crate::config::Config;
+
+#[derive(Debug, thiserror::Error)]
+pub enum MailError {
+    #[error("mail settings: {0}")]
+    Settings(String),
+    #[error("composing the message: {0}")]
+    Compose(String),
+    #[error("sending to {host}:{port}: {reason}")]
+    Send {
+        host: String,
+        port: u16,
+        reason: String,
+    },
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Security {
+    StartTls,
+    Tls,
+    None,
+}
+
+/// Everything needed to deliver, from the configuration.
+#[derive(Clone)]
+pub struct MailSettings {
+    /// None: no server; messages are written as .eml files instead.
+    pub host: Option<String>,
+    pub port: u16,
+    pub security: Security,
+    pub username: Option<String>,
+    password: Option<String>,
+    pub from: Mailbox,
+    pub to: Vec<Mailbox>,
+}
+
+impl std::fmt::Debug for MailSettings {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        // The password is never printed.
+        f.debug_struct("MailSettings")
+            .field("host", &self.host)
+            .field("port", &self.port)
+            .field("security", &self.security)
+            .field("username", &self.username)
+            .field("from", &self.from)
+            .field("to", &self.to)
+            .finish_non_exhaustive()
+    }
+}
+
+impl MailSettings {
+    pub fn from_config(c: &Config) -> Result<Self, MailError> {
+        let m = &c.mail;
+        let security = match m.security.as_deref().unwrap_or("starttls") {
+            "starttls" => Security::StartTls,
+            "tls" => Security::Tls,
+            "none" => Security::None,
+            other => return Err(MailError::Settings(format!("security {other:?}"))),
+        };
+        let port = m.smtp_port.unwrap_or(match security {
+            Security::StartTls => 587,
+            Security::Tls => 465,
+            Security::None => 25,
+        });
+        let password = match &m.password_file {
+            Some(p) => Some(
+                std::fs::read_to_string(p)
+                    .map_err(|e| {
+                        MailError::Settings(format!("password_file {}: {e}", p.display()))
+                    })?
+                    .trim_end_matches(['\n', '\r'])
+                    .to_string(),
+            ),
+            None => std::env::var("SUBWATCH_SMTP_PASSWORD").ok(),
+        };
+        let from: Mailbox = m
+            .from
+            .as_deref()
+            .unwrap_or("subwatch@localhost")
+            .parse()
+            .map_err(|e| MailError::Settings(format!("from: {e}")))?;
+        let to =
+            m.to.iter()
+                .map(|t| {
+                    t.parse::<Mailbox>()
+                        .map_err(|e| MailError::Settings(format!("to {t:?}: {e}")))
+                })
+                .collect::<Result<Vec<_>, _>>()?;
+        Ok(MailSettings {
+            host: m.smtp_host.clone(),
+            port,
+            security,
+            username: m.username.clone(),
+            password,
+            from,
+            to,
+        })
+    }
+
+    fn transport(&self, host: &str) -> Result<SmtpTransport, MailError> {
+        let fail = |e: lettre::transport::smtp::Error| MailError::Send {
+            host: host.to_string(),
+            port: self.port,
+            reason: e.to_string(),
+        };
+        let mut b = match self.security {
+            Security::StartTls => SmtpTransport::starttls_relay(host).map_err(fail)?,
+            Security::Tls => SmtpTransport::relay(host).map_err(fail)?,
+            Security::None => SmtpTransport::builder_dangerous(host),
+        };
+        b = b.port(self.port).timeout(Some(Duration::from_secs(30)));
+        if let (Some(u), Some(p)) = (&self.username, &self.password) {
+            b = b.credentials(Credentials::new(u.clone(), p.clone()));
+        }
+        Ok(b.build())
+    }
+}
+
+/// A composed message: its bytes (RFC 5322) and the envelope addresses.
+#[derive(Debug, Clone)]
+pub struct Composed {
+    pub subject: String,
+    pub from: String,
+    pub to: Vec<String>,
+    pub bytes: Vec<u8>,
+}
+
+/// An image shown inside the HTML part, referenced there as `cid:<id>`.
+pub struct Inline {
+    pub content_id: String,
+    pub png: Vec<u8>,
+}
+
+/// Compose the summary mail. The subject must already be one line.
+pub fn compose(
+    s: &MailSettings,
+    subject: &str,
+    text: &str,
+    html: &str,
+    inline: &[Inline],
+    csv_name: &str,
+    csv: &str,
+) -> Result<Composed, MailError> {
+    if s.to.is_empty() {
+        return Err(MailError::Settings(
+            "no recipients (mail.to is empty)".into(),
+        ));
+    }
+    let png = ContentType::parse("image/png").map_err(|e| MailError::Compose(e.to_string()))?;
+    let csv_type = ContentType::parse("text/csv; charset=utf-8")
+        .map_err(|e| MailError::Compose(e.to_string()))?;
+    let mut related = MultiPart::related().singlepart(SinglePart::html(html.to_string()));
+    for i in inline {
+        related = related.singlepart(
+            Attachment::new_inline(i.content_id.clone()).body(i.png.clone(), png.clone()),
+        );
+    }
+    let body = MultiPart::mixed()
+        .multipart(
+            MultiPart::alternative()
+                .singlepart(SinglePart::plain(text.to_string()))
+                .multipart(related),
+        )
+        .singlepart(Attachment::new(csv_name.to_string()).body(csv.to_string(), csv_type));
+    let mut builder = Message::builder()
+        .from(s.from.clone())
+        .subject(crate::report::one_line(subject));
+    for t in &s.to {
+        builder = builder.to(t.clone());
+    }
+    let msg = builder
+        .multipart(body)
+        .map_err(|e| MailError::Compose(e.to_string()))?;
+    Ok(Composed {
+        subject: subject.to_string(),
+        from: s.from.email.to_string(),
+        to: s.to.iter().map(|m| m.email.to_string()).collect(),
+        bytes: msg.formatted(),
+    })
+}
+
+/// Deliver already-formatted bytes to the server.
+pub fn send_raw(
+    s: &MailSettings,
+    from: &str,
+    to: &[String],
+    bytes: &[u8],
+) -> Result<(), MailError> {
+    let host = s
+        .host
+        .as_deref()
+        .ok_or_else(|| MailError::Settings("no smtp_host".into()))?;
+    let parse = |a: &str| {
+        a.parse::<Address>()
+            .map_err(|e| MailError::Compose(format!("{a}: {e}")))
+    };
+    let envelope = lettre::address::Envelope::new(
+        Some(parse(from)?),
+        to.iter().map(|t| parse(t)).collect::<Result<_, _>>()?,
+    )
+    .map_err(|e| MailError::Compose(e.to_string()))?;
+    s.transport(host)?
+        .send_raw(&envelope, bytes)
+        .map(|_| ())
+        .map_err(|e| MailError::Send {
+            host: host.to_string(),
+            port: s.port,
+            reason: e.to_string(),
+        })
+}
+
+/// Write a message as an .eml file (when no server is configured).
+pub fn write_eml(folder: &Path, name: &str, c: &Composed) -> std::io::Result<std::path::PathBuf> {
+    std::fs::create_dir_all(folder)?;
+    let path = folder.join(name);
+    std::fs::write(&path, &c.bytes)?;
+    Ok(path)
+}
+
+/// What one pass over the outbox did.
+#[derive(Debug, Default, Clone, PartialEq)]
+pub struct FlushReport {
+    pub sent: usize,
+    pub written: Vec<std::path::PathBuf>,
+    pub failed: Vec<String>,
+}
+
+/// Deliver every due message in the outbox. A failed message waits 1, 2, 4, … minutes
+/// (at most an hour) before the next try; a delivered one is never sent again. Without a
+/// server the message is written to `eml_folder` instead.
+pub fn flush_outbox(
+    store: &crate::store::Store,
+    s: &MailSettings,
+    eml_folder: &Path,
+    now_unix: f64,
+) -> Result<FlushReport, crate::store::StoreError> {
+    let mut report = FlushReport::default();
+    for (id, msg, attempts) in store.due_mail(now_unix)? {
+        if s.host.is_none() {
+            match write_eml(eml_folder, &format!("subwatch-mail-{id}.eml"), &msg) {
+                Ok(p) => {
+                    store.mail_done(id, "written", now_unix)?;
+                    report.written.push(p);
+                }
+                Err(e) => report
+                    .failed
+                    .push(format!("message {id}: cannot write .eml: {e}")),
+            }
+            continue;
+        }
+        match send_raw(s, &msg.from, &msg.to, &msg.bytes) {
+            Ok(()) => {
+                store.mail_done(id, "sent", now_unix)?;
+                report.sent += 1;
+            }
+            Err(e) => {
+                let wait = (60.0 * 2f64.powi(attempts.clamp(0, 6) as i32)).min(3600.0);
+                store.mail_failed(id, &e.to_string(), now_unix + wait)?;
+                report
+                    .failed
+                    .push(format!("message {id}: {e} (next try in {wait:.0} s)"));
+            }
+        }
+    }
+    Ok(report)
+}
