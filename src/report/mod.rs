@@ -153,14 +153,13 @@ pub fn one_line(s: &str) -> String {
 
 /// Sexagesimal RA (hours) and Dec (degrees) for a J2000 position.
 pub fn sexagesimal(ra_deg: f64, dec_deg: f64) -> String {
-    let h = ra_deg.rem_euclid(360.0) / 15.0;
-    let (hh, hm) = (h.floor(), (h.fract() * 60.0));
-    let (mm, ss) = (hm.floor(), hm.fract() * 60.0);
+    // Round once, in the last unit shown, so 59.999 s never prints as 60.00 s.
+    let cs = (ra_deg.rem_euclid(360.0) / 15.0 * 360_000.0).round() as i64 % (24 * 360_000);
+    let (hh, mm, ss) = (cs / 360_000, (cs / 6_000) % 60, (cs % 6_000) as f64 / 100.0);
     let sign = if dec_deg < 0.0 { '-' } else { '+' };
-    let d = dec_deg.abs();
-    let (dd, dm) = (d.floor(), d.fract() * 60.0);
-    let (m2, s2) = (dm.floor(), dm.fract() * 60.0);
-    format!("{hh:02.0}h{mm:02.0}m{ss:05.2}s {sign}{dd:02.0}°{m2:02.0}′{s2:04.1}″")
+    let ds = (dec_deg.abs() * 36_000.0).round() as i64;
+    let (dd, dm, dsec) = (ds / 36_000, (ds / 600) % 60, (ds % 600) as f64 / 10.0);
+    format!("{hh:02}h{mm:02}m{ss:05.2}s {sign}{dd:02}°{dm:02}′{dsec:04.1}″")
 }
 
 fn hours(s: f64) -> String {
