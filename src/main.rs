@@ -92,6 +92,14 @@ enum Command {
         #[arg(long)]
         send: bool,
     },
+    /// Deliver the mail waiting in the outbox (it is retried with growing waits).
+    Outbox {
+        #[arg(long)]
+        config: PathBuf,
+        /// Try every waiting message now, whatever its wait.
+        #[arg(long)]
+        now: bool,
+    },
     /// Sun, Moon, twilight and a target's altitude for a site and moment (JSON).
     Sky {
         #[arg(long, allow_hyphen_values = true)]
@@ -252,6 +260,29 @@ fn run(cli: Cli) -> Result<ExitCode> {
             json,
             send,
         } => report_command(&config, night, json, send),
+        Command::Outbox { config, now } => {
+            let cfg = subwatch::config::load(&config)?;
+            let store = subwatch::store::Store::open(&cfg.store.path)?;
+            let clock = std::time::SystemTime::now()
+                .duration_since(std::time::UNIX_EPOCH)
+                .map_or(0.0, |d| d.as_secs_f64());
+            let due = if now { f64::MAX } else { clock };
+            let r = subwatch::morning::flush_at(&store, &cfg, due, clock)?;
+            println!(
+                "sent {}, written {}, failed {}",
+                r.sent,
+                r.written.len(),
+                r.failed.len()
+            );
+            for f in &r.failed {
+                eprintln!("{f}");
+            }
+            Ok(if r.failed.is_empty() {
+                ExitCode::SUCCESS
+            } else {
+                ExitCode::from(3)
+            })
+        }
         Command::Sky {
             latitude,
             longitude,

@@ -158,11 +158,23 @@ pub fn flush(
     c: &Config,
     now_unix: f64,
 ) -> Result<crate::mail::FlushReport, MorningError> {
+    flush_at(store, c, now_unix, now_unix)
+}
+
+/// Deliver what is due by `due_unix` (a late `due_unix` retries everything now), stamping
+/// the outcome at `now_unix`.
+pub fn flush_at(
+    store: &Store,
+    c: &Config,
+    due_unix: f64,
+    now_unix: f64,
+) -> Result<crate::mail::FlushReport, MorningError> {
     let settings = MailSettings::from_config(c)?;
     Ok(crate::mail::flush_outbox(
         store,
         &settings,
         &report_folder(c),
+        due_unix,
         now_unix,
     )?)
 }

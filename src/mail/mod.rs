@@ -245,10 +245,11 @@ pub fn flush_outbox(
     store: &crate::store::Store,
     s: &MailSettings,
     eml_folder: &Path,
+    due_unix: f64,
     now_unix: f64,
 ) -> Result<FlushReport, crate::store::StoreError> {
     let mut report = FlushReport::default();
-    for (id, msg, attempts) in store.due_mail(now_unix)? {
+    for (id, msg, attempts) in store.due_mail(due_unix)? {
         if s.host.is_none() {
             match write_eml(eml_folder, &format!("subwatch-mail-{id}.eml"), &msg) {
                 Ok(p) => {
