@@ -148,6 +148,44 @@ pub struct MailConfig {
     pub summary_time: Option<String>,
 }
 
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields, default)]
+pub struct AlertsConfig {
+    /// Send live alerts by mail (they need `[mail] to`).
+    pub enabled: bool,
+    pub stopped_minutes: f64,
+    pub reject_streak: usize,
+    pub min_free_gb: f64,
+    pub repeat_minutes: f64,
+    pub max_per_night: usize,
+}
+
+impl Default for AlertsConfig {
+    fn default() -> Self {
+        let l = crate::watch::alerts::AlertLimits::default();
+        AlertsConfig {
+            enabled: true,
+            stopped_minutes: l.stopped_minutes,
+            reject_streak: l.reject_streak,
+            min_free_gb: l.min_free_gb,
+            repeat_minutes: l.repeat_minutes,
+            max_per_night: l.max_per_night,
+        }
+    }
+}
+
+impl AlertsConfig {
+    pub fn limits(&self) -> crate::watch::alerts::AlertLimits {
+        crate::watch::alerts::AlertLimits {
+            stopped_minutes: self.stopped_minutes,
+            reject_streak: self.reject_streak,
+            min_free_gb: self.min_free_gb,
+            repeat_minutes: self.repeat_minutes,
+            max_per_night: self.max_per_night,
+        }
+    }
+}
+
 #[derive(Debug, Clone, Default, Deserialize)]
 #[serde(deny_unknown_fields, default)]
 pub struct ReportConfig {
@@ -165,6 +203,7 @@ pub struct Config {
     pub measure: MeasureConfig,
     pub actions: ActionsConfig,
     pub mail: MailConfig,
+    pub alerts: AlertsConfig,
     pub report: ReportConfig,
     /// Rule tables; their contents are checked by the rules module.
     pub rules: Vec<toml::Table>,
@@ -342,6 +381,17 @@ fn schema() -> BTreeMap<&'static str, &'static [&'static str]> {
             ][..],
         ),
         ("report", &["folder"][..]),
+        (
+            "alerts",
+            &[
+                "enabled",
+                "stopped_minutes",
+                "reject_streak",
+                "min_free_gb",
+                "repeat_minutes",
+                "max_per_night",
+            ][..],
+        ),
     ])
 }
 

@@ -56,6 +56,9 @@ enum Command {
     CheckConfig {
         #[arg(long)]
         config: PathBuf,
+        /// Also send a test mail through the configured server now.
+        #[arg(long)]
+        send_test: bool,
     },
     /// Tonight so far: frames seen, measured, errors, last frame, the daemon's queue.
     Status {
@@ -232,7 +235,7 @@ fn run(cli: Cli) -> Result<ExitCode> {
             subwatch::watch::run(cfg)?;
             Ok(ExitCode::SUCCESS)
         }
-        Command::CheckConfig { config } => {
+        Command::CheckConfig { config, send_test } => {
             let cfg = subwatch::config::load(&config)?;
             let (errors, warnings) = cfg.check_environment();
             for w in &warnings {
@@ -241,12 +244,31 @@ fn run(cli: Cli) -> Result<ExitCode> {
             for e in &errors {
                 println!("error: {e}");
             }
-            if errors.is_empty() {
-                println!("{}: ok", config.display());
-                Ok(ExitCode::SUCCESS)
-            } else {
-                Ok(ExitCode::from(1))
+            if !errors.is_empty() {
+                return Ok(ExitCode::from(1));
             }
+            println!("{}: ok", config.display());
+            if send_test {
+                let settings = subwatch::mail::MailSettings::from_config(&cfg)?;
+                let note = subwatch::mail::compose_note(
+                    &settings,
+                    "subwatch test mail",
+                    "This is a test of subwatch's mail settings. Morning summaries and alerts will come this way.",
+                )?;
+                match &settings.host {
+                    Some(host) => {
+                        subwatch::mail::send_raw(&settings, &note.from, &note.to, &note.bytes)?;
+                        println!("test mail sent through {host}:{}", settings.port);
+                    }
+                    None => {
+                        let folder = subwatch::morning::report_folder(&cfg);
+                        let path = subwatch::mail::write_eml(&folder, "subwatch-test.eml", &note)
+                            .with_context(|| format!("writing into {}", folder.display()))?;
+                        println!("no smtp_host: test mail written to {}", path.display());
+                    }
+                }
+            }
+            Ok(ExitCode::SUCCESS)
         }
         Command::Status {
             config,

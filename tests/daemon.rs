@@ -430,3 +430,71 @@ fn live_verdicts_and_the_accepted_list() {
     assert_eq!(list.lines().count(), 6, "{list}");
     assert!(!list.contains(&frames[6].name) && !list.contains(&frames[7].name));
 }
+
+#[test]
+fn a_streak_of_rejections_raises_one_alert() {
+    use subwatch::sim::night::{render_night, NightPlan};
+    let s = site("");
+    let mut cfg = std::fs::read_to_string(&s.config).unwrap();
+    cfg.push_str(&format!(
+        "[mail]\nfrom = \"subwatch@kestrel-ridge.example\"\nto = [\"observer@kestrel-ridge.example\"]\n[report]\nfolder = \"{}\"\n",
+        s.root.join("reports").display()
+    ));
+    std::fs::write(&s.config, cfg).unwrap();
+    let mut plan = NightPlan::full(12);
+    plan.frames = 9;
+    plan.flip_at = None;
+    plan.gust_frames = vec![5, 6, 7, 8];
+    plan.cloud_frames.clear();
+    plan.trail_frames.clear();
+    plan.focus_drift_from = None;
+    let (frames, _) = render_night(&plan);
+    let d = Daemon::start(&s.config);
+    std::thread::sleep(Duration::from_millis(300));
+    let conn = rusqlite::Connection::open(&s.db).unwrap();
+    for (k, f) in frames.iter().enumerate() {
+        write_frame(
+            &s.capture.join(&f.name),
+            &f.pixels,
+            Encoding::Unsigned16,
+            &f.keys,
+        )
+        .unwrap();
+        let start = Instant::now();
+        while start.elapsed() < Duration::from_secs(20) {
+            let judged: i64 = conn
+                .query_row(
+                    "SELECT COUNT(*) FROM frames WHERE verdict IS NOT NULL",
+                    [],
+                    |r| r.get(0),
+                )
+                .unwrap_or(0);
+            if judged as usize > k {
+                break;
+            }
+            std::thread::sleep(Duration::from_millis(50));
+        }
+    }
+    std::thread::sleep(Duration::from_millis(300));
+    d.kill9();
+    let alerts: Vec<(String, String)> = conn
+        .prepare("SELECT kind, message FROM alerts")
+        .unwrap()
+        .query_map([], |r| Ok((r.get(0)?, r.get(1)?)))
+        .unwrap()
+        .map(Result::unwrap)
+        .collect();
+    // Four rejections in a row: the third raises the alert, the fourth is held back by
+    // the rate limit.
+    assert_eq!(alerts.len(), 1, "{alerts:?}");
+    assert_eq!(alerts[0].0, "reject_streak");
+    let mails: Vec<_> = std::fs::read_dir(s.root.join("reports"))
+        .unwrap()
+        .flatten()
+        .collect();
+    assert_eq!(
+        mails.len(),
+        1,
+        "no mail server: the alert is written as one .eml file"
+    );
+}

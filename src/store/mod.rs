@@ -139,7 +139,7 @@ pub struct NightCounts {
     pub last_recorded_unix: Option<f64>,
 }
 
-pub const SCHEMA_VERSION: i64 = 3;
+pub const SCHEMA_VERSION: i64 = 4;
 
 const MIGRATIONS: &[&str] = &[
     // 1: frames, their stars and rejected detections, and a key-value table.
@@ -209,6 +209,14 @@ const MIGRATIONS: &[&str] = &[
         next_attempt_unix REAL NOT NULL,
         last_error TEXT,
         done_unix REAL
+     );",
+    // 4: live alerts sent, which also carry the rate limit across restarts.
+    "CREATE TABLE alerts (
+        id INTEGER PRIMARY KEY,
+        night TEXT NOT NULL,
+        kind TEXT NOT NULL,
+        created_unix REAL NOT NULL,
+        message TEXT NOT NULL
      );",
 ];
 
@@ -870,6 +878,67 @@ impl Store {
             )
             .map(|_| ())
             .map_err(|e| self.err(e))
+    }
+
+    /// When an alert of `kind` last went out, and how many went out for `night`.
+    pub fn alert_history(
+        &self,
+        night: &str,
+        kind: &str,
+    ) -> Result<(Option<f64>, usize), StoreError> {
+        let last: Option<f64> = self
+            .conn
+            .query_row(
+                "SELECT MAX(created_unix) FROM alerts WHERE kind = ?1",
+                params![kind],
+                |r| r.get(0),
+            )
+            .map_err(|e| self.err(e))?;
+        let count: i64 = self
+            .conn
+            .query_row(
+                "SELECT COUNT(*) FROM alerts WHERE night = ?1",
+                params![night],
+                |r| r.get(0),
+            )
+            .map_err(|e| self.err(e))?;
+        Ok((last, count as usize))
+    }
+
+    pub fn add_alert(
+        &self,
+        night: &str,
+        kind: &str,
+        message: &str,
+        now_unix: f64,
+    ) -> Result<(), StoreError> {
+        self.conn
+            .execute(
+                "INSERT INTO alerts (night, kind, created_unix, message) VALUES (?1, ?2, ?3, ?4)",
+                params![night, kind, now_unix, message],
+            )
+            .map(|_| ())
+            .map_err(|e| self.err(e))
+    }
+
+    /// Verdicts of one night-target-filter group, oldest first.
+    pub fn group_verdicts(
+        &self,
+        night: &str,
+        target: Option<&str>,
+        filter: Option<&str>,
+    ) -> Result<Vec<String>, StoreError> {
+        let mut st = self
+            .conn
+            .prepare(
+                "SELECT verdict FROM frames WHERE night = ?1 AND target IS ?2 AND filter IS ?3
+                 AND verdict IS NOT NULL ORDER BY COALESCE(time_unix, recorded_at), id",
+            )
+            .map_err(|e| self.err(e))?;
+        let rows = st
+            .query_map(params![night, target, filter], |r| r.get(0))
+            .map_err(|e| self.err(e))?;
+        rows.collect::<Result<_, _>>().map_err(|e| self.err(e))
     }
 
     pub fn set_meta(&self, key: &str, value: &str) -> Result<(), StoreError> {

@@ -7,6 +7,7 @@
 //! This module reads the wall clock and the file system; measurement and recording live
 //! in `pipeline` and `store`.
 
+pub mod alerts;
 pub mod patterns;
 pub mod settle;
 
@@ -147,6 +148,153 @@ struct Shared {
     store: Mutex<Store>,
     options: RecordOptions,
     judging: Judging,
+    config: Config,
+}
+
+/// Record an alert and, when mail is set up, queue and send it. Rate-limited per kind
+/// and per night (see `alerts`). Returns what happened, for the log.
+fn raise_alert(
+    store: &Store,
+    config: &Config,
+    night: &str,
+    kind: &str,
+    message: &str,
+) -> Option<String> {
+    let now = unix_now();
+    let limits = config.alerts.limits();
+    let (last, tonight) = store.alert_history(night, kind).ok()?;
+    if !alerts::allowed(&limits, now, last, tonight) {
+        return None;
+    }
+    store.add_alert(night, kind, message, now).ok()?;
+    let mailed = if config.alerts.enabled && !config.mail.to.is_empty() {
+        let sent = crate::mail::MailSettings::from_config(config).and_then(|s| {
+            crate::mail::compose_note(
+                &s,
+                &format!("subwatch alert ({kind}), night {night}"),
+                message,
+            )
+        });
+        match sent {
+            Ok(c) => {
+                let _ = store.enqueue_mail(&c, now);
+                let _ = crate::morning::flush(store, config, now);
+                " (mailed)"
+            }
+            Err(e) => {
+                tracing::warn!("alert not mailed: {e}");
+                ""
+            }
+        }
+    } else {
+        ""
+    };
+    Some(format!("alert {kind}: {message}{mailed}"))
+}
+
+/// Once a minute: frames stopped arriving, disk space, the scheduled summary, the outbox.
+fn minute_checks(shared: &Shared) {
+    let config = &shared.config;
+    let now = unix_now();
+    let tz = config.timezone();
+    let Some(night) = crate::sky::night_label(now, tz) else {
+        return;
+    };
+    let store = shared.store.lock().unwrap_or_else(|p| p.into_inner());
+    let limits = config.alerts.limits();
+    let dark = config.site_position().map(|(lat, lon, _)| {
+        crate::sky::sun_altitude(crate::sky::julian_date(now), lat, lon) < -18.0
+    });
+    if let Ok(counts) = store.night_counts(&night) {
+        if let Some(msg) = alerts::frames_stopped(&limits, now, counts.last_recorded_unix, dark) {
+            if let Some(line) = raise_alert(&store, config, &night, "frames_stopped", &msg) {
+                tracing::warn!("{line}");
+            }
+        }
+    }
+    for folder in &config.watch.folders {
+        if let Some(free) = free_bytes(folder) {
+            if let Some(msg) = alerts::low_disk(&limits, &folder.display().to_string(), free) {
+                if let Some(line) = raise_alert(&store, config, &night, "low_disk", &msg) {
+                    tracing::warn!("{line}");
+                }
+            }
+        }
+    }
+    summary_if_due(&store, config, now);
+    if let Err(e) = crate::morning::flush(&store, config, now) {
+        tracing::warn!("outbox: {e}");
+    }
+}
+
+/// Free bytes on the file system holding `folder`.
+fn free_bytes(folder: &Path) -> Option<u64> {
+    let c = std::ffi::CString::new(folder.as_os_str().as_encoded_bytes()).ok()?;
+    let mut st: libc::statvfs = unsafe { std::mem::zeroed() };
+    // SAFETY: a valid C string and an out-pointer to a zeroed struct.
+    let rc = unsafe { libc::statvfs(c.as_ptr(), &mut st) };
+    (rc == 0).then(|| st.f_bavail as u64 * st.f_frsize as u64)
+}
+
+/// The morning summary of the night that just ended, once, at `summary_time` ("HH:MM"
+/// local) or 30 minutes after astronomical dawn ("dawn", needs the site).
+fn summary_if_due(store: &Store, config: &Config, now: f64) {
+    let Some(when) = config.mail.summary_time.as_deref() else {
+        return;
+    };
+    let tz = config.timezone();
+    let Some(night) = crate::sky::night_label(now, tz) else {
+        return;
+    };
+    let key = format!("summary:{night}");
+    if store.meta(&key).ok().flatten().is_some() {
+        return;
+    }
+    let local = chrono::DateTime::from_timestamp(now as i64, 0).map(|d| d.with_timezone(&tz));
+    let Some(local) = local else { return };
+    use chrono::Timelike;
+    let minutes_now = local.hour() * 60 + local.minute();
+    // The morning belongs to the night only before local noon.
+    if minutes_now >= 12 * 60 {
+        return;
+    }
+    let due = if when == "dawn" {
+        let Some((lat, lon, _)) = config.site_position() else {
+            return;
+        };
+        let evening = now - 86_400.0 * 0.75;
+        match crate::sky::sun_crossings(evening, -18.0, lat, lon).1 {
+            Some(dawn) => now >= dawn + 1800.0,
+            None => false,
+        }
+    } else {
+        let mut parts = when.split(':');
+        let (h, m): (u32, u32) = match (
+            parts.next().and_then(|x| x.parse().ok()),
+            parts.next().and_then(|x| x.parse().ok()),
+        ) {
+            (Some(h), Some(m)) => (h, m),
+            _ => return,
+        };
+        minutes_now >= h * 60 + m
+    };
+    if !due {
+        return;
+    }
+    // The store is locked by the caller; prepare reads it through a second connection.
+    let result = Store::open(&config.store.path)
+        .map_err(crate::morning::MorningError::from)
+        .and_then(|mut s| {
+            let p = crate::morning::prepare(&mut s, config, &night)?;
+            crate::morning::queue_mail(&s, config, &p, now)
+        });
+    match result {
+        Ok(_) => {
+            let _ = store.set_meta(&key, &now.to_string());
+            tracing::info!("morning summary of {night} queued");
+        }
+        Err(e) => tracing::warn!("morning summary of {night}: {e}"),
+    }
 }
 
 /// Measure and record one file on a worker thread. Returns what to log.
@@ -198,6 +346,22 @@ fn process(shared: &Shared, path: &Path) -> Option<String> {
     match store.record_returning_id(&record, unix_now()) {
         Ok(Some(id)) => {
             let verdict = judge_in_store(&store, &record, id, &shared.judging);
+            if let (Some(night), true) = (
+                record.night.as_deref(),
+                verdict.as_ref().is_ok_and(|v| v.is_some()),
+            ) {
+                let verdicts = store
+                    .group_verdicts(night, record.target.as_deref(), record.filter.as_deref())
+                    .unwrap_or_default();
+                if let Some(msg) = alerts::reject_streak(&shared.config.alerts.limits(), &verdicts)
+                {
+                    if let Some(line) =
+                        raise_alert(&store, &shared.config, night, "reject_streak", &msg)
+                    {
+                        tracing::warn!("{line}");
+                    }
+                }
+            }
             Some(match verdict {
                 Ok(Some(v)) => format!("{line} verdict={v}"),
                 Ok(None) => line,
@@ -430,6 +594,7 @@ async fn daemon(mut config: Config, workers: usize) -> Result<(), WatchError> {
             site: config.site_position(),
             lists_folder,
         },
+        config: config.clone(),
     });
 
     // File events: notify runs its own thread and only forwards paths.
@@ -550,6 +715,7 @@ async fn daemon(mut config: Config, workers: usize) -> Result<(), WatchError> {
     let mut rescan = tokio::time::interval(Duration::from_secs_f64(rescan_every));
     rescan.tick().await;
     let mut heartbeat = tokio::time::interval(Duration::from_secs(2));
+    let mut minute = tokio::time::interval(Duration::from_secs(60));
     let mut sigterm = tokio::signal::unix::signal(tokio::signal::unix::SignalKind::terminate())
         .map_err(WatchError::Runtime)?;
     let mut sigint = tokio::signal::unix::signal(tokio::signal::unix::SignalKind::interrupt())
@@ -567,6 +733,10 @@ async fn daemon(mut config: Config, workers: usize) -> Result<(), WatchError> {
                 for p in scan(&config) {
                     consider(p, &mut tracker, &recorded, &in_flight, &ready, clock());
                 }
+            }
+            _ = minute.tick() => {
+                let shared = shared.clone();
+                let _ = tokio::task::spawn_blocking(move || minute_checks(&shared)).await;
             }
             _ = heartbeat.tick() => {
                 let state = serde_json::json!({

@@ -1,0 +1,95 @@
+//! Live alerts: deciding when something that happened tonight is worth a mail now, with
+//! a rate limit so a bad night sends a handful of mails, not hundreds. Pure decisions;
+//! the daemon supplies the facts and sends.
+
+/// Limits from the configuration.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct AlertLimits {
+    /// Frames stopped arriving for this long (inside the dark window) → alert.
+    pub stopped_minutes: f64,
+    /// This many rejected frames in a row (same target and filter) → alert.
+    pub reject_streak: usize,
+    /// Less free space than this on a watched folder's file system → alert.
+    pub min_free_gb: f64,
+    /// The same kind of alert at most once per this many minutes…
+    pub repeat_minutes: f64,
+    /// …and at most this many alerts per night in all.
+    pub max_per_night: usize,
+}
+
+impl Default for AlertLimits {
+    fn default() -> Self {
+        AlertLimits {
+            stopped_minutes: 20.0,
+            reject_streak: 3,
+            min_free_gb: 5.0,
+            repeat_minutes: 60.0,
+            max_per_night: 6,
+        }
+    }
+}
+
+/// Whether an alert of one kind may go now, given when that kind last went and how many
+/// went tonight.
+pub fn allowed(
+    limits: &AlertLimits,
+    now: f64,
+    last_of_kind: Option<f64>,
+    sent_tonight: usize,
+) -> bool {
+    sent_tonight < limits.max_per_night
+        && last_of_kind.is_none_or(|t| now - t >= 60.0 * limits.repeat_minutes)
+}
+
+/// Frames stopped: the last frame is older than the limit, frames did arrive tonight, and
+/// the sky is dark (when the site is known; `dark` None means unknown, taken as dark).
+pub fn frames_stopped(
+    limits: &AlertLimits,
+    now: f64,
+    last_frame: Option<f64>,
+    dark: Option<bool>,
+) -> Option<String> {
+    let last = last_frame?;
+    let idle = (now - last) / 60.0;
+    (idle >= limits.stopped_minutes && dark != Some(false)).then(|| {
+        format!("no new frame for {idle:.0} minutes (the capture program or the camera may have stopped)")
+    })
+}
+
+/// A streak of rejections at the end of `verdicts` (oldest first).
+pub fn reject_streak(limits: &AlertLimits, verdicts: &[String]) -> Option<String> {
+    let n = limits.reject_streak.max(1);
+    (verdicts.len() >= n && verdicts[verdicts.len() - n..].iter().all(|v| v == "reject"))
+        .then(|| format!("the last {n} frames were all rejected (clouds, dew, focus or tracking)"))
+}
+
+/// Low disk space on a watched folder.
+pub fn low_disk(limits: &AlertLimits, folder: &str, free_bytes: u64) -> Option<String> {
+    let gb = free_bytes as f64 / 1e9;
+    (gb < limits.min_free_gb).then(|| format!("only {gb:.1} GB free where {folder} is"))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn rate_limit_and_triggers() {
+        let l = AlertLimits::default();
+        assert!(allowed(&l, 1000.0, None, 0));
+        assert!(!allowed(&l, 1000.0, Some(900.0), 0), "within the hour");
+        assert!(allowed(&l, 5000.0, Some(900.0), 0));
+        assert!(!allowed(&l, 5000.0, None, 6), "nightly cap");
+        assert!(frames_stopped(&l, 10_000.0, Some(10_000.0 - 25.0 * 60.0), Some(true)).is_some());
+        assert!(
+            frames_stopped(&l, 10_000.0, Some(10_000.0 - 25.0 * 60.0), Some(false)).is_none(),
+            "daylight"
+        );
+        assert!(frames_stopped(&l, 10_000.0, Some(10_000.0 - 5.0 * 60.0), None).is_none());
+        let v = |s: &[&str]| s.iter().map(|x| x.to_string()).collect::<Vec<_>>();
+        assert!(reject_streak(&l, &v(&["ok", "reject", "reject", "reject"])).is_some());
+        assert!(reject_streak(&l, &v(&["reject", "ok", "reject", "reject"])).is_none());
+        assert!(low_disk(&l, "/srv", 2_000_000_000).is_some());
+        assert!(low_disk(&l, "/srv", 50_000_000_000).is_none());
+    }
+}
