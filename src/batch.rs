@@ -139,11 +139,13 @@ pub fn analyse_records(
                 let pos = measured.iter().position(|&m| m == i);
                 let fr = pos.map(|p| &result.frames[p]);
                 let metrics = r.metrics.as_ref().filter(|_| r.status == FrameStatus::Ok);
-                FrameFacts::from_metrics(
+                let mut facts = FrameFacts::from_metrics(
                     metrics,
                     fr.and_then(|f| f.transparency_loss_mag),
                     fr.map(|f| f.registered),
-                )
+                );
+                facts.sun_alt_deg = sky_of(r, site).map(|s| s.sun_alt_deg);
+                facts
             })
             .collect();
         let judged = judge_group_with(&facts, rules);

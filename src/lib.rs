@@ -8,6 +8,7 @@ pub mod batch;
 pub mod buffer;
 pub mod config;
 pub mod contract;
+pub mod demo;
 pub mod frame;
 pub mod mail;
 pub mod measure;

@@ -119,6 +119,13 @@ enum Command {
         #[arg(long, allow_hyphen_values = true)]
         dec: Option<f64>,
     },
+    /// A whole invented night, end to end: frames land in a watched folder, the daemon
+    /// measures and judges them, and the morning summary is written (no setup needed).
+    Demo {
+        /// Where to put it all (created; an earlier demo's folder is replaced).
+        #[arg(long, default_value = "subwatch-demo")]
+        out: PathBuf,
+    },
     /// Render a synthetic night of frames with known events into a folder.
     RenderNight {
         #[arg(long)]
@@ -282,6 +289,7 @@ fn run(cli: Cli) -> Result<ExitCode> {
             json,
             send,
         } => report_command(&config, night, json, send),
+        Command::Demo { out } => demo_command(&out),
         Command::Outbox { config, now } => {
             let cfg = subwatch::config::load(&config)?;
             let store = subwatch::store::Store::open(&cfg.store.path)?;
@@ -463,6 +471,88 @@ fn render_night_command(
     let names: Vec<&str> = frames.iter().map(|f| f.name.as_str()).collect();
     let doc = serde_json::json!({"frames": names, "anomalies": truth});
     std::fs::write(out.join("truth.json"), serde_json::to_string_pretty(&doc)?)?;
+    Ok(ExitCode::SUCCESS)
+}
+
+fn demo_command(out: &std::path::Path) -> Result<ExitCode> {
+    let terminal = std::io::IsTerminal::is_terminal(&std::io::stderr());
+    let mut last = String::new();
+    let mut progress = |stage: &str, done: usize, total: usize| {
+        let width = 30;
+        let filled = (done * width)
+            .checked_div(total)
+            .unwrap_or(width)
+            .min(width);
+        let line = format!(
+            "[{}{}] {done}/{total} {stage}",
+            "#".repeat(filled),
+            ".".repeat(width - filled)
+        );
+        if terminal {
+            eprint!("\r{line:<70}");
+        } else if stage != last {
+            eprintln!("{stage}");
+        }
+        last = stage.to_string();
+    };
+    let outcome = subwatch::demo::run(out, &mut progress)?;
+    if terminal {
+        eprintln!();
+    }
+    let doc = &outcome.doc;
+    let count = |v: subwatch::rules::Verdict| doc.frames.iter().filter(|f| f.verdict == v).count();
+    println!(
+        "Night {} at the Kestrel Ridge Observatory (invented): {} frames in {:.0} s",
+        outcome.night,
+        doc.frames.len(),
+        outcome.seconds
+    );
+    println!(
+        "  verdicts: {} ok, {} warn, {} reject",
+        count(subwatch::rules::Verdict::Ok),
+        count(subwatch::rules::Verdict::Warn),
+        count(subwatch::rules::Verdict::Reject)
+    );
+    let mut reasons: std::collections::BTreeMap<&str, usize> = Default::default();
+    for f in &doc.frames {
+        for r in &f.reasons {
+            *reasons.entry(r.as_str()).or_default() += 1;
+        }
+    }
+    println!(
+        "  reasons: {}",
+        reasons
+            .iter()
+            .map(|(r, n)| format!("{r} {n}"))
+            .collect::<Vec<_>>()
+            .join(", ")
+    );
+    let mut kinds: std::collections::BTreeMap<String, usize> = Default::default();
+    for a in &doc.anomalies {
+        let k = serde_json::to_value(a.kind)?
+            .as_str()
+            .unwrap_or_default()
+            .to_string();
+        let cosmic = a.detail.get("cosmic_ray").and_then(|v| v.as_bool()) == Some(true);
+        *kinds
+            .entry(if cosmic { "cosmic ray".into() } else { k })
+            .or_default() += 1;
+    }
+    println!(
+        "  anomalies: {}",
+        kinds
+            .iter()
+            .map(|(k, n)| format!("{k} {n}"))
+            .collect::<Vec<_>>()
+            .join(", ")
+    );
+    println!("Open:");
+    println!("  report  {}", outcome.html.display());
+    println!("  frames  {}", outcome.csv.display());
+    println!("  night   {}", outcome.json.display());
+    for m in &outcome.mails {
+        println!("  mail    {}", m.display());
+    }
     Ok(ExitCode::SUCCESS)
 }
 

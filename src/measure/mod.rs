@@ -919,10 +919,12 @@ fn measure_candidate(
     Outcome::Fitted(FittedStar {
         fit,
         peak,
-        blended: c.blended
-            || !others
-                .iter()
-                .all(|&(ox, oy)| (ox - fx).hypot(oy - fy) > 1.5 * fwhm_guess + 2.0),
+        // Another detection inside the flux aperture (2.5 × FWHM) makes the aperture sum
+        // not this star's alone. Sharing a detection component with a star farther away
+        // (bright stars' components reach far) does not.
+        blended: others
+            .iter()
+            .any(|&(ox, oy)| (ox - fx).hypot(oy - fy) <= 2.5 * fwhm_guess + 2.0),
     })
 }
 

@@ -42,6 +42,8 @@ pub struct NightPlan {
     pub flash_frame: Option<usize>,
     pub new_source: bool,
     pub red_star: bool,
+    /// From this frame on, the sky brightens as dawn comes (twilight).
+    pub twilight_from: Option<usize>,
 }
 
 impl NightPlan {
@@ -71,6 +73,7 @@ impl NightPlan {
             flash_frame: Some(17),
             new_source: false,
             red_star: false,
+            twilight_from: None,
         }
     }
 }
@@ -344,7 +347,13 @@ pub fn render_night(plan: &NightPlan) -> (Vec<NightFrame>, Vec<TrueAnomaly>) {
             fwhm_px: fwhm,
             eccentricity: ecc,
             angle_deg: 35.0,
-            sky_e: if cloud { 1400.0 } else { 800.0 },
+            sky_e: (if cloud { 1400.0 } else { 800.0 })
+                * match plan.twilight_from {
+                    // Twilight sky grows roughly tenfold every 20 minutes (common practice
+                    // for the last hour before sunrise); a factor of 2.5 per frame here.
+                    Some(f) if i >= f => 2.5f64.powi((i - f + 1) as i32),
+                    _ => 1.0,
+                },
             gradient: (0.1, 0.05),
             cosmic_rays: cosmic,
             bayer: plan.bayer,

@@ -552,6 +552,12 @@ fn record_file_error(identity: Identity, reason: &str) -> crate::store::FrameRec
 
 /// Run the daemon until SIGTERM or SIGINT.
 pub fn run(config: Config) -> Result<(), WatchError> {
+    run_until(config, Arc::new(AtomicBool::new(false)))
+}
+
+/// Run the daemon until SIGTERM, SIGINT, or `stop` becoming true (the demo's way to end
+/// it); frames in flight are finished either way.
+pub fn run_until(config: Config, stop: Arc<AtomicBool>) -> Result<(), WatchError> {
     let workers = if config.watch.workers == 0 {
         std::thread::available_parallelism().map_or(2, |n| n.get())
     } else {
@@ -563,10 +569,14 @@ pub fn run(config: Config) -> Result<(), WatchError> {
         .enable_all()
         .build()
         .map_err(WatchError::Runtime)?;
-    runtime.block_on(daemon(config, workers))
+    runtime.block_on(daemon(config, workers, stop))
 }
 
-async fn daemon(mut config: Config, workers: usize) -> Result<(), WatchError> {
+async fn daemon(
+    mut config: Config,
+    workers: usize,
+    stop: Arc<AtomicBool>,
+) -> Result<(), WatchError> {
     // One spelling per file: events, scans and the store all see canonical paths.
     for folder in config.watch.folders.iter_mut() {
         *folder = std::fs::canonicalize(&*folder).map_err(|e| WatchError::Notify {
@@ -770,6 +780,9 @@ async fn daemon(mut config: Config, workers: usize) -> Result<(), WatchError> {
                 }
             }
             _ = ticker.tick() => {
+                if stop.load(Ordering::Relaxed) {
+                    break;
+                }
                 if overflow.swap(false, Ordering::Relaxed) {
                     // Events were dropped: the folders themselves are the truth.
                     for p in scan(&config) {

@@ -1,0 +1,91 @@
+//! The demo as a newcomer runs it: `subwatch demo` with nothing configured. Its night
+//! holds every situation the tool is for, and the summary must find them all.
+
+mod common;
+
+use std::process::Command;
+
+#[test]
+fn the_demo_night_finds_everything_it_holds() {
+    let dir = tempfile::tempdir().unwrap();
+    let out = dir.path().join("demo");
+    let run = Command::new(common::binary())
+        .arg("demo")
+        .arg("--out")
+        .arg(&out)
+        .output()
+        .unwrap();
+    let stdout = String::from_utf8_lossy(&run.stdout);
+    assert!(
+        run.status.success(),
+        "{stdout}\n{}",
+        String::from_utf8_lossy(&run.stderr)
+    );
+    println!("{stdout}");
+    let doc: serde_json::Value =
+        serde_json::from_slice(&std::fs::read(out.join("reports/night-2026-03-14.json")).unwrap())
+            .unwrap();
+    let frames = doc["frames"].as_array().unwrap();
+    assert_eq!(frames.len(), 50);
+    let has_reason = |r: &str| {
+        frames
+            .iter()
+            .any(|f| f["reasons"].as_array().unwrap().iter().any(|x| x == r))
+    };
+    for reason in [
+        "fwhm_high",
+        "eccentricity_high",
+        "transparency_low",
+        "twilight",
+        "trail",
+    ] {
+        assert!(has_reason(reason), "a frame is flagged {reason}");
+    }
+    let ok = frames.iter().filter(|f| f["verdict"] == "ok").count();
+    assert!(ok >= 25, "good frames stay good: {ok}");
+    let anomalies = doc["anomalies"].as_array().unwrap();
+    let kinds: std::collections::BTreeSet<&str> = anomalies
+        .iter()
+        .map(|a| a["kind"].as_str().unwrap())
+        .collect();
+    for kind in [
+        "transient",
+        "trail",
+        "moving",
+        "variable",
+        "color",
+        "hot_pixel",
+        "new_source",
+    ] {
+        assert!(
+            kinds.contains(kind),
+            "the summary finds a {kind}: {kinds:?}"
+        );
+    }
+    let cosmic = anomalies
+        .iter()
+        .filter(|a| a["detail"]["cosmic_ray"] == true)
+        .count();
+    assert!(cosmic >= 10, "cosmic rays told apart: {cosmic}");
+    // The files a newcomer opens.
+    let html = std::fs::read_to_string(out.join("reports/night-2026-03-14.html")).unwrap();
+    assert!(
+        html.contains("<img src=\"data:image/png;base64,"),
+        "plots inside the HTML"
+    );
+    assert!(html.contains("new_source"));
+    let mails: Vec<_> = std::fs::read_dir(out.join("reports"))
+        .unwrap()
+        .flatten()
+        .filter(|e| e.path().extension().is_some_and(|x| x == "eml"))
+        .collect();
+    assert!(!mails.is_empty(), "the mail, as an .eml file");
+    // Running it again replaces the earlier demo's folder.
+    let again = Command::new(common::binary())
+        .arg("demo")
+        .arg("--out")
+        .arg(&out)
+        .output()
+        .unwrap();
+    assert!(again.status.success());
+}
