@@ -288,9 +288,16 @@ pub fn measure_image(
         1
     };
 
+    // A detection's matched-filter significance is about 1.25 times the SNR it can reach
+    // in the 1-FWHM aperture (PSF-weighted against flat-aperture SNR of a Gaussian star:
+    // 1/sqrt(4π) against 0.94/sqrt(π·2.355²), analytic), so candidates below 0.9 × the
+    // reporting limit would be dropped after their fit anyway; they are not fitted, but
+    // stay in the neighbour grid so their light is still masked out of other stamps.
+    let fit_floor = 0.9 * params.min_snr;
     let outcomes: Vec<Outcome> = candidates
         .par_iter()
         .enumerate()
+        .filter(|(_, c)| c.significance >= fit_floor)
         .map(|(i, c)| {
             measure_candidate(
                 &pixels,
