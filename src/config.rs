@@ -126,13 +126,28 @@ impl Default for MeasureConfig {
     }
 }
 
-#[derive(Debug, Clone, Default, Deserialize)]
+#[derive(Debug, Clone, Deserialize)]
 #[serde(deny_unknown_fields, default)]
 pub struct ActionsConfig {
     /// Write per-night, per-target, per-filter lists of accepted frames.
     pub accepted_lists: bool,
     /// Where the lists go (default: beside the store).
     pub lists_folder: Option<PathBuf>,
+    /// Move frames judged "reject" into a folder of this name beside them (off by
+    /// default; never on by surprise). Such folders are not watched.
+    pub move_rejected: bool,
+    pub rejected_folder: String,
+}
+
+impl Default for ActionsConfig {
+    fn default() -> Self {
+        ActionsConfig {
+            accepted_lists: false,
+            lists_folder: None,
+            move_rejected: false,
+            rejected_folder: "rejected".into(),
+        }
+    }
 }
 
 #[derive(Debug, Clone, Default, Deserialize)]
@@ -366,7 +381,15 @@ fn schema() -> BTreeMap<&'static str, &'static [&'static str]> {
             ][..],
         ),
         ("measure", &["max_pixels", "detect_sigma"][..]),
-        ("actions", &["accepted_lists", "lists_folder"][..]),
+        (
+            "actions",
+            &[
+                "accepted_lists",
+                "lists_folder",
+                "move_rejected",
+                "rejected_folder",
+            ][..],
+        ),
         (
             "mail",
             &[
@@ -470,6 +493,17 @@ impl Config {
         }
         if self.watch.queue_limit == 0 {
             bad("watch", "queue_limit", "must be at least 1".into());
+        }
+        if self.actions.move_rejected
+            && (self.actions.rejected_folder.is_empty()
+                || self.actions.rejected_folder.contains(['/', '\\'])
+                || self.actions.rejected_folder.starts_with('.'))
+        {
+            bad(
+                "actions",
+                "rejected_folder",
+                "must be a plain folder name (no slashes, not hidden)".into(),
+            );
         }
         if self.watch.include.is_empty() {
             bad(
@@ -620,6 +654,12 @@ impl Config {
             .iter()
             .filter_map(|t| crate::rules::RuleSpec::deserialize(toml::Value::Table(t.clone())).ok())
             .collect()
+    }
+
+    /// Folder names never looked into: calibration folders are measured as skipped, but
+    /// the folder rejected frames are moved to is not looked at all.
+    pub fn ignored_folder(&self, name: &str) -> bool {
+        self.actions.move_rejected && name.eq_ignore_ascii_case(&self.actions.rejected_folder)
     }
 
     /// The site's position (latitude, east longitude, elevation), when configured.

@@ -498,3 +498,63 @@ fn a_streak_of_rejections_raises_one_alert() {
         "no mail server: the alert is written as one .eml file"
     );
 }
+
+#[test]
+fn rejected_frames_can_be_moved_aside_when_asked() {
+    use subwatch::sim::night::{render_night, NightPlan};
+    let s = site("");
+    let mut cfg = std::fs::read_to_string(&s.config).unwrap();
+    cfg.push_str("[actions]\nmove_rejected = true\n");
+    std::fs::write(&s.config, cfg).unwrap();
+    let mut plan = NightPlan::full(13);
+    plan.frames = 6;
+    plan.flip_at = None;
+    plan.gust_frames = vec![5];
+    plan.cloud_frames.clear();
+    plan.trail_frames.clear();
+    plan.focus_drift_from = None;
+    let (frames, _) = render_night(&plan);
+    let d = Daemon::start(&s.config);
+    std::thread::sleep(Duration::from_millis(300));
+    let conn = rusqlite::Connection::open(&s.db).unwrap();
+    for (k, f) in frames.iter().enumerate() {
+        write_frame(
+            &s.capture.join(&f.name),
+            &f.pixels,
+            Encoding::Unsigned16,
+            &f.keys,
+        )
+        .unwrap();
+        let start = Instant::now();
+        while start.elapsed() < Duration::from_secs(20) {
+            let judged: i64 = conn
+                .query_row(
+                    "SELECT COUNT(*) FROM frames WHERE verdict IS NOT NULL",
+                    [],
+                    |r| r.get(0),
+                )
+                .unwrap_or(0);
+            if judged as usize > k {
+                break;
+            }
+            std::thread::sleep(Duration::from_millis(50));
+        }
+    }
+    // Let a rescan pass (every 2 s here): the moved frame must not come back as new.
+    std::thread::sleep(Duration::from_millis(2500));
+    d.kill9();
+    let gust = &frames[5].name;
+    assert!(!s.capture.join(gust).exists());
+    let moved = s.capture.join("rejected").join(gust);
+    assert!(moved.exists(), "moved to {}", moved.display());
+    let rows = recorded(&s.db);
+    assert_eq!(rows.len(), frames.len(), "{rows:?}");
+    assert!(
+        rows.iter().any(|r| r.0 == moved.to_string_lossy()),
+        "the store follows the move"
+    );
+    assert!(
+        frames[..5].iter().all(|f| s.capture.join(&f.name).exists()),
+        "accepted frames stay"
+    );
+}

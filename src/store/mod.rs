@@ -649,6 +649,17 @@ impl Store {
             .map_err(|e| self.err(e))
     }
 
+    /// A recorded frame's file moved (the rejected-frames action).
+    pub fn set_path(&self, id: i64, path: &str) -> Result<(), StoreError> {
+        self.conn
+            .execute(
+                "UPDATE frames SET path = ?2 WHERE id = ?1",
+                params![id, path],
+            )
+            .map(|_| ())
+            .map_err(|e| self.err(e))
+    }
+
     /// Record a frame's verdict and reasons.
     pub fn set_verdict(
         &self,

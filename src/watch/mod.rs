@@ -102,7 +102,7 @@ fn scan(config: &Config) -> Vec<PathBuf> {
             let Ok(ft) = e.file_type() else { continue };
             let name = e.file_name().to_string_lossy().into_owned();
             if ft.is_dir() {
-                if !name.starts_with('.') {
+                if !name.starts_with('.') && !config.ignored_folder(&name) {
                     stack.push(path);
                 }
             } else if ft.is_file()
@@ -149,6 +149,40 @@ struct Shared {
     options: RecordOptions,
     judging: Judging,
     config: Config,
+}
+
+/// Move a frame into `folder` (created): a rename on the same file system; across file
+/// systems a copy that is synced and compared byte for byte before the original is
+/// removed. An existing file of the same name is never replaced.
+pub fn move_file(src: &Path, folder: &Path) -> std::io::Result<PathBuf> {
+    std::fs::create_dir_all(folder)?;
+    let name = src
+        .file_name()
+        .ok_or_else(|| std::io::Error::other("no file name"))?;
+    let mut dest = folder.join(name);
+    let mut k = 1;
+    while dest.exists() {
+        dest = folder.join(format!("{}.{k}", name.to_string_lossy()));
+        k += 1;
+    }
+    match std::fs::rename(src, &dest) {
+        Ok(()) => Ok(dest),
+        Err(e) if e.raw_os_error() == Some(libc::EXDEV) => {
+            let part = dest.with_extension("part");
+            std::fs::copy(src, &part)?;
+            std::fs::File::open(&part)?.sync_all()?;
+            if std::fs::read(&part)? != std::fs::read(src)? {
+                let _ = std::fs::remove_file(&part);
+                return Err(std::io::Error::other(
+                    "the copy differs from the original; original kept",
+                ));
+            }
+            std::fs::rename(&part, &dest)?;
+            std::fs::remove_file(src)?;
+            Ok(dest)
+        }
+        Err(e) => Err(e),
+    }
 }
 
 /// Record an alert and, when mail is set up, queue and send it. Rate-limited per kind
@@ -346,6 +380,24 @@ fn process(shared: &Shared, path: &Path) -> Option<String> {
     match store.record_returning_id(&record, unix_now()) {
         Ok(Some(id)) => {
             let verdict = judge_in_store(&store, &record, id, &shared.judging);
+            let mut moved = String::new();
+            if shared.config.actions.move_rejected
+                && verdict
+                    .as_ref()
+                    .is_ok_and(|v| v.as_deref().is_some_and(|v| v.starts_with("reject")))
+            {
+                let folder = path
+                    .parent()
+                    .unwrap_or(Path::new("."))
+                    .join(&shared.config.actions.rejected_folder);
+                match move_file(path, &folder) {
+                    Ok(dest) => {
+                        let _ = store.set_path(id, &dest.to_string_lossy());
+                        moved = format!(" moved to {}", dest.display());
+                    }
+                    Err(e) => moved = format!(" (not moved: {e})"),
+                }
+            }
             if let (Some(night), true) = (
                 record.night.as_deref(),
                 verdict.as_ref().is_ok_and(|v| v.is_some()),
@@ -363,7 +415,7 @@ fn process(shared: &Shared, path: &Path) -> Option<String> {
                 }
             }
             Some(match verdict {
-                Ok(Some(v)) => format!("{line} verdict={v}"),
+                Ok(Some(v)) => format!("{line} verdict={v}{moved}"),
                 Ok(None) => line,
                 Err(e) => format!("{line} (verdict not recorded: {e})"),
             })
@@ -668,8 +720,16 @@ async fn daemon(
         // rescan leaves them.
         let hidden = config.watch.folders.iter().any(|f| {
             path.strip_prefix(f).is_ok_and(|rel| {
-                rel.components()
-                    .any(|c| c.as_os_str().to_string_lossy().starts_with('.'))
+                rel.parent()
+                    .into_iter()
+                    .flat_map(|p| p.components())
+                    .any(|c| {
+                        let name = c.as_os_str().to_string_lossy();
+                        name.starts_with('.') || config.ignored_folder(&name)
+                    })
+                    || rel
+                        .file_name()
+                        .is_some_and(|n| n.to_string_lossy().starts_with('.'))
             })
         });
         if hidden {
