@@ -172,6 +172,7 @@ pub fn analyse_records(
                 target: r.target.clone(),
                 filter: r.filter.clone(),
                 time_unix: r.time_unix,
+                exposure_s: r.header.as_ref().and_then(|h| h.exposure_s),
                 registered: fr.registered,
                 registration_rms_px: fr.registration_rms_px,
                 registration_transform: fr.transform,

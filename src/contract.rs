@@ -217,6 +217,8 @@ pub struct NightFrameRecord {
     pub filter: Option<String>,
     #[serde(serialize_with = "finite")]
     pub time_unix: Option<f64>,
+    #[serde(serialize_with = "finite")]
+    pub exposure_s: Option<f64>,
     pub registered: bool,
     #[serde(serialize_with = "finite")]
     pub registration_rms_px: Option<f64>,

@@ -80,6 +80,9 @@ enum Command {
         /// nights are compared for new sources).
         #[arg(long)]
         config: Option<PathBuf>,
+        /// Write the summary (HTML with plots and cutouts, CSV) into this folder.
+        #[arg(long)]
+        report: Option<PathBuf>,
     },
     /// The night document (frames with verdicts, anomalies) from the daemon's store;
     /// with --send, the morning summary (HTML and CSV in the report folder) by mail now.
@@ -282,7 +285,12 @@ fn run(cli: Cli) -> Result<ExitCode> {
             night,
             json,
         } => status_command(&config, night, json),
-        Command::Night { dir, json, config } => night_command(&dir, json, config.as_deref()),
+        Command::Night {
+            dir,
+            json,
+            config,
+            report,
+        } => night_command(&dir, json, config.as_deref(), report.as_deref()),
         Command::Report {
             config,
             night,
@@ -673,6 +681,7 @@ fn night_command(
     dir: &std::path::Path,
     json: bool,
     config: Option<&std::path::Path>,
+    report: Option<&std::path::Path>,
 ) -> Result<ExitCode> {
     let cfg = match config {
         Some(p) => Some(subwatch::config::load(p)?),
@@ -695,6 +704,23 @@ fn night_command(
     })?;
     if show {
         eprintln!();
+    }
+    if let Some(folder) = report {
+        let night = {
+            let mut counts: std::collections::BTreeMap<&str, usize> = Default::default();
+            for f in &doc.frames {
+                if let Some(n) = f.night.as_deref() {
+                    *counts.entry(n).or_default() += 1;
+                }
+            }
+            counts
+                .into_iter()
+                .max_by_key(|(_, c)| *c)
+                .map_or("night".to_string(), |(n, _)| n.to_string())
+        };
+        let prepared = subwatch::morning::write_files(doc.clone(), &night, folder)?;
+        eprintln!("report: {}", prepared.html_path.display());
+        eprintln!("frames: {}", prepared.csv_path.display());
     }
     print_night(&doc, json)
 }

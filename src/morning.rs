@@ -47,15 +47,19 @@ pub fn report_folder(c: &Config) -> PathBuf {
 /// Build the night's summary and write its HTML (images inside as data URIs) and CSV.
 pub fn prepare(store: &mut Store, c: &Config, night: &str) -> Result<Prepared, MorningError> {
     let records = store.night_records(night)?;
-    let exposures: std::collections::HashMap<String, f64> = records
-        .iter()
-        .filter_map(|r| Some((r.identity.path.clone(), r.header.as_ref()?.exposure_s?)))
-        .collect();
     let doc =
         crate::batch::analyse_records(&records, &c.rule_specs(), c.site_position(), Some(store))?;
-    let summary = report::summarise(night, &doc, &|f: &NightFrameRecord| {
-        exposures.get(&f.path).copied()
-    });
+    write_files(doc, night, &report_folder(c))
+}
+
+/// The summary, plots and cutouts of a night document, written as stand-alone HTML and
+/// CSV into `folder` (used for the store's nights and for `subwatch night --report`).
+pub fn write_files(
+    doc: NightDocument,
+    night: &str,
+    folder: &Path,
+) -> Result<Prepared, MorningError> {
+    let summary = report::summarise(night, &doc, &|f: &NightFrameRecord| f.exposure_s);
     let mut images = Vec::new();
     for (k, g) in summary.groups.iter().enumerate() {
         let frames: Vec<&NightFrameRecord> = doc
@@ -86,7 +90,7 @@ pub fn prepare(store: &mut Store, c: &Config, night: &str) -> Result<Prepared, M
             }
         }
     }
-    let folder = report_folder(c);
+    let folder = folder.to_path_buf();
     std::fs::create_dir_all(&folder).map_err(|source| MorningError::Write {
         path: folder.clone(),
         source,

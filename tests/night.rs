@@ -223,6 +223,23 @@ fn colour_night_finds_the_very_red_star() {
         "{red}"
     );
     assert!(red["ra_deg"].is_number() && red["dec_deg"].is_number());
+    // The batch command writes the same summary as the daemon's morning report.
+    let report = dir.path().join("report");
+    let out = Command::new(common::binary())
+        .arg("night")
+        .arg(dir.path())
+        .arg("--report")
+        .arg(&report)
+        .output()
+        .unwrap();
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let html = std::fs::read_to_string(report.join("night-2026-03-14.html")).unwrap();
+    assert!(html.contains("<td>color</td>") && html.contains("data:image/png;base64,"));
+    assert!(report.join("night-2026-03-14.csv").exists());
 }
 
 #[test]
