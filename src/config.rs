@@ -173,6 +173,8 @@ pub struct AlertsConfig {
     pub min_free_gb: f64,
     pub repeat_minutes: f64,
     pub max_per_night: usize,
+    /// Anomaly kinds worth an alert as soon as the night analysis finds them.
+    pub anomaly_kinds: Vec<String>,
 }
 
 impl Default for AlertsConfig {
@@ -185,6 +187,7 @@ impl Default for AlertsConfig {
             min_free_gb: l.min_free_gb,
             repeat_minutes: l.repeat_minutes,
             max_per_night: l.max_per_night,
+            anomaly_kinds: vec!["new_source".into(), "moving".into()],
         }
     }
 }
@@ -570,6 +573,24 @@ impl Config {
                 "detect_sigma",
                 "must be between 2 and 100".into(),
             );
+        }
+        const KINDS: [&str; 7] = [
+            "transient",
+            "trail",
+            "moving",
+            "variable",
+            "color",
+            "hot_pixel",
+            "new_source",
+        ];
+        for k in &self.alerts.anomaly_kinds {
+            if !KINDS.contains(&k.as_str()) {
+                bad(
+                    "alerts",
+                    "anomaly_kinds",
+                    format!("{k:?} is not one of {}", KINDS.join(", ")),
+                );
+            }
         }
         if let Some(sec) = &self.mail.security {
             if !["starttls", "tls", "none"].contains(&sec.as_str()) {

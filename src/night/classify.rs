@@ -450,6 +450,7 @@ pub fn analyse(frames: &[FrameInput], earlier: &[EarlierNight]) -> NightResult {
                 "position_angle_deg": rate.map(|r| r.1),
                 "rate_px_per_min": vx.hypot(vy) * 60.0,
                 "frames": pts.len(),
+                "instrumental_mag": median_f64(&pts.iter().map(|p| -2.5 * p.flux.max(1e-30).log10()).collect::<Vec<_>>()),
             }),
         ));
     }
@@ -504,7 +505,7 @@ pub fn analyse(frames: &[FrameInput], earlier: &[EarlierNight]) -> NightResult {
                 frames,
                 AnomalyKind::Transient,
                 vec![Detection { frame: o.frame, x: o.x, y: o.y }],
-                json!({"cosmic_ray": false, "reason": "PSF-shaped, in one frame only", "snr": o.snr, "flux_adu": o.flux, "fwhm_px": o.fwhm_px}),
+                json!({"cosmic_ray": false, "reason": "PSF-shaped, in one frame only", "snr": o.snr, "flux_adu": o.flux, "fwhm_px": o.fwhm_px, "instrumental_mag": -2.5 * o.flux.max(1e-30).log10()}),
             ));
         }
     }
@@ -633,6 +634,7 @@ pub fn analyse(frames: &[FrameInput], earlier: &[EarlierNight]) -> NightResult {
                     "false_alarm_probability": fap.min(1.0),
                     "frames": pts.len(),
                     "mean_instrumental_mag": mean_mag[k],
+                    "instrumental_mag": mean_mag[k],
                     "light_curve": pts.iter().zip(&terms).map(|(p, t)| json!({
                         "time_unix": frames[p.frame].time_unix,
                         "delta_mag": t.0,
@@ -686,7 +688,7 @@ pub fn analyse(frames: &[FrameInput], earlier: &[EarlierNight]) -> NightResult {
                     frames,
                     AnomalyKind::Color,
                     dets,
-                    json!({"color_rg_mag": a, "color_bg_mag": b, "z_rg": z1, "z_bg": z2, "field_rg_mag": m1, "field_bg_mag": m2,
+                    json!({"instrumental_mag": median_f64(&sources[s].points.iter().map(mag).collect::<Vec<_>>()), "color_rg_mag": a, "color_bg_mag": b, "z_rg": z1, "z_bg": z2, "field_rg_mag": m1, "field_bg_mag": m2,
                            "index": "-2.5 log10(R/G) and -2.5 log10(B/G), robust z-score against the field"}),
                 ));
             }

@@ -181,6 +181,11 @@ fn is_cosmic_ray(a: &AnomalyRecord) -> bool {
     a.detail.get("cosmic_ray").and_then(|v| v.as_bool()) == Some(true)
 }
 
+/// The anomaly's instrumental magnitude, when the analysis gave one.
+pub fn instrumental_mag(a: &AnomalyRecord) -> Option<f64> {
+    a.detail.get("instrumental_mag").and_then(|v| v.as_f64())
+}
+
 fn kind_name(a: &AnomalyRecord) -> String {
     serde_json::to_value(a.kind)
         .ok()
@@ -237,9 +242,11 @@ pub fn text(s: &Summary) -> String {
             .first()
             .map(|d| format!("{} x={:.1} y={:.1}", file_name(&d.path), d.x, d.y))
             .unwrap_or_default();
+        let mag =
+            instrumental_mag(a).map_or(String::new(), |m| format!(", mag {m:.2} (instrumental)"));
         let _ = writeln!(
             t,
-            "  {:<10} {pos}  in {} frame(s), first {}",
+            "  {:<10} {pos}{mag}  in {} frame(s), first {}",
             kind_name(a),
             a.detections.len(),
             one_line(&first)
@@ -312,7 +319,7 @@ pub fn html(s: &Summary, image: &dyn Fn(&str) -> Option<String>) -> String {
         .collect();
     let _ = write!(
         h,
-        "<h2>Anomalies</h2><p>{} listed; {} cosmic-ray hits not listed.</p><table><tr><th>kind</th><th>RA, Dec (J2000)</th><th>degrees</th><th>frames</th><th>first seen</th><th>cutout</th></tr>",
+        "<h2>Anomalies</h2><p>{} listed; {} cosmic-ray hits not listed. Magnitudes are instrumental (−2.5 log₁₀ of the flux in ADU).</p><table><tr><th>kind</th><th>RA, Dec (J2000)</th><th>degrees</th><th>mag</th><th>frames</th><th>first seen</th><th>cutout</th></tr>",
         notable.len(),
         s.anomalies.len() - notable.len()
     );
@@ -331,10 +338,11 @@ pub fn html(s: &Summary, image: &dyn Fn(&str) -> Option<String>) -> String {
         });
         let _ = write!(
             h,
-            "<tr><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{cut}</td></tr>",
+            "<tr><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{cut}</td></tr>",
             e(&kind_name(a)),
             e(&sexa),
             e(&deg),
+            instrumental_mag(a).map_or("-".into(), |m| format!("{m:.2}")),
             a.detections.len(),
             e(&first)
         );

@@ -916,6 +916,19 @@ impl Store {
         Ok((last, count as usize))
     }
 
+    /// Whether this exact alert (night, kind, message) was raised already.
+    pub fn alert_exists(&self, night: &str, kind: &str, message: &str) -> Result<bool, StoreError> {
+        self.conn
+            .query_row(
+                "SELECT 1 FROM alerts WHERE night = ?1 AND kind = ?2 AND message = ?3",
+                params![night, kind, message],
+                |_| Ok(()),
+            )
+            .optional()
+            .map(|r| r.is_some())
+            .map_err(|e| self.err(e))
+    }
+
     pub fn add_alert(
         &self,
         night: &str,

@@ -255,9 +255,72 @@ fn minute_checks(shared: &Shared) {
             }
         }
     }
+    anomaly_alerts(&store, config, &night);
     summary_if_due(&store, config, now);
     if let Err(e) = crate::morning::flush(&store, config, now) {
         tracing::warn!("outbox: {e}");
+    }
+}
+
+/// Run the night analysis over tonight's frames so far and alert on anomalies of the
+/// chosen kinds, each once (same kind and place).
+fn anomaly_alerts(store: &Store, config: &Config, night: &str) {
+    if config.alerts.anomaly_kinds.is_empty() {
+        return;
+    }
+    // Only when frames arrived since the last look.
+    let stamp = store
+        .night_counts(night)
+        .ok()
+        .and_then(|c| c.last_recorded_unix)
+        .unwrap_or(0.0);
+    let key = format!("anomaly_check:{night}");
+    if store
+        .meta(&key)
+        .ok()
+        .flatten()
+        .and_then(|v| v.parse::<f64>().ok())
+        == Some(stamp)
+    {
+        return;
+    }
+    let _ = store.set_meta(&key, &stamp.to_string());
+    let Ok(records) = store.night_records(night) else {
+        return;
+    };
+    if records.len() < 3 {
+        return;
+    }
+    let Ok(doc) = crate::batch::analyse_records(&records, &[], config.site_position(), None) else {
+        return;
+    };
+    for a in &doc.anomalies {
+        let kind = serde_json::to_value(a.kind)
+            .ok()
+            .and_then(|v| v.as_str().map(String::from))
+            .unwrap_or_default();
+        if !config.alerts.anomaly_kinds.contains(&kind)
+            || a.detail.get("cosmic_ray").and_then(|v| v.as_bool()) == Some(true)
+        {
+            continue;
+        }
+        let place = match (a.ra_deg, a.dec_deg) {
+            (Some(r), Some(d)) => format!("at {} (J2000)", crate::report::sexagesimal(r, d)),
+            _ => a.detections.first().map_or(String::new(), |d| {
+                format!("at x={:.0} y={:.0} of {}", d.x, d.y, d.path)
+            }),
+        };
+        let message = format!("{kind} {place}, seen in {} frame(s)", a.detections.len());
+        let alert_kind = format!("anomaly_{kind}");
+        if store
+            .alert_exists(night, &alert_kind, &message)
+            .unwrap_or(true)
+        {
+            continue;
+        }
+        if let Some(line) = raise_alert(store, config, night, &alert_kind, &message) {
+            tracing::warn!("{line}");
+        }
     }
 }
 
