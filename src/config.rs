@@ -416,6 +416,7 @@ fn schema() -> BTreeMap<&'static str, &'static [&'static str]> {
                 "min_free_gb",
                 "repeat_minutes",
                 "max_per_night",
+                "anomaly_kinds",
             ][..],
         ),
     ])
@@ -719,6 +720,14 @@ mod tests {
         assert_eq!(problems[0].line, Some(7));
         assert_eq!(problems[1].key, "watch.settle");
         assert_eq!(problems[1].line, Some(3));
+    }
+
+    #[test]
+    fn the_example_config_is_valid() {
+        // config/subwatch.toml documents every key; it must parse (folders aside).
+        let text = include_str!("../config/subwatch.toml");
+        let problems = parse(text, Path::new("/")).err().unwrap_or_default();
+        assert!(problems.is_empty(), "{problems:?}");
     }
 
     #[test]
