@@ -255,9 +255,10 @@ pub fn run_night(
             record_file(path, identity.clone(), mtime_unix, &options)
         }))
         .unwrap_or_else(|_| {
-            let mut r = record_file_placeholder(identity);
-            r.error = Some("internal error while measuring (a bug; please report it)".into());
-            r
+            FrameRecord::failed(
+                identity,
+                "internal error while measuring (a bug; please report it)",
+            )
         });
         records.push(rec);
         progress(k + 1, total);
@@ -268,21 +269,4 @@ pub fn run_night(
         config.site_position(),
         store,
     )
-}
-
-fn record_file_placeholder(identity: Identity) -> FrameRecord {
-    FrameRecord {
-        identity,
-        status: FrameStatus::Error,
-        error: None,
-        night: None,
-        target: None,
-        filter: None,
-        time_unix: None,
-        header: None,
-        metrics: None,
-        stars: Vec::new(),
-        rejected: Vec::new(),
-        wcs: None,
-    }
 }

@@ -93,6 +93,18 @@ fn anomaly(
     }
 }
 
+/// Every detection of a source, as anomaly detections.
+fn detections_of(s: &Source) -> Vec<Detection> {
+    s.points
+        .iter()
+        .map(|p| Detection {
+            frame: p.frame,
+            x: p.x,
+            y: p.y,
+        })
+        .collect()
+}
+
 fn distance_to_trail(t: &crate::measure::detect::Trail, x: f64, y: f64) -> f64 {
     let (dx, dy) = (t.x1 - t.x0, t.y1 - t.y0);
     let len2 = (dx * dx + dy * dy).max(1e-9);
@@ -614,15 +626,7 @@ pub fn analyse(frames: &[FrameInput], earlier: &[EarlierNight]) -> NightResult {
         let q = |f: f64| residuals[((residuals.len() - 1) as f64 * f).round() as usize];
         let amplitude = q(0.95) - q(0.05);
         if fap < 1e-3 && fap_without_worst < 1e-3 && amplitude > 0.05 {
-            let dets: Vec<Detection> = sources[s]
-                .points
-                .iter()
-                .map(|p| Detection {
-                    frame: p.frame,
-                    x: p.x,
-                    y: p.y,
-                })
-                .collect();
+            let dets: Vec<Detection> = detections_of(&sources[s]);
             anomalies.push(anomaly(
                 frames,
                 AnomalyKind::Variable,
@@ -675,15 +679,7 @@ pub fn analyse(frames: &[FrameInput], earlier: &[EarlierNight]) -> NightResult {
         for &(s, a, b) in &colours {
             let (z1, z2) = ((a - m1) / s1, (b - m2) / s2);
             if z1.abs() > 5.0 || z2.abs() > 5.0 {
-                let dets: Vec<Detection> = sources[s]
-                    .points
-                    .iter()
-                    .map(|p| Detection {
-                        frame: p.frame,
-                        x: p.x,
-                        y: p.y,
-                    })
-                    .collect();
+                let dets: Vec<Detection> = detections_of(&sources[s]);
                 anomalies.push(anomaly(
                     frames,
                     AnomalyKind::Color,
@@ -798,15 +794,7 @@ pub fn analyse(frames: &[FrameInput], earlier: &[EarlierNight]) -> NightResult {
             // Would that night have seen it? Its limit, moved to tonight's scale.
             let Some(m) = c.mag else { continue };
             if m + 0.75 < e.limit_mag + offset {
-                let dets: Vec<Detection> = sources[*s]
-                    .points
-                    .iter()
-                    .map(|p| Detection {
-                        frame: p.frame,
-                        x: p.x,
-                        y: p.y,
-                    })
-                    .collect();
+                let dets: Vec<Detection> = detections_of(&sources[*s]);
                 anomalies.push(anomaly(
                     frames,
                     AnomalyKind::NewSource,

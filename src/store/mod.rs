@@ -90,6 +90,26 @@ pub struct FrameRecord {
     pub wcs: Option<crate::frame::wcs::Wcs>,
 }
 
+impl FrameRecord {
+    /// A record of a file that could not be measured, with the reason.
+    pub fn failed(identity: Identity, reason: &str) -> Self {
+        FrameRecord {
+            identity,
+            status: FrameStatus::Error,
+            error: Some(reason.to_string()),
+            night: None,
+            target: None,
+            filter: None,
+            time_unix: None,
+            header: None,
+            metrics: None,
+            stars: Vec::new(),
+            rejected: Vec::new(),
+            wcs: None,
+        }
+    }
+}
+
 /// A row for reports and status.
 #[derive(Debug, Clone, Serialize)]
 pub struct StoredFrame {

@@ -410,7 +410,7 @@ fn process(shared: &Shared, path: &Path) -> Option<String> {
     })) {
         Ok(r) => r,
         Err(_) => {
-            let mut r = record_file_error(
+            let mut r = crate::store::FrameRecord::failed(
                 identity,
                 "internal error while measuring (a bug; please report it)",
             );
@@ -645,23 +645,6 @@ fn write_accepted_list(
         });
     if let Err(e) = result {
         tracing::warn!("cannot write {}: {e}", file.display());
-    }
-}
-
-fn record_file_error(identity: Identity, reason: &str) -> crate::store::FrameRecord {
-    crate::store::FrameRecord {
-        identity,
-        status: FrameStatus::Error,
-        error: Some(reason.into()),
-        night: None,
-        target: None,
-        filter: None,
-        time_unix: None,
-        header: None,
-        metrics: None,
-        stars: Vec::new(),
-        rejected: Vec::new(),
-        wcs: None,
     }
 }
 
