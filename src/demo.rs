@@ -88,17 +88,6 @@ fn iso(t: f64) -> String {
         .unwrap_or_default()
 }
 
-fn quiet(plan: &mut NightPlan) {
-    plan.flip_at = None;
-    plan.cloud_frames.clear();
-    plan.gust_frames.clear();
-    plan.focus_drift_from = None;
-    plan.trail_frames.clear();
-    plan.moving_object = false;
-    plan.variable_star = false;
-    plan.flash_frame = None;
-}
-
 /// Render the nights: (previous night's frames, tonight's frames in time order, folder
 /// of each of tonight's frames).
 fn render_all(
@@ -115,8 +104,7 @@ fn render_all(
     a.new_source = true;
     a.twilight_from = Some(36);
     a.start = iso(dawn - 35.6 * cadence);
-    let mut b = NightPlan::full(42);
-    quiet(&mut b);
+    let mut b = NightPlan::full(42).quiet();
     b.object = "Kestrel Field B".into();
     b.center_deg = (262.0, -12.4);
     b.field_seed = 91;
@@ -124,8 +112,7 @@ fn render_all(
     b.red_star = true;
     b.frames = 10;
     b.start = iso(dawn - 35.6 * cadence - 11.0 * cadence - 600.0);
-    let mut prev = NightPlan::full(40);
-    quiet(&mut prev);
+    let mut prev = NightPlan::full(40).quiet();
     prev.center_deg = FIELD_A;
     prev.frames = 8;
     prev.start = iso(dawn - 86_400.0 - 20.0 * cadence);

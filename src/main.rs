@@ -433,19 +433,13 @@ fn render_night_command(
     use subwatch::sim::night::{render_night, NightPlan};
     let mut plan = NightPlan::full(seed);
     if second_night {
+        // (Twelve frames: the flip of the full plan, at frame 20, never comes.)
         plan = NightPlan {
             seed: seed + 1000,
             start: "2026-03-15T20:40:00".into(),
             new_source: true,
-            variable_star: false,
-            moving_object: false,
-            flash_frame: None,
-            trail_frames: vec![],
-            cloud_frames: vec![],
-            gust_frames: vec![],
-            focus_drift_from: None,
             frames: 12,
-            ..plan
+            ..plan.quiet()
         };
     }
     if colour {
@@ -456,16 +450,8 @@ fn render_night_command(
             bayer: BayerPattern::parse("RGGB"),
             red_star: true,
             frames: 10,
-            flip_at: None,
-            cloud_frames: vec![],
-            gust_frames: vec![],
-            focus_drift_from: None,
-            trail_frames: vec![],
-            moving_object: false,
-            variable_star: false,
-            flash_frame: None,
             start: "2026-03-15T01:00:00".into(),
-            ..plan
+            ..plan.quiet()
         };
     }
     if let Some(n) = frames {

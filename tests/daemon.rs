@@ -137,6 +137,38 @@ fn wait_for(db: &Path, count: usize, limit: Duration) -> Vec<(String, String, Op
     }
 }
 
+/// Write rendered frames into the capture folder one at a time, as a camera delivers
+/// them, each once the previous ones are judged (so each verdict sees the night so far).
+fn feed_one_by_one(
+    s: &Site,
+    conn: &rusqlite::Connection,
+    frames: &[subwatch::sim::night::NightFrame],
+) {
+    for (k, f) in frames.iter().enumerate() {
+        write_frame(
+            &s.capture.join(&f.name),
+            &f.pixels,
+            Encoding::Unsigned16,
+            &f.keys,
+        )
+        .unwrap();
+        let start = Instant::now();
+        while start.elapsed() < Duration::from_secs(20) {
+            let judged: i64 = conn
+                .query_row(
+                    "SELECT COUNT(*) FROM frames WHERE verdict IS NOT NULL",
+                    [],
+                    |r| r.get(0),
+                )
+                .unwrap_or(0);
+            if judged as usize > k {
+                break;
+            }
+            std::thread::sleep(Duration::from_millis(50));
+        }
+    }
+}
+
 #[test]
 fn slow_writes_renames_bad_files_and_calibration_frames() {
     let s = site("");
@@ -452,29 +484,7 @@ fn a_streak_of_rejections_raises_one_alert() {
     let d = Daemon::start(&s.config);
     std::thread::sleep(Duration::from_millis(300));
     let conn = rusqlite::Connection::open(&s.db).unwrap();
-    for (k, f) in frames.iter().enumerate() {
-        write_frame(
-            &s.capture.join(&f.name),
-            &f.pixels,
-            Encoding::Unsigned16,
-            &f.keys,
-        )
-        .unwrap();
-        let start = Instant::now();
-        while start.elapsed() < Duration::from_secs(20) {
-            let judged: i64 = conn
-                .query_row(
-                    "SELECT COUNT(*) FROM frames WHERE verdict IS NOT NULL",
-                    [],
-                    |r| r.get(0),
-                )
-                .unwrap_or(0);
-            if judged as usize > k {
-                break;
-            }
-            std::thread::sleep(Duration::from_millis(50));
-        }
-    }
+    feed_one_by_one(&s, &conn, &frames);
     std::thread::sleep(Duration::from_millis(300));
     d.kill9();
     let alerts: Vec<(String, String)> = conn
@@ -517,29 +527,7 @@ fn rejected_frames_can_be_moved_aside_when_asked() {
     let d = Daemon::start(&s.config);
     std::thread::sleep(Duration::from_millis(300));
     let conn = rusqlite::Connection::open(&s.db).unwrap();
-    for (k, f) in frames.iter().enumerate() {
-        write_frame(
-            &s.capture.join(&f.name),
-            &f.pixels,
-            Encoding::Unsigned16,
-            &f.keys,
-        )
-        .unwrap();
-        let start = Instant::now();
-        while start.elapsed() < Duration::from_secs(20) {
-            let judged: i64 = conn
-                .query_row(
-                    "SELECT COUNT(*) FROM frames WHERE verdict IS NOT NULL",
-                    [],
-                    |r| r.get(0),
-                )
-                .unwrap_or(0);
-            if judged as usize > k {
-                break;
-            }
-            std::thread::sleep(Duration::from_millis(50));
-        }
-    }
+    feed_one_by_one(&s, &conn, &frames);
     // Let a rescan pass (every 2 s here): the moved frame must not come back as new.
     std::thread::sleep(Duration::from_millis(2500));
     d.kill9();

@@ -194,20 +194,12 @@ fn a_rendered_night_gives_back_what_was_put_in() {
 #[test]
 fn colour_night_finds_the_very_red_star() {
     let dir = tempfile::tempdir().unwrap();
-    let mut plan = NightPlan::full(5);
+    let mut plan = NightPlan::full(5).quiet();
     plan.object = "Kestrel Field B".into();
     plan.field_seed = 91;
     plan.bayer = subwatch::frame::bayer::BayerPattern::parse("RGGB");
     plan.red_star = true;
     plan.frames = 10;
-    plan.flip_at = None;
-    plan.cloud_frames.clear();
-    plan.gust_frames.clear();
-    plan.focus_drift_from = None;
-    plan.trail_frames.clear();
-    plan.moving_object = false;
-    plan.variable_star = false;
-    plan.flash_frame = None;
     let (frames, truth) = write_night(dir.path(), &plan);
     let doc = run_night(dir.path(), None);
     let (injected, found, reported, false_reports) = score(&doc, &frames, &truth, "color");
@@ -253,16 +245,9 @@ fn a_second_night_shows_its_new_source() {
         format!("[watch]\nfolders = [\"{}\"]\n[store]\npath = \"subwatch.db\"\n[site]\ntimezone = \"Europe/Madrid\"\n", store.display()),
     )
     .unwrap();
-    let mut first = NightPlan::full(7);
+    let mut first = NightPlan::full(7).quiet();
     first.frames = 12;
     first.flip_at = Some(6);
-    first.moving_object = false;
-    first.variable_star = false;
-    first.flash_frame = None;
-    first.trail_frames.clear();
-    first.cloud_frames.clear();
-    first.gust_frames.clear();
-    first.focus_drift_from = None;
     let mut second = first.clone();
     second.seed = 8;
     second.start = "2026-03-15T20:40:00".into();

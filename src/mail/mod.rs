@@ -154,11 +154,6 @@ pub fn compose(
     csv_name: &str,
     csv: &str,
 ) -> Result<Composed, MailError> {
-    if s.to.is_empty() {
-        return Err(MailError::Settings(
-            "no recipients (mail.to is empty)".into(),
-        ));
-    }
     let png = ContentType::parse("image/png").map_err(|e| MailError::Compose(e.to_string()))?;
     let csv_type = ContentType::parse("text/csv; charset=utf-8")
         .map_err(|e| MailError::Compose(e.to_string()))?;
@@ -175,6 +170,16 @@ pub fn compose(
                 .multipart(related),
         )
         .singlepart(Attachment::new(csv_name.to_string()).body(csv.to_string(), csv_type));
+    finish(s, subject, body)
+}
+
+/// Address a message body to the configured recipients and format it.
+fn finish(s: &MailSettings, subject: &str, body: MultiPart) -> Result<Composed, MailError> {
+    if s.to.is_empty() {
+        return Err(MailError::Settings(
+            "no recipients (mail.to is empty)".into(),
+        ));
+    }
     let mut builder = Message::builder()
         .from(s.from.clone())
         .subject(crate::report::one_line(subject));
@@ -194,30 +199,15 @@ pub fn compose(
 
 /// A short mail: a live alert or a test message (plain text and a small HTML part).
 pub fn compose_note(s: &MailSettings, subject: &str, text: &str) -> Result<Composed, MailError> {
-    if s.to.is_empty() {
-        return Err(MailError::Settings(
-            "no recipients (mail.to is empty)".into(),
-        ));
-    }
     let html = format!(
         "<!DOCTYPE html><html><body><p>{}</p></body></html>",
         crate::report::escape_html(text)
     );
-    let mut builder = Message::builder()
-        .from(s.from.clone())
-        .subject(crate::report::one_line(subject));
-    for t in &s.to {
-        builder = builder.to(t.clone());
-    }
-    let msg = builder
-        .multipart(MultiPart::alternative_plain_html(text.to_string(), html))
-        .map_err(|e| MailError::Compose(e.to_string()))?;
-    Ok(Composed {
-        subject: subject.to_string(),
-        from: s.from.email.to_string(),
-        to: s.to.iter().map(|m| m.email.to_string()).collect(),
-        bytes: msg.formatted(),
-    })
+    finish(
+        s,
+        subject,
+        MultiPart::alternative_plain_html(text.to_string(), html),
+    )
 }
 
 /// Deliver already-formatted bytes to the server.

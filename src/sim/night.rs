@@ -78,6 +78,22 @@ impl NightPlan {
     }
 }
 
+impl NightPlan {
+    /// No events: a calm night of the same field (flip, cloud, gust, focus drift,
+    /// satellites, moving object, variable and flash all off).
+    pub fn quiet(mut self) -> Self {
+        self.flip_at = None;
+        self.cloud_frames.clear();
+        self.gust_frames.clear();
+        self.focus_drift_from = None;
+        self.trail_frames.clear();
+        self.moving_object = false;
+        self.variable_star = false;
+        self.flash_frame = None;
+        self
+    }
+}
+
 /// One anomaly that was put into the night.
 #[derive(Debug, Clone, Serialize)]
 pub struct TrueAnomaly {
