@@ -34,20 +34,6 @@ pub struct Stamp {
     pub core_radius: f64,
 }
 
-impl Stamp {
-    fn sampling_at(&self, p: &[f64], i: usize) -> usize {
-        if self.subsample <= 1 || self.core_radius <= 0.0 {
-            return self.subsample;
-        }
-        let r2 = (self.x[i] - p[2]).powi(2) + (self.y[i] - p[3]).powi(2);
-        if r2 <= self.core_radius * self.core_radius {
-            self.subsample
-        } else {
-            1
-        }
-    }
-}
-
 #[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize)]
 #[serde(rename_all = "lowercase")]
 pub enum PsfModel {
@@ -74,8 +60,6 @@ pub struct PsfFit {
     /// (major, minor) FWHM of the fitted profile as the pixels sample it.
     pub sampled_axes: (f64, f64),
 }
-
-const MAX_PARAMS: usize = 8;
 
 impl PsfFit {
     fn width_factor(&self) -> f64 {
@@ -255,7 +239,7 @@ pub fn fit_gaussian(stamp: &Stamp, guess: Guess) -> Option<PsfFit> {
     let sigma = guess.fwhm / (2.0 * (2.0 * std::f64::consts::LN_2).sqrt());
     let q = 1.0 / (sigma * sigma);
     let p0 = [guess.sky, guess.amplitude, guess.x0, guess.y0, q, 0.0, q];
-    fit(stamp, PsfModel::Gaussian, &p0)
+    fit(stamp, PsfModel::Gaussian, p0, gaussian_at)
 }
 
 /// Fit an elliptical Moffat profile, starting from a Gaussian fit's shape.
@@ -271,9 +255,9 @@ pub fn fit_moffat(stamp: &Stamp, from: &PsfFit) -> Option<PsfFit> {
         from.q[0] * scale,
         from.q[1] * scale,
         from.q[2] * scale,
-        beta,
+        1.0 / beta,
     ];
-    fit(stamp, PsfModel::Moffat, &p0)
+    fit(stamp, PsfModel::Moffat, p0, moffat_at)
 }
 
 /// 3-point Gauss–Legendre nodes and weights on [−½, ½].
@@ -283,53 +267,11 @@ const GL3: [(f64, f64); 3] = [
     (0.387_298_334_620_741_7, 5.0 / 18.0),
 ];
 
-/// Model value and gradient for the pixel centred at (x, y): point-sampled, or averaged
-/// over the pixel when `subsample` > 1.
-fn pixel_model(
-    model: PsfModel,
-    p: &[f64],
-    x: f64,
-    y: f64,
-    subsample: usize,
-    grad: &mut [f64],
-) -> f64 {
-    if subsample <= 1 {
-        return model_and_grad(model, p, x, y, grad);
-    }
-    let mut g = [0.0; MAX_PARAMS];
-    let mut value = 0.0;
-    grad.iter_mut().for_each(|v| *v = 0.0);
-    for &(ox, wx) in &GL3 {
-        for &(oy, wy) in &GL3 {
-            let w = wx * wy;
-            value += w * model_and_grad(model, p, x + ox, y + oy, &mut g);
-            for (a, b) in grad.iter_mut().zip(&g) {
-                *a += w * b;
-            }
-        }
-    }
-    value
-}
-
-/// Model value and its gradient with respect to the parameters.
-fn model_and_grad(model: PsfModel, p: &[f64], x: f64, y: f64, grad: &mut [f64]) -> f64 {
-    let (sky, amp, x0, y0, qa, qb, qc) = (p[0], p[1], p[2], p[3], p[4], p[5], p[6]);
-    let dx = x - x0;
-    let dy = y - y0;
-    let u = qa * dx * dx + 2.0 * qb * dx * dy + qc * dy * dy;
-    let (shape, dm_du) = match model {
-        PsfModel::Gaussian => {
-            let e = (-0.5 * u).exp();
-            (e, -0.5 * amp * e)
-        }
-        PsfModel::Moffat => {
-            let beta = p[7];
-            let l = (1.0 + u).ln();
-            let s = (-beta * l).exp();
-            grad[7] = -amp * s * l;
-            (s, -amp * beta * s / (1.0 + u))
-        }
-    };
+/// The gradient entries both profiles share, for a profile of unit amplitude `shape`
+/// whose model derivative with respect to u is `dm_du`.
+#[inline(always)]
+fn shared_gradient(p: &[f64], dx: f64, dy: f64, shape: f64, dm_du: f64, grad: &mut [f64]) {
+    let (qa, qb, qc) = (p[4], p[5], p[6]);
     grad[0] = 1.0;
     grad[1] = shape;
     grad[2] = dm_du * (-2.0 * (qa * dx + qb * dy));
@@ -337,7 +279,72 @@ fn model_and_grad(model: PsfModel, p: &[f64], x: f64, y: f64, grad: &mut [f64]) 
     grad[4] = dm_du * dx * dx;
     grad[5] = dm_du * 2.0 * dx * dy;
     grad[6] = dm_du * dy * dy;
-    sky + amp * shape
+}
+
+#[inline(always)]
+fn quadratic_form(p: &[f64], x: f64, y: f64) -> (f64, f64, f64) {
+    let dx = x - p[2];
+    let dy = y - p[3];
+    (
+        dx,
+        dy,
+        p[4] * dx * dx + 2.0 * p[5] * dx * dy + p[6] * dy * dy,
+    )
+}
+
+/// Gaussian value and gradient; parameters (sky, A, x0, y0, qa, qb, qc).
+#[inline(always)]
+fn gaussian_at(p: &[f64; 7], x: f64, y: f64, grad: &mut [f64; 7]) -> f64 {
+    let (dx, dy, u) = quadratic_form(p, x, y);
+    let e = (-0.5 * u).exp();
+    shared_gradient(p, dx, dy, e, -0.5 * p[1] * e, grad);
+    p[0] + p[1] * e
+}
+
+/// Moffat value and gradient; parameters (sky, A, x0, y0, qa, qb, qc, 1/β).
+///
+/// The fit runs in 1/β: as β grows the profile tends to a Gaussian whose width form is
+/// 2β times the Moffat's, so along the valley of near-equal fits the shape form varies
+/// linearly in 1/β (and hyperbolically in β), which Gauss–Newton steps follow far better.
+#[inline(always)]
+fn moffat_at(p: &[f64; 8], x: f64, y: f64, grad: &mut [f64; 8]) -> f64 {
+    let (dx, dy, u) = quadratic_form(p, x, y);
+    let (amp, beta) = (p[1], 1.0 / p[7]);
+    let l = u.ln_1p();
+    let s = (-beta * l).exp();
+    // ∂m/∂(1/β) = ∂m/∂β · (−β²), with ∂m/∂β = −A·s·ln(1 + u).
+    grad[7] = amp * s * l * beta * beta;
+    shared_gradient(p, dx, dy, s, -amp * beta * s / (1.0 + u), grad);
+    p[0] + amp * s
+}
+
+/// Model value and gradient for the pixel centred at (x, y): point-sampled, or averaged
+/// over the pixel (3×3 Gauss–Legendre points) when `averaged`.
+#[inline(always)]
+fn pixel_model<const NP: usize>(
+    at: impl Fn(&[f64; NP], f64, f64, &mut [f64; NP]) -> f64,
+    p: &[f64; NP],
+    x: f64,
+    y: f64,
+    averaged: bool,
+    grad: &mut [f64; NP],
+) -> f64 {
+    if !averaged {
+        return at(p, x, y, grad);
+    }
+    let mut g = [0.0; NP];
+    let mut value = 0.0;
+    *grad = [0.0; NP];
+    for &(ox, wx) in &GL3 {
+        for &(oy, wy) in &GL3 {
+            let w = wx * wy;
+            value += w * at(p, x + ox, y + oy, &mut g);
+            for (a, b) in grad.iter_mut().zip(&g) {
+                *a += w * b;
+            }
+        }
+    }
+    value
 }
 
 fn allowed(model: PsfModel, p: &[f64], stamp: &Stamp) -> bool {
@@ -355,7 +362,7 @@ fn allowed(model: PsfModel, p: &[f64], stamp: &Stamp) -> bool {
     let k = match model {
         PsfModel::Gaussian => 2.0 * std::f64::consts::LN_2,
         PsfModel::Moffat => {
-            let beta = p[7];
+            let beta = 1.0 / p[7];
             if !(1.01..=60.0).contains(&beta) {
                 return false;
             }
@@ -373,78 +380,99 @@ fn allowed(model: PsfModel, p: &[f64], stamp: &Stamp) -> bool {
     minor >= 0.5 && major <= 2.0 * span.max(1.0)
 }
 
-fn fit(stamp: &Stamp, model: PsfModel, p0: &[f64]) -> Option<PsfFit> {
-    let np = p0.len();
+/// Levenberg–Marquardt on the stamp for a model with `NP` parameters, `at` giving its
+/// value and gradient at a point. The parameter count is a constant so the normal
+/// equations live in fixed-size arrays the compiler can unroll.
+fn fit<const NP: usize>(
+    stamp: &Stamp,
+    model: PsfModel,
+    p0: [f64; NP],
+    at: impl Fn(&[f64; NP], f64, f64, &mut [f64; NP]) -> f64 + Copy,
+) -> Option<PsfFit> {
     let n = stamp.v.len();
-    if n <= np + 2 {
+    if n <= NP + 2 || stamp.x.len() != n || stamp.y.len() != n {
         return None;
     }
-    let mut p = [0.0; MAX_PARAMS];
-    p[..np].copy_from_slice(p0);
-    if !allowed(model, &p[..np], stamp) {
+    let mut p = p0;
+    if !allowed(model, &p, stamp) {
         return None;
     }
-    let mut grad = [0.0; MAX_PARAMS];
-    let evaluate = |p: &[f64], grad: &mut [f64; MAX_PARAMS]| {
-        let mut jtj = [[0.0; MAX_PARAMS]; MAX_PARAMS];
-        let mut jtr = [0.0; MAX_PARAMS];
+    let averaged = stamp.subsample > 1;
+    let core2 = if stamp.core_radius > 0.0 {
+        stamp.core_radius * stamp.core_radius
+    } else {
+        f64::INFINITY
+    };
+    let evaluate = |p: &[f64; NP]| {
+        let mut jtj = [[0.0; NP]; NP];
+        let mut jtr = [0.0; NP];
+        let mut grad = [0.0; NP];
         let mut ssr = 0.0;
-        for i in 0..n {
-            let m = pixel_model(
-                model,
-                p,
-                stamp.x[i],
-                stamp.y[i],
-                stamp.sampling_at(p, i),
-                grad,
-            );
-            let r = stamp.v[i] - m;
+        for ((&x, &y), &v) in stamp.x.iter().zip(&stamp.y).zip(&stamp.v) {
+            let inner = averaged && (x - p[2]).powi(2) + (y - p[3]).powi(2) <= core2;
+            let r = v - pixel_model(at, p, x, y, inner, &mut grad);
             ssr += r * r;
-            for a in 0..np {
+            for a in 0..NP {
                 jtr[a] += grad[a] * r;
-                for b in a..np {
+                for b in a..NP {
                     jtj[a][b] += grad[a] * grad[b];
                 }
             }
         }
-        for a in 0..np {
+        for a in 0..NP {
             for b in 0..a {
                 jtj[a][b] = jtj[b][a];
             }
         }
         (ssr, jtj, jtr)
     };
-    let (mut ssr, mut jtj, mut jtr) = evaluate(&p[..np], &mut grad);
+    let (mut ssr, mut jtj, mut jtr) = evaluate(&p);
+    // Damping as Marquardt (1963), scaled by the diagonal of JᵀJ, updated from the gain
+    // ratio (actual over predicted decrease) as in Nielsen (1999) and Madsen, Nielsen &
+    // Tingleff (2004, "Methods for non-linear least squares problems", section 3.2):
+    // a fixed up-and-down schedule zigzags on the Moffat's curved β-width valley.
     let mut lambda = 1e-3;
+    let mut nu = 2.0;
     for _ in 0..60 {
         let mut a = jtj;
-        for i in 0..np {
+        for i in 0..NP {
             a[i][i] += lambda * jtj[i][i].max(1e-12);
         }
-        let step = solve(&a, &jtr, np);
+        let step = solve(&a, &jtr);
         let mut trial = p;
         if let Some(step) = step {
-            for i in 0..np {
+            for i in 0..NP {
                 trial[i] += step[i];
             }
         }
-        if step.is_none() || !allowed(model, &trial[..np], stamp) {
-            lambda *= 10.0;
+        let Some(step) = step.filter(|_| allowed(model, &trial, stamp)) else {
+            lambda *= nu;
+            nu *= 2.0;
             if lambda > 1e10 {
                 break;
             }
             continue;
-        }
-        let (trial_ssr, trial_jtj, trial_jtr) = evaluate(&trial[..np], &mut grad);
+        };
+        // Predicted decrease of the sum of squares for this step: hᵀ(Jᵀr + λ·D·h).
+        let predicted: f64 = (0..NP)
+            .map(|i| step[i] * (jtr[i] + lambda * jtj[i][i].max(1e-12) * step[i]))
+            .sum();
+        let (trial_ssr, trial_jtj, trial_jtr) = evaluate(&trial);
         if trial_ssr < ssr {
-            let improvement = (ssr - trial_ssr) / ssr.max(1e-300);
+            // Converged when χ² fell by less than 0.01, with the pixel variance taken
+            // from the fit itself: the parameters then sit within a few hundredths of
+            // their own standard errors of the minimum.
+            let settled = ssr - trial_ssr < 0.01 * trial_ssr / (n - NP) as f64;
+            let rho = (ssr - trial_ssr) / predicted.max(1e-300);
             (p, ssr, jtj, jtr) = (trial, trial_ssr, trial_jtj, trial_jtr);
-            lambda = (lambda / 3.0).max(1e-9);
-            if improvement < 1e-6 {
+            lambda = (lambda * (1.0 / 3.0f64).max(1.0 - (2.0 * rho - 1.0).powi(3))).max(1e-12);
+            nu = 2.0;
+            if settled {
                 break;
             }
         } else {
-            lambda *= 4.0;
+            lambda *= nu;
+            nu *= 2.0;
             if lambda > 1e10 {
                 // No downhill step left: at a minimum (or against a bound).
                 break;
@@ -458,47 +486,42 @@ fn fit(stamp: &Stamp, model: PsfModel, p0: &[f64]) -> Option<PsfFit> {
     // (1980, Econometrica 48, 817): (JᵀJ)⁻¹ (Σ rᵢ² jᵢ jᵢᵀ) (JᵀJ)⁻¹.
     // Pixel noise grows with the star's own light (Poisson), so one variance for all
     // pixels would understate the errors that matter most, those of the core.
-    let inv = invert(&jtj, np)?;
-    let mut meat = [[0.0; MAX_PARAMS]; MAX_PARAMS];
-    for i in 0..n {
-        let m = pixel_model(
-            model,
-            &p[..np],
-            stamp.x[i],
-            stamp.y[i],
-            stamp.subsample,
-            &mut grad,
-        );
+    let inv = invert(&jtj)?;
+    let mut meat = [[0.0; NP]; NP];
+    let mut grad = [0.0; NP];
+    for ((&x, &y), &v) in stamp.x.iter().zip(&stamp.y).zip(&stamp.v) {
+        let m = pixel_model(at, &p, x, y, averaged, &mut grad);
         // Leverage h = jᵀ(JᵀJ)⁻¹j: the core pixels that pin the shape down have high
         // leverage and small residuals; the HC3 form of MacKinnon & White (1985, J.
         // Econometrics 29, 305) divides their squared residuals by (1 − h)².
         let mut lev = 0.0;
-        for a in 0..np {
-            for b in 0..np {
-                lev += grad[a] * inv[a][b] * grad[b];
+        for a in 0..NP {
+            let mut row = 0.0;
+            for b in 0..NP {
+                row += inv[a][b] * grad[b];
             }
+            lev += grad[a] * row;
         }
-        let r2 = (stamp.v[i] - m).powi(2) / (1.0 - lev.min(0.99)).powi(2);
-        for a in 0..np {
-            for b in a..np {
+        let r2 = (v - m).powi(2) / (1.0 - lev.min(0.99)).powi(2);
+        for a in 0..NP {
+            for b in a..NP {
                 meat[a][b] += r2 * grad[a] * grad[b];
             }
         }
     }
-    for a in 0..np {
+    for a in 0..NP {
         for b in 0..a {
             meat[a][b] = meat[b][a];
         }
     }
-    let scale = 1.0;
     let cov = |i: usize, j: usize| {
         let mut s = 0.0;
-        for a in 0..np {
-            for b in 0..np {
+        for a in 0..NP {
+            for b in 0..NP {
                 s += inv[i][a] * meat[a][b] * inv[b][j];
             }
         }
-        s * scale
+        s
     };
     let mut q_cov = [[0.0; 3]; 3];
     for i in 0..3 {
@@ -514,7 +537,7 @@ fn fit(stamp: &Stamp, model: PsfModel, p0: &[f64]) -> Option<PsfFit> {
         y0: p[3],
         q: [p[4], p[5], p[6]],
         beta: if model == PsfModel::Moffat {
-            p[7]
+            1.0 / p[7]
         } else {
             f64::INFINITY
         },
@@ -524,7 +547,7 @@ fn fit(stamp: &Stamp, model: PsfModel, p0: &[f64]) -> Option<PsfFit> {
         pos_err: (cov(2, 2).max(0.0).sqrt(), cov(3, 3).max(0.0).sqrt()),
         sampled_axes: (0.0, 0.0),
     };
-    fit.sampled_axes = if stamp.subsample > 1 {
+    fit.sampled_axes = if averaged {
         fit.pixel_averaged_axes(if stamp.report_pixel > 0.0 {
             stamp.report_pixel
         } else {
@@ -537,13 +560,9 @@ fn fit(stamp: &Stamp, model: PsfModel, p0: &[f64]) -> Option<PsfFit> {
 }
 
 /// Solve A·x = b for a small symmetric positive-definite A by Cholesky decomposition.
-fn solve(
-    a: &[[f64; MAX_PARAMS]; MAX_PARAMS],
-    b: &[f64; MAX_PARAMS],
-    n: usize,
-) -> Option<[f64; MAX_PARAMS]> {
-    let mut l = [[0.0; MAX_PARAMS]; MAX_PARAMS];
-    for i in 0..n {
+fn solve<const N: usize>(a: &[[f64; N]; N], b: &[f64; N]) -> Option<[f64; N]> {
+    let mut l = [[0.0; N]; N];
+    for i in 0..N {
         for j in 0..=i {
             let mut s = a[i][j];
             for k in 0..j {
@@ -559,18 +578,18 @@ fn solve(
             }
         }
     }
-    let mut y = [0.0; MAX_PARAMS];
-    for i in 0..n {
+    let mut y = [0.0; N];
+    for i in 0..N {
         let mut s = b[i];
         for k in 0..i {
             s -= l[i][k] * y[k];
         }
         y[i] = s / l[i][i];
     }
-    let mut x = [0.0; MAX_PARAMS];
-    for i in (0..n).rev() {
+    let mut x = [0.0; N];
+    for i in (0..N).rev() {
         let mut s = y[i];
-        for k in i + 1..n {
+        for k in i + 1..N {
             s -= l[k][i] * x[k];
         }
         x[i] = s / l[i][i];
@@ -578,16 +597,13 @@ fn solve(
     Some(x)
 }
 
-fn invert(
-    a: &[[f64; MAX_PARAMS]; MAX_PARAMS],
-    n: usize,
-) -> Option<[[f64; MAX_PARAMS]; MAX_PARAMS]> {
-    let mut inv = [[0.0; MAX_PARAMS]; MAX_PARAMS];
-    for col in 0..n {
-        let mut e = [0.0; MAX_PARAMS];
+fn invert<const N: usize>(a: &[[f64; N]; N]) -> Option<[[f64; N]; N]> {
+    let mut inv = [[0.0; N]; N];
+    for col in 0..N {
+        let mut e = [0.0; N];
         e[col] = 1.0;
-        let x = solve(a, &e, n)?;
-        for row in 0..n {
+        let x = solve(a, &e)?;
+        for row in 0..N {
             inv[row][col] = x[row];
         }
     }
