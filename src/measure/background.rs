@@ -40,6 +40,102 @@ pub struct BackgroundMap {
     /// Splines down each mesh column, built once: a row is then one spline across.
     level_columns: Vec<Spline>,
     rms_columns: Vec<Spline>,
+    /// Both maps sampled on a grid of every `GRID_STEP`th row and column of the image
+    /// they were estimated on; rows of that image are read from here.
+    level_grid: SampledGrid,
+    rms_grid: SampledGrid,
+}
+
+/// Rows and columns between exact samples of the spline map. Over 8 px a sky that
+/// curves on the scale of the 64-px mesh departs from the chord by less than a
+/// thousandth of its change.
+const GRID_STEP: usize = 8;
+
+/// A map sampled at rows and columns 0, 8, 16, … and at the last row and column; any
+/// pixel is the bilinear interpolation of its four surrounding samples.
+#[derive(Debug, Clone, Default)]
+struct SampledGrid {
+    width: usize,
+    height: usize,
+    /// Sampled positions along each axis.
+    xs: Vec<usize>,
+    ys: Vec<usize>,
+    /// Row-major ys.len() × xs.len().
+    values: Vec<f32>,
+}
+
+impl SampledGrid {
+    fn positions(n: usize) -> Vec<usize> {
+        let mut v: Vec<usize> = (0..n).step_by(GRID_STEP).collect();
+        if n > 0 && v.last() != Some(&(n - 1)) {
+            v.push(n - 1);
+        }
+        v
+    }
+
+    fn new(centers_x: &[f64], columns: &[Spline], width: usize, height: usize) -> Self {
+        let xs = Self::positions(width);
+        let ys = Self::positions(height);
+        let values = ys
+            .par_iter()
+            .flat_map_iter(|&y| {
+                let across = across(centers_x, columns, y as f64);
+                let mut hint = 0;
+                xs.iter()
+                    .map(move |&x| across.eval_forward(&mut hint, x as f64) as f32)
+                    .collect::<Vec<_>>()
+            })
+            .collect();
+        Self {
+            width,
+            height,
+            xs,
+            ys,
+            values,
+        }
+    }
+
+    /// Row `y` into `out`; false when `out` is not a row of the sampled image.
+    fn row(&self, y: usize, out: &mut [f32]) -> bool {
+        if out.len() != self.width || y >= self.height || self.xs.is_empty() {
+            return false;
+        }
+        let nx = self.xs.len();
+        let k = (y / GRID_STEP).min(self.ys.len() - 1);
+        let (k0, k1) = if self.ys[k] == y || k + 1 == self.ys.len() {
+            (k, k)
+        } else {
+            (k, k + 1)
+        };
+        let t = if k0 == k1 {
+            0.0
+        } else {
+            (y - self.ys[k0]) as f32 / (self.ys[k1] - self.ys[k0]) as f32
+        };
+        let r0 = &self.values[k0 * nx..(k0 + 1) * nx];
+        let r1 = &self.values[k1 * nx..(k1 + 1) * nx];
+        let at = |i: usize| r0[i] + t * (r1[i] - r0[i]);
+        let mut v0 = at(0);
+        for i in 0..nx - 1 {
+            let (x0, x1) = (self.xs[i], self.xs[i + 1]);
+            let v1 = at(i + 1);
+            let slope = (v1 - v0) / (x1 - x0) as f32;
+            for (j, o) in out[x0..x1].iter_mut().enumerate() {
+                *o = v0 + slope * j as f32;
+            }
+            v0 = v1;
+        }
+        out[self.width - 1] = v0;
+        true
+    }
+}
+
+/// The spline across the mesh at height `y`: down each column, then across.
+fn across(centers_x: &[f64], columns: &[Spline], y: f64) -> Spline {
+    Spline::new(
+        centers_x.to_vec(),
+        columns.iter().map(|c| c.eval(y)).collect(),
+    )
 }
 
 impl BackgroundMap {
@@ -140,10 +236,15 @@ impl BackgroundMap {
                 })
                 .collect()
         };
+        let centers_x: Vec<f64> = xs.iter().map(center).collect();
+        let level_columns = columns(&level);
+        let rms_columns = columns(&rms);
         Some(Self {
-            centers_x: xs.iter().map(center).collect(),
-            level_columns: columns(&level),
-            rms_columns: columns(&rms),
+            level_grid: SampledGrid::new(&centers_x, &level_columns, w, h),
+            rms_grid: SampledGrid::new(&centers_x, &rms_columns, w, h),
+            centers_x,
+            level_columns,
+            rms_columns,
             level,
             rms,
         })
@@ -164,7 +265,7 @@ impl BackgroundMap {
             .first()
             .map(|c| c.t.clone())
             .unwrap_or_default();
-        let level_columns = (0..nx)
+        let level_columns: Vec<Spline> = (0..nx)
             .map(|i| {
                 Spline::new(
                     centers_y.clone(),
@@ -172,7 +273,10 @@ impl BackgroundMap {
                 )
             })
             .collect();
+        let grid = &self.level_grid;
         BackgroundMap {
+            level_grid: SampledGrid::new(&self.centers_x, &level_columns, grid.width, grid.height),
+            rms_grid: self.rms_grid.clone(),
             centers_x: self.centers_x.clone(),
             level,
             rms: self.rms.clone(),
@@ -181,35 +285,29 @@ impl BackgroundMap {
         }
     }
 
-    /// Background level along row `y` (0-based) into `out` (one value per column).
-    /// The spline is evaluated every 8 pixels and joined by straight lines: over 8 px a
-    /// sky that curves on the scale of the 64-px mesh departs from the chord by less
-    /// than a thousandth of its change.
+    /// Background level along row `y` (0-based) into `out` (one value per column),
+    /// interpolated between the spline's samples every 8 rows and columns.
     pub fn level_row(&self, y: usize, out: &mut [f32]) {
-        coarse_into(&self.across(&self.level_columns, y as f64), out);
+        if !self.level_grid.row(y, out) {
+            coarse_into(&across(&self.centers_x, &self.level_columns, y as f64), out);
+        }
     }
 
     /// Sky noise (1σ per pixel) along row `y`, evaluated as `level_row` is.
     pub fn rms_row(&self, y: usize, out: &mut [f32]) {
-        coarse_into(&self.across(&self.rms_columns, y as f64), out);
+        if !self.rms_grid.row(y, out) {
+            coarse_into(&across(&self.centers_x, &self.rms_columns, y as f64), out);
+        }
     }
 
-    /// Background level at one position (0-based pixel coordinates).
+    /// Background level at one position (0-based pixel coordinates), from the spline.
     pub fn level_at(&self, x: f64, y: f64) -> f64 {
-        self.across(&self.level_columns, y).eval(x)
+        across(&self.centers_x, &self.level_columns, y).eval(x)
     }
 
-    /// Sky noise at one position (0-based pixel coordinates).
+    /// Sky noise at one position (0-based pixel coordinates), from the spline.
     pub fn rms_at(&self, x: f64, y: f64) -> f64 {
-        self.across(&self.rms_columns, y).eval(x)
-    }
-
-    /// The spline across the mesh at height `y`: down each column, then across.
-    fn across(&self, columns: &[Spline], y: f64) -> Spline {
-        Spline::new(
-            self.centers_x.clone(),
-            columns.iter().map(|c| c.eval(y)).collect(),
-        )
+        across(&self.centers_x, &self.rms_columns, y).eval(x)
     }
 
     /// Median of the mesh levels: the frame's typical sky level.
@@ -231,21 +329,22 @@ impl BackgroundMap {
 }
 
 /// Spline values at x = 0, 1, 2, … into `out`, computed exactly every 8 pixels and
-/// linearly between.
+/// linearly between (for rows of an image other than the one the map was made on).
 fn coarse_into(spline: &Spline, out: &mut [f32]) {
-    const STEP: usize = 8;
+    const STEP: usize = GRID_STEP;
     let n = out.len();
     if n == 0 {
         return;
     }
+    let mut hint = 0;
     let mut x0 = 0;
-    let mut v0 = spline.eval(0.0);
+    let mut v0 = spline.eval_forward(&mut hint, 0.0);
     while x0 < n - 1 {
         let x1 = (x0 + STEP).min(n - 1);
-        let v1 = spline.eval(x1 as f64);
-        let span = (x1 - x0) as f64;
+        let v1 = spline.eval_forward(&mut hint, x1 as f64);
+        let (start, slope) = (v0 as f32, ((v1 - v0) / (x1 - x0) as f64) as f32);
         for (k, o) in out[x0..x1].iter_mut().enumerate() {
-            *o = (v0 + (v1 - v0) * k as f64 / span) as f32;
+            *o = start + slope * k as f32;
         }
         x0 = x1;
         v0 = v1;
@@ -378,6 +477,23 @@ impl Spline {
         }
         let j = t.partition_point(|&k| k <= x).clamp(1, n - 1) - 1;
         self.interior(j, x)
+    }
+
+    /// As `eval`, for a run of increasing x: `hint` keeps the interval found last, so a
+    /// row costs no search.
+    fn eval_forward(&self, hint: &mut usize, x: f64) -> f64 {
+        let n = self.t.len();
+        if n == 1 || x <= self.t[0] || x >= self.t[n - 1] {
+            return self.eval(x);
+        }
+        *hint = (*hint).min(n - 2);
+        if self.t[*hint] > x {
+            *hint = 0;
+        }
+        while self.t[*hint + 1] <= x {
+            *hint += 1;
+        }
+        self.interior(*hint, x)
     }
 }
 

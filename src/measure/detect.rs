@@ -134,17 +134,29 @@ pub fn gaussian_kernel(fwhm: f64) -> Vec<f32> {
 /// Separable convolution with `kernel` along both axes; NaN pixels count as zero.
 /// Rows are processed in parallel bands so the only full-size allocation is the output.
 pub fn convolve_separable(image: &Array2<f32>, kernel: &[f32]) -> Array2<f32> {
+    convolve_with(image, kernel, |_, _| ()).0
+}
+
+/// The convolution, handing each finished band of output rows (its first row index and
+/// its values) to `visit` while they are still in cache; the visits' results come back
+/// in band order.
+fn convolve_with<T: Send>(
+    image: &Array2<f32>,
+    kernel: &[f32],
+    visit: impl Fn(usize, &[f32]) -> T + Sync,
+) -> (Array2<f32>, Vec<T>) {
     let (h, w) = image.dim();
     let r = kernel.len() / 2;
     let src = image.as_slice().expect("standard layout");
     let mut out =
         Array2::from_shape_vec((h, w), crate::buffer::zeroed(h * w)).expect("shape matches");
     const BAND: usize = 32;
-    out.as_slice_mut()
+    let visited = out
+        .as_slice_mut()
         .expect("standard layout")
         .par_chunks_mut(BAND * w)
         .enumerate()
-        .for_each(|(band, out_rows)| {
+        .map(|(band, out_rows)| {
             let y0 = band * BAND;
             let rows = out_rows.len() / w;
             let lo = y0.saturating_sub(r);
@@ -179,8 +191,82 @@ pub fn convolve_separable(image: &Array2<f32>, kernel: &[f32]) -> Array2<f32> {
                     }
                 }
             }
-        });
-    out
+            visit(y0, out_rows)
+        })
+        .collect();
+    (out, visited)
+}
+
+/// A horizontal run of pixels above the detection threshold: row `y`, columns
+/// `x0..x1` (end exclusive).
+#[derive(Debug, Clone, Copy)]
+struct Run {
+    y: u32,
+    x0: u32,
+    x1: u32,
+}
+
+/// Runs of 8-connected above-threshold pixels grouped into components, each a list of
+/// indices into `runs`, ordered by their first pixel in raster order. Runs must be
+/// sorted by row, then column. Union–find over runs (the two-pass labelling of
+/// Rosenfeld & Pfaltz 1966, on runs rather than pixels).
+fn connected_runs(runs: &[Run]) -> Vec<Vec<usize>> {
+    fn find(parent: &mut [usize], mut i: usize) -> usize {
+        while parent[i] != i {
+            parent[i] = parent[parent[i]];
+            i = parent[i];
+        }
+        i
+    }
+    let n = runs.len();
+    let mut parent: Vec<usize> = (0..n).collect();
+    // Runs of the previous row: [prev_start, prev_end); of this row: [row_start, i).
+    let (mut prev_start, mut prev_end, mut row_start) = (0, 0, 0);
+    for i in 0..n {
+        if i > 0 && runs[i].y != runs[i - 1].y {
+            if runs[i].y == runs[i - 1].y + 1 {
+                (prev_start, prev_end) = (row_start, i);
+            } else {
+                (prev_start, prev_end) = (i, i);
+            }
+            row_start = i;
+        }
+        let Run { x0, x1, .. } = runs[i];
+        // Diagonal neighbours count: columns x0 − 1 ..= x1 of the row above. Runs of a
+        // row are ordered and disjoint, so those wholly to the left of this run are
+        // wholly to the left of the row's later runs too, and are not looked at again.
+        while prev_start < prev_end && runs[prev_start].x1 < x0 {
+            prev_start += 1;
+        }
+        for (j, above) in runs.iter().enumerate().take(prev_end).skip(prev_start) {
+            if above.x0 > x1 {
+                break;
+            }
+            let (a, b) = (find(&mut parent, i), find(&mut parent, j));
+            if a != b {
+                // The earlier run stays the root, so a component is named by its first run.
+                parent[a.max(b)] = a.min(b);
+            }
+        }
+    }
+    let mut component_of = vec![usize::MAX; n];
+    let mut components: Vec<Vec<usize>> = Vec::new();
+    for i in 0..n {
+        let root = find(&mut parent, i);
+        if component_of[root] == usize::MAX {
+            component_of[root] = components.len();
+            components.push(Vec::new());
+        }
+        components[component_of[root]].push(i);
+    }
+    components
+}
+
+/// What one component yields.
+enum Found {
+    Nothing,
+    Trail(Trail),
+    Peaks(Vec<(usize, f32)>, usize),
 }
 
 /// Detect candidates in `residual` (image minus background).
@@ -190,7 +276,6 @@ pub fn detect(
     params: &DetectParams,
 ) -> Detections {
     let (h, w) = residual.dim();
-    let mut trails = Vec::new();
     if h == 0 || w == 0 {
         return Detections::default();
     }
@@ -198,94 +283,115 @@ pub fn detect(
     // White noise filtered by k has σ_f = σ · sqrt(Σ k²) (2-D kernel = outer product).
     let k2: f64 = kernel.iter().map(|&v| f64::from(v).powi(2)).sum::<f64>();
     let noise_gain = k2; // sqrt(Σ_2D k²) = Σ_1D k² for a separable kernel
-    let filtered = convolve_separable(residual, &kernel);
-    let f = filtered.as_slice().expect("standard layout");
-
-    // 1 = above threshold, 2 = above and already assigned to a component.
-    let mut above = crate::buffer::zeroed::<u8>(h * w);
-    above.par_chunks_mut(w).enumerate().for_each(|(y, row)| {
+    let threshold_factor = (params.sigma * noise_gain) as f32;
+    // Threshold each band as soon as it is filtered, keeping only the runs above it.
+    let (filtered, band_runs) = convolve_with(residual, &kernel, |y0, rows| {
+        let mut runs = Vec::new();
         let mut rms = vec![0.0f32; w];
-        background.rms_row(y, &mut rms);
-        for x in 0..w {
-            let sigma_f = f64::from(rms[x]) * noise_gain;
-            if sigma_f > 0.0 && f64::from(f[y * w + x]) > params.sigma * sigma_f {
-                row[x] = 1;
+        let mut limit = vec![0.0f32; w];
+        for (dy, row) in rows.chunks_exact(w).enumerate() {
+            let y = y0 + dy;
+            background.rms_row(y, &mut rms);
+            for (l, &s) in limit.iter_mut().zip(&rms) {
+                // A map without noise (σ = 0) detects nothing there.
+                *l = if s > 0.0 {
+                    threshold_factor * s
+                } else {
+                    f32::INFINITY
+                };
             }
-        }
-    });
-    let noise_at = |x: usize, y: usize| background.rms_at(x as f64, y as f64) * noise_gain;
-
-    let mut candidates = Vec::new();
-    let mut stack = Vec::new();
-    let mut pixels: Vec<u32> = Vec::new();
-    let mut component = 0usize;
-    for start in 0..h * w {
-        if above[start] != 1 {
-            continue;
-        }
-        // Flood fill (8-connected); mark visited as 2.
-        pixels.clear();
-        stack.push(start as u32);
-        above[start] = 2;
-        while let Some(p) = stack.pop() {
-            pixels.push(p);
-            let (px, py) = ((p as usize) % w, (p as usize) / w);
-            for dy in -1i64..=1 {
-                for dx in -1i64..=1 {
-                    let (nx, ny) = (px as i64 + dx, py as i64 + dy);
-                    if nx < 0 || ny < 0 || nx >= w as i64 || ny >= h as i64 {
-                        continue;
+            let mut x = 0;
+            while x < w {
+                if row[x] > limit[x] {
+                    let start = x;
+                    while x < w && row[x] > limit[x] {
+                        x += 1;
                     }
-                    let q = ny as usize * w + nx as usize;
-                    if above[q] == 1 {
-                        above[q] = 2;
-                        stack.push(q as u32);
-                    }
+                    runs.push(Run {
+                        y: y as u32,
+                        x0: start as u32,
+                        x1: x as u32,
+                    });
+                } else {
+                    x += 1;
                 }
             }
         }
-        if pixels.len() < params.min_area {
-            continue;
-        }
-        // A streak is reported whole; its peaks are not stars.
-        if let Some(t) = as_trail(&pixels, w, 10.0 * params.kernel_fwhm.max(2.0)) {
-            trails.push(t);
-            continue;
-        }
-        component += 1;
-        // Local maxima of the filtered image inside the component.
-        let mut peaks: Vec<(usize, f32)> = pixels
-            .iter()
-            .map(|&p| p as usize)
-            .filter(|&p| is_local_max(f, w, h, p))
-            .map(|p| (p, f[p]))
-            .collect();
-        peaks.sort_by(|a, b| b.1.total_cmp(&a.1));
-        peaks.truncate(500);
-        let sigma_here = noise_at(peaks[0].0 % w, peaks[0].0 / w).max(1e-30);
-        let mut kept: Vec<(usize, f32)> = Vec::new();
-        for &(p, v) in &peaks {
-            let isolated = kept.iter().all(|&(q, _)| {
-                let saddle = min_along_segment(f, w, p, q);
-                let depth = f64::from(v - saddle);
-                depth >= params.deblend_contrast * f64::from(v)
-                    && depth >= params.deblend_sigma * sigma_here
-            });
-            if isolated {
-                kept.push((p, v));
+        runs
+    });
+    let runs: Vec<Run> = band_runs.into_iter().flatten().collect();
+    let f = filtered.as_slice().expect("standard layout");
+    let noise_at = |x: usize, y: usize| background.rms_at(x as f64, y as f64) * noise_gain;
+
+    let found: Vec<Found> = connected_runs(&runs)
+        .par_iter()
+        .map(|members| {
+            let area: usize = members
+                .iter()
+                .map(|&i| (runs[i].x1 - runs[i].x0) as usize)
+                .sum();
+            if area < params.min_area {
+                return Found::Nothing;
             }
-        }
-        let blended = kept.len() > 1;
-        for &(p, v) in &kept {
-            let (x, y) = (p % w, p / w);
-            candidates.push(Candidate {
-                x,
-                y,
-                significance: f64::from(v) / noise_at(x, y).max(1e-30),
-                area: pixels.len(),
-                blended,
-                component,
-            });
+            let pixels: Vec<u32> = members
+                .iter()
+                .flat_map(|&i| {
+                    let r = runs[i];
+                    (r.x0..r.x1).map(move |x| r.y * w as u32 + x)
+                })
+                .collect();
+            // A streak is reported whole; its peaks are not stars.
+            if let Some(t) = as_trail(&pixels, w, 10.0 * params.kernel_fwhm.max(2.0)) {
+                return Found::Trail(t);
+            }
+            // Local maxima of the filtered image inside the component.
+            let mut peaks: Vec<(usize, f32)> = pixels
+                .iter()
+                .map(|&p| p as usize)
+                .filter(|&p| is_local_max(f, w, h, p))
+                .map(|p| (p, f[p]))
+                .collect();
+            peaks.sort_by(|a, b| b.1.total_cmp(&a.1));
+            peaks.truncate(500);
+            let sigma_here = noise_at(peaks[0].0 % w, peaks[0].0 / w).max(1e-30);
+            let mut kept: Vec<(usize, f32)> = Vec::new();
+            for &(p, v) in &peaks {
+                let isolated = kept.iter().all(|&(q, _)| {
+                    let saddle = min_along_segment(f, w, p, q);
+                    let depth = f64::from(v - saddle);
+                    depth >= params.deblend_contrast * f64::from(v)
+                        && depth >= params.deblend_sigma * sigma_here
+                });
+                if isolated {
+                    kept.push((p, v));
+                }
+            }
+            Found::Peaks(kept, area)
+        })
+        .collect();
+
+    let mut candidates = Vec::new();
+    let mut trails = Vec::new();
+    let mut component = 0usize;
+    for item in found {
+        match item {
+            Found::Nothing => {}
+            Found::Trail(t) => trails.push(t),
+            Found::Peaks(kept, area) => {
+                component += 1;
+                let blended = kept.len() > 1;
+                for &(p, v) in &kept {
+                    let (x, y) = (p % w, p / w);
+                    candidates.push(Candidate {
+                        x,
+                        y,
+                        significance: f64::from(v) / noise_at(x, y).max(1e-30),
+                        area,
+                        blended,
+                        component,
+                    });
+                }
+            }
         }
     }
     Detections { candidates, trails }
@@ -338,6 +444,65 @@ mod tests {
         let s: f32 = k.iter().sum();
         assert!((s - 1.0).abs() < 1e-6);
         assert_eq!(k.first(), k.last());
+    }
+
+    /// Components of a small picture, as sets of (x, y), by labelling its runs.
+    fn components_of(picture: &[&str]) -> Vec<Vec<(u32, u32)>> {
+        let mut runs = Vec::new();
+        for (y, line) in picture.iter().enumerate() {
+            let b = line.as_bytes();
+            let mut x = 0;
+            while x < b.len() {
+                if b[x] == b'#' {
+                    let start = x;
+                    while x < b.len() && b[x] == b'#' {
+                        x += 1;
+                    }
+                    runs.push(Run {
+                        y: y as u32,
+                        x0: start as u32,
+                        x1: x as u32,
+                    });
+                } else {
+                    x += 1;
+                }
+            }
+        }
+        connected_runs(&runs)
+            .into_iter()
+            .map(|members| {
+                let mut px: Vec<(u32, u32)> = members
+                    .iter()
+                    .flat_map(|&i| {
+                        let r = runs[i];
+                        (r.x0..r.x1).map(move |x| (x, r.y))
+                    })
+                    .collect();
+                px.sort_unstable();
+                px
+            })
+            .collect()
+    }
+
+    #[test]
+    fn runs_join_into_eight_connected_components() {
+        // Diagonal contact joins (8-connectivity); a U joins at its base after its arms
+        // were seen apart; a gap of one row or one column separates.
+        let picture = [
+            "#.....#..#.#",
+            ".#....#..#.#",
+            "..#...#..###",
+            "......#.....",
+            "##..........",
+            "..........##",
+        ];
+        let comps = components_of(&picture);
+        let sizes: Vec<usize> = comps.iter().map(|c| c.len()).collect();
+        assert_eq!(sizes, vec![3, 4, 7, 2, 2], "{comps:?}");
+        // Ordered by first pixel in raster order.
+        assert_eq!(comps[0][0], (0, 0));
+        assert_eq!(comps[2].first(), Some(&(9, 0)));
+        assert!(comps[3].contains(&(0, 4)) && comps[4].contains(&(11, 5)));
     }
 
     #[test]

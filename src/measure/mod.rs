@@ -230,7 +230,7 @@ pub fn measure_image(
         .or_else(|| plateau_saturation(&pixels, max));
     let mut bkg = BackgroundMap::estimate(&pixels, None, params.background)
         .ok_or(MeasureError::NoValidPixels)?;
-    subtract_rows(&mut pixels, &bkg);
+    let bright = subtract_and_flag(&mut pixels, &bkg);
     if bkg.median_rms() <= 0.0 {
         // A constant image (or a fully saturated one): nothing to detect.
         return Ok(FrameMeasurement::empty(w, h, bkg.median_level(), 0.0));
@@ -238,7 +238,7 @@ pub fn measure_image(
 
     // Hot pixels and cosmic-ray hits are taken out before detection, so their filtered
     // wings cannot swallow a star nearby; they are reported as sharp detections.
-    let cleaned = clean_sharp_pixels(&mut pixels, &bkg);
+    let cleaned = clean_sharp_pixels(&mut pixels, &bkg, bright);
 
     // First detection with the configured kernel; re-detect with a kernel matched to
     // the stars when the frame's PSF turns out much wider or narrower.
@@ -606,6 +606,32 @@ fn subtract_rows(img: &mut Array2<f32>, bkg: &BackgroundMap) {
         });
 }
 
+/// Subtract the background map row by row and, in the same pass, list the interior
+/// pixels standing more than 6σ above it with that σ: the only ones
+/// `clean_sharp_pixels` needs to look at.
+fn subtract_and_flag(img: &mut Array2<f32>, bkg: &BackgroundMap) -> Vec<(usize, usize, f32)> {
+    let (h, w) = img.dim();
+    img.as_slice_mut()
+        .expect("standard layout")
+        .par_chunks_mut(w)
+        .enumerate()
+        .flat_map_iter(|(y, row)| {
+            let mut level = vec![0.0f32; w];
+            let mut rms = vec![0.0f32; w];
+            bkg.level_row(y, &mut level);
+            bkg.rms_row(y, &mut rms);
+            for (v, l) in row.iter_mut().zip(&level) {
+                *v -= l;
+            }
+            let interior = y >= 1 && y + 1 < h;
+            (1..w.saturating_sub(1))
+                .filter(|&x| interior && row[x] > 6.0 * rms[x])
+                .map(|x| (x, y, rms[x]))
+                .collect::<Vec<_>>()
+        })
+        .collect()
+}
+
 /// The test of `clean_sharp_pixels` for one interior pixel: its value and the median
 /// of its eight neighbours when it is sharp.
 fn sharp_pixel(img: &Array2<f32>, x: usize, y: usize, sigma: f32) -> Option<(f32, f32)> {
@@ -636,18 +662,16 @@ fn sharp_pixel(img: &Array2<f32>, x: usize, y: usize, sigma: f32) -> Option<(f32
 /// This is the Laplacian-edge idea of van Dokkum (2001, PASP 113, 1420) in the form of
 /// a median contrast. Flagged pixels are replaced by that median, and each group of
 /// adjacent flagged pixels is returned once as a sharp rejection.
-fn clean_sharp_pixels(residual: &mut Array2<f32>, bkg: &BackgroundMap) -> Vec<Rejected> {
+fn clean_sharp_pixels(
+    residual: &mut Array2<f32>,
+    bkg: &BackgroundMap,
+    bright: Vec<(usize, usize, f32)>,
+) -> Vec<Rejected> {
     let (h, w) = residual.dim();
     let img = &*residual;
-    let mut found: Vec<(usize, usize, f32, f32)> = (1..h - 1)
+    let mut found: Vec<(usize, usize, f32, f32)> = bright
         .into_par_iter()
-        .flat_map_iter(|y| {
-            let mut rms = vec![0.0f32; w];
-            bkg.rms_row(y, &mut rms);
-            (1..w - 1)
-                .filter_map(|x| sharp_pixel(img, x, y, rms[x]).map(|(v, med)| (x, y, v, med)))
-                .collect::<Vec<_>>()
-        })
+        .filter_map(|(x, y, sigma)| sharp_pixel(img, x, y, sigma).map(|(v, med)| (x, y, v, med)))
         .collect();
     let mut flagged = Vec::new();
     // Replacing a pixel of a cosmic-ray track can expose its neighbour as the next sharp
