@@ -190,7 +190,11 @@ fn weighted_median(pairs: &[(f64, f64)]) -> Option<f64> {
 fn plateau_saturation(pixels: &Array2<f32>, max: f32) -> Option<f64> {
     let tol = (max.abs() * 1e-6).max(1e-3);
     let data = pixels.as_slice()?;
-    let at_max = data.par_iter().filter(|&&v| v >= max - tol).count();
+    let floor = max - tol;
+    let at_max: usize = data
+        .par_chunks(1 << 16)
+        .map(|c| c.iter().map(|&v| usize::from(v >= floor)).sum::<usize>())
+        .sum();
     (at_max >= 3).then_some(f64::from(max))
 }
 
@@ -199,7 +203,19 @@ fn finite_max(pixels: &Array2<f32>) -> f32 {
     pixels.as_slice().map_or(f32::NEG_INFINITY, |d| {
         d.par_chunks(1 << 16)
             .map(|c| {
-                c.iter()
+                // Eight running maxima, so the loop is a vector compare-and-select;
+                // NaN fails both comparisons and +∞ the second, so neither is taken.
+                let mut lanes = [f32::NEG_INFINITY; 8];
+                let mut parts = c.chunks_exact(8);
+                for part in &mut parts {
+                    for (m, &v) in lanes.iter_mut().zip(part) {
+                        *m = if v > *m && v < f32::INFINITY { v } else { *m };
+                    }
+                }
+                parts
+                    .remainder()
+                    .iter()
+                    .chain(&lanes)
                     .copied()
                     .filter(|v| v.is_finite())
                     .fold(f32::NEG_INFINITY, f32::max)
@@ -260,7 +276,11 @@ pub fn measure_image(
     let mask = source_mask(w, h, &candidates, fwhm_guess);
     // Clipping alone copes with a sparse field; the masked second estimate is worth its
     // cost only when sources cover a noticeable part of the sky.
-    let masked_fraction = mask.iter().filter(|&&m| m).count() as f64 / mask.len() as f64;
+    let masked: usize = mask
+        .par_chunks(1 << 16)
+        .map(|c| c.iter().filter(|&&m| m).count())
+        .sum();
+    let masked_fraction = masked as f64 / mask.len() as f64;
     let raw_free = (masked_fraction > 0.03)
         .then(|| {
             BackgroundMap::estimate_with_offset(&pixels, Some(&mask), Some(&bkg), params.background)
@@ -418,10 +438,9 @@ pub fn measure_image(
         .par_iter()
         .filter_map(|f| {
             let (cx, cy) = (f.fit.x0, f.fit.y0);
-            let ap = photometry::aperture(&pixels, cx, cy, r_ap, r_in, r_out)?;
             // SNR in an aperture of radius 1 × FWHM, near the radius that maximises it
             // for a faint star (Howell 1989, PASP 101, 616), with the same local sky.
-            let core = photometry::aperture(&pixels, cx, cy, r_snr, r_in, r_out)?;
+            let [ap, core] = photometry::apertures(&pixels, cx, cy, [r_ap, r_snr], r_in, r_out)?;
             let snr = photometry::ccd_snr(core.flux, core.n_pix, core.n_sky, noise, gain);
             if snr < params.min_snr {
                 return None;
@@ -745,10 +764,12 @@ fn source_mask(w: usize, h: usize, candidates: &[Candidate], fwhm: f64) -> Vec<b
     mask
 }
 
-/// 1.4826 × MAD of unmasked residual pixels; at most about two million are sampled.
+/// 1.4826 × MAD of unmasked residual pixels; at most about half a million are sampled.
+/// The MAD's efficiency for normal data is 37 % (from memory), so its relative standard
+/// error is about 1.16/√n: 0.2 % at that size, far below what the noise is used for.
 fn robust_noise(residual: &Array2<f32>, mask: &[bool]) -> Option<f64> {
     let data = residual.as_slice()?;
-    let stride = (data.len() / 2_000_000).max(1);
+    let stride = (data.len() / 500_000).max(1);
     let mut sample: Vec<f32> = data
         .iter()
         .zip(mask)
