@@ -74,47 +74,113 @@ impl ClippedStats {
 }
 
 /// Iterative ±`kappa` σ clipping about the median until nothing more is clipped
-/// (at most `max_iter` passes). Non-finite values are ignored. `values` is reordered.
+/// (at most `max_iter` passes). Non-finite values are ignored. `values` is reordered
+/// (sorted).
+///
+/// The sample is sorted once; every pass is then two binary searches and a few
+/// differences of running sums, instead of a filter, two sums and a selection.
 pub fn sigma_clip(values: &mut Vec<f32>, kappa: f64, max_iter: usize) -> Option<ClippedStats> {
     values.retain(|v| v.is_finite());
     if values.is_empty() {
         return None;
     }
-    let mut stats = plain_stats(values)?;
+    radix_sort(values);
+    let v = &values[..];
+    // Running sums about the middle value keep the variance free of cancellation.
+    let shift = f64::from(v[v.len() / 2]);
+    let mut s1 = vec![0.0; v.len() + 1];
+    let mut s2 = vec![0.0; v.len() + 1];
+    let (mut a1, mut a2) = (0.0, 0.0);
+    for ((&x, p1), p2) in v.iter().zip(&mut s1[1..]).zip(&mut s2[1..]) {
+        let d = f64::from(x) - shift;
+        a1 += d;
+        a2 += d * d;
+        *p1 = a1;
+        *p2 = a2;
+    }
+    let stats_of = |lo: usize, hi: usize| {
+        let n = hi - lo;
+        let sum = s1[hi] - s1[lo];
+        let mean = sum / n as f64;
+        let var = ((s2[hi] - s2[lo]) - sum * mean).max(0.0) / n.max(2).saturating_sub(1) as f64;
+        let mid = lo + n / 2;
+        let median = if n % 2 == 1 {
+            f64::from(v[mid])
+        } else {
+            0.5 * (f64::from(v[mid - 1]) + f64::from(v[mid]))
+        };
+        ClippedStats {
+            mean: shift + mean,
+            median,
+            std: var.sqrt(),
+            kept: n,
+        }
+    };
+    let (mut lo, mut hi) = (0, v.len());
+    let mut stats = stats_of(lo, hi);
     for _ in 0..max_iter {
-        let lo = stats.median - kappa * stats.std;
-        let hi = stats.median + kappa * stats.std;
-        let before = values.len();
-        values.retain(|&v| f64::from(v) >= lo && f64::from(v) <= hi);
-        if values.is_empty() {
+        let low = stats.median - kappa * stats.std;
+        let high = stats.median + kappa * stats.std;
+        // What a pass removes stays removed: the new bounds only narrow the range.
+        let new_lo = lo + v[lo..hi].partition_point(|&x| f64::from(x) < low);
+        let new_hi = lo + v[lo..hi].partition_point(|&x| f64::from(x) <= high);
+        if new_hi <= new_lo {
             return Some(stats);
         }
-        stats = plain_stats(values)?;
-        if values.len() == before {
+        let unchanged = new_hi - new_lo == hi - lo;
+        (lo, hi) = (new_lo, new_hi);
+        stats = stats_of(lo, hi);
+        if unchanged {
             break;
         }
     }
     Some(stats)
 }
 
-fn plain_stats(values: &mut [f32]) -> Option<ClippedStats> {
-    let n = values.len();
-    if n == 0 {
-        return None;
+/// Sort finite f32 values ascending by LSD radix on their bit patterns (flipped so
+/// that unsigned order is numeric order), skipping the byte passes in which every value
+/// agrees, as the high bytes of one patch of sky do.
+fn radix_sort(values: &mut [f32]) {
+    let key = |v: f32| {
+        let b = v.to_bits();
+        if b >> 31 == 1 {
+            !b
+        } else {
+            b | 0x8000_0000
+        }
+    };
+    let mut keys: Vec<u32> = values.iter().map(|&v| key(v)).collect();
+    let n = keys.len();
+    // All four byte histograms in one pass.
+    let mut counts = [[0u32; 256]; 4];
+    for &k in &keys {
+        for (b, count) in counts.iter_mut().enumerate() {
+            count[((k >> (8 * b)) & 0xff) as usize] += 1;
+        }
     }
-    let mean = values.iter().map(|&v| f64::from(v)).sum::<f64>() / n as f64;
-    let var = values
-        .iter()
-        .map(|&v| (f64::from(v) - mean).powi(2))
-        .sum::<f64>()
-        / n.max(2).saturating_sub(1) as f64;
-    let median = median_in_place(values)?;
-    Some(ClippedStats {
-        mean,
-        median,
-        std: var.sqrt(),
-        kept: n,
-    })
+    let mut scratch = vec![0u32; n];
+    for (b, count) in counts.iter_mut().enumerate() {
+        if count.iter().any(|&c| c as usize == n) {
+            continue;
+        }
+        let mut at = 0;
+        for c in count.iter_mut() {
+            let here = *c;
+            *c = at;
+            at += here;
+        }
+        let shift = 8 * b;
+        for &k in &keys {
+            let d = ((k >> shift) & 0xff) as usize;
+            scratch[count[d] as usize] = k;
+            count[d] += 1;
+        }
+        std::mem::swap(&mut keys, &mut scratch);
+    }
+    for (v, &k) in values.iter_mut().zip(&keys) {
+        let b = if k >> 31 == 1 { k & 0x7fff_ffff } else { !k };
+        *v = f32::from_bits(b);
+    }
 }
 
 #[cfg(test)]
@@ -137,6 +203,27 @@ mod tests {
             .collect();
         let s = mad_sigma(&values, 0.0, &mut Vec::new()).unwrap();
         assert!((s - 2.0).abs() < 0.01, "{s}");
+    }
+
+    #[test]
+    fn radix_sort_orders_like_a_comparison_sort() {
+        let mut v: Vec<f32> = (0..3000)
+            .map(|i| ((i * 7919) % 3001) as f32 * 0.37 - 500.0)
+            .chain([
+                0.0,
+                -0.0,
+                f32::MIN,
+                f32::MAX,
+                1e-30,
+                -1e-30,
+                1000.25,
+                1000.25,
+            ])
+            .collect();
+        let mut expected = v.clone();
+        expected.sort_by(f32::total_cmp);
+        radix_sort(&mut v);
+        assert_eq!(v, expected);
     }
 
     #[test]
