@@ -148,52 +148,71 @@ fn convolve_with<T: Send>(
     let (h, w) = image.dim();
     let r = kernel.len() / 2;
     let src = image.as_slice().expect("standard layout");
-    let mut out =
-        Array2::from_shape_vec((h, w), crate::buffer::zeroed(h * w)).expect("shape matches");
     const BAND: usize = 32;
-    let visited = out
-        .as_slice_mut()
-        .expect("standard layout")
+    // The output is written once, band by band, never zeroed first: each band's first
+    // vertical tap stores and the others add.
+    let mut out: Vec<f32> = Vec::with_capacity(h * w);
+    let visited = out.spare_capacity_mut()[..h * w]
         .par_chunks_mut(BAND * w)
         .enumerate()
-        .map(|(band, out_rows)| {
-            let y0 = band * BAND;
-            let rows = out_rows.len() / w;
-            let lo = y0.saturating_sub(r);
-            let hi = (y0 + rows + r).min(h);
-            // Horizontal pass for the rows this band needs, on a zero-padded copy of each
-            // row (NaN counts as zero) so the inner loop is a plain dot product.
-            let mut horiz = vec![0.0f32; (hi - lo) * w];
-            let mut padded = vec![0.0f32; w + 2 * r];
-            for y in lo..hi {
-                for (p, &v) in padded[r..r + w].iter_mut().zip(&src[y * w..(y + 1) * w]) {
-                    *p = if v.is_finite() { v } else { 0.0 };
-                }
-                let d = &mut horiz[(y - lo) * w..(y - lo + 1) * w];
-                // One shifted multiply-add per tap: long, vectorisable loops.
-                for (k, &kv) in kernel.iter().enumerate() {
-                    for (o, &p) in d.iter_mut().zip(&padded[k..k + w]) {
-                        *o += kv * p;
+        .map_init(
+            || (Vec::new(), Vec::new()),
+            |(horiz, padded): &mut (Vec<f32>, Vec<f32>), (band, out_rows)| {
+                let y0 = band * BAND;
+                let rows = out_rows.len() / w;
+                let lo = y0.saturating_sub(r);
+                let hi = (y0 + rows + r).min(h);
+                // Horizontal pass for the rows this band needs, on a zero-padded copy of
+                // each row (NaN counts as zero) so the inner loop is a plain dot product.
+                // Both scratch rows are kept by the worker from band to band.
+                horiz.clear();
+                horiz.resize((hi - lo) * w, 0.0);
+                padded.clear();
+                padded.resize(w + 2 * r, 0.0);
+                for y in lo..hi {
+                    for (p, &v) in padded[r..r + w].iter_mut().zip(&src[y * w..(y + 1) * w]) {
+                        *p = if v.is_finite() { v } else { 0.0 };
+                    }
+                    let d = &mut horiz[(y - lo) * w..(y - lo + 1) * w];
+                    // One shifted multiply-add per tap: long, vectorisable loops.
+                    for (k, &kv) in kernel.iter().enumerate() {
+                        for (o, &p) in d.iter_mut().zip(&padded[k..k + w]) {
+                            *o += kv * p;
+                        }
                     }
                 }
-            }
-            // Vertical pass into the output band.
-            for dy in 0..rows {
-                let y = y0 + dy;
-                let o = &mut out_rows[dy * w..(dy + 1) * w];
-                let k0 = y.saturating_sub(r);
-                let k1 = (y + r).min(h - 1);
-                for yy in k0..=k1 {
-                    let kv = kernel[yy + r - y];
-                    let hrow = &horiz[(yy - lo) * w..(yy - lo + 1) * w];
-                    for (o, &hv) in o.iter_mut().zip(hrow) {
-                        *o += kv * hv;
+                // Vertical pass into the output band.
+                for dy in 0..rows {
+                    let y = y0 + dy;
+                    let o = &mut out_rows[dy * w..(dy + 1) * w];
+                    let k0 = y.saturating_sub(r);
+                    let k1 = (y + r).min(h - 1);
+                    let first = &horiz[(k0 - lo) * w..(k0 - lo + 1) * w];
+                    let kv = kernel[k0 + r - y];
+                    for (o, &hv) in o.iter_mut().zip(first) {
+                        o.write(kv * hv);
+                    }
+                    // SAFETY: every element of this row was written just above.
+                    let o: &mut [f32] =
+                        unsafe { &mut *(o as *mut [std::mem::MaybeUninit<f32>] as *mut [f32]) };
+                    for yy in k0 + 1..=k1 {
+                        let kv = kernel[yy + r - y];
+                        let hrow = &horiz[(yy - lo) * w..(yy - lo + 1) * w];
+                        for (o, &hv) in o.iter_mut().zip(hrow) {
+                            *o += kv * hv;
+                        }
                     }
                 }
-            }
-            visit(y0, out_rows)
-        })
+                // SAFETY: every row of the band was initialised by the loop above.
+                let done: &[f32] =
+                    unsafe { &*(out_rows as *const [std::mem::MaybeUninit<f32>] as *const [f32]) };
+                visit(y0, done)
+            },
+        )
         .collect();
+    // SAFETY: the bands cover all h·w elements and each was fully written.
+    unsafe { out.set_len(h * w) };
+    let out = Array2::from_shape_vec((h, w), out).expect("shape matches");
     (out, visited)
 }
 
@@ -300,20 +319,34 @@ pub fn detect(
                     f32::INFINITY
                 };
             }
+            // Blocks of 32 pixels are tested whole first (a vectorised maximum of the
+            // excess over the threshold); only blocks with a pixel above it are walked.
             let mut x = 0;
             while x < w {
-                if row[x] > limit[x] {
-                    let start = x;
-                    while x < w && row[x] > limit[x] {
+                let end = (x + 32).min(w);
+                let excess = row[x..end]
+                    .iter()
+                    .zip(&limit[x..end])
+                    .fold(f32::NEG_INFINITY, |m, (&v, &l)| m.max(v - l));
+                if excess <= 0.0 {
+                    x = end;
+                    continue;
+                }
+                while x < end {
+                    if row[x] > limit[x] {
+                        // A run may continue past the block.
+                        let start = x;
+                        while x < w && row[x] > limit[x] {
+                            x += 1;
+                        }
+                        runs.push(Run {
+                            y: y as u32,
+                            x0: start as u32,
+                            x1: x as u32,
+                        });
+                    } else {
                         x += 1;
                     }
-                    runs.push(Run {
-                        y: y as u32,
-                        x0: start as u32,
-                        x1: x as u32,
-                    });
-                } else {
-                    x += 1;
                 }
             }
         }
