@@ -232,6 +232,8 @@ fn decode_hdu(
         check(status, "checking for tile compression").map_err(fail)?;
         if head.starts_with(b"SIMPLE") && compressed == 0 {
             let layout = plain_layout(file.0).map_err(fail)?;
+            // cfitsio is done with the file: close it while still holding the lock.
+            drop(file);
             drop(_guard);
             let data = read_plain(path, &layout, pixels as usize).map_err(fail)?;
             let pixels = Array2::from_shape_vec((height as usize, width as usize), data)

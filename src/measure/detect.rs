@@ -131,89 +131,120 @@ pub fn gaussian_kernel(fwhm: f64) -> Vec<f32> {
     k.iter().map(|v| (v / sum) as f32).collect()
 }
 
+/// Rows per band of the convolution.
+const BAND: usize = 32;
+
 /// Separable convolution with `kernel` along both axes; NaN pixels count as zero.
-/// Rows are processed in parallel bands so the only full-size allocation is the output.
+/// Rows are processed in parallel bands so the only full-size allocation is the output,
+/// which is written once (never zeroed first).
 pub fn convolve_separable(image: &Array2<f32>, kernel: &[f32]) -> Array2<f32> {
-    convolve_with(image, kernel, |_, _| ()).0
+    let (h, w) = image.dim();
+    let mut out: Vec<f32> = Vec::with_capacity(h * w);
+    out.spare_capacity_mut()[..h * w]
+        .par_chunks_mut(BAND * w)
+        .enumerate()
+        .for_each_init(Scratch::default, |scratch, (band, rows)| {
+            convolve_band(image, kernel, band * BAND, rows, scratch);
+        });
+    // SAFETY: the bands cover all h·w elements and `convolve_band` writes every one.
+    unsafe { out.set_len(h * w) };
+    Array2::from_shape_vec((h, w), out).expect("shape matches")
 }
 
-/// The convolution, handing each finished band of output rows (its first row index and
-/// its values) to `visit` while they are still in cache; the visits' results come back
-/// in band order.
-fn convolve_with<T: Send>(
+/// The convolution band by band without keeping it: each band of output rows (its
+/// first row index and its values) goes to `visit` while still in cache, and the
+/// visits' results come back in band order. Memory: one band per worker.
+fn convolve_visit<T: Send>(
     image: &Array2<f32>,
     kernel: &[f32],
     visit: impl Fn(usize, &[f32]) -> T + Sync,
-) -> (Array2<f32>, Vec<T>) {
+) -> Vec<T> {
+    let (h, w) = image.dim();
+    (0..h.div_ceil(BAND))
+        .into_par_iter()
+        .map_init(
+            || (Scratch::default(), Vec::new()),
+            |(scratch, band_out), band| {
+                let y0 = band * BAND;
+                let rows = BAND.min(h - y0);
+                band_out.clear();
+                band_out.reserve(rows * w);
+                convolve_band(
+                    image,
+                    kernel,
+                    y0,
+                    &mut band_out.spare_capacity_mut()[..rows * w],
+                    scratch,
+                );
+                // SAFETY: `convolve_band` wrote all rows·w elements.
+                unsafe { band_out.set_len(rows * w) };
+                visit(y0, band_out)
+            },
+        )
+        .collect()
+}
+
+/// Scratch rows a worker keeps from band to band.
+#[derive(Default)]
+struct Scratch {
+    horiz: Vec<f32>,
+    padded: Vec<f32>,
+}
+
+/// Filtered rows `y0 .. y0 + out.len()/w` into `out`, every element written.
+fn convolve_band(
+    image: &Array2<f32>,
+    kernel: &[f32],
+    y0: usize,
+    out: &mut [std::mem::MaybeUninit<f32>],
+    scratch: &mut Scratch,
+) {
     let (h, w) = image.dim();
     let r = kernel.len() / 2;
     let src = image.as_slice().expect("standard layout");
-    const BAND: usize = 32;
-    // The output is written once, band by band, never zeroed first: each band's first
-    // vertical tap stores and the others add.
-    let mut out: Vec<f32> = Vec::with_capacity(h * w);
-    let visited = out.spare_capacity_mut()[..h * w]
-        .par_chunks_mut(BAND * w)
-        .enumerate()
-        .map_init(
-            || (Vec::new(), Vec::new()),
-            |(horiz, padded): &mut (Vec<f32>, Vec<f32>), (band, out_rows)| {
-                let y0 = band * BAND;
-                let rows = out_rows.len() / w;
-                let lo = y0.saturating_sub(r);
-                let hi = (y0 + rows + r).min(h);
-                // Horizontal pass for the rows this band needs, on a zero-padded copy of
-                // each row (NaN counts as zero) so the inner loop is a plain dot product.
-                // Both scratch rows are kept by the worker from band to band.
-                horiz.clear();
-                horiz.resize((hi - lo) * w, 0.0);
-                padded.clear();
-                padded.resize(w + 2 * r, 0.0);
-                for y in lo..hi {
-                    for (p, &v) in padded[r..r + w].iter_mut().zip(&src[y * w..(y + 1) * w]) {
-                        *p = if v.is_finite() { v } else { 0.0 };
-                    }
-                    let d = &mut horiz[(y - lo) * w..(y - lo + 1) * w];
-                    // One shifted multiply-add per tap: long, vectorisable loops.
-                    for (k, &kv) in kernel.iter().enumerate() {
-                        for (o, &p) in d.iter_mut().zip(&padded[k..k + w]) {
-                            *o += kv * p;
-                        }
-                    }
-                }
-                // Vertical pass into the output band.
-                for dy in 0..rows {
-                    let y = y0 + dy;
-                    let o = &mut out_rows[dy * w..(dy + 1) * w];
-                    let k0 = y.saturating_sub(r);
-                    let k1 = (y + r).min(h - 1);
-                    let first = &horiz[(k0 - lo) * w..(k0 - lo + 1) * w];
-                    let kv = kernel[k0 + r - y];
-                    for (o, &hv) in o.iter_mut().zip(first) {
-                        o.write(kv * hv);
-                    }
-                    // SAFETY: every element of this row was written just above.
-                    let o: &mut [f32] =
-                        unsafe { &mut *(o as *mut [std::mem::MaybeUninit<f32>] as *mut [f32]) };
-                    for yy in k0 + 1..=k1 {
-                        let kv = kernel[yy + r - y];
-                        let hrow = &horiz[(yy - lo) * w..(yy - lo + 1) * w];
-                        for (o, &hv) in o.iter_mut().zip(hrow) {
-                            *o += kv * hv;
-                        }
-                    }
-                }
-                // SAFETY: every row of the band was initialised by the loop above.
-                let done: &[f32] =
-                    unsafe { &*(out_rows as *const [std::mem::MaybeUninit<f32>] as *const [f32]) };
-                visit(y0, done)
-            },
-        )
-        .collect();
-    // SAFETY: the bands cover all h·w elements and each was fully written.
-    unsafe { out.set_len(h * w) };
-    let out = Array2::from_shape_vec((h, w), out).expect("shape matches");
-    (out, visited)
+    let rows = out.len() / w;
+    let lo = y0.saturating_sub(r);
+    let hi = (y0 + rows + r).min(h);
+    let Scratch { horiz, padded } = scratch;
+    // Horizontal pass for the rows this band needs, on a zero-padded copy of each row
+    // (NaN counts as zero) so the inner loop is a plain dot product.
+    horiz.clear();
+    horiz.resize((hi - lo) * w, 0.0);
+    padded.clear();
+    padded.resize(w + 2 * r, 0.0);
+    for y in lo..hi {
+        for (p, &v) in padded[r..r + w].iter_mut().zip(&src[y * w..(y + 1) * w]) {
+            *p = if v.is_finite() { v } else { 0.0 };
+        }
+        let d = &mut horiz[(y - lo) * w..(y - lo + 1) * w];
+        // One shifted multiply-add per tap: long, vectorisable loops.
+        for (k, &kv) in kernel.iter().enumerate() {
+            for (o, &p) in d.iter_mut().zip(&padded[k..k + w]) {
+                *o += kv * p;
+            }
+        }
+    }
+    // Vertical pass: the first tap stores, the others add.
+    for dy in 0..rows {
+        let y = y0 + dy;
+        let o = &mut out[dy * w..(dy + 1) * w];
+        let k0 = y.saturating_sub(r);
+        let k1 = (y + r).min(h - 1);
+        let first = &horiz[(k0 - lo) * w..(k0 - lo + 1) * w];
+        let kv = kernel[k0 + r - y];
+        for (o, &hv) in o.iter_mut().zip(first) {
+            o.write(kv * hv);
+        }
+        // SAFETY: every element of this row was written just above.
+        let o: &mut [f32] = unsafe { &mut *(o as *mut [std::mem::MaybeUninit<f32>] as *mut [f32]) };
+        for yy in k0 + 1..=k1 {
+            let kv = kernel[yy + r - y];
+            let hrow = &horiz[(yy - lo) * w..(yy - lo + 1) * w];
+            for (o, &hv) in o.iter_mut().zip(hrow) {
+                *o += kv * hv;
+            }
+        }
+    }
 }
 
 /// A horizontal run of pixels above the detection threshold: row `y`, columns
@@ -285,7 +316,7 @@ fn connected_runs(runs: &[Run]) -> Vec<Vec<usize>> {
 enum Found {
     Nothing,
     Trail(Trail),
-    Peaks(Vec<(usize, f32)>, usize),
+    Peaks(Vec<((usize, usize), f32)>, usize),
 }
 
 /// Detect candidates in `residual` (image minus background).
@@ -303,9 +334,11 @@ pub fn detect(
     let k2: f64 = kernel.iter().map(|&v| f64::from(v).powi(2)).sum::<f64>();
     let noise_gain = k2; // sqrt(Σ_2D k²) = Σ_1D k² for a separable kernel
     let threshold_factor = (params.sigma * noise_gain) as f32;
-    // Threshold each band as soon as it is filtered, keeping only the runs above it.
-    let (filtered, band_runs) = convolve_with(residual, &kernel, |y0, rows| {
+    // Threshold each band as soon as it is filtered, keeping only the runs above it and
+    // their filtered values; the filtered image itself is never stored whole.
+    let band_runs = convolve_visit(residual, &kernel, |y0, rows| {
         let mut runs = Vec::new();
+        let mut values = Vec::new();
         let mut rms = vec![0.0f32; w];
         let mut limit = vec![0.0f32; w];
         for (dy, row) in rows.chunks_exact(w).enumerate() {
@@ -344,16 +377,30 @@ pub fn detect(
                             x0: start as u32,
                             x1: x as u32,
                         });
+                        values.extend_from_slice(&row[start..x]);
                     } else {
                         x += 1;
                     }
                 }
             }
         }
-        runs
+        (runs, values)
     });
-    let runs: Vec<Run> = band_runs.into_iter().flatten().collect();
-    let f = filtered.as_slice().expect("standard layout");
+    let mut runs: Vec<Run> = Vec::new();
+    let mut values: Vec<f32> = Vec::new();
+    for (r, v) in band_runs {
+        runs.extend(r);
+        values.extend(v);
+    }
+    // Where each run's values start in `values`.
+    let offsets: Vec<usize> = runs
+        .iter()
+        .scan(0, |at, r| {
+            let here = *at;
+            *at += (r.x1 - r.x0) as usize;
+            Some(here)
+        })
+        .collect();
     let noise_at = |x: usize, y: usize| background.rms_at(x as f64, y as f64) * noise_gain;
 
     let found: Vec<Found> = connected_runs(&runs)
@@ -377,20 +424,20 @@ pub fn detect(
             if let Some(t) = as_trail(&pixels, w, 10.0 * params.kernel_fwhm.max(2.0)) {
                 return Found::Trail(t);
             }
+            let patch = Patch::of(members, &runs, &offsets, &values);
             // Local maxima of the filtered image inside the component.
-            let mut peaks: Vec<(usize, f32)> = pixels
-                .iter()
-                .map(|&p| p as usize)
-                .filter(|&p| is_local_max(f, w, h, p))
-                .map(|p| (p, f[p]))
-                .collect();
+            let mut peaks: Vec<((usize, usize), f32)> = patch.local_maxima();
             peaks.sort_by(|a, b| b.1.total_cmp(&a.1));
             peaks.truncate(500);
-            let sigma_here = noise_at(peaks[0].0 % w, peaks[0].0 / w).max(1e-30);
-            let mut kept: Vec<(usize, f32)> = Vec::new();
+            let (px, py) = peaks[0].0;
+            let sigma_here = noise_at(px, py).max(1e-30);
+            // Along a segment that leaves the component the filtered image is below the
+            // threshold there; the threshold stands in for it (a lower bound on the dip).
+            let outside = (params.sigma * sigma_here) as f32;
+            let mut kept: Vec<((usize, usize), f32)> = Vec::new();
             for &(p, v) in &peaks {
                 let isolated = kept.iter().all(|&(q, _)| {
-                    let saddle = min_along_segment(f, w, p, q);
+                    let saddle = patch.min_along_segment(p, q, outside);
                     let depth = f64::from(v - saddle);
                     depth >= params.deblend_contrast * f64::from(v)
                         && depth >= params.deblend_sigma * sigma_here
@@ -413,8 +460,7 @@ pub fn detect(
             Found::Peaks(kept, area) => {
                 component += 1;
                 let blended = kept.len() > 1;
-                for &(p, v) in &kept {
-                    let (x, y) = (p % w, p / w);
+                for &((x, y), v) in &kept {
                     candidates.push(Candidate {
                         x,
                         y,
@@ -430,41 +476,86 @@ pub fn detect(
     Detections { candidates, trails }
 }
 
-fn is_local_max(f: &[f32], w: usize, h: usize, p: usize) -> bool {
-    let (x, y) = (p % w, p / w);
-    let v = f[p];
-    for dy in -1i64..=1 {
-        for dx in -1i64..=1 {
-            if dx == 0 && dy == 0 {
-                continue;
-            }
-            let (nx, ny) = (x as i64 + dx, y as i64 + dy);
-            if nx < 0 || ny < 0 || nx >= w as i64 || ny >= h as i64 {
-                continue;
-            }
-            let q = ny as usize * w + nx as usize;
-            // Ties (flat saturated tops) go to the earlier pixel, so a plateau gives one peak.
-            if f[q] > v || (f[q] == v && q < p) {
-                return false;
-            }
-        }
-    }
-    true
+/// A component's filtered values on its bounding box, NaN where the box is outside it.
+struct Patch {
+    x0: usize,
+    y0: usize,
+    w: usize,
+    h: usize,
+    v: Vec<f32>,
 }
 
-/// Smallest filtered value on the straight segment between two pixels.
-fn min_along_segment(f: &[f32], w: usize, a: usize, b: usize) -> f32 {
-    let (ax, ay) = ((a % w) as f64, (a / w) as f64);
-    let (bx, by) = ((b % w) as f64, (b / w) as f64);
-    let steps = ((bx - ax).abs().max((by - ay).abs()).ceil() as usize).max(1) * 2;
-    (0..=steps)
-        .map(|i| {
-            let t = i as f64 / steps as f64;
-            let x = (ax + t * (bx - ax)).round() as usize;
-            let y = (ay + t * (by - ay)).round() as usize;
-            f[y * w + x]
-        })
-        .fold(f32::INFINITY, f32::min)
+impl Patch {
+    fn of(members: &[usize], runs: &[Run], offsets: &[usize], values: &[f32]) -> Self {
+        let x0 = members.iter().map(|&i| runs[i].x0).min().unwrap_or(0) as usize;
+        let x1 = members.iter().map(|&i| runs[i].x1).max().unwrap_or(0) as usize;
+        let y0 = members.iter().map(|&i| runs[i].y).min().unwrap_or(0) as usize;
+        let y1 = members.iter().map(|&i| runs[i].y).max().unwrap_or(0) as usize + 1;
+        let (w, h) = (x1 - x0, y1 - y0);
+        let mut v = vec![f32::NAN; w * h];
+        for &i in members {
+            let r = runs[i];
+            let len = (r.x1 - r.x0) as usize;
+            let at = (r.y as usize - y0) * w + (r.x0 as usize - x0);
+            v[at..at + len].copy_from_slice(&values[offsets[i]..offsets[i] + len]);
+        }
+        Self { x0, y0, w, h, v }
+    }
+
+    /// Pixels of the component not exceeded by any 8-neighbour in it, as image (x, y)
+    /// with their values. (Neighbours outside it are below the threshold, so below
+    /// any of its pixels.) Ties (flat saturated tops) go to the earlier pixel in raster
+    /// order, so a plateau gives one peak.
+    fn local_maxima(&self) -> Vec<((usize, usize), f32)> {
+        let (w, h) = (self.w as i64, self.h as i64);
+        let mut out = Vec::new();
+        for (p, &v) in self.v.iter().enumerate() {
+            if v.is_nan() {
+                continue;
+            }
+            let (x, y) = (p as i64 % w, p as i64 / w);
+            let mut highest = true;
+            'around: for dy in -1..=1 {
+                for dx in -1..=1 {
+                    let (nx, ny) = (x + dx, y + dy);
+                    if (dx == 0 && dy == 0) || nx < 0 || ny < 0 || nx >= w || ny >= h {
+                        continue;
+                    }
+                    let q = (ny * w + nx) as usize;
+                    let u = self.v[q];
+                    if u > v || (u == v && q < p) {
+                        highest = false;
+                        break 'around;
+                    }
+                }
+            }
+            if highest {
+                out.push(((self.x0 + x as usize, self.y0 + y as usize), v));
+            }
+        }
+        out
+    }
+
+    /// Smallest filtered value on the straight segment between two image pixels of the
+    /// component; `outside` where the segment leaves it.
+    fn min_along_segment(&self, a: (usize, usize), b: (usize, usize), outside: f32) -> f32 {
+        let (ax, ay) = ((a.0 - self.x0) as f64, (a.1 - self.y0) as f64);
+        let (bx, by) = ((b.0 - self.x0) as f64, (b.1 - self.y0) as f64);
+        let steps = ((bx - ax).abs().max((by - ay).abs()).ceil() as usize).max(1) * 2;
+        (0..=steps)
+            .map(|i| {
+                let t = i as f64 / steps as f64;
+                let x = (ax + t * (bx - ax)).round() as usize;
+                let y = (ay + t * (by - ay)).round() as usize;
+                let v = self.v[y * self.w + x];
+                if v.is_nan() {
+                    outside
+                } else {
+                    v
+                }
+            })
+            .fold(f32::INFINITY, f32::min)
+    }
 }
 
 #[cfg(test)]
