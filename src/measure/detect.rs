@@ -629,6 +629,67 @@ mod tests {
         assert!(comps[3].contains(&(0, 4)) && comps[4].contains(&(11, 5)));
     }
 
+    /// Unit-noise sky (seeded) with the given sources added; detection on it.
+    fn detect_on(add: impl Fn(f64, f64) -> f64) -> Detections {
+        use rand::SeedableRng;
+        use rand_distr::{Distribution, Normal};
+        let (h, w) = (128, 160);
+        let mut rng = rand::rngs::StdRng::seed_from_u64(7);
+        let noise = Normal::new(0.0, 1.0).unwrap();
+        let img = Array2::from_shape_fn((h, w), |(y, x)| {
+            (noise.sample(&mut rng) + add(x as f64, y as f64)) as f32
+        });
+        let bkg = BackgroundMap::estimate(
+            &img,
+            None,
+            super::super::background::BackgroundParams::default(),
+        )
+        .unwrap();
+        let mut residual = img.clone();
+        let mut row = vec![0.0; w];
+        for (y, mut r) in residual.rows_mut().into_iter().enumerate() {
+            bkg.level_row(y, &mut row);
+            r.iter_mut().zip(&row).for_each(|(v, l)| *v -= l);
+        }
+        detect(&residual, &bkg, &DetectParams::default())
+    }
+
+    fn star(x0: f64, y0: f64, amp: f64) -> impl Fn(f64, f64) -> f64 {
+        // Gaussian of FWHM 3 px (σ = 3 / 2.3548).
+        move |x, y| amp * (-((x - x0).powi(2) + (y - y0).powi(2)) / (2.0 * 1.274f64.powi(2))).exp()
+    }
+
+    #[test]
+    fn close_pairs_are_split_and_single_stars_are_not() {
+        // Two stars 6 px apart: halfway, 3 px = 2.4σ from each, the light falls to
+        // (200 + 150)·exp(−2.4²/2) ≈ 22, a seventh of the fainter peak (analytic,
+        // before filtering), so two blended candidates.
+        let a = star(60.0, 50.0, 200.0);
+        let b = star(66.0, 50.0, 150.0);
+        let found = detect_on(|x, y| a(x, y) + b(x, y));
+        let mut xs: Vec<usize> = found.candidates.iter().map(|c| c.x).collect();
+        xs.sort_unstable();
+        assert_eq!(xs, vec![60, 66], "{:?}", found.candidates);
+        assert!(found.candidates.iter().all(|c| c.blended));
+        // One star with a flat (clipped) top is one candidate.
+        let c = star(100.0, 80.0, 400.0);
+        let found = detect_on(|x, y| c(x, y).min(250.0));
+        assert_eq!(found.candidates.len(), 1, "{:?}", found.candidates);
+        assert!(!found.candidates[0].blended);
+        // A streak is a trail, not a row of stars.
+        let found = detect_on(|x, y| {
+            // Distance from the line y = 20 + x/2.
+            let d = (y - 20.0 - 0.5 * x).abs() / 1.25f64.sqrt();
+            if (10.0..150.0).contains(&x) {
+                60.0 * (-d * d / 2.0).exp()
+            } else {
+                0.0
+            }
+        });
+        assert_eq!(found.trails.len(), 1, "{:?}", found.candidates);
+        assert!(found.candidates.is_empty(), "{:?}", found.candidates);
+    }
+
     #[test]
     fn convolution_of_a_delta_is_the_kernel_product() {
         let mut img = Array2::<f32>::zeros((40, 40));
