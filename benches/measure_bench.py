@@ -2,8 +2,11 @@
 background + extraction alone, on the same 6000x4000 16-bit file, in the same run.
 
 usage: python benches/measure_bench.py [path/to/subwatch] [--repeat N]
-(needs the cross-check environment: numpy, astropy, sep)
+                                      [--psf moffat|gaussian] [--fwhm PX] [--beta B]
+(needs the cross-check environment: numpy, astropy, sep). The default frame is the one
+the closing figures quote: Moffat beta 3.5, FWHM 3.5 px; the options try other stars.
 """
+import argparse
 import json
 import os
 import subprocess
@@ -17,21 +20,26 @@ from astropy.io import fits
 
 
 def main():
-    args = [a for a in sys.argv[1:] if not a.startswith("--")]
-    binary = os.path.abspath(args[0] if args else "target/release/subwatch")
-    repeat = 3
-    if "--repeat" in sys.argv:
-        repeat = int(sys.argv[sys.argv.index("--repeat") + 1])
+    parser = argparse.ArgumentParser()
+    parser.add_argument("binary", nargs="?", default="target/release/subwatch")
+    parser.add_argument("--repeat", type=int, default=3)
+    parser.add_argument("--psf", default="moffat", choices=["moffat", "gaussian"])
+    parser.add_argument("--fwhm", type=float, default=3.5)
+    parser.add_argument("--beta", type=float, default=3.5)
+    opts = parser.parse_args()
+    binary = os.path.abspath(opts.binary)
+    repeat = opts.repeat
     with tempfile.TemporaryDirectory() as tmp:
         frame = os.path.join(tmp, "big.fits")
         t0 = time.perf_counter()
         subprocess.run(
             [binary, "render", "--out", frame, "--width", "6000", "--height", "4000",
-             "--stars", "3000", "--psf", "moffat", "--beta", "3.5", "--fwhm", "3.5",
+             "--stars", "3000", "--psf", opts.psf, "--beta", str(opts.beta), "--fwhm", str(opts.fwhm),
              "--hot-pixels", "200", "--cosmic-rays", "200", "--seed", "5"],
             check=True,
         )
-        print(f"rendered 6000x4000 frame with 3000 stars in {time.perf_counter() - t0:.1f} s")
+        print(f"rendered 6000x4000 frame with 3000 stars ({opts.psf}, FWHM {opts.fwhm} px) "
+              f"in {time.perf_counter() - t0:.1f} s")
         pixels = 6000 * 4000
 
         ours = []

@@ -219,51 +219,57 @@ impl BackgroundMap {
         let cells: Vec<Option<(f64, f64)>> = ys
             .par_iter()
             .flat_map_iter(|&(y0, y1)| {
-                let xs = &xs;
-                let mut buf: Vec<f32> = Vec::with_capacity(bs * bs);
-                // The offset along this band of rows, evaluated once for all its boxes.
-                let mut band = vec![0.0f32; if offset.is_some() { (y1 - y0) * w } else { 0 }];
-                if let Some(o) = offset {
-                    for (k, row) in band.chunks_mut(w).enumerate() {
-                        o.level_row(y0 + k, row);
+                // Above ~2000 sky values the mode estimate no longer improves by much
+                // (its error is a few hundredths of σ); large boxes take every other pixel
+                // in a quincunx, which keeps the sample centred.
+                let sparse = |&(x0, x1): &(usize, usize)| (y1 - y0) * (x1 - x0) >= 2048;
+                let mut bufs: Vec<Vec<f32>> = xs
+                    .iter()
+                    .map(|b| Vec::with_capacity((y1 - y0) * (b.1 - b.0)))
+                    .collect();
+                // Row by row across all the band's boxes, so the offset row (when there
+                // is one) is worked out once per image row.
+                let mut add = vec![0.0f32; if offset.is_some() { w } else { 0 }];
+                for y in y0..y1 {
+                    let row = &data[y * w..(y + 1) * w];
+                    if let Some(o) = offset {
+                        o.level_row(y, &mut add);
+                    }
+                    let masked = mask.map(|m| &m[y * w..(y + 1) * w]);
+                    for (buf, b) in bufs.iter_mut().zip(&xs) {
+                        let (step, first) = if sparse(b) {
+                            // The first column of this row's share of the quincunx.
+                            (2, b.0 + (b.0 + y) % 2)
+                        } else {
+                            (1, b.0)
+                        };
+                        let columns = (first..b.1).step_by(step);
+                        match (masked, offset.is_some()) {
+                            (None, false) => {
+                                buf.extend(columns.map(|x| row[x]).filter(|v| v.is_finite()))
+                            }
+                            (None, true) => buf.extend(
+                                columns
+                                    .filter(|&x| row[x].is_finite())
+                                    .map(|x| row[x] + add[x]),
+                            ),
+                            (Some(m), false) => buf.extend(
+                                columns
+                                    .filter(|&x| !m[x] && row[x].is_finite())
+                                    .map(|x| row[x]),
+                            ),
+                            (Some(m), true) => buf.extend(
+                                columns
+                                    .filter(|&x| !m[x] && row[x].is_finite())
+                                    .map(|x| row[x] + add[x]),
+                            ),
+                        }
                     }
                 }
-                xs.iter()
-                    .map(move |&(x0, x1)| {
-                        buf.clear();
-                        // Above ~2000 sky values the mode estimate no longer improves by
-                        // much (its error is a few hundredths of σ); large boxes take
-                        // every other pixel in a quincunx, which keeps the sample centred.
-                        let sparse = (y1 - y0) * (x1 - x0) >= 2048;
-                        let step = if sparse { 2 } else { 1 };
-                        for y in y0..y1 {
-                            // The first column of this row's share of the quincunx.
-                            let first = if sparse { x0 + (x0 + y) % 2 } else { x0 };
-                            let range = y * w + first..y * w + x1;
-                            let values = data[range.clone()].iter().step_by(step);
-                            match (mask, band.is_empty()) {
-                                (None, true) => {
-                                    buf.extend(values.copied().filter(|v| v.is_finite()));
-                                }
-                                _ => {
-                                    let add = &band[if band.is_empty() {
-                                        0..0
-                                    } else {
-                                        (y - y0) * w..(y - y0 + 1) * w
-                                    }];
-                                    for (i, &v) in range.step_by(step).zip(values) {
-                                        if v.is_finite() && mask.is_none_or(|m| !m[i]) {
-                                            buf.push(if add.is_empty() {
-                                                v
-                                            } else {
-                                                v + add[i - y * w]
-                                            });
-                                        }
-                                    }
-                                }
-                            }
-                        }
-                        let area = (y1 - y0) * (x1 - x0) / if sparse { 2 } else { 1 };
+                bufs.into_iter()
+                    .zip(&xs)
+                    .map(|(mut buf, b)| {
+                        let area = (y1 - y0) * (b.1 - b.0) / if sparse(b) { 2 } else { 1 };
                         // A box mostly covered by sources or bad pixels says little
                         // about the sky; its neighbours fill it in below.
                         if buf.len() * 10 < area * 3 {

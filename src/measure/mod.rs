@@ -18,7 +18,7 @@ use serde::Serialize;
 use crate::frame::bayer::{channel_plane, superpixel_luminance, BayerPattern, Channel};
 use background::{BackgroundMap, BackgroundParams};
 use detect::{detect, Candidate, DetectParams};
-use psf::{fit_gaussian, fit_moffat, Guess, PsfFit, PsfModel, Stamp};
+use psf::{fit_gaussian, fit_profile, Guess, PsfFit, PsfModel, Stamp};
 use stats::{mad_sigma, median_f64, median_in_place};
 
 #[derive(Debug, Clone, Copy)]
@@ -254,21 +254,28 @@ pub fn measure_image(
 
     // Hot pixels and cosmic-ray hits are taken out before detection, so their filtered
     // wings cannot swallow a star nearby; they are reported as sharp detections.
-    let cleaned = clean_sharp_pixels(&mut pixels, &bkg, bright);
+    let cleaned = clean_sharp_pixels(&mut pixels, &bkg, &bright);
 
-    // First detection with the configured kernel; re-detect with a kernel matched to
-    // the stars when the frame's PSF turns out much wider or narrower.
+    // Detection with a kernel matched to the stars: the configured one, unless the
+    // brightest peaks of the cleaned frame show a PSF much wider or narrower; and once
+    // more with a matched kernel if the detected stars still disagree with it.
     let mut dparams = params.detect;
+    let peaks = bright_peaks(&pixels, &bright);
+    if let Some(seen) = estimate_fwhm(&pixels, &peaks, &bkg, saturation, dparams.kernel_fwhm) {
+        if (seen / dparams.kernel_fwhm - 1.0).abs() > 0.35 {
+            dparams.kernel_fwhm = seen.clamp(1.5, 15.0);
+        }
+    }
     let mut found = detect(&pixels, &bkg, &dparams);
     let mut candidates = std::mem::take(&mut found.candidates);
     let mut fwhm_guess = estimate_fwhm(&pixels, &candidates, &bkg, saturation, dparams.kernel_fwhm)
         .unwrap_or(dparams.kernel_fwhm);
     if (fwhm_guess / dparams.kernel_fwhm - 1.0).abs() > 0.35 {
+        let start = fwhm_guess;
         dparams.kernel_fwhm = fwhm_guess.clamp(1.5, 15.0);
         found = detect(&pixels, &bkg, &dparams);
         candidates = std::mem::take(&mut found.candidates);
-        fwhm_guess =
-            estimate_fwhm(&pixels, &candidates, &bkg, saturation, fwhm_guess).unwrap_or(fwhm_guess);
+        fwhm_guess = estimate_fwhm(&pixels, &candidates, &bkg, saturation, start).unwrap_or(start);
     }
 
     // Mask the sources and re-estimate the sky without them (crowded fields), then the
@@ -700,13 +707,13 @@ fn sharp_pixel(img: &Array2<f32>, x: usize, y: usize, sigma: f32) -> Option<(f32
 fn clean_sharp_pixels(
     residual: &mut Array2<f32>,
     bkg: &BackgroundMap,
-    bright: Vec<(usize, usize, f32)>,
+    bright: &[(usize, usize, f32)],
 ) -> Vec<Rejected> {
     let (h, w) = residual.dim();
     let img = &*residual;
     let mut found: Vec<(usize, usize, f32, f32)> = bright
-        .into_par_iter()
-        .filter_map(|(x, y, sigma)| sharp_pixel(img, x, y, sigma).map(|(v, med)| (x, y, v, med)))
+        .par_iter()
+        .filter_map(|&(x, y, sigma)| sharp_pixel(img, x, y, sigma).map(|(v, med)| (x, y, v, med)))
         .collect();
     let mut flagged = Vec::new();
     // Replacing a pixel of a cosmic-ray track can expose its neighbour as the next sharp
@@ -962,23 +969,17 @@ fn measure_candidate(
         y0: fy,
         fwhm: fwhm_guess,
     };
-    let Some(gauss) = fit_gaussian(&stamp, guess) else {
-        return reject(RejectKind::Unfit, fx, fy);
-    };
     // The Moffat profile's extra freedom (its wings) is only measurable on stars well
     // above the noise; stars fainter than the ones that vote on the frame's shape keep
     // the Gaussian, which halves the fitting time on a typical frame. The SNR here is
     // the Gaussian's flux over the noise in its optimal footprint, 4πσ_aσ_b pixels.
-    let (ga, gb) = gauss.model_axes();
-    let footprint = 4.0 * std::f64::consts::PI * (ga / 2.3548) * (gb / 2.3548);
-    let snr_estimate = gauss.total_flux() / (noise * footprint.max(1.0).sqrt());
-    let fit = if snr_estimate >= moffat_min_snr {
-        match fit_moffat(&stamp, &gauss) {
-            Some(m) if m.ssr < gauss.ssr => m,
-            _ => gauss,
-        }
-    } else {
-        gauss
+    let worth_moffat = |gauss: &PsfFit| {
+        let (ga, gb) = gauss.model_axes();
+        let footprint = 4.0 * std::f64::consts::PI * (ga / 2.3548) * (gb / 2.3548);
+        gauss.total_flux() / (noise * footprint.max(1.0).sqrt()) >= moffat_min_snr
+    };
+    let Some(fit) = fit_profile(&stamp, guess, worth_moffat) else {
+        return reject(RejectKind::Unfit, fx, fy);
     };
     // A fit whose centre wandered off the detection found something else.
     if (fit.x0 - fx).hypot(fit.y0 - fy) > 0.5 * fwhm_guess + 1.5 {
@@ -994,6 +995,31 @@ fn measure_candidate(
             .iter()
             .any(|&(ox, oy)| (ox - fx).hypot(oy - fy) <= 2.5 * fwhm_guess + 2.0),
     })
+}
+
+/// Bright pixels (from `subtract_and_flag`) that stand above every other pixel within
+/// 2 px in the cleaned residual: the cores of the brightest stars, found before any
+/// detection so the matched filter can be chosen to fit them. Significance is the
+/// pixel's own SNR.
+fn bright_peaks(residual: &Array2<f32>, bright: &[(usize, usize, f32)]) -> Vec<Candidate> {
+    let (h, w) = residual.dim();
+    bright
+        .par_iter()
+        .filter(|&&(x, y, _)| x >= 2 && y >= 2 && x + 2 < w && y + 2 < h)
+        .filter_map(|&(x, y, sigma)| {
+            let v = residual[(y, x)];
+            let highest = (y - 2..=y + 2)
+                .all(|yy| (x - 2..=x + 2).all(|xx| (xx == x && yy == y) || residual[(yy, xx)] < v));
+            (highest && sigma > 0.0).then(|| Candidate {
+                x,
+                y,
+                significance: f64::from(v / sigma),
+                area: 1,
+                blended: false,
+                component: 0,
+            })
+        })
+        .collect()
 }
 
 /// FWHM of the brightest isolated, unsaturated detections, from Gaussian fits.
