@@ -7,11 +7,7 @@
 use ndarray::Array2;
 use rayon::prelude::*;
 
-use super::stats::{median_f64, sigma_clip};
-
-/// The standard deviation of a normal distribution truncated at ±3σ is 0.98658σ
-/// (variance 1 − 2·3·φ(3)/(2Φ(3) − 1) = 0.97334); dividing by it undoes the clipping.
-const CLIP3_STD_CORRECTION: f64 = 0.986_58;
+use super::stats::{median_f64, sigma_clip_on, Grid, CLIP3_STD_CORRECTION};
 
 #[derive(Debug, Clone, Copy)]
 pub struct BackgroundParams {
@@ -19,6 +15,9 @@ pub struct BackgroundParams {
     pub box_size: usize,
     /// Side of the median filter over the mesh (odd; 1 disables it).
     pub filter_size: usize,
+    /// The grid the raw pixel values sit on, when they do (see [`Grid`]): the sky's
+    /// median is then taken as that of grouped data, not snapped to the grid.
+    pub grid: Option<Grid>,
 }
 
 impl Default for BackgroundParams {
@@ -26,6 +25,7 @@ impl Default for BackgroundParams {
         Self {
             box_size: 64,
             filter_size: 3,
+            grid: None,
         }
     }
 }
@@ -275,7 +275,7 @@ impl BackgroundMap {
                         if buf.len() * 10 < area * 3 {
                             return None;
                         }
-                        let s = sigma_clip(&mut buf, 3.0, 5)?;
+                        let s = sigma_clip_on(&mut buf, 3.0, 5, params.grid)?;
                         Some((s.mode(), s.std / CLIP3_STD_CORRECTION))
                     })
                     .collect::<Vec<_>>()

@@ -50,6 +50,10 @@ pub fn mad_sigma(values: &[f32], center: f64, scratch: &mut Vec<f32>) -> Option<
     median_in_place(scratch).map(|m| m * MAD_TO_SIGMA)
 }
 
+/// The standard deviation of a normal distribution truncated at ±3σ is 0.98658σ
+/// (variance 1 − 2·3·φ(3)/(2Φ(3) − 1) = 0.97334); dividing by it undoes the clipping.
+pub const CLIP3_STD_CORRECTION: f64 = 0.986_58;
+
 /// Result of iterative sigma clipping.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct ClippedStats {
@@ -80,12 +84,28 @@ impl ClippedStats {
 /// The sample is sorted once; every pass is then two binary searches and a few
 /// differences of running sums, instead of a filter, two sums and a selection.
 pub fn sigma_clip(values: &mut Vec<f32>, kappa: f64, max_iter: usize) -> Option<ClippedStats> {
+    sigma_clip_on(values, kappa, max_iter, None)
+}
+
+/// As [`sigma_clip`], for values known to lie on `grid` (up to rounding, which is
+/// undone first); the median is then that of grouped data. Without a grid one is
+/// looked for in the sample itself.
+pub fn sigma_clip_on(
+    values: &mut Vec<f32>,
+    kappa: f64,
+    max_iter: usize,
+    grid: Option<Grid>,
+) -> Option<ClippedStats> {
     values.retain(|v| v.is_finite());
     if values.is_empty() {
         return None;
     }
+    if let Some(g) = grid {
+        values.iter_mut().for_each(|v| *v = g.snap(*v));
+    }
     radix_sort(values);
     let v = &values[..];
+    let step = grid.map(|g| g.step).or_else(|| grid_step(v));
     // Running sums about the middle value keep the variance free of cancellation.
     let shift = f64::from(v[v.len() / 2]);
     let mut s1 = vec![0.0; v.len() + 1];
@@ -103,12 +123,7 @@ pub fn sigma_clip(values: &mut Vec<f32>, kappa: f64, max_iter: usize) -> Option<
         let sum = s1[hi] - s1[lo];
         let mean = sum / n as f64;
         let var = ((s2[hi] - s2[lo]) - sum * mean).max(0.0) / n.max(2).saturating_sub(1) as f64;
-        let mid = lo + n / 2;
-        let median = if n % 2 == 1 {
-            f64::from(v[mid])
-        } else {
-            0.5 * (f64::from(v[mid - 1]) + f64::from(v[mid]))
-        };
+        let median = sorted_median(&v[lo..hi], step);
         ClippedStats {
             mean: shift + mean,
             median,
@@ -135,6 +150,70 @@ pub fn sigma_clip(values: &mut Vec<f32>, kappa: f64, max_iter: usize) -> Option<
         }
     }
     Some(stats)
+}
+
+/// The step of a sorted sample whose values sit on a grid: whole ADU from a camera, or
+/// steps of 4 or 16 from a 14- or 12-bit sensor scaled to 16 bits. Such a sample's
+/// median and MAD snap to the grid, off by up to half a step, which is a sizeable part
+/// of the sky noise when the noise spans only a few steps. `Some(step)` when at most a
+/// quarter of the values are distinct; the step is the smallest gap between them.
+pub fn grid_step(sorted: &[f32]) -> Option<f64> {
+    let n = sorted.len();
+    if n < 20 {
+        return None;
+    }
+    let mut distinct = 1;
+    let mut gap = f64::INFINITY;
+    for pair in sorted.windows(2) {
+        if pair[1] != pair[0] {
+            distinct += 1;
+            gap = gap.min(f64::from(pair[1]) - f64::from(pair[0]));
+        }
+    }
+    (distinct * 4 <= n && gap.is_finite() && gap > 0.0).then_some(gap)
+}
+
+/// Median of sorted values. On a grid of `step`, the median of grouped data: each
+/// value taken as spread evenly over its step, m − step/2 + step·(n/2 − below)/at,
+/// with `below` and `at` the counts under and at the middle value m.
+pub fn sorted_median(v: &[f32], step: Option<f64>) -> f64 {
+    let n = v.len();
+    let mid = n / 2;
+    match step {
+        Some(q) if n > 0 => {
+            let m = v[mid];
+            let below = v.partition_point(|&x| x < m);
+            let at = v.partition_point(|&x| x <= m) - below;
+            f64::from(m) - 0.5 * q + q * (0.5 * n as f64 - below as f64) / at as f64
+        }
+        _ if n % 2 == 1 => f64::from(v[mid]),
+        _ if n > 0 => 0.5 * (f64::from(v[mid - 1]) + f64::from(v[mid])),
+        _ => f64::NAN,
+    }
+}
+
+/// The grid a camera's values sit on: `anchor + k·step` for whole k.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Grid {
+    pub anchor: f64,
+    pub step: f64,
+}
+
+impl Grid {
+    /// The grid of a sample of raw pixel values (reordered), if it has one.
+    pub fn of_sample(values: &mut [f32]) -> Option<Grid> {
+        radix_sort(values);
+        grid_step(values).map(|step| Grid {
+            anchor: f64::from(values[values.len() / 2]),
+            step,
+        })
+    }
+
+    /// The nearest grid value: undoes the rounding a subtraction and re-addition of a
+    /// smooth level leaves on values that were on the grid.
+    pub fn snap(&self, v: f32) -> f32 {
+        (self.anchor + self.step * ((f64::from(v) - self.anchor) / self.step).round()) as f32
+    }
 }
 
 /// Sort finite f32 values ascending by LSD radix on their bit patterns (flipped so
@@ -224,6 +303,38 @@ mod tests {
         expected.sort_by(f32::total_cmp);
         radix_sort(&mut v);
         assert_eq!(v, expected);
+    }
+
+    #[test]
+    fn statistics_on_a_grid_do_not_snap_to_it() {
+        // A normal sample (σ 1.2, mean 100.3) stored as whole numbers, as a camera with
+        // a high gain stores the sky. The plain median snaps to the grid (100); the
+        // grouped-data median does not. Rounding adds q²/12 to the variance (Sheppard
+        // 1898), so the clipped scatter is sqrt(1.44 + 1/12) = 1.234 before the
+        // clipping correction.
+        let n = 20_001;
+        let values: Vec<f32> = (0..n)
+            .map(|i| (100.3 + 1.2 * inverse_normal((i as f64 + 0.5) / n as f64)).round() as f32)
+            .collect();
+        assert_eq!(median(&values), Some(100.0));
+        let s = sigma_clip(&mut values.clone(), 3.0, 5).unwrap();
+        assert!((s.median - 100.3).abs() < 0.03, "{s:?}");
+        assert!((s.mode() - 100.3).abs() < 0.06, "{s:?}");
+        assert!((s.std / 0.986_58 - 1.234).abs() < 0.03, "{s:?}");
+        // The same values after a smooth level was taken off and put back (f32
+        // rounding moves them off the grid) give the same answer with the grid known.
+        let mut shaken: Vec<f32> = values
+            .iter()
+            .enumerate()
+            .map(|(i, &v)| {
+                let level = 37.123_f32 + 1e-4 * i as f32;
+                (v - level) + level
+            })
+            .collect();
+        let grid = Grid::of_sample(&mut values.clone()).unwrap();
+        assert_eq!(grid.step, 1.0);
+        let t = sigma_clip_on(&mut shaken, 3.0, 5, Some(grid)).unwrap();
+        assert!((t.median - s.median).abs() < 1e-9, "{t:?} vs {s:?}");
     }
 
     #[test]
