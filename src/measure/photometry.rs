@@ -3,7 +3,7 @@
 
 use ndarray::Array2;
 
-use super::stats::sigma_clip;
+use super::stats::{sigma_clip_on, Grid};
 
 /// Result of one aperture measurement.
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -55,7 +55,25 @@ pub fn aperture(
     r_in: f64,
     r_out: f64,
 ) -> Option<Aperture> {
-    apertures(residual, cx, cy, [r], r_in, r_out).map(|[a]| a)
+    let sky = SkyAnnulus {
+        r_in,
+        r_out,
+        grid: None,
+    };
+    apertures(residual, cx, cy, [r], sky).map(|[a]| a)
+}
+
+/// The annulus an aperture's local sky is taken from.
+#[derive(Debug, Clone, Copy)]
+pub struct SkyAnnulus {
+    pub r_in: f64,
+    pub r_out: f64,
+    /// When the raw values sit on a grid that is coarse against the sky noise: the grid
+    /// and the background level subtracted near the star. The annulus values are then
+    /// put back on the grid and their median taken as that of grouped data; a plain
+    /// median would snap to the grid, off by up to half a step in every pixel of the
+    /// aperture.
+    pub grid: Option<(Grid, f64)>,
 }
 
 /// Several concentric apertures sharing one sky annulus, in one pass over the pixels.
@@ -65,9 +83,9 @@ pub fn apertures<const N: usize>(
     cx: f64,
     cy: f64,
     radii: [f64; N],
-    r_in: f64,
-    r_out: f64,
+    sky_annulus: SkyAnnulus,
 ) -> Option<[Aperture; N]> {
+    let SkyAnnulus { r_in, r_out, grid } = sky_annulus;
     let (h, w) = residual.dim();
     let x0 = (cx - r_out).floor().max(0.0) as usize;
     let x1 = ((cx + r_out).ceil() as usize).min(w.saturating_sub(1));
@@ -103,9 +121,15 @@ pub fn apertures<const N: usize>(
     }
     let n_sky = sky.len();
     let local_sky = if n_sky >= 8 {
-        sigma_clip(&mut sky, 3.0, 5)
-            .map(|s| s.median)
-            .unwrap_or(0.0)
+        match grid {
+            Some((g, level)) => {
+                sky.iter_mut()
+                    .for_each(|v| *v = (f64::from(*v) + level) as f32);
+                sigma_clip_on(&mut sky, 3.0, 5, Some(g)).map(|s| s.median - level)
+            }
+            None => sigma_clip_on(&mut sky, 3.0, 5, None).map(|s| s.median),
+        }
+        .unwrap_or(0.0)
     } else {
         0.0
     };
@@ -284,7 +308,12 @@ mod tests {
         // Analytic: a circular Gaussian holds 1 − exp(−r²/2σ²) of its flux within r; the
         // pixels widen σ² by 1/12 px², and an edge pixel's light counts as spread evenly
         // over it, which at r = σ costs a few per cent.
-        let [inner, outer] = apertures(&img, 30.3, 29.6, [2.0, 12.0], 15.0, 25.0).unwrap();
+        let sky = SkyAnnulus {
+            r_in: 15.0,
+            r_out: 25.0,
+            grid: None,
+        };
+        let [inner, outer] = apertures(&img, 30.3, 29.6, [2.0, 12.0], sky).unwrap();
         assert_eq!(outer, a);
         let expected = 10_000.0 * (1.0 - (-(2.0f64 * 2.0) / (2.0 * (4.0 + 1.0 / 12.0))).exp());
         assert!(
