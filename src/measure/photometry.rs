@@ -69,10 +69,10 @@ pub struct SkyAnnulus {
     pub r_in: f64,
     pub r_out: f64,
     /// When the raw values sit on a grid that is coarse against the sky noise: the grid
-    /// and the background level subtracted near the star. The annulus values are then
-    /// put back on the grid and their median taken as that of grouped data; a plain
-    /// median would snap to the grid, off by up to half a step in every pixel of the
-    /// aperture.
+    /// and the background level subtracted near the star. That level is added back to
+    /// the annulus values, which brings them next to the grid again, and their median is
+    /// taken as that of grouped data; a plain median would snap to the grid, off by up
+    /// to half a step in every pixel of the aperture.
     pub grid: Option<(Grid, f64)>,
 }
 
