@@ -312,16 +312,30 @@ fn anomaly_alerts(store: &Store, config: &Config, night: &str) {
         };
         let message = format!("{kind} {place}, seen in {} frame(s)", a.detections.len());
         let alert_kind = format!("anomaly_{kind}");
-        if store
-            .alert_exists(night, &alert_kind, &message)
-            .unwrap_or(true)
+        // Once per anomaly: its count of frames and (for a moving object) its mean
+        // position change as frames arrive, its first detection does not.
+        let identity = alert_identity(night, &alert_kind, a);
+        if store.meta(&identity).ok().flatten().is_some()
+            || store
+                .alert_exists(night, &alert_kind, &message)
+                .unwrap_or(true)
         {
             continue;
         }
         if let Some(line) = raise_alert(store, config, night, &alert_kind, &message) {
+            let _ = store.set_meta(&identity, &message);
             tracing::warn!("{line}");
         }
     }
+}
+
+/// A key that names one anomaly across the night's repeated analyses: its kind and its
+/// first detection (frame and pixel, rounded), which later frames do not change.
+fn alert_identity(night: &str, alert_kind: &str, a: &crate::contract::AnomalyRecord) -> String {
+    let first = a.detections.first().map_or(String::new(), |d| {
+        format!("{}:{:.0}:{:.0}", d.path, d.x, d.y)
+    });
+    format!("alerted:{night}:{alert_kind}:{first}")
 }
 
 /// Free bytes on the file system holding `folder`.
@@ -944,4 +958,47 @@ async fn daemon(
         }
     }
     Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::contract::{AnomalyRecord, DetectionRecord};
+    use crate::night::AnomalyKind;
+
+    fn moving(frames: usize, ra: f64) -> AnomalyRecord {
+        AnomalyRecord {
+            kind: AnomalyKind::Moving,
+            ra_deg: Some(ra),
+            dec_deg: Some(12.5),
+            detections: (0..frames)
+                .map(|i| DetectionRecord {
+                    path: format!("/data/kfa_{i:03}.fits"),
+                    x: 100.2 + 3.0 * i as f64,
+                    y: 200.4,
+                })
+                .collect(),
+            detail: serde_json::Value::Null,
+            target: None,
+            filter: None,
+        }
+    }
+
+    #[test]
+    fn a_growing_track_keeps_its_alert_identity() {
+        // Later analyses of the same asteroid see more frames and a shifted mean position.
+        let early = alert_identity("2026-12-01", "anomaly_moving", &moving(3, 40.01));
+        let later = alert_identity("2026-12-01", "anomaly_moving", &moving(9, 40.03));
+        assert_eq!(early, later);
+        let mut other = moving(3, 40.01);
+        other.detections[0].x += 50.0;
+        assert_ne!(
+            early,
+            alert_identity("2026-12-01", "anomaly_moving", &other)
+        );
+        assert_ne!(
+            early,
+            alert_identity("2026-12-02", "anomaly_moving", &moving(3, 40.01))
+        );
+    }
 }
