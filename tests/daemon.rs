@@ -546,3 +546,54 @@ fn rejected_frames_can_be_moved_aside_when_asked() {
         "accepted frames stay"
     );
 }
+
+#[test]
+fn tonights_moving_object_raises_its_alert() {
+    // Anomaly alerts look at the night on the wall clock, so these frames are dated
+    // tonight: the last 20 minutes, or the next 20 should that cross the noon boundary
+    // between two nights (site time zone UTC here).
+    use subwatch::sim::night::{render_night, NightPlan};
+    let s = site("");
+    let mut cfg = std::fs::read_to_string(&s.config).unwrap();
+    cfg.push_str("[alerts]\nanomaly_kinds = [\"moving\"]\n");
+    std::fs::write(&s.config, cfg).unwrap();
+    let mut plan = NightPlan::full(14).quiet();
+    plan.moving_object = true;
+    plan.frames = 8;
+    let span = plan.cadence_s * plan.frames as f64;
+    let now = chrono::Utc::now();
+    let label = |t: chrono::DateTime<chrono::Utc>| (t - chrono::Duration::hours(12)).date_naive();
+    let before = now - chrono::Duration::seconds(span as i64 + 60);
+    let start = if label(before) == label(now) {
+        before
+    } else {
+        now + chrono::Duration::seconds(60)
+    };
+    plan.start = start.format("%Y-%m-%dT%H:%M:%S").to_string();
+    let (frames, truth) = render_night(&plan);
+    assert!(truth.iter().any(|a| a.kind == "moving"));
+    let d = Daemon::start(&s.config);
+    std::thread::sleep(Duration::from_millis(300));
+    let conn = rusqlite::Connection::open(&s.db).unwrap();
+    feed_one_by_one(&s, &conn, &frames);
+    // The checks run once a minute.
+    let deadline = Instant::now() + Duration::from_secs(90);
+    let mut alerts: Vec<(String, String)> = Vec::new();
+    while Instant::now() < deadline {
+        alerts = conn
+            .prepare("SELECT kind, message FROM alerts WHERE kind LIKE 'anomaly_%'")
+            .unwrap()
+            .query_map([], |r| Ok((r.get(0)?, r.get(1)?)))
+            .unwrap()
+            .map(Result::unwrap)
+            .collect();
+        if !alerts.is_empty() {
+            break;
+        }
+        std::thread::sleep(Duration::from_millis(500));
+    }
+    d.kill9();
+    assert_eq!(alerts.len(), 1, "{alerts:?}");
+    assert_eq!(alerts[0].0, "anomaly_moving");
+    assert!(alerts[0].1.starts_with("moving at "), "{}", alerts[0].1);
+}
