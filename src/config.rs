@@ -158,6 +158,9 @@ pub struct MailConfig {
     pub security: Option<String>,
     pub username: Option<String>,
     pub password_file: Option<PathBuf>,
+    /// An extra certificate authority (PEM) to trust for the mail server: one on the
+    /// observatory's own network with a certificate of its own making.
+    pub ca_file: Option<PathBuf>,
     pub from: Option<String>,
     pub to: Vec<String>,
     pub summary_time: Option<String>,
@@ -313,6 +316,7 @@ pub fn parse(text: &str, base: &Path) -> Result<Config, Vec<ConfigProblem>> {
     config.actions.lists_folder = config.actions.lists_folder.as_ref().map(absolute);
     config.report.folder = config.report.folder.as_ref().map(absolute);
     config.mail.password_file = config.mail.password_file.as_ref().map(absolute);
+    config.mail.ca_file = config.mail.ca_file.as_ref().map(absolute);
     problems.extend(config.validate(text));
     if problems.is_empty() {
         Ok(config)
@@ -401,6 +405,7 @@ fn schema() -> BTreeMap<&'static str, &'static [&'static str]> {
                 "security",
                 "username",
                 "password_file",
+                "ca_file",
                 "from",
                 "to",
                 "summary_time",
@@ -664,6 +669,11 @@ impl Config {
                     Ok(_) => {}
                     Err(e) => errors.push(format!("mail.password_file: {}: {e}", pw.display())),
                 }
+            }
+        }
+        if let Some(ca) = &self.mail.ca_file {
+            if let Err(e) = std::fs::read(ca) {
+                errors.push(format!("mail.ca_file: {}: {e}", ca.display()));
             }
         }
         (errors, warnings)

@@ -9,6 +9,7 @@ use std::time::Duration;
 use lettre::message::header::ContentType;
 use lettre::message::{Attachment, Mailbox, MultiPart, SinglePart};
 use lettre::transport::smtp::authentication::Credentials;
+use lettre::transport::smtp::client::{Certificate, Tls, TlsParameters};
 use lettre::{Address, Message, SmtpTransport, Transport};
 
 use crate::config::Config;
@@ -43,6 +44,8 @@ pub struct MailSettings {
     pub security: Security,
     pub username: Option<String>,
     password: Option<String>,
+    /// An extra certificate authority to trust, PEM.
+    ca_pem: Option<Vec<u8>>,
     pub from: Mailbox,
     pub to: Vec<Mailbox>,
 }
@@ -99,12 +102,20 @@ impl MailSettings {
                         .map_err(|e| MailError::Settings(format!("to {t:?}: {e}")))
                 })
                 .collect::<Result<Vec<_>, _>>()?;
+        let ca_pem = match &m.ca_file {
+            Some(p) => Some(
+                std::fs::read(p)
+                    .map_err(|e| MailError::Settings(format!("ca_file {}: {e}", p.display())))?,
+            ),
+            None => None,
+        };
         Ok(MailSettings {
             host: m.smtp_host.clone(),
             port,
             security,
             username: m.username.clone(),
             password,
+            ca_pem,
             from,
             to,
         })
@@ -116,10 +127,23 @@ impl MailSettings {
             port: self.port,
             reason: e.to_string(),
         };
-        let mut b = match self.security {
-            Security::StartTls => SmtpTransport::starttls_relay(host).map_err(fail)?,
-            Security::Tls => SmtpTransport::relay(host).map_err(fail)?,
-            Security::None => SmtpTransport::builder_dangerous(host),
+        let mut b = match (self.security, &self.ca_pem) {
+            (Security::None, _) => SmtpTransport::builder_dangerous(host),
+            // The usual roots plus the configured authority; the server's certificate
+            // is still checked against its name.
+            (security, Some(pem)) => {
+                let params = TlsParameters::builder(host.to_string())
+                    .add_root_certificate(Certificate::from_pem(pem).map_err(fail)?)
+                    .build_rustls()
+                    .map_err(fail)?;
+                SmtpTransport::builder_dangerous(host).tls(if security == Security::Tls {
+                    Tls::Wrapper(params)
+                } else {
+                    Tls::Required(params)
+                })
+            }
+            (Security::StartTls, None) => SmtpTransport::starttls_relay(host).map_err(fail)?,
+            (Security::Tls, None) => SmtpTransport::relay(host).map_err(fail)?,
         };
         b = b.port(self.port).timeout(Some(Duration::from_secs(30)));
         if let (Some(u), Some(p)) = (&self.username, &self.password) {

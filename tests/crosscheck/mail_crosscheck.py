@@ -5,7 +5,10 @@ Checks: the summary arrives; it has a plain-text part, an HTML part, inline PNG 
 whose Content-IDs are exactly the cid: references of the HTML, and a CSV attachment with
 one row per frame; a header with <script> and CR/LF in OBJECT gives escaped HTML and an
 intact one-line subject; with the server down the mail waits in the outbox, and after a
-restart it arrives exactly once.
+restart it arrives exactly once. Then over TLS, with a certificate authority made by
+trustme (an outside library): STARTTLS on one port and implicit TLS on another both
+deliver when the authority is configured as `ca_file`, and without it the unknown
+certificate is refused and the mail kept.
 
 usage: python mail_crosscheck.py path/to/subwatch
 """
@@ -17,12 +20,14 @@ import os
 import re
 import signal
 import socket
+import ssl
 import subprocess
 import sys
 import tempfile
 import time
 from email import policy
 
+import trustme
 from aiosmtpd.controller import Controller
 
 from common import Checks
@@ -128,6 +133,45 @@ def main():
         server.stop()
         checks.record("after the restart it arrives exactly once", len(handler2.messages) == 1 and first.returncode == 0
                       and second.stdout.startswith("sent 0"), f"{len(handler2.messages)} message(s); {first.stdout.strip()} / {second.stdout.strip()}")
+
+        # TLS: an authority of our own, a server certificate for "localhost".
+        ca = trustme.CA()
+        server_ctx = ssl.create_default_context(ssl.Purpose.CLIENT_AUTH)
+        ca.issue_cert("localhost").configure_cert(server_ctx)
+        ca_file = os.path.join(tmp, "mail-ca.pem")
+        ca.cert_pem.write_to_path(ca_file)
+        base = open(cfg).read().split("[mail]")[0]
+
+        def tls_config(name, port, security, with_ca):
+            path = os.path.join(tmp, name)
+            with open(path, "w") as f:
+                f.write(base + f'[mail]\nsmtp_host = "localhost"\nsmtp_port = {port}\nsecurity = "{security}"\n'
+                        + (f'ca_file = "{ca_file}"\n' if with_ca else "")
+                        + 'from = "subwatch@kestrel-ridge.example"\nto = ["observer@kestrel-ridge.example"]\n')
+            return path
+
+        for security, kwargs in (("starttls", {"tls_context": server_ctx, "require_starttls": True}),
+                                 ("tls", {"ssl_context": server_ctx})):
+            port = free_port()
+            handler = Collect()
+            server = Controller(handler, hostname="127.0.0.1", port=port, **kwargs)
+            server.start()
+            r = run(binary, "report", f"--config={tls_config(security + '.toml', port, security, True)}",
+                    "--night=2026-03-14", "--send", check=False)
+            time.sleep(0.5)
+            subjects = [email.message_from_bytes(m, policy=policy.default)["Subject"] for m in handler.messages]
+            checks.record(f"security = \"{security}\" with ca_file delivers", r.returncode == 0 and len(subjects) == 1
+                          and subjects[0].startswith("subwatch night 2026-03-14"),
+                          f"exit {r.returncode}, {len(subjects)} message(s) {r.stderr.strip()[-200:]}")
+            if security == "starttls":
+                # The same server, its authority not configured: refused, kept.
+                r = run(binary, "report", f"--config={tls_config('untrusted.toml', port, security, False)}",
+                        "--night=2026-03-14", "--send", check=False)
+                time.sleep(0.5)
+                checks.record("an unknown certificate is refused and the mail kept",
+                              r.returncode == 3 and "kept in the outbox" in r.stderr and len(handler.messages) == 1,
+                              r.stderr.strip()[-200:])
+            server.stop()
     return checks.finish()
 
 

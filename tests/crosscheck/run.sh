@@ -16,7 +16,7 @@ failed=0
 log="$(mktemp)"
 trap 'rm -f "$log"' EXIT
 
-if ! "$py" -c 'import numpy, scipy, astropy, photutils, sep, erfa, aiosmtpd' 2>/dev/null; then
+if ! "$py" -c 'import numpy, scipy, astropy, photutils, sep, erfa, aiosmtpd, trustme' 2>/dev/null; then
     echo "error: $py cannot import numpy/scipy/astropy/photutils/sep; install tests/crosscheck/requirements.txt" >&2
     echo "0 passed, 1 failed"
     exit 1
