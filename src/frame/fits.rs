@@ -230,44 +230,38 @@ fn decode_hdu(
         // took longer than several measurement stages together.
         let compressed = unsafe { sys::fits_is_compressed_image(file.0, &mut status) };
         check(status, "checking for tile compression").map_err(fail)?;
-        if head.starts_with(b"SIMPLE") && compressed == 0 {
+        let data = if head.starts_with(b"SIMPLE") && compressed == 0 {
             let layout = plain_layout(file.0).map_err(fail)?;
             // cfitsio is done with the file: close it while still holding the lock.
             drop(file);
             drop(_guard);
-            let data = read_plain(path, &layout, pixels as usize).map_err(fail)?;
-            let pixels = Array2::from_shape_vec((height as usize, width as usize), data)
-                .map_err(|e| fail(format!("bad image shape: {e}")))?;
-            return Ok(DecodedImage {
-                pixels,
-                cards,
-                bitpix,
-                hdu_index: (hdu - 1) as usize,
-            });
-        }
-        let mut data: Vec<f32> = crate::buffer::try_zeroed(pixels as usize)
-            .ok_or_else(|| fail(format!("cannot allocate {pixels} pixels")))?;
-        let mut any_null: c_int = 0;
-        // A NaN null value makes cfitsio replace BLANK (integer) pixels by NaN.
-        // SAFETY: `data` holds exactly `pixels` elements.
-        unsafe {
-            sys::ffgpve(
-                file.0,
-                0,
-                1,
-                pixels as sys::LONGLONG,
-                f32::NAN,
-                data.as_mut_ptr(),
-                &mut any_null,
-                &mut status,
-            )
+            read_plain(path, &layout, pixels as usize).map_err(fail)?
+        } else {
+            let mut data: Vec<f32> = crate::buffer::try_zeroed(pixels as usize)
+                .ok_or_else(|| fail(format!("cannot allocate {pixels} pixels")))?;
+            let mut any_null: c_int = 0;
+            // A NaN null value makes cfitsio replace BLANK (integer) pixels by NaN.
+            // SAFETY: `data` holds exactly `pixels` elements.
+            unsafe {
+                sys::ffgpve(
+                    file.0,
+                    0,
+                    1,
+                    pixels as sys::LONGLONG,
+                    f32::NAN,
+                    data.as_mut_ptr(),
+                    &mut any_null,
+                    &mut status,
+                )
+            };
+            if status != 0 {
+                return Err(fail(format!(
+                    "pixel data unreadable (truncated file?): {}",
+                    cfitsio_message(status)
+                )));
+            }
+            data
         };
-        if status != 0 {
-            return Err(fail(format!(
-                "pixel data unreadable (truncated file?): {}",
-                cfitsio_message(status)
-            )));
-        }
         let pixels = Array2::from_shape_vec((height as usize, width as usize), data)
             .map_err(|e| fail(format!("bad image shape: {e}")))?;
         return Ok(DecodedImage {
