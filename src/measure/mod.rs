@@ -19,7 +19,7 @@ use crate::frame::bayer::{channel_plane, superpixel_luminance, BayerPattern, Cha
 use background::{BackgroundMap, BackgroundParams};
 use detect::{detect, Candidate, DetectParams};
 use psf::{fit_gaussian, fit_profile, Guess, PsfFit, PsfModel, Stamp};
-use stats::{mad_sigma, median_f64, median_in_place, sigma_clip, Grid, CLIP3_STD_CORRECTION};
+use stats::{mad_sigma, median_f64, median_in_place, sigma_clip_on, Grid, CLIP3_STD_CORRECTION};
 
 #[derive(Debug, Clone, Copy)]
 pub struct MeasureParams {
@@ -835,7 +835,7 @@ fn robust_noise(residual: &Array2<f32>, mask: &[bool], grid: Option<Grid>) -> Op
     let mad = mad_sigma(&sample, center, &mut Vec::new())?;
     match grid {
         Some(g) if g.step > 0.05 * mad => {
-            sigma_clip(&mut sample, 3.0, 10).map(|s| s.std / CLIP3_STD_CORRECTION)
+            sigma_clip_on(&mut sample, 3.0, 10, grid).map(|s| s.std / CLIP3_STD_CORRECTION)
         }
         _ => Some(mad),
     }

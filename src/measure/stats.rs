@@ -130,9 +130,13 @@ pub fn sigma_clip_on(
     };
     let (mut lo, mut hi) = (0, v.len());
     let mut stats = stats_of(lo, hi);
+    // On a grid, never clip closer than one and a half steps: where the noise is under
+    // a third of a step, κσ would cut the neighbouring steps, which are the noise.
+    let floor = step.map_or(0.0, |q| 1.5 * q);
     for _ in 0..max_iter {
-        let low = stats.median - kappa * stats.std;
-        let high = stats.median + kappa * stats.std;
+        let reach = (kappa * stats.std).max(floor);
+        let low = stats.median - reach;
+        let high = stats.median + reach;
         // What a pass removes stays removed: the new bounds only narrow the range.
         let new_lo = lo + v[lo..hi].partition_point(|&x| f64::from(x) < low);
         let new_hi = lo + v[lo..hi].partition_point(|&x| f64::from(x) <= high);
@@ -325,6 +329,25 @@ mod tests {
         assert_eq!(grid.step, 1.0);
         let t = sigma_clip_on(&mut shaken, 3.0, 5, Some(grid)).unwrap();
         assert!((t.median - s.median).abs() < 1e-6, "{t:?} vs {s:?}");
+    }
+
+    #[test]
+    fn noise_under_a_third_of_a_step_is_not_clipped_away() {
+        // N(100.2, 0.3) rounded to whole numbers: 101 for the 15.9 % beyond +1σ, 99 for
+        // the 1.0 % beyond −2.33σ (normal tail areas, from memory), 100 for the rest.
+        // 3σ clipping about the median (±0.9) would keep only the 100s and read no
+        // noise at all.
+        let n = 20_001;
+        let mut values: Vec<f32> = (0..n)
+            .map(|i| (100.2 + 0.3 * inverse_normal((i as f64 + 0.5) / n as f64)).round() as f32)
+            .collect();
+        let s = sigma_clip(&mut values, 3.0, 10).unwrap();
+        // The scatter of those stored values: sqrt(0.010·1.15² + 0.831·0.15² +
+        // 0.159·0.85²) = 0.384.
+        assert!((s.std - 0.384).abs() < 0.01, "{s:?}");
+        // With the noise under a step, spreading each value over its step no longer
+        // finds the true median (100.2); it still lands between the steps.
+        assert!(s.median > 100.0 && s.median < 100.2, "{s:?}");
     }
 
     #[test]
