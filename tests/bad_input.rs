@@ -87,6 +87,12 @@ fn every_bad_file_gets_a_clear_error_and_good_files_still_pass() {
         &[],
     )
     .unwrap();
+    let nearly_nan = d.join("nearly-nan.fits");
+    let mut few = Array2::from_elem((64, 64), f32::NAN);
+    for i in 0..5 {
+        few[(10 * i + 3, 7 * i + 2)] = 1000.0 + i as f32;
+    }
+    write_frame(&nearly_nan, &few, Encoding::Float32, &[]).unwrap();
     let constant = d.join("constant.fits");
     write_frame(
         &constant,
@@ -114,6 +120,10 @@ fn every_bad_file_gets_a_clear_error_and_good_files_still_pass() {
         (&absurd, Some("over the limit")),
         (&table, Some("no image data")),
         (&all_nan, Some("no valid pixels")),
+        (
+            &nearly_nan,
+            Some("too few valid pixels to measure (5 of 4096"),
+        ),
         (&constant, None),
         (&saturated, None),
         (&missing, Some("No such file")),
@@ -141,10 +151,10 @@ fn every_bad_file_gets_a_clear_error_and_good_files_still_pass() {
         }
     }
     // Constant and saturated frames are measured: no stars, honest sky.
-    assert_eq!(records[7]["star_count"], 0);
-    assert_eq!(records[7]["background_adu"], 1000.0);
     assert_eq!(records[8]["star_count"], 0);
-    assert!(records[11]["star_count"].as_u64().unwrap() > 10);
+    assert_eq!(records[8]["background_adu"], 1000.0);
+    assert_eq!(records[9]["star_count"], 0);
+    assert!(records[12]["star_count"].as_u64().unwrap() > 10);
 }
 
 #[test]

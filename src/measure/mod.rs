@@ -58,6 +58,10 @@ impl Default for MeasureParams {
 pub enum MeasureError {
     #[error("the image has no valid pixels (all NaN or blank)")]
     NoValidPixels,
+    #[error(
+        "the image has too few valid pixels to measure ({valid} of {total}; the rest are NaN or blank)"
+    )]
+    TooFewValidPixels { valid: usize, total: usize },
     #[error("the image is too small to measure ({width} x {height} pixels)")]
     TooSmall { width: usize, height: usize },
 }
@@ -246,8 +250,13 @@ pub fn measure_image(
         .or_else(|| plateau_saturation(&pixels, max));
     let mut background_params = params.background;
     background_params.grid = background_params.grid.or_else(|| raw_grid(&pixels));
-    let mut bkg = BackgroundMap::estimate(&pixels, None, background_params)
-        .ok_or(MeasureError::NoValidPixels)?;
+    let mut bkg = BackgroundMap::estimate(&pixels, None, background_params).ok_or_else(|| {
+        // Every mesh box is less than 30 % valid: a few scattered values, no sky.
+        MeasureError::TooFewValidPixels {
+            valid: pixels.iter().filter(|v| v.is_finite()).count(),
+            total: pixels.len(),
+        }
+    })?;
     let bright = subtract_and_flag(&mut pixels, &bkg);
     if bkg.median_rms() <= 0.0 {
         // A constant image (or a fully saturated one): nothing to detect.
