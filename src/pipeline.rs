@@ -116,18 +116,10 @@ pub fn record_file(
     use crate::contract::{HeaderFacts, Metrics, StarRecord};
     use crate::store::{FrameRecord, FrameStatus};
     let mut rec = FrameRecord {
-        identity,
-        status: FrameStatus::Error,
         error: None,
         night: crate::sky::night_label(mtime_unix, opts.timezone),
         target: folder_name(path),
-        filter: None,
-        time_unix: None,
-        header: None,
-        metrics: None,
-        stars: Vec::new(),
-        rejected: Vec::new(),
-        wcs: None,
+        ..FrameRecord::failed(identity, "")
     };
     let cards = match crate::frame::fits::read_header(path, opts.measure.limits) {
         Ok(c) => c,

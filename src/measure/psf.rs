@@ -278,11 +278,8 @@ pub fn fit_profile(
     Some(chosen.sampled_on(stamp))
 }
 
-/// Fit an elliptical Moffat profile, starting from a Gaussian fit's shape.
-pub fn fit_moffat(stamp: &Stamp, from: &PsfFit) -> Option<PsfFit> {
-    moffat_from(stamp, from).map(|f| f.sampled_on(stamp))
-}
-
+/// Fit an elliptical Moffat profile, starting from a Gaussian fit's shape (widths as
+/// the model's own; `fit_profile` adds the pixel sampling).
 fn moffat_from(stamp: &Stamp, from: &PsfFit) -> Option<PsfFit> {
     let beta = 3.0;
     // Same FWHM as the Gaussian: λ_m = λ_g · (2^(1/β) − 1) / (2 ln 2).
@@ -728,7 +725,7 @@ mod tests {
             },
         )
         .unwrap();
-        let m = fit_moffat(&s, &g).unwrap();
+        let m = moffat_from(&s, &g).unwrap();
         assert!(m.ssr < g.ssr);
         let k = (2f64.powf(1.0 / beta) - 1.0).sqrt();
         let (maj, min) = m.fwhm_axes();

@@ -158,7 +158,7 @@ pub fn sigma_clip_on(
 /// median and MAD snap to the grid, off by up to half a step, which is a sizeable part
 /// of the sky noise when the noise spans only a few steps. `Some(step)` when at most a
 /// quarter of the values are distinct; the step is the smallest gap between them.
-pub fn grid_step(sorted: &[f32]) -> Option<f64> {
+fn grid_step(sorted: &[f32]) -> Option<f64> {
     let n = sorted.len();
     if n < 20 {
         return None;
@@ -179,7 +179,7 @@ pub fn grid_step(sorted: &[f32]) -> Option<f64> {
 /// with `below` and `at` the counts under and within half a step of the middle value
 /// m (within, not equal: values taken off the grid by a smooth level and put back, or
 /// by float rounding of a scaled grid, still group together).
-pub fn sorted_median(v: &[f32], step: Option<f64>) -> f64 {
+fn sorted_median(v: &[f32], step: Option<f64>) -> f64 {
     let n = v.len();
     let mid = n / 2;
     match step {

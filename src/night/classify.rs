@@ -695,28 +695,35 @@ pub fn analyse(frames: &[FrameInput], earlier: &[EarlierNight]) -> NightResult {
     let ref_wcs = frames[reference].wcs.as_ref();
     let ref_limit = limits[reference].map(|l| -2.5 * l.log10());
     result.limit_mag = ref_limit;
+    // Median sky position of a source's detections (frame, x, y), from the WCS of each
+    // frame; RA unwrapped around the first detection.
+    let sky_median = |pts: &[(usize, f64, f64)]| -> Option<(f64, f64)> {
+        let sky: Vec<(f64, f64)> = pts
+            .iter()
+            .filter_map(|&(i, x, y)| frames[i].wcs.as_ref().map(|w| w.pixel_to_sky(x, y)))
+            .collect();
+        let &(ra0, _) = sky.first()?;
+        let ra = median_f64(
+            &sky.iter()
+                .map(|p| ra0 + ((p.0 - ra0 + 540.0).rem_euclid(360.0) - 180.0))
+                .collect::<Vec<_>>(),
+        )?;
+        Some((
+            ra.rem_euclid(360.0),
+            median_f64(&sky.iter().map(|p| p.1).collect::<Vec<_>>())?,
+        ))
+    };
     // Every persistent source with a sky position (from the WCS of each frame it was
     // seen in) and its magnitude on the reference frame's scale.
     let catalog: Vec<(usize, CatalogSource)> = (0..sources.len())
         .filter(|&s| persistent[s])
         .filter_map(|s| {
-            let sky: Vec<(f64, f64)> = sources[s]
+            let pts: Vec<(usize, f64, f64)> = sources[s]
                 .points
                 .iter()
-                .filter_map(|p| {
-                    frames[p.frame]
-                        .wcs
-                        .as_ref()
-                        .map(|w| w.pixel_to_sky(p.x, p.y))
-                })
+                .map(|p| (p.frame, p.x, p.y))
                 .collect();
-            let &(ra0, _) = sky.first()?;
-            let ra = median_f64(
-                &sky.iter()
-                    .map(|p| ra0 + ((p.0 - ra0 + 540.0).rem_euclid(360.0) - 180.0))
-                    .collect::<Vec<_>>(),
-            )?;
-            let dec = median_f64(&sky.iter().map(|p| p.1).collect::<Vec<_>>())?;
+            let (ra, dec) = sky_median(&pts)?;
             let m = median_f64(
                 &sources[s]
                     .points
@@ -727,7 +734,7 @@ pub fn analyse(frames: &[FrameInput], earlier: &[EarlierNight]) -> NightResult {
             Some((
                 s,
                 CatalogSource {
-                    ra_deg: ra.rem_euclid(360.0),
+                    ra_deg: ra,
                     dec_deg: dec,
                     mag: Some(m),
                 },
@@ -808,27 +815,11 @@ pub fn analyse(frames: &[FrameInput], earlier: &[EarlierNight]) -> NightResult {
     // Also keep what was seen but not measured as a persistent star: sources found in
     // two or more frames, and extended objects seen twice or more. A later night must
     // not call these new.
-    let sky_mean = |pts: &[(usize, f64, f64)]| -> Option<(f64, f64)> {
-        let sky: Vec<(f64, f64)> = pts
-            .iter()
-            .filter_map(|&(i, x, y)| frames[i].wcs.as_ref().map(|w| w.pixel_to_sky(x, y)))
-            .collect();
-        let &(ra0, _) = sky.first()?;
-        let ra = median_f64(
-            &sky.iter()
-                .map(|p| ra0 + ((p.0 - ra0 + 540.0).rem_euclid(360.0) - 180.0))
-                .collect::<Vec<_>>(),
-        )?;
-        Some((
-            ra.rem_euclid(360.0),
-            median_f64(&sky.iter().map(|p| p.1).collect::<Vec<_>>())?,
-        ))
-    };
     for (s, p) in sources.iter().zip(&persistent) {
         if !*p && s.points.len() >= 2 {
             let pts: Vec<(usize, f64, f64)> =
                 s.points.iter().map(|p| (p.frame, p.x, p.y)).collect();
-            if let Some((ra, dec)) = sky_mean(&pts) {
+            if let Some((ra, dec)) = sky_median(&pts) {
                 result.catalog.push(CatalogSource {
                     ra_deg: ra,
                     dec_deg: dec,
@@ -864,7 +855,7 @@ pub fn analyse(frames: &[FrameInput], earlier: &[EarlierNight]) -> NightResult {
     }
     for s in extended.sources.iter().filter(|s| s.points.len() >= 2) {
         let pts: Vec<(usize, f64, f64)> = s.points.iter().map(|p| (p.frame, p.x, p.y)).collect();
-        if let Some((ra, dec)) = sky_mean(&pts) {
+        if let Some((ra, dec)) = sky_median(&pts) {
             result.catalog.push(CatalogSource {
                 ra_deg: ra,
                 dec_deg: dec,

@@ -274,6 +274,23 @@ impl Store {
         }
     }
 
+    /// Run one statement that returns no rows.
+    fn run(&self, sql: &str, values: impl rusqlite::Params) -> Result<(), StoreError> {
+        self.conn
+            .execute(sql, values)
+            .map(|_| ())
+            .map_err(|e| self.err(e))
+    }
+
+    /// The first column of every row of a query, as text.
+    fn strings(&self, sql: &str, values: impl rusqlite::Params) -> Result<Vec<String>, StoreError> {
+        let mut st = self.conn.prepare(sql).map_err(|e| self.err(e))?;
+        let rows = st
+            .query_map(values, |r| r.get(0))
+            .map_err(|e| self.err(e))?;
+        rows.collect::<Result<_, _>>().map_err(|e| self.err(e))
+    }
+
     fn migrate(&mut self) -> Result<(), StoreError> {
         let version: i64 = self
             .conn
@@ -660,24 +677,18 @@ impl Store {
         transparency_loss_mag: Option<f64>,
         rms_px: Option<f64>,
     ) -> Result<(), StoreError> {
-        self.conn
-            .execute(
-                "UPDATE frames SET transparency_loss_mag = ?2, registration_rms_px = ?3 WHERE id = ?1",
-                params![id, transparency_loss_mag, rms_px],
-            )
-            .map(|_| ())
-            .map_err(|e| self.err(e))
+        self.run(
+            "UPDATE frames SET transparency_loss_mag = ?2, registration_rms_px = ?3 WHERE id = ?1",
+            params![id, transparency_loss_mag, rms_px],
+        )
     }
 
     /// A recorded frame's file moved (the rejected-frames action).
     pub fn set_path(&self, id: i64, path: &str) -> Result<(), StoreError> {
-        self.conn
-            .execute(
-                "UPDATE frames SET path = ?2 WHERE id = ?1",
-                params![id, path],
-            )
-            .map(|_| ())
-            .map_err(|e| self.err(e))
+        self.run(
+            "UPDATE frames SET path = ?2 WHERE id = ?1",
+            params![id, path],
+        )
     }
 
     /// Record a frame's verdict and reasons.
@@ -687,17 +698,14 @@ impl Store {
         verdict: &str,
         reasons: &[String],
     ) -> Result<(), StoreError> {
-        self.conn
-            .execute(
-                "UPDATE frames SET verdict = ?2, reasons_json = ?3 WHERE id = ?1",
-                params![
-                    id,
-                    verdict,
-                    serde_json::to_string(reasons).unwrap_or_default()
-                ],
-            )
-            .map(|_| ())
-            .map_err(|e| self.err(e))
+        self.run(
+            "UPDATE frames SET verdict = ?2, reasons_json = ?3 WHERE id = ?1",
+            params![
+                id,
+                verdict,
+                serde_json::to_string(reasons).unwrap_or_default()
+            ],
+        )
     }
 
     /// Paths of the frames of one night, target and filter whose verdict is not reject.
@@ -707,17 +715,11 @@ impl Store {
         target: Option<&str>,
         filter: Option<&str>,
     ) -> Result<Vec<String>, StoreError> {
-        let mut st = self
-            .conn
-            .prepare(
-                "SELECT path FROM frames WHERE night = ?1 AND target IS ?2 AND filter IS ?3
-                 AND status = 'ok' AND verdict IN ('ok', 'warn') ORDER BY COALESCE(time_unix, recorded_at), id",
-            )
-            .map_err(|e| self.err(e))?;
-        let rows = st
-            .query_map(params![night, target, filter], |r| r.get(0))
-            .map_err(|e| self.err(e))?;
-        rows.collect::<Result<_, _>>().map_err(|e| self.err(e))
+        self.strings(
+            "SELECT path FROM frames WHERE night = ?1 AND target IS ?2 AND filter IS ?3
+             AND status = 'ok' AND verdict IN ('ok', 'warn') ORDER BY COALESCE(time_unix, recorded_at), id",
+            params![night, target, filter],
+        )
     }
 
     /// Counts for one night.
@@ -886,13 +888,10 @@ impl Store {
 
     /// Mark a message delivered (`status` "sent") or written to a file ("written").
     pub fn mail_done(&self, id: i64, status: &str, now_unix: f64) -> Result<(), StoreError> {
-        self.conn
-            .execute(
-                "UPDATE outbox SET status = ?2, done_unix = ?3 WHERE id = ?1",
-                params![id, status, now_unix],
-            )
-            .map(|_| ())
-            .map_err(|e| self.err(e))
+        self.run(
+            "UPDATE outbox SET status = ?2, done_unix = ?3 WHERE id = ?1",
+            params![id, status, now_unix],
+        )
     }
 
     /// Record a failed attempt and when to try again.
@@ -902,13 +901,10 @@ impl Store {
         error: &str,
         next_attempt_unix: f64,
     ) -> Result<(), StoreError> {
-        self.conn
-            .execute(
-                "UPDATE outbox SET attempts = attempts + 1, last_error = ?2, next_attempt_unix = ?3 WHERE id = ?1",
-                params![id, error, next_attempt_unix],
-            )
-            .map(|_| ())
-            .map_err(|e| self.err(e))
+        self.run(
+            "UPDATE outbox SET attempts = attempts + 1, last_error = ?2, next_attempt_unix = ?3 WHERE id = ?1",
+            params![id, error, next_attempt_unix],
+        )
     }
 
     /// When an alert of `kind` last went out, and how many went out for `night`.
@@ -956,13 +952,10 @@ impl Store {
         message: &str,
         now_unix: f64,
     ) -> Result<(), StoreError> {
-        self.conn
-            .execute(
-                "INSERT INTO alerts (night, kind, created_unix, message) VALUES (?1, ?2, ?3, ?4)",
-                params![night, kind, now_unix, message],
-            )
-            .map(|_| ())
-            .map_err(|e| self.err(e))
+        self.run(
+            "INSERT INTO alerts (night, kind, created_unix, message) VALUES (?1, ?2, ?3, ?4)",
+            params![night, kind, now_unix, message],
+        )
     }
 
     /// Verdicts of one night-target-filter group, oldest first.
@@ -972,27 +965,18 @@ impl Store {
         target: Option<&str>,
         filter: Option<&str>,
     ) -> Result<Vec<String>, StoreError> {
-        let mut st = self
-            .conn
-            .prepare(
-                "SELECT verdict FROM frames WHERE night = ?1 AND target IS ?2 AND filter IS ?3
-                 AND verdict IS NOT NULL ORDER BY COALESCE(time_unix, recorded_at), id",
-            )
-            .map_err(|e| self.err(e))?;
-        let rows = st
-            .query_map(params![night, target, filter], |r| r.get(0))
-            .map_err(|e| self.err(e))?;
-        rows.collect::<Result<_, _>>().map_err(|e| self.err(e))
+        self.strings(
+            "SELECT verdict FROM frames WHERE night = ?1 AND target IS ?2 AND filter IS ?3
+             AND verdict IS NOT NULL ORDER BY COALESCE(time_unix, recorded_at), id",
+            params![night, target, filter],
+        )
     }
 
     pub fn set_meta(&self, key: &str, value: &str) -> Result<(), StoreError> {
-        self.conn
-            .execute(
-                "INSERT INTO meta (key, value) VALUES (?1, ?2) ON CONFLICT (key) DO UPDATE SET value = excluded.value",
-                params![key, value],
-            )
-            .map(|_| ())
-            .map_err(|e| self.err(e))
+        self.run(
+            "INSERT INTO meta (key, value) VALUES (?1, ?2) ON CONFLICT (key) DO UPDATE SET value = excluded.value",
+            params![key, value],
+        )
     }
 
     pub fn meta(&self, key: &str) -> Result<Option<String>, StoreError> {
