@@ -4,101 +4,8 @@
 use serde::Serialize;
 
 use super::bayer::BayerPattern;
+use super::cards::{CardValue, Cards, HeaderCard};
 use super::wcs::Wcs;
-
-/// A keyword value as written in a card (FITS Standard 4.0, section 4.2).
-#[derive(Debug, Clone, PartialEq)]
-pub enum CardValue {
-    Text(String),
-    Logical(bool),
-    Number(f64),
-    /// A value field we could not read as any of the above.
-    Other(String),
-}
-
-#[derive(Debug, Clone, PartialEq)]
-pub struct HeaderCard {
-    pub key: String,
-    pub value: CardValue,
-}
-
-/// Parse one 80-character card. Comment-only cards (COMMENT, HISTORY, blank) give `None`.
-pub fn parse_card(card: &str) -> Option<HeaderCard> {
-    let (key, rest) = if let Some(h) = card.strip_prefix("HIERARCH ") {
-        let eq = h.find('=')?;
-        (h[..eq].trim().to_string(), &h[eq + 1..])
-    } else {
-        if card.len() < 10 || &card.as_bytes()[8..10] != b"= " {
-            return None;
-        }
-        (card[..8].trim().to_string(), &card[10..])
-    };
-    if key.is_empty() {
-        return None;
-    }
-    Some(HeaderCard {
-        key: key.to_ascii_uppercase(),
-        value: parse_value(rest),
-    })
-}
-
-fn parse_value(field: &str) -> CardValue {
-    let field = field.trim_start();
-    if let Some(body) = field.strip_prefix('\'') {
-        // A string: '' inside stands for one quote; trailing blanks are not significant.
-        let mut out = String::new();
-        let mut chars = body.chars().peekable();
-        while let Some(c) = chars.next() {
-            if c == '\'' {
-                if chars.peek() == Some(&'\'') {
-                    chars.next();
-                    out.push('\'');
-                } else {
-                    break;
-                }
-            } else {
-                out.push(c);
-            }
-        }
-        return CardValue::Text(out.trim_end().to_string());
-    }
-    let value = field.split('/').next().unwrap_or("").trim();
-    match value {
-        "T" => CardValue::Logical(true),
-        "F" => CardValue::Logical(false),
-        _ => value
-            .replace(['D', 'd'], "E")
-            .parse::<f64>()
-            .map(CardValue::Number)
-            .unwrap_or_else(|_| CardValue::Other(value.to_string())),
-    }
-}
-
-/// Look-ups over a card list.
-pub trait Cards {
-    fn card(&self, key: &str) -> Option<&CardValue>;
-    fn number(&self, key: &str) -> Option<f64> {
-        match self.card(key)? {
-            CardValue::Number(v) if v.is_finite() => Some(*v),
-            // Some writers quote numbers.
-            CardValue::Text(s) => s.trim().parse::<f64>().ok().filter(|v| v.is_finite()),
-            _ => None,
-        }
-    }
-    fn text(&self, key: &str) -> Option<String> {
-        match self.card(key)? {
-            CardValue::Text(s) if !s.trim().is_empty() => Some(s.trim().to_string()),
-            CardValue::Number(v) => Some(format!("{v}")),
-            _ => None,
-        }
-    }
-}
-
-impl Cards for [HeaderCard] {
-    fn card(&self, key: &str) -> Option<&CardValue> {
-        self.iter().find(|c| c.key == key).map(|c| &c.value)
-    }
-}
 
 /// What a frame is, from IMAGETYP.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, serde::Deserialize)]
@@ -304,32 +211,6 @@ fn days_from_civil(y: i64, m: i64, d: i64) -> i64 {
 #[cfg(test)]
 mod tests {
     use super::*;
-
-    fn card(s: &str) -> HeaderCard {
-        parse_card(&format!("{s:<80}")).unwrap()
-    }
-
-    #[test]
-    fn parses_the_value_kinds_of_the_fits_standard() {
-        assert_eq!(
-            card("OBJECT  = 'It''s M  '  / name").value,
-            CardValue::Text("It's M".into())
-        );
-        assert_eq!(
-            card("SIMPLE  =                    T").value,
-            CardValue::Logical(true)
-        );
-        assert_eq!(
-            card("EXPTIME =                120.5 / s").value,
-            CardValue::Number(120.5)
-        );
-        assert_eq!(
-            card("CDELT1  =              1.5D-04").value,
-            CardValue::Number(1.5e-4)
-        );
-        assert!(parse_card("COMMENT hello").is_none());
-        assert_eq!(card("HIERARCH ESO DET GAIN = 2.5").key, "ESO DET GAIN");
-    }
 
     #[test]
     fn unix_time_of_known_dates() {

@@ -3,8 +3,10 @@
 //! in `wcs`, colour mosaics in `bayer`. Nothing here measures anything.
 
 pub mod bayer;
+pub mod cards;
 pub mod fits;
 pub mod header;
+pub mod layout;
 pub mod wcs;
 pub mod write;
 
@@ -12,8 +14,9 @@ use std::path::{Path, PathBuf};
 
 use ndarray::Array2;
 
+pub use cards::HeaderCard;
 pub use fits::DecodeLimits;
-pub use header::{FrameHeader, HeaderCard, ImageKind};
+pub use header::{FrameHeader, ImageKind};
 
 #[derive(Debug, thiserror::Error)]
 pub enum FrameError {

@@ -6,7 +6,7 @@
 //! zenithal projection and the spherical rotation; Shupe et al. (2005, ASP Conf. 347,
 //! 491) for SIP. Other projections are not read: a frame with one has no WCS here.
 
-use super::header::{CardValue, Cards, HeaderCard};
+use super::cards::{CardValue, Cards, HeaderCard};
 
 #[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct Wcs {
@@ -221,7 +221,7 @@ fn celestial_to_native(ra: f64, dec: f64, crval: [f64; 2], lonpole: f64) -> (f64
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::frame::header::parse_card;
+    use crate::frame::cards::parse_card;
 
     /// "KEY = value" written as a fixed-format card (keyword padded to 8 columns).
     fn cards(lines: &[&str]) -> Vec<HeaderCard> {
