@@ -8,7 +8,6 @@ use std::path::{Path, PathBuf};
 use crate::contract::{AnomalyRecord, DetectionRecord, NightDocument, NightFrameRecord};
 use crate::measure::RejectKind;
 use crate::night::{analyse, FrameInput, StarInput};
-use crate::pipeline::record_file;
 use crate::rules::{judge_group_with, FrameFacts, RuleSpec};
 use crate::store::{FrameRecord, FrameStatus, Identity, Store, StoreError};
 
@@ -226,6 +225,7 @@ pub fn run_night(
     mut progress: impl FnMut(usize, usize),
 ) -> Result<NightDocument, StoreError> {
     let options = crate::watch::record_options(config);
+    let reader = config.measure.reader();
     let files = find_frames(
         &[dir.to_path_buf()],
         &config.watch.include,
@@ -251,16 +251,7 @@ pub fn run_night(
             }
             Err(_) => continue,
         };
-        let rec = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
-            record_file(path, identity.clone(), mtime_unix, &options)
-        }))
-        .unwrap_or_else(|_| {
-            FrameRecord::failed(
-                identity,
-                "internal error while measuring (a bug; please report it)",
-            )
-        });
-        records.push(rec);
+        records.push(reader.record(path, identity, mtime_unix, &options));
         progress(k + 1, total);
     }
     analyse_records(

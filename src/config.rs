@@ -115,6 +115,10 @@ pub struct MeasureConfig {
     pub max_pixels: u64,
     /// Detection threshold, in σ of the matched-filtered noise.
     pub detect_sigma: f64,
+    /// Memory a file's reader (a worker process) may use, MiB; 0 = automatic.
+    pub reader_memory_mb: u64,
+    /// A file's reader is stopped after this many seconds.
+    pub reader_timeout_seconds: f64,
 }
 
 impl Default for MeasureConfig {
@@ -122,7 +126,20 @@ impl Default for MeasureConfig {
         Self {
             max_pixels: 400_000_000,
             detect_sigma: 5.0,
+            reader_memory_mb: 0,
+            reader_timeout_seconds: 300.0,
         }
+    }
+}
+
+impl MeasureConfig {
+    /// How frames are read: in a worker process with these limits.
+    pub fn reader(&self) -> crate::reader::Reader {
+        crate::reader::Reader::Isolated(crate::reader::Isolation::new(
+            self.max_pixels,
+            self.reader_memory_mb,
+            self.reader_timeout_seconds,
+        ))
     }
 }
 
@@ -387,7 +404,15 @@ fn schema() -> BTreeMap<&'static str, &'static [&'static str]> {
                 "saturation_adu",
             ][..],
         ),
-        ("measure", &["max_pixels", "detect_sigma"][..]),
+        (
+            "measure",
+            &[
+                "max_pixels",
+                "detect_sigma",
+                "reader_memory_mb",
+                "reader_timeout_seconds",
+            ][..],
+        ),
         (
             "actions",
             &[
@@ -572,6 +597,15 @@ impl Config {
         }
         if self.measure.max_pixels == 0 {
             bad("measure", "max_pixels", "must be positive".into());
+        }
+        if !(self.measure.reader_timeout_seconds >= 1.0
+            && self.measure.reader_timeout_seconds <= 86_400.0)
+        {
+            bad(
+                "measure",
+                "reader_timeout_seconds",
+                "must be between 1 and 86400".into(),
+            );
         }
         if !(self.measure.detect_sigma >= 2.0 && self.measure.detect_sigma <= 100.0) {
             bad(

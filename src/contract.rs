@@ -2,7 +2,7 @@
 //! and meanings other tools rely on. Built from measurements; no logic beyond unit
 //! conversion. Non-finite numbers become `null`, so the output is always strict JSON.
 
-use serde::{Serialize, Serializer};
+use serde::{Deserialize, Deserializer, Serialize, Serializer};
 
 use crate::frame::header::FrameHeader;
 use crate::measure::{FrameMeasurement, Star};
@@ -18,36 +18,41 @@ fn finite_num<S: Serializer>(v: &f64, s: S) -> Result<S::Ok, S::Error> {
     finite(&Some(*v), s)
 }
 
-#[derive(Debug, Clone, Serialize)]
+/// The way back from [`finite_num`]: `null` is a number that was not finite.
+pub fn nan_if_null<'de, D: Deserializer<'de>>(d: D) -> Result<f64, D::Error> {
+    Option::<f64>::deserialize(d).map(|v| v.unwrap_or(f64::NAN))
+}
+
+#[derive(Debug, Clone, Serialize, Deserialize)]
 pub struct StarRecord {
-    #[serde(serialize_with = "finite_num")]
+    #[serde(serialize_with = "finite_num", deserialize_with = "nan_if_null")]
     pub x: f64,
-    #[serde(serialize_with = "finite_num")]
+    #[serde(serialize_with = "finite_num", deserialize_with = "nan_if_null")]
     pub y: f64,
-    #[serde(serialize_with = "finite_num")]
+    #[serde(serialize_with = "finite_num", deserialize_with = "nan_if_null")]
     pub flux: f64,
-    #[serde(serialize_with = "finite_num")]
+    #[serde(serialize_with = "finite_num", deserialize_with = "nan_if_null")]
     pub fwhm_px: f64,
-    #[serde(serialize_with = "finite_num")]
+    #[serde(serialize_with = "finite_num", deserialize_with = "nan_if_null")]
     pub eccentricity: f64,
-    #[serde(serialize_with = "finite_num")]
+    #[serde(serialize_with = "finite_num", deserialize_with = "nan_if_null")]
     pub snr: f64,
-    #[serde(serialize_with = "finite_num")]
+    #[serde(serialize_with = "finite_num", deserialize_with = "nan_if_null")]
     pub flux_err: f64,
     #[serde(serialize_with = "finite")]
     pub hfr_px: Option<f64>,
-    #[serde(serialize_with = "finite_num")]
+    #[serde(serialize_with = "finite_num", deserialize_with = "nan_if_null")]
     pub fwhm_major_px: f64,
-    #[serde(serialize_with = "finite_num")]
+    #[serde(serialize_with = "finite_num", deserialize_with = "nan_if_null")]
     pub fwhm_minor_px: f64,
-    #[serde(serialize_with = "finite_num")]
+    #[serde(serialize_with = "finite_num", deserialize_with = "nan_if_null")]
     pub angle_deg: f64,
-    #[serde(serialize_with = "finite_num")]
+    #[serde(serialize_with = "finite_num", deserialize_with = "nan_if_null")]
     pub psf_flux: f64,
     pub psf_model: crate::measure::psf::PsfModel,
     #[serde(skip_serializing_if = "Option::is_none", serialize_with = "finite")]
     pub moffat_beta: Option<f64>,
-    #[serde(serialize_with = "finite_num")]
+    #[serde(serialize_with = "finite_num", deserialize_with = "nan_if_null")]
     pub peak_adu: f64,
     pub blended: bool,
     #[serde(skip_serializing_if = "Option::is_none")]
@@ -87,7 +92,7 @@ impl StarRecord {
 }
 
 /// Frame metrics (the contract's fields plus extras).
-#[derive(Debug, Clone, Serialize, serde::Deserialize)]
+#[derive(Debug, Clone, Serialize, Deserialize)]
 pub struct Metrics {
     pub width: usize,
     pub height: usize,
@@ -98,9 +103,9 @@ pub struct Metrics {
     pub fwhm_arcsec: Option<f64>,
     #[serde(serialize_with = "finite")]
     pub eccentricity: Option<f64>,
-    #[serde(serialize_with = "finite_num")]
+    #[serde(serialize_with = "finite_num", deserialize_with = "nan_if_null")]
     pub background_adu: f64,
-    #[serde(serialize_with = "finite_num")]
+    #[serde(serialize_with = "finite_num", deserialize_with = "nan_if_null")]
     pub noise_adu: f64,
     #[serde(serialize_with = "finite")]
     pub snr_median: Option<f64>,
@@ -109,7 +114,7 @@ pub struct Metrics {
     pub saturated_count: usize,
     /// Detections sharper than any PSF (hot pixels, cosmic rays).
     pub sharp_count: usize,
-    #[serde(serialize_with = "finite_num")]
+    #[serde(serialize_with = "finite_num", deserialize_with = "nan_if_null")]
     pub background_range_adu: f64,
     #[serde(serialize_with = "finite")]
     pub plate_scale_arcsec: Option<f64>,
@@ -141,7 +146,7 @@ impl Metrics {
 }
 
 /// Header facts worth showing with the metrics.
-#[derive(Debug, Clone, Serialize, serde::Deserialize, Default)]
+#[derive(Debug, Clone, Serialize, Deserialize, Default)]
 pub struct HeaderFacts {
     pub object: Option<String>,
     pub filter: Option<String>,

@@ -166,6 +166,7 @@ pub fn run(
     {
         let mut store = Store::open(&config.store.path)?;
         let options = crate::watch::record_options(&config);
+        let reader = config.measure.reader();
         let judging = crate::watch::Judging {
             rules: Vec::new(),
             site: config.site_position(),
@@ -176,7 +177,7 @@ pub fn run(
             let path = out.join("previous").join(&f.name);
             write_frame(&path, &f.pixels, Encoding::Unsigned16, &f.keys)?;
             let identity = Identity::of(&path).map_err(io(&path))?;
-            let rec = crate::pipeline::record_file(&path, identity, f.time_unix, &options);
+            let rec = reader.record(&path, identity, f.time_unix, &options);
             label = rec.night.clone();
             if let Some(id) = store.record_returning_id(&rec, f.time_unix)? {
                 crate::watch::judge_in_store(&store, &rec, id, &judging)?;

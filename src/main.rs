@@ -1,17 +1,16 @@
 //! The `subwatch` command line: parse, dispatch, report errors. No logic lives here.
 
 use std::io::Write;
-use std::panic::{catch_unwind, AssertUnwindSafe};
 use std::path::PathBuf;
 use std::process::ExitCode;
 
 use anyhow::{Context, Result};
 use clap::{Parser, Subcommand, ValueEnum};
 
-use subwatch::contract::{HeaderFacts, MeasureRecord, Metrics, StarRecord};
+use subwatch::contract::MeasureRecord;
 use subwatch::frame::bayer::BayerPattern;
 use subwatch::frame::write::{write_frame, Encoding};
-use subwatch::pipeline::{measure_file, MeasureOptions};
+use subwatch::pipeline::{MeasureOptions, RecordOptions};
 use subwatch::sim::{render, PsfShape, SimParams};
 
 #[derive(Parser)]
@@ -145,6 +144,9 @@ enum Command {
         #[arg(long)]
         frames: Option<usize>,
     },
+    /// Read one file for another subwatch process (request on stdin, record on stdout).
+    #[command(name = "read-worker", hide = true)]
+    ReadWorker,
     /// Render a synthetic frame with known truth (for tests and demonstrations).
     Render {
         #[arg(long)]
@@ -208,20 +210,16 @@ enum PsfArg {
 }
 
 fn main() -> ExitCode {
-    tracing_subscriber::fmt()
-        .with_writer(std::io::stderr)
-        .with_ansi(std::io::IsTerminal::is_terminal(&std::io::stderr()))
-        .with_env_filter(
-            tracing_subscriber::EnvFilter::try_from_env("SUBWATCH_LOG")
-                .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new("warn")),
-        )
-        .init();
-    // A panic anywhere is reported as one line; the per-file guard below keeps the
-    // other files going.
+    let cli = Cli::parse();
+    // The daemon says what it is doing by default; one-shot commands only warn.
+    subwatch::logging::init(match cli.command {
+        Command::Watch { .. } => "info",
+        _ => "warn",
+    });
+    // A panic anywhere is reported as one line.
     std::panic::set_hook(Box::new(|info| {
         tracing::error!("internal error: {info}");
     }));
-    let cli = Cli::parse();
     match run(cli) {
         Ok(code) => code,
         Err(e) => {
@@ -298,6 +296,11 @@ fn run(cli: Cli) -> Result<ExitCode> {
             send,
         } => report_command(&config, night, json, send),
         Command::Demo { out } => demo_command(&out),
+        Command::ReadWorker => {
+            subwatch::reader::serve(std::io::stdin().lock(), std::io::stdout().lock())
+                .context("read-worker")?;
+            Ok(ExitCode::SUCCESS)
+        }
         Command::Outbox { config, now } => {
             let cfg = subwatch::config::load(&config)?;
             let store = subwatch::store::Store::open(&cfg.store.path)?;
@@ -343,13 +346,23 @@ fn run(cli: Cli) -> Result<ExitCode> {
             pixel_size_um,
             files,
         } => {
-            let mut opts = MeasureOptions {
+            let mut measure = MeasureOptions {
                 focal_length_mm,
                 pixel_size_um,
                 ..Default::default()
             };
-            opts.limits.max_pixels = max_pixels;
-            measure_command(&files, &opts, json, stars)
+            measure.limits.max_pixels = max_pixels;
+            let opts = RecordOptions {
+                measure,
+                measure_calibration: true,
+                ..Default::default()
+            };
+            let reader = subwatch::config::MeasureConfig {
+                max_pixels,
+                ..Default::default()
+            }
+            .reader();
+            measure_command(&files, &opts, &reader, json, stars)
         }
         Command::Render {
             out,
@@ -704,7 +717,7 @@ fn night_command(
                 .max_by_key(|(_, c)| *c)
                 .map_or("night".to_string(), |(n, _)| n.to_string())
         };
-        let prepared = subwatch::morning::write_files(doc.clone(), &night, folder)?;
+        let prepared = subwatch::morning::write_files(doc.clone(), &night, folder, &c.measure)?;
         eprintln!("report: {}", prepared.html_path.display());
         eprintln!("frames: {}", prepared.csv_path.display());
     }
@@ -764,7 +777,8 @@ fn status_command(config: &std::path::Path, night: Option<String>, json: bool) -
 
 fn measure_command(
     files: &[PathBuf],
-    opts: &MeasureOptions,
+    opts: &RecordOptions,
+    reader: &subwatch::reader::Reader,
     json: bool,
     with_stars: bool,
 ) -> Result<ExitCode> {
@@ -780,27 +794,27 @@ fn measure_command(
     }
     for path in files {
         let shown = path.display().to_string();
-        let result = catch_unwind(AssertUnwindSafe(|| measure_file(path, opts)));
-        let record = match result {
-            Ok(Ok(m)) => MeasureRecord {
+        let identity =
+            subwatch::store::Identity::of(path).unwrap_or_else(|_| subwatch::store::Identity {
+                path: shown.clone(),
+                size: 0,
+                mtime_ns: 0,
+            });
+        let rec = reader.record(path, identity, 0.0, opts);
+        let record = match (rec.status, rec.metrics) {
+            (subwatch::store::FrameStatus::Ok, Some(metrics)) => MeasureRecord {
                 path: shown.clone(),
                 status: "ok",
                 error: None,
-                metrics: Some(Metrics::new(&m.measurement, m.plate_scale)),
-                header: Some(HeaderFacts::new(&m.frame_header)),
-                stars: with_stars.then(|| {
-                    m.measurement
-                        .stars
-                        .iter()
-                        .map(|s| StarRecord::new(s, &m.frame_header))
-                        .collect()
-                }),
-                rejected: with_stars.then(|| m.measurement.rejected.clone()),
+                metrics: Some(metrics),
+                header: rec.header,
+                stars: with_stars.then_some(rec.stars),
+                rejected: with_stars.then_some(rec.rejected),
             },
-            Ok(Err(e)) => MeasureRecord::error(&shown, e.reason()),
-            Err(_) => MeasureRecord::error(
+            _ => MeasureRecord::error(
                 &shown,
-                "internal error while measuring (a bug; please report it)".into(),
+                rec.error
+                    .unwrap_or_else(|| "not measured (no reason given)".into()),
             ),
         };
         if record.status != "ok" {

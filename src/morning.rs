@@ -49,7 +49,7 @@ pub fn prepare(store: &mut Store, c: &Config, night: &str) -> Result<Prepared, M
     let records = store.night_records(night)?;
     let doc =
         crate::batch::analyse_records(&records, &c.rule_specs(), c.site_position(), Some(store))?;
-    write_files(doc, night, &report_folder(c))
+    write_files(doc, night, &report_folder(c), &c.measure)
 }
 
 /// The summary, plots and cutouts of a night document, written as stand-alone HTML and
@@ -58,7 +58,12 @@ pub fn write_files(
     doc: NightDocument,
     night: &str,
     folder: &Path,
+    measure: &crate::config::MeasureConfig,
 ) -> Result<Prepared, MorningError> {
+    let reader = measure.reader();
+    let limits = crate::frame::DecodeLimits {
+        max_pixels: measure.max_pixels,
+    };
     let summary = report::summarise(night, &doc, &|f: &NightFrameRecord| f.exposure_s);
     let mut images = Vec::new();
     for (k, g) in summary.groups.iter().enumerate() {
@@ -83,11 +88,10 @@ pub fn write_files(
         let Some(d) = a.detections.first() else {
             continue;
         };
-        // A frame that has gone since is simply not cut out.
-        if let Ok(frame) = crate::frame::read_frame(Path::new(&d.path), Default::default()) {
-            if let Some(png) = plots::cutout_png(&frame.pixels, d.x, d.y, 24) {
-                images.push((plots::cutout_name(k), png));
-            }
+        // A frame that has gone since is simply not cut out. The file is read by a
+        // worker, as every frame is.
+        if let Some(png) = reader.cutout(Path::new(&d.path), d.x, d.y, 24, limits) {
+            images.push((plots::cutout_name(k), png));
         }
     }
     let folder = folder.to_path_buf();

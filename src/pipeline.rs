@@ -9,7 +9,7 @@ use crate::measure::{
 };
 
 /// Settings that come from the configuration rather than the file.
-#[derive(Debug, Clone, Copy, Default)]
+#[derive(Debug, Clone, Copy, Default, serde::Serialize, serde::Deserialize)]
 pub struct MeasureOptions {
     pub limits: DecodeLimits,
     pub params: MeasureParams,
@@ -74,13 +74,42 @@ pub fn measure_frame(frame: Frame, opts: &MeasureOptions) -> Result<MeasuredFram
     })
 }
 
-/// What the daemon needs to turn a file into a stored record.
-#[derive(Debug, Clone)]
+/// What it takes to turn a file into a stored record.
+#[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
 pub struct RecordOptions {
     pub measure: MeasureOptions,
+    #[serde(with = "tz_name")]
     pub timezone: chrono_tz::Tz,
     /// Folder names that mark calibration frames (lower case).
     pub calibration_folders: Vec<String>,
+    /// Measure darks, flats and bias frames as well, instead of setting them aside (the
+    /// `measure` command measures whatever it is given).
+    pub measure_calibration: bool,
+}
+
+impl Default for RecordOptions {
+    fn default() -> Self {
+        RecordOptions {
+            measure: MeasureOptions::default(),
+            timezone: chrono_tz::UTC,
+            calibration_folders: Vec::new(),
+            measure_calibration: false,
+        }
+    }
+}
+
+/// A time zone travels by its IANA name.
+mod tz_name {
+    use serde::{Deserialize, Deserializer, Serializer};
+
+    pub fn serialize<S: Serializer>(tz: &chrono_tz::Tz, s: S) -> Result<S::Ok, S::Error> {
+        s.serialize_str(tz.name())
+    }
+
+    pub fn deserialize<'de, D: Deserializer<'de>>(d: D) -> Result<chrono_tz::Tz, D::Error> {
+        let name = String::deserialize(d)?;
+        name.parse().map_err(serde::de::Error::custom)
+    }
 }
 
 /// Why a file is not measured as a light frame, if it is not.
@@ -137,7 +166,9 @@ pub fn record_file(
     rec.filter = header.filter.clone();
     rec.header = Some(HeaderFacts::new(&header));
     rec.wcs = header.wcs.clone();
-    if let Some(kind) = calibration_kind(path, &header, &opts.calibration_folders) {
+    if let Some(kind) = calibration_kind(path, &header, &opts.calibration_folders)
+        .filter(|_| !opts.measure_calibration)
+    {
         rec.status = FrameStatus::Skipped;
         rec.error = Some(kind);
         return rec;

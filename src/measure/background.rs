@@ -9,7 +9,7 @@ use rayon::prelude::*;
 
 use super::stats::{median_f64, sigma_clip_on, Grid, CLIP3_STD_CORRECTION};
 
-#[derive(Debug, Clone, Copy)]
+#[derive(Debug, Clone, Copy, serde::Serialize, serde::Deserialize)]
 pub struct BackgroundParams {
     /// Mesh box side in pixels.
     pub box_size: usize,

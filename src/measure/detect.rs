@@ -8,7 +8,7 @@ use rayon::prelude::*;
 
 use super::background::BackgroundMap;
 
-#[derive(Debug, Clone, Copy)]
+#[derive(Debug, Clone, Copy, serde::Serialize, serde::Deserialize)]
 pub struct DetectParams {
     /// Threshold in units of the filtered image's noise.
     pub sigma: f64,

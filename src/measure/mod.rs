@@ -21,7 +21,7 @@ use detect::{detect, Candidate, DetectParams};
 use psf::{fit_gaussian, fit_profile, Guess, PsfFit, PsfModel, Stamp};
 use stats::{mad_sigma, median_f64, median_in_place, sigma_clip_on, Grid, CLIP3_STD_CORRECTION};
 
-#[derive(Debug, Clone, Copy)]
+#[derive(Debug, Clone, Copy, Serialize, serde::Deserialize)]
 pub struct MeasureParams {
     pub background: BackgroundParams,
     pub detect: DetectParams,
@@ -112,11 +112,12 @@ pub enum RejectKind {
     Extended,
 }
 
-#[derive(Debug, Clone, Serialize)]
+#[derive(Debug, Clone, Serialize, serde::Deserialize)]
 pub struct Rejected {
     pub x: f64,
     pub y: f64,
     pub kind: RejectKind,
+    #[serde(deserialize_with = "crate::contract::nan_if_null")]
     pub peak_adu: f64,
 }
 

@@ -196,7 +196,7 @@ fn sorted_median(v: &[f32], step: Option<f64>) -> f64 {
 }
 
 /// The grid a camera's raw values sit on: whole multiples of `step` from some origin.
-#[derive(Debug, Clone, Copy, PartialEq)]
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct Grid {
     pub step: f64,
 }

@@ -28,7 +28,7 @@ pub enum StoreError {
 }
 
 /// What makes a file the same file: replacing it (new size or time) makes a new frame.
-#[derive(Debug, Clone, PartialEq, Eq, Hash)]
+#[derive(Debug, Clone, PartialEq, Eq, Hash, serde::Serialize, serde::Deserialize)]
 pub struct Identity {
     pub path: String,
     pub size: u64,
@@ -52,7 +52,7 @@ impl Identity {
 }
 
 /// How a frame ended up.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, serde::Deserialize)]
 #[serde(rename_all = "lowercase")]
 pub enum FrameStatus {
     Ok,
@@ -72,7 +72,7 @@ impl FrameStatus {
 }
 
 /// Everything recorded about one frame.
-#[derive(Debug, Clone)]
+#[derive(Debug, Clone, Serialize, serde::Deserialize)]
 pub struct FrameRecord {
     pub identity: Identity,
     pub status: FrameStatus,

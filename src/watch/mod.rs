@@ -12,7 +12,6 @@ pub mod patterns;
 pub mod settle;
 
 use std::collections::{HashSet, VecDeque};
-use std::panic::{catch_unwind, AssertUnwindSafe};
 use std::path::{Path, PathBuf};
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::{Arc, Mutex};
@@ -23,7 +22,7 @@ use tokio::sync::mpsc;
 use tokio::task::JoinSet;
 
 use crate::config::Config;
-use crate::pipeline::{record_file, MeasureOptions, RecordOptions};
+use crate::pipeline::{MeasureOptions, RecordOptions};
 use crate::store::{FrameStatus, Identity, Store, StoreError};
 use settle::{Observation, SettleTracker};
 
@@ -85,6 +84,7 @@ pub fn record_options(config: &Config) -> RecordOptions {
             .iter()
             .map(|s| s.to_lowercase())
             .collect(),
+        measure_calibration: false,
     }
 }
 
@@ -147,6 +147,7 @@ fn sd_notify(state: &str) {
 struct Shared {
     store: Mutex<Store>,
     options: RecordOptions,
+    reader: crate::reader::Reader,
     judging: Judging,
     config: Config,
 }
@@ -419,19 +420,9 @@ fn process(shared: &Shared, path: &Path) -> Option<String> {
     let mtime_unix = mtime
         .duration_since(UNIX_EPOCH)
         .map_or(0.0, |d| d.as_secs_f64());
-    let record = match catch_unwind(AssertUnwindSafe(|| {
-        record_file(path, identity.clone(), mtime_unix, &shared.options)
-    })) {
-        Ok(r) => r,
-        Err(_) => {
-            let mut r = crate::store::FrameRecord::failed(
-                identity,
-                "internal error while measuring (a bug; please report it)",
-            );
-            r.night = crate::sky::night_label(mtime_unix, shared.options.timezone);
-            r
-        }
-    };
+    let record = shared
+        .reader
+        .record(path, identity, mtime_unix, &shared.options);
     let line = match (&record.status, &record.metrics) {
         (FrameStatus::Ok, Some(m)) => format!(
             "{} ok stars={} fwhm_px={} ecc={} bkg={:.1} noise={:.2}",
@@ -711,6 +702,7 @@ async fn daemon(
     let shared = Arc::new(Shared {
         store: Mutex::new(store),
         options: record_options(&config),
+        reader: config.measure.reader(),
         judging: Judging {
             rules: config.rule_specs(),
             site: config.site_position(),

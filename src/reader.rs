@@ -1,0 +1,462 @@
+//! Reading untrusted files in a worker process. Decoding runs C code (cfitsio's tile
+//! decompressors) on bytes nobody has checked, and measuring allocates by the size a
+//! header declares; a fault there must cost one file, not the daemon or a batch run.
+//!
+//! Each file is read by a fresh `subwatch read-worker` process: the request (a path and
+//! the measuring options) goes in on its stdin as JSON, the record comes back on its
+//! stdout. The worker runs under an address-space limit (RLIMIT_AS), no core dumps, and
+//! a wall-clock limit enforced here. A worker that dies by a signal, runs out of memory
+//! or overruns its time becomes a record with status "error" and a plain-words reason,
+//! and the caller goes on. A process per file rather than one per batch: a worker's
+//! start costs a few milliseconds against a frame's tenth of a second or more, and no
+//! state (cfitsio's globals, a heap a bad file fragmented) outlives the file that made it.
+
+use std::io::{Read, Write};
+use std::os::unix::process::{CommandExt, ExitStatusExt};
+use std::path::{Path, PathBuf};
+use std::process::{Command, Stdio};
+use std::sync::OnceLock;
+use std::time::{Duration, Instant};
+
+use serde::{Deserialize, Serialize};
+
+use crate::pipeline::RecordOptions;
+use crate::store::{FrameRecord, Identity};
+
+/// The hidden subcommand the worker runs as.
+pub const WORKER_COMMAND: &str = "read-worker";
+
+/// What a worker is asked to do with one file.
+#[derive(Debug, Clone, Serialize, Deserialize)]
+pub enum Request {
+    /// Decode, classify and measure into the record the store keeps.
+    Record {
+        path: PathBuf,
+        identity: Identity,
+        mtime_unix: f64,
+        options: Box<RecordOptions>,
+    },
+    /// A PNG cutout of `half` pixels around (x, y) (FITS 1-based) for the summary.
+    Cutout {
+        path: PathBuf,
+        x: f64,
+        y: f64,
+        half: usize,
+        limits: crate::frame::DecodeLimits,
+    },
+}
+
+/// A worker's answer.
+#[derive(Debug, Clone, Serialize, Deserialize)]
+pub enum Reply {
+    Record(Box<FrameRecord>),
+    Cutout(Option<Vec<u8>>),
+}
+
+/// How files are read.
+#[derive(Debug, Clone)]
+pub enum Reader {
+    /// In a worker process per file (what every command uses).
+    Isolated(Isolation),
+    /// In this process: for tests and benchmarks of the measurement itself, on files
+    /// they made.
+    InProcess,
+}
+
+/// A worker's limits.
+#[derive(Debug, Clone)]
+pub struct Isolation {
+    /// The program to run as the worker (this program).
+    pub program: PathBuf,
+    /// Address-space limit (RLIMIT_AS), bytes.
+    pub memory_bytes: u64,
+    /// Wall-clock limit per file.
+    pub timeout: Duration,
+}
+
+static PROGRAM: OnceLock<PathBuf> = OnceLock::new();
+
+/// Use `program` as the worker from now on, instead of the running executable (tests
+/// whose executable is a test harness point this at the `subwatch` binary).
+pub fn use_program(program: &Path) {
+    let _ = PROGRAM.set(program.to_path_buf());
+}
+
+fn program() -> PathBuf {
+    PROGRAM
+        .get()
+        .cloned()
+        .or_else(|| std::env::current_exe().ok())
+        .unwrap_or_else(|| PathBuf::from("subwatch"))
+}
+
+/// Physical memory of this machine, bytes (0 when unknown).
+fn physical_memory() -> u64 {
+    // SAFETY: sysconf has no preconditions.
+    let (pages, size) = unsafe {
+        (
+            libc::sysconf(libc::_SC_PHYS_PAGES),
+            libc::sysconf(libc::_SC_PAGESIZE),
+        )
+    };
+    if pages > 0 && size > 0 {
+        pages as u64 * size as u64
+    } else {
+        0
+    }
+}
+
+impl Isolation {
+    /// Limits for frames of up to `max_pixels`: `memory_mb` MiB of address space (0 =
+    /// automatic: 16 bytes per pixel of the largest allowed frame plus 1 GiB for code,
+    /// threads and their arenas, but at most three quarters of this machine's memory),
+    /// and `timeout_s` seconds per file.
+    pub fn new(max_pixels: u64, memory_mb: u64, timeout_s: f64) -> Self {
+        let memory_bytes = if memory_mb > 0 {
+            memory_mb.saturating_mul(1 << 20)
+        } else {
+            let wanted = max_pixels.saturating_mul(16).saturating_add(1 << 30);
+            match physical_memory() {
+                0 => wanted,
+                ram => wanted.min(ram / 4 * 3).max(1 << 30),
+            }
+        };
+        Isolation {
+            program: program(),
+            memory_bytes,
+            timeout: Duration::from_secs_f64(timeout_s.max(1.0)),
+        }
+    }
+}
+
+impl Default for Reader {
+    fn default() -> Self {
+        let limits = crate::frame::DecodeLimits::default();
+        Reader::Isolated(Isolation::new(limits.max_pixels, 0, 300.0))
+    }
+}
+
+/// Why a worker gave no answer, in words for the frame's record.
+fn failure_reason(status: std::process::ExitStatus, stderr: &str, iso: &Isolation) -> String {
+    let last = stderr
+        .lines()
+        .rev()
+        .find(|l| !l.trim().is_empty())
+        .unwrap_or("")
+        .trim();
+    let gib = iso.memory_bytes as f64 / (1u64 << 30) as f64;
+    if last.contains("memory allocation") || last.contains("out of memory") {
+        return format!(
+            "the FITS reader ran out of memory on this file (limit {gib:.1} GiB); raise [measure] reader_memory_mb if the frame is real"
+        );
+    }
+    match status.signal() {
+        Some(libc::SIGKILL) => "the FITS reader was killed on this file (signal 9; out of memory under the service's limit?)".to_string(),
+        Some(sig) => {
+            let name = match sig {
+                libc::SIGSEGV => "segmentation fault",
+                libc::SIGFPE => "arithmetic fault",
+                libc::SIGBUS => "bus error",
+                libc::SIGABRT => "abort",
+                libc::SIGILL => "illegal instruction",
+                libc::SIGXCPU => "CPU time limit",
+                _ => "signal",
+            };
+            format!("the FITS reader crashed on this file (signal {sig}, {name})")
+        }
+        None => match status.code() {
+            Some(101) => "internal error while measuring (a bug; please report it)".into(),
+            code => format!(
+                "the FITS reader stopped on this file (exit {}){}",
+                code.map_or("?".into(), |c| c.to_string()),
+                if last.is_empty() {
+                    String::new()
+                } else {
+                    format!(": {}", crate::logging::one_line(last))
+                }
+            ),
+        },
+    }
+}
+
+/// Read at most `limit` bytes from `r`, then drain the rest (so the writer never blocks).
+fn read_bounded(mut r: impl Read, limit: usize) -> Vec<u8> {
+    let mut out = Vec::new();
+    let _ = (&mut r).take(limit as u64).read_to_end(&mut out);
+    let _ = std::io::copy(&mut r, &mut std::io::sink());
+    out
+}
+
+/// Run one request in a worker process.
+pub fn run_isolated(iso: &Isolation, request: &Request) -> Result<Reply, String> {
+    let input = serde_json::to_vec(request).map_err(|e| format!("encoding the request: {e}"))?;
+    let memory = iso.memory_bytes;
+    let mut cmd = Command::new(&iso.program);
+    cmd.arg(WORKER_COMMAND)
+        .stdin(Stdio::piped())
+        .stdout(Stdio::piped())
+        .stderr(Stdio::piped());
+    // SAFETY: only async-signal-safe calls (setrlimit) between fork and exec.
+    unsafe {
+        cmd.pre_exec(move || {
+            let limit = |resource, value: u64| {
+                let r = libc::rlimit {
+                    rlim_cur: value as libc::rlim_t,
+                    rlim_max: value as libc::rlim_t,
+                };
+                if libc::setrlimit(resource, &r) != 0 {
+                    return Err(std::io::Error::last_os_error());
+                }
+                Ok(())
+            };
+            limit(libc::RLIMIT_AS, memory)?;
+            limit(libc::RLIMIT_CORE, 0)
+        });
+    }
+    let mut child = cmd.spawn().map_err(|e| {
+        format!(
+            "the FITS reader could not be started ({}): {e}",
+            iso.program.display()
+        )
+    })?;
+    let mut stdin = child.stdin.take().expect("piped stdin");
+    let stdout = child.stdout.take().expect("piped stdout");
+    let stderr = child.stderr.take().expect("piped stderr");
+    let (tx, rx) = std::sync::mpsc::channel();
+    let out_thread = std::thread::spawn(move || {
+        let out = read_bounded(stdout, 1 << 30);
+        let _ = tx.send(());
+        out
+    });
+    let err_thread = std::thread::spawn(move || read_bounded(stderr, 64 << 10));
+    // A worker that died at once closes its stdin: that is its exit status's story.
+    let _ = stdin.write_all(&input);
+    drop(stdin);
+    let deadline = Instant::now() + iso.timeout;
+    let timed_out = rx.recv_timeout(iso.timeout).is_err();
+    let status = if timed_out {
+        let _ = child.kill();
+        child.wait()
+    } else {
+        // stdout closed: the worker is exiting; wait for it within what is left.
+        loop {
+            match child.try_wait() {
+                Ok(Some(s)) => break Ok(s),
+                Ok(None) if Instant::now() < deadline => {
+                    std::thread::sleep(Duration::from_millis(2))
+                }
+                Ok(None) => {
+                    let _ = child.kill();
+                    break child.wait();
+                }
+                Err(e) => break Err(e),
+            }
+        }
+    }
+    .map_err(|e| format!("waiting for the FITS reader: {e}"))?;
+    let out = out_thread.join().unwrap_or_default();
+    let err = String::from_utf8_lossy(&err_thread.join().unwrap_or_default()).into_owned();
+    if timed_out {
+        return Err(format!(
+            "the FITS reader took longer than {:.0} s on this file and was stopped",
+            iso.timeout.as_secs_f64()
+        ));
+    }
+    if !status.success() {
+        return Err(failure_reason(status, &err, iso));
+    }
+    serde_json::from_slice(&out)
+        .map_err(|e| format!("the FITS reader's answer was not understood: {e}"))
+}
+
+/// The worker's side: one request from stdin, its reply on stdout.
+pub fn serve(input: impl Read, output: impl Write) -> std::io::Result<()> {
+    let request: Request = serde_json::from_reader(input)
+        .map_err(|e| std::io::Error::new(std::io::ErrorKind::InvalidData, e))?;
+    let reply = answer(request);
+    let mut output = std::io::BufWriter::new(output);
+    serde_json::to_writer(&mut output, &reply).map_err(std::io::Error::other)?;
+    output.flush()
+}
+
+/// What a request asks, done in this process.
+fn answer(request: Request) -> Reply {
+    match request {
+        Request::Record {
+            path,
+            identity,
+            mtime_unix,
+            options,
+        } => Reply::Record(Box::new(crate::pipeline::record_file(
+            &path, identity, mtime_unix, &options,
+        ))),
+        Request::Cutout {
+            path,
+            x,
+            y,
+            half,
+            limits,
+        } => Reply::Cutout(
+            crate::frame::read_frame(&path, limits)
+                .ok()
+                .and_then(|f| crate::report::plots::cutout_png(&f.pixels, x, y, half)),
+        ),
+    }
+}
+
+impl Reader {
+    /// Decode, classify and measure one file into its record. Never fails: a problem,
+    /// the worker's crash included, becomes a record with status "error" naming it.
+    pub fn record(
+        &self,
+        path: &Path,
+        identity: Identity,
+        mtime_unix: f64,
+        options: &RecordOptions,
+    ) -> FrameRecord {
+        let request = Request::Record {
+            path: path.to_path_buf(),
+            identity: identity.clone(),
+            mtime_unix,
+            options: Box::new(options.clone()),
+        };
+        let failed = |reason: String| {
+            let mut r = FrameRecord::failed(identity.clone(), &reason);
+            r.night = crate::sky::night_label(mtime_unix, options.timezone);
+            r
+        };
+        match self.run(request) {
+            Ok(Reply::Record(r)) => *r,
+            Ok(_) => failed("the FITS reader answered another question".into()),
+            Err(reason) => failed(reason),
+        }
+    }
+
+    /// A PNG cutout around (x, y), or `None` when the file cannot be read.
+    pub fn cutout(
+        &self,
+        path: &Path,
+        x: f64,
+        y: f64,
+        half: usize,
+        limits: crate::frame::DecodeLimits,
+    ) -> Option<Vec<u8>> {
+        let request = Request::Cutout {
+            path: path.to_path_buf(),
+            x,
+            y,
+            half,
+            limits,
+        };
+        match self.run(request) {
+            Ok(Reply::Cutout(png)) => png,
+            _ => None,
+        }
+    }
+
+    fn run(&self, request: Request) -> Result<Reply, String> {
+        match self {
+            Reader::Isolated(iso) => run_isolated(iso, &request),
+            Reader::InProcess => {
+                std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| answer(request)))
+                    .map_err(|_| "internal error while measuring (a bug; please report it)".into())
+            }
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// A stand-in worker: a shell script that does what a faulty reader would.
+    fn script(dir: &Path, body: &str) -> Isolation {
+        use std::os::unix::fs::PermissionsExt;
+        let path = dir.join("worker.sh");
+        std::fs::write(&path, format!("#!/bin/sh\n{body}\n")).unwrap();
+        std::fs::set_permissions(&path, std::fs::Permissions::from_mode(0o755)).unwrap();
+        Isolation {
+            program: path,
+            memory_bytes: 1 << 30,
+            timeout: Duration::from_secs(2),
+        }
+    }
+
+    fn request() -> Request {
+        Request::Record {
+            path: "/frames/kfa_001.fits".into(),
+            identity: Identity {
+                path: "/frames/kfa_001.fits".into(),
+                size: 1,
+                mtime_ns: 1,
+            },
+            mtime_unix: 0.0,
+            options: Box::default(),
+        }
+    }
+
+    #[test]
+    fn a_crashing_reader_costs_the_file_with_its_signal_named() {
+        let dir = tempfile::tempdir().unwrap();
+        for (signal, words) in [
+            ("FPE", "crashed on this file (signal 8, arithmetic fault)"),
+            (
+                "SEGV",
+                "crashed on this file (signal 11, segmentation fault)",
+            ),
+            ("ABRT", "crashed on this file (signal 6, abort)"),
+        ] {
+            let iso = script(dir.path(), &format!("cat > /dev/null; kill -{signal} $$"));
+            let err = run_isolated(&iso, &request()).unwrap_err();
+            assert!(err.contains(words), "{err}");
+        }
+    }
+
+    #[test]
+    fn a_reader_out_of_memory_or_out_of_time_is_named_as_such() {
+        let dir = tempfile::tempdir().unwrap();
+        let iso = script(
+            dir.path(),
+            "cat > /dev/null; echo 'memory allocation of 4294967296 bytes failed' >&2; kill -ABRT $$",
+        );
+        let err = run_isolated(&iso, &request()).unwrap_err();
+        assert!(
+            err.contains("ran out of memory on this file (limit 1.0 GiB)"),
+            "{err}"
+        );
+        let iso = script(dir.path(), "cat > /dev/null; exec sleep 30");
+        let start = Instant::now();
+        let err = run_isolated(&iso, &request()).unwrap_err();
+        assert!(err.contains("took longer than 2 s"), "{err}");
+        assert!(start.elapsed() < Duration::from_secs(10));
+    }
+
+    #[test]
+    fn a_reader_that_answers_nonsense_or_cannot_start_is_an_error_not_a_crash() {
+        let dir = tempfile::tempdir().unwrap();
+        let iso = script(dir.path(), "cat > /dev/null; echo '{not json'");
+        assert!(run_isolated(&iso, &request())
+            .unwrap_err()
+            .contains("not understood"));
+        let missing = Isolation {
+            program: dir.path().join("no-such-program"),
+            ..script(dir.path(), "")
+        };
+        assert!(run_isolated(&missing, &request())
+            .unwrap_err()
+            .contains("could not be started"));
+        // The record says so, with the night the file's time gives.
+        let rec = Reader::Isolated(missing).record(
+            Path::new("/frames/kfa_001.fits"),
+            Identity {
+                path: "/frames/kfa_001.fits".into(),
+                size: 1,
+                mtime_ns: 1,
+            },
+            1_773_600_000.0,
+            &RecordOptions::default(),
+        );
+        assert_eq!(rec.status, crate::store::FrameStatus::Error);
+        assert!(rec.night.is_some());
+    }
+}
