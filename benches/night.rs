@@ -44,8 +44,9 @@ fn main() {
         measure_ms.push(t.elapsed().as_secs_f64() * 1e3);
         let t = Instant::now();
         let id = store
-            .record_returning_id(&record, 0.0)
+            .record_frame(&record, 0.0)
             .expect("record")
+            .id()
             .expect("new");
         subwatch::watch::judge_in_store(&store, &record, id, &Default::default()).expect("judge");
         live_ms.push(t.elapsed().as_secs_f64() * 1e3);

@@ -3,37 +3,13 @@
 //! An I/O shell around `pipeline`, `night` and `rules`.
 
 use std::collections::BTreeMap;
-use std::path::{Path, PathBuf};
+use std::path::Path;
 
 use crate::contract::{AnomalyRecord, DetectionRecord, NightDocument, NightFrameRecord};
 use crate::measure::RejectKind;
 use crate::night::{analyse, FrameInput, StarInput};
 use crate::rules::{judge_group_with, FrameFacts, RuleSpec};
 use crate::store::{FrameRecord, FrameStatus, Identity, Store, StoreError};
-
-/// Every file under `dirs` whose name matches the patterns (recursively, hidden folders
-/// left out), sorted by path.
-pub fn find_frames(dirs: &[PathBuf], include: &[String], exclude: &[String]) -> Vec<PathBuf> {
-    let mut out = Vec::new();
-    let mut stack: Vec<PathBuf> = dirs.to_vec();
-    while let Some(dir) = stack.pop() {
-        let Ok(entries) = std::fs::read_dir(&dir) else {
-            continue;
-        };
-        for e in entries.flatten() {
-            let name = e.file_name().to_string_lossy().into_owned();
-            let Ok(ft) = e.file_type() else { continue };
-            if ft.is_dir() && !name.starts_with('.') {
-                stack.push(e.path());
-            } else if ft.is_file() && crate::watch::patterns::is_candidate(&name, include, exclude)
-            {
-                out.push(e.path());
-            }
-        }
-    }
-    out.sort();
-    out
-}
 
 fn frame_input(r: &FrameRecord) -> FrameInput {
     let m = r.metrics.as_ref();
@@ -226,31 +202,15 @@ pub fn run_night(
 ) -> Result<NightDocument, StoreError> {
     let options = crate::watch::record_options(config);
     let reader = config.measure.reader();
-    let files = find_frames(
-        &[dir.to_path_buf()],
-        &config.watch.include,
-        &config.watch.exclude,
-    );
+    let files = crate::walk::FrameFilter::from_config(config).walk(&[dir.to_path_buf()]);
     let total = files.len();
     let mut records = Vec::with_capacity(total);
     for (k, path) in files.iter().enumerate() {
-        let (identity, mtime_unix) = match std::fs::metadata(path) {
-            Ok(m) => {
-                let mtime = m
-                    .modified()
-                    .ok()
-                    .and_then(|t| t.duration_since(std::time::UNIX_EPOCH).ok());
-                (
-                    Identity {
-                        path: path.to_string_lossy().into_owned(),
-                        size: m.len(),
-                        mtime_ns: mtime.map_or(0, |d| d.as_nanos() as i64),
-                    },
-                    mtime.map_or(0.0, |d| d.as_secs_f64()),
-                )
-            }
-            Err(_) => continue,
+        // A file that went between the walk and now is left out.
+        let Ok(identity) = Identity::of(path) else {
+            continue;
         };
+        let mtime_unix = identity.mtime_unix();
         records.push(reader.record(path, identity, mtime_unix, &options));
         progress(k + 1, total);
     }

@@ -245,6 +245,9 @@ pub struct Config {
     pub report: ReportConfig,
     /// Rule tables; their contents are checked by the rules module.
     pub rules: Vec<toml::Table>,
+    /// The file this configuration was read from.
+    #[serde(skip)]
+    pub source: Option<PathBuf>,
 }
 
 /// One problem with a configuration, located.
@@ -292,10 +295,12 @@ pub fn load(path: &Path) -> Result<Config, ConfigError> {
         .filter(|p| !p.as_os_str().is_empty())
         .unwrap_or(Path::new("."));
     let base = std::fs::canonicalize(folder).unwrap_or_else(|_| folder.to_path_buf());
-    parse(&text, &base).map_err(|problems| ConfigError::Invalid {
+    let mut config = parse(&text, &base).map_err(|problems| ConfigError::Invalid {
         path: path.to_path_buf(),
         problems,
-    })
+    })?;
+    config.source = Some(path.to_path_buf());
+    Ok(config)
 }
 
 /// Parse configuration text; relative paths are taken from `base` (the file's folder).

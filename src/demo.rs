@@ -179,7 +179,7 @@ pub fn run(
             let identity = Identity::of(&path).map_err(io(&path))?;
             let rec = reader.record(&path, identity, f.time_unix, &options);
             label = rec.night.clone();
-            if let Some(id) = store.record_returning_id(&rec, f.time_unix)? {
+            if let Some(id) = store.record_frame(&rec, f.time_unix)?.id() {
                 crate::watch::judge_in_store(&store, &rec, id, &judging)?;
             }
         }

@@ -4,12 +4,14 @@
 //! wrapped by thin I/O shells (`frame::fits` decoding, `pipeline`, the binary's CLI).
 //! See ARCHITECTURE.md for the map and the invariants.
 
+pub mod actions;
 pub mod batch;
 pub mod buffer;
 pub mod config;
 pub mod contract;
 pub mod demo;
 pub mod frame;
+pub mod lists;
 pub mod logging;
 pub mod mail;
 pub mod measure;
@@ -22,4 +24,5 @@ pub mod rules;
 pub mod sim;
 pub mod sky;
 pub mod store;
+pub mod walk;
 pub mod watch;

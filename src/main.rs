@@ -617,13 +617,7 @@ fn report_command(
     };
     let mut store = subwatch::store::Store::open(&cfg.store.path)?;
     if !send {
-        let records = store.night_records(&night)?;
-        let doc = subwatch::batch::analyse_records(
-            &records,
-            &cfg.rule_specs(),
-            cfg.site_position(),
-            Some(&mut store),
-        )?;
+        let doc = subwatch::morning::judge_night(&mut store, &cfg, &night)?;
         return print_night(&doc, json);
     }
     let prepared = subwatch::morning::prepare(&mut store, &cfg, &night)?;
@@ -738,16 +732,17 @@ fn status_command(config: &std::path::Path, night: Option<String>, json: bool) -
     let daemon: Option<serde_json::Value> = store
         .meta("daemon")?
         .and_then(|s| serde_json::from_str(&s).ok());
-    let alive = daemon
-        .as_ref()
-        .and_then(|d| d["updated_unix"].as_f64())
-        .is_some_and(|t| now - t < 10.0);
+    // Running means holding the store's daemon lock, which goes when the process does,
+    // however it ends; a heartbeat alone would outlive a killed daemon.
+    let running_pid = subwatch::store::daemon_pid(&cfg.store.path);
+    let alive = running_pid.is_some();
     if json {
         let doc = serde_json::json!({
             "night": night,
             "counts": counts,
             "daemon": daemon,
             "daemon_running": alive,
+            "daemon_pid": running_pid,
         });
         println!("{doc}");
     } else {
@@ -764,12 +759,13 @@ fn status_command(config: &std::path::Path, night: Option<String>, json: bool) -
         if let Some(t) = counts.last_recorded_unix {
             println!("  last frame recorded {:.0} s ago", now - t);
         }
-        match (&daemon, alive) {
-            (Some(d), true) => println!(
-                "  daemon running: {} waiting, {} being measured",
+        match (&daemon, running_pid) {
+            (Some(d), Some(pid)) => println!(
+                "  daemon running (process {pid}): {} waiting, {} being read",
                 d["waiting"], d["in_flight"]
             ),
-            _ => println!("  daemon not running (no heartbeat in the last 10 s)"),
+            (None, Some(pid)) => println!("  daemon running (process {pid})"),
+            (_, None) => println!("  daemon not running"),
         }
     }
     Ok(ExitCode::SUCCESS)

@@ -46,10 +46,54 @@ pub fn report_folder(c: &Config) -> PathBuf {
 
 /// Build the night's summary and write its HTML (images inside as data URIs) and CSV.
 pub fn prepare(store: &mut Store, c: &Config, night: &str) -> Result<Prepared, MorningError> {
+    let doc = judge_night(store, c, night)?;
+    write_files(doc, night, &report_folder(c), &c.measure)
+}
+
+/// Judge a recorded night with the configuration's rules, keep the verdicts in the store
+/// and, when lists are kept, rewrite the night's lists where a verdict changed.
+pub fn judge_night(
+    store: &mut Store,
+    c: &Config,
+    night: &str,
+) -> Result<NightDocument, MorningError> {
     let records = store.night_records(night)?;
     let doc =
         crate::batch::analyse_records(&records, &c.rule_specs(), c.site_position(), Some(store))?;
-    write_files(doc, night, &report_folder(c), &c.measure)
+    let verdicts: Vec<(String, String, Vec<String>)> = doc
+        .frames
+        .iter()
+        .map(|f| {
+            (
+                f.path.clone(),
+                f.verdict.as_str().to_string(),
+                f.reasons.clone(),
+            )
+        })
+        .collect();
+    let changed = store.update_verdicts(&verdicts)?;
+    if let (true, Some(folder)) = (changed > 0, lists_folder(c)) {
+        for written in crate::lists::rewrite_night(store, &folder, night) {
+            if let Err(e) = written {
+                tracing::warn!("{e}");
+            }
+        }
+    }
+    Ok(doc)
+}
+
+/// Where the lists of frames to stack go, when they are kept: `[actions] lists_folder`,
+/// else `accepted` beside the store.
+pub fn lists_folder(c: &Config) -> Option<PathBuf> {
+    c.actions.accepted_lists.then(|| {
+        c.actions.lists_folder.clone().unwrap_or_else(|| {
+            c.store
+                .path
+                .parent()
+                .unwrap_or(Path::new("."))
+                .join("accepted")
+        })
+    })
 }
 
 /// The summary, plots and cutouts of a night document, written as stand-alone HTML and

@@ -196,7 +196,7 @@ pub fn run_isolated(iso: &Isolation, request: &Request) -> Result<Reply, String>
         .stdin(Stdio::piped())
         .stdout(Stdio::piped())
         .stderr(Stdio::piped());
-    // SAFETY: only async-signal-safe calls (setrlimit) between fork and exec.
+    // SAFETY: only async-signal-safe calls (setrlimit, prctl) between fork and exec.
     unsafe {
         cmd.pre_exec(move || {
             let limit = |resource, value: u64| {
@@ -210,7 +210,12 @@ pub fn run_isolated(iso: &Isolation, request: &Request) -> Result<Reply, String>
                 Ok(())
             };
             limit(libc::RLIMIT_AS, memory)?;
-            limit(libc::RLIMIT_CORE, 0)
+            limit(libc::RLIMIT_CORE, 0)?;
+            // A worker does not outlive the process that asked (a killed daemon).
+            if libc::prctl(libc::PR_SET_PDEATHSIG, libc::SIGKILL) != 0 {
+                return Err(std::io::Error::last_os_error());
+            }
+            Ok(())
         });
     }
     let mut child = cmd.spawn().map_err(|e| {

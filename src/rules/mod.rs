@@ -15,6 +15,17 @@ pub enum Verdict {
     Reject,
 }
 
+impl Verdict {
+    /// The verdict as the contract spells it.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Verdict::Ok => "ok",
+            Verdict::Warn => "warn",
+            Verdict::Reject => "reject",
+        }
+    }
+}
+
 /// What the rules look at for one frame.
 #[derive(Debug, Clone, Default)]
 pub struct FrameFacts {

@@ -1,7 +1,9 @@
 //! The SQLite store: the only module that speaks SQL. One file, WAL mode, a schema version
 //! and forward migrations. A frame and its stars are written in one transaction, and a
-//! frame's identity (path, size, modification time) is unique, so a frame is recorded
-//! exactly once however often the daemon is killed and restarted.
+//! path holds one record: the same file (path, size, modification time) is recorded
+//! once however often the daemon is killed and restarted, and a newer version of a file
+//! replaces its earlier record, stars and verdict. Files being read are remembered, so
+//! one that was in the reader when the process died is not retried for ever.
 
 use std::path::{Path, PathBuf};
 
@@ -13,6 +15,15 @@ use crate::measure::Rejected;
 
 #[derive(Debug, thiserror::Error)]
 pub enum StoreError {
+    #[error("another subwatch daemon (process {pid}) is using the store {path}; stop it first, or give this one a store of its own")]
+    InUse { path: PathBuf, pid: String },
+    #[error("store {path}: cannot take the daemon's lock {lock}: {source}")]
+    Lock {
+        path: PathBuf,
+        lock: PathBuf,
+        #[source]
+        source: std::io::Error,
+    },
     #[error("store {path}: {source}")]
     Sqlite {
         path: PathBuf,
@@ -27,7 +38,8 @@ pub enum StoreError {
     },
 }
 
-/// What makes a file the same file: replacing it (new size or time) makes a new frame.
+/// What makes a file the same file: a new size or time at the same path is a newer
+/// version of the frame, which replaces the record of the older one.
 #[derive(Debug, Clone, PartialEq, Eq, Hash, serde::Serialize, serde::Deserialize)]
 pub struct Identity {
     pub path: String,
@@ -36,18 +48,27 @@ pub struct Identity {
 }
 
 impl Identity {
+    /// The identity of the file at `path` now (its symbolic links followed).
     pub fn of(path: &Path) -> std::io::Result<Self> {
-        let m = std::fs::metadata(path)?;
-        let mtime = m.modified()?;
-        let mtime_ns = match mtime.duration_since(std::time::UNIX_EPOCH) {
-            Ok(d) => d.as_nanos() as i64,
-            Err(e) => -(e.duration().as_nanos() as i64),
-        };
-        Ok(Self {
+        Ok(Self::from_metadata(path, &std::fs::metadata(path)?))
+    }
+
+    /// The identity from metadata already read; times before 1970 count negative.
+    pub fn from_metadata(path: &Path, m: &std::fs::Metadata) -> Self {
+        use std::os::unix::fs::MetadataExt;
+        Identity {
             path: path.to_string_lossy().into_owned(),
             size: m.len(),
-            mtime_ns,
-        })
+            mtime_ns: m
+                .mtime()
+                .saturating_mul(1_000_000_000)
+                .saturating_add(m.mtime_nsec()),
+        }
+    }
+
+    /// The modification time, seconds since 1970 (UTC).
+    pub fn mtime_unix(&self) -> f64 {
+        self.mtime_ns as f64 / 1e9
     }
 }
 
@@ -126,7 +147,7 @@ pub struct StoredFrame {
 }
 
 /// What places a frame in its group, for judging it.
-#[derive(Debug, Clone)]
+#[derive(Debug, Clone, PartialEq)]
 pub struct GroupKey {
     pub night: Option<String>,
     pub target: Option<String>,
@@ -146,6 +167,9 @@ pub struct GroupFrame {
     pub time_unix: Option<f64>,
 }
 
+/// A group's target and filter (either may be unknown).
+pub type TargetFilter = (Option<String>, Option<String>);
+
 /// Counts for `subwatch status`.
 #[derive(Debug, Clone, Default, Serialize)]
 pub struct NightCounts {
@@ -159,7 +183,7 @@ pub struct NightCounts {
     pub last_recorded_unix: Option<f64>,
 }
 
-pub const SCHEMA_VERSION: i64 = 4;
+pub const SCHEMA_VERSION: i64 = 5;
 
 const MIGRATIONS: &[&str] = &[
     // 1: frames, their stars and rejected detections, and a key-value table.
@@ -238,11 +262,120 @@ const MIGRATIONS: &[&str] = &[
         created_unix REAL NOT NULL,
         message TEXT NOT NULL
      );",
+    // 5: one record per path (a rewritten file replaces its record; where a file was
+    // recorded twice before, the newer record stays), and the files being read, which
+    // outlive a crash of the process reading them.
+    "DELETE FROM frames WHERE id NOT IN (SELECT MAX(id) FROM frames GROUP BY path);
+     CREATE UNIQUE INDEX frames_path ON frames (path);
+     CREATE TABLE reading (
+        path TEXT PRIMARY KEY,
+        size INTEGER NOT NULL,
+        mtime_ns INTEGER NOT NULL,
+        started_unix REAL NOT NULL,
+        interruptions INTEGER NOT NULL DEFAULT 0
+     );",
 ];
+
+/// What recording a frame did.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Recorded {
+    /// This version of the file was already recorded; nothing was written.
+    Already,
+    /// A new record, with its id.
+    New(i64),
+    /// The file changed since it was recorded: the earlier record (its group given, so
+    /// its list can be rewritten) was replaced by the new one.
+    Replaced { id: i64, earlier: GroupKey },
+}
+
+impl Recorded {
+    pub fn id(&self) -> Option<i64> {
+        match self {
+            Recorded::Already => None,
+            Recorded::New(id) | Recorded::Replaced { id, .. } => Some(*id),
+        }
+    }
+}
+
+/// A file that was being read when the process reading it stopped.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Interrupted {
+    pub identity: Identity,
+    /// How many times a process stopped while reading this version of the file.
+    pub interruptions: i64,
+}
 
 pub struct Store {
     conn: Connection,
     path: PathBuf,
+}
+
+/// A daemon's claim on its store: an exclusive lock (flock) on `<store>.lock`, which
+/// holds the daemon's process id. The kernel releases it when the process ends, however
+/// it ends, so a killed daemon never leaves a stale claim behind.
+pub struct DaemonLock {
+    _file: std::fs::File,
+}
+
+fn lock_path(store: &Path) -> PathBuf {
+    let mut name = store.as_os_str().to_owned();
+    name.push(".lock");
+    PathBuf::from(name)
+}
+
+fn try_flock(file: &std::fs::File, mode: libc::c_int) -> std::io::Result<bool> {
+    use std::os::fd::AsRawFd;
+    // SAFETY: flock on a file descriptor this function borrows.
+    if unsafe { libc::flock(file.as_raw_fd(), mode | libc::LOCK_NB) } == 0 {
+        return Ok(true);
+    }
+    let e = std::io::Error::last_os_error();
+    if e.raw_os_error() == Some(libc::EWOULDBLOCK) {
+        Ok(false)
+    } else {
+        Err(e)
+    }
+}
+
+/// Claim `store` for this daemon; refused while another daemon holds it.
+pub fn claim(store: &Path) -> Result<DaemonLock, StoreError> {
+    use std::io::{Seek, Write};
+    let lock = lock_path(store);
+    let fail = |source| StoreError::Lock {
+        path: store.to_path_buf(),
+        lock: lock.clone(),
+        source,
+    };
+    let mut file = std::fs::OpenOptions::new()
+        .read(true)
+        .write(true)
+        .create(true)
+        .truncate(false)
+        .open(&lock)
+        .map_err(fail)?;
+    if !try_flock(&file, libc::LOCK_EX).map_err(fail)? {
+        let pid = std::fs::read_to_string(&lock).unwrap_or_default();
+        return Err(StoreError::InUse {
+            path: store.to_path_buf(),
+            pid: pid.trim().to_string(),
+        });
+    }
+    file.set_len(0).map_err(fail)?;
+    file.rewind().map_err(fail)?;
+    writeln!(file, "{}", std::process::id()).map_err(fail)?;
+    Ok(DaemonLock { _file: file })
+}
+
+/// The process id of the daemon that holds `store` now, if one does.
+pub fn daemon_pid(store: &Path) -> Option<u32> {
+    let lock = lock_path(store);
+    let file = std::fs::File::open(&lock).ok()?;
+    match try_flock(&file, libc::LOCK_SH) {
+        // Nobody holds it (the lock goes when this file closes).
+        Ok(true) => None,
+        Ok(false) => std::fs::read_to_string(&lock).ok()?.trim().parse().ok(),
+        Err(_) => None,
+    }
 }
 
 impl Store {
@@ -332,24 +465,62 @@ impl Store {
             .map_err(|e| self.err(e))
     }
 
-    /// Record a frame with its stars, atomically. Returns false when that identity was
-    /// already recorded (nothing is written then).
+    /// Record a frame with its stars, atomically. Returns false when this version of the
+    /// file was already recorded (nothing is written then).
     pub fn record(&mut self, f: &FrameRecord, now_unix: f64) -> Result<bool, StoreError> {
-        self.record_returning_id(f, now_unix).map(|id| id.is_some())
+        self.record_frame(f, now_unix)
+            .map(|r| r != Recorded::Already)
     }
 
-    /// As [`Store::record`], returning the new row's id.
-    pub fn record_returning_id(
-        &mut self,
-        f: &FrameRecord,
-        now_unix: f64,
-    ) -> Result<Option<i64>, StoreError> {
+    /// Record a frame with its stars, atomically: nothing when this version of the file
+    /// is recorded already, a new record, or the replacement of an older version's
+    /// record (its stars, rejected detections and verdict go with it). The file's
+    /// reading mark is cleared in the same transaction.
+    pub fn record_frame(&mut self, f: &FrameRecord, now_unix: f64) -> Result<Recorded, StoreError> {
         let path = self.path.clone();
         let err = |source| StoreError::Sqlite {
             path: path.clone(),
             source,
         };
         let tx = self.conn.transaction().map_err(err)?;
+        let existing: Option<(i64, i64, i64, GroupKey)> = tx
+            .query_row(
+                "SELECT id, size, mtime_ns, night, target, filter, status FROM frames WHERE path = ?1",
+                params![f.identity.path],
+                |r| {
+                    let status: String = r.get(6)?;
+                    Ok((
+                        r.get(0)?,
+                        r.get(1)?,
+                        r.get(2)?,
+                        GroupKey {
+                            night: r.get(3)?,
+                            target: r.get(4)?,
+                            filter: r.get(5)?,
+                            ok: status == "ok",
+                            skipped: status == "skipped",
+                        },
+                    ))
+                },
+            )
+            .optional()
+            .map_err(err)?;
+        let mut earlier = None;
+        if let Some((id, size, mtime_ns, key)) = existing {
+            if size == f.identity.size as i64 && mtime_ns == f.identity.mtime_ns {
+                tx.execute(
+                    "DELETE FROM reading WHERE path = ?1",
+                    params![f.identity.path],
+                )
+                .map_err(err)?;
+                tx.commit().map_err(err)?;
+                return Ok(Recorded::Already);
+            }
+            // Stars and rejected detections go with the row (ON DELETE CASCADE).
+            tx.execute("DELETE FROM frames WHERE id = ?1", params![id])
+                .map_err(err)?;
+            earlier = Some(key);
+        }
         let metrics_json = f
             .metrics
             .as_ref()
@@ -359,37 +530,33 @@ impl Store {
             .as_ref()
             .map(|h| serde_json::to_string(h).unwrap_or_default());
         let m = f.metrics.as_ref();
-        let inserted = tx
-            .execute(
-                "INSERT OR IGNORE INTO frames (path, size, mtime_ns, status, error, night, target, filter,
-                    time_unix, header_json, metrics_json, star_count, fwhm_px, eccentricity,
-                    background_adu, noise_adu, recorded_at, wcs_json)
-                 VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17, ?18)",
-                params![
-                    f.identity.path,
-                    f.identity.size as i64,
-                    f.identity.mtime_ns,
-                    f.status.as_str(),
-                    f.error,
-                    f.night,
-                    f.target,
-                    f.filter,
-                    f.time_unix,
-                    header_json,
-                    metrics_json,
-                    m.map(|m| m.star_count as i64),
-                    m.and_then(|m| m.fwhm_px),
-                    m.and_then(|m| m.eccentricity),
-                    m.map(|m| m.background_adu),
-                    m.map(|m| m.noise_adu),
-                    now_unix,
-                    f.wcs.as_ref().and_then(|w| serde_json::to_string(w).ok()),
-                ],
-            )
-            .map_err(err)?;
-        if inserted == 0 {
-            return Ok(None);
-        }
+        tx.execute(
+            "INSERT INTO frames (path, size, mtime_ns, status, error, night, target, filter,
+                time_unix, header_json, metrics_json, star_count, fwhm_px, eccentricity,
+                background_adu, noise_adu, recorded_at, wcs_json)
+             VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17, ?18)",
+            params![
+                f.identity.path,
+                f.identity.size as i64,
+                f.identity.mtime_ns,
+                f.status.as_str(),
+                f.error,
+                f.night,
+                f.target,
+                f.filter,
+                f.time_unix,
+                header_json,
+                metrics_json,
+                m.map(|m| m.star_count as i64),
+                m.and_then(|m| m.fwhm_px),
+                m.and_then(|m| m.eccentricity),
+                m.map(|m| m.background_adu),
+                m.map(|m| m.noise_adu),
+                now_unix,
+                f.wcs.as_ref().and_then(|w| serde_json::to_string(w).ok()),
+            ],
+        )
+        .map_err(err)?;
         let frame_id = tx.last_insert_rowid();
         {
             let mut st = tx
@@ -431,23 +598,82 @@ impl Store {
                     .map_err(err)?;
             }
         }
+        tx.execute(
+            "DELETE FROM reading WHERE path = ?1",
+            params![f.identity.path],
+        )
+        .map_err(err)?;
         tx.commit().map_err(err)?;
-        Ok(Some(frame_id))
+        Ok(match earlier {
+            Some(earlier) => Recorded::Replaced {
+                id: frame_id,
+                earlier,
+            },
+            None => Recorded::New(frame_id),
+        })
     }
 
-    /// All recorded identities (for the catch-up scan).
-    pub fn identities(&self) -> Result<std::collections::HashSet<Identity>, StoreError> {
+    /// Mark a file as being read (before its reader starts). A mark left from an earlier
+    /// process for this same version of the file keeps its count of interruptions.
+    pub fn begin_reading(&self, id: &Identity, now_unix: f64) -> Result<(), StoreError> {
+        self.run(
+            "INSERT INTO reading (path, size, mtime_ns, started_unix) VALUES (?1, ?2, ?3, ?4)
+             ON CONFLICT (path) DO UPDATE SET started_unix = excluded.started_unix,
+                interruptions = CASE WHEN size = excluded.size AND mtime_ns = excluded.mtime_ns
+                                     THEN interruptions ELSE 0 END,
+                size = excluded.size, mtime_ns = excluded.mtime_ns",
+            params![id.path, id.size as i64, id.mtime_ns, now_unix],
+        )
+    }
+
+    /// Files marked as being read that no record cleared: the process reading them
+    /// stopped. Each one's count of interruptions goes up by one here (call once, at
+    /// start-up, before any file is read).
+    pub fn take_interrupted(&mut self) -> Result<Vec<Interrupted>, StoreError> {
+        let path = self.path.clone();
+        let err = |source| StoreError::Sqlite {
+            path: path.clone(),
+            source,
+        };
+        let tx = self.conn.transaction().map_err(err)?;
+        tx.execute("UPDATE reading SET interruptions = interruptions + 1", [])
+            .map_err(err)?;
+        let rows = {
+            let mut st = tx
+                .prepare("SELECT path, size, mtime_ns, interruptions FROM reading ORDER BY path")
+                .map_err(err)?;
+            let rows = st
+                .query_map([], |r| {
+                    Ok(Interrupted {
+                        identity: Identity {
+                            path: r.get(0)?,
+                            size: r.get::<_, i64>(1)? as u64,
+                            mtime_ns: r.get(2)?,
+                        },
+                        interruptions: r.get(3)?,
+                    })
+                })
+                .map_err(err)?
+                .collect::<Result<Vec<_>, _>>()
+                .map_err(err)?;
+            rows
+        };
+        tx.commit().map_err(err)?;
+        Ok(rows)
+    }
+
+    /// The recorded version (size, modification time) of every path, for the catch-up
+    /// scan: a path whose file now differs is read again and its record replaced.
+    pub fn recorded_versions(
+        &self,
+    ) -> Result<std::collections::HashMap<String, (u64, i64)>, StoreError> {
         let mut st = self
             .conn
             .prepare("SELECT path, size, mtime_ns FROM frames")
             .map_err(|e| self.err(e))?;
         let rows = st
             .query_map([], |r| {
-                Ok(Identity {
-                    path: r.get(0)?,
-                    size: r.get::<_, i64>(1)? as u64,
-                    mtime_ns: r.get(2)?,
-                })
+                Ok((r.get(0)?, (r.get::<_, i64>(1)? as u64, r.get(2)?)))
             })
             .map_err(|e| self.err(e))?;
         rows.collect::<Result<_, _>>().map_err(|e| self.err(e))
@@ -683,12 +909,26 @@ impl Store {
         )
     }
 
-    /// A recorded frame's file moved (the rejected-frames action).
-    pub fn set_path(&self, id: i64, path: &str) -> Result<(), StoreError> {
-        self.run(
+    /// A recorded frame's file moved (the rejected-frames action). A stale record of a
+    /// file that was once at the new path (and is not there now) gives way.
+    pub fn set_path(&mut self, id: i64, path: &str) -> Result<(), StoreError> {
+        let err_path = self.path.clone();
+        let err = |source| StoreError::Sqlite {
+            path: err_path.clone(),
+            source,
+        };
+        let tx = self.conn.transaction().map_err(err)?;
+        tx.execute(
+            "DELETE FROM frames WHERE path = ?2 AND id != ?1",
+            params![id, path],
+        )
+        .map_err(err)?;
+        tx.execute(
             "UPDATE frames SET path = ?2 WHERE id = ?1",
             params![id, path],
         )
+        .map_err(err)?;
+        tx.commit().map_err(err)
     }
 
     /// Record a frame's verdict and reasons.
@@ -708,6 +948,35 @@ impl Store {
         )
     }
 
+    /// Store verdicts judged again for the whole night (path, verdict, reasons), in one
+    /// transaction. Returns how many changed.
+    pub fn update_verdicts(
+        &mut self,
+        verdicts: &[(String, String, Vec<String>)],
+    ) -> Result<usize, StoreError> {
+        let path = self.path.clone();
+        let err = |source| StoreError::Sqlite {
+            path: path.clone(),
+            source,
+        };
+        let tx = self.conn.transaction().map_err(err)?;
+        let mut changed = 0;
+        {
+            let mut st = tx
+                .prepare_cached(
+                    "UPDATE frames SET verdict = ?2, reasons_json = ?3
+                     WHERE path = ?1 AND (verdict IS NOT ?2 OR reasons_json IS NOT ?3)",
+                )
+                .map_err(err)?;
+            for (p, verdict, reasons) in verdicts {
+                let reasons = serde_json::to_string(reasons).unwrap_or_default();
+                changed += st.execute(params![p, verdict, reasons]).map_err(err)?;
+            }
+        }
+        tx.commit().map_err(err)?;
+        Ok(changed)
+    }
+
     /// Paths of the frames of one night, target and filter whose verdict is not reject.
     pub fn accepted_paths(
         &self,
@@ -720,6 +989,21 @@ impl Store {
              AND status = 'ok' AND verdict IN ('ok', 'warn') ORDER BY COALESCE(time_unix, recorded_at), id",
             params![night, target, filter],
         )
+    }
+
+    /// The (target, filter) groups of one night's frames.
+    pub fn night_groups(&self, night: &str) -> Result<Vec<TargetFilter>, StoreError> {
+        let mut st = self
+            .conn
+            .prepare(
+                "SELECT DISTINCT target, filter FROM frames WHERE night = ?1 AND status != 'skipped'
+                 ORDER BY target, filter",
+            )
+            .map_err(|e| self.err(e))?;
+        let rows = st
+            .query_map(params![night], |r| Ok((r.get(0)?, r.get(1)?)))
+            .map_err(|e| self.err(e))?;
+        rows.collect::<Result<_, _>>().map_err(|e| self.err(e))
     }
 
     /// Counts for one night.
@@ -1015,16 +1299,130 @@ mod tests {
     }
 
     #[test]
-    fn a_frame_is_recorded_once_and_a_replaced_file_again() {
+    fn a_path_holds_one_record_and_a_newer_file_replaces_it() {
         let dir = tempfile::tempdir().unwrap();
         let mut s = Store::open(&dir.path().join("s.db")).unwrap();
-        assert!(s.record(&record("/a.fits", 10), 1.0).unwrap());
-        assert!(!s.record(&record("/a.fits", 10), 2.0).unwrap());
-        assert!(s.record(&record("/a.fits", 11), 3.0).unwrap());
-        assert_eq!(s.night_counts("2026-03-14").unwrap().frames, 2);
-        // Reopening migrates nothing and keeps the rows.
+        let first = s.record_frame(&record("/a.fits", 10), 1.0).unwrap();
+        assert!(matches!(first, Recorded::New(_)));
+        s.set_verdict(first.id().unwrap(), "reject", &["fwhm_high".into()])
+            .unwrap();
+        assert_eq!(
+            s.record_frame(&record("/a.fits", 10), 2.0).unwrap(),
+            Recorded::Already
+        );
+        let mut newer = record("/a.fits", 11);
+        newer.stars.push(crate::contract::StarRecord {
+            x: 1.0,
+            y: 2.0,
+            ..star()
+        });
+        let replaced = s.record_frame(&newer, 3.0).unwrap();
+        let Recorded::Replaced { id, earlier } = replaced else {
+            panic!("{replaced:?}")
+        };
+        assert_eq!(earlier.filter.as_deref(), Some("L"));
+        assert_eq!(s.night_counts("2026-03-14").unwrap().frames, 1);
+        // The earlier version's stars and verdict went with its record.
+        assert_eq!(s.frame_stars(id).unwrap().len(), 1);
+        assert_eq!(s.frames_without_verdict().unwrap().len(), 1);
+        // Reopening migrates nothing and keeps the row.
         drop(s);
         let s = Store::open(&dir.path().join("s.db")).unwrap();
-        assert_eq!(s.identities().unwrap().len(), 2);
+        assert_eq!(s.recorded_versions().unwrap()["/a.fits"], (11, 7));
+    }
+
+    #[test]
+    fn a_second_daemon_is_refused_and_a_gone_one_leaves_no_claim() {
+        let dir = tempfile::tempdir().unwrap();
+        let db = dir.path().join("s.db");
+        assert_eq!(daemon_pid(&db), None);
+        let first = claim(&db).unwrap();
+        assert_eq!(daemon_pid(&db), Some(std::process::id()));
+        let refused = claim(&db).err().expect("a second claim is refused");
+        assert!(
+            refused
+                .to_string()
+                .contains(&format!("process {}", std::process::id())),
+            "{refused}"
+        );
+        drop(first);
+        assert_eq!(daemon_pid(&db), None);
+        assert!(claim(&db).is_ok());
+    }
+
+    #[test]
+    fn a_file_in_the_reader_when_the_process_died_is_counted_not_retried_for_ever() {
+        let dir = tempfile::tempdir().unwrap();
+        let mut s = Store::open(&dir.path().join("s.db")).unwrap();
+        let a = record("/a.fits", 10).identity;
+        s.begin_reading(&a, 1.0).unwrap();
+        // The process died; at each start the mark counts one more interruption.
+        for n in 1..=3 {
+            let left = s.take_interrupted().unwrap();
+            assert_eq!(
+                left,
+                vec![Interrupted {
+                    identity: a.clone(),
+                    interruptions: n
+                }]
+            );
+            s.begin_reading(&a, 2.0).unwrap();
+        }
+        // A changed file starts counting again; a record clears the mark.
+        let mut b = a.clone();
+        b.size = 12;
+        s.begin_reading(&b, 3.0).unwrap();
+        assert_eq!(s.take_interrupted().unwrap()[0].interruptions, 1);
+        s.record_frame(&record("/a.fits", 12), 4.0).unwrap();
+        assert!(s.take_interrupted().unwrap().is_empty());
+    }
+
+    #[test]
+    fn the_migration_keeps_the_newest_record_of_a_path_recorded_twice() {
+        let dir = tempfile::tempdir().unwrap();
+        let db = dir.path().join("s.db");
+        {
+            // A store as version 4 left it: the same path twice.
+            let conn = Connection::open(&db).unwrap();
+            for (i, sql) in MIGRATIONS.iter().take(4).enumerate() {
+                conn.execute_batch(sql).unwrap();
+                conn.execute_batch(&format!("PRAGMA user_version = {}", i + 1))
+                    .unwrap();
+            }
+            for (size, t) in [(10, 1.0), (11, 2.0)] {
+                conn.execute(
+                    "INSERT INTO frames (path, size, mtime_ns, status, recorded_at) VALUES ('/a.fits', ?1, 7, 'ok', ?2)",
+                    params![size, t],
+                )
+                .unwrap();
+            }
+        }
+        let s = Store::open(&db).unwrap();
+        assert_eq!(s.recorded_versions().unwrap().len(), 1);
+        assert_eq!(s.recorded_versions().unwrap()["/a.fits"].0, 11);
+    }
+
+    fn star() -> crate::contract::StarRecord {
+        crate::contract::StarRecord {
+            x: 0.0,
+            y: 0.0,
+            flux: 1.0,
+            fwhm_px: 3.0,
+            eccentricity: 0.1,
+            snr: 50.0,
+            flux_err: 0.1,
+            hfr_px: None,
+            fwhm_major_px: 3.0,
+            fwhm_minor_px: 3.0,
+            angle_deg: 0.0,
+            psf_flux: 1.0,
+            psf_model: crate::measure::psf::PsfModel::Gaussian,
+            moffat_beta: None,
+            peak_adu: 1.0,
+            blended: false,
+            ra_deg: None,
+            dec_deg: None,
+            rgb: None,
+        }
     }
 }

@@ -1,0 +1,96 @@
+//! The lists of frames worth stacking: one text file per night, target and filter
+//! (`<folder>/<night>/<target>__<filter>.txt`), one path per line, each path once. A
+//! list is rewritten whole whenever a verdict in its group changes (a new frame, a
+//! replaced record, a summary judged with other rules): written beside, synced, then
+//! renamed over the old one, so a stacking program never reads half a list. A sink: it
+//! reads the store and writes in subwatch's own folder, never beside a user's frames.
+
+use std::io::Write;
+use std::path::{Path, PathBuf};
+
+use crate::store::Store;
+
+/// A name made safe for a file name: letters, digits, `-` and `_`; anything else `_`.
+fn file_part(s: Option<&str>) -> String {
+    s.unwrap_or("unknown")
+        .chars()
+        .map(|c| {
+            if c.is_ascii_alphanumeric() || c == '-' || c == '_' {
+                c
+            } else {
+                '_'
+            }
+        })
+        .collect()
+}
+
+/// Where the list of one group lives.
+pub fn list_path(
+    folder: &Path,
+    night: &str,
+    target: Option<&str>,
+    filter: Option<&str>,
+) -> PathBuf {
+    folder.join(file_part(Some(night))).join(format!(
+        "{}__{}.txt",
+        file_part(target),
+        file_part(filter)
+    ))
+}
+
+/// Rewrite the list of one group from the store's verdicts. Returns the list's path.
+pub fn rewrite(
+    store: &Store,
+    folder: &Path,
+    night: &str,
+    target: Option<&str>,
+    filter: Option<&str>,
+) -> Result<PathBuf, String> {
+    let file = list_path(folder, night, target, filter);
+    let paths = store
+        .accepted_paths(night, target, filter)
+        .map_err(|e| e.to_string())?;
+    let dir = file.parent().expect("a list has a folder");
+    let write = || -> std::io::Result<()> {
+        std::fs::create_dir_all(dir)?;
+        let tmp = file.with_extension("txt.tmp");
+        let mut f = std::fs::File::create(&tmp)?;
+        for p in &paths {
+            writeln!(f, "{p}")?;
+        }
+        f.sync_all()?;
+        std::fs::rename(&tmp, &file)?;
+        std::fs::File::open(dir)?.sync_all()
+    };
+    write().map_err(|e| format!("cannot write {}: {e}", file.display()))?;
+    Ok(file)
+}
+
+/// Rewrite the lists of every group of a night (after its verdicts were judged again).
+pub fn rewrite_night(store: &Store, folder: &Path, night: &str) -> Vec<Result<PathBuf, String>> {
+    match store.night_groups(night) {
+        Ok(groups) => groups
+            .iter()
+            .map(|(target, filter)| {
+                rewrite(store, folder, night, target.as_deref(), filter.as_deref())
+            })
+            .collect(),
+        Err(e) => vec![Err(e.to_string())],
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn names_from_headers_cannot_leave_the_folder() {
+        let p = list_path(
+            Path::new("/lists"),
+            "2026-03-14",
+            Some("../../etc/x"),
+            Some("L\n"),
+        );
+        assert_eq!(p, Path::new("/lists/2026-03-14/______etc_x__L_.txt"));
+    }
+}

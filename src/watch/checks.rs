@@ -1,0 +1,337 @@
+//! The daemon's checks once a minute and its alerts: frames stopped arriving, low disk
+//! space where frames, the store or the reports are written, anomalies of the chosen
+//! kinds, the morning summary when it is due, and the outbox. Decisions are made by
+//! the pure `alerts`; this module gathers the facts, records and sends.
+
+use std::path::{Path, PathBuf};
+
+use super::{alerts, unix_now, Shared};
+use crate::config::Config;
+use crate::store::Store;
+
+/// Record an alert and, when mail is set up, queue and send it. Rate-limited per kind
+/// and per night (see `alerts`). Returns what happened, for the log.
+pub(super) fn raise_alert(
+    store: &Store,
+    config: &Config,
+    night: &str,
+    kind: &str,
+    message: &str,
+) -> Option<String> {
+    let now = unix_now();
+    let limits = config.alerts.limits();
+    let (last, tonight) = store.alert_history(night, kind).ok()?;
+    if !alerts::allowed(&limits, now, last, tonight) {
+        return None;
+    }
+    store.add_alert(night, kind, message, now).ok()?;
+    let mailed = if config.alerts.enabled && !config.mail.to.is_empty() {
+        let sent = crate::mail::MailSettings::from_config(config).and_then(|s| {
+            crate::mail::compose_note(
+                &s,
+                &format!("subwatch alert ({kind}), night {night}"),
+                message,
+            )
+        });
+        match sent {
+            Ok(c) => match store.enqueue_mail(&c, now) {
+                Ok(_) => {
+                    flush_outbox(store, config, now);
+                    " (mail queued)"
+                }
+                Err(e) => {
+                    tracing::error!("alert not queued for mail: {e}");
+                    ""
+                }
+            },
+            Err(e) => {
+                tracing::warn!("alert not mailed: {e}");
+                ""
+            }
+        }
+    } else {
+        ""
+    };
+    Some(format!("alert {kind}: {message}{mailed}"))
+}
+
+/// Once a minute: frames stopped arriving, disk space, the scheduled summary, the outbox.
+pub(super) fn minute_checks(shared: &Shared) {
+    let config = &shared.config;
+    let now = unix_now();
+    let tz = config.timezone();
+    let Some(night) = crate::sky::night_label(now, tz) else {
+        return;
+    };
+    let store = shared.store.lock().unwrap_or_else(|p| p.into_inner());
+    let limits = config.alerts.limits();
+    let dark = config.site_position().map(|(lat, lon, _)| {
+        crate::sky::sun_altitude(crate::sky::julian_date(now), lat, lon) < -18.0
+    });
+    if let Ok(counts) = store.night_counts(&night) {
+        if let Some(msg) = alerts::frames_stopped(&limits, now, counts.last_recorded_unix, dark) {
+            if let Some(line) = raise_alert(&store, config, &night, "frames_stopped", &msg) {
+                tracing::warn!("{line}");
+            }
+        }
+    }
+    for (folder, free) in free_space(&written_folders(shared)) {
+        if let Some(msg) = alerts::low_disk(&limits, &crate::logging::shown(&folder), free) {
+            if let Some(line) = raise_alert(&store, config, &night, "low_disk", &msg) {
+                tracing::warn!("{line}");
+            }
+        }
+    }
+    // Frames recorded while their verdict could not be stored (a failing store).
+    match super::judge::judge_missing(&store, &shared.judging) {
+        Ok(0) => {}
+        Ok(n) => tracing::info!("judged {n} frame(s) recorded earlier without a verdict"),
+        Err(e) => tracing::error!("judging frames left without a verdict: {e}"),
+    }
+    anomaly_alerts(&store, config, &night);
+    summary_if_due(&store, config, now);
+    flush_outbox(&store, config, now);
+}
+
+/// Run the night analysis over tonight's frames so far and alert on anomalies of the
+/// chosen kinds, each once (same kind and place).
+fn anomaly_alerts(store: &Store, config: &Config, night: &str) {
+    if config.alerts.anomaly_kinds.is_empty() {
+        return;
+    }
+    // Only when frames arrived since the last look.
+    let stamp = store
+        .night_counts(night)
+        .ok()
+        .and_then(|c| c.last_recorded_unix)
+        .unwrap_or(0.0);
+    let key = format!("anomaly_check:{night}");
+    if store
+        .meta(&key)
+        .ok()
+        .flatten()
+        .and_then(|v| v.parse::<f64>().ok())
+        == Some(stamp)
+    {
+        return;
+    }
+    let _ = store.set_meta(&key, &stamp.to_string());
+    let Ok(records) = store.night_records(night) else {
+        return;
+    };
+    if records.len() < 3 {
+        return;
+    }
+    let Ok(doc) = crate::batch::analyse_records(&records, &[], config.site_position(), None) else {
+        return;
+    };
+    for a in &doc.anomalies {
+        let kind = serde_json::to_value(a.kind)
+            .ok()
+            .and_then(|v| v.as_str().map(String::from))
+            .unwrap_or_default();
+        if !config.alerts.anomaly_kinds.contains(&kind)
+            || a.detail.get("cosmic_ray").and_then(|v| v.as_bool()) == Some(true)
+        {
+            continue;
+        }
+        let place = match (a.ra_deg, a.dec_deg) {
+            (Some(r), Some(d)) => format!("at {} (J2000)", crate::report::sexagesimal(r, d)),
+            _ => a.detections.first().map_or(String::new(), |d| {
+                format!("at x={:.0} y={:.0} of {}", d.x, d.y, d.path)
+            }),
+        };
+        let message = format!("{kind} {place}, seen in {} frame(s)", a.detections.len());
+        let alert_kind = format!("anomaly_{kind}");
+        // Once per anomaly: its count of frames and (for a moving object) its mean
+        // position change as frames arrive, its first detection does not.
+        let identity = alert_identity(night, &alert_kind, a);
+        if store.meta(&identity).ok().flatten().is_some()
+            || store
+                .alert_exists(night, &alert_kind, &message)
+                .unwrap_or(true)
+        {
+            continue;
+        }
+        if let Some(line) = raise_alert(store, config, night, &alert_kind, &message) {
+            let _ = store.set_meta(&identity, &message);
+            tracing::warn!("{line}");
+        }
+    }
+}
+
+/// A key that names one anomaly across the night's repeated analyses: its kind and its
+/// first detection (frame and pixel, rounded), which later frames do not change.
+fn alert_identity(night: &str, alert_kind: &str, a: &crate::contract::AnomalyRecord) -> String {
+    let first = a.detections.first().map_or(String::new(), |d| {
+        format!("{}:{:.0}:{:.0}", d.path, d.x, d.y)
+    });
+    format!("alerted:{night}:{alert_kind}:{first}")
+}
+
+/// Every folder the daemon reads frames from or writes into: the capture folders, the
+/// store's folder, the reports and the lists.
+fn written_folders(shared: &Shared) -> Vec<PathBuf> {
+    let c = &shared.config;
+    let mut folders = c.watch.folders.clone();
+    folders.extend(c.store.path.parent().map(Path::to_path_buf));
+    folders.push(crate::morning::report_folder(c));
+    folders.extend(shared.judging.lists_folder.clone());
+    folders
+}
+
+/// Free bytes of each file system holding one of `folders`, once per file system (the
+/// first folder named for it). A folder not made yet counts by its nearest parent.
+fn free_space(folders: &[PathBuf]) -> Vec<(PathBuf, u64)> {
+    use std::os::unix::fs::MetadataExt;
+    let mut seen = std::collections::HashSet::new();
+    let mut out = Vec::new();
+    for folder in folders {
+        let Some(existing) = folder.ancestors().find(|p| p.exists()) else {
+            continue;
+        };
+        let Ok(meta) = std::fs::metadata(existing) else {
+            continue;
+        };
+        if seen.insert(meta.dev()) {
+            if let Some(free) = free_bytes(existing) {
+                out.push((folder.clone(), free));
+            }
+        }
+    }
+    out
+}
+
+/// Deliver what is due in the outbox and say what happened.
+pub(super) fn flush_outbox(store: &Store, config: &Config, now: f64) {
+    match crate::morning::flush(store, config, now) {
+        Ok(r) => {
+            if r.sent > 0 {
+                tracing::info!("mail sent: {} message(s)", r.sent);
+            }
+            for p in &r.written {
+                tracing::info!(
+                    "mail written to {} (no smtp_host)",
+                    crate::logging::shown(p)
+                );
+            }
+            for f in &r.failed {
+                tracing::warn!("mail not sent yet, kept in the outbox: {f}");
+            }
+        }
+        Err(e) => tracing::error!("outbox: {e}"),
+    }
+}
+
+/// Free bytes on the file system holding `folder`.
+fn free_bytes(folder: &Path) -> Option<u64> {
+    let c = std::ffi::CString::new(folder.as_os_str().as_encoded_bytes()).ok()?;
+    let mut st: libc::statvfs = unsafe { std::mem::zeroed() };
+    // SAFETY: a valid C string and an out-pointer to a zeroed struct.
+    let rc = unsafe { libc::statvfs(c.as_ptr(), &mut st) };
+    (rc == 0).then(|| st.f_bavail as u64 * st.f_frsize as u64)
+}
+
+/// The morning summary of the night that just ended, once, at `summary_time` ("HH:MM"
+/// local) or 30 minutes after astronomical dawn ("dawn", needs the site).
+fn summary_if_due(store: &Store, config: &Config, now: f64) {
+    let Some(when) = config.mail.summary_time.as_deref() else {
+        return;
+    };
+    let tz = config.timezone();
+    let Some(night) = crate::sky::night_label(now, tz) else {
+        return;
+    };
+    let key = format!("summary:{night}");
+    if store.meta(&key).ok().flatten().is_some() {
+        return;
+    }
+    let local = chrono::DateTime::from_timestamp(now as i64, 0).map(|d| d.with_timezone(&tz));
+    let Some(local) = local else { return };
+    use chrono::Timelike;
+    let minutes_now = local.hour() * 60 + local.minute();
+    // The morning belongs to the night only before local noon.
+    if minutes_now >= 12 * 60 {
+        return;
+    }
+    let due = if when == "dawn" {
+        let Some((lat, lon, _)) = config.site_position() else {
+            return;
+        };
+        let evening = now - 86_400.0 * 0.75;
+        match crate::sky::sun_crossings(evening, -18.0, lat, lon).1 {
+            Some(dawn) => now >= dawn + 1800.0,
+            None => false,
+        }
+    } else {
+        let mut parts = when.split(':');
+        let (h, m): (u32, u32) = match (
+            parts.next().and_then(|x| x.parse().ok()),
+            parts.next().and_then(|x| x.parse().ok()),
+        ) {
+            (Some(h), Some(m)) => (h, m),
+            _ => return,
+        };
+        minutes_now >= h * 60 + m
+    };
+    if !due {
+        return;
+    }
+    // The store is locked by the caller; prepare reads it through a second connection.
+    let result = Store::open(&config.store.path)
+        .map_err(crate::morning::MorningError::from)
+        .and_then(|mut s| {
+            let p = crate::morning::prepare(&mut s, config, &night)?;
+            crate::morning::queue_mail(&s, config, &p, now)
+        });
+    match result {
+        Ok(_) => {
+            let _ = store.set_meta(&key, &now.to_string());
+            tracing::info!("morning summary of {night} queued for mail");
+        }
+        Err(e) => tracing::error!("morning summary of {night} not made: {e}"),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::contract::{AnomalyRecord, DetectionRecord};
+    use crate::night::AnomalyKind;
+
+    fn moving(frames: usize, ra: f64) -> AnomalyRecord {
+        AnomalyRecord {
+            kind: AnomalyKind::Moving,
+            ra_deg: Some(ra),
+            dec_deg: Some(12.5),
+            detections: (0..frames)
+                .map(|i| DetectionRecord {
+                    path: format!("/data/kfa_{i:03}.fits"),
+                    x: 100.2 + 3.0 * i as f64,
+                    y: 200.4,
+                })
+                .collect(),
+            detail: serde_json::Value::Null,
+            target: None,
+            filter: None,
+        }
+    }
+
+    #[test]
+    fn a_growing_track_keeps_its_alert_identity() {
+        // Later analyses of the same asteroid see more frames and a shifted mean position.
+        let early = alert_identity("2026-12-01", "anomaly_moving", &moving(3, 40.01));
+        let later = alert_identity("2026-12-01", "anomaly_moving", &moving(9, 40.03));
+        assert_eq!(early, later);
+        let mut other = moving(3, 40.01);
+        other.detections[0].x += 50.0;
+        assert_ne!(
+            early,
+            alert_identity("2026-12-01", "anomaly_moving", &other)
+        );
+        assert_ne!(
+            early,
+            alert_identity("2026-12-02", "anomaly_moving", &moving(3, 40.01))
+        );
+    }
+}
