@@ -1,14 +1,19 @@
-//! The configuration file: TOML read into typed settings, validated once at start.
-//! Every problem is collected with the key (and line, where the file has one) that
-//! caused it, so a user fixes them all in one go. Unknown keys are errors.
+//! The configuration file: TOML read into typed settings once, at start. Every value is
+//! parsed into its type here (numbers into their range, times of day, time zones, mail
+//! addresses by lettre's own parser, security modes, anomaly kinds, rules), and every
+//! problem is collected with its key, its line and what was expected in plain words, so
+//! a user fixes them all in one go and nothing wrong is found later, at dawn. Unknown
+//! keys are errors. Checks against the machine (folders exist, the store's folder is
+//! writable, the password file's owner and mode) are separate: `check_environment`.
 
-use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 
-use serde::Deserialize;
+use lettre::message::Mailbox;
 
-#[derive(Debug, Clone, Deserialize)]
-#[serde(deny_unknown_fields, default)]
+use crate::night::AnomalyKind;
+use crate::rules::RuleSpec;
+
+#[derive(Debug, Clone)]
 pub struct WatchConfig {
     pub folders: Vec<PathBuf>,
     /// 0 = native file events; otherwise scan the folders every this many seconds.
@@ -20,7 +25,7 @@ pub struct WatchConfig {
     pub exclude: Vec<String>,
     /// Folders whose name says they hold calibration frames (compared case-insensitively).
     pub calibration_folders: Vec<String>,
-    /// Measurement threads; 0 = one per core.
+    /// Measurement workers; 0 = one per core.
     pub workers: usize,
     /// Compare the folders with the store this often, in case a file event was missed.
     pub rescan_seconds: f64,
@@ -58,8 +63,7 @@ impl Default for WatchConfig {
     }
 }
 
-#[derive(Debug, Clone, Deserialize)]
-#[serde(deny_unknown_fields, default)]
+#[derive(Debug, Clone)]
 pub struct StoreConfig {
     pub path: PathBuf,
 }
@@ -72,16 +76,14 @@ impl Default for StoreConfig {
     }
 }
 
-#[derive(Debug, Clone, Deserialize)]
-#[serde(deny_unknown_fields, default)]
+#[derive(Debug, Clone)]
 pub struct SiteConfig {
     /// Degrees, north positive; unset: no Sun, Moon or twilight context.
     pub latitude: Option<f64>,
     /// Degrees, east positive.
     pub longitude: Option<f64>,
     pub elevation_m: f64,
-    /// IANA time-zone name, e.g. "Europe/Madrid".
-    pub timezone: String,
+    pub timezone: chrono_tz::Tz,
 }
 
 impl Default for SiteConfig {
@@ -90,13 +92,12 @@ impl Default for SiteConfig {
             latitude: None,
             longitude: None,
             elevation_m: 0.0,
-            timezone: "UTC".into(),
+            timezone: chrono_tz::UTC,
         }
     }
 }
 
-#[derive(Debug, Clone, Default, Deserialize)]
-#[serde(deny_unknown_fields, default)]
+#[derive(Debug, Clone, Default)]
 pub struct OpticsConfig {
     /// Used when a frame's header has no FOCALLEN.
     pub focal_length_mm: Option<f64>,
@@ -108,8 +109,7 @@ pub struct OpticsConfig {
     pub saturation_adu: Option<f64>,
 }
 
-#[derive(Debug, Clone, Deserialize)]
-#[serde(deny_unknown_fields, default)]
+#[derive(Debug, Clone)]
 pub struct MeasureConfig {
     /// Frames with more pixels are refused before any allocation.
     pub max_pixels: u64,
@@ -143,8 +143,7 @@ impl MeasureConfig {
     }
 }
 
-#[derive(Debug, Clone, Deserialize)]
-#[serde(deny_unknown_fields, default)]
+#[derive(Debug, Clone)]
 pub struct ActionsConfig {
     /// Write per-night, per-target, per-filter lists of accepted frames.
     pub accepted_lists: bool,
@@ -167,24 +166,50 @@ impl Default for ActionsConfig {
     }
 }
 
-#[derive(Debug, Clone, Default, Deserialize)]
-#[serde(deny_unknown_fields, default)]
+/// How the connection to the mail server is protected.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+pub enum Security {
+    #[default]
+    StartTls,
+    Tls,
+    None,
+}
+
+/// When the daemon mails the morning summary.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum SummaryTime {
+    /// At this local time of day (hour, minute), before noon.
+    At(u32, u32),
+    /// 30 minutes after astronomical dawn at the site.
+    Dawn,
+}
+
+#[derive(Debug, Clone, Default)]
 pub struct MailConfig {
     pub smtp_host: Option<String>,
     pub smtp_port: Option<u16>,
-    pub security: Option<String>,
+    pub security: Security,
     pub username: Option<String>,
     pub password_file: Option<PathBuf>,
     /// An extra certificate authority (PEM) to trust for the mail server: one on the
     /// observatory's own network with a certificate of its own making.
     pub ca_file: Option<PathBuf>,
-    pub from: Option<String>,
-    pub to: Vec<String>,
-    pub summary_time: Option<String>,
+    pub from: Option<Mailbox>,
+    pub to: Vec<Mailbox>,
+    pub summary_time: Option<SummaryTime>,
+    /// The user's explicit consent to send the password over a connection that is not
+    /// encrypted (`security = "none"`).
+    pub send_password_unencrypted: bool,
 }
 
-#[derive(Debug, Clone, Deserialize)]
-#[serde(deny_unknown_fields, default)]
+impl MailConfig {
+    /// Whether a password would be sent (a password file, or the environment's).
+    pub fn has_password(&self) -> bool {
+        self.password_file.is_some() || std::env::var_os("SUBWATCH_SMTP_PASSWORD").is_some()
+    }
+}
+
+#[derive(Debug, Clone)]
 pub struct AlertsConfig {
     /// Send live alerts by mail (they need `[mail] to`).
     pub enabled: bool,
@@ -194,45 +219,30 @@ pub struct AlertsConfig {
     pub repeat_minutes: f64,
     pub max_per_night: usize,
     /// Anomaly kinds worth an alert as soon as the night analysis finds them.
-    pub anomaly_kinds: Vec<String>,
+    pub anomaly_kinds: Vec<AnomalyKind>,
 }
 
 impl Default for AlertsConfig {
     fn default() -> Self {
-        let l = crate::watch::alerts::AlertLimits::default();
         AlertsConfig {
             enabled: true,
-            stopped_minutes: l.stopped_minutes,
-            reject_streak: l.reject_streak,
-            min_free_gb: l.min_free_gb,
-            repeat_minutes: l.repeat_minutes,
-            max_per_night: l.max_per_night,
-            anomaly_kinds: vec!["new_source".into(), "moving".into()],
+            stopped_minutes: 20.0,
+            reject_streak: 3,
+            min_free_gb: 5.0,
+            repeat_minutes: 60.0,
+            max_per_night: 6,
+            anomaly_kinds: vec![AnomalyKind::NewSource, AnomalyKind::Moving],
         }
     }
 }
 
-impl AlertsConfig {
-    pub fn limits(&self) -> crate::watch::alerts::AlertLimits {
-        crate::watch::alerts::AlertLimits {
-            stopped_minutes: self.stopped_minutes,
-            reject_streak: self.reject_streak,
-            min_free_gb: self.min_free_gb,
-            repeat_minutes: self.repeat_minutes,
-            max_per_night: self.max_per_night,
-        }
-    }
-}
-
-#[derive(Debug, Clone, Default, Deserialize)]
-#[serde(deny_unknown_fields, default)]
+#[derive(Debug, Clone, Default)]
 pub struct ReportConfig {
     pub folder: Option<PathBuf>,
 }
 
-/// The whole file.
-#[derive(Debug, Clone, Default, Deserialize)]
-#[serde(deny_unknown_fields, default)]
+/// The whole file, typed.
+#[derive(Debug, Clone, Default)]
 pub struct Config {
     pub watch: WatchConfig,
     pub store: StoreConfig,
@@ -243,10 +253,8 @@ pub struct Config {
     pub mail: MailConfig,
     pub alerts: AlertsConfig,
     pub report: ReportConfig,
-    /// Rule tables; their contents are checked by the rules module.
-    pub rules: Vec<toml::Table>,
+    pub rules: Vec<RuleSpec>,
     /// The file this configuration was read from.
-    #[serde(skip)]
     pub source: Option<PathBuf>,
 }
 
@@ -269,10 +277,9 @@ impl std::fmt::Display for ConfigProblem {
 
 #[derive(Debug, thiserror::Error)]
 pub enum ConfigError {
-    #[error("{path}: {source}")]
+    #[error("cannot read the configuration file {path}: {source}")]
     Read {
         path: PathBuf,
-        #[source]
         source: std::io::Error,
     },
     #[error("{path}: {} problem(s):\n  {}", .problems.len(), .problems.iter().map(|p| p.to_string()).collect::<Vec<_>>().join("\n  "))]
@@ -303,43 +310,558 @@ pub fn load(path: &Path) -> Result<Config, ConfigError> {
     Ok(config)
 }
 
+/// Walks the parsed TOML, reading each known key into its type and noting every problem
+/// with its key and line; what it was never asked for is an unknown key.
+struct Reader<'a> {
+    root: &'a toml::Table,
+    text: &'a str,
+    base: &'a Path,
+    problems: Vec<ConfigProblem>,
+    /// Keys read, as "section.key" (or "section" for a whole section).
+    known: Vec<String>,
+}
+
+impl<'a> Reader<'a> {
+    fn problem(&mut self, section: &str, key: &str, message: String) {
+        self.problems.push(ConfigProblem {
+            key: if key.is_empty() {
+                section.to_string()
+            } else {
+                format!("{section}.{key}")
+            },
+            line: find_line(self.text, Some(section), key),
+            message,
+        });
+    }
+
+    fn value(&mut self, section: &str, key: &str) -> Option<&'a toml::Value> {
+        self.known.push(format!("{section}.{key}"));
+        self.root.get(section)?.as_table()?.get(key)
+    }
+
+    /// A value read by `convert` (which says what it expected when it fails), or the
+    /// default when the key is absent.
+    fn read<T>(
+        &mut self,
+        section: &str,
+        key: &str,
+        default: T,
+        convert: impl FnOnce(&toml::Value) -> Result<T, String>,
+    ) -> T {
+        match self.value(section, key) {
+            None => default,
+            Some(v) => match convert(v) {
+                Ok(t) => t,
+                Err(expected) => {
+                    let found = shown_value(v);
+                    self.problem(section, key, format!("{found} is not {expected}"));
+                    default
+                }
+            },
+        }
+    }
+
+    fn number(
+        &mut self,
+        section: &str,
+        key: &str,
+        default: f64,
+        range: (f64, f64),
+        expected: &str,
+    ) -> f64 {
+        self.read(section, key, default, |v| {
+            number_of(v)
+                .filter(|x| *x >= range.0 && *x <= range.1)
+                .ok_or_else(|| expected.to_string())
+        })
+    }
+
+    fn optional_number(
+        &mut self,
+        section: &str,
+        key: &str,
+        range: (f64, f64),
+        expected: &str,
+    ) -> Option<f64> {
+        self.read(section, key, None, |v| {
+            number_of(v)
+                .filter(|x| *x >= range.0 && *x <= range.1)
+                .map(Some)
+                .ok_or_else(|| expected.to_string())
+        })
+    }
+
+    fn whole(
+        &mut self,
+        section: &str,
+        key: &str,
+        default: u64,
+        range: (u64, u64),
+        expected: &str,
+    ) -> u64 {
+        self.read(section, key, default, |v| {
+            v.as_integer()
+                .and_then(|i| u64::try_from(i).ok())
+                .filter(|x| *x >= range.0 && *x <= range.1)
+                .ok_or_else(|| expected.to_string())
+        })
+    }
+
+    fn flag(&mut self, section: &str, key: &str, default: bool) -> bool {
+        self.read(section, key, default, |v| {
+            v.as_bool().ok_or_else(|| "true or false".to_string())
+        })
+    }
+
+    fn text(&mut self, section: &str, key: &str, expected: &str) -> Option<String> {
+        self.read(section, key, None, |v| {
+            v.as_str()
+                .filter(|s| !s.trim().is_empty())
+                .map(|s| Some(s.to_string()))
+                .ok_or_else(|| expected.to_string())
+        })
+    }
+
+    fn texts(
+        &mut self,
+        section: &str,
+        key: &str,
+        default: Vec<String>,
+        expected: &str,
+    ) -> Vec<String> {
+        self.read(section, key, default, |v| {
+            v.as_array()
+                .and_then(|a| {
+                    a.iter()
+                        .map(|x| x.as_str().map(String::from))
+                        .collect::<Option<Vec<_>>>()
+                })
+                .ok_or_else(|| expected.to_string())
+        })
+    }
+
+    fn absolute(&self, p: &str) -> PathBuf {
+        let p = PathBuf::from(p);
+        if p.is_absolute() {
+            p
+        } else {
+            self.base.join(p)
+        }
+    }
+
+    fn path(&mut self, section: &str, key: &str) -> Option<PathBuf> {
+        self.text(section, key, "a path (text, such as \"/var/lib/subwatch\")")
+            .map(|p| self.absolute(&p))
+    }
+
+    /// Every section the file has that nothing read, and every key in a known section
+    /// that nothing read.
+    fn unknown(&mut self) {
+        let sections: Vec<&str> = SECTIONS.to_vec();
+        for (section, value) in self.root {
+            if section == "rules" {
+                continue;
+            }
+            if !sections.contains(&section.as_str()) {
+                self.problems.push(ConfigProblem {
+                    key: section.clone(),
+                    line: find_line(self.text, None, section),
+                    message: format!("unknown section (known: {})", sections.join(", ")),
+                });
+                continue;
+            }
+            let Some(inner) = value.as_table() else {
+                self.problems.push(ConfigProblem {
+                    key: section.clone(),
+                    line: find_line(self.text, None, section),
+                    message: "must be a table ([section])".into(),
+                });
+                continue;
+            };
+            let known: Vec<String> = self
+                .known
+                .iter()
+                .filter_map(|k| k.strip_prefix(&format!("{section}.")).map(String::from))
+                .collect();
+            for key in inner.keys() {
+                if !known.contains(key) {
+                    self.problems.push(ConfigProblem {
+                        key: format!("{section}.{key}"),
+                        line: find_line(self.text, Some(section), key),
+                        message: format!(
+                            "unknown key (known in [{section}]: {})",
+                            known.join(", ")
+                        ),
+                    });
+                }
+            }
+        }
+    }
+}
+
+const SECTIONS: [&str; 9] = [
+    "watch", "store", "site", "optics", "measure", "actions", "mail", "alerts", "report",
+];
+
+/// A number from an integer or a float.
+fn number_of(v: &toml::Value) -> Option<f64> {
+    v.as_float()
+        .or_else(|| v.as_integer().map(|i| i as f64))
+        .filter(|x| x.is_finite())
+}
+
+/// A value as the user wrote it, for messages.
+fn shown_value(v: &toml::Value) -> String {
+    let s = v.to_string();
+    if s.chars().count() > 60 {
+        format!("{}…", s.chars().take(60).collect::<String>())
+    } else {
+        s
+    }
+}
+
+/// "06:30" (24-hour clock, before noon) or "dawn".
+pub fn parse_summary_time(s: &str) -> Option<SummaryTime> {
+    if s == "dawn" {
+        return Some(SummaryTime::Dawn);
+    }
+    let (h, m) = s.split_once(':')?;
+    let ok = |t: &str, max: u32| -> Option<u32> {
+        (t.len() == 2 && t.bytes().all(|b| b.is_ascii_digit()))
+            .then(|| t.parse().ok())
+            .flatten()
+            .filter(|v| *v <= max)
+    };
+    // The morning belongs to the night until local noon.
+    let (h, m) = (ok(h, 11)?, ok(m, 59)?);
+    Some(SummaryTime::At(h, m))
+}
+
 /// Parse configuration text; relative paths are taken from `base` (the file's folder).
 pub fn parse(text: &str, base: &Path) -> Result<Config, Vec<ConfigProblem>> {
-    let table: toml::Table = text.parse().map_err(|e: toml::de::Error| {
+    let root: toml::Table = text.parse().map_err(|e: toml::de::Error| {
         vec![ConfigProblem {
             key: "(syntax)".into(),
             line: e.span().map(|s| line_of(text, s.start)),
             message: e.message().to_string(),
         }]
     })?;
-    let mut problems = unknown_keys(&table, text);
-    if !problems.is_empty() {
-        return Err(problems);
-    }
-    let mut config: Config = match Config::deserialize(toml::Value::Table(table)) {
-        Ok(c) => c,
-        Err(e) => {
-            return Err(vec![ConfigProblem {
-                key: "(value)".into(),
-                line: None,
-                message: e.to_string().trim().to_string(),
-            }])
-        }
+    let mut r = Reader {
+        root: &root,
+        text,
+        base,
+        problems: Vec::new(),
+        known: Vec::new(),
     };
-    let absolute = |p: &PathBuf| {
-        if p.is_absolute() {
-            p.clone()
-        } else {
-            base.join(p)
-        }
+    let d = Config::default();
+    let secs = |range: &str| format!("a number of seconds {range}");
+
+    let watch = WatchConfig {
+        folders: r
+            .texts(
+                "watch",
+                "folders",
+                Vec::new(),
+                "a list of folders (such as [\"/srv/capture\"])",
+            )
+            .iter()
+            .map(|f| r.absolute(f))
+            .collect(),
+        poll_seconds: r.number(
+            "watch",
+            "poll_seconds",
+            d.watch.poll_seconds,
+            (0.0, 86_400.0),
+            &secs("from 0 (file events) to 86400"),
+        ),
+        settle_seconds: r.number(
+            "watch",
+            "settle_seconds",
+            d.watch.settle_seconds,
+            (0.0, 3600.0),
+            &secs("from 0 to 3600"),
+        ),
+        include: r.texts(
+            "watch",
+            "include",
+            d.watch.include.clone(),
+            "a list of file-name patterns (such as [\"*.fits\"])",
+        ),
+        exclude: r.texts(
+            "watch",
+            "exclude",
+            d.watch.exclude.clone(),
+            "a list of file-name patterns (such as [\"*_preview*\"])",
+        ),
+        calibration_folders: r.texts(
+            "watch",
+            "calibration_folders",
+            d.watch.calibration_folders.clone(),
+            "a list of folder names (such as [\"darks\", \"flats\"])",
+        ),
+        workers: r.whole(
+            "watch",
+            "workers",
+            0,
+            (0, 256),
+            "a whole number of workers from 0 (one per core) to 256",
+        ) as usize,
+        rescan_seconds: r.number(
+            "watch",
+            "rescan_seconds",
+            d.watch.rescan_seconds,
+            (1.0, 86_400.0),
+            &secs("from 1 to 86400"),
+        ),
+        queue_limit: r.whole(
+            "watch",
+            "queue_limit",
+            d.watch.queue_limit as u64,
+            (1, 1_000_000),
+            "a whole number from 1 to 1000000",
+        ) as usize,
     };
-    config.watch.folders = config.watch.folders.iter().map(absolute).collect();
-    config.store.path = absolute(&config.store.path);
-    config.actions.lists_folder = config.actions.lists_folder.as_ref().map(absolute);
-    config.report.folder = config.report.folder.as_ref().map(absolute);
-    config.mail.password_file = config.mail.password_file.as_ref().map(absolute);
-    config.mail.ca_file = config.mail.ca_file.as_ref().map(absolute);
-    problems.extend(config.validate(text));
+    let store = StoreConfig {
+        path: r
+            .path("store", "path")
+            .unwrap_or_else(|| r.absolute("subwatch.db")),
+    };
+    let site = SiteConfig {
+        latitude: r.optional_number(
+            "site",
+            "latitude",
+            (-90.0, 90.0),
+            "a latitude in degrees from -90 to 90 (north positive)",
+        ),
+        longitude: r.optional_number(
+            "site",
+            "longitude",
+            (-180.0, 360.0),
+            "a longitude in degrees from -180 to 360 (east positive)",
+        ),
+        elevation_m: r.number(
+            "site",
+            "elevation_m",
+            0.0,
+            (-500.0, 9000.0),
+            "an elevation in metres from -500 to 9000",
+        ),
+        timezone: r.read("site", "timezone", chrono_tz::UTC, |v| {
+            v.as_str()
+                .and_then(|s| s.parse().ok())
+                .ok_or_else(|| "an IANA time-zone name (such as \"Europe/Madrid\")".to_string())
+        }),
+    };
+    let positive = "a positive number";
+    let optics = OpticsConfig {
+        focal_length_mm: r.optional_number(
+            "optics",
+            "focal_length_mm",
+            (1e-3, 1e6),
+            "a focal length in mm (a positive number)",
+        ),
+        pixel_size_um: r.optional_number(
+            "optics",
+            "pixel_size_um",
+            (1e-3, 1e4),
+            "a pixel size in micrometres (a positive number)",
+        ),
+        gain_e_per_adu: r.optional_number("optics", "gain_e_per_adu", (1e-6, 1e6), positive),
+        saturation_adu: r.optional_number("optics", "saturation_adu", (1e-6, 1e20), positive),
+    };
+    let measure = MeasureConfig {
+        max_pixels: r.whole(
+            "measure",
+            "max_pixels",
+            d.measure.max_pixels,
+            (1, 1 << 40),
+            "a whole number of pixels of 1 or more",
+        ),
+        detect_sigma: r.number(
+            "measure",
+            "detect_sigma",
+            d.measure.detect_sigma,
+            (2.0, 100.0),
+            "a number from 2 to 100",
+        ),
+        reader_memory_mb: r.whole(
+            "measure",
+            "reader_memory_mb",
+            0,
+            (0, 1 << 30),
+            "a whole number of MiB (0 = automatic)",
+        ),
+        reader_timeout_seconds: r.number(
+            "measure",
+            "reader_timeout_seconds",
+            d.measure.reader_timeout_seconds,
+            (1.0, 86_400.0),
+            &secs("from 1 to 86400"),
+        ),
+    };
+    let actions = ActionsConfig {
+        accepted_lists: r.flag("actions", "accepted_lists", false),
+        lists_folder: r.path("actions", "lists_folder"),
+        move_rejected: r.flag("actions", "move_rejected", false),
+        rejected_folder: r.read(
+            "actions",
+            "rejected_folder",
+            d.actions.rejected_folder.clone(),
+            |v| {
+                v.as_str()
+                    .filter(|s| !s.is_empty() && !s.contains(['/', '\\']) && !s.starts_with('.'))
+                    .map(String::from)
+                    .ok_or_else(|| {
+                        "a plain folder name (no slashes, not hidden), such as \"rejected\""
+                            .to_string()
+                    })
+            },
+        ),
+    };
+    let address =
+        "an e-mail address such as \"observer@example.org\" or \"Observer <observer@example.org>\"";
+    let mail = MailConfig {
+        smtp_host: r.text(
+            "mail",
+            "smtp_host",
+            "a server name (such as \"mail.example.org\")",
+        ),
+        smtp_port: r.read("mail", "smtp_port", None, |v| {
+            v.as_integer()
+                .and_then(|p| u16::try_from(p).ok())
+                .filter(|p| *p > 0)
+                .map(Some)
+                .ok_or_else(|| "a port number from 1 to 65535 (such as 587)".to_string())
+        }),
+        security: r.read("mail", "security", Security::default(), |v| {
+            match v.as_str() {
+                Some("starttls") => Ok(Security::StartTls),
+                Some("tls") => Ok(Security::Tls),
+                Some("none") => Ok(Security::None),
+                _ => Err("one of \"starttls\", \"tls\", \"none\"".to_string()),
+            }
+        }),
+        username: r.text("mail", "username", "a login name (text)"),
+        password_file: r.path("mail", "password_file"),
+        ca_file: r.path("mail", "ca_file"),
+        from: r.read("mail", "from", None, |v| {
+            v.as_str()
+                .and_then(|s| s.parse::<Mailbox>().ok())
+                .map(Some)
+                .ok_or_else(|| address.to_string())
+        }),
+        to: r.read("mail", "to", Vec::new(), |v| {
+            let list = v
+                .as_array()
+                .ok_or_else(|| format!("a list of addresses ({address})"))?;
+            list.iter()
+                .map(|a| {
+                    let s = a
+                        .as_str()
+                        .ok_or_else(|| format!("a list of addresses ({address})"))?;
+                    s.parse::<Mailbox>()
+                        .map_err(|e| format!("a list of addresses: {s:?} is not {address} ({e})"))
+                })
+                .collect()
+        }),
+        summary_time: r.read("mail", "summary_time", None, |v| {
+            v.as_str()
+                .and_then(parse_summary_time)
+                .map(Some)
+                .ok_or_else(|| {
+                    "a time of day before noon such as \"06:30\" (24-hour clock), or \"dawn\""
+                        .to_string()
+                })
+        }),
+        send_password_unencrypted: r.flag("mail", "send_password_unencrypted", false),
+    };
+    let alerts = AlertsConfig {
+        enabled: r.flag("alerts", "enabled", true),
+        stopped_minutes: r.number(
+            "alerts",
+            "stopped_minutes",
+            d.alerts.stopped_minutes,
+            (1.0, 1440.0),
+            "a number of minutes from 1 to 1440",
+        ),
+        reject_streak: r.whole(
+            "alerts",
+            "reject_streak",
+            d.alerts.reject_streak as u64,
+            (1, 10_000),
+            "a whole number of frames of 1 or more",
+        ) as usize,
+        min_free_gb: r.number(
+            "alerts",
+            "min_free_gb",
+            d.alerts.min_free_gb,
+            (0.0, 1e6),
+            "a number of GB of 0 or more",
+        ),
+        repeat_minutes: r.number(
+            "alerts",
+            "repeat_minutes",
+            d.alerts.repeat_minutes,
+            (0.0, 10_080.0),
+            "a number of minutes from 0 to 10080",
+        ),
+        max_per_night: r.whole(
+            "alerts",
+            "max_per_night",
+            d.alerts.max_per_night as u64,
+            (0, 10_000),
+            "a whole number of alerts",
+        ) as usize,
+        anomaly_kinds: r.read(
+            "alerts",
+            "anomaly_kinds",
+            d.alerts.anomaly_kinds.clone(),
+            |v| {
+                let expected = || {
+                    format!(
+                        "a list of anomaly kinds from {}",
+                        AnomalyKind::NAMES.join(", ")
+                    )
+                };
+                v.as_array()
+                    .ok_or_else(expected)?
+                    .iter()
+                    .map(|k| {
+                        k.as_str().and_then(AnomalyKind::from_name).ok_or_else(|| {
+                            format!("{}: {} is not one of them", expected(), shown_value(k))
+                        })
+                    })
+                    .collect()
+            },
+        ),
+    };
+    let report = ReportConfig {
+        folder: r.path("report", "folder"),
+    };
+    let rules = read_rules(&mut r);
+    r.unknown();
+    let mut problems = std::mem::take(&mut r.problems);
+    let config = Config {
+        watch,
+        store,
+        site,
+        optics,
+        measure,
+        actions,
+        mail,
+        alerts,
+        report,
+        rules,
+        source: None,
+    };
+    let reported: Vec<String> = problems.iter().map(|p| p.key.clone()).collect();
+    problems.extend(
+        config
+            .cross_checks(text)
+            .into_iter()
+            // One problem per key: a value already refused is not reported again.
+            .filter(|p| !reported.contains(&p.key)),
+    );
     if problems.is_empty() {
         Ok(config)
     } else {
@@ -347,8 +869,54 @@ pub fn parse(text: &str, base: &Path) -> Result<Config, Vec<ConfigProblem>> {
     }
 }
 
+/// The `[[rules]]` tables, each read into a rule and checked.
+fn read_rules(r: &mut Reader<'_>) -> Vec<RuleSpec> {
+    let Some(value) = r.root.get("rules") else {
+        return Vec::new();
+    };
+    let Some(tables) = value.as_array() else {
+        r.problems.push(ConfigProblem {
+            key: "rules".into(),
+            line: find_line(r.text, None, "rules"),
+            message: "must be [[rules]] tables".into(),
+        });
+        return Vec::new();
+    };
+    let mut rules = Vec::new();
+    for (k, t) in tables.iter().enumerate() {
+        let key = format!("rules[{}]", k + 1);
+        let line = nth_rules_line(r.text, k);
+        match RuleSpec::deserialize_value(t) {
+            Ok(rule) => {
+                let problems = rule.problems();
+                for message in &problems {
+                    r.problems.push(ConfigProblem {
+                        key: key.clone(),
+                        line,
+                        message: message.clone(),
+                    });
+                }
+                if problems.is_empty() {
+                    rules.push(rule);
+                }
+            }
+            Err(message) => r.problems.push(ConfigProblem { key, line, message }),
+        }
+    }
+    rules
+}
+
 fn line_of(text: &str, offset: usize) -> usize {
     text[..offset.min(text.len())].matches('\n').count() + 1
+}
+
+/// The line of the `k`-th (0-based) `[[rules]]` header.
+fn nth_rules_line(text: &str, k: usize) -> Option<usize> {
+    text.lines()
+        .enumerate()
+        .filter(|(_, l)| l.trim().replace(' ', "") == "[[rules]]")
+        .nth(k)
+        .map(|(i, _)| i + 1)
 }
 
 /// The line where `key` is assigned inside `[section]` (best effort, for messages).
@@ -357,10 +925,11 @@ fn find_line(text: &str, section: Option<&str>, key: &str) -> Option<usize> {
     for (i, line) in text.lines().enumerate() {
         let t = line.trim();
         if t.starts_with('[') {
-            current = Some(t.trim_matches(|c| c == '[' || c == ']').trim().to_string());
-            if section.is_none() && t.trim_matches(|c| c == '[' || c == ']').trim() == key {
+            let name = t.trim_matches(|c| c == '[' || c == ']').trim().to_string();
+            if section.is_none() && name == key {
                 return Some(i + 1);
             }
+            current = Some(name);
             continue;
         }
         let in_section = match section {
@@ -375,129 +944,13 @@ fn find_line(text: &str, section: Option<&str>, key: &str) -> Option<usize> {
             }
         }
     }
-    None
-}
-
-/// Every key the schema knows, by section.
-fn schema() -> BTreeMap<&'static str, &'static [&'static str]> {
-    BTreeMap::from([
-        (
-            "watch",
-            &[
-                "folders",
-                "poll_seconds",
-                "settle_seconds",
-                "include",
-                "exclude",
-                "calibration_folders",
-                "workers",
-                "rescan_seconds",
-                "queue_limit",
-            ][..],
-        ),
-        ("store", &["path"][..]),
-        (
-            "site",
-            &["latitude", "longitude", "elevation_m", "timezone"][..],
-        ),
-        (
-            "optics",
-            &[
-                "focal_length_mm",
-                "pixel_size_um",
-                "gain_e_per_adu",
-                "saturation_adu",
-            ][..],
-        ),
-        (
-            "measure",
-            &[
-                "max_pixels",
-                "detect_sigma",
-                "reader_memory_mb",
-                "reader_timeout_seconds",
-            ][..],
-        ),
-        (
-            "actions",
-            &[
-                "accepted_lists",
-                "lists_folder",
-                "move_rejected",
-                "rejected_folder",
-            ][..],
-        ),
-        (
-            "mail",
-            &[
-                "smtp_host",
-                "smtp_port",
-                "security",
-                "username",
-                "password_file",
-                "ca_file",
-                "from",
-                "to",
-                "summary_time",
-            ][..],
-        ),
-        ("report", &["folder"][..]),
-        (
-            "alerts",
-            &[
-                "enabled",
-                "stopped_minutes",
-                "reject_streak",
-                "min_free_gb",
-                "repeat_minutes",
-                "max_per_night",
-                "anomaly_kinds",
-            ][..],
-        ),
-    ])
-}
-
-fn unknown_keys(table: &toml::Table, text: &str) -> Vec<ConfigProblem> {
-    let schema = schema();
-    let mut problems = Vec::new();
-    for (section, value) in table {
-        if section == "rules" {
-            continue;
-        }
-        let Some(known) = schema.get(section.as_str()) else {
-            problems.push(ConfigProblem {
-                key: section.clone(),
-                line: find_line(text, None, section),
-                message: format!(
-                    "unknown section (known: {})",
-                    schema.keys().copied().collect::<Vec<_>>().join(", ")
-                ),
-            });
-            continue;
-        };
-        let Some(inner) = value.as_table() else {
-            problems.push(ConfigProblem {
-                key: section.clone(),
-                line: find_line(text, None, section),
-                message: "must be a table ([section])".into(),
-            });
-            continue;
-        };
-        for key in inner.keys() {
-            if !known.contains(&key.as_str()) {
-                problems.push(ConfigProblem {
-                    key: format!("{section}.{key}"),
-                    line: find_line(text, Some(section), key),
-                    message: format!("unknown key (known in [{section}]: {})", known.join(", ")),
-                });
-            }
-        }
-    }
-    problems
+    // A key left out is reported at its section.
+    section.and_then(|s| find_line(text, None, s))
 }
 
 impl Config {
-    fn validate(&self, text: &str) -> Vec<ConfigProblem> {
+    /// Problems that involve more than one key.
+    fn cross_checks(&self, text: &str) -> Vec<ConfigProblem> {
         let mut p = Vec::new();
         let mut bad = |section: &str, key: &str, message: String| {
             p.push(ConfigProblem {
@@ -513,37 +966,6 @@ impl Config {
                 "at least one folder to watch is required".into(),
             );
         }
-        if !(self.watch.poll_seconds >= 0.0 && self.watch.poll_seconds <= 86_400.0) {
-            bad(
-                "watch",
-                "poll_seconds",
-                "must be between 0 (file events) and 86400".into(),
-            );
-        }
-        if !(self.watch.settle_seconds >= 0.0 && self.watch.settle_seconds <= 3600.0) {
-            bad(
-                "watch",
-                "settle_seconds",
-                "must be between 0 and 3600".into(),
-            );
-        }
-        if self.watch.rescan_seconds.is_nan() || self.watch.rescan_seconds < 1.0 {
-            bad("watch", "rescan_seconds", "must be at least 1".into());
-        }
-        if self.watch.queue_limit == 0 {
-            bad("watch", "queue_limit", "must be at least 1".into());
-        }
-        if self.actions.move_rejected
-            && (self.actions.rejected_folder.is_empty()
-                || self.actions.rejected_folder.contains(['/', '\\'])
-                || self.actions.rejected_folder.starts_with('.'))
-        {
-            bad(
-                "actions",
-                "rejected_folder",
-                "must be a plain folder name (no slashes, not hidden)".into(),
-            );
-        }
         if self.watch.include.is_empty() {
             bad(
                 "watch",
@@ -552,124 +974,47 @@ impl Config {
             );
         }
         if self.site.latitude.is_some() != self.site.longitude.is_some() {
+            let missing = if self.site.latitude.is_none() {
+                "latitude"
+            } else {
+                "longitude"
+            };
             bad(
                 "site",
-                "latitude",
+                missing,
                 "give both latitude and longitude, or neither".into(),
             );
         }
-        if self
-            .site
-            .latitude
-            .is_some_and(|l| !(-90.0..=90.0).contains(&l))
+        if self.mail.summary_time == Some(SummaryTime::Dawn) && self.site_position().is_none() {
+            bad(
+                "mail",
+                "summary_time",
+                "\"dawn\" needs the site: set [site] latitude and longitude, or give a time such as \"07:30\"".into(),
+            );
+        }
+        if self.mail.summary_time.is_some() && self.mail.to.is_empty() {
+            bad(
+                "mail",
+                "summary_time",
+                "the summary would go nowhere: [mail] to is empty".into(),
+            );
+        }
+        if self.mail.security == Security::None
+            && self.mail.password_file.is_some()
+            && !self.mail.send_password_unencrypted
         {
             bad(
-                "site",
-                "latitude",
-                "must be between -90 and 90 degrees".into(),
+                "mail",
+                "security",
+                "\"none\" would send the password unencrypted; use \"starttls\" or \"tls\", or set send_password_unencrypted = true if the server is on this machine".into(),
             );
-        }
-        if self
-            .site
-            .longitude
-            .is_some_and(|l| !(-180.0..=360.0).contains(&l))
-        {
-            bad(
-                "site",
-                "longitude",
-                "must be between -180 and 360 degrees (east positive)".into(),
-            );
-        }
-        if self.site.timezone.parse::<chrono_tz::Tz>().is_err() {
-            bad(
-                "site",
-                "timezone",
-                format!(
-                    "{:?} is not an IANA time-zone name (e.g. \"Europe/Madrid\")",
-                    self.site.timezone
-                ),
-            );
-        }
-        for (key, v) in [
-            ("focal_length_mm", self.optics.focal_length_mm),
-            ("pixel_size_um", self.optics.pixel_size_um),
-            ("gain_e_per_adu", self.optics.gain_e_per_adu),
-            ("saturation_adu", self.optics.saturation_adu),
-        ] {
-            if v.is_some_and(|v| !(v > 0.0 && v.is_finite())) {
-                bad("optics", key, "must be a positive number".into());
-            }
-        }
-        if self.measure.max_pixels == 0 {
-            bad("measure", "max_pixels", "must be positive".into());
-        }
-        if !(self.measure.reader_timeout_seconds >= 1.0
-            && self.measure.reader_timeout_seconds <= 86_400.0)
-        {
-            bad(
-                "measure",
-                "reader_timeout_seconds",
-                "must be between 1 and 86400".into(),
-            );
-        }
-        if !(self.measure.detect_sigma >= 2.0 && self.measure.detect_sigma <= 100.0) {
-            bad(
-                "measure",
-                "detect_sigma",
-                "must be between 2 and 100".into(),
-            );
-        }
-        const KINDS: [&str; 7] = [
-            "transient",
-            "trail",
-            "moving",
-            "variable",
-            "color",
-            "hot_pixel",
-            "new_source",
-        ];
-        for k in &self.alerts.anomaly_kinds {
-            if !KINDS.contains(&k.as_str()) {
-                bad(
-                    "alerts",
-                    "anomaly_kinds",
-                    format!("{k:?} is not one of {}", KINDS.join(", ")),
-                );
-            }
-        }
-        if let Some(sec) = &self.mail.security {
-            if !["starttls", "tls", "none"].contains(&sec.as_str()) {
-                bad(
-                    "mail",
-                    "security",
-                    format!("{sec:?} is not one of \"starttls\", \"tls\", \"none\""),
-                );
-            }
-        }
-        for (k, t) in self.rules.iter().enumerate() {
-            let key = format!("rules[{}]", k + 1);
-            match crate::rules::RuleSpec::deserialize(toml::Value::Table(t.clone())) {
-                Ok(r) => {
-                    for problem in r.problems() {
-                        p.push(ConfigProblem {
-                            key: key.clone(),
-                            line: None,
-                            message: problem,
-                        });
-                    }
-                }
-                Err(e) => p.push(ConfigProblem {
-                    key,
-                    line: None,
-                    message: e.to_string().trim().to_string(),
-                }),
-            }
         }
         p
     }
 
     /// Checks against the machine: folders exist, the store's folder is writable, a
-    /// password file is not readable by others. Returns (errors, warnings).
+    /// password file is owned by this user and readable by nobody else. Returns
+    /// (errors, warnings).
     pub fn check_environment(&self) -> (Vec<String>, Vec<String>) {
         let mut errors = Vec::new();
         let mut warnings = Vec::new();
@@ -697,17 +1042,8 @@ impl Config {
             }
         }
         if let Some(pw) = &self.mail.password_file {
-            #[cfg(unix)]
-            {
-                use std::os::unix::fs::PermissionsExt;
-                match std::fs::metadata(pw) {
-                    Ok(m) if m.permissions().mode() & 0o044 != 0 => warnings.push(format!(
-                        "mail.password_file: {} is readable by other users; chmod 600 it",
-                        pw.display()
-                    )),
-                    Ok(_) => {}
-                    Err(e) => errors.push(format!("mail.password_file: {}: {e}", pw.display())),
-                }
+            if let Err(e) = check_secret_file(pw) {
+                errors.push(format!("mail.password_file: {e}"));
             }
         }
         if let Some(ca) = &self.mail.ca_file {
@@ -715,22 +1051,17 @@ impl Config {
                 errors.push(format!("mail.ca_file: {}: {e}", ca.display()));
             }
         }
+        if self.mail.security == Security::None && self.mail.has_password() {
+            warnings.push(
+                "mail.security: \"none\" with send_password_unencrypted = true: the SMTP password travels UNENCRYPTED; anyone on the network path can read it".into(),
+            );
+        }
+        if self.mail.to.is_empty() {
+            warnings.push(
+                "mail.to is empty: no morning summary or alert is mailed (report --send writes the summary's files only)".into(),
+            );
+        }
         (errors, warnings)
-    }
-
-    /// The `[[rules]]` tables as rules (validated at load; a table that does not read is
-    /// left out here and was reported by `load`).
-    pub fn rule_specs(&self) -> Vec<crate::rules::RuleSpec> {
-        self.rules
-            .iter()
-            .filter_map(|t| crate::rules::RuleSpec::deserialize(toml::Value::Table(t.clone())).ok())
-            .collect()
-    }
-
-    /// Folder names never looked into: calibration folders are measured as skipped, but
-    /// the folder rejected frames are moved to is not looked at all.
-    pub fn ignored_folder(&self, name: &str) -> bool {
-        self.actions.move_rejected && name.eq_ignore_ascii_case(&self.actions.rejected_folder)
     }
 
     /// The site's position (latitude, east longitude, elevation), when configured.
@@ -742,10 +1073,39 @@ impl Config {
         ))
     }
 
-    /// The site's time zone (validated at load).
+    /// The site's time zone.
     pub fn timezone(&self) -> chrono_tz::Tz {
-        self.site.timezone.parse().unwrap_or(chrono_tz::UTC)
+        self.site.timezone
     }
+
+    /// The verdict rules of the file.
+    pub fn rule_specs(&self) -> Vec<RuleSpec> {
+        self.rules.clone()
+    }
+}
+
+/// A file holding a secret must belong to the user reading it and be readable by nobody
+/// else (as ssh requires of a private key).
+pub fn check_secret_file(path: &Path) -> Result<(), String> {
+    use std::os::unix::fs::MetadataExt;
+    let m = std::fs::metadata(path).map_err(|e| format!("{}: {e}", path.display()))?;
+    // SAFETY: geteuid has no preconditions.
+    let me = unsafe { libc::geteuid() };
+    if m.uid() != me {
+        return Err(format!(
+            "{} belongs to user id {}, not to the user subwatch runs as ({me}); chown it",
+            path.display(),
+            m.uid()
+        ));
+    }
+    if m.mode() & 0o077 != 0 {
+        return Err(format!(
+            "{} can be read or written by other users (mode {:o}); chmod 600 it",
+            path.display(),
+            m.mode() & 0o777
+        ));
+    }
+    Ok(())
 }
 
 #[cfg(test)]
@@ -764,11 +1124,10 @@ mod tests {
         let text =
             "[watch]\nfolders = [\"/tmp\"]\nsettle = 3\n\n[site]\nlatitude = 40\ntz = \"UTC\"\n";
         let problems = parse(text, Path::new("/")).unwrap_err();
-        assert_eq!(problems.len(), 2, "{problems:?}");
-        assert_eq!(problems[0].key, "site.tz");
-        assert_eq!(problems[0].line, Some(7));
-        assert_eq!(problems[1].key, "watch.settle");
-        assert_eq!(problems[1].line, Some(3));
+        let keys: Vec<(&str, Option<usize>)> =
+            problems.iter().map(|p| (p.key.as_str(), p.line)).collect();
+        assert!(keys.contains(&("site.tz", Some(7))), "{problems:?}");
+        assert!(keys.contains(&("watch.settle", Some(3))), "{problems:?}");
     }
 
     #[test]
@@ -780,13 +1139,14 @@ mod tests {
     }
 
     #[test]
-    fn rules_are_read_and_checked() {
+    fn rules_are_read_and_checked_with_their_line() {
         let ok = "[watch]\nfolders = [\"/tmp\"]\n[[rules]]\nreason = \"soft\"\nmetric = \"fwhm_arcsec\"\ntest = \"above\"\nvalue = 4.5\nverdict = \"reject\"\n";
         let c = parse(ok, Path::new("/")).unwrap();
         assert_eq!(c.rule_specs().len(), 1);
         let bad = "[watch]\nfolders = [\"/tmp\"]\n[[rules]]\nreason = \"soft\"\nmetric = \"seeing\"\ntest = \"above\"\nvalue = 4.5\nverdict = \"reject\"\n";
         let problems = parse(bad, Path::new("/")).unwrap_err();
         assert_eq!(problems[0].key, "rules[1]");
+        assert_eq!(problems[0].line, Some(3));
         assert!(problems[0].message.contains("seeing"), "{problems:?}");
     }
 
@@ -798,11 +1158,106 @@ mod tests {
         assert_eq!(
             keys,
             [
-                "watch.folders",
                 "watch.poll_seconds",
                 "site.latitude",
-                "site.timezone"
+                "site.timezone",
+                "watch.folders",
             ]
         );
+    }
+
+    /// The findings of a new user's first evening: each refused with its key, its line
+    /// and what was expected, in words.
+    #[test]
+    fn values_that_would_fail_at_dawn_are_refused_at_once() {
+        let cases: [(&str, &str, &str); 9] = [
+            (
+                "[mail]\nto = [\"o@example.org\"]\nsummary_time = \"25:99\"\n",
+                "mail.summary_time",
+                "a time of day before noon such as \"06:30\"",
+            ),
+            (
+                "[mail]\nto = [\"o@example.org\"]\nsummary_time = \"7.30am\"\n",
+                "mail.summary_time",
+                "a time of day before noon such as \"06:30\"",
+            ),
+            (
+                "[mail]\nto = [\"o@example.org\"]\nsummary_time = \"dawn\"\n",
+                "mail.summary_time",
+                "\"dawn\" needs the site",
+            ),
+            (
+                "[mail]\nto = [\"not-an-address\"]\n",
+                "mail.to",
+                "\"not-an-address\" is not an e-mail address",
+            ),
+            (
+                "[mail]\nsummary_time = \"07:30\"\n",
+                "mail.summary_time",
+                "[mail] to is empty",
+            ),
+            (
+                "[mail]\nsecurity = \"plain\"\n",
+                "mail.security",
+                "one of \"starttls\", \"tls\", \"none\"",
+            ),
+            (
+                "settle_seconds = \"5\"\n",
+                "watch.settle_seconds",
+                "\"5\" is not a number of seconds from 0 to 3600",
+            ),
+            (
+                "[alerts]\nanomaly_kinds = [\"hotpixel\"]\n",
+                "alerts.anomaly_kinds",
+                "\"hotpixel\" is not one of them",
+            ),
+            (
+                "[mail]\nsecurity = \"none\"\npassword_file = \"/etc/pw\"\n",
+                "mail.security",
+                "unencrypted",
+            ),
+        ];
+        for (extra, key, words) in cases {
+            let text = format!("[watch]\nfolders = [\"/tmp\"]\n{extra}");
+            let problems = parse(&text, Path::new("/")).unwrap_err();
+            let p = problems
+                .iter()
+                .find(|p| p.key == key)
+                .unwrap_or_else(|| panic!("{extra:?}: no problem for {key}: {problems:?}"));
+            assert!(
+                p.message.contains(words),
+                "{extra:?}: {:?} lacks {words:?}",
+                p.message
+            );
+            assert!(p.line.is_some(), "{p:?}");
+            assert!(!p.message.contains("expected f64"), "{p:?}");
+        }
+        // The explicit opt-in lets it through (check_environment warns loudly then).
+        let text = "[watch]\nfolders = [\"/tmp\"]\n[mail]\nsecurity = \"none\"\npassword_file = \"/etc/pw\"\nsend_password_unencrypted = true\n";
+        let c = parse(text, Path::new("/")).unwrap();
+        assert!(c
+            .check_environment()
+            .1
+            .iter()
+            .any(|w| w.contains("UNENCRYPTED")));
+        assert_eq!(parse_summary_time("06:30"), Some(SummaryTime::At(6, 30)));
+        assert_eq!(parse_summary_time("6:30"), None);
+        assert_eq!(parse_summary_time("24:00"), None);
+        assert_eq!(parse_summary_time("13:00"), None);
+    }
+
+    #[test]
+    fn a_secret_file_readable_by_others_or_owned_by_another_user_is_refused() {
+        use std::os::unix::fs::PermissionsExt;
+        let dir = tempfile::tempdir().unwrap();
+        let pw = dir.path().join("pw");
+        std::fs::write(&pw, "secret\n").unwrap();
+        std::fs::set_permissions(&pw, std::fs::Permissions::from_mode(0o600)).unwrap();
+        assert!(check_secret_file(&pw).is_ok());
+        for mode in [0o640, 0o604, 0o660] {
+            std::fs::set_permissions(&pw, std::fs::Permissions::from_mode(mode)).unwrap();
+            let e = check_secret_file(&pw).unwrap_err();
+            assert!(e.contains("chmod 600"), "{e}");
+        }
     }
 }

@@ -73,9 +73,12 @@ pub fn demo_config(out: &Path) -> Config {
     c.site.latitude = Some(SITE.0);
     c.site.longitude = Some(SITE.1);
     c.site.elevation_m = SITE.2;
-    c.site.timezone = "Europe/Madrid".into();
-    c.mail.from = Some("subwatch@kestrel-ridge.example".into());
-    c.mail.to = vec!["observer@kestrel-ridge.example".into()];
+    c.site.timezone = chrono_tz::Europe::Madrid;
+    c.mail.from = "subwatch@kestrel-ridge.example".parse().ok();
+    c.mail.to = "observer@kestrel-ridge.example"
+        .parse()
+        .into_iter()
+        .collect();
     c.report.folder = Some(out.join("reports"));
     c.actions.accepted_lists = true;
     c.actions.lists_folder = Some(out.join("accepted"));

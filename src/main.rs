@@ -223,10 +223,27 @@ fn main() -> ExitCode {
     match run(cli) {
         Ok(code) => code,
         Err(e) => {
-            eprintln!("subwatch: {e:#}");
+            eprintln!("subwatch: {}", describe(&e));
             ExitCode::from(2)
         }
     }
+}
+
+/// An error and its causes on one line, each cause once: a library error that already
+/// quotes its source is not followed by the source again.
+fn describe(e: &anyhow::Error) -> String {
+    let mut out = String::new();
+    for cause in e.chain() {
+        let text = cause.to_string();
+        if out.contains(&text) {
+            continue;
+        }
+        if !out.is_empty() {
+            out.push_str(": ");
+        }
+        out.push_str(&text);
+    }
+    out
 }
 
 fn run(cli: Cli) -> Result<ExitCode> {
@@ -619,6 +636,12 @@ fn report_command(
     if !send {
         let doc = subwatch::morning::judge_night(&mut store, &cfg, &night)?;
         return print_night(&doc, json);
+    }
+    if cfg.mail.to.is_empty() {
+        anyhow::bail!(
+            "report --send: [mail] to is empty in {}, so there is nobody to send to; add recipients, or run report without --send",
+            config.display()
+        );
     }
     let prepared = subwatch::morning::prepare(&mut store, &cfg, &night)?;
     if json {

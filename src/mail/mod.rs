@@ -13,6 +13,7 @@ use lettre::transport::smtp::client::{Certificate, Tls, TlsParameters};
 use lettre::{Address, Message, SmtpTransport, Transport};
 
 use crate::config::Config;
+pub use crate::config::Security;
 
 #[derive(Debug, thiserror::Error)]
 pub enum MailError {
@@ -26,13 +27,6 @@ pub enum MailError {
         port: u16,
         reason: String,
     },
-}
-
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
-pub enum Security {
-    StartTls,
-    Tls,
-    None,
 }
 
 /// Everything needed to deliver, from the configuration.
@@ -67,41 +61,40 @@ impl std::fmt::Debug for MailSettings {
 impl MailSettings {
     pub fn from_config(c: &Config) -> Result<Self, MailError> {
         let m = &c.mail;
-        let security = match m.security.as_deref().unwrap_or("starttls") {
-            "starttls" => Security::StartTls,
-            "tls" => Security::Tls,
-            "none" => Security::None,
-            other => return Err(MailError::Settings(format!("security {other:?}"))),
-        };
+        let security = m.security;
         let port = m.smtp_port.unwrap_or(match security {
             Security::StartTls => 587,
             Security::Tls => 465,
             Security::None => 25,
         });
         let password = match &m.password_file {
-            Some(p) => Some(
-                std::fs::read_to_string(p)
-                    .map_err(|e| {
-                        MailError::Settings(format!("password_file {}: {e}", p.display()))
-                    })?
-                    .trim_end_matches(['\n', '\r'])
-                    .to_string(),
-            ),
+            Some(p) => {
+                // The same rule as check-config: this user's, and nobody else's to read.
+                crate::config::check_secret_file(p)
+                    .map_err(|e| MailError::Settings(format!("password_file {e}")))?;
+                Some(
+                    std::fs::read_to_string(p)
+                        .map_err(|e| {
+                            MailError::Settings(format!("password_file {}: {e}", p.display()))
+                        })?
+                        .trim_end_matches(['\n', '\r'])
+                        .to_string(),
+                )
+            }
             None => std::env::var("SUBWATCH_SMTP_PASSWORD").ok(),
         };
-        let from: Mailbox = m
-            .from
-            .as_deref()
-            .unwrap_or("subwatch@localhost")
-            .parse()
-            .map_err(|e| MailError::Settings(format!("from: {e}")))?;
-        let to =
-            m.to.iter()
-                .map(|t| {
-                    t.parse::<Mailbox>()
-                        .map_err(|e| MailError::Settings(format!("to {t:?}: {e}")))
-                })
-                .collect::<Result<Vec<_>, _>>()?;
+        if password.is_some() && security == Security::None && !m.send_password_unencrypted {
+            return Err(MailError::Settings(
+                "security = \"none\" would send the password unencrypted (set send_password_unencrypted = true to allow it)".into(),
+            ));
+        }
+        let from: Mailbox = match &m.from {
+            Some(f) => f.clone(),
+            None => "subwatch@localhost"
+                .parse()
+                .map_err(|e| MailError::Settings(format!("from: {e}")))?,
+        };
+        let to = m.to.clone();
         let ca_pem = match &m.ca_file {
             Some(p) => Some(
                 std::fs::read(p)

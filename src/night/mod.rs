@@ -56,6 +56,42 @@ pub enum AnomalyKind {
     NewSource,
 }
 
+impl AnomalyKind {
+    pub const ALL: [AnomalyKind; 7] = [
+        AnomalyKind::Transient,
+        AnomalyKind::Trail,
+        AnomalyKind::Moving,
+        AnomalyKind::Variable,
+        AnomalyKind::Color,
+        AnomalyKind::HotPixel,
+        AnomalyKind::NewSource,
+    ];
+    /// The contract's spelling of each kind, in the order of [`AnomalyKind::ALL`].
+    pub const NAMES: [&'static str; 7] = [
+        "transient",
+        "trail",
+        "moving",
+        "variable",
+        "color",
+        "hot_pixel",
+        "new_source",
+    ];
+
+    pub fn name(self) -> &'static str {
+        Self::NAMES[Self::ALL
+            .iter()
+            .position(|k| *k == self)
+            .expect("every kind is listed")]
+    }
+
+    pub fn from_name(name: &str) -> Option<Self> {
+        Self::NAMES
+            .iter()
+            .position(|n| *n == name)
+            .map(|i| Self::ALL[i])
+    }
+}
+
 /// Where an anomaly was seen: frame index into the input and FITS position there.
 #[derive(Debug, Clone, Copy, PartialEq, Serialize)]
 pub struct Detection {

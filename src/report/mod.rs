@@ -366,13 +366,7 @@ pub fn html(s: &Summary, image: &dyn Fn(&str) -> Option<String>) -> String {
 
 /// Every frame's metrics as CSV (RFC 4180 quoting).
 pub fn csv(doc: &NightDocument) -> String {
-    let q = |s: &str| {
-        if s.contains([',', '"', '\n', '\r']) {
-            format!("\"{}\"", s.replace('"', "\"\""))
-        } else {
-            s.to_string()
-        }
-    };
+    let q = |s: &str| csv_text(s);
     let n = |v: Option<f64>| v.map_or(String::new(), |x| format!("{x:.4}"));
     let mut out = String::from("path,target,filter,time_unix,verdict,reasons,star_count,fwhm_px,fwhm_arcsec,eccentricity,background_adu,noise_adu,snr_median,hfr_px,transparency_loss_mag\n");
     for f in &doc.frames {
@@ -402,6 +396,23 @@ pub fn csv(doc: &NightDocument) -> String {
         );
     }
     out
+}
+
+/// A text cell of the CSV: quoted where RFC 4180 needs it, and a cell a spreadsheet
+/// would run as a formula (one that starts with `=`, `+`, `-`, `@`, a tab or a carriage
+/// return) neutralised with a leading apostrophe, as the OWASP guidance on CSV
+/// injection advises. Numbers are written by the caller and never pass through here.
+pub fn csv_text(s: &str) -> String {
+    let s = if s.starts_with(['=', '+', '-', '@', '\t', '\r']) {
+        format!("'{s}")
+    } else {
+        s.to_string()
+    };
+    if s.contains([',', '"', '\n', '\r']) {
+        format!("\"{}\"", s.replace('"', "\"\""))
+    } else {
+        s
+    }
 }
 
 /// Standard base64 (RFC 4648) for data URIs.
@@ -438,6 +449,25 @@ mod tests {
             "&lt;script&gt;alert(&#39;x&#39;)&lt;/script&gt;"
         );
         assert_eq!(one_line("a\r\nBcc: b"), "a  Bcc: b");
+    }
+
+    #[test]
+    fn csv_cells_from_headers_cannot_become_formulas() {
+        // OWASP, "CSV Injection": cells starting with = + - @ tab or CR are neutralised.
+        for (cell, written) in [
+            (
+                "=HYPERLINK(\"http://x\")",
+                "\"'=HYPERLINK(\"\"http://x\"\")\"",
+            ),
+            ("+1", "'+1"),
+            ("-2+3", "'-2+3"),
+            ("@SUM(A1)", "'@SUM(A1)"),
+            ("\tx", "'\tx"),
+            ("Kestrel Field A", "Kestrel Field A"),
+            ("a,b", "\"a,b\""),
+        ] {
+            assert_eq!(csv_text(cell), written, "{cell:?}");
+        }
     }
 
     #[test]

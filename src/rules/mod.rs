@@ -139,6 +139,12 @@ pub struct RuleSpec {
 }
 
 impl RuleSpec {
+    /// A rule from one `[[rules]]` table; unknown keys and values are refused with the
+    /// names that are allowed.
+    pub fn deserialize_value(table: &toml::Value) -> Result<Self, String> {
+        RuleSpec::deserialize(table.clone()).map_err(|e| e.message().trim().replace('`', "\""))
+    }
+
     /// Problems with the rule's values (its keys were checked when it was read).
     pub fn problems(&self) -> Vec<String> {
         let mut p = Vec::new();

@@ -19,12 +19,18 @@ pub struct AlertLimits {
 
 impl Default for AlertLimits {
     fn default() -> Self {
+        AlertLimits::from_config(&crate::config::AlertsConfig::default())
+    }
+}
+
+impl AlertLimits {
+    pub fn from_config(c: &crate::config::AlertsConfig) -> Self {
         AlertLimits {
-            stopped_minutes: 20.0,
-            reject_streak: 3,
-            min_free_gb: 5.0,
-            repeat_minutes: 60.0,
-            max_per_night: 6,
+            stopped_minutes: c.stopped_minutes,
+            reject_streak: c.reject_streak,
+            min_free_gb: c.min_free_gb,
+            repeat_minutes: c.repeat_minutes,
+            max_per_night: c.max_per_night,
         }
     }
 }

@@ -19,7 +19,7 @@ pub(super) fn raise_alert(
     message: &str,
 ) -> Option<String> {
     let now = unix_now();
-    let limits = config.alerts.limits();
+    let limits = alerts::AlertLimits::from_config(&config.alerts);
     let (last, tonight) = store.alert_history(night, kind).ok()?;
     if !alerts::allowed(&limits, now, last, tonight) {
         return None;
@@ -64,7 +64,7 @@ pub(super) fn minute_checks(shared: &Shared) {
         return;
     };
     let store = shared.store.lock().unwrap_or_else(|p| p.into_inner());
-    let limits = config.alerts.limits();
+    let limits = alerts::AlertLimits::from_config(&config.alerts);
     let dark = config.site_position().map(|(lat, lon, _)| {
         crate::sky::sun_altitude(crate::sky::julian_date(now), lat, lon) < -18.0
     });
@@ -126,11 +126,8 @@ fn anomaly_alerts(store: &Store, config: &Config, night: &str) {
         return;
     };
     for a in &doc.anomalies {
-        let kind = serde_json::to_value(a.kind)
-            .ok()
-            .and_then(|v| v.as_str().map(String::from))
-            .unwrap_or_default();
-        if !config.alerts.anomaly_kinds.contains(&kind)
+        let kind = a.kind.name();
+        if !config.alerts.anomaly_kinds.contains(&a.kind)
             || a.detail.get("cosmic_ray").and_then(|v| v.as_bool()) == Some(true)
         {
             continue;
@@ -235,7 +232,7 @@ fn free_bytes(folder: &Path) -> Option<u64> {
 /// The morning summary of the night that just ended, once, at `summary_time` ("HH:MM"
 /// local) or 30 minutes after astronomical dawn ("dawn", needs the site).
 fn summary_if_due(store: &Store, config: &Config, now: f64) {
-    let Some(when) = config.mail.summary_time.as_deref() else {
+    let Some(when) = config.mail.summary_time else {
         return;
     };
     let tz = config.timezone();
@@ -254,25 +251,19 @@ fn summary_if_due(store: &Store, config: &Config, now: f64) {
     if minutes_now >= 12 * 60 {
         return;
     }
-    let due = if when == "dawn" {
-        let Some((lat, lon, _)) = config.site_position() else {
-            return;
-        };
-        let evening = now - 86_400.0 * 0.75;
-        match crate::sky::sun_crossings(evening, -18.0, lat, lon).1 {
-            Some(dawn) => now >= dawn + 1800.0,
-            None => false,
+    let due = match when {
+        crate::config::SummaryTime::Dawn => {
+            // Checked at load: "dawn" comes with a site.
+            let Some((lat, lon, _)) = config.site_position() else {
+                return;
+            };
+            let evening = now - 86_400.0 * 0.75;
+            match crate::sky::sun_crossings(evening, -18.0, lat, lon).1 {
+                Some(dawn) => now >= dawn + 1800.0,
+                None => false,
+            }
         }
-    } else {
-        let mut parts = when.split(':');
-        let (h, m): (u32, u32) = match (
-            parts.next().and_then(|x| x.parse().ok()),
-            parts.next().and_then(|x| x.parse().ok()),
-        ) {
-            (Some(h), Some(m)) => (h, m),
-            _ => return,
-        };
-        minutes_now >= h * 60 + m
+        crate::config::SummaryTime::At(h, m) => minutes_now >= h * 60 + m,
     };
     if !due {
         return;

@@ -274,7 +274,10 @@ fn store_record(shared: &Shared, record: FrameRecord) -> Outcome {
         let verdicts = store
             .group_verdicts(night, record.target.as_deref(), record.filter.as_deref())
             .unwrap_or_default();
-        if let Some(msg) = alerts::reject_streak(&shared.config.alerts.limits(), &verdicts) {
+        if let Some(msg) = alerts::reject_streak(
+            &alerts::AlertLimits::from_config(&shared.config.alerts),
+            &verdicts,
+        ) {
             if let Some(alert) =
                 checks::raise_alert(&store, &shared.config, night, "reject_streak", &msg)
             {
