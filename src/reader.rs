@@ -138,16 +138,27 @@ impl Default for Reader {
 
 /// Why a worker gave no answer, in words for the frame's record.
 fn failure_reason(status: std::process::ExitStatus, stderr: &str, iso: &Isolation) -> String {
+    // The last thing the worker (or the C library under it) said, backtrace notes aside.
     let last = stderr
         .lines()
         .rev()
-        .find(|l| !l.trim().is_empty())
-        .unwrap_or("")
-        .trim();
-    let gib = iso.memory_bytes as f64 / (1u64 << 30) as f64;
-    if last.contains("memory allocation") || last.contains("out of memory") {
+        .map(str::trim)
+        .find(|l| {
+            !l.is_empty()
+                && !l.starts_with("note:")
+                && !l.starts_with("skipping backtrace")
+                && !l.starts_with("stack backtrace")
+        })
+        .unwrap_or("");
+    let mib = iso.memory_bytes >> 20;
+    let limit = if mib < 1024 {
+        format!("{mib} MiB")
+    } else {
+        format!("{:.1} GiB", mib as f64 / 1024.0)
+    };
+    if stderr.contains("memory allocation of") || stderr.contains("out of memory") {
         return format!(
-            "the FITS reader ran out of memory on this file (limit {gib:.1} GiB); raise [measure] reader_memory_mb if the frame is real"
+            "the FITS reader ran out of memory on this file (limit {limit}); raise [measure] reader_memory_mb if the frame is real"
         );
     }
     match status.signal() {
@@ -162,7 +173,13 @@ fn failure_reason(status: std::process::ExitStatus, stderr: &str, iso: &Isolatio
                 libc::SIGXCPU => "CPU time limit",
                 _ => "signal",
             };
-            format!("the FITS reader crashed on this file (signal {sig}, {name})")
+            // What the C library said before it went, when it said anything.
+            let said = if last.is_empty() {
+                String::new()
+            } else {
+                format!(": {}", crate::logging::one_line(last))
+            };
+            format!("the FITS reader crashed on this file (signal {sig}, {name}{said})")
         }
         None => match status.code() {
             Some(101) => "internal error while measuring (a bug; please report it)".into(),
@@ -193,6 +210,8 @@ pub fn run_isolated(iso: &Isolation, request: &Request) -> Result<Reply, String>
     let memory = iso.memory_bytes;
     let mut cmd = Command::new(&iso.program);
     cmd.arg(WORKER_COMMAND)
+        // A fault's story is one line, not a backtrace.
+        .env("RUST_BACKTRACE", "0")
         .stdin(Stdio::piped())
         .stdout(Stdio::piped())
         .stderr(Stdio::piped());

@@ -24,6 +24,18 @@ pub enum Encoding {
     /// to 0..=65535.
     Unsigned16,
     Float32,
+    /// As `Unsigned16`, tile-compressed into a binary-table extension after an empty
+    /// primary HDU (FITS Standard 4.0, section 10), by cfitsio.
+    Compressed(Compression),
+}
+
+/// The tile-compression algorithms cfitsio writes.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Compression {
+    Rice,
+    Gzip,
+    Hcompress,
+    Plio,
 }
 
 pub fn write_frame(
@@ -42,16 +54,29 @@ pub fn write_frame(
     let dims = [pixels.nrows(), pixels.ncols()];
     let desc = ImageDescription {
         data_type: match encoding {
-            Encoding::Unsigned16 => ImageType::UnsignedShort,
             Encoding::Float32 => ImageType::Float,
+            _ => ImageType::UnsignedShort,
         },
         dimensions: &dims,
     };
-    let mut file = FitsFile::create(path)
+    // cfitsio's own file-name syntax asks for compression; the images land in HDU 2.
+    let (target, hdu_index) = match encoding {
+        Encoding::Compressed(c) => {
+            let code = match c {
+                Compression::Rice => "R",
+                Compression::Gzip => "G",
+                Compression::Hcompress => "H",
+                Compression::Plio => "P",
+            };
+            (format!("{}[compress {code}]", path.display()), 1)
+        }
+        _ => (path.display().to_string(), 0),
+    };
+    let mut file = FitsFile::create(target)
         .with_custom_primary(&desc)
         .open()
         .map_err(|e| fail(e.to_string()))?;
-    let hdu = file.primary_hdu().map_err(|e| fail(e.to_string()))?;
+    let hdu = file.hdu(hdu_index).map_err(|e| fail(e.to_string()))?;
     // The writing library names the primary HDU "_PRIMARY"; a camera's file has no
     // EXTNAME there, so remove it.
     let mut status = 0;
@@ -60,7 +85,7 @@ pub fn write_frame(
     unsafe { fitsio::sys::ffdkey(file.as_raw(), name.as_ptr(), &mut status) };
     let flat: Vec<f32> = pixels.iter().copied().collect();
     match encoding {
-        Encoding::Unsigned16 => {
+        Encoding::Unsigned16 | Encoding::Compressed(_) => {
             let data: Vec<u16> = flat
                 .iter()
                 .map(|&v| {

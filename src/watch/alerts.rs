@@ -69,10 +69,15 @@ pub fn reject_streak(limits: &AlertLimits, verdicts: &[String]) -> Option<String
         .then(|| format!("the last {n} frames were all rejected (clouds, dew, focus or tracking)"))
 }
 
-/// Low disk space on a watched folder.
-pub fn low_disk(limits: &AlertLimits, folder: &str, free_bytes: u64) -> Option<String> {
-    let gb = free_bytes as f64 / 1e9;
-    (gb < limits.min_free_gb).then(|| format!("only {gb:.1} GB free where {folder} is"))
+/// Low disk space on any of the file systems the daemon uses, each given as a folder on
+/// it and its free bytes: one message naming every one that is low.
+pub fn low_disk(limits: &AlertLimits, free: &[(String, u64)]) -> Option<String> {
+    let low: Vec<String> = free
+        .iter()
+        .filter(|(_, bytes)| (*bytes as f64 / 1e9) < limits.min_free_gb)
+        .map(|(folder, bytes)| format!("only {:.1} GB free where {folder} is", *bytes as f64 / 1e9))
+        .collect();
+    (!low.is_empty()).then(|| low.join("; "))
 }
 
 #[cfg(test)]
@@ -95,7 +100,19 @@ mod tests {
         let v = |s: &[&str]| s.iter().map(|x| x.to_string()).collect::<Vec<_>>();
         assert!(reject_streak(&l, &v(&["ok", "reject", "reject", "reject"])).is_some());
         assert!(reject_streak(&l, &v(&["reject", "ok", "reject", "reject"])).is_none());
-        assert!(low_disk(&l, "/srv", 2_000_000_000).is_some());
-        assert!(low_disk(&l, "/srv", 50_000_000_000).is_none());
+        let disks = |a: u64, b: u64| {
+            vec![
+                ("/srv".to_string(), a),
+                ("/var/lib/subwatch".to_string(), b),
+            ]
+        };
+        assert_eq!(
+            low_disk(&l, &disks(50_000_000_000, 2_000_000_000)).as_deref(),
+            Some("only 2.0 GB free where /var/lib/subwatch is")
+        );
+        assert!(low_disk(&l, &disks(1_000_000_000, 2_000_000_000))
+            .unwrap()
+            .contains("/srv is; only 2.0 GB"));
+        assert!(low_disk(&l, &disks(50_000_000_000, 50_000_000_000)).is_none());
     }
 }

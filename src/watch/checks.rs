@@ -75,11 +75,13 @@ pub(super) fn minute_checks(shared: &Shared) {
             }
         }
     }
-    for (folder, free) in free_space(&written_folders(shared)) {
-        if let Some(msg) = alerts::low_disk(&limits, &crate::logging::shown(&folder), free) {
-            if let Some(line) = raise_alert(&store, config, &night, "low_disk", &msg) {
-                tracing::warn!("{line}");
-            }
+    let free: Vec<(String, u64)> = free_space(&written_folders(&shared.config))
+        .into_iter()
+        .map(|(folder, bytes)| (crate::logging::shown(&folder), bytes))
+        .collect();
+    if let Some(msg) = alerts::low_disk(&limits, &free) {
+        if let Some(line) = raise_alert(&store, config, &night, "low_disk", &msg) {
+            tracing::warn!("{line}");
         }
     }
     // Frames recorded while their verdict could not be stored (a failing store).
@@ -168,12 +170,11 @@ fn alert_identity(night: &str, alert_kind: &str, a: &crate::contract::AnomalyRec
 
 /// Every folder the daemon reads frames from or writes into: the capture folders, the
 /// store's folder, the reports and the lists.
-fn written_folders(shared: &Shared) -> Vec<PathBuf> {
-    let c = &shared.config;
+fn written_folders(c: &Config) -> Vec<PathBuf> {
     let mut folders = c.watch.folders.clone();
     folders.extend(c.store.path.parent().map(Path::to_path_buf));
     folders.push(crate::morning::report_folder(c));
-    folders.extend(shared.judging.lists_folder.clone());
+    folders.extend(crate::morning::lists_folder(c));
     folders
 }
 
@@ -306,6 +307,38 @@ mod tests {
             target: None,
             filter: None,
         }
+    }
+
+    #[test]
+    fn free_space_is_watched_where_frames_the_store_reports_and_lists_are() {
+        let dir = tempfile::tempdir().unwrap();
+        let mut c = Config::default();
+        c.watch.folders = vec![dir.path().join("capture")];
+        c.store.path = Path::new("/dev/shm/subwatch-test/s.db").to_path_buf();
+        c.report.folder = Some(dir.path().join("reports/not-made-yet"));
+        c.actions.accepted_lists = true;
+        let folders = written_folders(&c);
+        assert_eq!(
+            folders,
+            vec![
+                dir.path().join("capture"),
+                PathBuf::from("/dev/shm/subwatch-test"),
+                dir.path().join("reports/not-made-yet"),
+                PathBuf::from("/dev/shm/subwatch-test/accepted"),
+            ]
+        );
+        // One entry per file system, named by the first folder on it; folders not made
+        // yet count by their nearest parent.
+        let free = free_space(&folders);
+        let devices = |p: &Path| {
+            use std::os::unix::fs::MetadataExt;
+            std::fs::metadata(p.ancestors().find(|a| a.exists()).unwrap())
+                .unwrap()
+                .dev()
+        };
+        let distinct: std::collections::HashSet<u64> = folders.iter().map(|f| devices(f)).collect();
+        assert_eq!(free.len(), distinct.len());
+        assert_eq!(free[0].0, dir.path().join("capture"));
     }
 
     #[test]

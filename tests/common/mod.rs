@@ -2,6 +2,8 @@
 //! real binary, compare its output with the truth.
 #![allow(dead_code)]
 
+pub mod daemon;
+
 use std::path::{Path, PathBuf};
 use std::process::Command;
 

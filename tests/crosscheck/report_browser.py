@@ -25,8 +25,9 @@ def main():
     binary = os.path.abspath(sys.argv[1] if len(sys.argv) > 1 else "target/release/subwatch")
     checks = Checks("report_browser")
     chromium = shutil.which("chromium")
+    # A check that cannot run is a failure, never a skip.
+    checks.record("chromium is installed (.ci/run installs Debian's package)", chromium is not None, shutil.which("chromium") or "not found")
     if chromium is None:
-        print("[SKIP] chromium is not installed; .ci/run installs it (Debian package chromium)")
         return checks.finish()
     with tempfile.TemporaryDirectory() as tmp:
         out = os.path.join(tmp, "demo")

@@ -1,0 +1,133 @@
+//! The daemon as a user runs it, for the integration tests: a real process on real
+//! folders with a real SQLite file.
+
+use std::path::{Path, PathBuf};
+use std::process::{Child, Command, Stdio};
+use std::time::{Duration, Instant};
+
+use subwatch::frame::write::{write_frame, Encoding, OutValue};
+use subwatch::sim::{render, SimParams};
+
+pub struct Daemon {
+    pub child: Child,
+}
+
+impl Daemon {
+    pub fn start(config: &Path) -> Daemon {
+        let child = Command::new(super::binary())
+            .args(["watch", "--config"])
+            .arg(config)
+            .env("SUBWATCH_LOG", "info")
+            .stdout(Stdio::null())
+            .stderr(Stdio::null())
+            .spawn()
+            .expect("start daemon");
+        Daemon { child }
+    }
+
+    pub fn pid(&self) -> u32 {
+        self.child.id()
+    }
+
+    pub fn kill9(mut self) {
+        let _ = self.child.kill();
+        let _ = self.child.wait();
+    }
+
+    /// SIGTERM, then the exit status.
+    pub fn terminate(mut self) -> std::process::ExitStatus {
+        unsafe {
+            libc::kill(self.child.id() as i32, libc::SIGTERM);
+        }
+        self.child.wait().expect("wait")
+    }
+}
+
+impl Drop for Daemon {
+    fn drop(&mut self) {
+        let _ = self.child.kill();
+        let _ = self.child.wait();
+    }
+}
+
+pub struct Site {
+    pub _dir: tempfile::TempDir,
+    pub root: PathBuf,
+    pub capture: PathBuf,
+    pub config: PathBuf,
+    pub db: PathBuf,
+}
+
+pub fn site(extra_watch: &str) -> Site {
+    let dir = tempfile::tempdir().unwrap();
+    let root = dir.path().canonicalize().unwrap();
+    let capture = root.join("capture");
+    std::fs::create_dir_all(&capture).unwrap();
+    let config = root.join("subwatch.toml");
+    let db = root.join("subwatch.db");
+    std::fs::write(
+        &config,
+        format!(
+            "[watch]\nfolders = [\"{}\"]\nsettle_seconds = 0.5\nrescan_seconds = 2\n{extra_watch}\n[store]\npath = \"{}\"\n[site]\ntimezone = \"UTC\"\n",
+            capture.display(),
+            db.display()
+        ),
+    )
+    .unwrap();
+    Site {
+        _dir: dir,
+        root,
+        capture,
+        config,
+        db,
+    }
+}
+
+/// A small rendered frame as FITS bytes (written to a scratch file and read back).
+pub fn frame_bytes(seed: u64, scratch: &Path, image_type: &str) -> Vec<u8> {
+    let params = SimParams {
+        width: 160,
+        height: 120,
+        star_count: 25,
+        seed,
+        ..Default::default()
+    };
+    let (pixels, mut keys, _) = render(&params);
+    for (k, v) in keys.iter_mut() {
+        if k == "IMAGETYP" {
+            *v = OutValue::Text(image_type.into());
+        }
+    }
+    let path = scratch.join(format!("scratch-{seed}-{image_type}.fits"));
+    let _ = std::fs::remove_file(&path);
+    write_frame(&path, &pixels, Encoding::Unsigned16, &keys).unwrap();
+    let bytes = std::fs::read(&path).unwrap();
+    std::fs::remove_file(&path).unwrap();
+    bytes
+}
+
+/// (path, status, error) for every recorded frame.
+pub fn recorded(db: &Path) -> Vec<(String, String, Option<String>)> {
+    let Ok(conn) =
+        rusqlite::Connection::open_with_flags(db, rusqlite::OpenFlags::SQLITE_OPEN_READ_ONLY)
+    else {
+        return Vec::new();
+    };
+    let Ok(mut st) = conn.prepare("SELECT path, status, error FROM frames ORDER BY path") else {
+        return Vec::new();
+    };
+    st.query_map([], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)))
+        .map(|rows| rows.filter_map(Result::ok).collect())
+        .unwrap_or_default()
+}
+
+pub fn wait_for(db: &Path, count: usize, limit: Duration) -> Vec<(String, String, Option<String>)> {
+    let start = Instant::now();
+    loop {
+        let rows = recorded(db);
+        if rows.len() >= count || start.elapsed() > limit {
+            return rows;
+        }
+        std::thread::sleep(Duration::from_millis(100));
+    }
+}
