@@ -8,8 +8,9 @@ use std::time::Instant;
 
 use subwatch::frame::write::{write_frame, Encoding};
 use subwatch::pipeline::record_file;
+use subwatch::record::Identity;
 use subwatch::sim::night::{render_night, NightPlan};
-use subwatch::store::{Identity, Store};
+use subwatch::store::Store;
 
 fn main() {
     let frames_total = 300;
@@ -32,7 +33,7 @@ fn main() {
     );
     let mut store = Store::open(&dir.path().join("night.db")).expect("store");
     let config = subwatch::config::Config::default();
-    let options = subwatch::watch::record_options(&config);
+    let options = subwatch::pipeline::RecordOptions::from_config(&config);
     let mut live_ms = Vec::new();
     let mut measure_ms = Vec::new();
     for (i, f) in frames.iter().enumerate() {

@@ -8,8 +8,9 @@ use std::path::Path;
 use crate::contract::{AnomalyRecord, DetectionRecord, NightDocument, NightFrameRecord};
 use crate::measure::RejectKind;
 use crate::night::{analyse, FrameInput, StarInput};
+use crate::record::{FrameRecord, FrameStatus, Identity};
 use crate::rules::{judge_group_with, FrameFacts, RuleSpec};
-use crate::store::{FrameRecord, FrameStatus, Identity, Store, StoreError};
+use crate::store::{Store, StoreError};
 
 fn frame_input(r: &FrameRecord) -> FrameInput {
     let m = r.metrics.as_ref();
@@ -200,8 +201,8 @@ pub fn run_night(
     store: Option<&mut Store>,
     mut progress: impl FnMut(usize, usize),
 ) -> Result<NightDocument, StoreError> {
-    let options = crate::watch::record_options(config);
-    let reader = config.measure.reader();
+    let options = crate::pipeline::RecordOptions::from_config(config);
+    let reader = crate::reader::Reader::from_config(&config.measure);
     let files = crate::walk::FrameFilter::from_config(config).walk(&[dir.to_path_buf()]);
     let total = files.len();
     let mut records = Vec::with_capacity(total);

@@ -132,17 +132,6 @@ impl Default for MeasureConfig {
     }
 }
 
-impl MeasureConfig {
-    /// How frames are read: in a worker process with these limits.
-    pub fn reader(&self) -> crate::reader::Reader {
-        crate::reader::Reader::Isolated(crate::reader::Isolation::new(
-            self.max_pixels,
-            self.reader_memory_mb,
-            self.reader_timeout_seconds,
-        ))
-    }
-}
-
 #[derive(Debug, Clone)]
 pub struct ActionsConfig {
     /// Write per-night, per-target, per-filter lists of accepted frames.

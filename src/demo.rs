@@ -14,8 +14,9 @@ use std::time::{Duration, Instant};
 use crate::config::Config;
 use crate::contract::NightDocument;
 use crate::frame::write::{write_frame, Encoding};
+use crate::record::Identity;
 use crate::sim::night::{render_night, NightFrame, NightPlan};
-use crate::store::{Identity, Store};
+use crate::store::Store;
 
 #[derive(Debug, thiserror::Error)]
 pub enum DemoError {
@@ -168,8 +169,8 @@ pub fn run(
     // The previous night goes straight into the store, as the daemon would have left it.
     {
         let mut store = Store::open(&config.store.path)?;
-        let options = crate::watch::record_options(&config);
-        let reader = config.measure.reader();
+        let options = crate::pipeline::RecordOptions::from_config(&config);
+        let reader = crate::reader::Reader::from_config(&config.measure);
         let judging = crate::watch::Judging {
             rules: Vec::new(),
             site: config.site_position(),

@@ -280,16 +280,20 @@ fn run(cli: Cli) -> Result<ExitCode> {
                     "subwatch test mail",
                     "This is a test of subwatch's mail settings. Morning summaries and alerts will come this way.",
                 )?;
-                match &settings.host {
-                    Some(host) => {
-                        subwatch::mail::send_raw(&settings, &note.from, &note.to, &note.bytes)?;
-                        println!("test mail sent through {host}:{}", settings.port);
-                    }
-                    None => {
-                        let folder = subwatch::morning::report_folder(&cfg);
-                        let path = subwatch::mail::write_eml(&folder, "subwatch-test.eml", &note)
-                            .with_context(|| format!("writing into {}", folder.display()))?;
-                        println!("no smtp_host: test mail written to {}", path.display());
+                let folder = subwatch::morning::report_folder(&cfg);
+                match subwatch::outbox::deliver(
+                    &settings,
+                    &note.into(),
+                    &folder,
+                    "subwatch-test.eml",
+                )? {
+                    subwatch::outbox::Delivered::Sent => println!(
+                        "test mail sent through {}:{}",
+                        settings.host.as_deref().unwrap_or(""),
+                        settings.port
+                    ),
+                    subwatch::outbox::Delivered::Written(path) => {
+                        println!("no smtp_host: test mail written to {}", path.display())
                     }
                 }
             }
@@ -374,11 +378,10 @@ fn run(cli: Cli) -> Result<ExitCode> {
                 measure_calibration: true,
                 ..Default::default()
             };
-            let reader = subwatch::config::MeasureConfig {
+            let reader = subwatch::reader::Reader::from_config(&subwatch::config::MeasureConfig {
                 max_pixels,
                 ..Default::default()
-            }
-            .reader();
+            });
             measure_command(&files, &opts, &reader, json, stars)
         }
         Command::Render {
@@ -814,14 +817,14 @@ fn measure_command(
     for path in files {
         let shown = path.display().to_string();
         let identity =
-            subwatch::store::Identity::of(path).unwrap_or_else(|_| subwatch::store::Identity {
+            subwatch::record::Identity::of(path).unwrap_or_else(|_| subwatch::record::Identity {
                 path: shown.clone(),
                 size: 0,
                 mtime_ns: 0,
             });
         let rec = reader.record(path, identity, 0.0, opts);
         let record = match (rec.status, rec.metrics) {
-            (subwatch::store::FrameStatus::Ok, Some(metrics)) => MeasureRecord {
+            (subwatch::record::FrameStatus::Ok, Some(metrics)) => MeasureRecord {
                 path: shown.clone(),
                 status: "ok",
                 error: None,

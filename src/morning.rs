@@ -104,7 +104,7 @@ pub fn write_files(
     folder: &Path,
     measure: &crate::config::MeasureConfig,
 ) -> Result<Prepared, MorningError> {
-    let reader = measure.reader();
+    let reader = crate::reader::Reader::from_config(measure);
     let limits = crate::frame::DecodeLimits {
         max_pixels: measure.max_pixels,
     };
@@ -147,7 +147,7 @@ pub fn write_files(
         images
             .iter()
             .find(|(n, _)| n == name)
-            .map(|(_, png)| format!("data:image/png;base64,{}", report::base64(png)))
+            .map(|(_, png)| format!("data:image/png;base64,{}", crate::text::base64(png)))
     };
     let html = report::html(&summary, &data_uri);
     let html_path = folder.join(format!("night-{night}.html"));
@@ -201,7 +201,7 @@ pub fn queue_mail(
         &format!("night-{}.csv", p.summary.night),
         &report::csv(&p.doc),
     )?;
-    Ok(store.enqueue_mail(&composed, now_unix)?)
+    Ok(crate::outbox::queue(store, composed, now_unix)?)
 }
 
 /// Deliver whatever is due in the outbox.
@@ -209,7 +209,7 @@ pub fn flush(
     store: &Store,
     c: &Config,
     now_unix: f64,
-) -> Result<crate::mail::FlushReport, MorningError> {
+) -> Result<crate::outbox::FlushReport, MorningError> {
     flush_at(store, c, now_unix, now_unix)
 }
 
@@ -220,9 +220,9 @@ pub fn flush_at(
     c: &Config,
     due_unix: f64,
     now_unix: f64,
-) -> Result<crate::mail::FlushReport, MorningError> {
+) -> Result<crate::outbox::FlushReport, MorningError> {
     let settings = MailSettings::from_config(c)?;
-    Ok(crate::mail::flush_outbox(
+    Ok(crate::outbox::flush(
         store,
         &settings,
         &report_folder(c),

@@ -98,6 +98,32 @@ impl Default for RecordOptions {
     }
 }
 
+impl RecordOptions {
+    /// The options a configuration gives every frame.
+    pub fn from_config(config: &crate::config::Config) -> Self {
+        let mut measure = MeasureOptions {
+            focal_length_mm: config.optics.focal_length_mm,
+            pixel_size_um: config.optics.pixel_size_um,
+            ..Default::default()
+        };
+        measure.limits.max_pixels = config.measure.max_pixels;
+        measure.params.detect.sigma = config.measure.detect_sigma;
+        measure.params.gain_e_per_adu = config.optics.gain_e_per_adu;
+        measure.params.saturation_adu = config.optics.saturation_adu;
+        RecordOptions {
+            measure,
+            timezone: config.timezone(),
+            calibration_folders: config
+                .watch
+                .calibration_folders
+                .iter()
+                .map(|s| s.to_lowercase())
+                .collect(),
+            measure_calibration: false,
+        }
+    }
+}
+
 /// A time zone travels by its IANA name.
 mod tz_name {
     use serde::{Deserialize, Deserializer, Serializer};
@@ -138,12 +164,11 @@ fn calibration_kind(
 /// a problem becomes a record with status "error" naming it.
 pub fn record_file(
     path: &Path,
-    identity: crate::store::Identity,
+    identity: crate::record::Identity,
     mtime_unix: f64,
     opts: &RecordOptions,
-) -> crate::store::FrameRecord {
-    use crate::contract::{HeaderFacts, Metrics, StarRecord};
-    use crate::store::{FrameRecord, FrameStatus};
+) -> crate::record::FrameRecord {
+    use crate::record::{FrameRecord, FrameStatus, HeaderFacts, Metrics, StarRecord};
     let mut rec = FrameRecord {
         error: None,
         night: crate::sky::night_label(mtime_unix, opts.timezone),

@@ -21,7 +21,7 @@ use std::time::{Duration, Instant};
 use serde::{Deserialize, Serialize};
 
 use crate::pipeline::RecordOptions;
-use crate::store::{FrameRecord, Identity};
+use crate::record::{FrameRecord, Identity};
 
 /// The hidden subcommand the worker runs as.
 pub const WORKER_COMMAND: &str = "read-worker";
@@ -129,10 +129,20 @@ impl Isolation {
     }
 }
 
+impl Reader {
+    /// Frames read in a worker process with the configured limits.
+    pub fn from_config(measure: &crate::config::MeasureConfig) -> Self {
+        Reader::Isolated(Isolation::new(
+            measure.max_pixels,
+            measure.reader_memory_mb,
+            measure.reader_timeout_seconds,
+        ))
+    }
+}
+
 impl Default for Reader {
     fn default() -> Self {
-        let limits = crate::frame::DecodeLimits::default();
-        Reader::Isolated(Isolation::new(limits.max_pixels, 0, 300.0))
+        Self::from_config(&crate::config::MeasureConfig::default())
     }
 }
 
@@ -480,7 +490,7 @@ mod tests {
             1_773_600_000.0,
             &RecordOptions::default(),
         );
-        assert_eq!(rec.status, crate::store::FrameStatus::Error);
+        assert_eq!(rec.status, crate::record::FrameStatus::Error);
         assert!(rec.night.is_some());
     }
 }

@@ -1,9 +1,9 @@
 //! Mail: composing the morning summary (multipart: plain text, HTML with inline images by
-//! Content-ID, CSV attachment) and delivering it over SMTP (STARTTLS, implicit TLS, or
-//! plain on a trusted network) through the on-disk outbox in the store. The only module
-//! that speaks SMTP. A password is read from a file or the environment and never logged.
+//! Content-ID, CSV attachment) and alerts, and sending one message over SMTP (STARTTLS,
+//! implicit TLS, or plain on a trusted network). The only module that speaks SMTP; the
+//! outbox that keeps messages until a server took them is `outbox`. A password is read
+//! from a file or the environment and never logged.
 
-use std::path::Path;
 use std::time::Duration;
 
 use lettre::message::header::ContentType;
@@ -199,7 +199,7 @@ fn finish(s: &MailSettings, subject: &str, body: MultiPart) -> Result<Composed, 
     }
     let mut builder = Message::builder()
         .from(s.from.clone())
-        .subject(crate::report::one_line(subject));
+        .subject(crate::text::single_line(subject));
     for t in &s.to {
         builder = builder.to(t.clone());
     }
@@ -218,7 +218,7 @@ fn finish(s: &MailSettings, subject: &str, body: MultiPart) -> Result<Composed, 
 pub fn compose_note(s: &MailSettings, subject: &str, text: &str) -> Result<Composed, MailError> {
     let html = format!(
         "<!DOCTYPE html><html><body><p>{}</p></body></html>",
-        crate::report::escape_html(text)
+        crate::text::escape_html(text)
     );
     finish(
         s,
@@ -255,61 +255,4 @@ pub fn send_raw(
             port: s.port,
             reason: e.to_string(),
         })
-}
-
-/// Write a message as an .eml file (when no server is configured).
-pub fn write_eml(folder: &Path, name: &str, c: &Composed) -> std::io::Result<std::path::PathBuf> {
-    std::fs::create_dir_all(folder)?;
-    let path = folder.join(name);
-    std::fs::write(&path, &c.bytes)?;
-    Ok(path)
-}
-
-/// What one pass over the outbox did.
-#[derive(Debug, Default, Clone, PartialEq)]
-pub struct FlushReport {
-    pub sent: usize,
-    pub written: Vec<std::path::PathBuf>,
-    pub failed: Vec<String>,
-}
-
-/// Deliver every due message in the outbox. A failed message waits 1, 2, 4, … minutes
-/// (at most an hour) before the next try; a delivered one is never sent again. Without a
-/// server the message is written to `eml_folder` instead.
-pub fn flush_outbox(
-    store: &crate::store::Store,
-    s: &MailSettings,
-    eml_folder: &Path,
-    due_unix: f64,
-    now_unix: f64,
-) -> Result<FlushReport, crate::store::StoreError> {
-    let mut report = FlushReport::default();
-    for (id, msg, attempts) in store.due_mail(due_unix)? {
-        if s.host.is_none() {
-            match write_eml(eml_folder, &format!("subwatch-mail-{id}.eml"), &msg) {
-                Ok(p) => {
-                    store.mail_done(id, "written", now_unix)?;
-                    report.written.push(p);
-                }
-                Err(e) => report
-                    .failed
-                    .push(format!("message {id}: cannot write .eml: {e}")),
-            }
-            continue;
-        }
-        match send_raw(s, &msg.from, &msg.to, &msg.bytes) {
-            Ok(()) => {
-                store.mail_done(id, "sent", now_unix)?;
-                report.sent += 1;
-            }
-            Err(e) => {
-                let wait = (60.0 * 2f64.powi(attempts.clamp(0, 6) as i32)).min(3600.0);
-                store.mail_failed(id, &e.to_string(), now_unix + wait)?;
-                report
-                    .failed
-                    .push(format!("message {id}: {e} (next try in {wait:.0} s)"));
-            }
-        }
-    }
-    Ok(report)
 }

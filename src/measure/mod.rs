@@ -117,7 +117,7 @@ pub struct Rejected {
     pub x: f64,
     pub y: f64,
     pub kind: RejectKind,
-    #[serde(deserialize_with = "crate::contract::nan_if_null")]
+    #[serde(deserialize_with = "crate::finite::nan_if_null")]
     pub peak_adu: f64,
 }
 

@@ -13,6 +13,7 @@ use serde::Serialize;
 use crate::contract::{AnomalyRecord, NightDocument, NightFrameRecord};
 use crate::measure::stats::median_f64;
 use crate::rules::Verdict;
+use crate::text::{escape_html, single_line};
 
 /// One target-and-filter group of the night.
 #[derive(Debug, Clone, Serialize)]
@@ -126,31 +127,6 @@ pub fn summarise(
     }
 }
 
-/// Escape text for HTML (header values are the user's, or anyone's, strings).
-pub fn escape_html(s: &str) -> String {
-    let mut out = String::with_capacity(s.len());
-    for c in s.chars() {
-        match c {
-            '&' => out.push_str("&amp;"),
-            '<' => out.push_str("&lt;"),
-            '>' => out.push_str("&gt;"),
-            '"' => out.push_str("&quot;"),
-            '\'' => out.push_str("&#39;"),
-            c if c.is_control() => out.push(' '),
-            c => out.push(c),
-        }
-    }
-    out
-}
-
-/// One line, printable: control characters (CR, LF, …) become spaces. For mail subjects
-/// and any other single-line field.
-pub fn one_line(s: &str) -> String {
-    s.chars()
-        .map(|c| if c.is_control() { ' ' } else { c })
-        .collect()
-}
-
 /// Sexagesimal RA (hours) and Dec (degrees) for a J2000 position.
 pub fn sexagesimal(ra_deg: f64, dec_deg: f64) -> String {
     // Round once, in the last unit shown, so 59.999 s never prints as 60.00 s.
@@ -168,7 +144,7 @@ fn hours(s: f64) -> String {
 
 /// Subject line of the morning mail (one line, whatever the headers hold).
 pub fn subject(s: &Summary) -> String {
-    one_line(&format!(
+    single_line(&format!(
         "subwatch night {}: {} frames, {} rejected, {} anomalies",
         s.night,
         s.frames,
@@ -205,8 +181,8 @@ pub fn text(s: &Summary) -> String {
         let _ = writeln!(
             t,
             "\n{} / {}: {} frames: {} ok, {} warn, {} reject; usable {}",
-            one_line(&g.target),
-            one_line(&g.filter),
+            single_line(&g.target),
+            single_line(&g.filter),
             g.frames,
             g.ok,
             g.warn,
@@ -222,7 +198,12 @@ pub fn text(s: &Summary) -> String {
             let _ = writeln!(t, "  {r}: {n}");
         }
         if let (Some(b), Some(w)) = (&g.best, &g.worst) {
-            let _ = writeln!(t, "  sharpest {}, softest {}", one_line(b), one_line(w));
+            let _ = writeln!(
+                t,
+                "  sharpest {}, softest {}",
+                single_line(b),
+                single_line(w)
+            );
         }
     }
     let notable: Vec<&AnomalyRecord> = s.anomalies.iter().filter(|a| !is_cosmic_ray(a)).collect();
@@ -249,7 +230,7 @@ pub fn text(s: &Summary) -> String {
             "  {:<10} {pos}{mag}  in {} frame(s), first {}",
             kind_name(a),
             a.detections.len(),
-            one_line(&first)
+            single_line(&first)
         );
     }
     t
@@ -415,41 +396,9 @@ pub fn csv_text(s: &str) -> String {
     }
 }
 
-/// Standard base64 (RFC 4648) for data URIs.
-pub fn base64(bytes: &[u8]) -> String {
-    const T: &[u8; 64] = b"ABCDEFGHIJKLMNOPQRSTUVWXYZabcdefghijklmnopqrstuvwxyz0123456789+/";
-    let mut out = String::with_capacity(bytes.len().div_ceil(3) * 4);
-    for c in bytes.chunks(3) {
-        let b = [c[0], *c.get(1).unwrap_or(&0), *c.get(2).unwrap_or(&0)];
-        let v = (u32::from(b[0]) << 16) | (u32::from(b[1]) << 8) | u32::from(b[2]);
-        out.push(T[(v >> 18) as usize & 63] as char);
-        out.push(T[(v >> 12) as usize & 63] as char);
-        out.push(if c.len() > 1 {
-            T[(v >> 6) as usize & 63] as char
-        } else {
-            '='
-        });
-        out.push(if c.len() > 2 {
-            T[v as usize & 63] as char
-        } else {
-            '='
-        });
-    }
-    out
-}
-
 #[cfg(test)]
 mod tests {
     use super::*;
-
-    #[test]
-    fn escaping_and_one_line() {
-        assert_eq!(
-            escape_html("<script>alert('x')</script>"),
-            "&lt;script&gt;alert(&#39;x&#39;)&lt;/script&gt;"
-        );
-        assert_eq!(one_line("a\r\nBcc: b"), "a  Bcc: b");
-    }
 
     #[test]
     fn csv_cells_from_headers_cannot_become_formulas() {
@@ -467,22 +416,6 @@ mod tests {
             ("a,b", "\"a,b\""),
         ] {
             assert_eq!(csv_text(cell), written, "{cell:?}");
-        }
-    }
-
-    #[test]
-    fn base64_of_rfc4648_test_vectors() {
-        // RFC 4648 section 10.
-        for (i, o) in [
-            ("", ""),
-            ("f", "Zg=="),
-            ("fo", "Zm8="),
-            ("foo", "Zm9v"),
-            ("foob", "Zm9vYg=="),
-            ("fooba", "Zm9vYmE="),
-            ("foobar", "Zm9vYmFy"),
-        ] {
-            assert_eq!(base64(i.as_bytes()), o);
         }
     }
 

@@ -48,7 +48,7 @@ pub struct FrameFacts {
 impl FrameFacts {
     /// Facts from a frame's metrics (None: the frame could not be measured).
     pub fn from_metrics(
-        m: Option<&crate::contract::Metrics>,
+        m: Option<&crate::record::Metrics>,
         transparency_loss_mag: Option<f64>,
         registered: Option<bool>,
     ) -> Self {

@@ -10,8 +10,8 @@ use std::path::{Path, PathBuf};
 use rusqlite::{params, Connection, OptionalExtension};
 use serde::Serialize;
 
-use crate::contract::{HeaderFacts, Metrics, StarRecord};
 use crate::measure::Rejected;
+use crate::record::{FrameRecord, FrameStatus, Identity, Metrics, StarRecord};
 
 #[derive(Debug, thiserror::Error)]
 pub enum StoreError {
@@ -38,97 +38,13 @@ pub enum StoreError {
     },
 }
 
-/// What makes a file the same file: a new size or time at the same path is a newer
-/// version of the frame, which replaces the record of the older one.
-#[derive(Debug, Clone, PartialEq, Eq, Hash, serde::Serialize, serde::Deserialize)]
-pub struct Identity {
-    pub path: String,
-    pub size: u64,
-    pub mtime_ns: i64,
-}
-
-impl Identity {
-    /// The identity of the file at `path` now (its symbolic links followed).
-    pub fn of(path: &Path) -> std::io::Result<Self> {
-        Ok(Self::from_metadata(path, &std::fs::metadata(path)?))
-    }
-
-    /// The identity from metadata already read; times before 1970 count negative.
-    pub fn from_metadata(path: &Path, m: &std::fs::Metadata) -> Self {
-        use std::os::unix::fs::MetadataExt;
-        Identity {
-            path: path.to_string_lossy().into_owned(),
-            size: m.len(),
-            mtime_ns: m
-                .mtime()
-                .saturating_mul(1_000_000_000)
-                .saturating_add(m.mtime_nsec()),
-        }
-    }
-
-    /// The modification time, seconds since 1970 (UTC).
-    pub fn mtime_unix(&self) -> f64 {
-        self.mtime_ns as f64 / 1e9
-    }
-}
-
-/// How a frame ended up.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, serde::Deserialize)]
-#[serde(rename_all = "lowercase")]
-pub enum FrameStatus {
-    Ok,
-    Error,
-    /// Not a light frame (dark, flat, bias).
-    Skipped,
-}
-
-impl FrameStatus {
-    fn as_str(self) -> &'static str {
-        match self {
-            FrameStatus::Ok => "ok",
-            FrameStatus::Error => "error",
-            FrameStatus::Skipped => "skipped",
-        }
-    }
-}
-
-/// Everything recorded about one frame.
-#[derive(Debug, Clone, Serialize, serde::Deserialize)]
-pub struct FrameRecord {
-    pub identity: Identity,
-    pub status: FrameStatus,
-    pub error: Option<String>,
-    pub night: Option<String>,
-    /// OBJECT, else the frame's folder name.
-    pub target: Option<String>,
-    pub filter: Option<String>,
-    pub time_unix: Option<f64>,
-    pub header: Option<HeaderFacts>,
-    pub metrics: Option<Metrics>,
-    pub stars: Vec<StarRecord>,
-    pub rejected: Vec<Rejected>,
-    /// The frame's celestial WCS, when it has one.
-    pub wcs: Option<crate::frame::wcs::Wcs>,
-}
-
-impl FrameRecord {
-    /// A record of a file that could not be measured, with the reason.
-    pub fn failed(identity: Identity, reason: &str) -> Self {
-        FrameRecord {
-            identity,
-            status: FrameStatus::Error,
-            error: Some(reason.to_string()),
-            night: None,
-            target: None,
-            filter: None,
-            time_unix: None,
-            header: None,
-            metrics: None,
-            stars: Vec::new(),
-            rejected: Vec::new(),
-            wcs: None,
-        }
-    }
+/// A message in the outbox: formatted bytes (RFC 5322) and the envelope.
+#[derive(Debug, Clone, PartialEq)]
+pub struct OutboxMessage {
+    pub subject: String,
+    pub from: String,
+    pub to: Vec<String>,
+    pub bytes: Vec<u8>,
 }
 
 /// A row for reports and status.
@@ -1124,12 +1040,8 @@ impl Store {
         Ok(out)
     }
 
-    /// Put a composed message in the outbox; returns its id.
-    pub fn enqueue_mail(
-        &self,
-        c: &crate::mail::Composed,
-        now_unix: f64,
-    ) -> Result<i64, StoreError> {
+    /// Put a message in the outbox; returns its id.
+    pub fn enqueue_mail(&self, c: &OutboxMessage, now_unix: f64) -> Result<i64, StoreError> {
         self.conn
             .execute(
                 "INSERT INTO outbox (created_unix, subject, envelope_from, envelope_to, message, next_attempt_unix)
@@ -1141,10 +1053,7 @@ impl Store {
     }
 
     /// Messages due for (another) attempt.
-    pub fn due_mail(
-        &self,
-        now_unix: f64,
-    ) -> Result<Vec<(i64, crate::mail::Composed, i64)>, StoreError> {
+    pub fn due_mail(&self, now_unix: f64) -> Result<Vec<(i64, OutboxMessage, i64)>, StoreError> {
         let mut st = self
             .conn
             .prepare(
@@ -1157,7 +1066,7 @@ impl Store {
                 let to: String = r.get(3)?;
                 Ok((
                     r.get(0)?,
-                    crate::mail::Composed {
+                    OutboxMessage {
                         subject: r.get(1)?,
                         from: r.get(2)?,
                         to: serde_json::from_str(&to).unwrap_or_default(),
@@ -1311,7 +1220,7 @@ mod tests {
             Recorded::Already
         );
         let mut newer = record("/a.fits", 11);
-        newer.stars.push(crate::contract::StarRecord {
+        newer.stars.push(crate::record::StarRecord {
             x: 1.0,
             y: 2.0,
             ..star()
@@ -1402,8 +1311,8 @@ mod tests {
         assert_eq!(s.recorded_versions().unwrap()["/a.fits"].0, 11);
     }
 
-    fn star() -> crate::contract::StarRecord {
-        crate::contract::StarRecord {
+    fn star() -> crate::record::StarRecord {
+        crate::record::StarRecord {
             x: 0.0,
             y: 0.0,
             flux: 1.0,

@@ -34,7 +34,7 @@ pub(super) fn raise_alert(
             )
         });
         match sent {
-            Ok(c) => match store.enqueue_mail(&c, now) {
+            Ok(c) => match crate::outbox::queue(store, c, now) {
                 Ok(_) => {
                     flush_outbox(store, config, now);
                     " (mail queued)"

@@ -3,7 +3,8 @@
 
 use std::path::PathBuf;
 
-use crate::store::{FrameStatus, Store, StoreError};
+use crate::record::FrameStatus;
+use crate::store::{Store, StoreError};
 
 /// What the live verdict needs besides the store.
 #[derive(Debug, Clone, Default)]
@@ -20,7 +21,7 @@ pub struct Judging {
 /// change an earlier frame's verdict: what was logged stays what was decided.
 pub fn judge_in_store(
     store: &Store,
-    record: &crate::store::FrameRecord,
+    record: &crate::record::FrameRecord,
     id: i64,
     judging: &Judging,
 ) -> Result<Option<String>, StoreError> {

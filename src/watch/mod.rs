@@ -32,8 +32,9 @@ use tokio::task::JoinSet;
 
 use crate::config::Config;
 use crate::logging::shown;
-use crate::pipeline::{MeasureOptions, RecordOptions};
-use crate::store::{FrameRecord, FrameStatus, Identity, Recorded, Store, StoreError};
+use crate::pipeline::RecordOptions;
+use crate::record::{FrameRecord, FrameStatus, Identity};
+use crate::store::{Recorded, Store, StoreError};
 pub use judge::{judge_in_store, Judging};
 use settle::{Observation, SettleTracker};
 
@@ -74,30 +75,6 @@ fn observation(id: &Identity) -> Observation {
     Observation {
         size: id.size,
         mtime_ns: id.mtime_ns,
-    }
-}
-
-/// Options derived from the configuration for each frame.
-pub fn record_options(config: &Config) -> RecordOptions {
-    let mut measure = MeasureOptions {
-        focal_length_mm: config.optics.focal_length_mm,
-        pixel_size_um: config.optics.pixel_size_um,
-        ..Default::default()
-    };
-    measure.limits.max_pixels = config.measure.max_pixels;
-    measure.params.detect.sigma = config.measure.detect_sigma;
-    measure.params.gain_e_per_adu = config.optics.gain_e_per_adu;
-    measure.params.saturation_adu = config.optics.saturation_adu;
-    RecordOptions {
-        measure,
-        timezone: config.timezone(),
-        calibration_folders: config
-            .watch
-            .calibration_folders
-            .iter()
-            .map(|s| s.to_lowercase())
-            .collect(),
-        measure_calibration: false,
     }
 }
 
@@ -394,8 +371,8 @@ async fn daemon(
     let filter = crate::walk::FrameFilter::from_config(&config);
     let shared = Arc::new(Shared {
         store: Mutex::new(store),
-        options: record_options(&config),
-        reader: config.measure.reader(),
+        options: RecordOptions::from_config(&config),
+        reader: crate::reader::Reader::from_config(&config.measure),
         judging: Judging {
             rules: config.rule_specs(),
             site: config.site_position(),
