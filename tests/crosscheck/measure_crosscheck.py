@@ -15,7 +15,10 @@ For each scenario:
      their figures next to subwatch's, and subwatch's FWHM and centroid errors
      must be no worse than the best reference plus a stated margin (one check).
   5. A missing file must give status "error" and exit 1 (one check).
-Lines marked [INFO] are reported, never counted.
+A non-zero exit of `subwatch measure` on the good files of a scenario fails a
+check, and so does a reference library that raises (for the per-star astropy
+fit: on any star): a reference that cannot run is a failed check, never a
+skipped one.  Lines marked [INFO] are reported, never counted.
 
 Usage: measure_crosscheck.py PATH/TO/subwatch
 """
@@ -379,6 +382,8 @@ def run_astropy_fit(data: np.ndarray, sat_level: float | None, psf: str, xy_star
     fitter = fitting.TRFLSQFitter()
     EllMoffat = _elliptical_moffat() if psf == "moffat" else None
     xy_out, fw_out, ec_out = [], [], []
+    errors: list[str] = []  # exceptions raised by the fitter, one per star (reported as a failed check)
+    n_fit = 0
     for x1, y1 in xy_start:  # 1-based positions
         cx, cy = int(round(x1 - 1.0)), int(round(y1 - 1.0))
         if cx - half < 0 or cy - half < 0 or cx + half >= d.shape[1] or cy + half >= d.shape[0]:
@@ -399,11 +404,13 @@ def run_astropy_fit(data: np.ndarray, sat_level: float | None, psf: str, xy_star
             sg = fwhm0 / C.GAUSS_FWHM_PER_SIGMA
             m0 = models.Gaussian2D(amplitude=amp, x_mean=x1 - 1 - (cx - half), y_mean=y1 - 1 - (cy - half),
                                    x_stddev=sg, y_stddev=sg, theta=0.0) + models.Const2D(0.0)
+        n_fit += 1
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
             try:
                 m = fitter(m0, xx + half, yy + half, cut, maxiter=200)
-            except Exception:
+            except Exception as exc:
+                errors.append(f"star at ({x1:.1f}, {y1:.1f}): {type(exc).__name__}: {exc}")
                 continue
         if psf == "moffat":
             if not m.beta.value > 1.0:
@@ -422,6 +429,7 @@ def run_astropy_fit(data: np.ndarray, sat_level: float | None, psf: str, xy_star
         ec_out.append(math.sqrt(max(0.0, 1.0 - (small / big) ** 2)))
     return [dict(name=f"astropy {'Moffat' if psf == 'moffat' else 'Gauss'} fit", bkg=float(med), noise=float(std),
                  xy=np.array(xy_out, float).reshape(-1, 2), fwhm=np.array(fw_out), ecc=np.array(ec_out),
+                 fit_errors=errors, n_fit=n_fit,
                  note="elliptical " + ("Moffat (1969)" if psf == "moffat" else "Gaussian")
                       + " fitted per star with astropy TRFLSQFitter at photutils segm positions "
                         "(unsaturated only); FWHM = sqrt(major*minor); bkg/noise = 3-sigma-clipped median/std")]
@@ -472,6 +480,9 @@ def compare_encodings(recs: dict[str, dict]) -> tuple[bool, str]:
 # --------------------------------------------------------------------------
 # main
 # --------------------------------------------------------------------------
+REF_RUNNERS = (run_sep, run_photutils, run_astropy_fit)
+
+
 def run_scenario(binary: str, sc: dict, tmp: str, checks: C.Checks) -> None:
     name = sc["name"]
     print(f"\n=== scenario {name} ===", flush=True)
@@ -479,6 +490,17 @@ def run_scenario(binary: str, sc: dict, tmp: str, checks: C.Checks) -> None:
     frame = os.path.join(tmp, f"{name}.fits")
     tpath = os.path.join(tmp, f"{name}.truth.json")
     encodings = ["rendered", "uint16", "float32", "rice", "gzip"]
+
+    def fail_rest(why: str) -> None:
+        """The scenario cannot go on: every check it has not recorded yet fails."""
+        for enc in encodings:
+            checks.record(f"{name}/{enc}: targets", False, why)
+        checks.record(f"{name}: measure exit 0 on good files", False, why)
+        checks.record(f"{name}: encodings agree", False, why)
+        for runner in REF_RUNNERS:
+            checks.record(f"{name}: reference {runner.__name__} ran", False, why)
+        checks.record(f"{name}: vs references", False, why)
+
     try:
         truth = Truth(C.render(binary, frame, tpath, **opts))
         paths = {"rendered": frame}
@@ -486,10 +508,7 @@ def run_scenario(binary: str, sc: dict, tmp: str, checks: C.Checks) -> None:
         data, _ = C.read_image(frame)
         data = data.astype(np.float64)
     except Exception as exc:  # render or harness failure: every check of this scenario fails
-        for enc in encodings:
-            checks.record(f"{name}/{enc}: targets", False, f"no frame: {exc}")
-        checks.record(f"{name}: encodings agree", False, "no frame")
-        checks.record(f"{name}: vs references", False, "no frame")
+        fail_rest(f"no frame: {exc}")
         return
 
     if (truth.width, truth.height) != (data.shape[1], data.shape[0]):
@@ -510,14 +529,14 @@ def run_scenario(binary: str, sc: dict, tmp: str, checks: C.Checks) -> None:
             raise C.BinaryError(f"{len(records)} JSON lines for {len(order)} files (exit {rc}); stderr: {stderr.strip()[:300]}")
         for enc, path, rec in zip(encodings, order, records):
             recs[enc] = rec
-        if rc != 0:
-            checks.info(name, f"measure exit code {rc} although every file should have been read")
     except Exception as exc:
-        for enc in encodings:
-            checks.record(f"{name}/{enc}: targets", False, f"measure failed: {exc}")
-        checks.record(f"{name}: encodings agree", False, "measure failed")
-        checks.record(f"{name}: vs references", False, "measure failed")
+        fail_rest(f"measure failed: {exc}")
         return
+    # Every file of the scenario is good, so the contract's exit status is 0.
+    bad = [f"{enc}: {r.get('status')} {r.get('error')}" for enc, r in recs.items() if r.get("status") != "ok"]
+    checks.record(f"{name}: measure exit 0 on good files", rc == 0,
+                  f"exit {rc}" + ("" if rc == 0 else f" although every file should have been read; "
+                                  f"records not ok: {bad or 'none'}; stderr: {stderr.strip()[:300]!r}"))
 
     scores = {}
     for enc, path in zip(encodings, order):
@@ -543,7 +562,7 @@ def run_scenario(binary: str, sc: dict, tmp: str, checks: C.Checks) -> None:
     sat_level = 65535.0 if data.max() >= 65535.0 else None
     refs = []
     prev_rows: list[dict] = []
-    for runner in (run_sep, run_photutils, run_astropy_fit):
+    for runner in REF_RUNNERS:
         t0 = time.monotonic()
         try:
             if runner is run_astropy_fit:
@@ -555,10 +574,16 @@ def run_scenario(binary: str, sc: dict, tmp: str, checks: C.Checks) -> None:
             else:
                 rows = runner(data, sat_level)
             prev_rows += list(rows)
-        except Exception as exc:  # a reference failing is reported, never hidden
-            checks.info(name, f"{runner.__name__} raised {type(exc).__name__}: {exc}")
+        except Exception as exc:  # a reference that raises fails its check
+            checks.record(f"{name}: reference {runner.__name__} ran", False,
+                          f"raised {type(exc).__name__}: {exc}")
             continue
-        print(f"    {runner.__name__}: {time.monotonic() - t0:.1f} s", flush=True)
+        fit_errors = [e for r in rows for e in r.get("fit_errors", [])]
+        n_fit = sum(r.get("n_fit", 0) for r in rows)
+        checks.record(f"{name}: reference {runner.__name__} ran", not fit_errors,
+                      f"{time.monotonic() - t0:.1f} s"
+                      + (f"; {len(fit_errors)} of {n_fit} per-star fits raised, first: {fit_errors[0]}" if fit_errors
+                         else (f"; {n_fit} per-star fits, none raised" if any("n_fit" in r for r in rows) else "")))
         for r in rows:
             s = score(truth, r["xy"], r["fwhm"], r["ecc"])
             s["bkg"], s["noise"] = r["bkg"], r["noise"]
