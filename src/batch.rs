@@ -1,137 +1,57 @@
-//! `subwatch night DIR`: every light frame under a folder as one night, through the same
-//! pipeline the daemon uses, then the night analysis and the verdicts, as one document.
-//! An I/O shell around `pipeline`, `night` and `rules`.
+//! `subwatch night DIR`: every light frame under a folder as one night, read as the
+//! daemon reads them (`reader`), judged by the one night model (`night::judge`), as one
+//! document. Also the document of recorded frames, for `report` and the summary.
 
 use std::collections::BTreeMap;
 use std::path::Path;
 
 use crate::contract::{AnomalyRecord, DetectionRecord, NightDocument, NightFrameRecord};
-use crate::measure::RejectKind;
-use crate::night::{analyse, FrameInput, StarInput};
+use crate::night::judge::{judge_night, Site};
 use crate::record::{FrameRecord, FrameStatus, Identity};
-use crate::rules::{judge_group_with, FrameFacts, RuleSpec};
+use crate::rules::RuleSpec;
 use crate::store::{Store, StoreError};
 
-fn frame_input(r: &FrameRecord) -> FrameInput {
-    let m = r.metrics.as_ref();
-    FrameInput {
-        path: r.identity.path.clone(),
-        time_unix: r.time_unix,
-        width: m.map_or(0, |m| m.width),
-        height: m.map_or(0, |m| m.height),
-        fwhm_px: m.and_then(|m| m.fwhm_px),
-        noise_adu: m.map_or(0.0, |m| m.noise_adu),
-        stars: r
-            .stars
-            .iter()
-            .map(|s| StarInput {
-                x: s.x,
-                y: s.y,
-                flux: s.flux,
-                flux_err: s.flux_err,
-                snr: s.snr,
-                fwhm_px: s.fwhm_px,
-                rgb: s.rgb.and_then(|c| Some([c[0]?, c[1]?, c[2]?])),
-                blended: s.blended,
-            })
-            .collect(),
-        sharp: r
-            .rejected
-            .iter()
-            .filter(|x| x.kind == RejectKind::Sharp)
-            .map(|x| (x.x, x.y, x.peak_adu))
-            .collect(),
-        trails: m.map(|m| m.trails.clone()).unwrap_or_default(),
-        extended: r
-            .rejected
-            .iter()
-            .filter(|x| x.kind == RejectKind::Extended)
-            .map(|x| (x.x, x.y))
-            .collect(),
-        wcs: r.wcs.clone(),
-    }
-}
-
-/// Analyse already-recorded frames as one night; `store` (optional) supplies earlier
-/// nights' catalogues and keeps tonight's.
-/// Sky context of a recorded frame: at mid-exposure when the exposure time is known,
-/// the target at the WCS centre when there is one.
-pub fn sky_of(r: &FrameRecord, site: Option<(f64, f64, f64)>) -> Option<crate::sky::FrameSky> {
-    let (lat, lon, _) = site?;
-    let start = r.time_unix?;
-    let half = r.header.as_ref().and_then(|h| h.exposure_s).unwrap_or(0.0) / 2.0;
-    let target =
-        r.wcs.as_ref().zip(r.metrics.as_ref()).map(|(w, m)| {
-            w.pixel_to_sky((m.width as f64 + 1.0) / 2.0, (m.height as f64 + 1.0) / 2.0)
-        });
-    Some(crate::sky::frame_sky(start + half, lat, lon, target))
-}
-
+/// Judge already-recorded frames as one night through the night model, group by group
+/// (target and filter; unreadable frames stay in their group). `store` (optional)
+/// supplies earlier nights' catalogues and keeps tonight's.
 pub fn analyse_records(
     records: &[FrameRecord],
     rules: &[RuleSpec],
-    site: Option<(f64, f64, f64)>,
+    site: Option<Site>,
     mut store: Option<&mut Store>,
 ) -> Result<NightDocument, StoreError> {
     let mut doc = NightDocument {
         frames: Vec::new(),
         anomalies: Vec::new(),
     };
-    // Group by target and filter; unreadable frames form their own group.
-    let mut groups: BTreeMap<(String, String), Vec<usize>> = BTreeMap::new();
-    for (i, r) in records.iter().enumerate() {
-        if r.status == FrameStatus::Skipped {
-            continue;
-        }
+    let mut groups: BTreeMap<(String, String), Vec<&FrameRecord>> = BTreeMap::new();
+    for r in records.iter().filter(|r| r.status != FrameStatus::Skipped) {
         let key = (
             r.target.clone().unwrap_or_default(),
             r.filter.clone().unwrap_or_default(),
         );
-        groups.entry(key).or_default().push(i);
+        groups.entry(key).or_default().push(r);
     }
-    for ((target, filter), idx) in groups {
-        let measured: Vec<usize> = idx
-            .iter()
-            .copied()
-            .filter(|&i| records[i].status == FrameStatus::Ok)
-            .collect();
-        let inputs: Vec<FrameInput> = measured.iter().map(|&i| frame_input(&records[i])).collect();
-        let night_label = majority(measured.iter().filter_map(|&i| records[i].night.clone()));
+    for ((target, filter), frames) in groups {
+        let night_label = majority(
+            frames
+                .iter()
+                .filter(|r| r.status == FrameStatus::Ok)
+                .filter_map(|r| r.night.clone()),
+        );
         let earlier = match (&mut store, &night_label) {
             (Some(s), Some(n)) if !target.is_empty() => s.earlier_catalogs(&target, n)?,
             _ => Vec::new(),
         };
-        let result = analyse(&inputs, &earlier);
-        if let (Some(s), Some(n), Some(limit)) = (&mut store, &night_label, result.limit_mag) {
-            if !target.is_empty() && !result.catalog.is_empty() {
-                s.save_catalog(&target, n, limit, &result.footprint, &result.catalog)?;
+        let judged = judge_night(&frames, &earlier, rules, site);
+        let found = &judged.findings;
+        if let (Some(s), Some(n), Some(limit)) = (&mut store, &night_label, found.limit_mag) {
+            if !target.is_empty() && !found.catalog.is_empty() {
+                s.save_catalog(&target, n, limit, &found.footprint, &found.catalog)?;
             }
         }
-        // Verdicts over the whole group (unreadable frames included).
-        let facts: Vec<FrameFacts> = idx
-            .iter()
-            .map(|&i| {
-                let r = &records[i];
-                let pos = measured.iter().position(|&m| m == i);
-                let fr = pos.map(|p| &result.frames[p]);
-                let metrics = r.metrics.as_ref().filter(|_| r.status == FrameStatus::Ok);
-                let mut facts = FrameFacts::from_metrics(
-                    metrics,
-                    fr.and_then(|f| f.transparency_loss_mag),
-                    fr.map(|f| f.registered),
-                );
-                facts.sun_alt_deg = sky_of(r, site).map(|s| s.sun_alt_deg);
-                facts
-            })
-            .collect();
-        let judged = judge_group_with(&facts, rules);
-        for (k, &i) in idx.iter().enumerate() {
-            let r = &records[i];
-            let fr = measured
-                .iter()
-                .position(|&m| m == i)
-                .map(|p| result.frames[p].clone())
-                .unwrap_or_default();
+        for (r, j) in frames.iter().zip(&judged.frames) {
+            let p = j.placement.as_ref();
             doc.frames.push(NightFrameRecord {
                 path: r.identity.path.clone(),
                 status: if r.status == FrameStatus::Ok {
@@ -141,22 +61,22 @@ pub fn analyse_records(
                 },
                 error: r.error.clone(),
                 metrics: r.metrics.clone(),
-                verdict: judged[k].verdict,
-                reasons: judged[k].reasons.clone(),
-                explanations: judged[k].explanations.clone(),
+                verdict: j.judgement.verdict,
+                reasons: j.judgement.reasons.clone(),
+                explanations: j.judgement.explanations.clone(),
                 night: r.night.clone(),
                 target: r.target.clone(),
                 filter: r.filter.clone(),
                 time_unix: r.time_unix,
                 exposure_s: r.header.as_ref().and_then(|h| h.exposure_s),
-                registered: fr.registered,
-                registration_rms_px: fr.registration_rms_px,
-                registration_transform: fr.transform,
-                sky: sky_of(r, site),
-                transparency_loss_mag: fr.transparency_loss_mag,
+                registered: p.is_some_and(|p| p.registered),
+                registration_rms_px: p.and_then(|p| p.rms_px),
+                registration_transform: p.and_then(|p| p.transform),
+                sky: j.sky,
+                transparency_loss_mag: j.transparency_loss_mag,
             });
         }
-        for a in result.anomalies {
+        for a in &found.anomalies {
             doc.anomalies.push(AnomalyRecord {
                 kind: a.kind,
                 ra_deg: a.ra_deg,
@@ -165,12 +85,12 @@ pub fn analyse_records(
                     .detections
                     .iter()
                     .map(|d| DetectionRecord {
-                        path: inputs[d.frame].path.clone(),
+                        path: frames[judged.readable[d.frame]].identity.path.clone(),
                         x: d.x,
                         y: d.y,
                     })
                     .collect(),
-                detail: a.detail,
+                detail: a.detail.clone(),
                 target: Some(target.clone()).filter(|t| !t.is_empty()),
                 filter: Some(filter.clone()).filter(|t| !t.is_empty()),
             });

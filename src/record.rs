@@ -64,6 +64,15 @@ impl FrameStatus {
             FrameStatus::Skipped => "skipped",
         }
     }
+
+    /// The status a name stands for (anything else reads as an error).
+    pub fn from_name(name: &str) -> Self {
+        match name {
+            "ok" => FrameStatus::Ok,
+            "skipped" => FrameStatus::Skipped,
+            _ => FrameStatus::Error,
+        }
+    }
 }
 
 /// Everything recorded about one frame.

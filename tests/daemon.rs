@@ -10,40 +10,8 @@ use std::path::Path;
 use std::process::Command;
 use std::time::{Duration, Instant};
 
-use common::daemon::{frame_bytes, recorded, site, wait_for, Daemon, Site};
+use common::daemon::{feed_one_by_one, frame_bytes, recorded, site, wait_for, Daemon};
 use subwatch::frame::write::{write_frame, Encoding};
-
-/// Write rendered frames into the capture folder one at a time, as a camera delivers
-/// them, each once the previous ones are judged (so each verdict sees the night so far).
-fn feed_one_by_one(
-    s: &Site,
-    conn: &rusqlite::Connection,
-    frames: &[subwatch::sim::night::NightFrame],
-) {
-    for (k, f) in frames.iter().enumerate() {
-        write_frame(
-            &s.capture.join(&f.name),
-            &f.pixels,
-            Encoding::Unsigned16,
-            &f.keys,
-        )
-        .unwrap();
-        let start = Instant::now();
-        while start.elapsed() < Duration::from_secs(20) {
-            let judged: i64 = conn
-                .query_row(
-                    "SELECT COUNT(*) FROM frames WHERE verdict IS NOT NULL",
-                    [],
-                    |r| r.get(0),
-                )
-                .unwrap_or(0);
-            if judged as usize > k {
-                break;
-            }
-            std::thread::sleep(Duration::from_millis(50));
-        }
-    }
-}
 
 #[test]
 fn slow_writes_renames_bad_files_and_calibration_frames() {

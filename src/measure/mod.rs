@@ -112,6 +112,31 @@ pub enum RejectKind {
     Extended,
 }
 
+impl RejectKind {
+    const ALL: [RejectKind; 5] = [
+        RejectKind::Sharp,
+        RejectKind::Saturated,
+        RejectKind::EdgeClipped,
+        RejectKind::Unfit,
+        RejectKind::Extended,
+    ];
+
+    /// The name used in JSON and in the store.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            RejectKind::Sharp => "sharp",
+            RejectKind::Saturated => "saturated",
+            RejectKind::EdgeClipped => "edge_clipped",
+            RejectKind::Unfit => "unfit",
+            RejectKind::Extended => "extended",
+        }
+    }
+
+    pub fn from_name(name: &str) -> Option<Self> {
+        Self::ALL.into_iter().find(|k| k.as_str() == name)
+    }
+}
+
 #[derive(Debug, Clone, Serialize, serde::Deserialize)]
 pub struct Rejected {
     pub x: f64,

@@ -1,14 +1,26 @@
-//! The night's analysis: register every frame, follow every source, measure each frame's
-//! transparency, and classify what is unusual (see `AnomalyKind`).
+//! What is unusual in a night: follow every source across the frames (placed on the
+//! group's reference by `judge`), and classify what does not behave as a star should
+//! (see `AnomalyKind`); keep tonight's catalogue for later nights.
 
 use serde_json::json;
 
-use super::register::{register, Affine, RegStar};
+use super::judge::Placement;
+use super::register::Affine;
 use super::tracks::{covers, Source, TrackPoint, Tracks};
-use super::{
-    Anomaly, AnomalyKind, CatalogSource, Detection, EarlierNight, FrameInput, FrameResult,
-    NightResult,
-};
+use super::{Anomaly, AnomalyKind, CatalogSource, Detection, EarlierNight, FrameInput};
+
+/// What a night holds besides its verdicts.
+#[derive(Debug, Clone, Default)]
+pub struct Findings {
+    pub anomalies: Vec<Anomaly>,
+    /// Tonight's persistent sources, for comparing later nights.
+    pub catalog: Vec<CatalogSource>,
+    /// Faintest instrumental magnitude reliably detected in the reference frame.
+    pub limit_mag: Option<f64>,
+    /// The reference frame's corners on the sky (RA, Dec degrees), when it has a WCS:
+    /// what tonight could have seen.
+    pub footprint: Vec<(f64, f64)>,
+}
 use crate::measure::stats::{median_f64, MAD_TO_SIGMA};
 
 /// Faintest flux a frame detects reliably: 7 × the median flux-per-SNR of its fainter
@@ -112,12 +124,17 @@ fn distance_to_trail(t: &crate::measure::detect::Trail, x: f64, y: f64) -> f64 {
     (x - (t.x0 + u * dx)).hypot(y - (t.y0 + u * dy))
 }
 
-pub fn analyse(frames: &[FrameInput], earlier: &[EarlierNight]) -> NightResult {
+/// Classify what is unusual in the readable frames of one group, each placed on the
+/// group's reference (`reference` indexes `frames`), with each frame's transparency loss.
+pub fn analyse(
+    frames: &[FrameInput],
+    placements: &[Option<Placement>],
+    transparency_loss: &[Option<f64>],
+    reference: usize,
+    earlier: &[EarlierNight],
+) -> Findings {
     let n = frames.len();
-    let mut result = NightResult {
-        frames: vec![FrameResult::default(); n],
-        ..Default::default()
-    };
+    let mut result = Findings::default();
     if n == 0 {
         return result;
     }
@@ -136,44 +153,10 @@ pub fn analyse(frames: &[FrameInput], earlier: &[EarlierNight]) -> NightResult {
         }
         p
     };
-
-    // Reference: the frame with the most stars.
-    let reference = (0..n).max_by_key(|&i| frames[i].stars.len()).unwrap_or(0);
-    let reg_stars = |f: &FrameInput| -> Vec<RegStar> {
-        f.stars
-            .iter()
-            .map(|s| RegStar {
-                x: s.x,
-                y: s.y,
-                flux: s.flux,
-                snr: s.snr,
-            })
-            .collect()
-    };
-    let ref_stars = reg_stars(&frames[reference]);
-    let mut transforms: Vec<Option<Affine>> = vec![None; n];
-    for i in 0..n {
-        if i == reference {
-            transforms[i] = Some(Affine::IDENTITY);
-            result.frames[i] = FrameResult {
-                registered: true,
-                transform: Some([1.0, 0.0, 0.0, 1.0, 0.0, 0.0]),
-                registration_rms_px: Some(0.0),
-                matched_stars: frames[i].stars.len(),
-                transparency_loss_mag: Some(0.0),
-            };
-            continue;
-        }
-        if let Some(r) = register(&ref_stars, &reg_stars(&frames[i])) {
-            transforms[i] = Some(r.transform);
-            let t = r.transform;
-            result.frames[i].transform =
-                Some([t.a[0][0], t.a[0][1], t.a[1][0], t.a[1][1], t.t[0], t.t[1]]);
-            result.frames[i].registered = true;
-            result.frames[i].registration_rms_px = Some(r.rms_px);
-            result.frames[i].matched_stars = r.matched;
-        }
-    }
+    let transforms: Vec<Option<Affine>> = placements
+        .iter()
+        .map(|p| p.as_ref().and_then(|p| p.affine()))
+        .collect();
 
     let fwhm =
         median_f64(&frames.iter().filter_map(|f| f.fwhm_px).collect::<Vec<_>>()).unwrap_or(3.0);
@@ -196,7 +179,7 @@ pub fn analyse(frames: &[FrameInput], earlier: &[EarlierNight]) -> NightResult {
                     flux_err: s.flux_err,
                     snr: s.snr,
                     fwhm_px: s.fwhm_px,
-                    rgb: s.rgb,
+                    rgb: super::rgb(s),
                     blended: s.blended,
                 }
             })
@@ -222,34 +205,12 @@ pub fn analyse(frames: &[FrameInput], earlier: &[EarlierNight]) -> NightResult {
         })
         .collect();
 
-    // Transparency: the median magnitude difference of bright persistent stars against
-    // the reference frame.
-    for i in 0..n {
-        if i == reference || transforms[i].is_none() {
-            continue;
-        }
-        let diffs: Vec<f64> = sources
-            .iter()
-            .zip(&persistent)
-            .filter(|(_, p)| **p)
-            .filter_map(|(s, _)| {
-                let a = s.in_frame(i)?;
-                let r = s.in_frame(reference)?;
-                (a.snr > 20.0 && r.snr > 20.0 && a.flux > 0.0 && r.flux > 0.0)
-                    .then(|| -2.5 * (a.flux / r.flux).log10())
-            })
-            .collect();
-        if diffs.len() >= 3 {
-            result.frames[i].transparency_loss_mag = median_f64(&diffs);
-        }
-    }
-
     let mut anomalies = Vec::new();
     let limits: Vec<Option<f64>> = frames.iter().map(limiting_flux).collect();
 
     // Trails, as measured.
     for (i, f) in frames.iter().enumerate() {
-        for t in &f.trails {
+        for t in f.trails {
             let mid = Detection {
                 frame: i,
                 x: 0.5 * (t.x0 + t.x1),
@@ -589,9 +550,7 @@ pub fn analyse(frames: &[FrameInput], earlier: &[EarlierNight]) -> NightResult {
             && p.y > margin
             && p.x < f.width as f64 - margin
             && p.y < f.height as f64 - margin
-            && result.frames[p.frame]
-                .transparency_loss_mag
-                .is_none_or(|l| l < 0.5)
+            && transparency_loss[p.frame].is_none_or(|l| l < 0.5)
             // In a soft frame the aperture (2.5 × FWHM) reaches faint neighbours that
             // sharp frames leave out; such frames are not used to judge variability.
             && f.fwhm_px.is_none_or(|w| w <= 1.3 * fwhm)

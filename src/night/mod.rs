@@ -1,8 +1,11 @@
-//! Across the night: registration (`register`), per-source tracks across frames
-//! (`tracks`), and the classification of what is unusual (`classify`). Pure: frame
-//! measurements in, anomalies out. The batch command and the daemon feed it alike.
+//! Across the night: the one judgement of every frame (`judge`: reference, registration,
+//! transparency, verdicts), registration itself (`register`), per-source tracks across
+//! frames (`tracks`), and the classification of what is unusual (`classify`). Pure:
+//! frame records in, judgements and anomalies out. The daemon, `night`, `report` and
+//! the morning summary all come through `judge`.
 
 pub mod classify;
+pub mod judge;
 pub mod register;
 pub mod tracks;
 
@@ -10,38 +13,54 @@ use serde::Serialize;
 
 use crate::frame::wcs::Wcs;
 use crate::measure::detect::Trail;
+use crate::measure::RejectKind;
+use crate::record::{FrameRecord, StarRecord};
 
-/// One star of one frame, FITS pixels.
-#[derive(Debug, Clone, Copy, PartialEq)]
-pub struct StarInput {
-    pub x: f64,
-    pub y: f64,
-    pub flux: f64,
-    pub flux_err: f64,
-    pub snr: f64,
-    pub fwhm_px: f64,
-    pub rgb: Option<[f64; 3]>,
-    /// Deblended from a neighbour: its aperture flux is not its own alone.
-    pub blended: bool,
-}
-
-/// One frame as the night analysis sees it.
+/// One frame as the analysis of what is unusual sees it: a view of its record, with its
+/// rejected detections sorted into sharp ones and extended ones.
 #[derive(Debug, Clone)]
-pub struct FrameInput {
-    pub path: String,
+pub struct FrameInput<'a> {
+    pub path: &'a str,
     pub time_unix: Option<f64>,
     pub width: usize,
     pub height: usize,
     pub fwhm_px: Option<f64>,
     pub noise_adu: f64,
-    pub stars: Vec<StarInput>,
+    pub stars: &'a [StarRecord],
     /// Detections sharper than any PSF (hot pixels, cosmic rays): FITS x, y and the
     /// peak above the sky in ADU.
     pub sharp: Vec<(f64, f64, f64)>,
-    pub trails: Vec<Trail>,
+    pub trails: &'a [Trail],
     /// Detections set aside as wider than the stars (galaxies, blends), FITS pixels.
     pub extended: Vec<(f64, f64)>,
-    pub wcs: Option<Wcs>,
+    pub wcs: Option<&'a Wcs>,
+}
+
+impl<'a> FrameInput<'a> {
+    pub fn of(r: &'a FrameRecord) -> Self {
+        let m = r.metrics.as_ref();
+        let of_kind = |kind: RejectKind| r.rejected.iter().filter(move |x| x.kind == kind);
+        FrameInput {
+            path: &r.identity.path,
+            time_unix: r.time_unix,
+            width: m.map_or(0, |m| m.width),
+            height: m.map_or(0, |m| m.height),
+            fwhm_px: m.and_then(|m| m.fwhm_px),
+            noise_adu: m.map_or(0.0, |m| m.noise_adu),
+            stars: &r.stars,
+            sharp: of_kind(RejectKind::Sharp)
+                .map(|x| (x.x, x.y, x.peak_adu))
+                .collect(),
+            trails: m.map_or(&[], |m| &m.trails),
+            extended: of_kind(RejectKind::Extended).map(|x| (x.x, x.y)).collect(),
+            wcs: r.wcs.as_ref(),
+        }
+    }
+}
+
+/// A star's colour as three fluxes, when all three were measured.
+pub fn rgb(s: &StarRecord) -> Option<[f64; 3]> {
+    s.rgb.and_then(|c| Some([c[0]?, c[1]?, c[2]?]))
 }
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, PartialOrd, Ord)]
@@ -109,32 +128,6 @@ pub struct Anomaly {
     pub detail: serde_json::Value,
 }
 
-/// Per-frame results of the analysis.
-#[derive(Debug, Clone, Default, Serialize)]
-pub struct FrameResult {
-    pub registered: bool,
-    /// Frame → reference-frame transform [a00, a01, a10, a11, t0, t1] (FITS pixels).
-    pub transform: Option<[f64; 6]>,
-    pub registration_rms_px: Option<f64>,
-    pub matched_stars: usize,
-    /// Extinction relative to the reference frame from matched stars, magnitudes
-    /// (positive: less light came through).
-    pub transparency_loss_mag: Option<f64>,
-}
-
-#[derive(Debug, Clone, Default)]
-pub struct NightResult {
-    pub frames: Vec<FrameResult>,
-    pub anomalies: Vec<Anomaly>,
-    /// Tonight's persistent sources, for comparing later nights.
-    pub catalog: Vec<CatalogSource>,
-    /// Faintest instrumental magnitude reliably detected in the reference frame.
-    pub limit_mag: Option<f64>,
-    /// The reference frame's corners on the sky (RA, Dec degrees), when it has a WCS:
-    /// what tonight could have seen.
-    pub footprint: Vec<(f64, f64)>,
-}
-
 /// A persistent source of a night, for the catalogue kept between nights.
 #[derive(Debug, Clone, Copy, PartialEq, Serialize)]
 pub struct CatalogSource {
@@ -183,50 +176,4 @@ pub fn inside_footprint(poly: &[(f64, f64)], ra: f64, dec: f64, margin_deg: f64)
         min_edge = min_edge.min((p.0 - (a.0 + u * dx)).hypot(p.1 - (a.1 + u * dy)));
     }
     inside && min_edge >= margin_deg
-}
-
-/// Transparency of one frame against a reference frame, for live use: register the
-/// stars, then the median magnitude difference of stars with SNR > 20 in both. Returns
-/// (loss in magnitudes, registration RMS in pixels); `None` when registration fails.
-/// Stars are (x, y, flux, snr). Its cost does not depend on how many frames came before.
-pub fn transparency_against(
-    reference: &[(f64, f64, f64, f64)],
-    frame: &[(f64, f64, f64, f64)],
-) -> Option<(Option<f64>, f64)> {
-    use register::RegStar;
-    let to = |v: &[(f64, f64, f64, f64)]| -> Vec<RegStar> {
-        v.iter()
-            .map(|s| RegStar {
-                x: s.0,
-                y: s.1,
-                flux: s.2,
-                snr: s.3,
-            })
-            .collect()
-    };
-    let (r, f) = (to(reference), to(frame));
-    let reg = register::register(&r, &f)?;
-    let t = reg.transform;
-    let mut diffs = Vec::new();
-    for s in f.iter().filter(|s| s.snr > 20.0 && s.flux > 0.0) {
-        let (x, y) = t.apply((s.x, s.y));
-        if let Some(m) = r
-            .iter()
-            .filter(|q| q.snr > 20.0 && q.flux > 0.0)
-            .find(|q| (q.x - x).hypot(q.y - y) < 1.5)
-        {
-            diffs.push(-2.5 * (s.flux / m.flux).log10());
-        }
-    }
-    let loss = if diffs.len() >= 3 {
-        crate::measure::stats::median_f64(&diffs)
-    } else {
-        None
-    };
-    Some((loss, reg.rms_px))
-}
-
-/// Analyse one target-and-filter group of frames (any order; time order is used).
-pub fn analyse(frames: &[FrameInput], earlier: &[EarlierNight]) -> NightResult {
-    classify::analyse(frames, earlier)
 }

@@ -212,24 +212,34 @@ fn match_all(
         .collect()
 }
 
-/// A star for registration: FITS position, flux (for choosing the brightest) and SNR
-/// (a centroid's error goes as 1/SNR, so the fit weighs each match by
-/// 1 / (1/SNR_frame² + 1/SNR_reference²)).
-#[derive(Debug, Clone, Copy, PartialEq)]
-pub struct RegStar {
-    pub x: f64,
-    pub y: f64,
-    pub flux: f64,
-    pub snr: f64,
+/// What registration needs of a star: its FITS position, its flux (for choosing the
+/// brightest) and its SNR (a centroid's error goes as 1/SNR, so the fit weighs each match
+/// by 1 / (1/SNR_frame² + 1/SNR_reference²)).
+pub trait Placed {
+    fn xy(&self) -> (f64, f64);
+    fn flux(&self) -> f64;
+    fn snr(&self) -> f64;
+}
+
+impl Placed for crate::record::StarRecord {
+    fn xy(&self) -> (f64, f64) {
+        (self.x, self.y)
+    }
+    fn flux(&self) -> f64 {
+        self.flux
+    }
+    fn snr(&self) -> f64 {
+        self.snr
+    }
 }
 
 /// Register `frame` stars onto `reference` stars. `None` when no consistent transform is
 /// found (clouds, another target).
-pub fn register(reference: &[RegStar], frame: &[RegStar]) -> Option<Registration> {
-    let brightest = |stars: &[RegStar], n: usize| -> Vec<(f64, f64)> {
-        let mut s: Vec<&RegStar> = stars.iter().collect();
-        s.sort_by(|a, b| b.flux.total_cmp(&a.flux));
-        s.into_iter().take(n).map(|p| (p.x, p.y)).collect()
+pub fn register<S: Placed>(reference: &[S], frame: &[S]) -> Option<Registration> {
+    let brightest = |stars: &[S], n: usize| -> Vec<(f64, f64)> {
+        let mut s: Vec<&S> = stars.iter().collect();
+        s.sort_by(|a, b| b.flux().total_cmp(&a.flux()));
+        s.into_iter().take(n).map(|p| p.xy()).collect()
     };
     let rb = brightest(reference, 40);
     let fb = brightest(frame, 40);
@@ -297,10 +307,10 @@ pub fn register(reference: &[RegStar], frame: &[RegStar]) -> Option<Registration
         return None;
     }
     // Refine on all stars: match, fit affine, repeat with a tighter tolerance.
-    let fp: Vec<(f64, f64)> = frame.iter().map(|p| (p.x, p.y)).collect();
-    let rp: Vec<(f64, f64)> = reference.iter().map(|p| (p.x, p.y)).collect();
+    let fp: Vec<(f64, f64)> = frame.iter().map(|p| p.xy()).collect();
+    let rp: Vec<(f64, f64)> = reference.iter().map(|p| p.xy()).collect();
     let weight = |i: usize, j: usize| {
-        let (a, b) = (frame[i].snr.max(1.0), reference[j].snr.max(1.0));
+        let (a, b) = (frame[i].snr().max(1.0), reference[j].snr().max(1.0));
         1.0 / (1.0 / (a * a) + 1.0 / (b * b))
     };
     let mut matched = Vec::new();
@@ -332,6 +342,27 @@ pub fn register(reference: &[RegStar], frame: &[RegStar]) -> Option<Registration
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// A bare star for these tests.
+    #[derive(Debug, Clone, Copy)]
+    struct RegStar {
+        x: f64,
+        y: f64,
+        flux: f64,
+        snr: f64,
+    }
+
+    impl Placed for RegStar {
+        fn xy(&self) -> (f64, f64) {
+            (self.x, self.y)
+        }
+        fn flux(&self) -> f64 {
+            self.flux
+        }
+        fn snr(&self) -> f64 {
+            self.snr
+        }
+    }
 
     fn star(x: f64, y: f64, flux: f64) -> RegStar {
         RegStar {

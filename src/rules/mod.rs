@@ -45,31 +45,6 @@ pub struct FrameFacts {
     pub sun_alt_deg: Option<f64>,
 }
 
-impl FrameFacts {
-    /// Facts from a frame's metrics (None: the frame could not be measured).
-    pub fn from_metrics(
-        m: Option<&crate::record::Metrics>,
-        transparency_loss_mag: Option<f64>,
-        registered: Option<bool>,
-    ) -> Self {
-        FrameFacts {
-            readable: m.is_some(),
-            fwhm_px: m.and_then(|m| m.fwhm_px),
-            eccentricity: m.and_then(|m| m.eccentricity),
-            background_adu: m.map(|m| m.background_adu),
-            noise_adu: m.map(|m| m.noise_adu),
-            star_count: m.map(|m| m.star_count),
-            trails: m.map_or(0, |m| m.trails.len()),
-            transparency_loss_mag,
-            registered,
-            fwhm_arcsec: m.and_then(|m| m.fwhm_arcsec),
-            snr_median: m.and_then(|m| m.snr_median),
-            hfr_px: m.and_then(|m| m.hfr_px),
-            sun_alt_deg: None,
-        }
-    }
-}
-
 /// A per-frame quantity a rule can test.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, Serialize)]
 #[serde(rename_all = "snake_case")]

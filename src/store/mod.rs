@@ -11,7 +11,8 @@ use rusqlite::{params, Connection, OptionalExtension};
 use serde::Serialize;
 
 use crate::measure::Rejected;
-use crate::record::{FrameRecord, FrameStatus, Identity, Metrics, StarRecord};
+use crate::night::judge::Placement;
+use crate::record::{FrameRecord, FrameStatus, Identity, StarRecord};
 
 #[derive(Debug, thiserror::Error)]
 pub enum StoreError {
@@ -72,17 +73,6 @@ pub struct GroupKey {
     pub skipped: bool,
 }
 
-/// One frame of a night-target-filter group, for live verdicts.
-#[derive(Debug, Clone)]
-pub struct GroupFrame {
-    pub id: i64,
-    pub status: String,
-    pub metrics: Option<Metrics>,
-    pub transparency_loss_mag: Option<f64>,
-    pub registration_rms_px: Option<f64>,
-    pub time_unix: Option<f64>,
-}
-
 /// A group's target and filter (either may be unknown).
 pub type TargetFilter = (Option<String>, Option<String>);
 
@@ -99,7 +89,7 @@ pub struct NightCounts {
     pub last_recorded_unix: Option<f64>,
 }
 
-pub const SCHEMA_VERSION: i64 = 5;
+pub const SCHEMA_VERSION: i64 = 6;
 
 const MIGRATIONS: &[&str] = &[
     // 1: frames, their stars and rejected detections, and a key-value table.
@@ -190,6 +180,11 @@ const MIGRATIONS: &[&str] = &[
         started_unix REAL NOT NULL,
         interruptions INTEGER NOT NULL DEFAULT 0
      );",
+    // 6: each frame's placement on its group's reference (the night model's first step,
+    // kept so a live verdict registers only the new frame), and the verdict it got live.
+    "ALTER TABLE frames ADD COLUMN placement_json TEXT;
+     ALTER TABLE frames ADD COLUMN live_verdict TEXT;
+     ALTER TABLE frames ADD COLUMN live_reasons_json TEXT;",
 ];
 
 /// What recording a frame did.
@@ -506,11 +501,7 @@ impl Store {
                 .prepare_cached("INSERT INTO rejected (frame_id, x, y, kind, peak_adu) VALUES (?1, ?2, ?3, ?4, ?5)")
                 .map_err(err)?;
             for r in &f.rejected {
-                let kind = serde_json::to_value(r.kind)
-                    .ok()
-                    .and_then(|v| v.as_str().map(String::from))
-                    .unwrap_or_default();
-                rj.execute(params![frame_id, r.x, r.y, kind, r.peak_adu])
+                rj.execute(params![frame_id, r.x, r.y, r.kind.as_str(), r.peak_adu])
                     .map_err(err)?;
             }
         }
@@ -595,25 +586,51 @@ impl Store {
         rows.collect::<Result<_, _>>().map_err(|e| self.err(e))
     }
 
-    /// Everything recorded for one night, rebuilt as records for the night analysis.
-    /// Star fields the store does not keep (half-flux radius, axes, angle, PSF model)
-    /// come back as their simplest stand-ins.
+    /// Everything recorded for one night, rebuilt as records for the night analysis,
+    /// stars and rejected detections included.
     pub fn night_records(&self, night: &str) -> Result<Vec<FrameRecord>, StoreError> {
+        let rows = self.frame_rows("WHERE night = ?1", params![night])?;
+        let mut out = Vec::with_capacity(rows.len());
+        for (id, mut rec, _) in rows {
+            rec.stars = self.frame_star_records(id)?;
+            rec.rejected = self.frame_rejected(id)?;
+            out.push(rec);
+        }
+        Ok(out)
+    }
+
+    /// The frames of one night, target and filter recorded so far, without their stars
+    /// (for the live verdict): (id, record, placement on the group's reference).
+    pub fn group_records(
+        &self,
+        night: &str,
+        target: Option<&str>,
+        filter: Option<&str>,
+    ) -> Result<Vec<(i64, FrameRecord, Option<Placement>)>, StoreError> {
+        self.frame_rows(
+            "WHERE night = ?1 AND target IS ?2 AND filter IS ?3 AND status != 'skipped'",
+            params![night, target, filter],
+        )
+    }
+
+    /// Frame rows as records (stars and rejected detections left empty), in time order.
+    fn frame_rows(
+        &self,
+        filter: &str,
+        values: impl rusqlite::Params,
+    ) -> Result<Vec<(i64, FrameRecord, Option<Placement>)>, StoreError> {
         let mut st = self
             .conn
-            .prepare(
+            .prepare(&format!(
                 "SELECT id, path, size, mtime_ns, status, error, night, target, filter, time_unix,
-                        metrics_json, wcs_json, header_json
-                 FROM frames WHERE night = ?1 ORDER BY COALESCE(time_unix, recorded_at), id",
-            )
+                        metrics_json, wcs_json, header_json, placement_json
+                 FROM frames {filter} ORDER BY COALESCE(time_unix, recorded_at), id"
+            ))
             .map_err(|e| self.err(e))?;
-        type Row = (i64, FrameRecord);
-        let rows: Vec<Row> = st
-            .query_map(params![night], |r| {
+        let rows = st
+            .query_map(values, |r| {
                 let status: String = r.get(4)?;
-                let metrics: Option<String> = r.get(10)?;
-                let wcs: Option<String> = r.get(11)?;
-                let header: Option<String> = r.get(12)?;
+                let json = |k: usize| -> rusqlite::Result<Option<String>> { r.get(k) };
                 Ok((
                     r.get(0)?,
                     FrameRecord {
@@ -622,28 +639,28 @@ impl Store {
                             size: r.get::<_, i64>(2)? as u64,
                             mtime_ns: r.get(3)?,
                         },
-                        status: match status.as_str() {
-                            "ok" => FrameStatus::Ok,
-                            "skipped" => FrameStatus::Skipped,
-                            _ => FrameStatus::Error,
-                        },
+                        status: FrameStatus::from_name(&status),
                         error: r.get(5)?,
                         night: r.get(6)?,
                         target: r.get(7)?,
                         filter: r.get(8)?,
                         time_unix: r.get(9)?,
-                        header: header.and_then(|h| serde_json::from_str(&h).ok()),
-                        metrics: metrics.and_then(|m| serde_json::from_str(&m).ok()),
+                        header: json(12)?.and_then(|h| serde_json::from_str(&h).ok()),
+                        metrics: json(10)?.and_then(|m| serde_json::from_str(&m).ok()),
                         stars: Vec::new(),
                         rejected: Vec::new(),
-                        wcs: wcs.and_then(|w| serde_json::from_str(&w).ok()),
+                        wcs: json(11)?.and_then(|w| serde_json::from_str(&w).ok()),
                     },
+                    json(13)?.and_then(|p| serde_json::from_str(&p).ok()),
                 ))
             })
-            .map_err(|e| self.err(e))?
-            .collect::<Result<_, _>>()
             .map_err(|e| self.err(e))?;
-        let mut out = Vec::with_capacity(rows.len());
+        rows.collect::<Result<_, _>>().map_err(|e| self.err(e))
+    }
+
+    /// The stars of one frame. Star fields the store does not keep (half-flux radius,
+    /// axes, angle, PSF model) come back as their simplest stand-ins.
+    pub fn frame_star_records(&self, id: i64) -> Result<Vec<StarRecord>, StoreError> {
         let mut stars = self
             .conn
             .prepare_cached(
@@ -651,58 +668,55 @@ impl Store {
                  FROM stars WHERE frame_id = ?1",
             )
             .map_err(|e| self.err(e))?;
+        let rows = stars
+            .query_map(params![id], |r| {
+                let flux: f64 = r.get::<_, Option<f64>>(2)?.unwrap_or(0.0);
+                let fwhm: f64 = r.get::<_, Option<f64>>(3)?.unwrap_or(f64::NAN);
+                let rgb: [Option<f64>; 3] = [r.get(8)?, r.get(9)?, r.get(10)?];
+                Ok(StarRecord {
+                    x: r.get(0)?,
+                    y: r.get(1)?,
+                    flux,
+                    fwhm_px: fwhm,
+                    eccentricity: r.get::<_, Option<f64>>(4)?.unwrap_or(f64::NAN),
+                    snr: r.get::<_, Option<f64>>(5)?.unwrap_or(0.0),
+                    flux_err: r.get::<_, Option<f64>>(11)?.unwrap_or(f64::NAN),
+                    hfr_px: None,
+                    fwhm_major_px: fwhm,
+                    fwhm_minor_px: fwhm,
+                    angle_deg: 0.0,
+                    psf_flux: flux,
+                    psf_model: crate::measure::psf::PsfModel::Gaussian,
+                    moffat_beta: None,
+                    peak_adu: f64::NAN,
+                    blended: r.get::<_, Option<i64>>(12)?.unwrap_or(0) != 0,
+                    ra_deg: r.get(6)?,
+                    dec_deg: r.get(7)?,
+                    rgb: rgb.iter().any(|c| c.is_some()).then_some(rgb),
+                })
+            })
+            .map_err(|e| self.err(e))?;
+        rows.collect::<Result<_, _>>().map_err(|e| self.err(e))
+    }
+
+    fn frame_rejected(&self, id: i64) -> Result<Vec<Rejected>, StoreError> {
         let mut rejected = self
             .conn
             .prepare_cached("SELECT x, y, kind, peak_adu FROM rejected WHERE frame_id = ?1")
             .map_err(|e| self.err(e))?;
-        for (id, mut rec) in rows {
-            rec.stars = stars
-                .query_map(params![id], |r| {
-                    let flux: f64 = r.get::<_, Option<f64>>(2)?.unwrap_or(0.0);
-                    let fwhm: f64 = r.get::<_, Option<f64>>(3)?.unwrap_or(f64::NAN);
-                    let rgb: [Option<f64>; 3] = [r.get(8)?, r.get(9)?, r.get(10)?];
-                    Ok(StarRecord {
-                        x: r.get(0)?,
-                        y: r.get(1)?,
-                        flux,
-                        fwhm_px: fwhm,
-                        eccentricity: r.get::<_, Option<f64>>(4)?.unwrap_or(f64::NAN),
-                        snr: r.get::<_, Option<f64>>(5)?.unwrap_or(0.0),
-                        flux_err: r.get::<_, Option<f64>>(11)?.unwrap_or(f64::NAN),
-                        hfr_px: None,
-                        fwhm_major_px: fwhm,
-                        fwhm_minor_px: fwhm,
-                        angle_deg: 0.0,
-                        psf_flux: flux,
-                        psf_model: crate::measure::psf::PsfModel::Gaussian,
-                        moffat_beta: None,
-                        peak_adu: f64::NAN,
-                        blended: r.get::<_, Option<i64>>(12)?.unwrap_or(0) != 0,
-                        ra_deg: r.get(6)?,
-                        dec_deg: r.get(7)?,
-                        rgb: rgb.iter().any(|c| c.is_some()).then_some(rgb),
-                    })
+        let rows = rejected
+            .query_map(params![id], |r| {
+                let kind: String = r.get(2)?;
+                Ok(Rejected {
+                    x: r.get(0)?,
+                    y: r.get(1)?,
+                    kind: crate::measure::RejectKind::from_name(&kind)
+                        .unwrap_or(crate::measure::RejectKind::Unfit),
+                    peak_adu: r.get::<_, Option<f64>>(3)?.unwrap_or(0.0),
                 })
-                .map_err(|e| self.err(e))?
-                .collect::<Result<_, _>>()
-                .map_err(|e| self.err(e))?;
-            rec.rejected = rejected
-                .query_map(params![id], |r| {
-                    let kind: String = r.get(2)?;
-                    Ok(Rejected {
-                        x: r.get(0)?,
-                        y: r.get(1)?,
-                        kind: serde_json::from_value(serde_json::Value::String(kind))
-                            .unwrap_or(crate::measure::RejectKind::Unfit),
-                        peak_adu: r.get::<_, Option<f64>>(3)?.unwrap_or(0.0),
-                    })
-                })
-                .map_err(|e| self.err(e))?
-                .collect::<Result<_, _>>()
-                .map_err(|e| self.err(e))?;
-            out.push(rec);
-        }
-        Ok(out)
+            })
+            .map_err(|e| self.err(e))?;
+        rows.collect::<Result<_, _>>().map_err(|e| self.err(e))
     }
 
     /// Frames of one night, in time order.
@@ -728,38 +742,6 @@ impl Store {
                     time_unix: r.get(7)?,
                     metrics: metrics.and_then(|m| serde_json::from_str(&m).ok()),
                     recorded_at: r.get(9)?,
-                })
-            })
-            .map_err(|e| self.err(e))?;
-        rows.collect::<Result<_, _>>().map_err(|e| self.err(e))
-    }
-
-    /// Metrics of the frames of one night, target and filter recorded so far, in the
-    /// order they were recorded: (id, status, metrics).
-    pub fn group_metrics(
-        &self,
-        night: &str,
-        target: Option<&str>,
-        filter: Option<&str>,
-    ) -> Result<Vec<GroupFrame>, StoreError> {
-        let mut st = self
-            .conn
-            .prepare(
-                "SELECT id, status, metrics_json, transparency_loss_mag, registration_rms_px, time_unix FROM frames
-                 WHERE night = ?1 AND target IS ?2 AND filter IS ?3 AND status != 'skipped'
-                 ORDER BY id",
-            )
-            .map_err(|e| self.err(e))?;
-        let rows = st
-            .query_map(params![night, target, filter], |r| {
-                let m: Option<String> = r.get(2)?;
-                Ok(GroupFrame {
-                    id: r.get(0)?,
-                    status: r.get(1)?,
-                    metrics: m.and_then(|m| serde_json::from_str(&m).ok()),
-                    transparency_loss_mag: r.get(3)?,
-                    registration_rms_px: r.get(4)?,
-                    time_unix: r.get(5)?,
                 })
             })
             .map_err(|e| self.err(e))?;
@@ -793,38 +775,6 @@ impl Store {
         rows.collect::<Result<_, _>>().map_err(|e| self.err(e))
     }
 
-    /// The stars of one frame: (x, y, flux, snr).
-    pub fn frame_stars(&self, id: i64) -> Result<Vec<(f64, f64, f64, f64)>, StoreError> {
-        let mut st = self
-            .conn
-            .prepare_cached("SELECT x, y, flux, snr FROM stars WHERE frame_id = ?1")
-            .map_err(|e| self.err(e))?;
-        let rows = st
-            .query_map(params![id], |r| {
-                Ok((
-                    r.get(0)?,
-                    r.get(1)?,
-                    r.get::<_, Option<f64>>(2)?.unwrap_or(0.0),
-                    r.get::<_, Option<f64>>(3)?.unwrap_or(0.0),
-                ))
-            })
-            .map_err(|e| self.err(e))?;
-        rows.collect::<Result<_, _>>().map_err(|e| self.err(e))
-    }
-
-    /// Record what registration against the night's reference frame found.
-    pub fn set_registration(
-        &self,
-        id: i64,
-        transparency_loss_mag: Option<f64>,
-        rms_px: Option<f64>,
-    ) -> Result<(), StoreError> {
-        self.run(
-            "UPDATE frames SET transparency_loss_mag = ?2, registration_rms_px = ?3 WHERE id = ?1",
-            params![id, transparency_loss_mag, rms_px],
-        )
-    }
-
     /// A recorded frame's file moved (the rejected-frames action). A stale record of a
     /// file that was once at the new path (and is not there now) gives way.
     pub fn set_path(&mut self, id: i64, path: &str) -> Result<(), StoreError> {
@@ -845,6 +795,31 @@ impl Store {
         )
         .map_err(err)?;
         tx.commit().map_err(err)
+    }
+
+    /// Record where a frame sits on its group's reference frame.
+    pub fn set_placement(&self, id: i64, p: &Placement) -> Result<(), StoreError> {
+        self.run(
+            "UPDATE frames SET placement_json = ?2, registration_rms_px = ?3 WHERE id = ?1",
+            params![id, serde_json::to_string(p).ok(), p.rms_px],
+        )
+    }
+
+    /// Record the verdict a frame got when it landed: it stays as its live verdict, and is
+    /// its verdict until the night is judged again.
+    pub fn set_live_verdict(
+        &self,
+        id: i64,
+        verdict: &str,
+        reasons: &[String],
+        transparency_loss_mag: Option<f64>,
+    ) -> Result<(), StoreError> {
+        let reasons = serde_json::to_string(reasons).unwrap_or_default();
+        self.run(
+            "UPDATE frames SET verdict = ?2, reasons_json = ?3, live_verdict = ?2,
+                live_reasons_json = ?3, transparency_loss_mag = ?4 WHERE id = ?1",
+            params![id, verdict, reasons, transparency_loss_mag],
+        )
     }
 
     /// Record a frame's verdict and reasons.
@@ -1232,7 +1207,7 @@ mod tests {
         assert_eq!(earlier.filter.as_deref(), Some("L"));
         assert_eq!(s.night_counts("2026-03-14").unwrap().frames, 1);
         // The earlier version's stars and verdict went with its record.
-        assert_eq!(s.frame_stars(id).unwrap().len(), 1);
+        assert_eq!(s.frame_star_records(id).unwrap().len(), 1);
         assert_eq!(s.frames_without_verdict().unwrap().len(), 1);
         // Reopening migrates nothing and keeps the row.
         drop(s);

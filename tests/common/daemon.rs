@@ -131,3 +131,35 @@ pub fn wait_for(db: &Path, count: usize, limit: Duration) -> Vec<(String, String
         std::thread::sleep(Duration::from_millis(100));
     }
 }
+
+/// Write rendered frames into the capture folder one at a time, as a camera delivers
+/// them, each once the previous ones are judged (so each verdict sees the night so far).
+pub fn feed_one_by_one(
+    s: &Site,
+    conn: &rusqlite::Connection,
+    frames: &[subwatch::sim::night::NightFrame],
+) {
+    for (k, f) in frames.iter().enumerate() {
+        write_frame(
+            &s.capture.join(&f.name),
+            &f.pixels,
+            Encoding::Unsigned16,
+            &f.keys,
+        )
+        .unwrap();
+        let start = Instant::now();
+        while start.elapsed() < Duration::from_secs(20) {
+            let judged: i64 = conn
+                .query_row(
+                    "SELECT COUNT(*) FROM frames WHERE verdict IS NOT NULL",
+                    [],
+                    |r| r.get(0),
+                )
+                .unwrap_or(0);
+            if judged as usize > k {
+                break;
+            }
+            std::thread::sleep(Duration::from_millis(50));
+        }
+    }
+}
