@@ -105,6 +105,11 @@ pub fn analyse_records(
     Ok(doc)
 }
 
+/// The night a document is mostly about (the label most of its frames carry).
+pub fn night_of(doc: &NightDocument) -> Option<String> {
+    majority(doc.frames.iter().filter_map(|f| f.night.clone()))
+}
+
 fn majority(labels: impl Iterator<Item = String>) -> Option<String> {
     let mut counts: BTreeMap<String, usize> = BTreeMap::new();
     for l in labels {

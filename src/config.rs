@@ -31,6 +31,9 @@ pub struct WatchConfig {
     pub rescan_seconds: f64,
     /// At most this many frames wait for a worker; more are picked up by the next rescan.
     pub queue_limit: usize,
+    /// How often the daemon checks for frames that stopped, low disk, anomalies worth an
+    /// alert, the summary's time and the outbox.
+    pub checks_seconds: f64,
 }
 
 impl Default for WatchConfig {
@@ -59,6 +62,7 @@ impl Default for WatchConfig {
             workers: 0,
             rescan_seconds: 300.0,
             queue_limit: 2000,
+            checks_seconds: 60.0,
         }
     }
 }
@@ -609,6 +613,13 @@ pub fn parse(text: &str, base: &Path) -> Result<Config, Vec<ConfigProblem>> {
             (1, 1_000_000),
             "a whole number from 1 to 1000000",
         ) as usize,
+        checks_seconds: r.number(
+            "watch",
+            "checks_seconds",
+            d.watch.checks_seconds,
+            (1.0, 3600.0),
+            &secs("from 1 to 3600"),
+        ),
     };
     let store = StoreConfig {
         path: r

@@ -7,6 +7,7 @@
 pub mod actions;
 pub mod batch;
 pub mod buffer;
+pub mod clock;
 pub mod config;
 pub mod contract;
 pub mod demo;

@@ -325,11 +325,16 @@ fn run(cli: Cli) -> Result<ExitCode> {
         Command::Outbox { config, now } => {
             let cfg = subwatch::config::load(&config)?;
             let store = subwatch::store::Store::open(&cfg.store.path)?;
-            let clock = std::time::SystemTime::now()
-                .duration_since(std::time::UNIX_EPOCH)
-                .map_or(0.0, |d| d.as_secs_f64());
-            let due = if now { f64::MAX } else { clock };
-            let r = subwatch::morning::flush_at(&store, &cfg, due, clock)?;
+            let r = subwatch::morning::flush_outbox(
+                &store,
+                &cfg,
+                subwatch::clock::now_unix(),
+                if now {
+                    subwatch::outbox::Due::Now
+                } else {
+                    subwatch::outbox::Due::AsScheduled
+                },
+            )?;
             println!(
                 "sent {}, written {}, failed {}",
                 r.sent,
@@ -464,29 +469,13 @@ fn render_night_command(
     frames: Option<usize>,
 ) -> Result<ExitCode> {
     use subwatch::sim::night::{render_night, NightPlan};
-    let mut plan = NightPlan::full(seed);
-    if second_night {
-        // (Twelve frames: the flip of the full plan, at frame 20, never comes.)
-        plan = NightPlan {
-            seed: seed + 1000,
-            start: "2026-03-15T20:40:00".into(),
-            new_source: true,
-            frames: 12,
-            ..plan.quiet()
-        };
-    }
-    if colour {
-        plan = NightPlan {
-            object: "Kestrel Field B".into(),
-            center_deg: (201.3, -12.4),
-            field_seed: 91,
-            bayer: BayerPattern::parse("RGGB"),
-            red_star: true,
-            frames: 10,
-            start: "2026-03-15T01:00:00".into(),
-            ..plan.quiet()
-        };
-    }
+    let mut plan = if colour {
+        NightPlan::colour(seed)
+    } else if second_night {
+        NightPlan::second_night(seed)
+    } else {
+        NightPlan::full(seed)
+    };
     if let Some(n) = frames {
         plan.frames = n;
     }
@@ -556,10 +545,7 @@ fn demo_command(out: &std::path::Path) -> Result<ExitCode> {
     );
     let mut kinds: std::collections::BTreeMap<String, usize> = Default::default();
     for a in &doc.anomalies {
-        let k = serde_json::to_value(a.kind)?
-            .as_str()
-            .unwrap_or_default()
-            .to_string();
+        let k = a.kind.name().to_string();
         let cosmic = a.detail.get("cosmic_ray").and_then(|v| v.as_bool()) == Some(true);
         *kinds
             .entry(if cosmic { "cosmic ray".into() } else { k })
@@ -628,9 +614,7 @@ fn report_command(
     send: bool,
 ) -> Result<ExitCode> {
     let cfg = subwatch::config::load(config)?;
-    let now = std::time::SystemTime::now()
-        .duration_since(std::time::UNIX_EPOCH)
-        .map_or(0.0, |d| d.as_secs_f64());
+    let now = subwatch::clock::now_unix();
     let night = match night {
         Some(n) => n,
         None => subwatch::sky::night_label(now, cfg.timezone()).context("clock out of range")?,
@@ -725,18 +709,7 @@ fn night_command(
         eprintln!();
     }
     if let Some(folder) = report {
-        let night = {
-            let mut counts: std::collections::BTreeMap<&str, usize> = Default::default();
-            for f in &doc.frames {
-                if let Some(n) = f.night.as_deref() {
-                    *counts.entry(n).or_default() += 1;
-                }
-            }
-            counts
-                .into_iter()
-                .max_by_key(|(_, c)| *c)
-                .map_or("night".to_string(), |(n, _)| n.to_string())
-        };
+        let night = subwatch::batch::night_of(&doc).unwrap_or_else(|| "night".into());
         let prepared = subwatch::morning::write_files(doc.clone(), &night, folder, &c.measure)?;
         eprintln!("report: {}", prepared.html_path.display());
         eprintln!("frames: {}", prepared.csv_path.display());
@@ -746,9 +719,7 @@ fn night_command(
 
 fn status_command(config: &std::path::Path, night: Option<String>, json: bool) -> Result<ExitCode> {
     let cfg = subwatch::config::load(config)?;
-    let now = std::time::SystemTime::now()
-        .duration_since(std::time::UNIX_EPOCH)
-        .map_or(0.0, |d| d.as_secs_f64());
+    let now = subwatch::clock::now_unix();
     let night = match night {
         Some(n) => n,
         None => subwatch::sky::night_label(now, cfg.timezone()).context("clock out of range")?,

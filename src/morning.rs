@@ -210,23 +210,22 @@ pub fn flush(
     c: &Config,
     now_unix: f64,
 ) -> Result<crate::outbox::FlushReport, MorningError> {
-    flush_at(store, c, now_unix, now_unix)
+    flush_outbox(store, c, now_unix, crate::outbox::Due::AsScheduled)
 }
 
-/// Deliver what is due by `due_unix` (a late `due_unix` retries everything now), stamping
-/// the outcome at `now_unix`.
-pub fn flush_at(
+/// Deliver the outbox's messages: those due by now, or all of them now.
+pub fn flush_outbox(
     store: &Store,
     c: &Config,
-    due_unix: f64,
     now_unix: f64,
+    due: crate::outbox::Due,
 ) -> Result<crate::outbox::FlushReport, MorningError> {
     let settings = MailSettings::from_config(c)?;
     Ok(crate::outbox::flush(
         store,
         &settings,
         &report_folder(c),
-        due_unix,
+        due.by(now_unix),
         now_unix,
     )?)
 }

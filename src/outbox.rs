@@ -61,6 +61,25 @@ fn write_eml(folder: &Path, name: &str, bytes: &[u8]) -> std::io::Result<PathBuf
     Ok(path)
 }
 
+/// Which messages a pass over the outbox tries.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Due {
+    /// Those whose wait after a failure is over.
+    AsScheduled,
+    /// All of them, now (`subwatch outbox --now`).
+    Now,
+}
+
+impl Due {
+    /// The latest next-attempt time a message may have to be tried at `now`.
+    pub fn by(self, now_unix: f64) -> f64 {
+        match self {
+            Due::AsScheduled => now_unix,
+            Due::Now => f64::INFINITY,
+        }
+    }
+}
+
 /// What one pass over the outbox did.
 #[derive(Debug, Default, Clone, PartialEq)]
 pub struct FlushReport {

@@ -1,7 +1,8 @@
 //! Which files under the capture folders are frames, decided one way for every command
 //! (the daemon's scans and file events, `subwatch night`): file-name patterns with `*`
 //! and `?` (case-insensitive), hidden files and folders left out (capture programs write
-//! partial files there), and the folder rejected frames are moved to never entered.
+//! partial files there), and the folder rejected frames are moved to (`[actions]
+//! rejected_folder`, "rejected" unless configured) never entered.
 
 use std::path::{Path, PathBuf};
 
@@ -57,11 +58,8 @@ impl FrameFilter {
         FrameFilter {
             include: c.watch.include.clone(),
             exclude: c.watch.exclude.clone(),
-            skipped_folders: if c.actions.move_rejected {
-                vec![c.actions.rejected_folder.to_lowercase()]
-            } else {
-                Vec::new()
-            },
+            // Whether or not moving is on now: frames moved there earlier were judged.
+            skipped_folders: vec![c.actions.rejected_folder.to_lowercase()],
         }
     }
 
@@ -182,5 +180,8 @@ mod tests {
             );
         }
         assert!(!filter.wants(&roots, Path::new("/elsewhere/kfa_001.fits")));
+        // The rejected frames' folder is left out by default, moving on or not.
+        let defaults = FrameFilter::from_config(&crate::config::Config::default());
+        assert_eq!(defaults.skipped_folders, ["rejected"]);
     }
 }

@@ -169,43 +169,22 @@ pub fn parse_sexagesimal(s: &str) -> Option<f64> {
     Some(if negative { -value } else { value })
 }
 
-/// ISO 8601 "YYYY-MM-DD[Thh:mm:ss[.fff]]" (UTC, as FITS requires for DATE-OBS) to Unix
-/// seconds. Days from the civil calendar by the algorithm of Hinnant (2013), from memory.
+/// ISO 8601 "YYYY-MM-DD[Thh:mm:ss[.fff]]" (UTC, as FITS requires for DATE-OBS; a
+/// trailing "Z" is allowed) to Unix seconds, by chrono's calendar: a date that does not
+/// exist (31 February) is no time at all.
 pub fn parse_iso_time(s: &str) -> Option<f64> {
+    use chrono::{NaiveDate, NaiveDateTime};
     let s = s.trim().trim_end_matches('Z');
-    let (date, time) = match s.split_once('T') {
-        Some((d, t)) => (d, Some(t)),
-        None => (s, None),
+    let t = match s.split_once('T') {
+        Some(_) => ["%Y-%m-%dT%H:%M:%S%.f", "%Y-%m-%dT%H:%M"]
+            .iter()
+            .find_map(|f| NaiveDateTime::parse_from_str(s, f).ok())?,
+        None => NaiveDate::parse_from_str(s, "%Y-%m-%d")
+            .ok()?
+            .and_hms_opt(0, 0, 0)?,
     };
-    let mut d = date.split('-');
-    let y: i64 = d.next()?.parse().ok()?;
-    let m: i64 = d.next()?.parse().ok()?;
-    let day: i64 = d.next()?.parse().ok()?;
-    if !(1..=12).contains(&m) || !(1..=31).contains(&day) {
-        return None;
-    }
-    let mut seconds = 0.0;
-    if let Some(t) = time {
-        let mut parts = t.split(':');
-        let h: f64 = parts.next()?.parse().ok()?;
-        let mi: f64 = parts.next().unwrap_or("0").parse().ok()?;
-        let se: f64 = parts.next().unwrap_or("0").parse().ok()?;
-        if !(0.0..24.0).contains(&h) || !(0.0..60.0).contains(&mi) || !(0.0..61.0).contains(&se) {
-            return None;
-        }
-        seconds = h * 3600.0 + mi * 60.0 + se;
-    }
-    Some(days_from_civil(y, m, day) as f64 * 86_400.0 + seconds)
-}
-
-fn days_from_civil(y: i64, m: i64, d: i64) -> i64 {
-    let y = if m <= 2 { y - 1 } else { y };
-    let era = if y >= 0 { y } else { y - 399 } / 400;
-    let yoe = y - era * 400;
-    let mp = (m + 9) % 12;
-    let doy = (153 * mp + 2) / 5 + d - 1;
-    let doe = yoe * 365 + yoe / 4 - yoe / 100 + doy;
-    era * 146_097 + doe - 719_468
+    let t = t.and_utc();
+    Some(t.timestamp() as f64 + f64::from(t.timestamp_subsec_nanos()) * 1e-9)
 }
 
 #[cfg(test)]
@@ -218,6 +197,12 @@ mod tests {
         assert_eq!(parse_iso_time("2000-01-01T12:00:00"), Some(946_728_000.0));
         assert_eq!(parse_iso_time("1970-01-01"), Some(0.0));
         assert_eq!(parse_iso_time("2026-13-01T00:00:00"), None);
+        assert_eq!(parse_iso_time("2026-02-31T00:00:00"), None);
+        assert_eq!(
+            parse_iso_time("2026-03-14T20:40:00.250Z"),
+            Some(1_773_520_800.25)
+        );
+        assert_eq!(parse_iso_time("2026-03-14T24:00:00"), None);
     }
 
     #[test]

@@ -163,10 +163,7 @@ pub fn instrumental_mag(a: &AnomalyRecord) -> Option<f64> {
 }
 
 fn kind_name(a: &AnomalyRecord) -> String {
-    serde_json::to_value(a.kind)
-        .ok()
-        .and_then(|v| v.as_str().map(String::from))
-        .unwrap_or_default()
+    a.kind.name().to_string()
 }
 
 /// The plain-text summary.
@@ -352,10 +349,7 @@ pub fn csv(doc: &NightDocument) -> String {
     let mut out = String::from("path,target,filter,time_unix,verdict,reasons,star_count,fwhm_px,fwhm_arcsec,eccentricity,background_adu,noise_adu,snr_median,hfr_px,transparency_loss_mag\n");
     for f in &doc.frames {
         let m = f.metrics.as_ref();
-        let verdict = serde_json::to_value(f.verdict)
-            .ok()
-            .and_then(|v| v.as_str().map(String::from))
-            .unwrap_or_default();
+        let verdict = f.verdict.as_str();
         let _ = writeln!(
             out,
             "{},{},{},{},{},{},{},{},{},{},{},{},{},{},{}",

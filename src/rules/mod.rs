@@ -61,6 +61,21 @@ pub enum Metric {
 }
 
 impl Metric {
+    /// The metric's name in the configuration and the contract.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Metric::FwhmPx => "fwhm_px",
+            Metric::FwhmArcsec => "fwhm_arcsec",
+            Metric::Eccentricity => "eccentricity",
+            Metric::BackgroundAdu => "background_adu",
+            Metric::NoiseAdu => "noise_adu",
+            Metric::StarCount => "star_count",
+            Metric::SnrMedian => "snr_median",
+            Metric::HfrPx => "hfr_px",
+            Metric::TransparencyLossMag => "transparency_loss_mag",
+        }
+    }
+
     fn of(self, f: &FrameFacts) -> Option<f64> {
         match self {
             Metric::FwhmPx => f.fwhm_px,
@@ -235,7 +250,7 @@ fn fires(
 ) -> Option<String> {
     let f = upto.last()?;
     let v = r.metric.of(f)?;
-    let name = serde_json::to_value(r.metric).ok()?.as_str()?.to_string();
+    let name = r.metric.as_str();
     let limit = r.value;
     match r.test {
         Test::Above => (v > limit).then(|| format!("{name} {v:.3} is above {limit}")),

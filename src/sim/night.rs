@@ -79,6 +79,33 @@ impl NightPlan {
 }
 
 impl NightPlan {
+    /// The same field a night later: calm, twelve frames (the flip of the full plan, at
+    /// frame 20, never comes), with one source that was not there before.
+    pub fn second_night(seed: u64) -> Self {
+        NightPlan {
+            seed: seed + 1000,
+            start: "2026-03-15T20:40:00".into(),
+            new_source: true,
+            frames: 12,
+            ..NightPlan::full(seed).quiet()
+        }
+    }
+
+    /// A calm one-shot-colour sequence of the second invented target, with one very red
+    /// star.
+    pub fn colour(seed: u64) -> Self {
+        NightPlan {
+            object: "Kestrel Field B".into(),
+            center_deg: (201.3, -12.4),
+            field_seed: 91,
+            bayer: crate::frame::bayer::BayerPattern::parse("RGGB"),
+            red_star: true,
+            frames: 10,
+            start: "2026-03-15T01:00:00".into(),
+            ..NightPlan::full(seed).quiet()
+        }
+    }
+
     /// No events: a calm night of the same field (flip, cloud, gust, focus drift,
     /// satellites, moving object, variable and flash all off).
     pub fn quiet(mut self) -> Self {

@@ -5,7 +5,7 @@
 
 use std::path::{Path, PathBuf};
 
-use super::{alerts, unix_now, Shared};
+use super::{alerts, Shared};
 use crate::config::Config;
 use crate::store::Store;
 
@@ -17,8 +17,8 @@ pub(super) fn raise_alert(
     night: &str,
     kind: &str,
     message: &str,
+    now: f64,
 ) -> Option<String> {
-    let now = unix_now();
     let limits = alerts::AlertLimits::from_config(&config.alerts);
     let (last, tonight) = store.alert_history(night, kind).ok()?;
     if !alerts::allowed(&limits, now, last, tonight) {
@@ -58,19 +58,17 @@ pub(super) fn raise_alert(
 /// Once a minute: frames stopped arriving, disk space, the scheduled summary, the outbox.
 pub(super) fn minute_checks(shared: &Shared) {
     let config = &shared.config;
-    let now = unix_now();
+    let now = shared.clock.now_unix();
     let tz = config.timezone();
     let Some(night) = crate::sky::night_label(now, tz) else {
         return;
     };
     let store = shared.store.lock().unwrap_or_else(|p| p.into_inner());
     let limits = alerts::AlertLimits::from_config(&config.alerts);
-    let dark = config.site_position().map(|(lat, lon, _)| {
-        crate::sky::sun_altitude(crate::sky::julian_date(now), lat, lon) < -18.0
-    });
+    let dark = super::schedule::dark(now, config.site_position());
     if let Ok(counts) = store.night_counts(&night) {
         if let Some(msg) = alerts::frames_stopped(&limits, now, counts.last_recorded_unix, dark) {
-            if let Some(line) = raise_alert(&store, config, &night, "frames_stopped", &msg) {
+            if let Some(line) = raise_alert(&store, config, &night, "frames_stopped", &msg, now) {
                 tracing::warn!("{line}");
             }
         }
@@ -80,7 +78,7 @@ pub(super) fn minute_checks(shared: &Shared) {
         .map(|(folder, bytes)| (crate::logging::shown(&folder), bytes))
         .collect();
     if let Some(msg) = alerts::low_disk(&limits, &free) {
-        if let Some(line) = raise_alert(&store, config, &night, "low_disk", &msg) {
+        if let Some(line) = raise_alert(&store, config, &night, "low_disk", &msg, now) {
             tracing::warn!("{line}");
         }
     }
@@ -90,14 +88,14 @@ pub(super) fn minute_checks(shared: &Shared) {
         Ok(n) => tracing::info!("judged {n} frame(s) recorded earlier without a verdict"),
         Err(e) => tracing::error!("judging frames left without a verdict: {e}"),
     }
-    anomaly_alerts(&store, config, &night);
+    anomaly_alerts(&store, config, &night, now);
     summary_if_due(&store, config, now);
     flush_outbox(&store, config, now);
 }
 
 /// Run the night analysis over tonight's frames so far and alert on anomalies of the
 /// chosen kinds, each once (same kind and place).
-fn anomaly_alerts(store: &Store, config: &Config, night: &str) {
+fn anomaly_alerts(store: &Store, config: &Config, night: &str, now: f64) {
     if config.alerts.anomaly_kinds.is_empty() {
         return;
     }
@@ -152,7 +150,7 @@ fn anomaly_alerts(store: &Store, config: &Config, night: &str) {
         {
             continue;
         }
-        if let Some(line) = raise_alert(store, config, night, &alert_kind, &message) {
+        if let Some(line) = raise_alert(store, config, night, &alert_kind, &message, now) {
             let _ = store.set_meta(&identity, &message);
             tracing::warn!("{line}");
         }
@@ -223,50 +221,23 @@ pub(super) fn flush_outbox(store: &Store, config: &Config, now: f64) {
 
 /// Free bytes on the file system holding `folder`.
 fn free_bytes(folder: &Path) -> Option<u64> {
-    let c = std::ffi::CString::new(folder.as_os_str().as_encoded_bytes()).ok()?;
-    let mut st: libc::statvfs = unsafe { std::mem::zeroed() };
-    // SAFETY: a valid C string and an out-pointer to a zeroed struct.
-    let rc = unsafe { libc::statvfs(c.as_ptr(), &mut st) };
-    (rc == 0).then(|| st.f_bavail as u64 * st.f_frsize as u64)
+    let st = rustix::fs::statvfs(folder).ok()?;
+    Some(st.f_bavail.saturating_mul(st.f_frsize))
 }
 
-/// The morning summary of the night that just ended, once, at `summary_time` ("HH:MM"
-/// local) or 30 minutes after astronomical dawn ("dawn", needs the site).
+/// The morning summary of the night that just ended, once, when `schedule` says it is
+/// due.
 fn summary_if_due(store: &Store, config: &Config, now: f64) {
     let Some(when) = config.mail.summary_time else {
         return;
     };
-    let tz = config.timezone();
-    let Some(night) = crate::sky::night_label(now, tz) else {
+    let Some(night) =
+        super::schedule::summary_due(when, now, config.timezone(), config.site_position())
+    else {
         return;
     };
     let key = format!("summary:{night}");
     if store.meta(&key).ok().flatten().is_some() {
-        return;
-    }
-    let local = chrono::DateTime::from_timestamp(now as i64, 0).map(|d| d.with_timezone(&tz));
-    let Some(local) = local else { return };
-    use chrono::Timelike;
-    let minutes_now = local.hour() * 60 + local.minute();
-    // The morning belongs to the night only before local noon.
-    if minutes_now >= 12 * 60 {
-        return;
-    }
-    let due = match when {
-        crate::config::SummaryTime::Dawn => {
-            // Checked at load: "dawn" comes with a site.
-            let Some((lat, lon, _)) = config.site_position() else {
-                return;
-            };
-            let evening = now - 86_400.0 * 0.75;
-            match crate::sky::sun_crossings(evening, -18.0, lat, lon).1 {
-                Some(dawn) => now >= dawn + 1800.0,
-                None => false,
-            }
-        }
-        crate::config::SummaryTime::At(h, m) => minutes_now >= h * 60 + m,
-    };
-    if !due {
         return;
     }
     // The store is locked by the caller; prepare reads it through a second connection.

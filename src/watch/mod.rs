@@ -18,18 +18,20 @@
 pub mod alerts;
 mod checks;
 pub mod judge;
+pub mod schedule;
 pub mod settle;
 
 use std::collections::{HashMap, HashSet, VecDeque};
 use std::path::{Path, PathBuf};
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::{Arc, Mutex};
-use std::time::{Duration, Instant, SystemTime, UNIX_EPOCH};
+use std::time::{Duration, Instant};
 
 use notify::Watcher;
 use tokio::sync::mpsc;
 use tokio::task::JoinSet;
 
+use crate::clock::{Clock, SystemClock};
 use crate::config::Config;
 use crate::logging::shown;
 use crate::pipeline::RecordOptions;
@@ -58,12 +60,6 @@ const GIVE_UP_AFTER_INTERRUPTIONS: i64 = 3;
 /// At most this many records wait in memory for a failing store; older ones are let go
 /// and read again from their files once the store works.
 const PENDING_LIMIT: usize = 100;
-
-fn unix_now() -> f64 {
-    SystemTime::now()
-        .duration_since(UNIX_EPOCH)
-        .map_or(0.0, |d| d.as_secs_f64())
-}
 
 /// The file at `path` now, if it is a regular file.
 fn observe(path: &Path) -> Option<Identity> {
@@ -108,6 +104,7 @@ fn sd_notify(state: &str) {
 }
 
 struct Shared {
+    clock: Arc<dyn Clock>,
     store: Mutex<Store>,
     options: RecordOptions,
     reader: crate::reader::Reader,
@@ -163,7 +160,7 @@ fn process(shared: &Shared, path: &Path) -> Outcome {
     };
     {
         let store = shared.store.lock().unwrap_or_else(|p| p.into_inner());
-        if let Err(e) = store.begin_reading(&identity, unix_now()) {
+        if let Err(e) = store.begin_reading(&identity, shared.clock.now_unix()) {
             tracing::error!("{e} (marking {} as being read)", shown(path));
         }
     }
@@ -179,7 +176,7 @@ fn store_record(shared: &Shared, record: FrameRecord) -> Outcome {
     let path = PathBuf::from(&record.identity.path);
     let version = (record.identity.size, record.identity.mtime_ns);
     let mut store = shared.store.lock().unwrap_or_else(|p| p.into_inner());
-    let recorded = match store.record_frame(&record, unix_now()) {
+    let recorded = match store.record_frame(&record, shared.clock.now_unix()) {
         Ok(r) => r,
         Err(e) => {
             return Outcome::NotStored {
@@ -255,9 +252,14 @@ fn store_record(shared: &Shared, record: FrameRecord) -> Outcome {
             &alerts::AlertLimits::from_config(&shared.config.alerts),
             &verdicts,
         ) {
-            if let Some(alert) =
-                checks::raise_alert(&store, &shared.config, night, "reject_streak", &msg)
-            {
+            if let Some(alert) = checks::raise_alert(
+                &store,
+                &shared.config,
+                night,
+                "reject_streak",
+                &msg,
+                shared.clock.now_unix(),
+            ) {
                 tracing::warn!("{alert}");
             }
         }
@@ -292,6 +294,15 @@ pub fn run(config: Config) -> Result<(), WatchError> {
 /// Run the daemon until SIGTERM, SIGINT, or `stop` becoming true (the demo's way to end
 /// it); frames in flight are finished either way.
 pub fn run_until(config: Config, stop: Arc<AtomicBool>) -> Result<(), WatchError> {
+    run_with_clock(config, stop, Arc::new(SystemClock))
+}
+
+/// As [`run_until`], telling the time by `clock`.
+pub fn run_with_clock(
+    config: Config,
+    stop: Arc<AtomicBool>,
+    clock: Arc<dyn Clock>,
+) -> Result<(), WatchError> {
     let workers = if config.watch.workers == 0 {
         std::thread::available_parallelism().map_or(2, |n| n.get())
     } else {
@@ -306,7 +317,7 @@ pub fn run_until(config: Config, stop: Arc<AtomicBool>) -> Result<(), WatchError
         .enable_all()
         .build()
         .map_err(WatchError::Runtime)?;
-    runtime.block_on(daemon(config, workers, stop))
+    runtime.block_on(daemon(config, workers, stop, clock))
 }
 
 /// How mail goes, in words for the start line.
@@ -327,7 +338,7 @@ fn mail_state(c: &Config) -> String {
 /// Files that were in the reader when the daemon last stopped: counted, and given up
 /// after the third time (recorded as unreadable, so they are not read again until they
 /// change).
-fn settle_interrupted(store: &mut Store) -> Result<(), StoreError> {
+fn settle_interrupted(store: &mut Store, now: f64) -> Result<(), StoreError> {
     for left in store.take_interrupted()? {
         let path = shown(Path::new(&left.identity.path));
         if left.interruptions >= GIVE_UP_AFTER_INTERRUPTIONS {
@@ -337,7 +348,7 @@ fn settle_interrupted(store: &mut Store) -> Result<(), StoreError> {
             );
             let mut record = FrameRecord::failed(left.identity.clone(), &reason);
             record.night = crate::sky::night_label(left.identity.mtime_unix(), chrono_tz::UTC);
-            store.record_frame(&record, unix_now())?;
+            store.record_frame(&record, now)?;
             tracing::warn!("{path} unreadable: {reason}");
         } else {
             tracing::warn!(
@@ -354,6 +365,7 @@ async fn daemon(
     mut config: Config,
     workers: usize,
     stop: Arc<AtomicBool>,
+    wall: Arc<dyn Clock>,
 ) -> Result<(), WatchError> {
     // One spelling per file: events, scans and the store all see canonical paths.
     for folder in config.watch.folders.iter_mut() {
@@ -365,11 +377,12 @@ async fn daemon(
     // One daemon per store: a second one is refused, naming the first.
     let _claim = crate::store::claim(&config.store.path)?;
     let mut store = Store::open(&config.store.path)?;
-    settle_interrupted(&mut store)?;
+    settle_interrupted(&mut store, wall.now_unix())?;
     let mut recorded: HashMap<String, (u64, i64)> = store.recorded_versions()?;
     let lists_folder = crate::morning::lists_folder(&config);
     let filter = crate::walk::FrameFilter::from_config(&config);
     let shared = Arc::new(Shared {
+        clock: wall.clone(),
         store: Mutex::new(store),
         options: RecordOptions::from_config(&config),
         reader: crate::reader::Reader::from_config(&config.measure),
@@ -442,7 +455,7 @@ async fn daemon(
         if recorded.get(&id.path) == Some(&(id.size, id.mtime_ns)) {
             return;
         }
-        let age = (unix_now() - id.mtime_unix()).max(0.0);
+        let age = (wall.now_unix() - id.mtime_unix()).max(0.0);
         tracker.track(path, observation(&id), now, age);
     };
 
@@ -493,7 +506,7 @@ async fn daemon(
     let mut rescan = tokio::time::interval(Duration::from_secs_f64(rescan_every));
     rescan.tick().await;
     let mut heartbeat = tokio::time::interval(Duration::from_secs(2));
-    let mut minute = tokio::time::interval(Duration::from_secs(60));
+    let mut minute = tokio::time::interval(Duration::from_secs_f64(config.watch.checks_seconds));
     let mut retry = tokio::time::interval(Duration::from_secs(15));
     retry.tick().await;
     let mut sigterm = tokio::signal::unix::signal(tokio::signal::unix::SignalKind::terminate())
@@ -534,7 +547,7 @@ async fn daemon(
                     "waiting": tracker.len() + ready.len(),
                     "in_flight": in_flight.len(),
                     "not_stored": pending.len(),
-                    "updated_unix": unix_now(),
+                    "updated_unix": wall.now_unix(),
                 });
                 let shared = shared.clone();
                 let _ = tokio::task::spawn_blocking(move || {
