@@ -1,6 +1,7 @@
-//! Broken and odd files through the real binary: each gets one JSON line with status
-//! "error" and a clear reason (or "ok" with no stars where that is the truth), the other
-//! files are still measured, and the process never panics or aborts.
+//! Broken and odd files through the real binary, one test per case so a failure names
+//! it: each gets one JSON line with status "error" and a clear one-line reason (or "ok"
+//! with no stars where that is the truth), a good file given after it is still measured,
+//! and the process never panics or aborts.
 
 mod common;
 
@@ -28,35 +29,102 @@ fn header_block(lines: &[&str]) -> Vec<u8> {
     bytes
 }
 
-fn write(dir: &Path, name: &str, bytes: &[u8]) -> PathBuf {
-    let p = dir.join(name);
-    std::fs::write(&p, bytes).unwrap();
-    p
+/// A folder with a good frame in it.
+struct Case {
+    dir: tempfile::TempDir,
+    good: PathBuf,
+}
+
+impl Case {
+    fn new() -> Case {
+        let dir = tempfile::tempdir().unwrap();
+        let small = SimParams {
+            width: 256,
+            height: 256,
+            star_count: 60,
+            ..Default::default()
+        };
+        let (good, _) = render_to(dir.path(), "good.fits", &small, Encoding::Unsigned16);
+        Case { dir, good }
+    }
+
+    fn path(&self, name: &str) -> PathBuf {
+        self.dir.path().join(name)
+    }
+
+    fn write(&self, name: &str, bytes: &[u8]) -> PathBuf {
+        let p = self.path(name);
+        std::fs::write(&p, bytes).unwrap();
+        p
+    }
+
+    fn frame(&self, name: &str, pixels: &Array2<f32>, encoding: Encoding) -> PathBuf {
+        let p = self.path(name);
+        write_frame(&p, pixels, encoding, &[]).unwrap();
+        p
+    }
+
+    /// Measure `bad` then the good frame; `words` is the reason expected for `bad` (None:
+    /// it is measured). Returns `bad`'s record.
+    fn expect(&self, bad: &Path, words: Option<&str>) -> serde_json::Value {
+        let (records, code) = measure(&[bad, &self.good], false);
+        assert_eq!(records.len(), 2, "one line per input, in order");
+        assert_eq!(records[0]["path"], bad.display().to_string());
+        let rec = records[0].clone();
+        match words {
+            Some(words) => {
+                assert_eq!(code, 1, "a file failed, so the exit code is 1");
+                assert_eq!(rec["status"], "error", "{rec}");
+                let msg = rec["error"].as_str().unwrap();
+                assert!(msg.contains(words), "{msg:?} lacks {words:?}");
+                assert!(!msg.contains('\n'), "one line: {msg:?}");
+            }
+            None => {
+                assert_eq!(code, 0);
+                assert_eq!(rec["status"], "ok", "{rec}");
+            }
+        }
+        assert_eq!(records[1]["status"], "ok", "the good file after it");
+        assert!(records[1]["star_count"].as_u64().unwrap() > 10);
+        rec
+    }
 }
 
 #[test]
-fn every_bad_file_gets_a_clear_error_and_good_files_still_pass() {
-    let dir = tempfile::tempdir().unwrap();
-    let d = dir.path();
-    let small = SimParams {
-        width: 256,
-        height: 256,
-        star_count: 60,
-        ..Default::default()
-    };
-    let (good, _) = render_to(d, "good.fits", &small, Encoding::Unsigned16);
-    let full = std::fs::read(&good).unwrap();
+fn an_empty_file() {
+    let c = Case::new();
+    c.expect(&c.write("empty.fits", b""), Some("empty file"));
+}
 
-    let empty = write(d, "empty.fits", b"");
-    let text = write(d, "notes.fits", b"this is a text file, not an image\n");
-    let truncated = write(d, "truncated.fits", &full[..full.len() / 2]);
-    let header_only = write(
-        d,
+#[test]
+fn a_text_file() {
+    let c = Case::new();
+    let p = c.write("notes.fits", b"this is a text file, not an image\n");
+    c.expect(&p, Some("not a FITS file"));
+}
+
+#[test]
+fn a_file_cut_in_half() {
+    let c = Case::new();
+    let full = std::fs::read(&c.good).unwrap();
+    let p = c.write("truncated.fits", &full[..full.len() / 2]);
+    c.expect(&p, Some("truncated"));
+}
+
+#[test]
+fn a_header_without_data() {
+    let c = Case::new();
+    let p = c.write(
         "header-only.fits",
         &header_block(&["SIMPLE = T", "BITPIX = 16", "NAXIS = 0"]),
     );
-    let absurd = write(
-        d,
+    c.expect(&p, Some("no image data"));
+}
+
+#[test]
+fn an_absurd_size() {
+    let c = Case::new();
+    let p = c.write(
         "absurd.fits",
         &header_block(&[
             "SIMPLE = T",
@@ -66,6 +134,12 @@ fn every_bad_file_gets_a_clear_error_and_good_files_still_pass() {
             "NAXIS2 = 4000000000",
         ]),
     );
+    c.expect(&p, Some("over the limit"));
+}
+
+#[test]
+fn a_table_and_no_image() {
+    let c = Case::new();
     let mut table = header_block(&["SIMPLE = T", "BITPIX = 8", "NAXIS = 0", "EXTEND = T"]);
     table.extend(header_block(&[
         "XTENSION= 'BINTABLE'",
@@ -78,83 +152,65 @@ fn every_bad_file_gets_a_clear_error_and_good_files_still_pass() {
         "TFIELDS = 1",
         "TFORM1 = '1E'",
     ]));
-    let table = write(d, "table.fits", &table);
-    let all_nan = d.join("all-nan.fits");
-    write_frame(
-        &all_nan,
+    c.expect(&c.write("table.fits", &table), Some("no image data"));
+}
+
+#[test]
+fn every_pixel_nan() {
+    let c = Case::new();
+    let p = c.frame(
+        "all-nan.fits",
         &Array2::from_elem((64, 64), f32::NAN),
         Encoding::Float32,
-        &[],
-    )
-    .unwrap();
-    let nearly_nan = d.join("nearly-nan.fits");
+    );
+    c.expect(&p, Some("no valid pixels"));
+}
+
+#[test]
+fn five_valid_pixels_of_4096() {
+    let c = Case::new();
     let mut few = Array2::from_elem((64, 64), f32::NAN);
     for i in 0..5 {
         few[(10 * i + 3, 7 * i + 2)] = 1000.0 + i as f32;
     }
-    write_frame(&nearly_nan, &few, Encoding::Float32, &[]).unwrap();
-    let constant = d.join("constant.fits");
-    write_frame(
-        &constant,
+    let p = c.frame("nearly-nan.fits", &few, Encoding::Float32);
+    c.expect(&p, Some("too few valid pixels to measure (5 of 4096"));
+}
+
+#[test]
+fn a_constant_frame_is_measured_with_no_stars_and_its_level() {
+    let c = Case::new();
+    let p = c.frame(
+        "constant.fits",
         &Array2::from_elem((64, 64), 1000.0),
         Encoding::Unsigned16,
-        &[],
-    )
-    .unwrap();
-    let saturated = d.join("saturated.fits");
-    write_frame(
-        &saturated,
+    );
+    let rec = c.expect(&p, None);
+    assert_eq!(rec["star_count"], 0);
+    assert_eq!(rec["background_adu"], 1000.0);
+}
+
+#[test]
+fn a_saturated_frame_is_measured_with_no_stars() {
+    let c = Case::new();
+    let p = c.frame(
+        "saturated.fits",
         &Array2::from_elem((64, 64), 65535.0),
         Encoding::Unsigned16,
-        &[],
-    )
-    .unwrap();
-    let missing = d.join("missing.fits");
-    let folder = d.to_path_buf();
+    );
+    assert_eq!(c.expect(&p, None)["star_count"], 0);
+}
 
-    let cases: Vec<(&Path, Option<&str>)> = vec![
-        (&empty, Some("empty file")),
-        (&text, Some("not a FITS file")),
-        (&truncated, Some("truncated")),
-        (&header_only, Some("no image data")),
-        (&absurd, Some("over the limit")),
-        (&table, Some("no image data")),
-        (&all_nan, Some("no valid pixels")),
-        (
-            &nearly_nan,
-            Some("too few valid pixels to measure (5 of 4096"),
-        ),
-        (&constant, None),
-        (&saturated, None),
-        (&missing, Some("No such file")),
-        (&folder, Some("not a regular file")),
-        (&good, None),
-    ];
-    let paths: Vec<&Path> = cases.iter().map(|c| c.0).collect();
-    let (records, code) = measure(&paths, false);
-    assert_eq!(code, 1, "some files failed, so the exit code is 1");
-    assert_eq!(records.len(), cases.len(), "one line per input, in order");
-    for ((path, expected), rec) in cases.iter().zip(&records) {
-        assert_eq!(rec["path"], path.display().to_string());
-        match expected {
-            Some(words) => {
-                assert_eq!(rec["status"], "error", "{rec}");
-                let msg = rec["error"].as_str().unwrap();
-                assert!(
-                    msg.contains(words),
-                    "{}: {msg:?} lacks {words:?}",
-                    path.display()
-                );
-                assert!(!msg.contains('\n'), "one line: {msg:?}");
-            }
-            None => assert_eq!(rec["status"], "ok", "{rec}"),
-        }
-    }
-    // Constant and saturated frames are measured: no stars, honest sky.
-    assert_eq!(records[8]["star_count"], 0);
-    assert_eq!(records[8]["background_adu"], 1000.0);
-    assert_eq!(records[9]["star_count"], 0);
-    assert!(records[12]["star_count"].as_u64().unwrap() > 10);
+#[test]
+fn a_missing_file() {
+    let c = Case::new();
+    c.expect(&c.path("missing.fits"), Some("No such file"));
+}
+
+#[test]
+fn a_folder() {
+    let c = Case::new();
+    c.expect(c.dir.path(), Some("not a regular file"));
 }
 
 #[test]

@@ -72,47 +72,112 @@ fn score(
     (injected.len(), found, reported.len(), false_reports)
 }
 
-#[test]
-fn a_rendered_night_gives_back_what_was_put_in() {
-    let dir = tempfile::tempdir().unwrap();
-    let plan = NightPlan::full(3);
-    let (frames, truth) = write_night(dir.path(), &plan);
-    let doc = run_night(dir.path(), None);
+/// The full rendered night, judged once and shared by the tests that read it.
+struct FullNight {
+    _dir: tempfile::TempDir,
+    plan: NightPlan,
+    frames: Vec<NightFrame>,
+    truth: Vec<TrueAnomaly>,
+    doc: Value,
+}
 
+fn full_night() -> &'static FullNight {
+    static NIGHT: std::sync::OnceLock<FullNight> = std::sync::OnceLock::new();
+    NIGHT.get_or_init(|| {
+        let dir = tempfile::tempdir().unwrap();
+        let plan = NightPlan::full(3);
+        let (frames, truth) = write_night(dir.path(), &plan);
+        let doc = run_night(dir.path(), None);
+        FullNight {
+            _dir: dir,
+            plan,
+            frames,
+            truth,
+            doc,
+        }
+    })
+}
+
+fn every_injected_one_is_found(kind: &str) {
+    let n = full_night();
+    let (injected, found, reported, false_reports) = score(&n.doc, &n.frames, &n.truth, kind);
+    println!(
+        "{kind}: injected {injected}, found {found}, reported {reported}, false {false_reports}"
+    );
+    assert!(injected > 0, "{kind}: the scenario injects it");
+    assert_eq!(found, injected, "{kind}: every injected one is found");
+}
+
+#[test]
+fn every_transient_is_found() {
+    every_injected_one_is_found("transient");
+}
+
+#[test]
+fn every_trail_is_found() {
+    every_injected_one_is_found("trail");
+}
+
+#[test]
+fn the_moving_object_is_found() {
+    every_injected_one_is_found("moving");
+}
+
+#[test]
+fn the_variable_is_found() {
+    every_injected_one_is_found("variable");
+}
+
+#[test]
+fn every_hot_pixel_is_found() {
+    every_injected_one_is_found("hot_pixel");
+}
+
+#[test]
+fn at_most_two_false_anomalies_in_forty_frames() {
+    let n = full_night();
     let mut false_total = 0;
     for kind in ["transient", "trail", "moving", "variable", "hot_pixel"] {
-        let (injected, found, reported, false_reports) = score(&doc, &frames, &truth, kind);
-        println!("{kind}: injected {injected}, found {found}, reported {reported}, false {false_reports}");
-        assert!(injected > 0, "{kind}: the scenario injects it");
-        assert_eq!(found, injected, "{kind}: every injected one is found");
-        false_total += false_reports;
+        false_total += score(&n.doc, &n.frames, &n.truth, kind).3;
     }
+    // Neither colour outliers nor new sources were put into this night.
     for kind in ["color", "new_source"] {
-        let (_, _, reported, _) = score(&doc, &frames, &truth, kind);
-        false_total += reported;
+        false_total += score(&n.doc, &n.frames, &n.truth, kind).2;
     }
-    println!("false anomalies: {false_total} in {} frames", frames.len());
+    println!(
+        "false anomalies: {false_total} in {} frames",
+        n.frames.len()
+    );
     assert!(
         false_total <= 2,
         "at most two false anomalies per 40 frames"
     );
+}
 
-    // Verdicts: the gust, the cloud and the end of the focus drift are caught; trails warned.
-    let verdict = |i: usize| {
-        let f = doc["frames"]
-            .as_array()
-            .unwrap()
-            .iter()
-            .find(|f| f["path"].as_str().unwrap().ends_with(&frames[i].name))
-            .unwrap();
-        (
-            f["verdict"].as_str().unwrap().to_string(),
-            f["reasons"].clone(),
-        )
-    };
-    assert_eq!(verdict(7).0, "reject", "{:?}", verdict(7));
-    for i in plan.cloud_frames.clone() {
-        let (v, reasons) = verdict(i);
+fn verdict(n: &FullNight, i: usize) -> (String, Value) {
+    let f = n.doc["frames"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|f| f["path"].as_str().unwrap().ends_with(&n.frames[i].name))
+        .unwrap();
+    (
+        f["verdict"].as_str().unwrap().to_string(),
+        f["reasons"].clone(),
+    )
+}
+
+#[test]
+fn the_gust_is_rejected() {
+    let n = full_night();
+    assert_eq!(verdict(n, 7).0, "reject", "{:?}", verdict(n, 7));
+}
+
+#[test]
+fn the_cloud_is_rejected_for_transparency() {
+    let n = full_night();
+    for i in n.plan.cloud_frames.clone() {
+        let (v, reasons) = verdict(n, i);
         assert_eq!(v, "reject");
         assert!(
             reasons
@@ -123,15 +188,29 @@ fn a_rendered_night_gives_back_what_was_put_in() {
             "{reasons}"
         );
     }
-    assert_eq!(verdict(39).0, "reject");
-    assert!(verdict(5)
+}
+
+#[test]
+fn the_end_of_the_focus_drift_is_rejected() {
+    assert_eq!(verdict(full_night(), 39).0, "reject");
+}
+
+#[test]
+fn a_trail_is_named_and_a_calm_frame_passes() {
+    let n = full_night();
+    assert!(verdict(n, 5)
         .1
         .as_array()
         .unwrap()
         .iter()
         .any(|r| r == "trail"));
-    assert_eq!(verdict(2).0, "ok");
+    assert_eq!(verdict(n, 2).0, "ok");
+}
 
+#[test]
+fn registration_matches_the_rendered_geometry() {
+    let n = full_night();
+    let (plan, frames, doc) = (&n.plan, &n.frames, &n.doc);
     // Registration against the rendered geometry: map each frame's corners to the
     // reference frame both ways and compare.
     let records = doc["frames"].as_array().unwrap();
@@ -300,6 +379,7 @@ fn the_daemon_store_gives_the_same_night_as_the_batch_command() {
     let mut daemon = Command::new(common::binary())
         .args(["watch", "--config"])
         .arg(&config)
+        .stderr(std::process::Stdio::null())
         .spawn()
         .unwrap();
     let db = root.join("s.db");
