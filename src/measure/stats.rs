@@ -255,9 +255,46 @@ fn radix_sort(values: &mut [f32]) {
     }
 }
 
+/// Median of values with weights: the smallest value at which the cumulative weight
+/// reaches half the total.
+pub fn weighted_median(pairs: &[(f64, f64)]) -> Option<f64> {
+    let mut v: Vec<(f64, f64)> = pairs
+        .iter()
+        .copied()
+        .filter(|(x, w)| x.is_finite() && *w > 0.0)
+        .collect();
+    if v.is_empty() {
+        return None;
+    }
+    v.sort_by(|a, b| a.0.total_cmp(&b.0));
+    let total: f64 = v.iter().map(|p| p.1).sum();
+    let mut acc = 0.0;
+    for &(x, w) in &v {
+        acc += w;
+        if acc >= 0.5 * total {
+            return Some(x);
+        }
+    }
+    v.last().map(|p| p.0)
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn weighted_median_reaches_half_the_weight() {
+        assert_eq!(
+            weighted_median(&[(1.0, 1.0), (2.0, 1.0), (3.0, 1.0)]),
+            Some(2.0)
+        );
+        // A heavy value carries the median.
+        assert_eq!(
+            weighted_median(&[(1.0, 1.0), (2.0, 1.0), (9.0, 5.0)]),
+            Some(9.0)
+        );
+        assert_eq!(weighted_median(&[(f64::NAN, 1.0), (4.0, 0.0)]), None);
+    }
 
     #[test]
     fn median_of_odd_and_even_samples() {
