@@ -9,6 +9,15 @@ use rayon::prelude::*;
 use super::background::BackgroundMap;
 use super::{RejectKind, Rejected};
 
+/// How many times its brightest neighbour a pixel can stand above and still be a star's
+/// centre. A Gaussian star centred on a pixel, its profile averaged over the pixels, has
+/// its centre 3.5 times its brightest neighbour at an optical FWHM of 1.3 px, 6.4 times
+/// at 1.0 px and 8.5 times at 0.9 px (analytic: the ratio of the error-function
+/// integrals over the centre and the side pixel); a star centred off a pixel's centre
+/// shares its light and stands lower still. Above 8, the pixel is a hot pixel or a
+/// cosmic-ray hit: no star sharper than 0.9 px FWHM is expected on a camera's sensor.
+pub(super) const STAR_LIMIT: f64 = 8.0;
+
 /// Subtract the background map row by row and, in the same pass, list the interior
 /// pixels standing more than 6σ above it with that σ: the only ones
 /// `clean_sharp_pixels` needs to look at.
@@ -55,40 +64,60 @@ pub(super) fn subtract_and_flag(
 }
 
 /// The test of `clean_sharp_pixels` for one interior pixel: its value and the median
-/// of its eight neighbours when it is sharp.
+/// of its eight neighbours (what replaces it) when it is sharp. A pixel is sharp when it
+/// is the top of its neighbourhood and stands more than 6σ and more than [`STAR_LIMIT`]
+/// times above every neighbour off its brightest axis (the pair of opposite neighbours,
+/// along a row, a column or a diagonal, that holds its brightest neighbour). A hot pixel
+/// has no bright neighbour at all, and a cosmic-ray track a pixel wide has them on one
+/// axis only; a star, however narrow, spreads over two dimensions.
 fn sharp_pixel(img: &Array2<f32>, x: usize, y: usize, sigma: f32) -> Option<(f32, f32)> {
     let v = img[(y, x)];
     if v.is_nan() || v <= 6.0 * sigma {
         return None;
     }
-    let mut n = [0.0f32; 8];
-    let mut k = 0;
-    for dy in 0..3 {
-        for dx in 0..3 {
-            if dx == 1 && dy == 1 {
-                continue;
-            }
-            let u = img[(y + dy - 1, x + dx - 1)];
-            // Only the top of a peak can be sharp: the corner pixel of a narrow star has
-            // five neighbours of sky and would otherwise stand far above their median.
-            if u > v {
-                return None;
-            }
-            n[k] = if u.is_finite() { u } else { 0.0 };
-            k += 1;
+    let at = |dx: isize, dy: isize| {
+        let u = img[((y as isize + dy) as usize, (x as isize + dx) as usize)];
+        if u.is_finite() {
+            u
+        } else {
+            0.0
         }
+    };
+    // Opposite pairs: the row, the column and the two diagonals.
+    let axes = [
+        [(-1, 0), (1, 0)],
+        [(0, -1), (0, 1)],
+        [(-1, -1), (1, 1)],
+        [(1, -1), (-1, 1)],
+    ];
+    let values: Vec<[f32; 2]> = axes
+        .iter()
+        .map(|a| [at(a[0].0, a[0].1), at(a[1].0, a[1].1)])
+        .collect();
+    let axis_max = |k: usize| values[k][0].max(values[k][1]);
+    if (0..4).any(|k| axis_max(k) > v) {
+        return None;
     }
+    let brightest_axis = (0..4)
+        .max_by(|&a, &b| axis_max(a).total_cmp(&axis_max(b)))
+        .expect("four axes");
+    let off_axis = (0..4)
+        .filter(|&k| k != brightest_axis)
+        .map(axis_max)
+        .fold(f32::NEG_INFINITY, f32::max);
+    let mut n: Vec<f32> = values.iter().flatten().copied().collect();
     n.sort_unstable_by(f32::total_cmp);
     let med = 0.5 * (n[3] + n[4]);
-    (v - med > 6.0 * sigma && v > 8.0 * med.max(sigma)).then_some((v, med))
+    (v - off_axis > 6.0 * sigma && f64::from(v) > STAR_LIMIT * f64::from(off_axis.max(sigma)))
+        .then_some((v, med))
 }
 
-/// Find pixels at the top of a peak that stand far above the median of their eight
-/// neighbours (more than 6σ, and more than eight times that median): no pixel-sampled
-/// star is that sharp (the centre of a star of FWHM 1.3 px is about 5.5 times the median
-/// of its neighbours, analytic: erf(0.64)² against the mean of a side and a corner).
-/// This is the Laplacian-edge idea of van Dokkum (2001, PASP 113, 1420) in the form of
-/// a median contrast. Flagged pixels are replaced by that median, and each group of
+/// Find the pixels no star sampled by pixels can make (see `sharp_pixel`): hot pixels
+/// and cosmic-ray hits. This is the Laplacian-edge idea of van Dokkum (2001, PASP 113,
+/// 1420) in the form of a contrast with the brightest neighbours, which a star centred
+/// near a pixel's corner or edge (sharing its light with its neighbours) never passes,
+/// however narrow.
+/// Flagged pixels are replaced by the median of their neighbours, and each group of
 /// adjacent flagged pixels is returned once as a sharp rejection.
 pub(super) fn clean_sharp_pixels(
     residual: &mut Array2<f32>,
