@@ -84,7 +84,7 @@ pub struct AnomalyRecord {
     #[serde(serialize_with = "finite")]
     pub dec_deg: Option<f64>,
     pub detections: Vec<DetectionRecord>,
-    pub detail: serde_json::Value,
+    pub detail: crate::night::Detail,
     pub target: Option<String>,
     pub filter: Option<String>,
 }

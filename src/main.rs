@@ -546,7 +546,7 @@ fn demo_command(out: &std::path::Path) -> Result<ExitCode> {
     let mut kinds: std::collections::BTreeMap<String, usize> = Default::default();
     for a in &doc.anomalies {
         let k = a.kind.name().to_string();
-        let cosmic = a.detail.get("cosmic_ray").and_then(|v| v.as_bool()) == Some(true);
+        let cosmic = a.detail.is_cosmic_ray();
         *kinds
             .entry(if cosmic { "cosmic ray".into() } else { k })
             .or_default() += 1;

@@ -126,7 +126,7 @@ pub fn write_files(
         }
     }
     for (k, a) in summary.anomalies.iter().enumerate() {
-        if a.detail.get("cosmic_ray").and_then(|v| v.as_bool()) == Some(true) {
+        if a.detail.is_cosmic_ray() {
             continue;
         }
         let Some(d) = a.detections.first() else {

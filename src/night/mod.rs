@@ -5,6 +5,7 @@
 //! the morning summary all come through `judge`.
 
 pub mod classify;
+pub mod detail;
 pub mod judge;
 pub mod register;
 pub mod tracks;
@@ -15,6 +16,7 @@ use crate::frame::wcs::Wcs;
 use crate::measure::detect::Trail;
 use crate::measure::RejectKind;
 use crate::record::{FrameRecord, StarRecord};
+pub use detail::Detail;
 
 /// One frame as the analysis of what is unusual sees it: a view of its record, with its
 /// rejected detections sorted into sharp ones and extended ones.
@@ -125,7 +127,7 @@ pub struct Anomaly {
     pub ra_deg: Option<f64>,
     pub dec_deg: Option<f64>,
     pub detections: Vec<Detection>,
-    pub detail: serde_json::Value,
+    pub detail: Detail,
 }
 
 /// A persistent source of a night, for the catalogue kept between nights.

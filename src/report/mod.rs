@@ -154,12 +154,12 @@ pub fn subject(s: &Summary) -> String {
 }
 
 fn is_cosmic_ray(a: &AnomalyRecord) -> bool {
-    a.detail.get("cosmic_ray").and_then(|v| v.as_bool()) == Some(true)
+    a.detail.is_cosmic_ray()
 }
 
 /// The anomaly's instrumental magnitude, when the analysis gave one.
 pub fn instrumental_mag(a: &AnomalyRecord) -> Option<f64> {
-    a.detail.get("instrumental_mag").and_then(|v| v.as_f64())
+    a.detail.instrumental_mag()
 }
 
 fn kind_name(a: &AnomalyRecord) -> String {

@@ -127,9 +127,7 @@ fn anomaly_alerts(store: &Store, config: &Config, night: &str, now: f64) {
     };
     for a in &doc.anomalies {
         let kind = a.kind.name();
-        if !config.alerts.anomaly_kinds.contains(&a.kind)
-            || a.detail.get("cosmic_ray").and_then(|v| v.as_bool()) == Some(true)
-        {
+        if !config.alerts.anomaly_kinds.contains(&a.kind) || a.detail.is_cosmic_ray() {
             continue;
         }
         let place = match (a.ra_deg, a.dec_deg) {
@@ -274,7 +272,13 @@ mod tests {
                     y: 200.4,
                 })
                 .collect(),
-            detail: serde_json::Value::Null,
+            detail: crate::night::Detail::Moving(crate::night::detail::MovingDetail {
+                rate_arcsec_per_min: None,
+                position_angle_deg: None,
+                rate_px_per_min: 3.0,
+                frames,
+                instrumental_mag: None,
+            }),
             target: None,
             filter: None,
         }
