@@ -243,7 +243,7 @@ pub struct HeaderFacts {
     pub filter: Option<String>,
     pub date_obs: Option<String>,
     pub exposure_s: Option<f64>,
-    pub image_type: Option<crate::frame::ImageKind>,
+    pub image_type: Option<crate::frame::header::ImageKind>,
     pub bayer_pattern: Option<String>,
     pub ccd_temp_c: Option<f64>,
     pub has_wcs: bool,

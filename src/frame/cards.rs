@@ -129,6 +129,14 @@ impl Cards for [HeaderCard] {
     }
 }
 
+/// A header keyword to write.
+#[derive(Debug, Clone, PartialEq)]
+pub enum OutValue {
+    Text(String),
+    Int(i64),
+    Real(f64),
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;

@@ -25,7 +25,8 @@ use fitsio::sys;
 use ndarray::Array2;
 
 use super::cards::HeaderCard;
-use super::layout::{self, BlockSource, CompressedImage, ImageHdu, PlainImage, Promise, BLOCK};
+use super::layout::CompressedImage;
+use super::layout::{self, BlockSource, ImageHdu, PlainImage, Promise, BLOCK};
 use super::FrameError;
 
 /// cfitsio keeps its error-message stack in global state; one decode at a time keeps

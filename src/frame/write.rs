@@ -7,15 +7,8 @@ use fitsio::images::{ImageDescription, ImageType};
 use fitsio::FitsFile;
 use ndarray::Array2;
 
+use super::cards::OutValue;
 use super::FrameError;
-
-/// A header keyword to write.
-#[derive(Debug, Clone, PartialEq)]
-pub enum OutValue {
-    Text(String),
-    Int(i64),
-    Real(f64),
-}
 
 /// How to store the pixels.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]

@@ -2,6 +2,8 @@
 //! Gaussian near the expected PSF), a threshold at k σ of the filtered noise, 8-connected
 //! components, and deblending of close pairs by the depth of the saddle between peaks.
 //! Pure: arrays in, candidate list out.
+//! Longer than most modules: the filter, the thresholded runs, their components and the
+//! deblending are one pass over the frame's bands and share its data structures.
 
 use ndarray::Array2;
 use rayon::prelude::*;

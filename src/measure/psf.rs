@@ -10,6 +10,9 @@
 //! Gaussian  m = sky + A·exp(−u/2),        FWHM along an axis with eigenvalue λ = 2·sqrt(2 ln 2 / λ)
 //! Moffat    m = sky + A·(1 + u)^(−β),     FWHM along an axis with eigenvalue λ = 2·sqrt((2^(1/β) − 1) / λ)
 //! (the second is Moffat's 2α·sqrt(2^(1/β) − 1) with α = 1/sqrt(λ)).
+//!
+//! Longer than most modules: the two models share the stamp, the fit, the covariance and
+//! the sampled widths, which only make sense together.
 
 /// Pixels to fit: 0-based centre coordinates and values; masked pixels are left out.
 #[derive(Debug, Clone, Default)]

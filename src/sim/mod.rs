@@ -12,7 +12,7 @@ use rand_distr::{Distribution, Normal, Poisson};
 use serde::Serialize;
 
 use crate::frame::bayer::{BayerPattern, Channel};
-use crate::frame::write::OutValue;
+use crate::frame::cards::OutValue;
 
 #[derive(Debug, Clone, Copy, PartialEq, Serialize)]
 #[serde(rename_all = "lowercase")]

@@ -11,8 +11,8 @@ use serde::Serialize;
 
 use super::{base_cd, render, PsfShape, Scene, SceneStar, SimParams, SimTruth, TrailSpec};
 use crate::frame::bayer::BayerPattern;
+use crate::frame::cards::OutValue;
 use crate::frame::header::parse_iso_time;
-use crate::frame::write::OutValue;
 
 #[derive(Debug, Clone)]
 pub struct NightPlan {

@@ -17,9 +17,11 @@
 
 pub mod alerts;
 mod checks;
+mod frame;
 pub mod judge;
 pub mod schedule;
 pub mod settle;
+mod systemd;
 
 use std::collections::{HashMap, HashSet, VecDeque};
 use std::path::{Path, PathBuf};
@@ -35,10 +37,12 @@ use crate::clock::{Clock, SystemClock};
 use crate::config::Config;
 use crate::logging::shown;
 use crate::pipeline::RecordOptions;
-use crate::record::{FrameRecord, FrameStatus, Identity};
-use crate::store::{Recorded, Store, StoreError};
+use crate::record::{FrameRecord, Identity};
+use crate::store::{Store, StoreError};
+use frame::{process, settle_interrupted, store_record, LogLine, Outcome};
 pub use judge::{judge_in_store, Judging};
 use settle::{Observation, SettleTracker};
+use systemd::sd_notify;
 
 #[derive(Debug, thiserror::Error)]
 pub enum WatchError {
@@ -54,15 +58,12 @@ pub enum WatchError {
     Runtime(std::io::Error),
 }
 
-/// A file that was being read when the daemon stopped this many times is not read again
-/// until it changes: it is recorded as unreadable.
-const GIVE_UP_AFTER_INTERRUPTIONS: i64 = 3;
 /// At most this many records wait in memory for a failing store; older ones are let go
 /// and read again from their files once the store works.
 const PENDING_LIMIT: usize = 100;
 
 /// The file at `path` now, if it is a regular file.
-fn observe(path: &Path) -> Option<Identity> {
+pub(super) fn observe(path: &Path) -> Option<Identity> {
     let m = std::fs::metadata(path).ok()?;
     m.is_file().then(|| Identity::from_metadata(path, &m))
 }
@@ -74,216 +75,13 @@ fn observation(id: &Identity) -> Observation {
     }
 }
 
-/// Tell systemd (Type=notify) about our state, when it is listening.
-fn sd_notify(state: &str) {
-    let Some(socket) = std::env::var_os("NOTIFY_SOCKET") else {
-        return;
-    };
-    let Ok(sock) = std::os::unix::net::UnixDatagram::unbound() else {
-        return;
-    };
-    let name = socket.to_string_lossy().into_owned();
-    let sent = if let Some(abstract_name) = name.strip_prefix('@') {
-        #[cfg(target_os = "linux")]
-        {
-            use std::os::linux::net::SocketAddrExt;
-            std::os::unix::net::SocketAddr::from_abstract_name(abstract_name.as_bytes())
-                .and_then(|addr| sock.send_to_addr(state.as_bytes(), &addr))
-        }
-        #[cfg(not(target_os = "linux"))]
-        {
-            let _ = abstract_name;
-            Ok(0)
-        }
-    } else {
-        sock.send_to(state.as_bytes(), &name)
-    };
-    if let Err(e) = sent {
-        tracing::debug!("sd_notify {state}: {e}");
-    }
-}
-
-struct Shared {
+pub(super) struct Shared {
     clock: Arc<dyn Clock>,
     store: Mutex<Store>,
     options: RecordOptions,
     reader: crate::reader::Reader,
     judging: Judging,
     config: Config,
-}
-
-/// A line for the log, at its level.
-enum LogLine {
-    Info(String),
-    Warn(String),
-}
-
-/// What became of one file, or of one record kept for a failing store.
-enum Outcome {
-    /// In the store, now or before: the version recorded, and what to log.
-    Stored {
-        path: PathBuf,
-        version: (u64, i64),
-        log: Option<LogLine>,
-    },
-    /// Read, but the store did not take it: kept to store again.
-    NotStored {
-        record: Box<FrameRecord>,
-        error: String,
-    },
-    /// The file went before it could be read.
-    Gone(PathBuf),
-}
-
-/// One line per frame: its numbers, or why it was set aside or could not be read.
-fn frame_line(record: &FrameRecord) -> LogLine {
-    let path = shown(Path::new(&record.identity.path));
-    let reason = || crate::logging::one_line(record.error.as_deref().unwrap_or(""));
-    match (&record.status, &record.metrics) {
-        (FrameStatus::Ok, Some(m)) => LogLine::Info(format!(
-            "{path} ok stars={} fwhm_px={} ecc={} bkg={:.1} noise={:.2}",
-            m.star_count,
-            m.fwhm_px.map_or("-".into(), |v| format!("{v:.2}")),
-            m.eccentricity.map_or("-".into(), |v| format!("{v:.2}")),
-            m.background_adu,
-            m.noise_adu
-        )),
-        (FrameStatus::Skipped, _) => LogLine::Info(format!("{path} skipped: {}", reason())),
-        _ => LogLine::Warn(format!("{path} unreadable: {}", reason())),
-    }
-}
-
-/// Read one file (in a reader process) and store its record.
-fn process(shared: &Shared, path: &Path) -> Outcome {
-    let Some(identity) = observe(path) else {
-        return Outcome::Gone(path.to_path_buf());
-    };
-    {
-        let store = shared.store.lock().unwrap_or_else(|p| p.into_inner());
-        if let Err(e) = store.begin_reading(&identity, shared.clock.now_unix()) {
-            tracing::error!("{e} (marking {} as being read)", shown(path));
-        }
-    }
-    let mtime_unix = identity.mtime_unix();
-    let record = shared
-        .reader
-        .record(path, identity, mtime_unix, &shared.options);
-    store_record(shared, record)
-}
-
-/// Store a record, judge it, and do what the configuration asks with it.
-fn store_record(shared: &Shared, record: FrameRecord) -> Outcome {
-    let path = PathBuf::from(&record.identity.path);
-    let version = (record.identity.size, record.identity.mtime_ns);
-    let mut store = shared.store.lock().unwrap_or_else(|p| p.into_inner());
-    let recorded = match store.record_frame(&record, shared.clock.now_unix()) {
-        Ok(r) => r,
-        Err(e) => {
-            return Outcome::NotStored {
-                record: Box::new(record),
-                error: e.to_string(),
-            }
-        }
-    };
-    let (mut line, warn) = match frame_line(&record) {
-        LogLine::Info(l) => (l, false),
-        LogLine::Warn(l) => (l, true),
-    };
-    let id = match recorded {
-        Recorded::Already => {
-            return Outcome::Stored {
-                path,
-                version,
-                log: None,
-            }
-        }
-        Recorded::New(id) => id,
-        Recorded::Replaced { id, earlier } => {
-            line.push_str(" (a newer version of this file: its earlier record was replaced)");
-            let same_group = earlier.night == record.night
-                && earlier.target == record.target
-                && earlier.filter == record.filter;
-            if let (Some(folder), Some(night), false) = (
-                shared.judging.lists_folder.as_deref(),
-                earlier.night.as_deref(),
-                same_group,
-            ) {
-                if let Err(e) = crate::lists::rewrite(
-                    &store,
-                    folder,
-                    night,
-                    earlier.target.as_deref(),
-                    earlier.filter.as_deref(),
-                ) {
-                    tracing::warn!("{e}");
-                }
-            }
-            id
-        }
-    };
-    let verdict = judge_in_store(&store, &record, id, &shared.judging);
-    let rejected = verdict
-        .as_ref()
-        .is_ok_and(|v| v.as_deref().is_some_and(|v| v.starts_with("reject")));
-    let mut moved = String::new();
-    if shared.config.actions.move_rejected && rejected && record.status != FrameStatus::Skipped {
-        let folder = path
-            .parent()
-            .unwrap_or(Path::new("."))
-            .join(&shared.config.actions.rejected_folder);
-        match crate::actions::move_aside(&path, &folder) {
-            Ok(dest) => {
-                if let Err(e) = store.set_path(id, &dest.to_string_lossy()) {
-                    tracing::error!("{e} (recording the move of {})", shown(&path));
-                }
-                moved = format!(" moved to {}", shown(&dest));
-            }
-            Err(e) => moved = format!(" (not moved: {e})"),
-        }
-    }
-    if let (Some(night), true) = (
-        record.night.as_deref(),
-        verdict.as_ref().is_ok_and(|v| v.is_some()),
-    ) {
-        let verdicts = store
-            .group_verdicts(night, record.target.as_deref(), record.filter.as_deref())
-            .unwrap_or_default();
-        if let Some(msg) = alerts::reject_streak(
-            &alerts::AlertLimits::from_config(&shared.config.alerts),
-            &verdicts,
-        ) {
-            if let Some(alert) = checks::raise_alert(
-                &store,
-                &shared.config,
-                night,
-                "reject_streak",
-                &msg,
-                shared.clock.now_unix(),
-            ) {
-                tracing::warn!("{alert}");
-            }
-        }
-    }
-    let line = match verdict {
-        Ok(Some(v)) => format!("{line} verdict={v}{moved}"),
-        Ok(None) => line,
-        Err(e) => {
-            tracing::error!(
-                "{e} (storing the verdict of {}; judged again within a minute)",
-                shown(&path)
-            );
-            format!("{line} (verdict not stored yet)")
-        }
-    };
-    Outcome::Stored {
-        path,
-        version,
-        log: Some(if warn {
-            LogLine::Warn(line)
-        } else {
-            LogLine::Info(line)
-        }),
-    }
 }
 
 /// Run the daemon until SIGTERM or SIGINT.
@@ -333,32 +131,6 @@ fn mail_state(c: &Config) -> String {
             shown(&crate::morning::report_folder(c))
         ),
     }
-}
-
-/// Files that were in the reader when the daemon last stopped: counted, and given up
-/// after the third time (recorded as unreadable, so they are not read again until they
-/// change).
-fn settle_interrupted(store: &mut Store, now: f64) -> Result<(), StoreError> {
-    for left in store.take_interrupted()? {
-        let path = shown(Path::new(&left.identity.path));
-        if left.interruptions >= GIVE_UP_AFTER_INTERRUPTIONS {
-            let reason = format!(
-                "subwatch stopped {} times while reading this file; it is not read again until the file changes",
-                left.interruptions
-            );
-            let mut record = FrameRecord::failed(left.identity.clone(), &reason);
-            record.night = crate::sky::night_label(left.identity.mtime_unix(), chrono_tz::UTC);
-            store.record_frame(&record, now)?;
-            tracing::warn!("{path} unreadable: {reason}");
-        } else {
-            tracing::warn!(
-                "{path} was being read when subwatch last stopped ({} of {} tries); reading it again",
-                left.interruptions,
-                GIVE_UP_AFTER_INTERRUPTIONS
-            );
-        }
-    }
-    Ok(())
 }
 
 async fn daemon(

@@ -5,7 +5,8 @@ use std::path::{Path, PathBuf};
 use std::process::{Child, Command, Stdio};
 use std::time::{Duration, Instant};
 
-use subwatch::frame::write::{write_frame, Encoding, OutValue};
+use subwatch::frame::cards::OutValue;
+use subwatch::frame::write::{write_frame, Encoding};
 use subwatch::sim::{render, SimParams};
 
 pub struct Daemon {

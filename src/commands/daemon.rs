@@ -1,0 +1,138 @@
+//! The daemon's commands: `watch`, `check-config`, `status` and `outbox`.
+
+use std::path::Path;
+use std::process::ExitCode;
+
+use anyhow::{Context, Result};
+
+/// `subwatch watch`: the settings checked, then the daemon until it is stopped.
+pub fn watch(config: &Path) -> Result<ExitCode> {
+    let cfg = subwatch::config::load(config)?;
+    let (errors, warnings) = cfg.check_environment();
+    for w in &warnings {
+        tracing::warn!("{w}");
+    }
+    if !errors.is_empty() {
+        anyhow::bail!("{}: {}", config.display(), errors.join("; "));
+    }
+    subwatch::watch::run(cfg)?;
+    Ok(ExitCode::SUCCESS)
+}
+
+/// `subwatch check-config`: every setting and the machine checked; a test mail on request.
+pub fn check_config(config: &Path, send_test: bool) -> Result<ExitCode> {
+    let cfg = subwatch::config::load(config)?;
+    let (errors, warnings) = cfg.check_environment();
+    for w in &warnings {
+        println!("warning: {w}");
+    }
+    for e in &errors {
+        println!("error: {e}");
+    }
+    if !errors.is_empty() {
+        return Ok(ExitCode::from(1));
+    }
+    println!("{}: ok", config.display());
+    if send_test {
+        let settings = subwatch::mail::MailSettings::from_config(&cfg)?;
+        let note = subwatch::mail::compose_note(
+                &settings,
+                "subwatch test mail",
+                "This is a test of subwatch's mail settings. Morning summaries and alerts will come this way.",
+            )?;
+        let folder = subwatch::morning::report_folder(&cfg);
+        match subwatch::outbox::deliver(&settings, &note.into(), &folder, "subwatch-test.eml")? {
+            subwatch::outbox::Delivered::Sent => println!(
+                "test mail sent through {}:{}",
+                settings.host.as_deref().unwrap_or(""),
+                settings.port
+            ),
+            subwatch::outbox::Delivered::Written(path) => {
+                println!("no smtp_host: test mail written to {}", path.display())
+            }
+        }
+    }
+    Ok(ExitCode::SUCCESS)
+}
+
+/// `subwatch outbox`: deliver what waits in the outbox.
+pub fn outbox(config: &Path, now: bool) -> Result<ExitCode> {
+    let cfg = subwatch::config::load(config)?;
+    let store = subwatch::store::Store::open(&cfg.store.path)?;
+    let r = subwatch::morning::flush_outbox(
+        &store,
+        &cfg,
+        subwatch::clock::now_unix(),
+        if now {
+            subwatch::outbox::Due::Now
+        } else {
+            subwatch::outbox::Due::AsScheduled
+        },
+    )?;
+    println!(
+        "sent {}, written {}, failed {}",
+        r.sent,
+        r.written.len(),
+        r.failed.len()
+    );
+    for f in &r.failed {
+        eprintln!("{f}");
+    }
+    Ok(if r.failed.is_empty() {
+        ExitCode::SUCCESS
+    } else {
+        ExitCode::from(3)
+    })
+}
+
+/// `subwatch status`: tonight so far, and whether the daemon runs.
+pub fn status(config: &Path, night: Option<String>, json: bool) -> Result<ExitCode> {
+    let cfg = subwatch::config::load(config)?;
+    let now = subwatch::clock::now_unix();
+    let night = match night {
+        Some(n) => n,
+        None => subwatch::sky::night_label(now, cfg.timezone()).context("clock out of range")?,
+    };
+    let store = subwatch::store::Store::open(&cfg.store.path)?;
+    let counts = store.night_counts(&night)?;
+    let daemon: Option<serde_json::Value> = store
+        .meta("daemon")?
+        .and_then(|s| serde_json::from_str(&s).ok());
+    // Running means holding the store's daemon lock, which goes when the process does,
+    // however it ends; a heartbeat alone would outlive a killed daemon.
+    let running_pid = subwatch::store::daemon_pid(&cfg.store.path);
+    let alive = running_pid.is_some();
+    if json {
+        let doc = serde_json::json!({
+            "night": night,
+            "counts": counts,
+            "daemon": daemon,
+            "daemon_running": alive,
+            "daemon_pid": running_pid,
+        });
+        println!("{doc}");
+    } else {
+        println!("night {night}");
+        println!(
+            "  frames {}  measured {}  errors {}  skipped {}  warned {}  rejected {}",
+            counts.frames,
+            counts.measured,
+            counts.errors,
+            counts.skipped,
+            counts.warned,
+            counts.rejected
+        );
+        if let Some(t) = counts.last_recorded_unix {
+            println!("  last frame recorded {:.0} s ago", now - t);
+        }
+        match (&daemon, running_pid) {
+            (Some(d), Some(pid)) => println!(
+                "  daemon running (process {pid}): {} waiting, {} being read",
+                d["waiting"], d["in_flight"]
+            ),
+            (None, Some(pid)) => println!("  daemon running (process {pid})"),
+            (_, None) => println!("  daemon not running"),
+        }
+    }
+    Ok(ExitCode::SUCCESS)
+}

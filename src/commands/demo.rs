@@ -1,0 +1,85 @@
+//! `subwatch demo`: the invented night end to end, with its progress and what to open.
+
+use std::process::ExitCode;
+
+use anyhow::Result;
+
+/// `subwatch demo`.
+pub fn run(out: &std::path::Path) -> Result<ExitCode> {
+    let terminal = std::io::IsTerminal::is_terminal(&std::io::stderr());
+    let mut last = String::new();
+    let mut progress = |stage: &str, done: usize, total: usize| {
+        let width = 30;
+        let filled = (done * width)
+            .checked_div(total)
+            .unwrap_or(width)
+            .min(width);
+        let line = format!(
+            "[{}{}] {done}/{total} {stage}",
+            "#".repeat(filled),
+            ".".repeat(width - filled)
+        );
+        if terminal {
+            eprint!("\r{line:<70}");
+        } else if stage != last {
+            eprintln!("{stage}");
+        }
+        last = stage.to_string();
+    };
+    let outcome = subwatch::demo::run(out, &mut progress)?;
+    if terminal {
+        eprintln!();
+    }
+    let doc = &outcome.doc;
+    let count = |v: subwatch::rules::Verdict| doc.frames.iter().filter(|f| f.verdict == v).count();
+    println!(
+        "Night {} at the Kestrel Ridge Observatory (invented): {} frames in {:.0} s",
+        outcome.night,
+        doc.frames.len(),
+        outcome.seconds
+    );
+    println!(
+        "  verdicts: {} ok, {} warn, {} reject",
+        count(subwatch::rules::Verdict::Ok),
+        count(subwatch::rules::Verdict::Warn),
+        count(subwatch::rules::Verdict::Reject)
+    );
+    let mut reasons: std::collections::BTreeMap<&str, usize> = Default::default();
+    for f in &doc.frames {
+        for r in &f.reasons {
+            *reasons.entry(r.as_str()).or_default() += 1;
+        }
+    }
+    println!(
+        "  reasons: {}",
+        reasons
+            .iter()
+            .map(|(r, n)| format!("{r} {n}"))
+            .collect::<Vec<_>>()
+            .join(", ")
+    );
+    let mut kinds: std::collections::BTreeMap<String, usize> = Default::default();
+    for a in &doc.anomalies {
+        let k = a.kind.name().to_string();
+        let cosmic = a.detail.is_cosmic_ray();
+        *kinds
+            .entry(if cosmic { "cosmic ray".into() } else { k })
+            .or_default() += 1;
+    }
+    println!(
+        "  anomalies: {}",
+        kinds
+            .iter()
+            .map(|(k, n)| format!("{k} {n}"))
+            .collect::<Vec<_>>()
+            .join(", ")
+    );
+    println!("Open:");
+    println!("  report  {}", outcome.html.display());
+    println!("  frames  {}", outcome.csv.display());
+    println!("  night   {}", outcome.json.display());
+    for m in &outcome.mails {
+        println!("  mail    {}", m.display());
+    }
+    Ok(ExitCode::SUCCESS)
+}

@@ -1,0 +1,105 @@
+//! Checks against the machine, separate from reading the file: the watched folders
+//! exist, the store's folder is writable, a secret file is this user's and nobody else's,
+//! the certificate authority can be read; and the loud warnings.
+
+use std::path::Path;
+
+use super::{Config, Security};
+
+impl Config {
+    /// Checks against the machine: folders exist, the store's folder is writable, a
+    /// password file is owned by this user and readable by nobody else. Returns
+    /// (errors, warnings).
+    pub fn check_environment(&self) -> (Vec<String>, Vec<String>) {
+        let mut errors = Vec::new();
+        let mut warnings = Vec::new();
+        for f in &self.watch.folders {
+            if !f.is_dir() {
+                errors.push(format!("watch.folders: {} is not a folder", f.display()));
+            }
+        }
+        let store_dir = self.store.path.parent().unwrap_or(Path::new("."));
+        if !store_dir.is_dir() {
+            errors.push(format!(
+                "store.path: folder {} does not exist",
+                store_dir.display()
+            ));
+        } else {
+            let probe = store_dir.join(format!(".subwatch-write-test-{}", std::process::id()));
+            match std::fs::write(&probe, b"") {
+                Ok(()) => {
+                    let _ = std::fs::remove_file(&probe);
+                }
+                Err(e) => errors.push(format!(
+                    "store.path: cannot write in {}: {e}",
+                    store_dir.display()
+                )),
+            }
+        }
+        if let Some(pw) = &self.mail.password_file {
+            if let Err(e) = check_secret_file(pw) {
+                errors.push(format!("mail.password_file: {e}"));
+            }
+        }
+        if let Some(ca) = &self.mail.ca_file {
+            if let Err(e) = std::fs::read(ca) {
+                errors.push(format!("mail.ca_file: {}: {e}", ca.display()));
+            }
+        }
+        if self.mail.security == Security::None && self.mail.has_password() {
+            warnings.push(
+                "mail.security: \"none\" with send_password_unencrypted = true: the SMTP password travels UNENCRYPTED; anyone on the network path can read it".into(),
+            );
+        }
+        if self.mail.to.is_empty() {
+            warnings.push(
+                "mail.to is empty: no morning summary or alert is mailed (report --send writes the summary's files only)".into(),
+            );
+        }
+        (errors, warnings)
+    }
+}
+
+/// A file holding a secret must belong to the user reading it and be readable by nobody
+/// else (as ssh requires of a private key).
+pub fn check_secret_file(path: &Path) -> Result<(), String> {
+    use std::os::unix::fs::MetadataExt;
+    let m = std::fs::metadata(path).map_err(|e| format!("{}: {e}", path.display()))?;
+    // SAFETY: geteuid has no preconditions.
+    let me = unsafe { libc::geteuid() };
+    if m.uid() != me {
+        return Err(format!(
+            "{} belongs to user id {}, not to the user subwatch runs as ({me}); chown it",
+            path.display(),
+            m.uid()
+        ));
+    }
+    if m.mode() & 0o077 != 0 {
+        return Err(format!(
+            "{} can be read or written by other users (mode {:o}); chmod 600 it",
+            path.display(),
+            m.mode() & 0o777
+        ));
+    }
+    Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn a_secret_file_readable_by_others_or_owned_by_another_user_is_refused() {
+        use std::os::unix::fs::PermissionsExt;
+        let dir = tempfile::tempdir().unwrap();
+        let pw = dir.path().join("pw");
+        std::fs::write(&pw, "secret\n").unwrap();
+        std::fs::set_permissions(&pw, std::fs::Permissions::from_mode(0o600)).unwrap();
+        assert!(check_secret_file(&pw).is_ok());
+        for mode in [0o640, 0o604, 0o660] {
+            std::fs::set_permissions(&pw, std::fs::Permissions::from_mode(mode)).unwrap();
+            let e = check_secret_file(&pw).unwrap_err();
+            assert!(e.contains("chmod 600"), "{e}");
+        }
+    }
+}

@@ -1,0 +1,331 @@
+//! The configuration file: TOML read into typed settings once, at start. Every value is
+//! parsed into its type here (numbers into their range, times of day, time zones, mail
+//! addresses by lettre's own parser, security modes, anomaly kinds, rules), and every
+//! problem is collected with its key, its line and what was expected in plain words, so
+//! a user fixes them all in one go and nothing wrong is found later, at dawn. Unknown
+//! keys are errors. Checks against the machine (folders exist, the store's folder is
+//! writable, the password file's owner and mode) are separate: `check_environment`.
+
+mod environment;
+mod read;
+
+use std::path::{Path, PathBuf};
+
+use lettre::message::Mailbox;
+
+pub use environment::check_secret_file;
+pub use read::{parse, parse_summary_time};
+
+use crate::night::AnomalyKind;
+use crate::rules::RuleSpec;
+
+#[derive(Debug, Clone)]
+pub struct WatchConfig {
+    pub folders: Vec<PathBuf>,
+    /// 0 = native file events; otherwise scan the folders every this many seconds.
+    pub poll_seconds: f64,
+    /// A file must keep its size and time this long before it is measured.
+    pub settle_seconds: f64,
+    /// File-name patterns (`*` and `?`, case-insensitive) that are frames.
+    pub include: Vec<String>,
+    pub exclude: Vec<String>,
+    /// Folders whose name says they hold calibration frames (compared case-insensitively).
+    pub calibration_folders: Vec<String>,
+    /// Measurement workers; 0 = one per core.
+    pub workers: usize,
+    /// Compare the folders with the store this often, in case a file event was missed.
+    pub rescan_seconds: f64,
+    /// At most this many frames wait for a worker; more are picked up by the next rescan.
+    pub queue_limit: usize,
+    /// How often the daemon checks for frames that stopped, low disk, anomalies worth an
+    /// alert, the summary's time and the outbox.
+    pub checks_seconds: f64,
+}
+
+impl Default for WatchConfig {
+    fn default() -> Self {
+        Self {
+            folders: Vec::new(),
+            poll_seconds: 0.0,
+            settle_seconds: 5.0,
+            include: [
+                "*.fits",
+                "*.fit",
+                "*.fts",
+                "*.fits.fz",
+                "*.fits.gz",
+                "*.fit.gz",
+                "*.fts.gz",
+            ]
+            .map(String::from)
+            .to_vec(),
+            exclude: Vec::new(),
+            calibration_folders: [
+                "dark", "darks", "flat", "flats", "bias", "biases", "offset", "offsets",
+            ]
+            .map(String::from)
+            .to_vec(),
+            workers: 0,
+            rescan_seconds: 300.0,
+            queue_limit: 2000,
+            checks_seconds: 60.0,
+        }
+    }
+}
+
+#[derive(Debug, Clone)]
+pub struct StoreConfig {
+    pub path: PathBuf,
+}
+
+impl Default for StoreConfig {
+    fn default() -> Self {
+        Self {
+            path: PathBuf::from("subwatch.db"),
+        }
+    }
+}
+
+#[derive(Debug, Clone)]
+pub struct SiteConfig {
+    /// Degrees, north positive; unset: no Sun, Moon or twilight context.
+    pub latitude: Option<f64>,
+    /// Degrees, east positive.
+    pub longitude: Option<f64>,
+    pub elevation_m: f64,
+    pub timezone: chrono_tz::Tz,
+}
+
+impl Default for SiteConfig {
+    fn default() -> Self {
+        Self {
+            latitude: None,
+            longitude: None,
+            elevation_m: 0.0,
+            timezone: chrono_tz::UTC,
+        }
+    }
+}
+
+#[derive(Debug, Clone, Default)]
+pub struct OpticsConfig {
+    /// Used when a frame's header has no FOCALLEN.
+    pub focal_length_mm: Option<f64>,
+    /// Unbinned pixel size, used when a header has no XPIXSZ.
+    pub pixel_size_um: Option<f64>,
+    /// Electrons per ADU, when headers carry no EGAIN.
+    pub gain_e_per_adu: Option<f64>,
+    /// Saturation level in ADU, when headers carry no SATURATE.
+    pub saturation_adu: Option<f64>,
+}
+
+#[derive(Debug, Clone)]
+pub struct MeasureConfig {
+    /// Frames with more pixels are refused before any allocation.
+    pub max_pixels: u64,
+    /// Detection threshold, in σ of the matched-filtered noise.
+    pub detect_sigma: f64,
+    /// Memory a file's reader (a worker process) may use, MiB; 0 = automatic.
+    pub reader_memory_mb: u64,
+    /// A file's reader is stopped after this many seconds.
+    pub reader_timeout_seconds: f64,
+}
+
+impl Default for MeasureConfig {
+    fn default() -> Self {
+        Self {
+            max_pixels: 400_000_000,
+            detect_sigma: 5.0,
+            reader_memory_mb: 0,
+            reader_timeout_seconds: 300.0,
+        }
+    }
+}
+
+#[derive(Debug, Clone)]
+pub struct ActionsConfig {
+    /// Write per-night, per-target, per-filter lists of accepted frames.
+    pub accepted_lists: bool,
+    /// Where the lists go (default: beside the store).
+    pub lists_folder: Option<PathBuf>,
+    /// Move frames judged "reject" into a folder of this name beside them (off by
+    /// default; never on by surprise). Such folders are not watched.
+    pub move_rejected: bool,
+    pub rejected_folder: String,
+}
+
+impl Default for ActionsConfig {
+    fn default() -> Self {
+        ActionsConfig {
+            accepted_lists: false,
+            lists_folder: None,
+            move_rejected: false,
+            rejected_folder: "rejected".into(),
+        }
+    }
+}
+
+/// How the connection to the mail server is protected.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+pub enum Security {
+    #[default]
+    StartTls,
+    Tls,
+    None,
+}
+
+/// When the daemon mails the morning summary.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum SummaryTime {
+    /// At this local time of day (hour, minute), before noon.
+    At(u32, u32),
+    /// 30 minutes after astronomical dawn at the site.
+    Dawn,
+}
+
+#[derive(Debug, Clone, Default)]
+pub struct MailConfig {
+    pub smtp_host: Option<String>,
+    pub smtp_port: Option<u16>,
+    pub security: Security,
+    pub username: Option<String>,
+    pub password_file: Option<PathBuf>,
+    /// An extra certificate authority (PEM) to trust for the mail server: one on the
+    /// observatory's own network with a certificate of its own making.
+    pub ca_file: Option<PathBuf>,
+    pub from: Option<Mailbox>,
+    pub to: Vec<Mailbox>,
+    pub summary_time: Option<SummaryTime>,
+    /// The user's explicit consent to send the password over a connection that is not
+    /// encrypted (`security = "none"`).
+    pub send_password_unencrypted: bool,
+}
+
+impl MailConfig {
+    /// Whether a password would be sent (a password file, or the environment's).
+    pub fn has_password(&self) -> bool {
+        self.password_file.is_some() || std::env::var_os("SUBWATCH_SMTP_PASSWORD").is_some()
+    }
+}
+
+#[derive(Debug, Clone)]
+pub struct AlertsConfig {
+    /// Send live alerts by mail (they need `[mail] to`).
+    pub enabled: bool,
+    pub stopped_minutes: f64,
+    pub reject_streak: usize,
+    pub min_free_gb: f64,
+    pub repeat_minutes: f64,
+    pub max_per_night: usize,
+    /// Anomaly kinds worth an alert as soon as the night analysis finds them.
+    pub anomaly_kinds: Vec<AnomalyKind>,
+}
+
+impl Default for AlertsConfig {
+    fn default() -> Self {
+        AlertsConfig {
+            enabled: true,
+            stopped_minutes: 20.0,
+            reject_streak: 3,
+            min_free_gb: 5.0,
+            repeat_minutes: 60.0,
+            max_per_night: 6,
+            anomaly_kinds: vec![AnomalyKind::NewSource, AnomalyKind::Moving],
+        }
+    }
+}
+
+#[derive(Debug, Clone, Default)]
+pub struct ReportConfig {
+    pub folder: Option<PathBuf>,
+}
+
+/// The whole file, typed.
+#[derive(Debug, Clone, Default)]
+pub struct Config {
+    pub watch: WatchConfig,
+    pub store: StoreConfig,
+    pub site: SiteConfig,
+    pub optics: OpticsConfig,
+    pub measure: MeasureConfig,
+    pub actions: ActionsConfig,
+    pub mail: MailConfig,
+    pub alerts: AlertsConfig,
+    pub report: ReportConfig,
+    pub rules: Vec<RuleSpec>,
+    /// The file this configuration was read from.
+    pub source: Option<PathBuf>,
+}
+
+/// One problem with a configuration, located.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ConfigProblem {
+    pub key: String,
+    pub line: Option<usize>,
+    pub message: String,
+}
+
+impl std::fmt::Display for ConfigProblem {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        match self.line {
+            Some(l) => write!(f, "line {l}: {}: {}", self.key, self.message),
+            None => write!(f, "{}: {}", self.key, self.message),
+        }
+    }
+}
+
+#[derive(Debug, thiserror::Error)]
+pub enum ConfigError {
+    #[error("cannot read the configuration file {path}: {source}")]
+    Read {
+        path: PathBuf,
+        source: std::io::Error,
+    },
+    #[error("{path}: {} problem(s):\n  {}", .problems.len(), .problems.iter().map(|p| p.to_string()).collect::<Vec<_>>().join("\n  "))]
+    Invalid {
+        path: PathBuf,
+        problems: Vec<ConfigProblem>,
+    },
+}
+
+/// Read, parse and validate a configuration file. Checks that need the file system
+/// (folders exist, store writable) are in [`Config::check_environment`].
+pub fn load(path: &Path) -> Result<Config, ConfigError> {
+    let text = std::fs::read_to_string(path).map_err(|source| ConfigError::Read {
+        path: path.to_path_buf(),
+        source,
+    })?;
+    // Relative paths in the file are relative to the file's own folder.
+    let folder = path
+        .parent()
+        .filter(|p| !p.as_os_str().is_empty())
+        .unwrap_or(Path::new("."));
+    let base = std::fs::canonicalize(folder).unwrap_or_else(|_| folder.to_path_buf());
+    let mut config = parse(&text, &base).map_err(|problems| ConfigError::Invalid {
+        path: path.to_path_buf(),
+        problems,
+    })?;
+    config.source = Some(path.to_path_buf());
+    Ok(config)
+}
+
+impl Config {
+    /// The site's position (latitude, east longitude, elevation), when configured.
+    pub fn site_position(&self) -> Option<(f64, f64, f64)> {
+        Some((
+            self.site.latitude?,
+            self.site.longitude?,
+            self.site.elevation_m,
+        ))
+    }
+
+    /// The site's time zone.
+    pub fn timezone(&self) -> chrono_tz::Tz {
+        self.site.timezone
+    }
+
+    /// The verdict rules of the file.
+    pub fn rule_specs(&self) -> Vec<RuleSpec> {
+        self.rules.clone()
+    }
+}

@@ -1,0 +1,97 @@
+//! Each target's catalogue of persistent sources per night, against which later nights
+//! look for new sources.
+
+use rusqlite::params;
+
+use super::{Store, StoreError};
+
+impl Store {
+    /// Replace the catalogue of `target` for `night`.
+    pub fn save_catalog(
+        &mut self,
+        target: &str,
+        night: &str,
+        limit_mag: f64,
+        footprint: &[(f64, f64)],
+        sources: &[crate::night::CatalogSource],
+    ) -> Result<(), StoreError> {
+        let path = self.path.clone();
+        let err = |source| StoreError::Sqlite {
+            path: path.clone(),
+            source,
+        };
+        let tx = self.conn.transaction().map_err(err)?;
+        tx.execute(
+            "DELETE FROM catalog WHERE target = ?1 AND night = ?2",
+            params![target, night],
+        )
+        .map_err(err)?;
+        tx.execute(
+            "INSERT OR REPLACE INTO catalog_nights (target, night, limit_mag, footprint_json) VALUES (?1, ?2, ?3, ?4)",
+            params![target, night, limit_mag, serde_json::to_string(footprint).ok()],
+        )
+        .map_err(err)?;
+        {
+            let mut st = tx
+                .prepare_cached("INSERT INTO catalog (target, night, ra_deg, dec_deg, mag) VALUES (?1, ?2, ?3, ?4, ?5)")
+                .map_err(err)?;
+            for s in sources {
+                st.execute(params![target, night, s.ra_deg, s.dec_deg, s.mag])
+                    .map_err(err)?;
+            }
+        }
+        tx.commit().map_err(err)
+    }
+
+    /// Catalogues of `target` from nights before `night`, newest first.
+    pub fn earlier_catalogs(
+        &self,
+        target: &str,
+        night: &str,
+    ) -> Result<Vec<crate::night::EarlierNight>, StoreError> {
+        let mut st = self
+            .conn
+            .prepare(
+                "SELECT night, limit_mag, footprint_json FROM catalog_nights
+                 WHERE target = ?1 AND night < ?2 ORDER BY night DESC",
+            )
+            .map_err(|e| self.err(e))?;
+        let nights: Vec<(String, f64, Option<String>)> = st
+            .query_map(params![target, night], |r| {
+                Ok((r.get(0)?, r.get(1)?, r.get(2)?))
+            })
+            .map_err(|e| self.err(e))?
+            .collect::<Result<_, _>>()
+            .map_err(|e| self.err(e))?;
+        let mut out = Vec::new();
+        for (n, limit_mag, footprint) in nights {
+            let footprint: Vec<(f64, f64)> = footprint
+                .and_then(|f| serde_json::from_str(&f).ok())
+                .unwrap_or_default();
+            let mut q = self
+                .conn
+                .prepare(
+                    "SELECT ra_deg, dec_deg, mag FROM catalog WHERE target = ?1 AND night = ?2",
+                )
+                .map_err(|e| self.err(e))?;
+            let sources = q
+                .query_map(params![target, n], |r| {
+                    Ok(crate::night::CatalogSource {
+                        ra_deg: r.get(0)?,
+                        dec_deg: r.get(1)?,
+                        mag: r.get(2)?,
+                    })
+                })
+                .map_err(|e| self.err(e))?
+                .collect::<Result<_, _>>()
+                .map_err(|e| self.err(e))?;
+            out.push(crate::night::EarlierNight {
+                night: n,
+                sources,
+                limit_mag,
+                footprint,
+            });
+        }
+        Ok(out)
+    }
+}

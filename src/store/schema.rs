@@ -1,0 +1,100 @@
+//! The store's schema: each migration in order; `PRAGMA user_version` says how many a
+//! store has had. A migration is never changed once released, only followed.
+
+pub const SCHEMA_VERSION: i64 = 6;
+
+pub(super) const MIGRATIONS: &[&str] = &[
+    // 1: frames, their stars and rejected detections, and a key-value table.
+    "CREATE TABLE meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
+     CREATE TABLE frames (
+        id INTEGER PRIMARY KEY,
+        path TEXT NOT NULL,
+        size INTEGER NOT NULL,
+        mtime_ns INTEGER NOT NULL,
+        status TEXT NOT NULL,
+        error TEXT,
+        night TEXT,
+        target TEXT,
+        filter TEXT,
+        time_unix REAL,
+        header_json TEXT,
+        metrics_json TEXT,
+        star_count INTEGER,
+        fwhm_px REAL,
+        eccentricity REAL,
+        background_adu REAL,
+        noise_adu REAL,
+        recorded_at REAL NOT NULL,
+        UNIQUE (path, size, mtime_ns)
+     );
+     CREATE INDEX frames_night ON frames (night, target, filter);
+     CREATE TABLE stars (
+        frame_id INTEGER NOT NULL REFERENCES frames (id) ON DELETE CASCADE,
+        x REAL NOT NULL, y REAL NOT NULL, flux REAL, fwhm_px REAL, eccentricity REAL,
+        snr REAL, ra_deg REAL, dec_deg REAL, r REAL, g REAL, b REAL
+     );
+     CREATE INDEX stars_frame ON stars (frame_id);
+     CREATE TABLE rejected (
+        frame_id INTEGER NOT NULL REFERENCES frames (id) ON DELETE CASCADE,
+        x REAL NOT NULL, y REAL NOT NULL, kind TEXT NOT NULL, peak_adu REAL
+     );",
+    // 2: each frame's WCS; the catalogue of persistent sources each night, per target,
+    // against which later nights look for new sources.
+    "ALTER TABLE frames ADD COLUMN wcs_json TEXT;
+     ALTER TABLE stars ADD COLUMN flux_err REAL;
+     ALTER TABLE stars ADD COLUMN blended INTEGER;
+     ALTER TABLE frames ADD COLUMN verdict TEXT;
+     ALTER TABLE frames ADD COLUMN transparency_loss_mag REAL;
+     ALTER TABLE frames ADD COLUMN registration_rms_px REAL;
+     ALTER TABLE frames ADD COLUMN reasons_json TEXT;
+     CREATE TABLE catalog_nights (
+        target TEXT NOT NULL, night TEXT NOT NULL, limit_mag REAL NOT NULL,
+        footprint_json TEXT,
+        PRIMARY KEY (target, night)
+     );
+     CREATE TABLE catalog (
+        target TEXT NOT NULL, night TEXT NOT NULL,
+        ra_deg REAL NOT NULL, dec_deg REAL NOT NULL, mag REAL
+     );
+     CREATE INDEX catalog_target ON catalog (target, night);",
+    // 3: the mail outbox. A message waits here until the server took it, across
+    // restarts, so a summary is never lost.
+    "CREATE TABLE outbox (
+        id INTEGER PRIMARY KEY,
+        created_unix REAL NOT NULL,
+        subject TEXT NOT NULL,
+        envelope_from TEXT NOT NULL,
+        envelope_to TEXT NOT NULL,
+        message BLOB NOT NULL,
+        status TEXT NOT NULL DEFAULT 'queued',
+        attempts INTEGER NOT NULL DEFAULT 0,
+        next_attempt_unix REAL NOT NULL,
+        last_error TEXT,
+        done_unix REAL
+     );",
+    // 4: live alerts sent, which also carry the rate limit across restarts.
+    "CREATE TABLE alerts (
+        id INTEGER PRIMARY KEY,
+        night TEXT NOT NULL,
+        kind TEXT NOT NULL,
+        created_unix REAL NOT NULL,
+        message TEXT NOT NULL
+     );",
+    // 5: one record per path (a rewritten file replaces its record; where a file was
+    // recorded twice before, the newer record stays), and the files being read, which
+    // outlive a crash of the process reading them.
+    "DELETE FROM frames WHERE id NOT IN (SELECT MAX(id) FROM frames GROUP BY path);
+     CREATE UNIQUE INDEX frames_path ON frames (path);
+     CREATE TABLE reading (
+        path TEXT PRIMARY KEY,
+        size INTEGER NOT NULL,
+        mtime_ns INTEGER NOT NULL,
+        started_unix REAL NOT NULL,
+        interruptions INTEGER NOT NULL DEFAULT 0
+     );",
+    // 6: each frame's placement on its group's reference (the night model's first step,
+    // kept so a live verdict registers only the new frame), and the verdict it got live.
+    "ALTER TABLE frames ADD COLUMN placement_json TEXT;
+     ALTER TABLE frames ADD COLUMN live_verdict TEXT;
+     ALTER TABLE frames ADD COLUMN live_reasons_json TEXT;",
+];
