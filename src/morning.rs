@@ -60,16 +60,10 @@ pub fn judge_night(
     let records = store.night_records(night)?;
     let doc =
         crate::batch::analyse_records(&records, &c.rule_specs(), c.site_position(), Some(store))?;
-    let verdicts: Vec<(String, String, Vec<String>)> = doc
+    let verdicts: Vec<(String, crate::rules::Verdict, Vec<String>)> = doc
         .frames
         .iter()
-        .map(|f| {
-            (
-                f.path.clone(),
-                f.verdict.as_str().to_string(),
-                f.reasons.clone(),
-            )
-        })
+        .map(|f| (f.path.clone(), f.verdict, f.reasons.clone()))
         .collect();
     let changed = store.update_verdicts(&verdicts)?;
     if let (true, Some(folder)) = (changed > 0, lists_folder(c)) {

@@ -7,7 +7,9 @@
 use std::collections::{BTreeMap, BTreeSet};
 use std::path::{Path, PathBuf};
 
-const FRAME_CHILDREN: [&str; 7] = ["bayer", "cards", "fits", "header", "layout", "wcs", "write"];
+const FRAME_CHILDREN: [&str; 8] = [
+    "bayer", "cards", "cfitsio", "fits", "header", "layout", "wcs", "write",
+];
 
 /// The module a file belongs to for layering: a top-level module, or `frame::child`.
 fn unit_of(rel: &Path) -> String {

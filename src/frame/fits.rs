@@ -14,24 +14,17 @@
 //! This module opens files and nothing else reads pixels from disk. It never writes to
 //! the file it reads.
 
-use std::ffi::{CStr, CString};
 use std::io::Read;
-use std::os::raw::{c_char, c_int};
 use std::os::unix::fs::FileExt;
 use std::path::Path;
-use std::sync::Mutex;
 
-use fitsio::sys;
 use ndarray::Array2;
 
 use super::cards::HeaderCard;
+use super::cfitsio::Fits;
 use super::layout::CompressedImage;
 use super::layout::{self, BlockSource, ImageHdu, PlainImage, Promise, BLOCK};
 use super::FrameError;
-
-/// cfitsio keeps its error-message stack in global state; one decode at a time keeps
-/// messages attached to the right file.
-static CFITSIO: Mutex<()> = Mutex::new(());
 
 /// What the decoder hands to the rest of the program.
 pub struct DecodedImage {
@@ -269,57 +262,6 @@ fn decode_hdu(
 const TRUNCATED: &str =
     "pixel data unreadable (truncated file?): the file ends inside the image data";
 
-struct OpenFile(*mut sys::fitsfile);
-
-impl Drop for OpenFile {
-    fn drop(&mut self) {
-        let mut status = 0;
-        // SAFETY: the pointer came from a successful ffdkopn and is closed once.
-        unsafe {
-            sys::ffclos(self.0, &mut status);
-        }
-    }
-}
-
-fn cfitsio_message(status: c_int) -> String {
-    let mut text = [0 as c_char; 32];
-    // SAFETY: ffgerr writes at most 31 characters plus NUL into a 31-char buffer.
-    unsafe { sys::ffgerr(status, text.as_mut_ptr()) };
-    let short = unsafe { CStr::from_ptr(text.as_ptr()) }
-        .to_string_lossy()
-        .trim()
-        .to_string();
-    // Drain the detailed message stack; keep its first line, which names the cause.
-    let mut detail = String::new();
-    let mut buf = [0 as c_char; 81];
-    loop {
-        // SAFETY: ffgmsg writes at most 80 characters plus NUL.
-        let got = unsafe { sys::ffgmsg(buf.as_mut_ptr()) };
-        if got == 0 {
-            break;
-        }
-        if detail.is_empty() {
-            detail = unsafe { CStr::from_ptr(buf.as_ptr()) }
-                .to_string_lossy()
-                .trim()
-                .to_string();
-        }
-    }
-    if detail.is_empty() || detail.eq_ignore_ascii_case(&short) {
-        format!("{short} (cfitsio status {status})")
-    } else {
-        format!("{short}: {detail} (cfitsio status {status})")
-    }
-}
-
-fn check(status: c_int, what: &str) -> Result<(), String> {
-    if status == 0 {
-        Ok(())
-    } else {
-        Err(format!("{what}: {}", cfitsio_message(status)))
-    }
-}
-
 /// Where cfitsio reads a compressed image from.
 enum Opened<'a> {
     Path(&'a Path),
@@ -331,81 +273,12 @@ enum Opened<'a> {
 /// `layout::check_compressed`; cfitsio still reads tile bytes that nothing checked,
 /// which is why decoding runs in a worker process.
 fn read_compressed(from: Opened<'_>, image: &CompressedImage) -> Result<Vec<f32>, String> {
-    let _guard = CFITSIO.lock().unwrap_or_else(|p| p.into_inner());
-    // SAFETY: clears cfitsio's global message stack.
-    unsafe { sys::ffcmsg() };
-    let mut status: c_int = 0;
-    let mut raw: *mut sys::fitsfile = std::ptr::null_mut();
-    // cfitsio keeps pointers to the buffer's address and size; they live on this stack
-    // frame until the file is closed below.
-    let mut mem_ptr: *mut std::os::raw::c_void;
-    let mut mem_size: usize;
-    match from {
-        Opened::Path(path) => {
-            let c_path = CString::new(path.as_os_str().as_encoded_bytes())
-                .map_err(|_| "path contains a NUL byte".to_string())?;
-            // ffdkopn: no extended-filename syntax, so brackets or a leading '!' in a
-            // user's path are taken literally.
-            // SAFETY: valid C string and out-pointers.
-            unsafe { sys::ffdkopn(&mut raw, c_path.as_ptr(), 0, &mut status) };
-        }
-        Opened::Memory(bytes) => {
-            mem_ptr = bytes.as_mut_ptr().cast();
-            mem_size = bytes.len();
-            let name = CString::new("inflated.fits").expect("no NUL");
-            // SAFETY: the buffer outlives the open file (closed before this function
-            // returns); read-only mode, so cfitsio never reallocates it.
-            unsafe {
-                sys::ffomem(
-                    &mut raw,
-                    name.as_ptr(),
-                    0,
-                    &mut mem_ptr,
-                    &mut mem_size,
-                    0,
-                    None,
-                    &mut status,
-                )
-            };
-        }
-    }
-    if status != 0 || raw.is_null() {
-        return Err(format!(
-            "not a readable FITS file: {}",
-            cfitsio_message(status)
-        ));
-    }
-    let file = OpenFile(raw);
-    let mut hdu_type: c_int = 0;
-    // SAFETY: valid open file and out-pointers.
-    unsafe { sys::ffmahd(file.0, image.hdu as c_int + 1, &mut hdu_type, &mut status) };
-    check(status, &format!("moving to HDU {}", image.hdu + 1))?;
-    let pixels = image.width * image.height;
-    let mut data: Vec<f32> = crate::buffer::try_zeroed(pixels as usize)
-        .ok_or_else(|| format!("cannot allocate {pixels} pixels"))?;
-    let mut any_null: c_int = 0;
-    // A NaN null value makes cfitsio replace BLANK (integer) pixels by NaN.
-    // SAFETY: `data` holds exactly `pixels` elements.
-    unsafe {
-        sys::ffgpve(
-            file.0,
-            0,
-            1,
-            pixels as sys::LONGLONG,
-            f32::NAN,
-            data.as_mut_ptr(),
-            &mut any_null,
-            &mut status,
-        )
+    let mut file = match from {
+        Opened::Path(path) => Fits::open_path(path)?,
+        Opened::Memory(bytes) => Fits::open_memory(bytes)?,
     };
-    if status != 0 {
-        return Err(format!(
-            "pixel data unreadable (truncated file?): {}",
-            cfitsio_message(status)
-        ));
-    }
-    drop(file);
-    Ok(data)
+    file.move_to(image.hdu)?;
+    file.read_f32((image.width * image.height) as usize)
 }
 
 /// Pixels converted in parallel chunks of this many.

@@ -4,6 +4,7 @@
 
 pub mod bayer;
 pub mod cards;
+mod cfitsio;
 pub mod fits;
 pub mod header;
 pub mod layout;

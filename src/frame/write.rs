@@ -72,10 +72,7 @@ pub fn write_frame(
     let hdu = file.hdu(hdu_index).map_err(|e| fail(e.to_string()))?;
     // The writing library names the primary HDU "_PRIMARY"; a camera's file has no
     // EXTNAME there, so remove it.
-    let mut status = 0;
-    let name = std::ffi::CString::new("EXTNAME").expect("no NUL");
-    // SAFETY: the file is open for writing and the pointer stays valid for this call.
-    unsafe { fitsio::sys::ffdkey(file.as_raw(), name.as_ptr(), &mut status) };
+    super::cfitsio::delete_key(&mut file, "EXTNAME").map_err(fail)?;
     let flat: Vec<f32> = pixels.iter().copied().collect();
     match encoding {
         Encoding::Unsigned16 | Encoding::Compressed(_) => {

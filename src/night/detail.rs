@@ -5,18 +5,12 @@ use serde::Serialize;
 
 use crate::finite::finite;
 
-/// A streak across one frame (satellite, aircraft, meteor).
+/// A streak across one frame (satellite, aircraft, meteor): as measured, and its ends
+/// on the sky.
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct TrailDetail {
-    /// End points, FITS pixels of the frame.
-    pub x0: f64,
-    pub y0: f64,
-    pub x1: f64,
-    pub y1: f64,
-    /// From +x towards +y, degrees in [0, 180).
-    pub angle_deg: f64,
-    pub width_px: f64,
-    pub length_px: f64,
+    #[serde(flatten)]
+    pub trail: crate::measure::detect::Trail,
     /// The ends on the sky (RA, Dec degrees), with a WCS.
     pub start_radec_deg: Option<[f64; 2]>,
     pub end_radec_deg: Option<[f64; 2]>,

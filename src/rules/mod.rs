@@ -24,6 +24,12 @@ impl Verdict {
             Verdict::Reject => "reject",
         }
     }
+
+    pub fn from_name(name: &str) -> Option<Self> {
+        [Verdict::Ok, Verdict::Warn, Verdict::Reject]
+            .into_iter()
+            .find(|v| v.as_str() == name)
+    }
 }
 
 /// What the rules look at for one frame.

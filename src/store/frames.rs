@@ -9,6 +9,7 @@ use super::{Store, StoreError};
 use crate::measure::Rejected;
 use crate::night::judge::Placement;
 use crate::record::{FrameRecord, FrameStatus, Identity, StarRecord};
+use crate::rules::Verdict;
 
 /// What recording a frame did.
 #[derive(Debug, Clone, PartialEq)]
@@ -464,7 +465,7 @@ impl Store {
     pub fn set_live_verdict(
         &self,
         id: i64,
-        verdict: &str,
+        verdict: Verdict,
         reasons: &[String],
         transparency_loss_mag: Option<f64>,
     ) -> Result<(), StoreError> {
@@ -472,7 +473,7 @@ impl Store {
         self.run(
             "UPDATE frames SET verdict = ?2, reasons_json = ?3, live_verdict = ?2,
                 live_reasons_json = ?3, transparency_loss_mag = ?4 WHERE id = ?1",
-            params![id, verdict, reasons, transparency_loss_mag],
+            params![id, verdict.as_str(), reasons, transparency_loss_mag],
         )
     }
 
@@ -480,14 +481,14 @@ impl Store {
     pub fn set_verdict(
         &self,
         id: i64,
-        verdict: &str,
+        verdict: Verdict,
         reasons: &[String],
     ) -> Result<(), StoreError> {
         self.run(
             "UPDATE frames SET verdict = ?2, reasons_json = ?3 WHERE id = ?1",
             params![
                 id,
-                verdict,
+                verdict.as_str(),
                 serde_json::to_string(reasons).unwrap_or_default()
             ],
         )
@@ -497,7 +498,7 @@ impl Store {
     /// transaction. Returns how many changed.
     pub fn update_verdicts(
         &mut self,
-        verdicts: &[(String, String, Vec<String>)],
+        verdicts: &[(String, Verdict, Vec<String>)],
     ) -> Result<usize, StoreError> {
         let path = self.path.clone();
         let err = |source| StoreError::Sqlite {
@@ -515,7 +516,9 @@ impl Store {
                 .map_err(err)?;
             for (p, verdict, reasons) in verdicts {
                 let reasons = serde_json::to_string(reasons).unwrap_or_default();
-                changed += st.execute(params![p, verdict, reasons]).map_err(err)?;
+                changed += st
+                    .execute(params![p, verdict.as_str(), reasons])
+                    .map_err(err)?;
             }
         }
         tx.commit().map_err(err)?;
@@ -542,12 +545,13 @@ impl Store {
         night: &str,
         target: Option<&str>,
         filter: Option<&str>,
-    ) -> Result<Vec<String>, StoreError> {
-        self.strings(
+    ) -> Result<Vec<Verdict>, StoreError> {
+        let names = self.strings(
             "SELECT verdict FROM frames WHERE night = ?1 AND target IS ?2 AND filter IS ?3
              AND verdict IS NOT NULL ORDER BY COALESCE(time_unix, recorded_at), id",
             params![night, target, filter],
-        )
+        )?;
+        Ok(names.iter().filter_map(|n| Verdict::from_name(n)).collect())
     }
 
     /// The (target, filter) groups of one night's frames.

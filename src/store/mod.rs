@@ -151,8 +151,12 @@ mod tests {
         let mut s = Store::open(&dir.path().join("s.db")).unwrap();
         let first = s.record_frame(&record("/a.fits", 10), 1.0).unwrap();
         assert!(matches!(first, Recorded::New(_)));
-        s.set_verdict(first.id().unwrap(), "reject", &["fwhm_high".into()])
-            .unwrap();
+        s.set_verdict(
+            first.id().unwrap(),
+            crate::rules::Verdict::Reject,
+            &["fwhm_high".into()],
+        )
+        .unwrap();
         assert_eq!(
             s.record_frame(&record("/a.fits", 10), 2.0).unwrap(),
             Recorded::Already

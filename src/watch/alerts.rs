@@ -2,6 +2,8 @@
 //! a rate limit so a bad night sends a handful of mails, not hundreds. Pure decisions;
 //! the daemon supplies the facts and sends.
 
+use crate::rules::Verdict;
+
 /// Limits from the configuration.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct AlertLimits {
@@ -63,10 +65,13 @@ pub fn frames_stopped(
 }
 
 /// A streak of rejections at the end of `verdicts` (oldest first).
-pub fn reject_streak(limits: &AlertLimits, verdicts: &[String]) -> Option<String> {
+pub fn reject_streak(limits: &AlertLimits, verdicts: &[Verdict]) -> Option<String> {
     let n = limits.reject_streak.max(1);
-    (verdicts.len() >= n && verdicts[verdicts.len() - n..].iter().all(|v| v == "reject"))
-        .then(|| format!("the last {n} frames were all rejected (clouds, dew, focus or tracking)"))
+    (verdicts.len() >= n
+        && verdicts[verdicts.len() - n..]
+            .iter()
+            .all(|v| *v == Verdict::Reject))
+    .then(|| format!("the last {n} frames were all rejected (clouds, dew, focus or tracking)"))
 }
 
 /// Low disk space on any of the file systems the daemon uses, each given as a folder on
@@ -97,7 +102,11 @@ mod tests {
             "daylight"
         );
         assert!(frames_stopped(&l, 10_000.0, Some(10_000.0 - 5.0 * 60.0), None).is_none());
-        let v = |s: &[&str]| s.iter().map(|x| x.to_string()).collect::<Vec<_>>();
+        let v = |s: &[&str]| {
+            s.iter()
+                .filter_map(|x| Verdict::from_name(x))
+                .collect::<Vec<_>>()
+        };
         assert!(reject_streak(&l, &v(&["ok", "reject", "reject", "reject"])).is_some());
         assert!(reject_streak(&l, &v(&["reject", "ok", "reject", "reject"])).is_none());
         let disks = |a: u64, b: u64| {

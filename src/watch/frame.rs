@@ -7,6 +7,7 @@ use std::path::{Path, PathBuf};
 use super::{alerts, checks, judge_in_store, observe, Shared};
 use crate::logging::shown;
 use crate::record::{FrameRecord, FrameStatus};
+use crate::rules::Verdict;
 use crate::store::{Recorded, Store, StoreError};
 
 /// A file that was being read when the daemon stopped this many times is not read again
@@ -124,7 +125,7 @@ pub(super) fn store_record(shared: &Shared, record: FrameRecord) -> Outcome {
     let verdict = judge_in_store(&store, &record, id, &shared.judging);
     let rejected = verdict
         .as_ref()
-        .is_ok_and(|v| v.as_deref().is_some_and(|v| v.starts_with("reject")));
+        .is_ok_and(|v| v.as_ref().is_some_and(|j| j.verdict == Verdict::Reject));
     let mut moved = String::new();
     if shared.config.actions.move_rejected && rejected && record.status != FrameStatus::Skipped {
         let folder = path

@@ -7,6 +7,7 @@ use std::path::PathBuf;
 
 use crate::night::judge::{self, Placement, Site};
 use crate::record::FrameRecord;
+use crate::rules::Verdict;
 use crate::store::{GroupKey, Store, StoreError};
 
 /// What the live verdict needs besides the store.
@@ -18,14 +19,33 @@ pub struct Judging {
     pub lists_folder: Option<PathBuf>,
 }
 
+/// A live verdict with its reasons.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Judged {
+    pub verdict: Verdict,
+    pub reasons: Vec<String>,
+}
+
+impl std::fmt::Display for Judged {
+    /// "reject (fwhm_high,trail)", as the log line shows it.
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str(self.verdict.as_str())?;
+        if !self.reasons.is_empty() {
+            write!(f, " ({})", self.reasons.join(","))?;
+        }
+        Ok(())
+    }
+}
+
 /// Judge a just-recorded frame against the night so far, store the verdict, and refresh
-/// the group's list when asked to. Returns "verdict (reasons)" for the log.
+/// the group's list when asked to. `None` for a frame that is not judged (a calibration
+/// frame, or one without a night).
 pub fn judge_in_store(
     store: &Store,
     record: &FrameRecord,
     id: i64,
     judging: &Judging,
-) -> Result<Option<String>, StoreError> {
+) -> Result<Option<Judged>, StoreError> {
     let key = GroupKey {
         night: record.night.clone(),
         target: record.target.clone(),
@@ -51,7 +71,7 @@ fn judge_frame(
     key: &GroupKey,
     id: i64,
     judging: &Judging,
-) -> Result<Option<String>, StoreError> {
+) -> Result<Option<Judged>, StoreError> {
     let Some(night) = key.night.as_deref() else {
         return Ok(None);
     };
@@ -82,7 +102,7 @@ fn judge_frame(
         return Ok(None);
     };
     let j = &judged[k];
-    let verdict = j.judgement.verdict.as_str();
+    let verdict = j.judgement.verdict;
     store.set_live_verdict(id, verdict, &j.judgement.reasons, j.transparency_loss_mag)?;
     if let Some(folder) = judging.lists_folder.as_deref() {
         if let Err(e) = crate::lists::rewrite(
@@ -95,10 +115,8 @@ fn judge_frame(
             tracing::warn!("{e}");
         }
     }
-    let reasons = if j.judgement.reasons.is_empty() {
-        String::new()
-    } else {
-        format!(" ({})", j.judgement.reasons.join(","))
-    };
-    Ok(Some(format!("{verdict}{reasons}")))
+    Ok(Some(Judged {
+        verdict,
+        reasons: j.judgement.reasons.clone(),
+    }))
 }
