@@ -5,7 +5,9 @@
 use std::collections::BTreeMap;
 use std::path::Path;
 
-use crate::contract::{AnomalyRecord, DetectionRecord, NightDocument, NightFrameRecord};
+use crate::contract::{
+    AnomalyRecord, DetectionRecord, GroupLimits, NightDocument, NightFrameRecord,
+};
 use crate::night::judge::{judge_night, Site};
 use crate::record::{FrameRecord, FrameStatus, Identity};
 use crate::rules::RuleSpec;
@@ -23,6 +25,7 @@ pub fn analyse_records(
     let mut doc = NightDocument {
         frames: Vec::new(),
         anomalies: Vec::new(),
+        limits: Vec::new(),
     };
     let mut groups: BTreeMap<(String, String), Vec<&FrameRecord>> = BTreeMap::new();
     for r in records.iter().filter(|r| r.status != FrameStatus::Skipped) {
@@ -44,6 +47,11 @@ pub fn analyse_records(
             _ => Vec::new(),
         };
         let judged = judge_night(&frames, &earlier, rules, site);
+        doc.limits.push(GroupLimits {
+            target: Some(target.clone()).filter(|t| !t.is_empty()),
+            filter: Some(filter.clone()).filter(|t| !t.is_empty()),
+            limits: judged.limits.clone(),
+        });
         let found = &judged.findings;
         if let (Some(s), Some(n), Some(limit)) = (&mut store, &night_label, found.limit_mag) {
             if !target.is_empty() && !found.catalog.is_empty() {

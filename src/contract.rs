@@ -94,4 +94,15 @@ pub struct AnomalyRecord {
 pub struct NightDocument {
     pub frames: Vec<NightFrameRecord>,
     pub anomalies: Vec<AnomalyRecord>,
+    /// Each group's limits, for the summary's plots (not part of the JSON document).
+    #[serde(skip)]
+    pub limits: Vec<GroupLimits>,
+}
+
+/// The limits one target-and-filter group was judged against.
+#[derive(Debug, Clone)]
+pub struct GroupLimits {
+    pub target: Option<String>,
+    pub filter: Option<String>,
+    pub limits: Vec<crate::rules::Limit>,
 }

@@ -122,13 +122,13 @@ fn render_all(
     prev.start = iso(dawn - 86_400.0 - 20.0 * cadence);
     progress("rendering the previous night", 0, 3);
     let (previous, _) = render_night(&prev);
-    progress("rendering tonight (colour target)", 1, 3);
-    let (colour, _) = render_night(&b);
+    progress("rendering tonight (color target)", 1, 3);
+    let (color, _) = render_night(&b);
     progress("rendering tonight (Kestrel Field A)", 2, 3);
     let (mono, _) = render_night(&a);
     progress("rendered", 3, 3);
     let mut tonight: Vec<(NightFrame, &'static str)> =
-        colour.into_iter().map(|f| (f, "kestrel-field-b")).collect();
+        color.into_iter().map(|f| (f, "kestrel-field-b")).collect();
     tonight.extend(mono.into_iter().map(|f| (f, "kestrel-field-a")));
     (previous, tonight)
 }
@@ -174,7 +174,7 @@ pub fn run(
         let judging = crate::watch::Judging {
             rules: Vec::new(),
             site: config.site_position(),
-            lists_folder: None,
+            lists: None,
         };
         let mut label = None;
         for f in &previous {

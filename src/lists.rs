@@ -8,7 +8,33 @@
 use std::io::Write;
 use std::path::{Path, PathBuf};
 
+use crate::config::Config;
 use crate::store::Store;
+
+/// Where the lists go and what they hold.
+#[derive(Debug, Clone)]
+pub struct Lists {
+    pub folder: PathBuf,
+    /// Frames that only warned are listed too.
+    pub stack_warned: bool,
+}
+
+impl Lists {
+    /// The lists the configuration asks for (`[actions] accepted_lists`), in
+    /// `[actions] lists_folder`, else `accepted` beside the store.
+    pub fn from_config(c: &Config) -> Option<Lists> {
+        c.actions.accepted_lists.then(|| Lists {
+            folder: c.actions.lists_folder.clone().unwrap_or_else(|| {
+                c.store
+                    .path
+                    .parent()
+                    .unwrap_or(Path::new("."))
+                    .join("accepted")
+            }),
+            stack_warned: c.actions.stack_warned,
+        })
+    }
+}
 
 /// A name made safe for a file name: letters, digits, `-` and `_`; anything else `_`.
 fn file_part(s: Option<&str>) -> String {
@@ -41,14 +67,14 @@ pub fn list_path(
 /// Rewrite the list of one group from the store's verdicts. Returns the list's path.
 pub fn rewrite(
     store: &Store,
-    folder: &Path,
+    lists: &Lists,
     night: &str,
     target: Option<&str>,
     filter: Option<&str>,
 ) -> Result<PathBuf, String> {
-    let file = list_path(folder, night, target, filter);
+    let file = list_path(&lists.folder, night, target, filter);
     let paths = store
-        .accepted_paths(night, target, filter)
+        .accepted_paths(night, target, filter, lists.stack_warned)
         .map_err(|e| e.to_string())?;
     let dir = file.parent().expect("a list has a folder");
     let write = || -> std::io::Result<()> {
@@ -67,12 +93,12 @@ pub fn rewrite(
 }
 
 /// Rewrite the lists of every group of a night (after its verdicts were judged again).
-pub fn rewrite_night(store: &Store, folder: &Path, night: &str) -> Vec<Result<PathBuf, String>> {
+pub fn rewrite_night(store: &Store, lists: &Lists, night: &str) -> Vec<Result<PathBuf, String>> {
     match store.night_groups(night) {
         Ok(groups) => groups
             .iter()
             .map(|(target, filter)| {
-                rewrite(store, folder, night, target.as_deref(), filter.as_deref())
+                rewrite(store, lists, night, target.as_deref(), filter.as_deref())
             })
             .collect(),
         Err(e) => vec![Err(e.to_string())],

@@ -56,7 +56,7 @@ pub fn init(default: &str) {
         .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new(default));
     let _ = tracing_subscriber::fmt()
         .with_writer(|| Escaping(std::io::stderr()))
-        // Colour codes are control characters too; plain text everywhere.
+        // Color codes are control characters too; plain text everywhere.
         .with_ansi(false)
         .with_env_filter(filter)
         .try_init();

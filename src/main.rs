@@ -20,27 +20,39 @@ struct Cli {
     command: Command,
 }
 
+/// Where the configuration is read from.
+#[derive(clap::Args)]
+struct ConfigFile {
+    /// The configuration file; config/subwatch.toml documents every key.
+    #[arg(
+        long = "config",
+        value_name = "FILE",
+        default_value = "/etc/subwatch/subwatch.toml"
+    )]
+    path: PathBuf,
+}
+
 #[derive(Subcommand)]
 enum Command {
     /// Measure frames: FWHM, eccentricity, background, noise, star count, SNR.
     Measure(commands::measure::MeasureArgs),
     /// Watch the configured folders and record every frame in the store (the daemon).
     Watch {
-        #[arg(long)]
-        config: PathBuf,
+        #[command(flatten)]
+        config: ConfigFile,
     },
     /// Check a configuration file: every key, the folders, the store, the password file.
     CheckConfig {
-        #[arg(long)]
-        config: PathBuf,
+        #[command(flatten)]
+        config: ConfigFile,
         /// Also send a test mail through the configured server now.
         #[arg(long)]
         send_test: bool,
     },
     /// Tonight so far: frames seen, measured, errors, last frame, the daemon's queue.
     Status {
-        #[arg(long)]
-        config: PathBuf,
+        #[command(flatten)]
+        config: ConfigFile,
         /// Night label (YYYY-MM-DD); default: the night in progress.
         #[arg(long)]
         night: Option<String>,
@@ -53,6 +65,9 @@ enum Command {
         /// Print the night document as JSON.
         #[arg(long)]
         json: bool,
+        /// Also list every frame and every cosmic-ray hit.
+        #[arg(long, conflicts_with = "json")]
+        all: bool,
         /// Configuration (site time zone, optics, patterns, and the store whose earlier
         /// nights are compared for new sources).
         #[arg(long)]
@@ -64,21 +79,26 @@ enum Command {
     /// The night document (frames with verdicts, anomalies) from the daemon's store;
     /// with --send, the morning summary (HTML and CSV in the report folder) by mail now.
     Report {
-        #[arg(long)]
-        config: PathBuf,
-        /// Night label (YYYY-MM-DD): the local date of the evening the night began.
+        #[command(flatten)]
+        config: ConfigFile,
+        /// Night label (YYYY-MM-DD): the local date of the evening the night began;
+        /// default: the night in progress, or the one that ended this morning.
         #[arg(long)]
         night: Option<String>,
+        /// Print the night document as JSON.
         #[arg(long)]
         json: bool,
+        /// Also list every frame and every cosmic-ray hit.
+        #[arg(long, conflicts_with = "json")]
+        all: bool,
         /// Write the summary files and mail the summary (to a .eml file without a server).
         #[arg(long)]
         send: bool,
     },
     /// Deliver the mail waiting in the outbox (it is retried with growing waits).
     Outbox {
-        #[arg(long)]
-        config: PathBuf,
+        #[command(flatten)]
+        config: ConfigFile,
         /// Try every waiting message now, whatever its wait.
         #[arg(long)]
         now: bool,
@@ -93,18 +113,20 @@ enum Command {
         /// UTC, ISO 8601.
         #[arg(long)]
         time: String,
-        /// A target's RA and Dec of date, degrees (also converted to J2000).
-        #[arg(long, allow_hyphen_values = true)]
+        /// A target's RA of date, degrees (also converted to J2000); needs --dec.
+        #[arg(long, allow_hyphen_values = true, requires = "dec")]
         ra: Option<f64>,
-        #[arg(long, allow_hyphen_values = true)]
+        /// The target's Dec of date, degrees; needs --ra.
+        #[arg(long, allow_hyphen_values = true, requires = "ra")]
         dec: Option<f64>,
     },
     /// A whole invented night, end to end: frames land in a watched folder, the daemon
     /// measures and judges them, and the morning summary is written (no setup needed).
     Demo {
-        /// Where to put it all (created; an earlier demo's folder is replaced).
-        #[arg(long, default_value = "subwatch-demo")]
-        out: PathBuf,
+        /// Where to put it all (created; an earlier demo's folder is replaced). Default:
+        /// subwatch-demo in the system's temporary folder, so a checkout stays clean.
+        #[arg(long)]
+        out: Option<PathBuf>,
     },
     /// Render a synthetic night of frames with known events into a folder.
     RenderNight {
@@ -115,10 +137,10 @@ enum Command {
         /// The same field a night later, with one new source.
         #[arg(long)]
         second_night: bool,
-        /// A one-shot-colour sequence with one very red star.
+        /// A one-shot-color sequence with one very red star.
         #[arg(long)]
-        colour: bool,
-        /// Number of frames (default: 40, or 10 for colour).
+        color: bool,
+        /// Number of frames (default: 40, or 10 for color).
         #[arg(long)]
         frames: Option<usize>,
     },
@@ -169,27 +191,31 @@ fn describe(e: &anyhow::Error) -> String {
 fn run(cli: Cli) -> Result<ExitCode> {
     use commands::*;
     match cli.command {
-        Command::Watch { config } => daemon::watch(&config),
-        Command::CheckConfig { config, send_test } => daemon::check_config(&config, send_test),
+        Command::Watch { config } => daemon::watch(&config.path),
+        Command::CheckConfig { config, send_test } => daemon::check_config(&config.path, send_test),
         Command::Status {
             config,
             night,
             json,
-        } => daemon::status(&config, night, json),
-        Command::Outbox { config, now } => daemon::outbox(&config, now),
+        } => daemon::status(&config.path, night, json),
+        Command::Outbox { config, now } => daemon::outbox(&config.path, now),
         Command::Night {
             dir,
             json,
+            all,
             config,
             report,
-        } => night::night(&dir, json, config.as_deref(), report.as_deref()),
+        } => night::night(&dir, json, all, config.as_deref(), report.as_deref()),
         Command::Report {
             config,
             night,
             json,
+            all,
             send,
-        } => night::report(&config, night, json, send),
-        Command::Demo { out } => demo::run(&out),
+        } => night::report(&config.path, night, json, all, send),
+        Command::Demo { out } => {
+            demo::run(&out.unwrap_or_else(|| std::env::temp_dir().join("subwatch-demo")))
+        }
         Command::ReadWorker => {
             subwatch::reader::serve(std::io::stdin().lock(), std::io::stdout().lock())
                 .context("read-worker")?;
@@ -206,9 +232,9 @@ fn run(cli: Cli) -> Result<ExitCode> {
             out,
             seed,
             second_night,
-            colour,
+            color,
             frames,
-        } => render::night(&out, seed, second_night, colour, frames),
+        } => render::night(&out, seed, second_night, color, frames),
         Command::Measure(args) => measure::run(args),
         Command::Render(args) => render::frame(args),
     }

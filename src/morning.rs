@@ -44,19 +44,37 @@ pub fn report_folder(c: &Config) -> PathBuf {
     })
 }
 
+/// The summary's settings from the configuration: the site's clock, and whether warned
+/// frames are stacked.
+pub fn settings(c: &Config) -> report::Settings {
+    report::Settings {
+        tz: c.timezone(),
+        stack_warned: c.actions.stack_warned,
+    }
+}
+
 /// Build the night's summary and write its HTML (images inside as data URIs) and CSV.
 pub fn prepare(store: &mut Store, c: &Config, night: &str) -> Result<Prepared, MorningError> {
-    let doc = judge_night(store, c, night)?;
-    write_files(doc, night, &report_folder(c), &c.measure)
+    let judged = judge_night(store, c, night)?;
+    write_files(
+        judged.doc,
+        night,
+        &report_folder(c),
+        &c.measure,
+        settings(c),
+    )
+}
+
+/// A recorded night judged again: the document, and the frames whose stored verdict
+/// or reasons changed (a rule changed since they were judged).
+pub struct Rejudged {
+    pub doc: NightDocument,
+    pub changed: Vec<crate::store::VerdictChange>,
 }
 
 /// Judge a recorded night with the configuration's rules, keep the verdicts in the store
 /// and, when lists are kept, rewrite the night's lists where a verdict changed.
-pub fn judge_night(
-    store: &mut Store,
-    c: &Config,
-    night: &str,
-) -> Result<NightDocument, MorningError> {
+pub fn judge_night(store: &mut Store, c: &Config, night: &str) -> Result<Rejudged, MorningError> {
     let records = store.night_records(night)?;
     let doc =
         crate::batch::analyse_records(&records, &c.rule_specs(), c.site_position(), Some(store))?;
@@ -66,29 +84,19 @@ pub fn judge_night(
         .map(|f| (f.path.clone(), f.verdict, f.reasons.clone()))
         .collect();
     let changed = store.update_verdicts(&verdicts)?;
-    if let (true, Some(folder)) = (changed > 0, lists_folder(c)) {
-        for written in crate::lists::rewrite_night(store, &folder, night) {
+    if let (false, Some(lists)) = (changed.is_empty(), crate::lists::Lists::from_config(c)) {
+        for written in crate::lists::rewrite_night(store, &lists, night) {
             if let Err(e) = written {
                 tracing::warn!("{e}");
             }
         }
     }
-    Ok(doc)
+    Ok(Rejudged { doc, changed })
 }
 
-/// Where the lists of frames to stack go, when they are kept: `[actions] lists_folder`,
-/// else `accepted` beside the store.
-pub fn lists_folder(c: &Config) -> Option<PathBuf> {
-    c.actions.accepted_lists.then(|| {
-        c.actions.lists_folder.clone().unwrap_or_else(|| {
-            c.store
-                .path
-                .parent()
-                .unwrap_or(Path::new("."))
-                .join("accepted")
-        })
-    })
-}
+/// How many cutouts the mail carries (the most interesting anomalies first); the report
+/// file has them all. With the plots this keeps the mail well under 1 MB.
+pub const MAIL_CUTOUTS: usize = 8;
 
 /// The summary, plots and cutouts of a night document, written as stand-alone HTML and
 /// CSV into `folder` (used for the store's nights and for `subwatch night --report`).
@@ -97,38 +105,33 @@ pub fn write_files(
     night: &str,
     folder: &Path,
     measure: &crate::config::MeasureConfig,
+    settings: report::Settings,
 ) -> Result<Prepared, MorningError> {
     let reader = crate::reader::Reader::from_config(measure);
     let limits = crate::frame::DecodeLimits {
         max_pixels: measure.max_pixels,
     };
-    let summary = report::summarise(night, &doc, &|f: &NightFrameRecord| f.exposure_s);
+    let summary = report::summarise(night, &doc, settings);
     let mut images = Vec::new();
     for (k, g) in summary.groups.iter().enumerate() {
         let frames: Vec<&NightFrameRecord> = doc
             .frames
             .iter()
-            .filter(|f| {
-                f.target.as_deref().unwrap_or("(unknown)") == g.target
-                    && f.filter.as_deref().unwrap_or("-") == g.filter
-            })
+            .filter(|f| g.is(f.target.as_deref(), f.filter.as_deref()))
             .collect();
-        for (key, label) in plots::PLOTTED {
-            if let Some(png) = plots::metric_plot(&frames, key, label) {
-                images.push((plots::plot_name(k, key), png));
+        for p in &plots::PLOTTED {
+            if let Some(png) = plots::metric_plot(&frames, p, &g.limits, settings.tz) {
+                images.push((plots::plot_name(k, p.key), png));
             }
         }
     }
-    for (k, a) in summary.anomalies.iter().enumerate() {
-        if a.detail.is_cosmic_ray() {
-            continue;
-        }
+    for (k, a) in summary.notable.iter().enumerate() {
         let Some(d) = a.detections.first() else {
             continue;
         };
         // A frame that has gone since is simply not cut out. The file is read by a
         // worker, as every frame is.
-        if let Some(png) = reader.cutout(Path::new(&d.path), d.x, d.y, 24, limits) {
+        if let Some(png) = reader.cutout(Path::new(&d.path), d.x, d.y, 16, limits) {
             images.push((plots::cutout_name(k), png));
         }
     }
@@ -171,25 +174,28 @@ pub fn queue_mail(
     now_unix: f64,
 ) -> Result<i64, MorningError> {
     let settings = MailSettings::from_config(c)?;
+    // Plots, and the first cutouts only: the mail is read on phones over slow links.
+    let in_mail = |name: &str| {
+        (0..MAIL_CUTOUTS).any(|k| plots::cutout_name(k) == name) || !name.starts_with("cutout-")
+    };
     let inline: Vec<Inline> = p
         .images
         .iter()
+        .filter(|(name, _)| in_mail(name))
         .map(|(name, png)| Inline {
             content_id: name.trim_end_matches(".png").to_string(),
             png: png.clone(),
         })
         .collect();
     let cid = |name: &str| {
-        p.images
-            .iter()
-            .any(|(n, _)| n == name)
+        (in_mail(name) && p.images.iter().any(|(n, _)| n == name))
             .then(|| format!("cid:{}", name.trim_end_matches(".png")))
     };
     let html = report::html(&p.summary, &cid);
     let composed = compose(
         &settings,
         &report::subject(&p.summary),
-        &report::text(&p.summary),
+        &report::text(&p.summary, false),
         &html,
         &inline,
         &format!("night-{}.csv", p.summary.night),

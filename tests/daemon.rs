@@ -365,6 +365,20 @@ fn a_streak_of_rejections_raises_one_alert() {
     // the rate limit.
     assert_eq!(alerts.len(), 1, "{alerts:?}");
     assert_eq!(alerts[0].0, "reject_streak");
+    // It names the group, the three frames and what was measured in each.
+    let message = &alerts[0].1;
+    assert!(
+        message.starts_with("Kestrel Field A / L: the last 3 frames were all rejected: "),
+        "{message}"
+    );
+    for f in &frames[5..8] {
+        assert!(message.contains(&f.name), "{} in {message}", f.name);
+    }
+    assert_eq!(
+        message.matches("eccentricity ").count(),
+        3,
+        "each frame's measured eccentricity: {message}"
+    );
     let mails: Vec<_> = std::fs::read_dir(s.root.join("reports"))
         .unwrap()
         .flatten()
@@ -415,10 +429,9 @@ fn rejected_frames_can_be_moved_aside_when_asked() {
 }
 
 #[test]
-fn tonights_moving_object_raises_its_alert() {
-    // Anomaly alerts look at the night on the wall clock, so these frames are dated
-    // tonight: the last 20 minutes, or the next 20 should that cross the noon boundary
-    // between two nights (site time zone UTC here).
+fn a_moving_object_raises_its_alert_on_its_own_night() {
+    // Anomaly alerts look at the night the frames' DATE-OBS place them in (the plan's
+    // night in March 2026), whatever the wall clock says.
     use subwatch::sim::night::{render_night, NightPlan};
     // The checks run every 2 s here instead of every minute ([watch] checks_seconds).
     let s = site("checks_seconds = 2");
@@ -428,16 +441,6 @@ fn tonights_moving_object_raises_its_alert() {
     let mut plan = NightPlan::full(14).quiet();
     plan.moving_object = true;
     plan.frames = 8;
-    let span = plan.cadence_s * plan.frames as f64;
-    let now = chrono::Utc::now();
-    let label = |t: chrono::DateTime<chrono::Utc>| (t - chrono::Duration::hours(12)).date_naive();
-    let before = now - chrono::Duration::seconds(span as i64 + 60);
-    let start = if label(before) == label(now) {
-        before
-    } else {
-        now + chrono::Duration::seconds(60)
-    };
-    plan.start = start.format("%Y-%m-%dT%H:%M:%S").to_string();
     let (frames, truth) = render_night(&plan);
     assert!(truth.iter().any(|a| a.kind == "moving"));
     let d = Daemon::start(&s.config);
@@ -462,5 +465,14 @@ fn tonights_moving_object_raises_its_alert() {
     d.kill9();
     assert_eq!(alerts.len(), 1, "{alerts:?}");
     assert_eq!(alerts[0].0, "anomaly_moving");
-    assert!(alerts[0].1.starts_with("moving at "), "{}", alerts[0].1);
+    // The alert says what happened: the group, where, how fast, and in which frames.
+    let message = &alerts[0].1;
+    assert!(
+        message.starts_with("Kestrel Field A / L: moving at "),
+        "{message}"
+    );
+    assert!(
+        message.contains("″/min") && message.contains("kestrel-field-a_001.fits"),
+        "{message}"
+    );
 }

@@ -4,79 +4,12 @@
 
 mod common;
 
-use std::io::Read;
 use std::os::unix::fs::MetadataExt;
 use std::path::{Path, PathBuf};
-use std::process::{Child, Command, Stdio};
-use std::sync::{Arc, Mutex};
+use std::process::Command;
 use std::time::{Duration, Instant, SystemTime};
 
-use common::daemon::{frame_bytes, recorded, site, wait_for, Daemon};
-
-/// A daemon started as a user starts it (no SUBWATCH_LOG), its log collected.
-struct Logged {
-    child: Child,
-    log: Arc<Mutex<String>>,
-}
-
-impl Logged {
-    fn start(config: &Path) -> Logged {
-        let mut child = Command::new(common::binary())
-            .args(["watch", "--config"])
-            .arg(config)
-            .env_remove("SUBWATCH_LOG")
-            .stdout(Stdio::null())
-            .stderr(Stdio::piped())
-            .spawn()
-            .expect("start daemon");
-        let mut err = child.stderr.take().unwrap();
-        let log = Arc::new(Mutex::new(String::new()));
-        let sink = log.clone();
-        std::thread::spawn(move || {
-            let mut buf = [0u8; 4096];
-            while let Ok(n) = err.read(&mut buf) {
-                if n == 0 {
-                    break;
-                }
-                sink.lock()
-                    .unwrap()
-                    .push_str(&String::from_utf8_lossy(&buf[..n]));
-            }
-        });
-        Logged { child, log }
-    }
-
-    fn log(&self) -> String {
-        self.log.lock().unwrap().clone()
-    }
-
-    fn wait_log(&self, words: &str, limit: Duration) -> bool {
-        let start = Instant::now();
-        while start.elapsed() < limit {
-            if self.log().contains(words) {
-                return true;
-            }
-            std::thread::sleep(Duration::from_millis(100));
-        }
-        false
-    }
-
-    /// SIGTERM, then the whole log.
-    fn stop(mut self) -> String {
-        // SAFETY: signalling our own child.
-        unsafe { libc::kill(self.child.id() as i32, libc::SIGTERM) };
-        let _ = self.child.wait();
-        std::thread::sleep(Duration::from_millis(200));
-        self.log()
-    }
-}
-
-impl Drop for Logged {
-    fn drop(&mut self) {
-        let _ = self.child.kill();
-        let _ = self.child.wait();
-    }
-}
+use common::daemon::{frame_bytes, recorded, site, wait_for, Daemon, Logged};
 
 fn subwatch(args: &[&str], config: &Path) -> std::process::Output {
     Command::new(common::binary())
@@ -99,7 +32,7 @@ fn the_daemon_says_what_it_does_by_default_and_names_cannot_forge_lines() {
     std::fs::write(s.capture.join(forged), b"not an image").unwrap();
     let d = Logged::start(&s.config);
     wait_for(&s.db, 2, Duration::from_secs(30));
-    assert!(d.wait_log("k001.fits ok stars=", Duration::from_secs(10)));
+    assert!(d.wait_log("k001.fits measured: ", Duration::from_secs(10)));
     let log = d.stop();
     let lines: Vec<&str> = log.lines().collect();
     let has =
@@ -108,7 +41,7 @@ fn the_daemon_says_what_it_does_by_default_and_names_cannot_forge_lines() {
         has("INFO", "subwatch 0.1.0 started: config") && has("INFO", "mail off"),
         "{log}"
     );
-    assert!(has("INFO", "k001.fits ok stars="), "{log}");
+    assert!(has("INFO", "k001.fits measured: "), "{log}");
     assert!(has("WARN", "unreadable: not a FITS file"), "{log}");
     assert!(
         has("INFO", "subwatch stopped: 2 frame(s) recorded"),

@@ -228,7 +228,7 @@ fn gzip_wrapped_frame_measures_like_the_plain_one() {
 }
 
 #[test]
-fn colour_mosaic_reports_mosaic_positions_widths_and_colours() {
+fn color_mosaic_reports_mosaic_positions_widths_and_colors() {
     let dir = tempfile::tempdir().unwrap();
     let mut params = scenario(41, PsfShape::Moffat { beta: 3.0 }, 3.0, 0.0, 0.0);
     params.bayer = subwatch::frame::bayer::BayerPattern::parse("GRBG");
@@ -240,7 +240,7 @@ fn colour_mosaic_reports_mosaic_positions_widths_and_colours() {
     let s = score(&r[0], &truth);
     assert!(s.fwhm_rel_err.abs() < 0.03, "{s:?}");
     assert!(s.recall_snr20 >= 0.9 && s.precision >= 0.97, "{s:?}");
-    // Colour: the measured R/G and B/G of bright stars follow the rendered weights.
+    // Color: the measured R/G and B/G of bright stars follow the rendered weights.
     let mut ratios = Vec::new();
     for star in r[0]["stars"].as_array().unwrap() {
         if star["snr"].as_f64().unwrap() < 50.0 {
@@ -270,6 +270,6 @@ fn colour_mosaic_reports_mosaic_positions_widths_and_colours() {
     let median = ratios[ratios.len() / 2];
     assert!(
         ratios.len() > 20 && (median - 1.0).abs() < 0.03,
-        "median colour ratio {median}"
+        "median color ratio {median}"
     );
 }

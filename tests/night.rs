@@ -140,7 +140,7 @@ fn at_most_two_false_anomalies_in_forty_frames() {
     for kind in ["transient", "trail", "moving", "variable", "hot_pixel"] {
         false_total += score(&n.doc, &n.frames, &n.truth, kind).3;
     }
-    // Neither colour outliers nor new sources were put into this night.
+    // Neither color outliers nor new sources were put into this night.
     for kind in ["color", "new_source"] {
         false_total += score(&n.doc, &n.frames, &n.truth, kind).2;
     }
@@ -271,7 +271,7 @@ fn registration_matches_the_rendered_geometry() {
 }
 
 #[test]
-fn colour_night_finds_the_very_red_star() {
+fn color_night_finds_the_very_red_star() {
     let dir = tempfile::tempdir().unwrap();
     let mut plan = NightPlan::full(5).quiet();
     plan.object = "Kestrel Field B".into();
@@ -309,7 +309,12 @@ fn colour_night_finds_the_very_red_star() {
         String::from_utf8_lossy(&out.stderr)
     );
     let html = std::fs::read_to_string(report.join("night-2026-03-14.html")).unwrap();
-    assert!(html.contains("<td>color</td>") && html.contains("data:image/png;base64,"));
+    assert!(
+        html.contains("<span class=\"kind\">color</span>")
+            && html.contains("data:image/png;base64,")
+            && html.contains("no filter"),
+        "the color outlier with its cutout, under a heading that says the frames had no filter"
+    );
     assert!(report.join("night-2026-03-14.csv").exists());
 }
 

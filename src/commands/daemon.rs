@@ -87,13 +87,26 @@ pub fn outbox(config: &Path, now: bool) -> Result<ExitCode> {
 
 /// `subwatch status`: tonight so far, and whether the daemon runs.
 pub fn status(config: &Path, night: Option<String>, json: bool) -> Result<ExitCode> {
+    let night = night
+        .as_deref()
+        .map(super::night::night_label)
+        .transpose()?;
     let cfg = subwatch::config::load(config)?;
     let now = subwatch::clock::now_unix();
-    let night = match night {
-        Some(n) => n,
-        None => subwatch::sky::night_label(now, cfg.timezone()).context("clock out of range")?,
-    };
     let store = subwatch::store::Store::open(&cfg.store.path)?;
+    // The night in progress is the one the frames' own DATE-OBS put the latest frame in
+    // (frames of an earlier night, copied in today, are still that night); the wall
+    // clock decides only before any dated frame is recorded.
+    let (night, placed_by) = match night {
+        Some(n) => (n, "as asked"),
+        None => match store.latest_dated_night()? {
+            Some(n) => (n, "the night of the latest frame recorded, by its DATE-OBS"),
+            None => (
+                subwatch::sky::night_label(now, cfg.timezone()).context("clock out of range")?,
+                "tonight by the clock: no dated frame recorded yet",
+            ),
+        },
+    };
     let counts = store.night_counts(&night)?;
     let daemon: Option<serde_json::Value> = store
         .meta("daemon")?
@@ -105,6 +118,7 @@ pub fn status(config: &Path, night: Option<String>, json: bool) -> Result<ExitCo
     if json {
         let doc = serde_json::json!({
             "night": night,
+            "night_placed_by": placed_by,
             "counts": counts,
             "daemon": daemon,
             "daemon_running": alive,
@@ -112,7 +126,7 @@ pub fn status(config: &Path, night: Option<String>, json: bool) -> Result<ExitCo
         });
         println!("{doc}");
     } else {
-        println!("night {night}");
+        println!("night {night} ({placed_by})");
         println!(
             "  frames {}  measured {}  errors {}  skipped {}  warned {}  rejected {}",
             counts.frames,
@@ -122,6 +136,12 @@ pub fn status(config: &Path, night: Option<String>, json: bool) -> Result<ExitCo
             counts.warned,
             counts.rejected
         );
+        if counts.undated > 0 {
+            println!(
+                "  {} frame(s) without a readable DATE-OBS, placed in this night by the file's time",
+                counts.undated
+            );
+        }
         if let Some(t) = counts.last_recorded_unix {
             println!("  last frame recorded {:.0} s ago", now - t);
         }

@@ -81,5 +81,13 @@ pub fn run(out: &std::path::Path) -> Result<ExitCode> {
     for m in &outcome.mails {
         println!("  mail    {}", m.display());
     }
+    println!("Next:");
+    println!(
+        "  open the report in a browser:   xdg-open {}",
+        outcome.html.display()
+    );
+    println!("  measure your own frames:        subwatch measure /path/to/your/*.fits");
+    println!("  grade a night you already have: subwatch night /path/to/night-folder --report /tmp/night-report");
+    println!("  watch every night as a service: see systemd/README.md (config/subwatch.toml documents every key)");
     Ok(ExitCode::SUCCESS)
 }

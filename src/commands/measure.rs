@@ -14,8 +14,9 @@ pub struct MeasureArgs {
     /// Print one JSON object per file (JSON Lines) instead of a table.
     #[arg(long)]
     json: bool,
-    /// Include every measured star in the JSON output.
-    #[arg(long)]
+    /// Include every measured star in the JSON output (JSON only: a table of thousands
+    /// of stars per file helps nobody).
+    #[arg(long, requires = "json")]
     stars: bool,
     /// Refuse images with more pixels than this (checked before allocating).
     #[arg(long, default_value_t = 400_000_000)]
@@ -99,10 +100,8 @@ fn measure_command(
                     .unwrap_or_else(|| "not measured (no reason given)".into()),
             ),
         };
-        if record.status != "ok" {
-            failed = true;
-            tracing::warn!("{shown}: {}", record.error.as_deref().unwrap_or(""));
-        }
+        // The reason is in the row or the JSON line, once; the exit code tells scripts.
+        failed |= record.status != "ok";
         if json {
             serde_json::to_writer(&mut out, &record)?;
             writeln!(out)?;

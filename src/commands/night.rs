@@ -1,17 +1,40 @@
 //! `subwatch night` (a folder as one night) and `subwatch report` (a night from the
-//! store, and the morning summary by mail), and how a night document is printed.
+//! store, and the morning summary by mail), and how a night is printed: the summary's
+//! text (counts, warned and rejected frames with why, what deserves a look) or the JSON
+//! document.
 
 use std::process::ExitCode;
 
 use anyhow::{Context, Result};
 
+/// A progress bar on stderr while files are read, shown only on a terminal and never
+/// with JSON output (systemd and pipes get nothing).
+fn progress_bar(show: bool) -> Option<indicatif::ProgressBar> {
+    show.then(|| {
+        let bar = indicatif::ProgressBar::new(0);
+        bar.set_style(
+            indicatif::ProgressStyle::with_template(
+                "{msg} [{bar:30}] {pos}/{len} frames, {elapsed} (about {eta} left)",
+            )
+            .expect("a valid template")
+            .progress_chars("=> "),
+        );
+        bar.set_message("measuring");
+        bar
+    })
+}
+
 /// `subwatch night DIR`.
 pub fn night(
     dir: &std::path::Path,
     json: bool,
+    all: bool,
     config: Option<&std::path::Path>,
     report: Option<&std::path::Path>,
 ) -> Result<ExitCode> {
+    if !dir.is_dir() {
+        anyhow::bail!("{} is not a folder", dir.display());
+    }
     let cfg = match config {
         Some(p) => Some(subwatch::config::load(p)?),
         None => None,
@@ -22,25 +45,50 @@ pub fn night(
         Some(c) => Some(subwatch::store::Store::open(&c.store.path)?),
         None => None,
     };
-    if !dir.is_dir() {
-        anyhow::bail!("{} is not a folder", dir.display());
-    }
-    let show = !json && std::io::IsTerminal::is_terminal(&std::io::stderr());
+    let bar = progress_bar(!json && std::io::IsTerminal::is_terminal(&std::io::stderr()));
     let doc = subwatch::batch::run_night(dir, c, store.as_mut(), |done, total| {
-        if show {
-            eprint!("\rmeasuring {done}/{total}");
+        if let Some(b) = &bar {
+            b.set_length(total as u64);
+            b.set_position(done as u64);
         }
     })?;
-    if show {
-        eprintln!();
+    if let Some(b) = bar {
+        b.finish_and_clear();
     }
+    if doc.frames.is_empty() {
+        anyhow::bail!(
+            "no light frames under {} (file names matching {}; hidden files, calibration frames and the \"{}\" folder are left out)",
+            dir.display(),
+            c.watch.include.join(", "),
+            c.actions.rejected_folder
+        );
+    }
+    let night = subwatch::batch::night_of(&doc).unwrap_or_else(|| "night".into());
     if let Some(folder) = report {
-        let night = subwatch::batch::night_of(&doc).unwrap_or_else(|| "night".into());
-        let prepared = subwatch::morning::write_files(doc.clone(), &night, folder, &c.measure)?;
+        let prepared = subwatch::morning::write_files(
+            doc.clone(),
+            &night,
+            folder,
+            &c.measure,
+            subwatch::morning::settings(c),
+        )?;
         eprintln!("report: {}", prepared.html_path.display());
         eprintln!("frames: {}", prepared.csv_path.display());
     }
-    print_night(&doc, json)
+    print_night(&doc, &night, subwatch::morning::settings(c), json, all)
+}
+
+/// A night label as the contract writes it: a real date, YYYY-MM-DD.
+pub fn night_label(text: &str) -> Result<String> {
+    let parsed = chrono::NaiveDate::parse_from_str(text, "%Y-%m-%d")
+        .ok()
+        .filter(|d| d.format("%Y-%m-%d").to_string() == text);
+    match parsed {
+        Some(_) => Ok(text.to_string()),
+        None => anyhow::bail!(
+            "--night {text:?} is not a night label: write the local date of the evening the night began as YYYY-MM-DD, such as 2026-03-14"
+        ),
+    }
 }
 
 /// `subwatch report`.
@@ -48,30 +96,57 @@ pub fn report(
     config: &std::path::Path,
     night: Option<String>,
     json: bool,
+    all: bool,
     send: bool,
 ) -> Result<ExitCode> {
+    let night = night.as_deref().map(night_label).transpose()?;
     let cfg = subwatch::config::load(config)?;
     let now = subwatch::clock::now_unix();
     let night = match night {
         Some(n) => n,
         None => subwatch::sky::night_label(now, cfg.timezone()).context("clock out of range")?,
     };
-    let mut store = subwatch::store::Store::open(&cfg.store.path)?;
-    if !send {
-        let doc = subwatch::morning::judge_night(&mut store, &cfg, &night)?;
-        return print_night(&doc, json);
-    }
-    if cfg.mail.to.is_empty() {
+    if send && cfg.mail.to.is_empty() {
         anyhow::bail!(
             "report --send: [mail] to is empty in {}, so there is nobody to send to; add recipients, or run report without --send",
             config.display()
         );
     }
-    let prepared = subwatch::morning::prepare(&mut store, &cfg, &night)?;
-    if json {
-        print_night(&prepared.doc, true)?;
+    let mut store = subwatch::store::Store::open(&cfg.store.path)?;
+    if store.night_counts(&night)?.frames == 0 {
+        let known = store.nights()?;
+        anyhow::bail!(
+            "no frames of night {night} in the store {}{}",
+            cfg.store.path.display(),
+            match known.last() {
+                Some(last) => format!(" (nights recorded: {}, the latest {last})", known.len()),
+                None => " (it holds no frames yet)".into(),
+            }
+        );
     }
-    let id = subwatch::morning::queue_mail(&store, &cfg, &prepared, now)?;
+    let rejudged = subwatch::morning::judge_night(&mut store, &cfg, &night)?;
+    tell_changes(&rejudged.changed);
+    if !send {
+        return print_night(
+            &rejudged.doc,
+            &night,
+            subwatch::morning::settings(&cfg),
+            json,
+            all,
+        );
+    }
+    let settings = subwatch::morning::settings(&cfg);
+    let prepared = subwatch::morning::write_files(
+        rejudged.doc,
+        &night,
+        &subwatch::morning::report_folder(&cfg),
+        &cfg.measure,
+        settings,
+    )?;
+    if json {
+        print_night(&prepared.doc, &night, settings, true, false)?;
+    }
+    subwatch::morning::queue_mail(&store, &cfg, &prepared, now)?;
     let flushed = subwatch::morning::flush(&store, &cfg, now)?;
     eprintln!("report: {}", prepared.html_path.display());
     eprintln!("frames: {}", prepared.csv_path.display());
@@ -84,7 +159,6 @@ pub fn report(
     for f in &flushed.failed {
         eprintln!("mail not sent yet, kept in the outbox: {f}");
     }
-    let _ = id;
     Ok(if flushed.failed.is_empty() {
         ExitCode::SUCCESS
     } else {
@@ -92,26 +166,46 @@ pub fn report(
     })
 }
 
-pub fn print_night(doc: &subwatch::contract::NightDocument, json: bool) -> Result<ExitCode> {
+/// Say which frames changed verdict when the night was judged again (rules changed
+/// since): on stderr, so the printed document stays as it is.
+fn tell_changes(changed: &[subwatch::store::VerdictChange]) {
+    let moved: Vec<_> = changed
+        .iter()
+        .filter_map(|c| Some((c, c.before?)).filter(|(c, b)| *b != c.after))
+        .collect();
+    if moved.is_empty() {
+        return;
+    }
+    eprintln!(
+        "{} frame(s) changed verdict with the rules as configured now (the lists of frames to stack are rewritten):",
+        moved.len()
+    );
+    for (c, before) in moved {
+        eprintln!(
+            "  {}: {} -> {}",
+            subwatch::text::single_line(&c.path),
+            before.as_str(),
+            c.after.as_str()
+        );
+    }
+}
+
+/// Print a night: the JSON document, or the summary's text (`all` adds every frame and
+/// every cosmic-ray hit).
+pub fn print_night(
+    doc: &subwatch::contract::NightDocument,
+    night: &str,
+    settings: subwatch::report::Settings,
+    json: bool,
+    all: bool,
+) -> Result<ExitCode> {
     if json {
         println!("{}", serde_json::to_string(doc)?);
     } else {
-        for f in &doc.frames {
-            println!(
-                "{:<50} {:<7} {}",
-                f.path,
-                format!("{:?}", f.verdict).to_lowercase(),
-                f.reasons.join(",")
-            );
-        }
-        for a in &doc.anomalies {
-            println!(
-                "{:<10} ra={} dec={} seen in {} frame(s)",
-                format!("{:?}", a.kind).to_lowercase(),
-                a.ra_deg.map_or("-".into(), |v| format!("{v:.5}")),
-                a.dec_deg.map_or("-".into(), |v| format!("{v:.5}")),
-                a.detections.len()
-            );
+        let summary = subwatch::report::summarise(night, doc, settings);
+        print!("{}", subwatch::report::text(&summary, all));
+        if !all {
+            println!("(--all lists every frame and every cosmic-ray hit)");
         }
     }
     Ok(ExitCode::SUCCESS)

@@ -54,7 +54,7 @@ pub struct RenderArgs {
     hot_pixels: usize,
     #[arg(long, default_value_t = 0)]
     cosmic_rays: usize,
-    /// Render a one-shot-colour mosaic with this pattern (RGGB, BGGR, GRBG, GBRG).
+    /// Render a one-shot-color mosaic with this pattern (RGGB, BGGR, GRBG, GBRG).
     #[arg(long)]
     bayer: Option<String>,
     /// Store as float32 instead of 16-bit unsigned.
@@ -147,12 +147,12 @@ pub fn night(
     out: &Path,
     seed: u64,
     second_night: bool,
-    colour: bool,
+    color: bool,
     frames: Option<usize>,
 ) -> Result<ExitCode> {
     use subwatch::sim::night::{render_night, NightPlan};
-    let mut plan = if colour {
-        NightPlan::colour(seed)
+    let mut plan = if color {
+        NightPlan::color(seed)
     } else if second_night {
         NightPlan::second_night(seed)
     } else {

@@ -18,9 +18,15 @@ pub fn run(
     let jd = sky::julian_date(t);
     let (sra, sdec) = sky::sun_radec(jd);
     let (sun_alt, sun_az) = sky::alt_az(sra, sdec, jd, latitude, longitude);
+    // The night around the moment: during the night, the dusk that began it and the
+    // coming dawn; by day, the coming dusk and the dawn after it.
+    let iso = |t: Option<f64>| {
+        t.and_then(|t| chrono::DateTime::from_timestamp(t.round() as i64, 0))
+            .map(|t| t.format("%Y-%m-%dT%H:%M:%SZ").to_string())
+    };
     let crossing = |alt: f64| {
-        let (down, up) = sky::sun_crossings(t, alt, latitude, longitude);
-        serde_json::json!({"sets_unix": down, "rises_unix": up})
+        let (down, up) = sky::night_around(t, alt, latitude, longitude);
+        serde_json::json!({"sets_unix": down, "rises_unix": up, "sets_utc": iso(down), "rises_utc": iso(up)})
     };
     let target = ra.zip(dec).map(|(r, d)| {
         let (alt, az) = sky::alt_az(r, d, jd, latitude, longitude);

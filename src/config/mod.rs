@@ -148,6 +148,9 @@ pub struct ActionsConfig {
     pub accepted_lists: bool,
     /// Where the lists go (default: beside the store).
     pub lists_folder: Option<PathBuf>,
+    /// Frames that only warned go into the lists to stack (marked in the summary);
+    /// `false` leaves them out.
+    pub stack_warned: bool,
     /// Move frames judged "reject" into a folder of this name beside them (off by
     /// default; never on by surprise). Such folders are not watched.
     pub move_rejected: bool,
@@ -159,6 +162,7 @@ impl Default for ActionsConfig {
         ActionsConfig {
             accepted_lists: false,
             lists_folder: None,
+            stack_warned: true,
             move_rejected: false,
             rejected_folder: "rejected".into(),
         }

@@ -410,6 +410,7 @@ pub fn parse(text: &str, base: &Path) -> Result<Config, Vec<ConfigProblem>> {
     let actions = ActionsConfig {
         accepted_lists: r.flag("actions", "accepted_lists", false),
         lists_folder: r.path("actions", "lists_folder"),
+        stack_warned: r.flag("actions", "stack_warned", true),
         move_rejected: r.flag("actions", "move_rejected", false),
         rejected_folder: r.read(
             "actions",

@@ -1,4 +1,4 @@
-//! One-shot-colour mosaics: the 2×2 colour filter pattern named by BAYERPAT, which
+//! One-shot-color mosaics: the 2×2 color filter pattern named by BAYERPAT, which
 //! (by the contract) starts at FITS pixel (1, 1). Pure array reshaping.
 
 use ndarray::Array2;

@@ -86,7 +86,7 @@ impl FrameHeader {
             date_obs,
             time_unix,
             exposure_s: cards.number("EXPTIME").or_else(|| cards.number("EXPOSURE")),
-            filter: cards.text("FILTER"),
+            filter: cards.text("FILTER").filter(|f| !means_no_filter(f)),
             object: cards.text("OBJECT"),
             image_kind: cards
                 .text("IMAGETYP")
@@ -185,6 +185,14 @@ pub fn parse_iso_time(s: &str) -> Option<f64> {
     };
     let t = t.and_utc();
     Some(t.timestamp() as f64 + f64::from(t.timestamp_subsec_nanos()) * 1e-9)
+}
+
+/// Whether a FILTER value says there is none: capture programs write "None" (or leave
+/// the value empty) for a camera without a filter wheel or a one-shot-color sensor
+/// (common practice).
+fn means_no_filter(value: &str) -> bool {
+    let v = value.trim().to_ascii_lowercase();
+    v.is_empty() || v == "none" || v == "no filter" || v == "n/a"
 }
 
 #[cfg(test)]

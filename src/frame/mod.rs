@@ -1,6 +1,6 @@
 //! Input: a FITS file on disk becomes a [`Frame`]: pixels in physical units plus the
 //! typed header. Decoding lives in `fits`, keyword parsing in `header`, sky coordinates
-//! in `wcs`, colour mosaics in `bayer`. Nothing here measures anything.
+//! in `wcs`, color mosaics in `bayer`. Nothing here measures anything.
 
 pub mod bayer;
 pub mod cards;

@@ -6,7 +6,7 @@
 //! matched-filter detection and deblending (`detect`) → the sky again with the sources
 //! masked, and its noise (`noise`) → each candidate fitted or rejected (`candidate`,
 //! with the PSF models of `psf`) → aperture photometry, half-flux radius and SNR
-//! (`photometry`) → frame metrics. Colour mosaics go through `mosaic`.
+//! (`photometry`) → frame metrics. Color mosaics go through `mosaic`.
 
 pub mod background;
 mod candidate;
@@ -49,7 +49,7 @@ pub struct MeasureParams {
     /// Detections below this SNR are not reported as stars: their positions and shapes
     /// are mostly noise.
     pub min_snr: f64,
-    /// Set for a colour mosaic's superpixel image: widths are reported as sampled by
+    /// Set for a color mosaic's superpixel image: widths are reported as sampled by
     /// pixels of this side (0.5 superpixel = one mosaic pixel). 0 = the image's own.
     pub report_pixel: f64,
 }
@@ -107,7 +107,7 @@ pub struct Star {
     /// Shape components (see `PsfFit::shape_components`).
     #[serde(skip)]
     pub shape_e: (f64, f64),
-    /// [r, g, b] fluxes for one-shot-colour frames.
+    /// [r, g, b] fluxes for one-shot-color frames.
     #[serde(skip_serializing_if = "Option::is_none")]
     pub rgb: Option<[f64; 3]>,
 }

@@ -1,6 +1,6 @@
-//! One-shot-colour mosaics: measured on 2×2 superpixel luminance, with positions, widths
+//! One-shot-color mosaics: measured on 2×2 superpixel luminance, with positions, widths
 //! and levels reported in mosaic pixels and each star's [r, g, b] aperture fluxes taken
-//! on the colour planes.
+//! on the color planes.
 
 use ndarray::Array2;
 
@@ -9,7 +9,7 @@ use super::pixels::subtract_rows;
 use super::{measure_image, photometry, FrameMeasurement, MeasureError, MeasureParams, Star};
 use crate::frame::bayer::{channel_plane, superpixel_luminance, BayerPattern, Channel};
 
-/// Measure a one-shot-colour mosaic: shape on 2×2 superpixel luminance, positions and
+/// Measure a one-shot-color mosaic: shape on 2×2 superpixel luminance, positions and
 /// widths reported in mosaic pixels, and per-star [r, g, b] aperture fluxes.
 pub fn measure_mosaic(
     mosaic: Array2<f32>,
@@ -28,7 +28,7 @@ pub fn measure_mosaic(
     p.detect.kernel_fwhm = (params.detect.kernel_fwhm / 2.0).max(1.5);
     p.report_pixel = 0.5;
     let mut m = measure_image(lum, &p)?;
-    // Per-channel residual planes for colour photometry.
+    // Per-channel residual planes for color photometry.
     let residual_planes: Vec<Array2<f32>> = planes
         .into_iter()
         .filter_map(|mut plane| {

@@ -29,7 +29,7 @@ pub struct Stamp {
     /// within its pixel. 1 (or 0): the model is evaluated at pixel centres.
     pub subsample: usize,
     /// Side of the pixel the reported widths are sampled with, in stamp pixels (0 means
-    /// 1). A colour mosaic is fitted on 2×2 superpixels but reports widths as its own
+    /// 1). A color mosaic is fitted on 2×2 superpixels but reports widths as its own
     /// pixels sample the star: 0.5.
     pub report_pixel: f64,
     /// Pixels farther than this from the centre are fitted at their centres even when

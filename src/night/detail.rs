@@ -78,7 +78,7 @@ pub struct VariableDetail {
     pub light_curve: Vec<LightCurvePoint>,
 }
 
-/// A persistent source whose colour lies far from the field's.
+/// A persistent source whose color lies far from the field's.
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct ColorDetail {
     #[serde(serialize_with = "finite")]

@@ -29,7 +29,7 @@ use super::register::{register, Affine};
 use super::{EarlierNight, FrameInput};
 use crate::measure::stats::median_f64;
 use crate::record::{FrameRecord, FrameStatus, StarRecord};
-use crate::rules::{judge_group_with, FrameFacts, Judgement, RuleSpec};
+use crate::rules::{group_limits, judge_group_with, FrameFacts, Judgement, Limit, RuleSpec};
 use crate::sky::FrameSky;
 
 /// The reference is chosen among this many first readable frames of a group.
@@ -190,6 +190,16 @@ pub fn judge_group(
     rules: &[RuleSpec],
     site: Option<Site>,
 ) -> Vec<FrameJudgement> {
+    judge_group_and_limits(frames, placements, rules, site).0
+}
+
+/// A group's judgements and the limits they were judged against.
+fn judge_group_and_limits(
+    frames: &[&FrameRecord],
+    placements: &[Option<Placement>],
+    rules: &[RuleSpec],
+    site: Option<Site>,
+) -> (Vec<FrameJudgement>, Vec<Limit>) {
     let offset = |i: usize| placements.get(i)?.as_ref()?.offset_mag;
     let clearest = (0..frames.len()).filter_map(offset).min_by(f64::total_cmp);
     let loss: Vec<Option<f64>> = (0..frames.len())
@@ -224,7 +234,7 @@ pub fn judge_group(
             f
         })
         .collect();
-    judge_group_with(&facts, rules)
+    let judged = judge_group_with(&facts, rules)
         .into_iter()
         .enumerate()
         .map(|(i, judgement)| FrameJudgement {
@@ -233,7 +243,8 @@ pub fn judge_group(
             transparency_loss_mag: loss[i],
             sky: skies[i],
         })
-        .collect()
+        .collect();
+    (judged, group_limits(&facts, rules))
 }
 
 /// Place every readable frame of a group (time order) on its reference.
@@ -257,6 +268,8 @@ pub struct NightJudgement {
     /// The frames the findings' detections index: positions in the input of the
     /// readable frames.
     pub readable: Vec<usize>,
+    /// The limits the group's frames were judged against.
+    pub limits: Vec<Limit>,
 }
 
 /// Judge a whole night of one group (frames with their stars, any order), with earlier
@@ -270,7 +283,7 @@ pub fn judge_night(
     let order = time_order(frames);
     let sorted: Vec<&FrameRecord> = order.iter().map(|&i| frames[i]).collect();
     let placements = place_all(&sorted);
-    let judged = judge_group(&sorted, &placements, rules, site);
+    let (judged, limits) = judge_group_and_limits(&sorted, &placements, rules, site);
     // Back to the caller's order.
     let mut by_input: Vec<Option<FrameJudgement>> = vec![None; frames.len()];
     for (k, j) in judged.into_iter().enumerate() {
@@ -308,6 +321,7 @@ pub fn judge_night(
         frames: frames_out,
         findings,
         readable: readable_idx,
+        limits,
     }
 }
 

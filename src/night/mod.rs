@@ -60,7 +60,7 @@ impl<'a> FrameInput<'a> {
     }
 }
 
-/// A star's colour as three fluxes, when all three were measured.
+/// A star's color as three fluxes, when all three were measured.
 pub fn rgb(s: &StarRecord) -> Option<[f64; 3]> {
     s.rgb.and_then(|c| Some([c[0]?, c[1]?, c[2]?]))
 }

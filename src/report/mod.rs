@@ -1,129 +1,348 @@
 //! The morning summary: a model built from the night document (pure), and its plain
-//! text, HTML (every value from a header escaped) and CSV forms. Plots and cutouts are
-//! PNG bytes made in `plots`; the HTML takes them as references (`cid:` in mail, data
-//! URIs in the stand-alone file).
+//! text (`text`), HTML (`html`, every value from a header escaped) and CSV forms. Plots
+//! and cutouts are PNG bytes made in `plots`; the HTML takes them as references (`cid:`
+//! in mail, data URIs in the stand-alone file).
+//!
+//! What a reader needs first leads: the counts, then every warned and rejected frame with
+//! the plain-words explanation of each reason, then what in the sky deserves a look.
+//! Hot pixels are summarised as positions and cosmic-ray hits counted.
 
+mod html;
 pub mod plots;
+mod text;
 
 use std::collections::BTreeMap;
 use std::fmt::Write as _;
 
-use serde::Serialize;
+use chrono_tz::Tz;
 
 use crate::contract::{AnomalyRecord, NightDocument, NightFrameRecord};
 use crate::measure::stats::median_f64;
-use crate::rules::Verdict;
-use crate::text::{escape_html, single_line};
+use crate::night::{AnomalyKind, Detail};
+use crate::rules::{Limit, Verdict};
+
+pub use html::html;
+pub use text::text;
+
+/// How the summary is made: the site's clock, and whether frames that only warned go
+/// into the lists of frames to stack (marked there) or are left out.
+#[derive(Debug, Clone, Copy)]
+pub struct Settings {
+    pub tz: Tz,
+    pub stack_warned: bool,
+}
+
+impl Default for Settings {
+    fn default() -> Self {
+        Settings {
+            tz: chrono_tz::UTC,
+            stack_warned: true,
+        }
+    }
+}
+
+/// One frame of a group as the summary shows it: when, the verdict, and why.
+#[derive(Debug, Clone)]
+pub struct FrameLine {
+    pub path: String,
+    pub file: String,
+    /// Start of the exposure on the site's clock, "HH:MM:SS".
+    pub local_time: Option<String>,
+    pub verdict: Verdict,
+    pub reasons: Vec<String>,
+    /// One sentence per reason with the values that fired it.
+    pub explanations: Vec<String>,
+}
+
+/// A frame in the list to stack; `warned` marks one that only warned.
+#[derive(Debug, Clone)]
+pub struct StackEntry {
+    pub path: String,
+    pub warned: bool,
+}
 
 /// One target-and-filter group of the night.
-#[derive(Debug, Clone, Serialize)]
+#[derive(Debug, Clone)]
 pub struct GroupSummary {
-    pub target: String,
-    pub filter: String,
+    pub target: Option<String>,
+    pub filter: Option<String>,
     pub frames: usize,
     pub ok: usize,
     pub warn: usize,
     pub reject: usize,
     /// Reason code → frames.
     pub reasons: BTreeMap<String, usize>,
-    /// Exposure of the frames worth stacking (ok and warn), seconds.
+    /// Exposure of the frames to stack, seconds.
     pub usable_seconds: f64,
     pub median_fwhm_arcsec: Option<f64>,
     pub median_fwhm_px: Option<f64>,
     pub best: Option<String>,
     pub worst: Option<String>,
-    pub accepted: Vec<String>,
+    /// Every frame, in time order.
+    pub lines: Vec<FrameLine>,
+    /// The frames to stack, in time order.
+    pub stack: Vec<StackEntry>,
+    /// Frames that only warned and were left out of the stack by the setting.
+    pub warned_left_out: usize,
+    /// The limits the group was judged against (for the plots).
+    pub limits: Vec<Limit>,
 }
 
-#[derive(Debug, Clone, Serialize)]
+impl GroupSummary {
+    /// "target / filter", with words for what the headers did not say.
+    pub fn heading(&self) -> String {
+        group_heading(self.target.as_deref(), self.filter.as_deref())
+    }
+
+    pub fn is(&self, target: Option<&str>, filter: Option<&str>) -> bool {
+        self.target.as_deref() == target && self.filter.as_deref() == filter
+    }
+
+    /// The frames that warned or were rejected, in time order.
+    pub fn flagged(&self) -> impl Iterator<Item = &FrameLine> {
+        self.lines.iter().filter(|f| f.verdict != Verdict::Ok)
+    }
+}
+
+/// "target / filter" of a group; a frame without FILTER (a one-shot-color camera, or
+/// none set) reads "no filter".
+pub fn group_heading(target: Option<&str>, filter: Option<&str>) -> String {
+    format!(
+        "{} / {}",
+        target.unwrap_or("no target"),
+        filter.unwrap_or("no filter")
+    )
+}
+
+/// A hot pixel: where it sits on the detector and how often it showed.
+#[derive(Debug, Clone)]
+pub struct HotPixelSpot {
+    pub x: f64,
+    pub y: f64,
+    pub frames: usize,
+    pub frames_total: usize,
+    pub heading: String,
+}
+
+#[derive(Debug, Clone)]
 pub struct Summary {
     pub night: String,
-    pub site: Option<String>,
+    pub tz: Tz,
     pub groups: Vec<GroupSummary>,
-    pub anomalies: Vec<AnomalyRecord>,
+    /// What deserves a look, most interesting first (see [`look_order`]).
+    pub notable: Vec<AnomalyRecord>,
+    pub hot_pixels: Vec<HotPixelSpot>,
+    /// Cosmic-ray hits: (file, x, y), in the order found.
+    pub cosmic_rays: Vec<(String, f64, f64)>,
     pub frames: usize,
+    pub ok: usize,
+    pub warned: usize,
     pub rejected: usize,
 }
 
-fn file_name(path: &str) -> String {
+impl Summary {
+    /// Anomalies per kind, in the order they are listed (cosmic-ray hits and PSF-shaped
+    /// transients apart).
+    pub fn kind_counts(&self) -> Vec<(&'static str, usize)> {
+        let mut counts: Vec<(&'static str, usize)> = Vec::new();
+        for a in &self.notable {
+            let name = kind_label(a);
+            match counts.iter_mut().find(|(n, _)| *n == name) {
+                Some(c) => c.1 += 1,
+                None => counts.push((name, 1)),
+            }
+        }
+        if !self.hot_pixels.is_empty() {
+            counts.push(("hot_pixel", self.hot_pixels.len()));
+        }
+        if !self.cosmic_rays.is_empty() {
+            counts.push(("cosmic ray", self.cosmic_rays.len()));
+        }
+        counts
+    }
+}
+
+/// The order anomalies are listed in: what may be new in the sky first, then what moves
+/// or changes, then flashes, then satellite and aircraft trails.
+pub fn look_order(kind: AnomalyKind) -> usize {
+    match kind {
+        AnomalyKind::NewSource => 0,
+        AnomalyKind::Moving => 1,
+        AnomalyKind::Variable => 2,
+        AnomalyKind::Color => 3,
+        AnomalyKind::Transient => 4,
+        AnomalyKind::Trail => 5,
+        AnomalyKind::HotPixel => 6,
+    }
+}
+
+/// The file name of a path, for people to find it.
+pub fn file_name(path: &str) -> String {
     std::path::Path::new(path)
         .file_name()
         .map_or(path.to_string(), |n| n.to_string_lossy().into_owned())
 }
 
-/// Build the summary of a night document. `exposure` gives a frame's exposure time.
-pub fn summarise(
-    night: &str,
-    doc: &NightDocument,
-    exposure: &dyn Fn(&NightFrameRecord) -> Option<f64>,
-) -> Summary {
-    let mut groups: BTreeMap<(String, String), Vec<&NightFrameRecord>> = BTreeMap::new();
+/// A moment on the site's clock, "HH:MM:SS".
+pub fn local_clock(t_unix: f64, tz: Tz) -> Option<String> {
+    let t = chrono::DateTime::from_timestamp(t_unix.floor() as i64, 0)?;
+    Some(t.with_timezone(&tz).format("%H:%M:%S").to_string())
+}
+
+/// Build the summary of a night document.
+pub fn summarise(night: &str, doc: &NightDocument, settings: Settings) -> Summary {
+    type Key = (Option<String>, Option<String>);
+    let mut groups: BTreeMap<Key, Vec<&NightFrameRecord>> = BTreeMap::new();
     for f in &doc.frames {
         groups
-            .entry((
-                f.target.clone().unwrap_or_else(|| "(unknown)".into()),
-                f.filter.clone().unwrap_or_else(|| "-".into()),
-            ))
+            .entry((f.target.clone(), f.filter.clone()))
             .or_default()
             .push(f);
     }
     let groups = groups
         .into_iter()
-        .map(|((target, filter), frames)| {
-            let count = |v: Verdict| frames.iter().filter(|f| f.verdict == v).count();
-            let mut reasons = BTreeMap::new();
-            for f in &frames {
-                for r in &f.reasons {
-                    *reasons.entry(r.clone()).or_insert(0) += 1;
-                }
-            }
-            let usable: Vec<&&NightFrameRecord> = frames
-                .iter()
-                .filter(|f| f.verdict != Verdict::Reject && f.status == "ok")
-                .collect();
-            let fwhm = |f: &NightFrameRecord| f.metrics.as_ref().and_then(|m| m.fwhm_px);
-            let mut ranked: Vec<&&NightFrameRecord> =
-                frames.iter().filter(|f| fwhm(f).is_some()).collect();
-            ranked.sort_by(|a, b| {
-                fwhm(a)
+        .map(|((target, filter), mut frames)| {
+            frames.sort_by(|a, b| {
+                a.time_unix
                     .unwrap_or(f64::MAX)
-                    .total_cmp(&fwhm(b).unwrap_or(f64::MAX))
+                    .total_cmp(&b.time_unix.unwrap_or(f64::MAX))
+                    .then(a.path.cmp(&b.path))
             });
-            GroupSummary {
-                target,
-                filter,
-                frames: frames.len(),
-                ok: count(Verdict::Ok),
-                warn: count(Verdict::Warn),
-                reject: count(Verdict::Reject),
-                reasons,
-                usable_seconds: usable.iter().filter_map(|f| exposure(f)).sum(),
-                median_fwhm_arcsec: median_f64(
-                    &usable
-                        .iter()
-                        .filter_map(|f| f.metrics.as_ref().and_then(|m| m.fwhm_arcsec))
-                        .collect::<Vec<_>>(),
-                ),
-                median_fwhm_px: median_f64(
-                    &usable.iter().filter_map(|f| fwhm(f)).collect::<Vec<_>>(),
-                ),
-                best: ranked.first().map(|f| file_name(&f.path)),
-                worst: ranked.last().map(|f| file_name(&f.path)),
-                accepted: usable.iter().map(|f| f.path.clone()).collect(),
-            }
+            let limits = doc
+                .limits
+                .iter()
+                .find(|l| l.target == target && l.filter == filter)
+                .map(|l| l.limits.clone())
+                .unwrap_or_default();
+            group(target, filter, &frames, limits, settings)
         })
         .collect::<Vec<_>>();
+    let mut notable: Vec<AnomalyRecord> = doc
+        .anomalies
+        .iter()
+        .filter(|a| a.kind != AnomalyKind::HotPixel && !a.detail.is_cosmic_ray())
+        .cloned()
+        .collect();
+    notable.sort_by_key(|a| look_order(a.kind));
+    let hot_pixels = doc
+        .anomalies
+        .iter()
+        .filter_map(|a| match &a.detail {
+            Detail::HotPixel(h) => Some(HotPixelSpot {
+                x: h.detector_x,
+                y: h.detector_y,
+                frames: h.frames,
+                frames_total: h.frames_total,
+                heading: group_heading(a.target.as_deref(), a.filter.as_deref()),
+            }),
+            _ => None,
+        })
+        .collect();
+    let cosmic_rays = doc
+        .anomalies
+        .iter()
+        .filter(|a| a.detail.is_cosmic_ray())
+        .filter_map(|a| a.detections.first())
+        .map(|d| (file_name(&d.path), d.x, d.y))
+        .collect();
+    let count = |v: Verdict| doc.frames.iter().filter(|f| f.verdict == v).count();
     Summary {
         night: night.to_string(),
-        site: None,
+        tz: settings.tz,
         frames: doc.frames.len(),
-        rejected: doc
-            .frames
-            .iter()
-            .filter(|f| f.verdict == Verdict::Reject)
-            .count(),
+        ok: count(Verdict::Ok),
+        warned: count(Verdict::Warn),
+        rejected: count(Verdict::Reject),
         groups,
-        anomalies: doc.anomalies.clone(),
+        notable,
+        hot_pixels,
+        cosmic_rays,
+    }
+}
+
+fn group(
+    target: Option<String>,
+    filter: Option<String>,
+    frames: &[&NightFrameRecord],
+    limits: Vec<Limit>,
+    settings: Settings,
+) -> GroupSummary {
+    let count = |v: Verdict| frames.iter().filter(|f| f.verdict == v).count();
+    let mut reasons = BTreeMap::new();
+    for f in frames {
+        for r in &f.reasons {
+            *reasons.entry(r.clone()).or_insert(0) += 1;
+        }
+    }
+    let stacked = |f: &&&NightFrameRecord| {
+        f.status == "ok"
+            && match f.verdict {
+                Verdict::Ok => true,
+                Verdict::Warn => settings.stack_warned,
+                Verdict::Reject => false,
+            }
+    };
+    let usable: Vec<&&NightFrameRecord> = frames.iter().filter(stacked).collect();
+    let fwhm = |f: &NightFrameRecord| f.metrics.as_ref().and_then(|m| m.fwhm_px);
+    let mut ranked: Vec<&&NightFrameRecord> = frames.iter().filter(|f| fwhm(f).is_some()).collect();
+    ranked.sort_by(|a, b| {
+        fwhm(a)
+            .unwrap_or(f64::MAX)
+            .total_cmp(&fwhm(b).unwrap_or(f64::MAX))
+    });
+    let lines = frames
+        .iter()
+        .map(|f| {
+            let mut explanations = f.explanations.clone();
+            // An unreadable frame's explanation names what was wrong with the file.
+            if let (Some(e), Some(k)) = (&f.error, f.reasons.iter().position(|r| r == "unreadable"))
+            {
+                if let Some(text) = explanations.get_mut(k) {
+                    *text = format!("{text}: {e}");
+                }
+            }
+            FrameLine {
+                path: f.path.clone(),
+                file: file_name(&f.path),
+                local_time: f.time_unix.and_then(|t| local_clock(t, settings.tz)),
+                verdict: f.verdict,
+                reasons: f.reasons.clone(),
+                explanations,
+            }
+        })
+        .collect();
+    GroupSummary {
+        target,
+        filter,
+        frames: frames.len(),
+        ok: count(Verdict::Ok),
+        warn: count(Verdict::Warn),
+        reject: count(Verdict::Reject),
+        reasons,
+        usable_seconds: usable.iter().filter_map(|f| f.exposure_s).sum(),
+        median_fwhm_arcsec: median_f64(
+            &usable
+                .iter()
+                .filter_map(|f| f.metrics.as_ref().and_then(|m| m.fwhm_arcsec))
+                .collect::<Vec<_>>(),
+        ),
+        median_fwhm_px: median_f64(&usable.iter().filter_map(|f| fwhm(f)).collect::<Vec<_>>()),
+        best: ranked.first().map(|f| file_name(&f.path)),
+        worst: ranked.last().map(|f| file_name(&f.path)),
+        lines,
+        stack: usable
+            .iter()
+            .map(|f| StackEntry {
+                path: f.path.clone(),
+                warned: f.verdict == Verdict::Warn,
+            })
+            .collect(),
+        warned_left_out: if settings.stack_warned {
+            0
+        } else {
+            count(Verdict::Warn)
+        },
+        limits,
     }
 }
 
@@ -138,23 +357,32 @@ pub fn sexagesimal(ra_deg: f64, dec_deg: f64) -> String {
     format!("{hh:02}h{mm:02}m{ss:05.2}s {sign}{dd:02}°{dm:02}′{dsec:04.1}″")
 }
 
-fn hours(s: f64) -> String {
+/// A signed value to two decimals, never "-0.00".
+fn signed(x: f64) -> String {
+    let r = (x * 100.0).round() / 100.0 + 0.0;
+    format!("{r:+.2}")
+}
+
+/// Minutes of exposure, for people.
+fn minutes(s: f64) -> String {
     format!("{:.0} min", s / 60.0)
 }
 
 /// Subject line of the morning mail (one line, whatever the headers hold).
 pub fn subject(s: &Summary) -> String {
-    single_line(&format!(
-        "subwatch night {}: {} frames, {} rejected, {} anomalies",
+    crate::text::single_line(&format!(
+        "subwatch night {}: {} frames, {} rejected, {} warned, {} worth a look",
         s.night,
         s.frames,
         s.rejected,
-        s.anomalies.iter().filter(|a| !is_cosmic_ray(a)).count()
+        s.warned,
+        s.notable.len()
     ))
 }
 
-fn is_cosmic_ray(a: &AnomalyRecord) -> bool {
-    a.detail.is_cosmic_ray()
+/// The name a kind is listed under: the contract's spelling.
+fn kind_label(a: &AnomalyRecord) -> &'static str {
+    a.kind.name()
 }
 
 /// The anomaly's instrumental magnitude, when the analysis gave one.
@@ -162,184 +390,54 @@ pub fn instrumental_mag(a: &AnomalyRecord) -> Option<f64> {
     a.detail.instrumental_mag()
 }
 
-fn kind_name(a: &AnomalyRecord) -> String {
-    a.kind.name().to_string()
-}
-
-/// The plain-text summary.
-pub fn text(s: &Summary) -> String {
-    let mut t = String::new();
-    let _ = writeln!(
-        t,
-        "Night {}: {} frames, {} rejected.",
-        s.night, s.frames, s.rejected
-    );
-    for g in &s.groups {
-        let _ = writeln!(
-            t,
-            "\n{} / {}: {} frames: {} ok, {} warn, {} reject; usable {}",
-            single_line(&g.target),
-            single_line(&g.filter),
-            g.frames,
-            g.ok,
-            g.warn,
-            g.reject,
-            hours(g.usable_seconds)
-        );
-        if let Some(f) = g.median_fwhm_arcsec {
-            let _ = writeln!(t, "  median FWHM {f:.2}″");
-        } else if let Some(f) = g.median_fwhm_px {
-            let _ = writeln!(t, "  median FWHM {f:.2} px");
+/// What was seen, in plain words with its values.
+pub fn what(a: &AnomalyRecord) -> String {
+    match &a.detail {
+        Detail::NewSource(n) => format!(
+            "not seen on {} (that night reached mag {:.2}); mag {:.2} tonight",
+            n.absent_on, n.earlier_limit_mag, n.instrumental_mag
+        ),
+        Detail::Moving(m) => {
+            let rate = match (m.rate_arcsec_per_min, m.position_angle_deg) {
+                (Some(r), Some(pa)) => format!("{r:.2}″/min towards position angle {pa:.0}°"),
+                (Some(r), None) => format!("{r:.2}″/min"),
+                _ => format!("{:.2} px/min", m.rate_px_per_min),
+            };
+            format!("moving {rate}")
         }
-        for (r, n) in &g.reasons {
-            let _ = writeln!(t, "  {r}: {n}");
-        }
-        if let (Some(b), Some(w)) = (&g.best, &g.worst) {
-            let _ = writeln!(
-                t,
-                "  sharpest {}, softest {}",
-                single_line(b),
-                single_line(w)
-            );
-        }
-    }
-    let notable: Vec<&AnomalyRecord> = s.anomalies.iter().filter(|a| !is_cosmic_ray(a)).collect();
-    let _ = writeln!(
-        t,
-        "\nAnomalies ({}; cosmic-ray hits not listed: {}):",
-        notable.len(),
-        s.anomalies.len() - notable.len()
-    );
-    for a in notable {
-        let pos = match (a.ra_deg, a.dec_deg) {
-            (Some(r), Some(d)) => format!("{} ({r:.5}, {d:+.5})", sexagesimal(r, d)),
-            _ => "no sky position".into(),
-        };
-        let first = a
-            .detections
-            .first()
-            .map(|d| format!("{} x={:.1} y={:.1}", file_name(&d.path), d.x, d.y))
-            .unwrap_or_default();
-        let mag =
-            instrumental_mag(a).map_or(String::new(), |m| format!(", mag {m:.2} (instrumental)"));
-        let _ = writeln!(
-            t,
-            "  {:<10} {pos}{mag}  in {} frame(s), first {}",
-            kind_name(a),
-            a.detections.len(),
-            single_line(&first)
-        );
-    }
-    t
-}
-
-/// The HTML summary. `image` maps a plot or cutout name to its `src` (a `cid:` or a data
-/// URI); images without one are left out.
-pub fn html(s: &Summary, image: &dyn Fn(&str) -> Option<String>) -> String {
-    let e = escape_html;
-    let mut h = String::new();
-    let _ = write!(
-        h,
-        "<!DOCTYPE html><html><head><meta charset=\"utf-8\"><title>subwatch night {}</title>\
-         <style>body{{font-family:sans-serif;max-width:1000px;margin:auto}}table{{border-collapse:collapse}}\
-         td,th{{border:1px solid #bbb;padding:2px 6px;text-align:right}}th{{background:#eee}}\
-         .reject{{color:#a00}}.warn{{color:#a60}}</style></head><body>",
-        e(&s.night)
-    );
-    let _ = write!(
-        h,
-        "<h1>Night {}</h1><p>{} frames, {} rejected.</p>",
-        e(&s.night),
-        s.frames,
-        s.rejected
-    );
-    for (k, g) in s.groups.iter().enumerate() {
-        let _ = write!(
-            h,
-            "<h2>{} / {}</h2><table><tr><th>frames</th><th>ok</th><th>warn</th><th>reject</th><th>usable</th><th>median FWHM</th></tr>\
-             <tr><td>{}</td><td>{}</td><td class=\"warn\">{}</td><td class=\"reject\">{}</td><td>{}</td><td>{}</td></tr></table>",
-            e(&g.target),
-            e(&g.filter),
-            g.frames,
-            g.ok,
-            g.warn,
-            g.reject,
-            hours(g.usable_seconds),
-            g.median_fwhm_arcsec.map_or_else(|| g.median_fwhm_px.map_or("-".into(), |f| format!("{f:.2} px")), |f| format!("{f:.2}″"))
-        );
-        if !g.reasons.is_empty() {
-            let _ = write!(
-                h,
-                "<p>Reasons: {}</p>",
-                g.reasons
-                    .iter()
-                    .map(|(r, n)| format!("{} × {n}", e(r)))
-                    .collect::<Vec<_>>()
-                    .join(", ")
-            );
-        }
-        for metric in plots::PLOTTED {
-            if let Some(src) = image(&plots::plot_name(k, metric.0)) {
-                let _ = write!(
-                    h,
-                    "<img src=\"{}\" alt=\"{} against time\" width=\"640\">",
-                    e(&src),
-                    e(metric.1)
-                );
+        Detail::Variable(v) => format!(
+            "brightness changed by {:.2} mag over {} frames (false-alarm probability {})",
+            v.amplitude_mag,
+            v.frames,
+            if v.false_alarm_probability < 1e-6 {
+                "below 1e-6".to_string()
+            } else {
+                format!("{:.1e}", v.false_alarm_probability)
             }
-        }
+        ),
+        Detail::Color(c) => format!(
+            "color R−G {} mag, B−G {} mag against the field's {} and {} ({:.1} and {:.1} robust σ)",
+            signed(c.color_rg_mag),
+            signed(c.color_bg_mag),
+            signed(c.field_rg_mag),
+            signed(c.field_bg_mag),
+            c.z_rg,
+            c.z_bg
+        ),
+        Detail::Transient(t) => format!(
+            "{}{}",
+            t.reason,
+            t.snr.map_or(String::new(), |s| format!(", SNR {s:.0}"))
+        ),
+        Detail::Trail(t) => format!(
+            "streak {:.0} px long, {:.1} px wide, at {:.0}° from the x axis",
+            t.trail.length_px, t.trail.width_px, t.trail.angle_deg
+        ),
+        Detail::HotPixel(h) => format!(
+            "fixed at detector ({:.0}, {:.0}) in {} of {} frames",
+            h.detector_x, h.detector_y, h.frames, h.frames_total
+        ),
     }
-    let notable: Vec<(usize, &AnomalyRecord)> = s
-        .anomalies
-        .iter()
-        .enumerate()
-        .filter(|(_, a)| !is_cosmic_ray(a))
-        .collect();
-    let _ = write!(
-        h,
-        "<h2>Anomalies</h2><p>{} listed; {} cosmic-ray hits not listed. Magnitudes are instrumental (−2.5 log₁₀ of the flux in ADU).</p><table><tr><th>kind</th><th>RA, Dec (J2000)</th><th>degrees</th><th>mag</th><th>frames</th><th>first seen</th><th>cutout</th></tr>",
-        notable.len(),
-        s.anomalies.len() - notable.len()
-    );
-    for (k, a) in notable {
-        let (sexa, deg) = match (a.ra_deg, a.dec_deg) {
-            (Some(r), Some(d)) => (sexagesimal(r, d), format!("{r:.5}, {d:+.5}")),
-            _ => ("-".into(), "-".into()),
-        };
-        let first = a
-            .detections
-            .first()
-            .map(|d| format!("{} ({:.1}, {:.1})", file_name(&d.path), d.x, d.y))
-            .unwrap_or_default();
-        let cut = image(&plots::cutout_name(k)).map_or(String::new(), |src| {
-            format!("<img src=\"{}\" alt=\"cutout\" width=\"96\">", e(&src))
-        });
-        let _ = write!(
-            h,
-            "<tr><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{cut}</td></tr>",
-            e(&kind_name(a)),
-            e(&sexa),
-            e(&deg),
-            instrumental_mag(a).map_or("-".into(), |m| format!("{m:.2}")),
-            a.detections.len(),
-            e(&first)
-        );
-    }
-    h.push_str("</table>");
-    for g in &s.groups {
-        let _ = write!(
-            h,
-            "<h3>Frames to stack: {} / {}</h3><pre>",
-            e(&g.target),
-            e(&g.filter)
-        );
-        for p in &g.accepted {
-            let _ = writeln!(h, "{}", e(p));
-        }
-        h.push_str("</pre>");
-    }
-    h.push_str("<p><small>subwatch grades images; it is not a safety interlock and must not close a roof or park a mount.</small></p></body></html>");
-    h
 }
 
 /// Every frame's metrics as CSV (RFC 4180 quoting).
@@ -411,6 +509,219 @@ mod tests {
         ] {
             assert_eq!(csv_text(cell), written, "{cell:?}");
         }
+    }
+
+    use crate::contract::DetectionRecord;
+    use crate::night::detail::{HotPixelDetail, MovingDetail, NewSourceDetail, TransientDetail};
+
+    fn frame(
+        name: &str,
+        target: &str,
+        filter: Option<&str>,
+        minute: f64,
+        verdict: Verdict,
+        why: &[(&str, &str)],
+    ) -> NightFrameRecord {
+        NightFrameRecord {
+            path: format!("/srv/capture/{name}"),
+            status: if why.iter().any(|w| w.0 == "unreadable") {
+                "error"
+            } else {
+                "ok"
+            },
+            error: why
+                .iter()
+                .any(|w| w.0 == "unreadable")
+                .then(|| "truncated: 2880 of 5760 bytes".into()),
+            metrics: None,
+            verdict,
+            reasons: why.iter().map(|w| w.0.to_string()).collect(),
+            explanations: why.iter().map(|w| w.1.to_string()).collect(),
+            night: Some("2026-03-14".into()),
+            target: Some(target.into()),
+            filter: filter.map(String::from),
+            // 2026-03-14 23:00 UTC, plus minutes.
+            time_unix: Some(1_773_529_200.0 + 60.0 * minute),
+            exposure_s: Some(120.0),
+            registered: true,
+            registration_rms_px: None,
+            registration_transform: None,
+            sky: None,
+            transparency_loss_mag: None,
+        }
+    }
+
+    fn anomaly(kind: AnomalyKind, detail: Detail) -> AnomalyRecord {
+        AnomalyRecord {
+            kind,
+            ra_deg: Some(84.25),
+            dec_deg: Some(27.6),
+            detections: vec![DetectionRecord {
+                path: "/srv/capture/a1.fits".into(),
+                x: 10.0,
+                y: 20.0,
+            }],
+            detail,
+            target: Some("Field A".into()),
+            filter: Some("L".into()),
+        }
+    }
+
+    fn night() -> NightDocument {
+        let hot = |x: f64| {
+            anomaly(
+                AnomalyKind::HotPixel,
+                Detail::HotPixel(HotPixelDetail {
+                    detector_x: x,
+                    detector_y: 7.0,
+                    frames: 4,
+                    frames_total: 4,
+                }),
+            )
+        };
+        let cosmic = anomaly(
+            AnomalyKind::Transient,
+            Detail::Transient(TransientDetail {
+                cosmic_ray: true,
+                reason: "sharper than the PSF",
+                snr: None,
+                flux_adu: None,
+                fwhm_px: None,
+                instrumental_mag: None,
+            }),
+        );
+        NightDocument {
+            frames: vec![
+                frame(
+                    "a2.fits",
+                    "Field A",
+                    Some("L"),
+                    40.0,
+                    Verdict::Warn,
+                    &[("trail", "1 streak(s) cross the frame")],
+                ),
+                frame("a1.fits", "Field A", Some("L"), 30.0, Verdict::Ok, &[]),
+                frame(
+                    "a3.fits",
+                    "Field A",
+                    Some("L"),
+                    50.0,
+                    Verdict::Reject,
+                    &[("unreadable", "the file could not be measured")],
+                ),
+                frame("b1.fits", "<script>Field B", None, 35.0, Verdict::Ok, &[]),
+            ],
+            anomalies: vec![
+                hot(3.0),
+                anomaly(
+                    AnomalyKind::Moving,
+                    Detail::Moving(MovingDetail {
+                        rate_arcsec_per_min: Some(4.5),
+                        position_angle_deg: Some(290.0),
+                        rate_px_per_min: 2.0,
+                        frames: 3,
+                        instrumental_mag: Some(-11.0),
+                    }),
+                ),
+                cosmic.clone(),
+                anomaly(
+                    AnomalyKind::NewSource,
+                    Detail::NewSource(NewSourceDetail {
+                        absent_on: "2026-03-13".into(),
+                        instrumental_mag: -12.0,
+                        earlier_limit_mag: -8.0,
+                    }),
+                ),
+                hot(5.0),
+                cosmic,
+            ],
+            limits: Vec::new(),
+        }
+    }
+
+    #[test]
+    fn the_summary_leads_with_what_was_flagged_and_why() {
+        let settings = Settings {
+            tz: chrono_tz::Europe::Madrid,
+            stack_warned: true,
+        };
+        let s = summarise("2026-03-14", &night(), settings);
+        assert_eq!((s.frames, s.ok, s.warned, s.rejected), (4, 2, 1, 1));
+        let a = &s.groups[1];
+        assert_eq!(a.heading(), "Field A / L");
+        // Flagged frames in time order, on the site's clock (UTC+1 in March, IANA tz
+        // database), each reason in words; an unreadable file's reason names the fault.
+        let flagged: Vec<_> = a.flagged().collect();
+        assert_eq!(flagged.len(), 2);
+        assert_eq!(flagged[0].file, "a2.fits");
+        assert_eq!(flagged[0].local_time.as_deref(), Some("00:40:00"));
+        assert_eq!(
+            flagged[1].explanations,
+            vec!["the file could not be measured: truncated: 2880 of 5760 bytes".to_string()]
+        );
+        // The stack holds the ok and the warned frame, the warned one marked.
+        let stack: Vec<(&str, bool)> = a
+            .stack
+            .iter()
+            .map(|e| (e.path.as_str(), e.warned))
+            .collect();
+        assert_eq!(
+            stack,
+            vec![
+                ("/srv/capture/a1.fits", false),
+                ("/srv/capture/a2.fits", true)
+            ]
+        );
+        // A frame without FILTER reads "no filter".
+        assert_eq!(s.groups[0].heading(), "<script>Field B / no filter");
+        // New sources first, then moving objects; hot pixels and cosmic rays apart.
+        let kinds: Vec<&str> = s.notable.iter().map(|a| a.kind.name()).collect();
+        assert_eq!(kinds, vec!["new_source", "moving"]);
+        assert_eq!(s.hot_pixels.len(), 2);
+        assert_eq!(s.cosmic_rays.len(), 2);
+        assert_eq!(
+            s.kind_counts(),
+            vec![
+                ("new_source", 1),
+                ("moving", 1),
+                ("hot_pixel", 2),
+                ("cosmic ray", 2)
+            ]
+        );
+        let t = text(&s, false);
+        assert!(
+            t.starts_with("Night 2026-03-14: 4 frames: 2 ok, 1 warn, 1 reject."),
+            "{t}"
+        );
+        assert!(
+            t.contains("Hot pixels: 2 (detector x, y): (3, 7) (5, 7)"),
+            "{t}"
+        );
+        assert!(
+            t.contains("Cosmic-ray hits: 2\n") && !t.contains("sharper than the PSF"),
+            "{t}"
+        );
+        let h = html(&s, &|_| None);
+        assert!(
+            h.contains("&lt;script&gt;Field B / no filter") && !h.contains("<script>"),
+            "{h}"
+        );
+        assert!(
+            h.contains("/srv/capture/a2.fits <span class=\"warn\">(warned)</span>"),
+            "{h}"
+        );
+        // With warned frames kept out of the stack, the summary says so.
+        let strict = summarise(
+            "2026-03-14",
+            &night(),
+            Settings {
+                stack_warned: false,
+                ..settings
+            },
+        );
+        assert_eq!(strict.groups[1].stack.len(), 1);
+        assert_eq!(strict.groups[1].warned_left_out, 1);
+        assert!(text(&strict, false).contains("1 warned frame(s) left out of the frames to stack"));
     }
 
     #[test]

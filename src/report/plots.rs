@@ -1,23 +1,57 @@
-//! PNG plots of the night's metrics against time (rejected frames marked, twilight and
-//! moonlight shaded) and cutouts around anomalies. Pure: data in, PNG bytes out. Text is
-//! drawn with a font kept in the repository (DejaVu Sans), so no system font is needed.
+//! PNG plots of a group's metrics against the site's clock time, and cutouts around
+//! anomalies. Each plot carries its own legend (verdict colors, twilight and Moon
+//! bands, the rules' warn and reject lines) so it reads without the page around it.
+//! Pure: data in, PNG bytes out. Text is drawn with a font kept in the repository
+//! (DejaVu Sans), so no system font is needed.
 
 use std::sync::Once;
 
+use chrono_tz::Tz;
 use ndarray::Array2;
+use plotters::coord::Shift;
 use plotters::prelude::*;
 
 use crate::contract::NightFrameRecord;
-use crate::rules::Verdict;
+use crate::measure::stats::median_f64;
+use crate::rules::{Limit, Metric, Verdict};
 use crate::sky::Twilight;
 
-/// (key, label) of each plotted metric.
-pub const PLOTTED: [(&str, &str); 5] = [
-    ("fwhm", "FWHM"),
-    ("eccentricity", "eccentricity"),
-    ("background_adu", "background (ADU)"),
-    ("star_count", "stars"),
-    ("transparency_loss_mag", "transparency loss (mag)"),
+/// One plotted metric: its key in plot names, its title, and the smallest span of its
+/// axis (so that noise far below anything that matters does not fill the plot).
+#[derive(Debug, Clone, Copy)]
+pub struct Plotted {
+    pub key: &'static str,
+    pub title: &'static str,
+    min_span: f64,
+}
+
+/// The metrics plotted for every group, in page order.
+pub const PLOTTED: [Plotted; 5] = [
+    Plotted {
+        key: "fwhm",
+        title: "FWHM",
+        min_span: 1.0,
+    },
+    Plotted {
+        key: "eccentricity",
+        title: "eccentricity",
+        min_span: 0.2,
+    },
+    Plotted {
+        key: "background_adu",
+        title: "sky background",
+        min_span: 0.0,
+    },
+    Plotted {
+        key: "star_count",
+        title: "stars detected",
+        min_span: 10.0,
+    },
+    Plotted {
+        key: "transparency_loss_mag",
+        title: "transparency loss",
+        min_span: 0.5,
+    },
 ];
 
 pub fn plot_name(group: usize, key: &str) -> String {
@@ -28,6 +62,18 @@ pub fn cutout_name(anomaly: usize) -> String {
     format!("cutout-{anomaly}.png")
 }
 
+// Colors of the points, bands and lines; the legend names each.
+const OK_COLOR: RGBColor = RGBColor(30, 90, 200);
+const WARN_COLOR: RGBColor = RGBColor(230, 140, 0);
+const REJECT_COLOR: RGBColor = RGBColor(200, 0, 0);
+const TWILIGHT_COLOR: RGBColor = RGBColor(215, 215, 215);
+const MOON_COLOR: RGBColor = RGBColor(250, 240, 190);
+const LINE_COLOR: RGBColor = RGBColor(150, 150, 175);
+
+const WIDTH: u32 = 640;
+const CHART_HEIGHT: u32 = 210;
+const LEGEND_HEIGHT: u32 = 40;
+
 static FONT: Once = Once::new();
 
 fn register_font() {
@@ -37,19 +83,23 @@ fn register_font() {
     });
 }
 
-fn encode_png(rgb: &[u8], w: u32, h: u32) -> Option<Vec<u8>> {
+/// PNG at the strongest compression: the plots travel by mail.
+fn encode_png(pixels: &[u8], w: u32, h: u32, color: image::ColorType) -> Option<Vec<u8>> {
+    use image::codecs::png::{CompressionType, FilterType, PngEncoder};
     use image::ImageEncoder;
     let mut out = Vec::new();
-    image::codecs::png::PngEncoder::new(&mut out)
-        .write_image(rgb, w, h, image::ColorType::Rgb8)
+    PngEncoder::new_with_quality(&mut out, CompressionType::Best, FilterType::Adaptive)
+        .write_image(pixels, w, h, color)
         .ok()?;
     Some(out)
 }
 
-fn value(f: &NightFrameRecord, key: &str) -> Option<f64> {
+/// The value plotted for a frame, and the axis title with its unit.
+fn value(f: &NightFrameRecord, key: &str, arcsec: bool) -> Option<f64> {
     let m = f.metrics.as_ref()?;
     match key {
-        "fwhm" => m.fwhm_arcsec.or(m.fwhm_px),
+        "fwhm" if arcsec => m.fwhm_arcsec,
+        "fwhm" => m.fwhm_px,
         "eccentricity" => m.eccentricity,
         "background_adu" => Some(m.background_adu),
         "star_count" => Some(m.star_count as f64),
@@ -58,101 +108,351 @@ fn value(f: &NightFrameRecord, key: &str) -> Option<f64> {
     }
 }
 
-/// One metric of one group against time; `None` when there is nothing to plot.
-pub fn metric_plot(frames: &[&NightFrameRecord], key: &str, label: &str) -> Option<Vec<u8>> {
-    register_font();
-    let pts: Vec<(f64, f64, Verdict)> = frames
+fn axis_title(key: &str, arcsec: bool) -> &'static str {
+    match key {
+        "fwhm" if arcsec => "FWHM (arcsec)",
+        "fwhm" => "FWHM (px)",
+        "eccentricity" => "eccentricity (0 = round)",
+        "background_adu" => "background (ADU)",
+        "star_count" => "stars (count)",
+        _ => "transparency loss (mag)",
+    }
+}
+
+/// The limits that apply to a plotted metric, in its plotted unit: FWHM limits in pixels
+/// are drawn in arcseconds with the group's own pixel scale, and the other way round.
+fn limits_for(
+    key: &str,
+    arcsec: bool,
+    limits: &[Limit],
+    frames: &[&NightFrameRecord],
+) -> Vec<(Verdict, f64, bool)> {
+    let scale = median_f64(
+        &frames
+            .iter()
+            .filter_map(|f| {
+                let m = f.metrics.as_ref()?;
+                Some(m.fwhm_arcsec? / m.fwhm_px?)
+            })
+            .filter(|s| s.is_finite() && *s > 0.0)
+            .collect::<Vec<_>>(),
+    );
+    limits
         .iter()
-        .filter_map(|f| Some((f.time_unix?, value(f, key)?, f.verdict)))
-        .filter(|p| p.1.is_finite())
+        .filter_map(|l| {
+            let v = match (key, l.metric) {
+                ("fwhm", Metric::FwhmPx) if arcsec => l.value * scale?,
+                ("fwhm", Metric::FwhmArcsec) if !arcsec => l.value / scale?,
+                ("fwhm", Metric::FwhmPx | Metric::FwhmArcsec) => l.value,
+                ("eccentricity", Metric::Eccentricity)
+                | ("background_adu", Metric::BackgroundAdu)
+                | ("star_count", Metric::StarCount)
+                | ("transparency_loss_mag", Metric::TransparencyLossMag) => l.value,
+                _ => return None,
+            };
+            v.is_finite().then_some((l.verdict, v, l.above))
+        })
+        .collect()
+}
+
+/// Local clock time of a moment, "HH:MM".
+fn clock(t_unix: f64, tz: Tz) -> String {
+    chrono::DateTime::from_timestamp(t_unix.floor() as i64, 0)
+        .map(|t| t.with_timezone(&tz).format("%H:%M").to_string())
+        .unwrap_or_default()
+}
+
+/// The y range: the values, the limits near them, and at least the metric's smallest
+/// span (for the background, 20 times the group's noise).
+fn y_range(values: &[f64], limits: &[(Verdict, f64, bool)], min_span: f64) -> (f64, f64) {
+    let (lo, hi) = values
+        .iter()
+        .fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), v| {
+            (a.min(*v), b.max(*v))
+        });
+    let reach = 2.0 * (hi - lo).max(min_span);
+    let (mut lo, mut hi) = limits
+        .iter()
+        .map(|l| l.1)
+        .filter(|v| *v >= lo - reach && *v <= hi + reach)
+        .fold((lo, hi), |(a, b), v| (a.min(v), b.max(v)));
+    if hi - lo < min_span {
+        let mid = 0.5 * (hi + lo);
+        (lo, hi) = (mid - 0.5 * min_span, mid + 0.5 * min_span);
+    }
+    let pad = ((hi - lo) * 0.08).max(1e-6);
+    (lo - pad, hi + pad)
+}
+
+/// One metric of one group against the site's clock time, with the group's limits drawn
+/// as dashed lines; `None` when there is nothing to plot.
+pub fn metric_plot(
+    frames: &[&NightFrameRecord],
+    plotted: &Plotted,
+    limits: &[Limit],
+    tz: Tz,
+) -> Option<Vec<u8>> {
+    register_font();
+    let key = plotted.key;
+    let arcsec = key == "fwhm"
+        && frames
+            .iter()
+            .any(|f| f.metrics.as_ref().is_some_and(|m| m.fwhm_arcsec.is_some()));
+    let mut pts: Vec<(f64, f64, Verdict)> = frames
+        .iter()
+        .filter_map(|f| Some((f.time_unix?, value(f, key, arcsec)?, f.verdict)))
+        .filter(|p| p.0.is_finite() && p.1.is_finite())
         .collect();
     if pts.len() < 2 {
         return None;
     }
-    let t0 = pts.iter().map(|p| p.0).fold(f64::INFINITY, f64::min);
-    let hours = |t: f64| (t - t0) / 3600.0;
-    let x_max = pts.iter().map(|p| hours(p.0)).fold(0.0, f64::max).max(0.05);
-    let (lo, hi) = pts
-        .iter()
-        .fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), p| {
-            (a.min(p.1), b.max(p.1))
-        });
-    let pad = ((hi - lo) * 0.1).max(1e-3);
-    let label_y = if key == "fwhm"
-        && frames
+    pts.sort_by(|a, b| a.0.total_cmp(&b.0));
+    let lines = limits_for(key, arcsec, limits, frames);
+    let min_span = if key == "background_adu" {
+        let noise: Vec<f64> = frames
             .iter()
-            .any(|f| f.metrics.as_ref().is_some_and(|m| m.fwhm_arcsec.is_some()))
-    {
-        "FWHM (arcsec)".to_string()
-    } else if key == "fwhm" {
-        "FWHM (px)".to_string()
+            .filter_map(|f| f.metrics.as_ref().map(|m| m.noise_adu))
+            .collect();
+        median_f64(&noise).map_or(1.0, |n| 20.0 * n)
+    } else if key == "star_count" {
+        // A tenth of the stars gone is worth seeing; a handful is not.
+        median_f64(&values_of(&pts)).map_or(plotted.min_span, |m| (0.3 * m).max(plotted.min_span))
     } else {
-        label.to_string()
+        plotted.min_span
     };
-    let (w, h) = (720u32, 240u32);
+    let values = values_of(&pts);
+    let (y_lo, y_hi) = y_range(&values, &lines, min_span);
+    let t0 = pts[0].0;
+    let hours = |t: f64| (t - t0) / 3600.0;
+    let x_max = hours(pts[pts.len() - 1].0).max(0.05);
+    let x_pad = 0.02 * x_max;
+    let bands = bands(frames, &pts);
+    let (w, h) = (WIDTH, CHART_HEIGHT + LEGEND_HEIGHT);
     let mut buf = vec![255u8; (w * h * 3) as usize];
     {
         let root = BitMapBackend::with_buffer(&mut buf, (w, h)).into_drawing_area();
         root.fill(&WHITE).ok()?;
-        let mut chart = ChartBuilder::on(&root)
-            .margin(8)
-            .x_label_area_size(30)
-            .y_label_area_size(60)
-            .build_cartesian_2d(0.0..x_max, (lo - pad)..(hi + pad))
+        let (chart_area, legend_area) = root.split_vertically(CHART_HEIGHT);
+        let formatter = |x: &f64| clock(t0 + x * 3600.0, tz);
+        // As many decimals as the label step needs (six labels over the span).
+        let decimals = (-((y_hi - y_lo) / 6.0).log10().floor()).clamp(0.0, 4.0) as usize;
+        let y_formatter = |y: &f64| format!("{y:.decimals$}");
+        let mut chart = ChartBuilder::on(&chart_area)
+            .margin(6)
+            .margin_right(14)
+            .x_label_area_size(34)
+            .y_label_area_size(58)
+            .build_cartesian_2d(-x_pad..x_max + x_pad, y_lo..y_hi)
             .ok()?;
-        // Twilight (grey) and a Moon above the horizon (pale yellow) behind the points.
-        for f in frames {
-            let (Some(t), Some(sky)) = (f.time_unix, f.sky.as_ref()) else {
-                continue;
-            };
-            let colour = if sky.twilight != Twilight::Night {
-                Some(RGBColor(215, 215, 215))
-            } else if sky.moon_alt_deg > 0.0 {
-                Some(RGBColor(250, 240, 190))
-            } else {
-                None
-            };
-            if let Some(c) = colour {
-                let x = hours(t);
-                let half = 0.5 * x_max / pts.len().max(1) as f64;
-                chart
-                    .draw_series(std::iter::once(Rectangle::new(
-                        [(x - half, lo - pad), (x + half, hi + pad)],
-                        c.filled(),
-                    )))
-                    .ok()?;
-            }
+        for (left, right, color) in &bands {
+            chart
+                .draw_series(std::iter::once(Rectangle::new(
+                    [(hours(*left), y_lo), (hours(*right), y_hi)],
+                    color.filled(),
+                )))
+                .ok()?;
         }
         chart
             .configure_mesh()
-            .x_desc("hours since the first frame")
-            .y_desc(label_y)
+            .x_desc(format!("local time ({})", tz.name()))
+            .y_desc(axis_title(key, arcsec))
+            .x_labels(8)
+            .y_labels(6)
+            .x_label_formatter(&formatter)
+            .y_label_formatter(&y_formatter)
             .label_style(("sans-serif", 12))
+            .axis_desc_style(("sans-serif", 12))
+            .bold_line_style(RGBColor(225, 225, 225))
+            .light_line_style(WHITE.mix(0.0))
             .draw()
             .ok()?;
+        for (verdict, v, _) in &lines {
+            if *v < y_lo || *v > y_hi {
+                continue;
+            }
+            let color = if *verdict == Verdict::Reject {
+                REJECT_COLOR
+            } else {
+                WARN_COLOR
+            };
+            chart
+                .draw_series(DashedLineSeries::new(
+                    [(-x_pad, *v), (x_max + x_pad, *v)],
+                    6,
+                    4,
+                    color.stroke_width(1),
+                ))
+                .ok()?;
+        }
         chart
             .draw_series(LineSeries::new(
                 pts.iter().map(|p| (hours(p.0), p.1)),
-                RGBColor(120, 120, 160),
+                LINE_COLOR,
             ))
             .ok()?;
         chart
             .draw_series(pts.iter().map(|p| {
-                let colour = match p.2 {
-                    Verdict::Ok => RGBColor(30, 90, 200),
-                    Verdict::Warn => RGBColor(230, 140, 0),
-                    Verdict::Reject => RGBColor(200, 0, 0),
-                };
                 Circle::new(
                     (hours(p.0), p.1),
-                    if p.2 == Verdict::Reject { 5 } else { 3 },
-                    colour.filled(),
+                    if p.2 == Verdict::Ok { 3 } else { 4 },
+                    verdict_color(p.2).filled(),
                 )
             }))
             .ok()?;
+        legend(&legend_area, &lines, key, arcsec)?;
         root.present().ok()?;
     }
-    encode_png(&buf, w, h)
+    encode_png(&buf, w, h, image::ColorType::Rgb8)
+}
+
+fn values_of(pts: &[(f64, f64, Verdict)]) -> Vec<f64> {
+    pts.iter().map(|p| p.1).collect()
+}
+
+fn verdict_color(v: Verdict) -> RGBColor {
+    match v {
+        Verdict::Ok => OK_COLOR,
+        Verdict::Warn => WARN_COLOR,
+        Verdict::Reject => REJECT_COLOR,
+    }
+}
+
+/// Twilight and Moon-up bands: each frame's stretch of time reaches halfway to its
+/// neighbours, so consecutive frames make one band.
+fn bands(frames: &[&NightFrameRecord], pts: &[(f64, f64, Verdict)]) -> Vec<(f64, f64, RGBColor)> {
+    let mut times: Vec<(f64, Option<RGBColor>)> = frames
+        .iter()
+        .filter_map(|f| {
+            let t = f.time_unix.filter(|t| t.is_finite())?;
+            let color = f.sky.as_ref().and_then(|sky| {
+                if sky.twilight != Twilight::Night {
+                    Some(TWILIGHT_COLOR)
+                } else if sky.moon_alt_deg > 0.0 {
+                    Some(MOON_COLOR)
+                } else {
+                    None
+                }
+            });
+            Some((t, color))
+        })
+        .collect();
+    times.sort_by(|a, b| a.0.total_cmp(&b.0));
+    let typical = if pts.len() > 1 {
+        (pts[pts.len() - 1].0 - pts[0].0) / (pts.len() - 1) as f64
+    } else {
+        60.0
+    };
+    let mut out = Vec::new();
+    for (k, (t, color)) in times.iter().enumerate() {
+        let Some(color) = color else { continue };
+        let left = if k > 0 {
+            0.5 * (times[k - 1].0 + t)
+        } else {
+            t - 0.5 * typical
+        };
+        let right = if k + 1 < times.len() {
+            0.5 * (times[k + 1].0 + t)
+        } else {
+            t + 0.5 * typical
+        };
+        out.push((left, right, *color));
+    }
+    out
+}
+
+/// The legend strip under the chart: every color the chart can hold, then the limits
+/// with their values.
+fn legend(
+    area: &DrawingArea<BitMapBackend, Shift>,
+    lines: &[(Verdict, f64, bool)],
+    key: &str,
+    arcsec: bool,
+) -> Option<()> {
+    let font = ("sans-serif", 12).into_font().color(&BLACK);
+    let mut x = 64;
+    let y = 12;
+    // Points by verdict.
+    for (verdict, name) in [
+        (Verdict::Ok, "ok"),
+        (Verdict::Warn, "warn"),
+        (Verdict::Reject, "reject"),
+    ] {
+        area.draw(&Circle::new((x, y), 4, verdict_color(verdict).filled()))
+            .ok()?;
+        area.draw(&Text::new(name, (x + 8, y - 7), font.clone()))
+            .ok()?;
+        x += 20 + 7 * name.len() as i32;
+    }
+    for (color, name) in [(TWILIGHT_COLOR, "twilight"), (MOON_COLOR, "Moon up")] {
+        area.draw(&Rectangle::new(
+            [(x, y - 6), (x + 14, y + 6)],
+            color.filled(),
+        ))
+        .ok()?;
+        area.draw(&Text::new(name, (x + 18, y - 7), font.clone()))
+            .ok()?;
+        x += 30 + 7 * name.len() as i32;
+    }
+    // The limits, each with its value, on a second row.
+    let (mut x, y) = (64, 30);
+    let unit = match key {
+        "fwhm" if arcsec => "″",
+        "fwhm" => " px",
+        "background_adu" => " ADU",
+        "transparency_loss_mag" => " mag",
+        _ => "",
+    };
+    let mut shown: Vec<(Verdict, f64, bool)> = lines.to_vec();
+    shown.sort_by(|a, b| a.0.cmp(&b.0).then(a.1.total_cmp(&b.1)));
+    shown.dedup_by(|a, b| a.0 == b.0 && (a.1 - b.1).abs() < 1e-9);
+    if shown.is_empty() {
+        area.draw(&Text::new(
+            "no rule limits this metric",
+            (x, y - 7),
+            font.clone(),
+        ))
+        .ok()?;
+        return Some(());
+    }
+    for (verdict, v, above) in shown {
+        let color = if verdict == Verdict::Reject {
+            REJECT_COLOR
+        } else {
+            WARN_COLOR
+        };
+        area.draw(&PathElement::new(
+            vec![(x, y), (x + 6, y)],
+            color.stroke_width(2),
+        ))
+        .ok()?;
+        area.draw(&PathElement::new(
+            vec![(x + 10, y), (x + 16, y)],
+            color.stroke_width(2),
+        ))
+        .ok()?;
+        let text = format!(
+            "{} {} {}{unit}",
+            verdict.as_str(),
+            if above { "above" } else { "below" },
+            significant(v)
+        );
+        area.draw(&Text::new(text.clone(), (x + 20, y - 7), font.clone()))
+            .ok()?;
+        x += 34 + 7 * text.chars().count() as i32;
+    }
+    Some(())
+}
+
+/// A limit written with about three significant figures.
+fn significant(v: f64) -> String {
+    let a = v.abs();
+    if a >= 100.0 {
+        format!("{v:.0}")
+    } else if a >= 10.0 {
+        format!("{v:.1}")
+    } else {
+        format!("{v:.2}")
+    }
 }
 
 /// A square cutout (side 2·half+1 pixels, shown 3× larger) around FITS (x, y): an asinh
@@ -205,5 +505,34 @@ pub fn cutout_png(pixels: &Array2<f32>, x: f64, y: f64, half: usize) -> Option<V
             }
         }
     }
-    encode_png(&rgb, ow, oh)
+    encode_png(&rgb, ow, oh, image::ColorType::Rgb8)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn a_flat_metric_still_spans_its_smallest_range() {
+        // Seeing steady to 0.02″ is shown on a 1″ axis, not blown up to fill the plot.
+        let (lo, hi) = y_range(&[2.50, 2.51, 2.52], &[], 1.0);
+        assert!(hi - lo >= 1.0 && lo < 2.5 && hi > 2.52, "{lo} {hi}");
+    }
+
+    #[test]
+    fn limits_near_the_values_are_inside_the_axis_and_far_ones_are_not() {
+        let near = (Verdict::Warn, 3.2, true);
+        let far = (Verdict::Reject, 300.0, true);
+        let (lo, hi) = y_range(&[2.0, 2.4, 2.6], &[near, far], 1.0);
+        assert!(hi > 3.2 && hi < 10.0, "{lo} {hi}");
+    }
+
+    #[test]
+    fn clock_labels_are_the_sites_local_time_across_midnight() {
+        // 2026-03-14 23:30 UTC is 00:30 on the 15th in Madrid (UTC+1 in March; the IANA
+        // tz database, common knowledge).
+        let t = 1_773_531_000.0;
+        assert_eq!(clock(t, chrono_tz::Europe::Madrid), "00:30");
+        assert_eq!(clock(t, chrono_tz::UTC), "23:30");
+    }
 }

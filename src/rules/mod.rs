@@ -176,12 +176,159 @@ pub struct Judgement {
     pub explanations: Vec<String>,
 }
 
-struct Ctx {
+/// A line a metric must not cross in one group: drawn on the night's plots, and the
+/// same value the judgement tests against.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct Limit {
+    /// The reason code that fires when it is crossed.
+    pub reason: String,
+    pub metric: Metric,
+    pub verdict: Verdict,
+    pub value: f64,
+    /// Crossed from below (`true`: a value above it fires) or from above.
+    pub above: bool,
+}
+
+// The built-in rules' thresholds, each in the unit its explanation names.
+const FWHM_RATIO: (f64, f64) = (1.25, 1.5);
+const ECCENTRICITY_OVER_MEDIAN: (f64, f64) = (0.15, 0.3);
+const ECCENTRICITY_FLOOR: (f64, f64) = (0.5, 0.65);
+const BACKGROUND_SIGMAS: (f64, f64) = (10.0, 50.0);
+const STAR_FRACTION: (f64, f64) = (0.6, 0.3);
+const TRANSPARENCY_MAG: (f64, f64) = (0.3, 0.75);
+// Astronomical twilight (Sun above −18°) brightens the sky; by nautical twilight (above
+// −12°) a frame is rarely worth stacking.
+const SUN_ALTITUDE_DEG: (f64, f64) = (-18.0, -12.0);
+
+/// The group's medians the built-in rules compare with, and each configured rule's
+/// median and robust σ of its metric.
+struct GroupStats {
     fwhm: Option<f64>,
     ecc: Option<f64>,
     background: Option<f64>,
     noise: Option<f64>,
     stars: Option<f64>,
+    /// Per configured rule: (median, robust σ) of its metric over readable frames.
+    rules: Vec<(Option<f64>, Option<f64>)>,
+}
+
+impl GroupStats {
+    fn of(frames: &[FrameFacts], rules: &[RuleSpec]) -> Self {
+        let values = |f: &dyn Fn(&FrameFacts) -> Option<f64>| -> Vec<f64> {
+            frames.iter().filter(|x| x.readable).filter_map(f).collect()
+        };
+        let med = |f: &dyn Fn(&FrameFacts) -> Option<f64>| median_f64(&values(f));
+        GroupStats {
+            fwhm: med(&|f| f.fwhm_px),
+            ecc: med(&|f| f.eccentricity),
+            background: med(&|f| f.background_adu),
+            noise: med(&|f| f.noise_adu),
+            stars: med(&|f| f.star_count.map(|c| c as f64)),
+            rules: rules
+                .iter()
+                .map(|r| {
+                    let v = values(&|f| r.metric.of(f));
+                    let m = median_f64(&v);
+                    let sigma = m
+                        .and_then(|m| {
+                            median_f64(&v.iter().map(|x| (x - m).abs()).collect::<Vec<_>>())
+                        })
+                        .map(|d| d * 1.482_602_218_505_602);
+                    (m, sigma)
+                })
+                .collect(),
+        }
+    }
+
+    /// (warn, reject) eccentricity limits.
+    fn eccentricity_limits(&self) -> (f64, f64) {
+        let m = self.ecc.unwrap_or(0.0);
+        (
+            (m + ECCENTRICITY_OVER_MEDIAN.0).max(ECCENTRICITY_FLOOR.0),
+            (m + ECCENTRICITY_OVER_MEDIAN.1).max(ECCENTRICITY_FLOOR.1),
+        )
+    }
+
+    /// (warn, reject) star counts below which the star-count rule fires.
+    fn star_limits(&self) -> Option<(f64, f64)> {
+        let m = self.stars?.max(1.0);
+        Some((STAR_FRACTION.0 * m, STAR_FRACTION.1 * m))
+    }
+
+    /// (warn, reject) background levels, ADU.
+    fn background_limits(&self) -> Option<(f64, f64)> {
+        let (m, n) = (self.background?, self.noise?.max(1e-9));
+        Some((m + BACKGROUND_SIGMAS.0 * n, m + BACKGROUND_SIGMAS.1 * n))
+    }
+
+    /// The built-in limits on plottable metrics, then the configured rules' (a
+    /// configured rule replaces the built-in one with its reason code; a trend draws no
+    /// line).
+    fn limits(&self, rules: &[RuleSpec]) -> Vec<Limit> {
+        let mut out = Vec::new();
+        let mut pair = |reason: &str, metric: Metric, (warn, reject): (f64, f64), above: bool| {
+            if rules.iter().any(|r| r.reason == reason) {
+                return;
+            }
+            for (verdict, value) in [(Verdict::Warn, warn), (Verdict::Reject, reject)] {
+                out.push(Limit {
+                    reason: reason.into(),
+                    metric,
+                    verdict,
+                    value,
+                    above,
+                });
+            }
+        };
+        if let Some(m) = self.fwhm {
+            pair(
+                "fwhm_high",
+                Metric::FwhmPx,
+                (FWHM_RATIO.0 * m, FWHM_RATIO.1 * m),
+                true,
+            );
+        }
+        pair(
+            "eccentricity_high",
+            Metric::Eccentricity,
+            self.eccentricity_limits(),
+            true,
+        );
+        if let Some(l) = self.background_limits() {
+            pair("background_high", Metric::BackgroundAdu, l, true);
+        }
+        if let Some(l) = self.star_limits() {
+            pair("star_count_low", Metric::StarCount, l, false);
+        }
+        pair(
+            "transparency_low",
+            Metric::TransparencyLossMag,
+            TRANSPARENCY_MAG,
+            true,
+        );
+        for (r, &(median, sigma)) in rules.iter().zip(&self.rules) {
+            let value = match r.test {
+                Test::Above | Test::Below => Some(r.value),
+                Test::AboveMedianRatio | Test::BelowMedianRatio => median.map(|m| r.value * m),
+                Test::SigmasAbove => median.zip(sigma).map(|(m, s)| m + r.value * s),
+                Test::SigmasBelow => median.zip(sigma).map(|(m, s)| m - r.value * s),
+                Test::Rising => None,
+            };
+            if let Some(value) = value {
+                out.push(Limit {
+                    reason: r.reason.clone(),
+                    metric: r.metric,
+                    verdict: r.verdict,
+                    value,
+                    above: matches!(
+                        r.test,
+                        Test::Above | Test::AboveMedianRatio | Test::SigmasAbove
+                    ),
+                });
+            }
+        }
+        out
+    }
 }
 
 /// Judge every frame of one target-and-filter group against the group's medians, with
@@ -190,49 +337,25 @@ pub fn judge_group(frames: &[FrameFacts]) -> Vec<Judgement> {
     judge_group_with(frames, &[])
 }
 
+/// The limits each metric of a group is judged against (built-in and configured), for
+/// drawing beside the values.
+pub fn group_limits(frames: &[FrameFacts], rules: &[RuleSpec]) -> Vec<Limit> {
+    GroupStats::of(frames, rules).limits(rules)
+}
+
 /// Judge every frame of a group with the built-in rules and `rules` (a configured rule
 /// replaces the built-in one with the same reason code). Frames are in time order; a
 /// trend looks at the frames before each one.
 pub fn judge_group_with(frames: &[FrameFacts], rules: &[RuleSpec]) -> Vec<Judgement> {
-    let med = |f: &dyn Fn(&FrameFacts) -> Option<f64>| {
-        median_f64(
-            &frames
-                .iter()
-                .filter(|x| x.readable)
-                .filter_map(f)
-                .collect::<Vec<_>>(),
-        )
-    };
-    let ctx = Ctx {
-        fwhm: med(&|f| f.fwhm_px),
-        ecc: med(&|f| f.eccentricity),
-        background: med(&|f| f.background_adu),
-        noise: med(&|f| f.noise_adu),
-        stars: med(&|f| f.star_count.map(|c| c as f64)),
-    };
+    let stats = GroupStats::of(frames, rules);
     let replaced: Vec<&str> = rules.iter().map(|r| r.reason.as_str()).collect();
-    let stats: Vec<(Option<f64>, Option<f64>)> = rules
-        .iter()
-        .map(|r| {
-            let v: Vec<f64> = frames
-                .iter()
-                .filter(|f| f.readable)
-                .filter_map(|f| r.metric.of(f))
-                .collect();
-            let m = median_f64(&v);
-            let sigma = m
-                .and_then(|m| median_f64(&v.iter().map(|x| (x - m).abs()).collect::<Vec<_>>()))
-                .map(|d| d * 1.482_602_218_505_602);
-            (m, sigma)
-        })
-        .collect();
     frames
         .iter()
         .enumerate()
         .map(|(i, f)| {
-            let mut j = judge(f, &ctx, &replaced);
+            let mut j = judge(f, &stats, &replaced);
             if f.readable {
-                for (r, &(median, sigma)) in rules.iter().zip(&stats) {
+                for (r, &(median, sigma)) in rules.iter().zip(&stats.rules) {
                     if let Some(text) = fires(r, &frames[..=i], median, sigma) {
                         j.verdict = j.verdict.max(r.verdict);
                         if !j.reasons.contains(&r.reason) {
@@ -314,7 +437,19 @@ fn fires(
     }
 }
 
-fn judge(f: &FrameFacts, c: &Ctx, replaced: &[&str]) -> Judgement {
+/// The verdict a value earns against (warn, reject) limits, crossed upwards or downwards.
+fn level(v: f64, (warn, reject): (f64, f64), above: bool) -> Option<Verdict> {
+    let beyond = |limit: f64| if above { v > limit } else { v < limit };
+    if beyond(reject) {
+        Some(Verdict::Reject)
+    } else if beyond(warn) {
+        Some(Verdict::Warn)
+    } else {
+        None
+    }
+}
+
+fn judge(f: &FrameFacts, c: &GroupStats, replaced: &[&str]) -> Judgement {
     let mut j = Judgement {
         verdict: Verdict::Ok,
         reasons: Vec::new(),
@@ -339,73 +474,57 @@ fn judge(f: &FrameFacts, c: &Ctx, replaced: &[&str]) -> Judgement {
         return j;
     }
     if let (Some(v), Some(m)) = (f.fwhm_px, c.fwhm) {
-        let r = v / m;
-        if r > 1.25 {
-            let verdict = if r > 1.5 {
-                Verdict::Reject
-            } else {
-                Verdict::Warn
-            };
-            fire(verdict, "fwhm_high", format!("FWHM {v:.2} px is {r:.2} × the night's median {m:.2} px (warn above 1.25 ×, reject above 1.5 ×)"));
+        if let Some(verdict) = level(v, (FWHM_RATIO.0 * m, FWHM_RATIO.1 * m), true) {
+            let (w, r) = FWHM_RATIO;
+            fire(verdict, "fwhm_high", format!("FWHM {v:.2} px is {:.2} × the night's median {m:.2} px (warn above {w} ×, reject above {r} ×)", v / m));
         }
     }
     if let Some(v) = f.eccentricity {
-        let m = c.ecc.unwrap_or(0.0);
-        let (warn, reject) = ((m + 0.15).max(0.5), (m + 0.3).max(0.65));
-        if v > warn {
-            let verdict = if v > reject {
-                Verdict::Reject
-            } else {
-                Verdict::Warn
-            };
+        let (warn, reject) = c.eccentricity_limits();
+        if let Some(verdict) = level(v, (warn, reject), true) {
+            let m = c.ecc.unwrap_or(0.0);
             fire(verdict, "eccentricity_high", format!("eccentricity {v:.2} against the night's median {m:.2} (warn above {warn:.2}, reject above {reject:.2})"));
         }
     }
-    if let (Some(v), Some(m), Some(n)) = (f.background_adu, c.background, c.noise) {
-        let excess = (v - m) / n.max(1e-9);
-        if excess > 10.0 {
-            let verdict = if excess > 50.0 {
-                Verdict::Reject
-            } else {
-                Verdict::Warn
-            };
-            fire(verdict, "background_high", format!("sky {v:.1} ADU is {excess:.0} σ above the night's median {m:.1} ADU (warn above 10 σ, reject above 50 σ)"));
+    if let (Some(v), Some(limits), Some(m), Some(n)) = (
+        f.background_adu,
+        c.background_limits(),
+        c.background,
+        c.noise,
+    ) {
+        if let Some(verdict) = level(v, limits, true) {
+            let excess = (v - m) / n.max(1e-9);
+            let (w, r) = BACKGROUND_SIGMAS;
+            fire(verdict, "background_high", format!("sky {v:.1} ADU is {excess:.0} σ above the night's median {m:.1} ADU (warn above {w} σ, reject above {r} σ)"));
         }
     }
-    if let (Some(v), Some(m)) = (f.star_count, c.stars) {
-        let r = v as f64 / m.max(1.0);
-        if r < 0.6 {
-            let verdict = if r < 0.3 {
-                Verdict::Reject
-            } else {
-                Verdict::Warn
-            };
-            fire(verdict, "star_count_low", format!("{v} stars, {:.0} % of the night's median {m:.0} (warn below 60 %, reject below 30 %)", 100.0 * r));
+    if let (Some(v), Some(limits), Some(m)) = (f.star_count, c.star_limits(), c.stars) {
+        if let Some(verdict) = level(v as f64, limits, false) {
+            let r = v as f64 / m.max(1.0);
+            let (w, rj) = STAR_FRACTION;
+            fire(verdict, "star_count_low", format!("{v} stars, {:.0} % of the night's median {m:.0} (warn below {:.0} %, reject below {:.0} %)", 100.0 * r, 100.0 * w, 100.0 * rj));
         }
     }
     if let Some(loss) = f.transparency_loss_mag {
-        if loss > 0.3 {
-            let verdict = if loss > 0.75 {
-                Verdict::Reject
-            } else {
-                Verdict::Warn
-            };
-            fire(verdict, "transparency_low", format!("stars {loss:.2} mag fainter than in the reference frame (warn above 0.3, reject above 0.75)"));
+        if let Some(verdict) = level(loss, TRANSPARENCY_MAG, true) {
+            let (w, r) = TRANSPARENCY_MAG;
+            fire(verdict, "transparency_low", format!("stars {loss:.2} mag fainter than in the reference frame (warn above {w}, reject above {r})"));
         }
     }
     if let Some(sun) = f.sun_alt_deg {
-        // Astronomical twilight (Sun above −18°) brightens the sky; by nautical twilight
-        // (above −12°) a frame is rarely worth stacking.
-        if sun > -18.0 {
-            let verdict = if sun > -12.0 {
-                Verdict::Reject
-            } else {
-                Verdict::Warn
-            };
+        if let Some(verdict) = level(sun, SUN_ALTITUDE_DEG, true) {
+            // Written with the minus sign, as the other explanations are.
+            let deg = |a: f64| format!("{a}°").replace('-', "−");
+            let (w, r) = SUN_ALTITUDE_DEG;
             fire(
                 verdict,
                 "twilight",
-                format!("the Sun was at {sun:.1}° (warn above −18°, reject above −12°)"),
+                format!(
+                    "the Sun was at {} (warn above {}, reject above {})",
+                    deg((sun * 10.0).round() / 10.0),
+                    deg(w),
+                    deg(r)
+                ),
             );
         }
     }
@@ -493,13 +612,62 @@ mod tests {
     }
 
     #[test]
+    fn the_drawn_limits_are_the_ones_judged_against() {
+        // Each built-in limit sits where its rule starts to fire: a frame a hair beyond
+        // it gets that verdict, one a hair inside does not.
+        let frames = vec![good(); 9];
+        let limits = group_limits(&frames, &[]);
+        let metrics = |l: &Limit| l.metric;
+        for l in &limits {
+            let eps = 1e-6 * l.value.abs().max(1.0);
+            for (offset, fires) in [(eps, true), (-eps, false)] {
+                let mut probe = frames.clone();
+                let v = l.value + if l.above { offset } else { -offset };
+                let f = &mut probe[0];
+                match l.metric {
+                    Metric::FwhmPx => f.fwhm_px = Some(v),
+                    Metric::Eccentricity => f.eccentricity = Some(v),
+                    Metric::BackgroundAdu => f.background_adu = Some(v),
+                    Metric::StarCount => {
+                        // Counts are whole: the first count past the limit.
+                        let c = if l.above {
+                            v.floor() + 1.0
+                        } else {
+                            v.ceil() - 1.0
+                        };
+                        let inside = if l.above { v.floor() } else { v.ceil() };
+                        f.star_count = Some(if fires { c } else { inside } as usize);
+                    }
+                    Metric::TransparencyLossMag => f.transparency_loss_mag = Some(v),
+                    other => panic!("no built-in limit on {other:?}"),
+                }
+                let j = &judge_group(&probe)[0];
+                let at_least = j.verdict >= l.verdict && j.reasons.contains(&l.reason);
+                assert_eq!(at_least, fires, "{l:?} at {v}: {j:?}");
+            }
+        }
+        assert_eq!(
+            limits.len(),
+            10,
+            "{:?}",
+            limits.iter().map(metrics).collect::<Vec<_>>()
+        );
+        // A configured rule replaces the built-in one's lines with its own.
+        let r = rule("reason = \"fwhm_high\"\nmetric = \"fwhm_px\"\ntest = \"above\"\nvalue = 4.5\nverdict = \"reject\"");
+        let limits = group_limits(&frames, std::slice::from_ref(&r));
+        let fwhm: Vec<&Limit> = limits.iter().filter(|l| l.reason == "fwhm_high").collect();
+        assert_eq!(fwhm.len(), 1);
+        assert_eq!((fwhm[0].value, fwhm[0].verdict), (4.5, Verdict::Reject));
+    }
+
+    #[test]
     fn bad_rule_values_are_reported() {
         let r = rule(
             "reason = \"x\"\nmetric = \"hfr_px\"\ntest = \"rising\"\nvalue = 1\nverdict = \"ok\"",
         );
         assert_eq!(r.problems().len(), 2);
         assert!(toml::from_str::<RuleSpec>(
-            "reason = \"x\"\nmetric = \"colour\"\ntest = \"above\"\nvalue = 1\nverdict = \"warn\""
+            "reason = \"x\"\nmetric = \"color\"\ntest = \"above\"\nvalue = 1\nverdict = \"warn\""
         )
         .is_err());
     }

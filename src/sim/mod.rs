@@ -22,7 +22,7 @@ pub enum PsfShape {
     Moffat { beta: f64 },
 }
 
-/// A star placed by the caller: 0-based pixel position, electrons, colour weights.
+/// A star placed by the caller: 0-based pixel position, electrons, color weights.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct SceneStar {
     pub x: f64,
@@ -312,7 +312,7 @@ pub fn render(p: &SimParams) -> (Array2<f32>, Vec<(String, OutValue)>, SimTruth)
         let x = rng.gen_range(-0.5..w as f64 - 0.5);
         let y = rng.gen_range(-0.5..h as f64 - 0.5);
         let rgb = p.bayer.map(|_| {
-            // Mild colour spread about grey; a very red star is the demo's job, not this.
+            // Mild color spread about grey; a very red star is the demo's job, not this.
             let t: f64 = rng.gen_range(-0.3..0.3);
             [1.0 + t, 1.0, 1.0 - t]
         });

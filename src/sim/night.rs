@@ -91,9 +91,9 @@ impl NightPlan {
         }
     }
 
-    /// A calm one-shot-colour sequence of the second invented target, with one very red
+    /// A calm one-shot-color sequence of the second invented target, with one very red
     /// star.
-    pub fn colour(seed: u64) -> Self {
+    pub fn color(seed: u64) -> Self {
         NightPlan {
             object: "Kestrel Field B".into(),
             center_deg: (201.3, -12.4),

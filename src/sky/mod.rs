@@ -188,6 +188,49 @@ pub fn sun_crossings(
     (down, up)
 }
 
+/// The night around a moment, for the Sun's altitude `alt`: when the Sun went below it
+/// and when it comes back above. At a moment when the Sun is below `alt`, that is the
+/// dusk before and the dawn after it; when the Sun is above, the coming dusk and the
+/// dawn that follows. `None` for a crossing that does not happen within a day (polar
+/// summer or winter).
+pub fn night_around(t_unix: f64, alt: f64, lat: f64, lon_east: f64) -> (Option<f64>, Option<f64>) {
+    let dark = sun_altitude(julian_date(t_unix), lat, lon_east) <= alt;
+    if !dark {
+        return sun_crossings(t_unix, alt, lat, lon_east);
+    }
+    // The dusk: the last downward crossing in the day before; the dawn: the first
+    // upward crossing after the moment.
+    let (mut dusk, mut dawn) = (None, None);
+    let mut start = t_unix - 86_400.0;
+    while let (Some(down), _) = sun_crossings(start, alt, lat, lon_east) {
+        if down > t_unix {
+            break;
+        }
+        dusk = Some(down);
+        start = down + 60.0;
+    }
+    let mut t = t_unix;
+    let step = 600.0;
+    let above = |t: f64| sun_altitude(julian_date(t), lat, lon_east) > alt;
+    while t < t_unix + 86_400.0 {
+        if above(t + step) {
+            let (mut a, mut b) = (t, t + step);
+            for _ in 0..40 {
+                let m = 0.5 * (a + b);
+                if above(m) {
+                    b = m;
+                } else {
+                    a = m;
+                }
+            }
+            dawn = Some(0.5 * (a + b));
+            break;
+        }
+        t += step;
+    }
+    (dusk, dawn)
+}
+
 /// Precession matrix from J2000 to the mean equator and equinox of `jd` (IAU 2006,
 /// Capitaine et al. 2003, A&A 412, 567: the angles ζ_A, z_A, θ_A; coefficients from
 /// memory of that paper).
@@ -245,6 +288,31 @@ mod tests {
 
     fn label(iso: &str, tz: &str) -> String {
         night_label(parse_iso_time(iso).unwrap(), tz.parse().unwrap()).unwrap()
+    }
+
+    #[test]
+    fn the_night_around_midnight_is_the_night_that_began_at_dusk() {
+        // Asked at noon, the coming dusk and dawn; asked at midnight, the same pair (the
+        // dusk before the moment and the dawn after it), not the next night's.
+        let (lat, lon) = (40.4, -3.7);
+        let noon = parse_iso_time("2026-03-14T12:00:00").unwrap();
+        let midnight = parse_iso_time("2026-03-15T00:00:00").unwrap();
+        let by_day = night_around(noon, -12.0, lat, lon);
+        let by_night = night_around(midnight, -12.0, lat, lon);
+        let (dusk, dawn) = (by_day.0.unwrap(), by_day.1.unwrap());
+        assert!(dusk < midnight && midnight < dawn, "{by_day:?}");
+        assert!(
+            (by_night.0.unwrap() - dusk).abs() < 2.0,
+            "{by_night:?} {by_day:?}"
+        );
+        assert!(
+            (by_night.1.unwrap() - dawn).abs() < 2.0,
+            "{by_night:?} {by_day:?}"
+        );
+        // The Sun is at −12° at both (the crossings' own definition).
+        for t in [dusk, dawn] {
+            assert!((sun_altitude(julian_date(t), lat, lon) + 12.0).abs() < 0.01);
+        }
     }
 
     #[test]

@@ -12,6 +12,15 @@ use crate::night::judge::Placement;
 use crate::record::{FrameRecord, FrameStatus, Identity, StarRecord};
 use crate::rules::Verdict;
 
+/// A frame whose stored judgement changed when its night was judged again.
+#[derive(Debug, Clone, PartialEq)]
+pub struct VerdictChange {
+    pub path: String,
+    /// The verdict before; `None` when the frame had none stored yet.
+    pub before: Option<Verdict>,
+    pub after: Verdict,
+}
+
 /// What recording a frame did.
 #[derive(Debug, Clone, PartialEq)]
 pub enum Recorded {
@@ -63,6 +72,8 @@ pub struct NightCounts {
     pub skipped: i64,
     pub warned: i64,
     pub rejected: i64,
+    /// Frames without a readable DATE-OBS (their night comes from the file's time).
+    pub undated: i64,
     pub last_frame_time_unix: Option<f64>,
     pub last_recorded_unix: Option<f64>,
 }
@@ -466,16 +477,64 @@ impl Store {
     pub fn set_live_verdict(
         &self,
         id: i64,
-        verdict: Verdict,
-        reasons: &[String],
+        judgement: &crate::rules::Judgement,
         transparency_loss_mag: Option<f64>,
     ) -> Result<(), StoreError> {
-        let reasons = serde_json::to_string(reasons).unwrap_or_default();
+        let reasons = serde_json::to_string(&judgement.reasons).unwrap_or_default();
+        let explanations = serde_json::to_string(&judgement.explanations).unwrap_or_default();
         self.run(
             "UPDATE frames SET verdict = ?2, reasons_json = ?3, live_verdict = ?2,
-                live_reasons_json = ?3, transparency_loss_mag = ?4 WHERE id = ?1",
-            params![id, verdict.as_str(), reasons, transparency_loss_mag],
+                live_reasons_json = ?3, transparency_loss_mag = ?4, live_explanations_json = ?5
+             WHERE id = ?1",
+            params![
+                id,
+                judgement.verdict.as_str(),
+                reasons,
+                transparency_loss_mag,
+                explanations
+            ],
         )
+    }
+
+    /// The last `n` judged frames of one night-target-filter group, newest last: path,
+    /// live verdict and its explanations.
+    pub fn latest_live_judgements(
+        &self,
+        night: &str,
+        target: Option<&str>,
+        filter: Option<&str>,
+        n: usize,
+    ) -> Result<Vec<(String, Verdict, Vec<String>)>, StoreError> {
+        let mut st = self
+            .conn
+            .prepare_cached(
+                "SELECT path, live_verdict, live_explanations_json FROM frames
+                 WHERE night = ?1 AND target IS ?2 AND filter IS ?3 AND live_verdict IS NOT NULL
+                 ORDER BY COALESCE(time_unix, recorded_at) DESC, id DESC LIMIT ?4",
+            )
+            .map_err(|e| self.err(e))?;
+        let rows = st
+            .query_map(params![night, target, filter, n as i64], |r| {
+                Ok((
+                    r.get::<_, String>(0)?,
+                    r.get::<_, String>(1)?,
+                    r.get::<_, Option<String>>(2)?,
+                ))
+            })
+            .map_err(|e| self.err(e))?;
+        let mut out = Vec::new();
+        for row in rows {
+            let (path, verdict, explanations) = row.map_err(|e| self.err(e))?;
+            let Some(verdict) = Verdict::from_name(&verdict) else {
+                continue;
+            };
+            let explanations = explanations
+                .and_then(|j| serde_json::from_str(&j).ok())
+                .unwrap_or_default();
+            out.push((path, verdict, explanations));
+        }
+        out.reverse();
+        Ok(out)
     }
 
     /// Record a frame's verdict and reasons.
@@ -496,19 +555,22 @@ impl Store {
     }
 
     /// Store verdicts judged again for the whole night (path, verdict, reasons), in one
-    /// transaction. Returns how many changed.
+    /// transaction. Returns the frames whose verdict or reasons changed.
     pub fn update_verdicts(
         &mut self,
         verdicts: &[(String, Verdict, Vec<String>)],
-    ) -> Result<usize, StoreError> {
+    ) -> Result<Vec<VerdictChange>, StoreError> {
         let path = self.path.clone();
         let err = |source| StoreError::Sqlite {
             path: path.clone(),
             source,
         };
         let tx = self.conn.transaction().map_err(err)?;
-        let mut changed = 0;
+        let mut changed = Vec::new();
         {
+            let mut before = tx
+                .prepare_cached("SELECT verdict FROM frames WHERE path = ?1")
+                .map_err(err)?;
             let mut st = tx
                 .prepare_cached(
                     "UPDATE frames SET verdict = ?2, reasons_json = ?3
@@ -517,42 +579,43 @@ impl Store {
                 .map_err(err)?;
             for (p, verdict, reasons) in verdicts {
                 let reasons = serde_json::to_string(reasons).unwrap_or_default();
-                changed += st
+                let was: Option<String> = before
+                    .query_row(params![p], |row| row.get(0))
+                    .optional()
+                    .map_err(err)?
+                    .flatten();
+                if st
                     .execute(params![p, verdict.as_str(), reasons])
-                    .map_err(err)?;
+                    .map_err(err)?
+                    > 0
+                {
+                    changed.push(VerdictChange {
+                        path: p.clone(),
+                        before: was.as_deref().and_then(Verdict::from_name),
+                        after: *verdict,
+                    });
+                }
             }
         }
         tx.commit().map_err(err)?;
         Ok(changed)
     }
 
-    /// Paths of the frames of one night, target and filter whose verdict is not reject.
+    /// Paths of the frames of one night, target and filter to stack: verdict ok, and
+    /// warn when `with_warned`.
     pub fn accepted_paths(
         &self,
         night: &str,
         target: Option<&str>,
         filter: Option<&str>,
+        with_warned: bool,
     ) -> Result<Vec<String>, StoreError> {
         self.strings(
             "SELECT path FROM frames WHERE night = ?1 AND target IS ?2 AND filter IS ?3
-             AND status = 'ok' AND verdict IN ('ok', 'warn') ORDER BY COALESCE(time_unix, recorded_at), id",
-            params![night, target, filter],
+             AND status = 'ok' AND (verdict = 'ok' OR (?4 AND verdict = 'warn'))
+             ORDER BY COALESCE(time_unix, recorded_at), id",
+            params![night, target, filter, with_warned],
         )
-    }
-
-    /// Verdicts of one night-target-filter group, oldest first.
-    pub fn group_verdicts(
-        &self,
-        night: &str,
-        target: Option<&str>,
-        filter: Option<&str>,
-    ) -> Result<Vec<Verdict>, StoreError> {
-        let names = self.strings(
-            "SELECT verdict FROM frames WHERE night = ?1 AND target IS ?2 AND filter IS ?3
-             AND verdict IS NOT NULL ORDER BY COALESCE(time_unix, recorded_at), id",
-            params![night, target, filter],
-        )?;
-        Ok(names.iter().filter_map(|n| Verdict::from_name(n)).collect())
     }
 
     /// The (target, filter) groups of one night's frames.
@@ -571,6 +634,26 @@ impl Store {
     }
 
     /// Counts for one night.
+    /// The night of the frame recorded last that carries a readable DATE-OBS: the
+    /// night in progress as the frames themselves place it.
+    pub fn latest_dated_night(&self) -> Result<Option<String>, StoreError> {
+        Ok(self
+            .strings(
+                "SELECT night FROM frames WHERE time_unix IS NOT NULL AND night IS NOT NULL
+                 ORDER BY recorded_at DESC, id DESC LIMIT 1",
+                [],
+            )?
+            .pop())
+    }
+
+    /// The night labels that hold frames, oldest first.
+    pub fn nights(&self) -> Result<Vec<String>, StoreError> {
+        self.strings(
+            "SELECT DISTINCT night FROM frames WHERE night IS NOT NULL ORDER BY night",
+            [],
+        )
+    }
+
     pub fn night_counts(&self, night: &str) -> Result<NightCounts, StoreError> {
         self.conn
             .query_row(
@@ -580,6 +663,7 @@ impl Store {
                         COALESCE(SUM(status = 'skipped'), 0),
                         COALESCE(SUM(verdict = 'warn'), 0),
                         COALESCE(SUM(verdict = 'reject'), 0),
+                        COALESCE(SUM(time_unix IS NULL), 0),
                         MAX(time_unix), MAX(recorded_at)
                  FROM frames WHERE night = ?1",
                 params![night],
@@ -591,8 +675,9 @@ impl Store {
                         skipped: r.get(3)?,
                         warned: r.get(4)?,
                         rejected: r.get(5)?,
-                        last_frame_time_unix: r.get(6)?,
-                        last_recorded_unix: r.get(7)?,
+                        undated: r.get(6)?,
+                        last_frame_time_unix: r.get(7)?,
+                        last_recorded_unix: r.get(8)?,
                     })
                 },
             )

@@ -16,7 +16,7 @@ mod lock;
 mod outbox;
 mod schema;
 
-pub use frames::{GroupKey, Interrupted, NightCounts, Recorded, TargetFilter};
+pub use frames::{GroupKey, Interrupted, NightCounts, Recorded, TargetFilter, VerdictChange};
 pub use lock::{claim, daemon_pid, DaemonLock};
 pub use outbox::OutboxMessage;
 use schema::MIGRATIONS;

@@ -64,14 +64,41 @@ pub fn frames_stopped(
     })
 }
 
-/// A streak of rejections at the end of `verdicts` (oldest first).
-pub fn reject_streak(limits: &AlertLimits, verdicts: &[Verdict]) -> Option<String> {
+/// A frame as judged live: its path, verdict and the sentences that say why.
+pub type LiveJudgement = (String, Verdict, Vec<String>);
+
+/// A streak of rejections at the end of a group's latest judgements (oldest first): the
+/// message names the group, each frame and what was measured in it.
+pub fn reject_streak(
+    limits: &AlertLimits,
+    group: &str,
+    latest: &[LiveJudgement],
+) -> Option<String> {
     let n = limits.reject_streak.max(1);
-    (verdicts.len() >= n
-        && verdicts[verdicts.len() - n..]
+    if latest.len() < n
+        || latest[latest.len() - n..]
             .iter()
-            .all(|v| *v == Verdict::Reject))
-    .then(|| format!("the last {n} frames were all rejected (clouds, dew, focus or tracking)"))
+            .any(|j| j.1 != Verdict::Reject)
+    {
+        return None;
+    }
+    let frames: Vec<String> = latest[latest.len() - n..]
+        .iter()
+        .map(|(path, _, why)| {
+            let name = std::path::Path::new(path)
+                .file_name()
+                .map_or(path.clone(), |n| n.to_string_lossy().into_owned());
+            if why.is_empty() {
+                name
+            } else {
+                format!("{name} ({})", why.join("; "))
+            }
+        })
+        .collect();
+    Some(format!(
+        "{group}: the last {n} frames were all rejected: {}",
+        frames.join(", ")
+    ))
 }
 
 /// Low disk space on any of the file systems the daemon uses, each given as a folder on
@@ -104,11 +131,19 @@ mod tests {
         assert!(frames_stopped(&l, 10_000.0, Some(10_000.0 - 5.0 * 60.0), None).is_none());
         let v = |s: &[&str]| {
             s.iter()
-                .filter_map(|x| Verdict::from_name(x))
+                .enumerate()
+                .filter_map(|(k, x)| {
+                    let why = vec![format!("sky {k}00 ADU is 60 σ above the night's median")];
+                    Some((format!("/srv/k{k:03}.fits"), Verdict::from_name(x)?, why))
+                })
                 .collect::<Vec<_>>()
         };
-        assert!(reject_streak(&l, &v(&["ok", "reject", "reject", "reject"])).is_some());
-        assert!(reject_streak(&l, &v(&["reject", "ok", "reject", "reject"])).is_none());
+        let streak = reject_streak(&l, "Field A / L", &v(&["ok", "reject", "reject", "reject"]));
+        assert_eq!(
+            streak.as_deref(),
+            Some("Field A / L: the last 3 frames were all rejected: k001.fits (sky 100 ADU is 60 σ above the night's median), k002.fits (sky 200 ADU is 60 σ above the night's median), k003.fits (sky 300 ADU is 60 σ above the night's median)")
+        );
+        assert!(reject_streak(&l, "g", &v(&["reject", "ok", "reject", "reject"])).is_none());
         let disks = |a: u64, b: u64| {
             vec![
                 ("/srv".to_string(), a),

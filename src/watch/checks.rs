@@ -25,7 +25,11 @@ pub(super) fn raise_alert(
         return None;
     }
     store.add_alert(night, kind, message, now).ok()?;
-    let mailed = if config.alerts.enabled && !config.mail.to.is_empty() {
+    let mailed = if !config.alerts.enabled {
+        " (not delivered: [alerts] enabled = false)"
+    } else if config.mail.to.is_empty() {
+        " (not delivered: no [mail] recipients configured)"
+    } else {
         let sent = crate::mail::MailSettings::from_config(config).and_then(|s| {
             crate::mail::compose_note(
                 &s,
@@ -41,16 +45,14 @@ pub(super) fn raise_alert(
                 }
                 Err(e) => {
                     tracing::error!("alert not queued for mail: {e}");
-                    ""
+                    " (not delivered: the outbox refused it)"
                 }
             },
             Err(e) => {
                 tracing::warn!("alert not mailed: {e}");
-                ""
+                " (not delivered: the mail settings are incomplete)"
             }
         }
-    } else {
-        ""
     };
     Some(format!("alert {kind}: {message}{mailed}"))
 }
@@ -88,7 +90,14 @@ pub(super) fn minute_checks(shared: &Shared) {
         Ok(n) => tracing::info!("judged {n} frame(s) recorded earlier without a verdict"),
         Err(e) => tracing::error!("judging frames left without a verdict: {e}"),
     }
-    anomaly_alerts(&store, config, &night, now);
+    // Anomalies belong to the night the frames' DATE-OBS place them in, which is not
+    // the clock's night when frames of another night are copied in.
+    let frames_night = store
+        .latest_dated_night()
+        .ok()
+        .flatten()
+        .unwrap_or_else(|| night.clone());
+    anomaly_alerts(&store, config, &frames_night, now);
     summary_if_due(&store, config, now);
     flush_outbox(&store, config, now);
 }
@@ -122,7 +131,9 @@ fn anomaly_alerts(store: &Store, config: &Config, night: &str, now: f64) {
     if records.len() < 3 {
         return;
     }
-    let Ok(doc) = crate::batch::analyse_records(&records, &[], config.site_position(), None) else {
+    let Ok(doc) =
+        crate::batch::analyse_records(&records, &config.rule_specs(), config.site_position(), None)
+    else {
         return;
     };
     for a in &doc.anomalies {
@@ -130,13 +141,7 @@ fn anomaly_alerts(store: &Store, config: &Config, night: &str, now: f64) {
         if !config.alerts.anomaly_kinds.contains(&a.kind) || a.detail.is_cosmic_ray() {
             continue;
         }
-        let place = match (a.ra_deg, a.dec_deg) {
-            (Some(r), Some(d)) => format!("at {} (J2000)", crate::report::sexagesimal(r, d)),
-            _ => a.detections.first().map_or(String::new(), |d| {
-                format!("at x={:.0} y={:.0} of {}", d.x, d.y, d.path)
-            }),
-        };
-        let message = format!("{kind} {place}, seen in {} frame(s)", a.detections.len());
+        let message = anomaly_message(a);
         let alert_kind = format!("anomaly_{kind}");
         // Once per anomaly: its count of frames and (for a moving object) its mean
         // position change as frames arrive, its first detection does not.
@@ -170,7 +175,7 @@ fn written_folders(c: &Config) -> Vec<PathBuf> {
     let mut folders = c.watch.folders.clone();
     folders.extend(c.store.path.parent().map(Path::to_path_buf));
     folders.push(crate::morning::report_folder(c));
-    folders.extend(crate::morning::lists_folder(c));
+    folders.extend(crate::lists::Lists::from_config(c).map(|l| l.folder));
     folders
 }
 
@@ -252,6 +257,38 @@ fn summary_if_due(store: &Store, config: &Config, now: f64) {
         }
         Err(e) => tracing::error!("morning summary of {night} not made: {e}"),
     }
+}
+
+/// What an anomaly alert says: the group, the kind, where on the sky, what was measured,
+/// and the frames it was seen in.
+fn anomaly_message(a: &crate::contract::AnomalyRecord) -> String {
+    let place = match (a.ra_deg, a.dec_deg) {
+        (Some(r), Some(d)) => format!(" at {} (J2000)", crate::report::sexagesimal(r, d)),
+        _ => String::new(),
+    };
+    let frames = match (a.detections.first(), a.detections.last()) {
+        (Some(first), Some(last)) if a.detections.len() > 1 => format!(
+            "seen in {} frames, from {} (x={:.0}, y={:.0}) to {}",
+            a.detections.len(),
+            crate::report::file_name(&first.path),
+            first.x,
+            first.y,
+            crate::report::file_name(&last.path)
+        ),
+        (Some(d), _) => format!(
+            "seen in {} (x={:.0}, y={:.0})",
+            crate::report::file_name(&d.path),
+            d.x,
+            d.y
+        ),
+        _ => String::new(),
+    };
+    format!(
+        "{}: {}{place}: {}; {frames}",
+        crate::report::group_heading(a.target.as_deref(), a.filter.as_deref()),
+        a.kind.name(),
+        crate::report::what(a)
+    )
 }
 
 #[cfg(test)]

@@ -36,13 +36,21 @@ pub(super) enum Outcome {
     Gone(PathBuf),
 }
 
-/// One line per frame: its numbers, or why it was set aside or could not be read.
+/// One line per frame: its numbers under the night document's names, or why it was set
+/// aside or could not be read. A frame without a readable DATE-OBS says so, since its
+/// night then comes from the file's time.
 fn frame_line(record: &FrameRecord) -> LogLine {
     let path = shown(Path::new(&record.identity.path));
     let reason = || crate::logging::one_line(record.error.as_deref().unwrap_or(""));
+    let undated = if record.time_unix.is_none() {
+        " (no readable DATE-OBS: night taken from the file's time)"
+    } else {
+        ""
+    };
     match (&record.status, &record.metrics) {
         (FrameStatus::Ok, Some(m)) => LogLine::Info(format!(
-            "{path} ok stars={} fwhm_px={} ecc={} bkg={:.1} noise={:.2}",
+            "{path} measured: night={} star_count={} fwhm_px={} eccentricity={} background_adu={:.1} noise_adu={:.2}{undated}",
+            record.night.as_deref().unwrap_or("-"),
             m.star_count,
             m.fwhm_px.map_or("-".into(), |v| format!("{v:.2}")),
             m.eccentricity.map_or("-".into(), |v| format!("{v:.2}")),
@@ -104,14 +112,14 @@ pub(super) fn store_record(shared: &Shared, record: FrameRecord) -> Outcome {
             let same_group = earlier.night == record.night
                 && earlier.target == record.target
                 && earlier.filter == record.filter;
-            if let (Some(folder), Some(night), false) = (
-                shared.judging.lists_folder.as_deref(),
+            if let (Some(lists), Some(night), false) = (
+                shared.judging.lists.as_ref(),
                 earlier.night.as_deref(),
                 same_group,
             ) {
                 if let Err(e) = crate::lists::rewrite(
                     &store,
-                    folder,
+                    lists,
                     night,
                     earlier.target.as_deref(),
                     earlier.filter.as_deref(),
@@ -146,13 +154,18 @@ pub(super) fn store_record(shared: &Shared, record: FrameRecord) -> Outcome {
         record.night.as_deref(),
         verdict.as_ref().is_ok_and(|v| v.is_some()),
     ) {
-        let verdicts = store
-            .group_verdicts(night, record.target.as_deref(), record.filter.as_deref())
+        let limits = alerts::AlertLimits::from_config(&shared.config.alerts);
+        let latest = store
+            .latest_live_judgements(
+                night,
+                record.target.as_deref(),
+                record.filter.as_deref(),
+                limits.reject_streak.max(1),
+            )
             .unwrap_or_default();
-        if let Some(msg) = alerts::reject_streak(
-            &alerts::AlertLimits::from_config(&shared.config.alerts),
-            &verdicts,
-        ) {
+        let group =
+            crate::report::group_heading(record.target.as_deref(), record.filter.as_deref());
+        if let Some(msg) = alerts::reject_streak(&limits, &group, &latest) {
             if let Some(alert) = checks::raise_alert(
                 &store,
                 &shared.config,

@@ -3,8 +3,6 @@
 //! stored (and kept as its live verdict) and its group's list rewritten. Only the new
 //! frame is registered, unless the group's reference changed since the others were.
 
-use std::path::PathBuf;
-
 use crate::night::judge::{self, Placement, Site};
 use crate::record::FrameRecord;
 use crate::rules::Verdict;
@@ -15,8 +13,8 @@ use crate::store::{GroupKey, Store, StoreError};
 pub struct Judging {
     pub rules: Vec<crate::rules::RuleSpec>,
     pub site: Option<Site>,
-    /// Where accepted-frame lists go, when that action is on.
-    pub lists_folder: Option<PathBuf>,
+    /// The lists of frames to stack, when that action is on.
+    pub lists: Option<crate::lists::Lists>,
 }
 
 /// A live verdict with its reasons.
@@ -103,11 +101,11 @@ fn judge_frame(
     };
     let j = &judged[k];
     let verdict = j.judgement.verdict;
-    store.set_live_verdict(id, verdict, &j.judgement.reasons, j.transparency_loss_mag)?;
-    if let Some(folder) = judging.lists_folder.as_deref() {
+    store.set_live_verdict(id, &j.judgement, j.transparency_loss_mag)?;
+    if let Some(lists) = judging.lists.as_ref() {
         if let Err(e) = crate::lists::rewrite(
             store,
-            folder,
+            lists,
             night,
             key.target.as_deref(),
             key.filter.as_deref(),

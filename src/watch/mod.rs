@@ -151,7 +151,7 @@ async fn daemon(
     let mut store = Store::open(&config.store.path)?;
     settle_interrupted(&mut store, wall.now_unix())?;
     let mut recorded: HashMap<String, (u64, i64)> = store.recorded_versions()?;
-    let lists_folder = crate::morning::lists_folder(&config);
+    let lists = crate::lists::Lists::from_config(&config);
     let filter = crate::walk::FrameFilter::from_config(&config);
     let shared = Arc::new(Shared {
         clock: wall.clone(),
@@ -161,7 +161,7 @@ async fn daemon(
         judging: Judging {
             rules: config.rule_specs(),
             site: config.site_position(),
-            lists_folder,
+            lists,
         },
         config: config.clone(),
     });

@@ -1,8 +1,10 @@
 //! The daemon as a user runs it, for the integration tests: a real process on real
 //! folders with a real SQLite file.
 
+use std::io::Read;
 use std::path::{Path, PathBuf};
 use std::process::{Child, Command, Stdio};
+use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant};
 
 use subwatch::frame::cards::OutValue;
@@ -45,6 +47,71 @@ impl Daemon {
 }
 
 impl Drop for Daemon {
+    fn drop(&mut self) {
+        let _ = self.child.kill();
+        let _ = self.child.wait();
+    }
+}
+
+/// A daemon started as a user starts it (no SUBWATCH_LOG), its log collected.
+pub struct Logged {
+    pub child: Child,
+    log: Arc<Mutex<String>>,
+}
+
+impl Logged {
+    pub fn start(config: &Path) -> Logged {
+        let mut child = Command::new(super::binary())
+            .args(["watch", "--config"])
+            .arg(config)
+            .env_remove("SUBWATCH_LOG")
+            .stdout(Stdio::null())
+            .stderr(Stdio::piped())
+            .spawn()
+            .expect("start daemon");
+        let mut err = child.stderr.take().unwrap();
+        let log = Arc::new(Mutex::new(String::new()));
+        let sink = log.clone();
+        std::thread::spawn(move || {
+            let mut buf = [0u8; 4096];
+            while let Ok(n) = err.read(&mut buf) {
+                if n == 0 {
+                    break;
+                }
+                sink.lock()
+                    .unwrap()
+                    .push_str(&String::from_utf8_lossy(&buf[..n]));
+            }
+        });
+        Logged { child, log }
+    }
+
+    pub fn log(&self) -> String {
+        self.log.lock().unwrap().clone()
+    }
+
+    pub fn wait_log(&self, words: &str, limit: Duration) -> bool {
+        let start = Instant::now();
+        while start.elapsed() < limit {
+            if self.log().contains(words) {
+                return true;
+            }
+            std::thread::sleep(Duration::from_millis(100));
+        }
+        false
+    }
+
+    /// SIGTERM, then the whole log.
+    pub fn stop(mut self) -> String {
+        // SAFETY: signalling our own child.
+        unsafe { libc::kill(self.child.id() as i32, libc::SIGTERM) };
+        let _ = self.child.wait();
+        std::thread::sleep(Duration::from_millis(200));
+        self.log()
+    }
+}
+
+impl Drop for Logged {
     fn drop(&mut self) {
         let _ = self.child.kill();
         let _ = self.child.wait();

@@ -89,16 +89,22 @@ def main():
         for date in DATES:
             # From local noon (roughly: 12 h minus longitude/15 in UTC) of that date.
             t0 = Time(f"{date}T12:00:00", scale="utc") - (lon / 15.0) * u.hour
-            for name, alt in [("civil", -6.0), ("nautical", -12.0), ("astronomical", -18.0)]:
-                d = sky(binary, lat, lon, t0.isot[:19])
-                ours = d[name]
-                for key, rising in [("sets_unix", False), ("rises_unix", True)]:
-                    ref = crossing(lat, lon, t0, alt, rising)
-                    got = ours[key]
-                    if ref is None or got is None:
-                        agree &= (ref is None) == (got is None)
-                        continue
-                    worst_twilight = max(worst_twilight, abs(got - ref))
+            # Asked at local noon, and again at local midnight of the same night: both
+            # answer for that night (dusk before the moment, dawn after it at midnight).
+            for moment in [t0, t0 + 12 * u.hour]:
+                for name, alt in [("civil", -6.0), ("nautical", -12.0), ("astronomical", -18.0)]:
+                    d = sky(binary, lat, lon, moment.isot[:19])
+                    ours = d[name]
+                    dark_at_midnight = moment is not t0 and ours["sets_unix"] is not None and ours["sets_unix"] < moment.unix
+                    if moment is not t0 and not dark_at_midnight:
+                        continue  # the Sun is above this altitude at midnight: another night's question
+                    for key, rising in [("sets_unix", False), ("rises_unix", True)]:
+                        ref = crossing(lat, lon, t0, alt, rising)
+                        got = ours[key]
+                        if ref is None or got is None:
+                            agree &= (ref is None) == (got is None)
+                            continue
+                        worst_twilight = max(worst_twilight, abs(got - ref))
         checks.record(f"twilight times at latitude {lat}", agree and worst_twilight < 120.0, f"worst {worst_twilight:.1f} s; events that do not happen agree: {agree}")
 
     # Precession to J2000 against pyerfa's IAU 2006 matrix.

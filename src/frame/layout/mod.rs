@@ -417,7 +417,7 @@ pub(super) fn image_shape(axes: &[u64], label: &str) -> Result<(u64, u64), Layou
         [w, h] => Ok((*w, *h)),
         [w, h, 1] => Ok((*w, *h)),
         [_, _, planes] => Err(LayoutError::Invalid(format!(
-            "{label} is a {planes}-plane cube; colour-separated cubes are not supported (one plane expected)"
+            "{label} is a {planes}-plane cube; color-separated cubes are not supported (one plane expected)"
         ))),
         _ => Err(LayoutError::Invalid(format!(
             "{label} has NAXIS = {}; only 2-D images (or a 3-D cube with one plane) are supported",

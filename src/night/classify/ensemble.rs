@@ -1,6 +1,6 @@
 //! Differential photometry of the bright persistent sources against their ensemble
 //! (the median of the others): each frame's zero point and each source's mean magnitude,
-//! iterated three times. Shared by the variability test, the colours and the catalogue.
+//! iterated three times. Shared by the variability test, the colors and the catalogue.
 
 use super::Night;
 use crate::measure::stats::median_f64;

@@ -1,11 +1,11 @@
 //! What is unusual in a night: every source followed across the frames (placed on the
 //! group's reference by `judge`), then one classifier per kind of anomaly over the same
 //! night context: `trails`, `sharp` (hot pixels and cosmic rays), `orphans` (moving
-//! objects and transients), `variables`, `colour`, and `catalogue` (tonight's catalogue
+//! objects and transients), `variables`, `color`, and `catalogue` (tonight's catalogue
 //! and the sources earlier nights did not have). Pure.
 
 mod catalogue;
-mod colour;
+mod color;
 mod ensemble;
 mod orphans;
 mod sharp;
@@ -275,7 +275,7 @@ pub fn analyse(
     anomalies.extend(sharp::hot_pixels_and_cosmic_rays(&night));
     anomalies.extend(orphans::moving_and_transients(&night));
     anomalies.extend(variables::variables(&night, &ensemble));
-    anomalies.extend(colour::colour_outliers(&night, &ensemble));
+    anomalies.extend(color::color_outliers(&night, &ensemble));
     let (mut findings, new) = catalogue::catalogue(&night, &ensemble, earlier);
     anomalies.extend(new);
     anomalies.sort_by_key(|a| a.kind);

@@ -1,4 +1,4 @@
-//! Colour outliers on one-shot-colour frames: bright persistent sources whose colours
+//! Color outliers on one-shot-color frames: bright persistent sources whose colors
 //! (−2.5 log10 R/G and B/G) lie more than 5 robust σ from the field's.
 
 use super::ensemble::{mag, Ensemble};
@@ -7,14 +7,14 @@ use crate::measure::stats::median_f64;
 use crate::night::detail::{ColorDetail, Detail};
 use crate::night::{Anomaly, AnomalyKind, Detection};
 
-pub(super) fn colour_outliers(night: &Night, ensemble: &Ensemble) -> Vec<Anomaly> {
+pub(super) fn color_outliers(night: &Night, ensemble: &Ensemble) -> Vec<Anomaly> {
     let Night {
         frames, sources, ..
     } = night;
     let bright = &ensemble.bright;
     let mut anomalies = Vec::new();
-    // Colour: one-shot-colour frames, persistent bright sources far from the field's locus.
-    let colours: Vec<(usize, f64, f64)> = bright
+    // Color: one-shot-color frames, persistent bright sources far from the field's locus.
+    let colors: Vec<(usize, f64, f64)> = bright
         .iter()
         .filter_map(|&s| {
             let (c1, c2): (Vec<f64>, Vec<f64>) = sources[s]
@@ -29,9 +29,9 @@ pub(super) fn colour_outliers(night: &Night, ensemble: &Ensemble) -> Vec<Anomaly
             Some((s, median_f64(&c1)?, median_f64(&c2)?))
         })
         .collect();
-    if colours.len() >= 8 {
-        let c1: Vec<f64> = colours.iter().map(|c| c.1).collect();
-        let c2: Vec<f64> = colours.iter().map(|c| c.2).collect();
+    if colors.len() >= 8 {
+        let c1: Vec<f64> = colors.iter().map(|c| c.1).collect();
+        let c2: Vec<f64> = colors.iter().map(|c| c.2).collect();
         let (m1, m2) = (
             median_f64(&c1).unwrap_or(0.0),
             median_f64(&c2).unwrap_or(0.0),
@@ -40,7 +40,7 @@ pub(super) fn colour_outliers(night: &Night, ensemble: &Ensemble) -> Vec<Anomaly
             robust_sigma(&c1).unwrap_or(1.0).max(0.02),
             robust_sigma(&c2).unwrap_or(1.0).max(0.02),
         );
-        for &(s, a, b) in &colours {
+        for &(s, a, b) in &colors {
             let (z1, z2) = ((a - m1) / s1, (b - m2) / s2);
             if z1.abs() > 5.0 || z2.abs() > 5.0 {
                 let dets: Vec<Detection> = detections_of(&sources[s]);

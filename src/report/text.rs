@@ -1,0 +1,156 @@
+//! The summary as plain text: the mail's text part and what `night` and `report` print.
+//! Counts first, then the warned and rejected frames with their reasons, then what
+//! deserves a look; hot pixels as positions, cosmic-ray hits as a count (listed with
+//! `all`). Every value from a header is put on one line.
+
+use std::fmt::Write as _;
+
+use super::{file_name, instrumental_mag, minutes, sexagesimal, what, Summary};
+use crate::text::single_line;
+
+/// The plain-text summary; `all` adds every frame and every cosmic-ray hit.
+pub fn text(s: &Summary, all: bool) -> String {
+    let mut t = String::new();
+    let _ = writeln!(
+        t,
+        "Night {}: {} frames: {} ok, {} warn, {} reject. Clock times are {}.",
+        s.night,
+        s.frames,
+        s.ok,
+        s.warned,
+        s.rejected,
+        s.tz.name()
+    );
+    for g in &s.groups {
+        let fwhm = match (g.median_fwhm_arcsec, g.median_fwhm_px) {
+            (Some(f), _) => format!("; median FWHM {f:.2}″"),
+            (None, Some(f)) => format!("; median FWHM {f:.2} px"),
+            _ => String::new(),
+        };
+        let _ = writeln!(
+            t,
+            "  {}: {} frames: {} ok, {} warn, {} reject; to stack {} in {} frames{fwhm}",
+            single_line(&g.heading()),
+            g.frames,
+            g.ok,
+            g.warn,
+            g.reject,
+            minutes(g.usable_seconds),
+            g.stack.len(),
+        );
+    }
+    let counts = s.kind_counts();
+    let _ = writeln!(
+        t,
+        "Anomalies: {}",
+        if counts.is_empty() {
+            "none".to_string()
+        } else {
+            counts
+                .iter()
+                .map(|(k, n)| format!("{n} {k}"))
+                .collect::<Vec<_>>()
+                .join(", ")
+        }
+    );
+
+    if s.groups.iter().any(|g| g.flagged().next().is_some()) {
+        let _ = writeln!(t, "\nWarned and rejected frames");
+    }
+    for g in s.groups.iter().filter(|g| g.flagged().next().is_some()) {
+        let _ = writeln!(t, "  {}", single_line(&g.heading()));
+        for f in g.flagged() {
+            let _ = writeln!(
+                t,
+                "    {}  {:<6}  {}",
+                f.local_time.as_deref().unwrap_or("--:--:--"),
+                f.verdict.as_str(),
+                single_line(&f.file)
+            );
+            for e in &f.explanations {
+                let _ = writeln!(t, "        {}", single_line(e));
+            }
+        }
+        if g.warned_left_out > 0 {
+            let _ = writeln!(
+                t,
+                "    ({} warned frame(s) left out of the frames to stack by [actions] stack_warned = false)",
+                g.warned_left_out
+            );
+        }
+    }
+
+    if !s.notable.is_empty() {
+        let _ = writeln!(t, "\nWorth a look ({})", s.notable.len());
+    }
+    for a in &s.notable {
+        let pos = match (a.ra_deg, a.dec_deg) {
+            (Some(r), Some(d)) => format!("{} ({r:.5}, {d:+.5})", sexagesimal(r, d)),
+            _ => "no sky position".into(),
+        };
+        let mag =
+            instrumental_mag(a).map_or(String::new(), |m| format!("; mag {m:.2} (instrumental)"));
+        let first = a
+            .detections
+            .first()
+            .map(|d| {
+                format!(
+                    "; first in {} at x={:.1} y={:.1}",
+                    file_name(&d.path),
+                    d.x,
+                    d.y
+                )
+            })
+            .unwrap_or_default();
+        let _ = writeln!(t, "  {:<10} {pos}", a.kind.name());
+        let _ = writeln!(
+            t,
+            "             {}{mag}; {} frame(s){}",
+            single_line(&what(a)),
+            a.detections.len(),
+            single_line(&first)
+        );
+    }
+
+    if !s.hot_pixels.is_empty() {
+        let _ = writeln!(
+            t,
+            "\nHot pixels: {} (detector x, y): {}",
+            s.hot_pixels.len(),
+            s.hot_pixels
+                .iter()
+                .map(|h| format!("({:.0}, {:.0})", h.x, h.y))
+                .collect::<Vec<_>>()
+                .join(" ")
+        );
+    }
+    if !s.cosmic_rays.is_empty() {
+        let _ = writeln!(t, "Cosmic-ray hits: {}", s.cosmic_rays.len());
+    }
+
+    if all {
+        let _ = writeln!(t, "\nEvery frame");
+        for g in &s.groups {
+            let _ = writeln!(t, "  {}", single_line(&g.heading()));
+            for f in &g.lines {
+                let stacked = g.stack.iter().any(|e| e.path == f.path);
+                let _ = writeln!(
+                    t,
+                    "    {}  {:<6} {:<5}  {}  {}",
+                    f.local_time.as_deref().unwrap_or("--:--:--"),
+                    f.verdict.as_str(),
+                    if stacked { "stack" } else { "" },
+                    single_line(&f.path),
+                    f.reasons.join(",")
+                );
+            }
+        }
+        if !s.cosmic_rays.is_empty() {
+            let _ = writeln!(t, "\nCosmic-ray hits (file, x, y)");
+            for (file, x, y) in &s.cosmic_rays {
+                let _ = writeln!(t, "  {}  {x:.1}  {y:.1}", single_line(file));
+            }
+        }
+    }
+    t
+}
