@@ -6,29 +6,32 @@ use anyhow::Result;
 
 /// `subwatch demo`.
 pub fn run(out: &std::path::Path) -> Result<ExitCode> {
-    let terminal = std::io::IsTerminal::is_terminal(&std::io::stderr());
+    // A progress bar on a terminal; elsewhere (a pipe, CI) one line per stage.
+    let bar = std::io::IsTerminal::is_terminal(&std::io::stderr()).then(|| {
+        let bar = indicatif::ProgressBar::new(0);
+        bar.set_style(
+            indicatif::ProgressStyle::with_template("{msg:<28} [{bar:30}] {pos}/{len}")
+                .expect("a valid template")
+                .progress_chars("=> "),
+        );
+        bar
+    });
     let mut last = String::new();
     let mut progress = |stage: &str, done: usize, total: usize| {
-        let width = 30;
-        let filled = (done * width)
-            .checked_div(total)
-            .unwrap_or(width)
-            .min(width);
-        let line = format!(
-            "[{}{}] {done}/{total} {stage}",
-            "#".repeat(filled),
-            ".".repeat(width - filled)
-        );
-        if terminal {
-            eprint!("\r{line:<70}");
-        } else if stage != last {
-            eprintln!("{stage}");
+        match &bar {
+            Some(b) => {
+                b.set_message(stage.to_string());
+                b.set_length(total as u64);
+                b.set_position(done as u64);
+            }
+            None if stage != last => eprintln!("{stage}"),
+            None => {}
         }
         last = stage.to_string();
     };
     let outcome = subwatch::demo::run(out, &mut progress)?;
-    if terminal {
-        eprintln!();
+    if let Some(b) = bar {
+        b.finish_and_clear();
     }
     let doc = &outcome.doc;
     let count = |v: subwatch::rules::Verdict| doc.frames.iter().filter(|f| f.verdict == v).count();

@@ -444,13 +444,13 @@ pub fn what(a: &AnomalyRecord) -> String {
 pub fn csv(doc: &NightDocument) -> String {
     let q = |s: &str| csv_text(s);
     let n = |v: Option<f64>| v.map_or(String::new(), |x| format!("{x:.4}"));
-    let mut out = String::from("path,target,filter,time_unix,verdict,reasons,star_count,fwhm_px,fwhm_arcsec,eccentricity,background_adu,noise_adu,snr_median,hfr_px,transparency_loss_mag\n");
+    let mut out = String::from("path,target,filter,time_unix,verdict,reasons,star_count,fwhm_px,fwhm_arcsec,eccentricity,background_adu,noise_adu,snr_median,hfr_px,transparency_loss_mag,explanations\n");
     for f in &doc.frames {
         let m = f.metrics.as_ref();
         let verdict = f.verdict.as_str();
         let _ = writeln!(
             out,
-            "{},{},{},{},{},{},{},{},{},{},{},{},{},{},{}",
+            "{},{},{},{},{},{},{},{},{},{},{},{},{},{},{},{}",
             q(&f.path),
             q(f.target.as_deref().unwrap_or("")),
             q(f.filter.as_deref().unwrap_or("")),
@@ -466,6 +466,7 @@ pub fn csv(doc: &NightDocument) -> String {
             n(m.and_then(|m| m.snr_median)),
             n(m.and_then(|m| m.hfr_px)),
             n(f.transparency_loss_mag),
+            q(&f.explanations.join(" | ")),
         );
     }
     out
