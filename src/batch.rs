@@ -13,14 +13,24 @@ use crate::record::{FrameRecord, FrameStatus, Identity};
 use crate::rules::RuleSpec;
 use crate::store::{Store, StoreError};
 
+/// Where the analysis finds earlier nights' catalogues (for new sources), and whether it
+/// keeps tonight's.
+pub enum Catalogues<'a> {
+    /// Neither: no new sources.
+    None,
+    /// Earlier nights' from the store, tonight's not kept (the status page).
+    Read(&'a Store),
+    /// Earlier nights' from the store, and tonight's kept there.
+    Keep(&'a mut Store),
+}
+
 /// Judge already-recorded frames as one night through the night model, group by group
-/// (target and filter; unreadable frames stay in their group). `store` (optional)
-/// supplies earlier nights' catalogues and keeps tonight's.
+/// (target and filter; unreadable frames stay in their group).
 pub fn analyse_records(
     records: &[FrameRecord],
     rules: &[RuleSpec],
     site: Option<Site>,
-    mut store: Option<&mut Store>,
+    mut store: Catalogues<'_>,
 ) -> Result<NightDocument, StoreError> {
     let mut doc = NightDocument {
         frames: Vec::new(),
@@ -42,8 +52,13 @@ pub fn analyse_records(
                 .filter(|r| r.status == FrameStatus::Ok)
                 .filter_map(|r| r.night.clone()),
         );
-        let earlier = match (&mut store, &night_label) {
-            (Some(s), Some(n)) if !target.is_empty() => s.earlier_catalogs(&target, n)?,
+        let earlier = match (&store, &night_label) {
+            (Catalogues::Read(s), Some(n)) if !target.is_empty() => {
+                s.earlier_catalogs(&target, n)?
+            }
+            (Catalogues::Keep(s), Some(n)) if !target.is_empty() => {
+                s.earlier_catalogs(&target, n)?
+            }
             _ => Vec::new(),
         };
         let judged = judge_night(&frames, &earlier, rules, site);
@@ -53,7 +68,9 @@ pub fn analyse_records(
             limits: judged.limits.clone(),
         });
         let found = &judged.findings;
-        if let (Some(s), Some(n), Some(limit)) = (&mut store, &night_label, found.limit_mag) {
+        if let (Catalogues::Keep(s), Some(n), Some(limit)) =
+            (&mut store, &night_label, found.limit_mag)
+        {
             if !target.is_empty() && !found.catalog.is_empty() {
                 s.save_catalog(&target, n, limit, &found.footprint, &found.catalog)?;
             }
@@ -152,6 +169,9 @@ pub fn run_night(
         &records,
         &config.rule_specs(),
         config.site_position(),
-        store,
+        match store {
+            Some(s) => Catalogues::Keep(s),
+            None => Catalogues::None,
+        },
     )
 }

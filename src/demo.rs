@@ -65,8 +65,10 @@ fn io(path: &Path) -> impl FnOnce(std::io::Error) -> DemoError + '_ {
 }
 
 /// The demo's configuration (what a user would write in subwatch.toml).
-pub fn demo_config(out: &Path) -> Config {
+/// `page`: where the status page is served during the night, if anywhere.
+pub fn demo_config(out: &Path, page: Option<std::net::SocketAddr>) -> Config {
     let mut c = Config::default();
+    c.web.listen = page;
     c.watch.folders = vec![out.join("capture")];
     c.watch.settle_seconds = 0.3;
     c.watch.rescan_seconds = 5.0;
@@ -136,6 +138,7 @@ fn render_all(
 /// Run the demo into `out` (created; refused when it holds anything but an earlier demo).
 pub fn run(
     out: &Path,
+    page: Option<std::net::SocketAddr>,
     progress: &mut dyn FnMut(&str, usize, usize),
 ) -> Result<DemoOutcome, DemoError> {
     let started = Instant::now();
@@ -162,7 +165,7 @@ pub fn run(
     }
     std::fs::write(out.join(MARKER), b"made by subwatch demo\n").map_err(io(out))?;
     let out = std::fs::canonicalize(out).map_err(io(out))?;
-    let config = demo_config(&out);
+    let config = demo_config(&out, page);
 
     let (previous, tonight) = render_all(progress);
 
@@ -189,7 +192,12 @@ pub fn run(
         }
         if let Some(n) = label {
             let records = store.night_records(&n)?;
-            crate::batch::analyse_records(&records, &[], config.site_position(), Some(&mut store))?;
+            crate::batch::analyse_records(
+                &records,
+                &[],
+                config.site_position(),
+                crate::batch::Catalogues::Keep(&mut store),
+            )?;
         }
     }
 

@@ -14,6 +14,7 @@ pub mod demo;
 pub mod finite;
 pub mod frame;
 pub mod lists;
+pub mod live;
 pub mod logging;
 pub mod mail;
 pub mod measure;

@@ -127,6 +127,13 @@ enum Command {
         /// subwatch-demo in the system's temporary folder, so a checkout stays clean.
         #[arg(long)]
         out: Option<PathBuf>,
+        /// Serve the night's live status page on this machine at this port while the
+        /// demo runs (another free port when it is taken; 0 = no page).
+        #[arg(long, default_value_t = 8480)]
+        page_port: u16,
+        /// After the morning, keep the status page (and the daemon) running until Ctrl-C.
+        #[arg(long)]
+        keep_page: bool,
     },
     /// Render a synthetic night of frames with known events into a folder.
     RenderNight {
@@ -213,9 +220,15 @@ fn run(cli: Cli) -> Result<ExitCode> {
             all,
             send,
         } => night::report(&config.path, night, json, all, send),
-        Command::Demo { out } => {
-            demo::run(&out.unwrap_or_else(|| std::env::temp_dir().join("subwatch-demo")))
-        }
+        Command::Demo {
+            out,
+            page_port,
+            keep_page,
+        } => demo::run(
+            &out.unwrap_or_else(|| std::env::temp_dir().join("subwatch-demo")),
+            page_port,
+            keep_page,
+        ),
         Command::ReadWorker => {
             subwatch::reader::serve(std::io::stdin().lock(), std::io::stdout().lock())
                 .context("read-worker")?;

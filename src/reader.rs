@@ -44,6 +44,12 @@ pub enum Request {
         half: usize,
         limits: crate::frame::DecodeLimits,
     },
+    /// A stretched picture of the whole frame, at most `max_side` pixels on a side.
+    Preview {
+        path: PathBuf,
+        max_side: usize,
+        limits: crate::frame::DecodeLimits,
+    },
 }
 
 /// A worker's answer.
@@ -51,6 +57,8 @@ pub enum Request {
 pub enum Reply {
     Record(Box<FrameRecord>),
     Cutout(Option<Vec<u8>>),
+    /// PNG, width, height and binning of a preview.
+    Preview(Option<(Vec<u8>, u32, u32, usize)>),
 }
 
 /// How files are read.
@@ -335,6 +343,16 @@ fn answer(request: Request) -> Reply {
                 .ok()
                 .and_then(|f| crate::report::plots::cutout_png(&f.pixels, x, y, half)),
         ),
+        Request::Preview {
+            path,
+            max_side,
+            limits,
+        } => Reply::Preview(
+            crate::frame::read_frame(&path, limits)
+                .ok()
+                .and_then(|f| crate::report::preview::preview_png(&f.pixels, max_side))
+                .map(|p| (p.png, p.width, p.height, p.bin)),
+        ),
     }
 }
 
@@ -384,6 +402,32 @@ impl Reader {
         };
         match self.run(request) {
             Ok(Reply::Cutout(png)) => png,
+            _ => None,
+        }
+    }
+
+    /// A stretched picture of the whole frame (see `report::preview`), or `None` when
+    /// the file cannot be read.
+    pub fn preview(
+        &self,
+        path: &Path,
+        max_side: usize,
+        limits: crate::frame::DecodeLimits,
+    ) -> Option<crate::report::preview::Preview> {
+        let request = Request::Preview {
+            path: path.to_path_buf(),
+            max_side,
+            limits,
+        };
+        match self.run(request) {
+            Ok(Reply::Preview(Some((png, width, height, bin)))) => {
+                Some(crate::report::preview::Preview {
+                    png,
+                    width,
+                    height,
+                    bin,
+                })
+            }
             _ => None,
         }
     }

@@ -4,8 +4,24 @@ use std::process::ExitCode;
 
 use anyhow::Result;
 
+/// A free address on this machine for the status page: `port` when it is free, else one
+/// the system picks.
+fn page_address(port: u16) -> Option<std::net::SocketAddr> {
+    if port == 0 {
+        return None;
+    }
+    let bound = std::net::TcpListener::bind(("127.0.0.1", port))
+        .or_else(|_| std::net::TcpListener::bind(("127.0.0.1", 0)))
+        .ok()?;
+    bound.local_addr().ok()
+}
+
 /// `subwatch demo`.
-pub fn run(out: &std::path::Path) -> Result<ExitCode> {
+pub fn run(out: &std::path::Path, page_port: u16, keep_page: bool) -> Result<ExitCode> {
+    let page = page_address(page_port);
+    if let Some(addr) = page {
+        eprintln!("The night's status page, while the demo runs: http://{addr}/");
+    }
     // A progress bar on a terminal; elsewhere (a pipe, CI) one line per stage.
     let bar = std::io::IsTerminal::is_terminal(&std::io::stderr()).then(|| {
         let bar = indicatif::ProgressBar::new(0);
@@ -29,7 +45,7 @@ pub fn run(out: &std::path::Path) -> Result<ExitCode> {
         }
         last = stage.to_string();
     };
-    let outcome = subwatch::demo::run(out, &mut progress)?;
+    let outcome = subwatch::demo::run(out, page, &mut progress)?;
     if let Some(b) = bar {
         b.finish_and_clear();
     }
@@ -92,5 +108,15 @@ pub fn run(out: &std::path::Path) -> Result<ExitCode> {
     println!("  measure your own frames:        subwatch measure /path/to/your/*.fits");
     println!("  grade a night you already have: subwatch night /path/to/night-folder --report /tmp/night-report");
     println!("  watch every night as a service: see systemd/README.md (config/subwatch.toml documents every key)");
+    match (page, keep_page) {
+        (Some(addr), true) => {
+            println!("The status page stays at http://{addr}/ until Ctrl-C.");
+            subwatch::watch::run(subwatch::demo::demo_config(&outcome.out, Some(addr)))?;
+        }
+        (Some(_), false) => println!(
+            "  see the night's status page again: subwatch demo --keep-page (it stays open until Ctrl-C)"
+        ),
+        _ => {}
+    }
     Ok(ExitCode::SUCCESS)
 }

@@ -41,6 +41,13 @@ impl Config {
                 errors.push(format!("mail.password_file: {e}"));
             }
         }
+        if let Some(token) = &self.web.token_file {
+            if let Err(e) = check_secret_file(token) {
+                errors.push(format!("web.token_file: {e}"));
+            } else if let Err(e) = self.web.token() {
+                errors.push(format!("web.token_file: {e}"));
+            }
+        }
         if let Some(ca) = &self.mail.ca_file {
             if let Err(e) = std::fs::read(ca) {
                 errors.push(format!("mail.ca_file: {}: {e}", ca.display()));

@@ -244,6 +244,40 @@ pub struct ReportConfig {
     pub folder: Option<PathBuf>,
 }
 
+/// The live status page: off unless `listen` is set.
+#[derive(Debug, Clone, Default)]
+pub struct WebConfig {
+    /// Where the page is served (`127.0.0.1:8480`); `None` = no page.
+    pub listen: Option<std::net::SocketAddr>,
+    /// A file holding the access token (owned by this user, readable by nobody else).
+    pub token_file: Option<PathBuf>,
+    /// Serve to the network without a token: the explicit, clearly named opt-out.
+    pub open_without_token: bool,
+}
+
+impl WebConfig {
+    /// The access token: the token file's first line, at least 16 characters. `Ok(None)`
+    /// without a token file.
+    pub fn token(&self) -> Result<Option<String>, String> {
+        let Some(path) = &self.token_file else {
+            return Ok(None);
+        };
+        use std::io::Read;
+        let mut text = String::new();
+        std::fs::File::open(path)
+            .and_then(|f| f.take(4096).read_to_string(&mut text))
+            .map_err(|e| format!("{}: {e}", path.display()))?;
+        let token = text.lines().next().unwrap_or("").trim().to_string();
+        if token.chars().count() < 16 || token.chars().any(|c| c.is_control() || c == ' ') {
+            return Err(format!(
+                "{}: the token must be one line of at least 16 characters without spaces",
+                path.display()
+            ));
+        }
+        Ok(Some(token))
+    }
+}
+
 /// The whole file, typed.
 #[derive(Debug, Clone, Default)]
 pub struct Config {
@@ -256,6 +290,7 @@ pub struct Config {
     pub mail: MailConfig,
     pub alerts: AlertsConfig,
     pub report: ReportConfig,
+    pub web: WebConfig,
     pub rules: Vec<RuleSpec>,
     /// The file this configuration was read from.
     pub source: Option<PathBuf>,

@@ -200,8 +200,8 @@ impl<'a> Reader<'a> {
     }
 }
 
-const SECTIONS: [&str; 9] = [
-    "watch", "store", "site", "optics", "measure", "actions", "mail", "alerts", "report",
+const SECTIONS: [&str; 10] = [
+    "watch", "store", "site", "optics", "measure", "actions", "mail", "alerts", "report", "web",
 ];
 
 /// A number from an integer or a float.
@@ -547,6 +547,19 @@ pub fn parse(text: &str, base: &Path) -> Result<Config, Vec<ConfigProblem>> {
     let report = ReportConfig {
         folder: r.path("report", "folder"),
     };
+    let web = WebConfig {
+        listen: r.read("web", "listen", None, |v| {
+            v.as_str()
+                .and_then(|s| s.parse::<std::net::SocketAddr>().ok())
+                .map(Some)
+                .ok_or_else(|| {
+                    "an address and port such as \"127.0.0.1:8480\" (an IPv6 address in brackets: \"[::1]:8480\")"
+                        .to_string()
+                })
+        }),
+        token_file: r.path("web", "token_file"),
+        open_without_token: r.flag("web", "open_without_token", false),
+    };
     let rules = read_rules(&mut r);
     r.unknown();
     let mut problems = std::mem::take(&mut r.problems);
@@ -560,6 +573,7 @@ pub fn parse(text: &str, base: &Path) -> Result<Config, Vec<ConfigProblem>> {
         mail,
         alerts,
         report,
+        web,
         rules,
         source: None,
     };
@@ -708,6 +722,25 @@ impl Config {
                 "the summary would go nowhere: [mail] to is empty".into(),
             );
         }
+        if let Some(addr) = self.web.listen {
+            if !addr.ip().is_loopback()
+                && self.web.token_file.is_none()
+                && !self.web.open_without_token
+            {
+                bad(
+                    "web",
+                    "listen",
+                    format!("{addr} is reachable from the network: set [web] token_file to a file holding an access token, or open_without_token = true to serve the page to anyone who can reach it"),
+                );
+            }
+        }
+        if self.web.token_file.is_some() && self.web.open_without_token {
+            bad(
+                "web",
+                "open_without_token",
+                "token_file is set as well: choose one".into(),
+            );
+        }
         if self.mail.security == Security::None
             && self.mail.password_file.is_some()
             && !self.mail.send_password_unencrypted
@@ -750,6 +783,28 @@ mod tests {
         let text = include_str!("../../config/subwatch.toml");
         let problems = parse(text, Path::new("/")).err().unwrap_or_default();
         assert!(problems.is_empty(), "{problems:?}");
+    }
+
+    #[test]
+    fn the_status_page_stays_on_this_machine_unless_a_token_guards_it() {
+        let base = "[watch]\nfolders = [\"/tmp\"]\n[web]\n";
+        let read = |web: &str| parse(&format!("{base}{web}"), Path::new("/"));
+        let c = read("listen = \"127.0.0.1:8480\"\n").unwrap();
+        assert_eq!(c.web.listen, Some("127.0.0.1:8480".parse().unwrap()));
+        assert!(read("listen = \"[::1]:8480\"\n").is_ok());
+        assert!(read("").unwrap().web.listen.is_none());
+        let problems = read("listen = \"8480\"\n").unwrap_err();
+        assert_eq!(
+            (problems[0].key.as_str(), problems[0].line),
+            ("web.listen", Some(4))
+        );
+        let problems = read("listen = \"0.0.0.0:8480\"\n").unwrap_err();
+        assert!(problems[0].message.contains("token_file"), "{problems:?}");
+        assert!(read("listen = \"0.0.0.0:8480\"\ntoken_file = \"/etc/t\"\n").is_ok());
+        assert!(read("listen = \"0.0.0.0:8480\"\nopen_without_token = true\n").is_ok());
+        let both =
+            "listen = \"0.0.0.0:8480\"\ntoken_file = \"/etc/t\"\nopen_without_token = true\n";
+        assert_eq!(read(both).unwrap_err()[0].key, "web.open_without_token");
     }
 
     #[test]

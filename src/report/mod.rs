@@ -9,6 +9,7 @@
 
 mod html;
 pub mod plots;
+pub mod preview;
 mod text;
 
 use std::collections::BTreeMap;

@@ -84,7 +84,12 @@ fn register_font() {
 }
 
 /// PNG at the strongest compression: the plots travel by mail.
-fn encode_png(pixels: &[u8], w: u32, h: u32, color: image::ColorType) -> Option<Vec<u8>> {
+pub(super) fn encode_png(
+    pixels: &[u8],
+    w: u32,
+    h: u32,
+    color: image::ColorType,
+) -> Option<Vec<u8>> {
     use image::codecs::png::{CompressionType, FilterType, PngEncoder};
     use image::ImageEncoder;
     let mut out = Vec::new();

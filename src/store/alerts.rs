@@ -57,6 +57,20 @@ impl Store {
         )
     }
 
+    /// The alerts raised for `night`, oldest first: (time, kind, message).
+    pub fn night_alerts(&self, night: &str) -> Result<Vec<(f64, String, String)>, StoreError> {
+        let mut st = self
+            .conn
+            .prepare_cached(
+                "SELECT created_unix, kind, message FROM alerts WHERE night = ?1 ORDER BY created_unix, id",
+            )
+            .map_err(|e| self.err(e))?;
+        let rows = st
+            .query_map(params![night], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)))
+            .map_err(|e| self.err(e))?;
+        rows.collect::<Result<_, _>>().map_err(|e| self.err(e))
+    }
+
     pub fn set_meta(&self, key: &str, value: &str) -> Result<(), StoreError> {
         self.run(
             "INSERT INTO meta (key, value) VALUES (?1, ?2) ON CONFLICT (key) DO UPDATE SET value = excluded.value",

@@ -21,6 +21,16 @@ pub struct VerdictChange {
     pub after: Verdict,
 }
 
+/// A frame of a night as the daemon judged it when it landed (for the status page).
+#[derive(Debug, Clone)]
+pub struct LiveFrame {
+    pub id: i64,
+    /// Stars and rejected detections left empty.
+    pub record: FrameRecord,
+    pub verdict: Option<Verdict>,
+    pub explanations: Vec<String>,
+}
+
 /// What recording a frame did.
 #[derive(Debug, Clone, PartialEq)]
 pub enum Recorded {
@@ -291,6 +301,31 @@ impl Store {
             rec.stars = self.frame_star_records(id)?;
             rec.rejected = self.frame_rejected(id)?;
             out.push(rec);
+        }
+        Ok(out)
+    }
+
+    /// Every frame of one night with its live verdict and explanations, in time order,
+    /// without stars.
+    pub fn night_live_frames(&self, night: &str) -> Result<Vec<LiveFrame>, StoreError> {
+        let rows = self.frame_rows("WHERE night = ?1", params![night])?;
+        let mut st = self
+            .conn
+            .prepare_cached("SELECT live_verdict, live_explanations_json FROM frames WHERE id = ?1")
+            .map_err(|e| self.err(e))?;
+        let mut out = Vec::with_capacity(rows.len());
+        for (id, record, _) in rows {
+            let (verdict, explanations): (Option<String>, Option<String>) = st
+                .query_row(params![id], |r| Ok((r.get(0)?, r.get(1)?)))
+                .map_err(|e| self.err(e))?;
+            out.push(LiveFrame {
+                id,
+                record,
+                verdict: verdict.as_deref().and_then(Verdict::from_name),
+                explanations: explanations
+                    .and_then(|j| serde_json::from_str(&j).ok())
+                    .unwrap_or_default(),
+            });
         }
         Ok(out)
     }

@@ -16,7 +16,9 @@ mod lock;
 mod outbox;
 mod schema;
 
-pub use frames::{GroupKey, Interrupted, NightCounts, Recorded, TargetFilter, VerdictChange};
+pub use frames::{
+    GroupKey, Interrupted, LiveFrame, NightCounts, Recorded, TargetFilter, VerdictChange,
+};
 pub use lock::{claim, daemon_pid, DaemonLock};
 pub use outbox::OutboxMessage;
 use schema::MIGRATIONS;
@@ -72,6 +74,26 @@ impl Store {
         };
         store.migrate()?;
         Ok(store)
+    }
+
+    /// Open an existing store to read only (the status page's own connection: WAL lets
+    /// it read while the daemon writes, and it can never change a row).
+    pub fn open_read_only(path: &Path) -> Result<Self, StoreError> {
+        let err = |source| StoreError::Sqlite {
+            path: path.to_path_buf(),
+            source,
+        };
+        let conn = Connection::open_with_flags(
+            path,
+            rusqlite::OpenFlags::SQLITE_OPEN_READ_ONLY | rusqlite::OpenFlags::SQLITE_OPEN_NO_MUTEX,
+        )
+        .map_err(err)?;
+        conn.busy_timeout(std::time::Duration::from_secs(2))
+            .map_err(err)?;
+        Ok(Store {
+            conn,
+            path: path.to_path_buf(),
+        })
     }
 
     fn err(&self, source: rusqlite::Error) -> StoreError {

@@ -26,6 +26,18 @@ impl Store {
         Ok(self.conn.last_insert_rowid())
     }
 
+    /// The outbox at a glance: messages waiting, and the last error of any that failed.
+    pub fn outbox_state(&self) -> Result<(usize, Option<String>), StoreError> {
+        self.conn
+            .query_row(
+                "SELECT COUNT(*), (SELECT last_error FROM outbox WHERE status = 'queued' AND last_error IS NOT NULL ORDER BY id DESC LIMIT 1)
+                 FROM outbox WHERE status = 'queued'",
+                [],
+                |r| Ok((r.get::<_, i64>(0)? as usize, r.get(1)?)),
+            )
+            .map_err(|e| self.err(e))
+    }
+
     /// Messages due for (another) attempt.
     pub fn due_mail(&self, now_unix: f64) -> Result<Vec<(i64, OutboxMessage, i64)>, StoreError> {
         let mut st = self

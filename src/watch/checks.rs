@@ -131,9 +131,14 @@ fn anomaly_alerts(store: &Store, config: &Config, night: &str, now: f64) {
     if records.len() < 3 {
         return;
     }
-    let Ok(doc) =
-        crate::batch::analyse_records(&records, &config.rule_specs(), config.site_position(), None)
-    else {
+    // Earlier nights' catalogues are read, so a new source can be alerted on tonight;
+    // tonight's catalogue is kept by the morning's judgement, not here.
+    let Ok(doc) = crate::batch::analyse_records(
+        &records,
+        &config.rule_specs(),
+        config.site_position(),
+        crate::batch::Catalogues::Read(store),
+    ) else {
         return;
     };
     for a in &doc.anomalies {
@@ -171,7 +176,7 @@ fn alert_identity(night: &str, alert_kind: &str, a: &crate::contract::AnomalyRec
 
 /// Every folder the daemon reads frames from or writes into: the capture folders, the
 /// store's folder, the reports and the lists.
-fn written_folders(c: &Config) -> Vec<PathBuf> {
+pub(super) fn written_folders(c: &Config) -> Vec<PathBuf> {
     let mut folders = c.watch.folders.clone();
     folders.extend(c.store.path.parent().map(Path::to_path_buf));
     folders.push(crate::morning::report_folder(c));
@@ -181,7 +186,7 @@ fn written_folders(c: &Config) -> Vec<PathBuf> {
 
 /// Free bytes of each file system holding one of `folders`, once per file system (the
 /// first folder named for it). A folder not made yet counts by its nearest parent.
-fn free_space(folders: &[PathBuf]) -> Vec<(PathBuf, u64)> {
+pub(super) fn free_space(folders: &[PathBuf]) -> Vec<(PathBuf, u64)> {
     use std::os::unix::fs::MetadataExt;
     let mut seen = std::collections::HashSet::new();
     let mut out = Vec::new();

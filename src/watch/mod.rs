@@ -19,9 +19,11 @@ pub mod alerts;
 mod checks;
 mod frame;
 pub mod judge;
+pub mod page;
 pub mod schedule;
 pub mod settle;
 mod systemd;
+pub mod web;
 
 use std::collections::{HashMap, HashSet, VecDeque};
 use std::path::{Path, PathBuf};
@@ -150,6 +152,28 @@ async fn daemon(
     let _claim = crate::store::claim(&config.store.path)?;
     let mut store = Store::open(&config.store.path)?;
     settle_interrupted(&mut store, wall.now_unix())?;
+    // The status page: a failure to serve it costs the page, never the watching.
+    let _web = match web::start(&config, wall.clone()) {
+        Ok(Some(w)) => {
+            tracing::info!(
+                "status page at http://{}/ ({})",
+                w.address,
+                if config.web.token_file.is_some() {
+                    "access token required"
+                } else if w.address.ip().is_loopback() {
+                    "this machine only"
+                } else {
+                    "open to the network without a token"
+                }
+            );
+            Some(w)
+        }
+        Ok(None) => None,
+        Err(e) => {
+            tracing::error!("status page off: {e}");
+            None
+        }
+    };
     let mut recorded: HashMap<String, (u64, i64)> = store.recorded_versions()?;
     let lists = crate::lists::Lists::from_config(&config);
     let filter = crate::walk::FrameFilter::from_config(&config);

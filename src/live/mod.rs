@@ -1,0 +1,627 @@
+//! The live status page as data and HTML: what the daemon serves on `[web] listen`.
+//! `LiveView` is the night so far (per group counts and usable time, every frame with
+//! its verdict and reasons, the latest frame, anomalies, alerts, the sky now, the
+//! daemon's health); it is the JSON view for scripts as it stands, and `html` renders
+//! the page from it. Every value that came from a file or a header is escaped. The page
+//! loads its own script and style sheet (no inline code, so a strict
+//! Content-Security-Policy holds) and fetches its own content again when the view's
+//! version changes. Pure.
+
+use std::fmt::Write as _;
+
+use serde::Serialize;
+
+use crate::text::escape_html;
+
+/// The night so far, as the page and the JSON view show it.
+#[derive(Debug, Clone, Default, Serialize)]
+pub struct LiveView {
+    /// Changes whenever anything shown changes; the page polls it.
+    pub version: u64,
+    pub night: Option<String>,
+    /// How the night was chosen, in words.
+    pub night_placed_by: String,
+    pub now_unix: f64,
+    /// The site's time zone; every clock time on the page is on it.
+    pub timezone: String,
+    pub groups: Vec<LiveGroup>,
+    /// Every frame of the night, newest first.
+    pub frames: Vec<LiveFrame>,
+    pub latest: Option<LatestFrame>,
+    pub alerts: Vec<LiveAlert>,
+    /// What the night analysis found so far, most interesting first.
+    pub anomalies: Vec<LiveAnomaly>,
+    /// Hot pixels and cosmic-ray hits found, counted rather than listed.
+    pub hot_pixels: usize,
+    pub cosmic_rays: usize,
+    /// When the anomalies and plots were computed, if they were.
+    pub analysed_unix: Option<f64>,
+    pub plots: Vec<LivePlot>,
+    pub sky: Option<SkyNow>,
+    pub health: Health,
+}
+
+#[derive(Debug, Clone, Default, Serialize)]
+pub struct LiveGroup {
+    pub target: Option<String>,
+    pub filter: Option<String>,
+    pub heading: String,
+    pub ok: usize,
+    pub warn: usize,
+    pub reject: usize,
+    /// Frames not judged (unreadable, or waiting for a verdict).
+    pub other: usize,
+    /// Exposure of the frames that go to the stack (ok, and warned ones when they are
+    /// stacked), seconds.
+    pub usable_s: f64,
+}
+
+#[derive(Debug, Clone, Default, Serialize)]
+pub struct LiveFrame {
+    /// The store's id: the only way a URL names a frame.
+    pub id: i64,
+    pub file: String,
+    pub path: String,
+    pub time_unix: Option<f64>,
+    /// The site's clock, "HH:MM:SS".
+    pub time_local: Option<String>,
+    pub target: Option<String>,
+    pub filter: Option<String>,
+    /// ok, warn, reject; `None` before a verdict or for an unreadable frame.
+    pub verdict: Option<String>,
+    /// "ok", "error" or "skipped": whether the frame could be measured.
+    pub status: String,
+    pub error: Option<String>,
+    pub explanations: Vec<String>,
+    pub exposure_s: Option<f64>,
+    pub star_count: Option<usize>,
+    pub fwhm_px: Option<f64>,
+    pub fwhm_arcsec: Option<f64>,
+    pub eccentricity: Option<f64>,
+    pub background_adu: Option<f64>,
+    pub noise_adu: Option<f64>,
+    pub snr_median: Option<f64>,
+}
+
+/// The latest measured frame, with what to draw over its picture.
+#[derive(Debug, Clone, Default, Serialize)]
+pub struct LatestFrame {
+    pub id: i64,
+    pub file: String,
+    pub time_local: Option<String>,
+    /// The frame's size in pixels.
+    pub width: usize,
+    pub height: usize,
+    /// Where its picture is served, once made.
+    pub preview_url: Option<String>,
+    /// Measured stars: FITS x, y and a marker radius, pixels.
+    pub stars: Vec<[f64; 3]>,
+    /// Anomalies seen on this frame: FITS x, y and the kind.
+    pub marks: Vec<(f64, f64, String)>,
+}
+
+#[derive(Debug, Clone, Default, Serialize)]
+pub struct LiveAlert {
+    pub time_unix: f64,
+    pub time_local: Option<String>,
+    pub kind: String,
+    pub message: String,
+}
+
+#[derive(Debug, Clone, Default, Serialize)]
+pub struct LiveAnomaly {
+    pub kind: String,
+    /// The group, "target / filter".
+    pub group: String,
+    /// What it is, in words with its measured values.
+    pub what: String,
+    pub frames: usize,
+    pub file: Option<String>,
+    pub x: Option<f64>,
+    pub y: Option<f64>,
+    pub ra_deg: Option<f64>,
+    pub dec_deg: Option<f64>,
+    /// J2000 in sexagesimal, where known.
+    pub position: Option<String>,
+    pub cutout_url: Option<String>,
+}
+
+#[derive(Debug, Clone, Default, Serialize)]
+pub struct LivePlot {
+    pub group: String,
+    pub title: String,
+    pub url: String,
+}
+
+#[derive(Debug, Clone, Default, Serialize)]
+pub struct SkyNow {
+    pub sun_alt_deg: f64,
+    pub moon_alt_deg: f64,
+    /// Fraction of the Moon's disc lit, 0 to 1.
+    pub moon_illumination: f64,
+    /// day, civil, nautical, astronomical or night.
+    pub twilight: String,
+    /// The Sun's next rise through −18°.
+    pub astronomical_dawn_unix: Option<f64>,
+    pub astronomical_dawn_local: Option<String>,
+    pub minutes_to_astronomical_dawn: Option<f64>,
+}
+
+#[derive(Debug, Clone, Default, Serialize)]
+pub struct Health {
+    pub daemon_pid: u32,
+    /// Frames noticed and not yet read.
+    pub waiting: Option<u64>,
+    pub being_read: Option<u64>,
+    /// Records the store has not taken yet (a full disk).
+    pub not_stored: Option<u64>,
+    pub last_frame_unix: Option<f64>,
+    pub last_frame_local: Option<String>,
+    pub seconds_since_last_frame: Option<f64>,
+    pub disks: Vec<Disk>,
+    pub outbox_waiting: usize,
+    pub outbox_last_error: Option<String>,
+}
+
+#[derive(Debug, Clone, Default, Serialize)]
+pub struct Disk {
+    pub folder: String,
+    pub free_gb: f64,
+}
+
+/// The page's script: polls the view's version and fetches the page's content again
+/// when it changed. No library, nothing from outside.
+pub const SCRIPT: &str = r#""use strict";
+(function () {
+  var main = document.getElementById("live");
+  var seen = main ? main.getAttribute("data-version") : null;
+  var note = document.getElementById("updated");
+  function tick() {
+    fetch("api/version", { cache: "no-store", credentials: "same-origin" })
+      .then(function (r) { return r.ok ? r.json() : null; })
+      .then(function (v) {
+        if (!v) { return; }
+        if (String(v.version) === seen) {
+          if (note) { note.textContent = "up to date"; }
+          return;
+        }
+        return fetch("part", { cache: "no-store", credentials: "same-origin" })
+          .then(function (r) { return r.ok ? r.text() : null; })
+          .then(function (html) {
+            if (html === null) { return; }
+            main.innerHTML = html;
+            seen = String(v.version);
+            main.setAttribute("data-version", seen);
+          });
+      })
+      .catch(function () { if (note) { note.textContent = "daemon not answering"; } });
+  }
+  window.setInterval(tick, 3000);
+})();
+"#;
+
+/// The page's style sheet: one column on a phone, two on a wide screen.
+pub const STYLE: &str = "body{font-family:sans-serif;margin:0 auto;max-width:1200px;padding:0 10px;line-height:1.35;color:#222;background:#fafaf7}\
+h1{font-size:1.4em;margin:10px 0 2px}h2{font-size:1.15em;margin:16px 0 6px;border-bottom:1px solid #ccc}\
+table{border-collapse:collapse;margin:4px 0 10px;max-width:100%}\
+td,th{border:1px solid #ccc;padding:2px 6px;text-align:left;vertical-align:top}\
+th{background:#ecece6}td.n{text-align:right;white-space:nowrap}\
+.reject{color:#a00}.warn{color:#a60}.ok{color:#275}\
+.file{word-break:break-all;font-family:monospace;font-size:92%}\
+ul.why{margin:2px 0;padding-left:18px}\
+.grid{display:grid;grid-template-columns:1fr;gap:0 24px}\
+.plots{display:grid;grid-template-columns:1fr;gap:0 16px}h3{font-size:1em;margin:10px 0 2px}\
+@media (min-width:900px){.grid,.plots{grid-template-columns:1fr 1fr}}\
+.grid>section{min-width:0}\
+.scroll{overflow-x:auto}\
+.pic{position:relative;max-width:100%}\
+.pic img{display:block;width:100%;height:auto;background:#000}\
+.pic svg{position:absolute;left:0;top:0;width:100%;height:100%}\
+.star{fill:none;stroke:#3c3;stroke-width:1.2}\
+.mark{fill:none;stroke:#f33;stroke-width:2}\
+img.plot{display:block;max-width:100%;height:auto;margin:6px 0}\
+.anomaly{overflow:hidden;border-top:1px solid #ddd;padding:6px 0}\
+.anomaly img{float:left;margin:0 10px 4px 0;max-width:40%}\
+.kind{font-weight:bold}small,.quiet{color:#555}\
+dl.facts{display:grid;grid-template-columns:auto 1fr;gap:2px 10px;margin:4px 0}dl.facts dt{color:#555}dl.facts dd{margin:0}";
+
+/// The page's icon: a ring round a dot, in the page's own colours.
+pub const ICON: &str = "<svg xmlns=\"http://www.w3.org/2000/svg\" viewBox=\"0 0 16 16\"><circle cx=\"8\" cy=\"8\" r=\"6\" fill=\"none\" stroke=\"#275\" stroke-width=\"2\"/><circle cx=\"8\" cy=\"8\" r=\"2\" fill=\"#222\"/></svg>";
+
+/// Content-Security-Policy of every answer: only this server's own script, style and
+/// images; no frames, forms or outside connections.
+pub const CONTENT_SECURITY_POLICY: &str = "default-src 'none'; script-src 'self'; style-src 'self'; img-src 'self'; connect-src 'self'; base-uri 'none'; form-action 'none'; frame-ancestors 'none'";
+
+/// The whole page: head, and the content in `<main id="live">`.
+pub fn html(v: &LiveView) -> String {
+    let mut h = String::new();
+    let _ = write!(
+        h,
+        "<!DOCTYPE html><html lang=\"en\"><head><meta charset=\"utf-8\">\
+         <meta name=\"viewport\" content=\"width=device-width, initial-scale=1\">\
+         <title>subwatch: night {}</title><link rel=\"stylesheet\" href=\"style.css\"><link rel=\"icon\" href=\"icon.svg\">\
+         <script src=\"app.js\" defer></script></head><body>\
+         <main id=\"live\" data-version=\"{}\">{}</main></body></html>",
+        escape_html(v.night.as_deref().unwrap_or("")),
+        v.version,
+        part(v)
+    );
+    h
+}
+
+fn num(x: Option<f64>, digits: usize) -> String {
+    x.filter(|v| v.is_finite())
+        .map_or("-".into(), |v| format!("{v:.digits$}"))
+}
+
+fn minutes(seconds: f64) -> String {
+    let m = (seconds / 60.0).round() as i64;
+    if m >= 60 {
+        format!("{} h {:02} min", m / 60, m % 60)
+    } else {
+        format!("{m} min")
+    }
+}
+
+/// The page's content: what `GET /part` answers and the script swaps in.
+pub fn part(v: &LiveView) -> String {
+    let e = escape_html;
+    let mut h = String::new();
+    let night = v.night.as_deref().unwrap_or("(no frame yet)");
+    let _ = write!(
+        h,
+        "<h1>Night {}</h1><p class=\"quiet\">{}. Clock times are {}. \
+         <span id=\"updated\">updates by itself</span></p>",
+        e(night),
+        e(&v.night_placed_by),
+        e(&v.timezone)
+    );
+
+    h.push_str("<div class=\"grid\"><section id=\"groups\"><h2>Frames so far</h2>");
+    if v.groups.is_empty() {
+        h.push_str("<p>No frame recorded for this night yet.</p>");
+    } else {
+        h.push_str("<div class=\"scroll\"><table><tr><th>target / filter</th><th>ok</th><th>warn</th><th>reject</th><th>other</th><th>usable</th></tr>");
+        for g in &v.groups {
+            let _ = write!(
+                h,
+                "<tr><td>{}</td><td class=\"n ok\">{}</td><td class=\"n warn\">{}</td><td class=\"n reject\">{}</td><td class=\"n\">{}</td><td class=\"n\">{}</td></tr>",
+                e(&g.heading),
+                g.ok,
+                g.warn,
+                g.reject,
+                g.other,
+                minutes(g.usable_s)
+            );
+        }
+        h.push_str("</table></div>");
+    }
+    h.push_str("</section>");
+
+    h.push_str("<section id=\"latest\"><h2>Latest frame</h2>");
+    match &v.latest {
+        Some(l) => {
+            let _ = write!(
+                h,
+                "<p><span class=\"file\">{}</span> {}</p>",
+                e(&l.file),
+                e(l.time_local.as_deref().unwrap_or(""))
+            );
+            match &l.preview_url {
+                Some(url) if l.width > 0 && l.height > 0 => {
+                    let _ = write!(
+                        h,
+                        "<div class=\"pic\"><img src=\"{}\" alt=\"the latest frame, stretched\">\
+                         <svg viewBox=\"0 0 {} {}\" preserveAspectRatio=\"none\" aria-hidden=\"true\">",
+                        e(url),
+                        l.width,
+                        l.height
+                    );
+                    // FITS pixel centres are whole numbers from 1, y up; the picture's
+                    // y runs down.
+                    for [x, y, r] in &l.stars {
+                        let _ = write!(
+                            h,
+                            "<circle class=\"star\" vector-effect=\"non-scaling-stroke\" cx=\"{:.1}\" cy=\"{:.1}\" r=\"{:.1}\"/>",
+                            x - 0.5,
+                            l.height as f64 - (y - 0.5),
+                            r
+                        );
+                    }
+                    let side = (l.width.max(l.height) as f64 / 40.0).max(8.0);
+                    for (x, y, _) in &l.marks {
+                        let _ = write!(
+                            h,
+                            "<rect class=\"mark\" vector-effect=\"non-scaling-stroke\" x=\"{:.1}\" y=\"{:.1}\" width=\"{side:.1}\" height=\"{side:.1}\"/>",
+                            x - 0.5 - side / 2.0,
+                            l.height as f64 - (y - 0.5) - side / 2.0
+                        );
+                    }
+                    let _ = write!(
+                        h,
+                        "</svg></div><p class=\"quiet\">{} stars ringed in green{}.</p>",
+                        l.stars.len(),
+                        if l.marks.is_empty() {
+                            String::new()
+                        } else {
+                            format!("; {} anomalies boxed in red", l.marks.len())
+                        }
+                    );
+                }
+                _ => h.push_str("<p class=\"quiet\">Its picture is being made.</p>"),
+            }
+        }
+        None => h.push_str("<p>No frame measured yet.</p>"),
+    }
+    h.push_str("</section></div>");
+
+    h.push_str("<section id=\"anomalies\"><h2>Worth a look</h2>");
+    match v.analysed_unix {
+        None => h.push_str("<p class=\"quiet\">The night's analysis has not run yet.</p>"),
+        Some(_) if v.anomalies.is_empty() => {
+            h.push_str("<p>Nothing unusual found so far.</p>");
+        }
+        Some(_) => {
+            for a in &v.anomalies {
+                h.push_str("<div class=\"anomaly\">");
+                if let Some(url) = &a.cutout_url {
+                    let _ = write!(
+                        h,
+                        "<img src=\"{}\" alt=\"cutout of the {}\">",
+                        e(url),
+                        e(&a.kind)
+                    );
+                }
+                let _ = write!(
+                    h,
+                    "<span class=\"kind\">{}</span> {} <small>{}</small><br>{}<br><small>{} frame(s){}</small></div>",
+                    e(&a.kind),
+                    e(a.position.as_deref().unwrap_or("")),
+                    e(&a.group),
+                    e(&a.what),
+                    a.frames,
+                    match (&a.file, a.x, a.y) {
+                        (Some(f), Some(x), Some(y)) => format!(", first in {} at x {x:.0}, y {y:.0}", e(f)),
+                        _ => String::new(),
+                    }
+                );
+            }
+        }
+    }
+    if v.hot_pixels + v.cosmic_rays > 0 {
+        let _ = write!(
+            h,
+            "<p class=\"quiet\">Also {} hot pixel(s) and {} cosmic-ray hit(s), counted, not listed.</p>",
+            v.hot_pixels, v.cosmic_rays
+        );
+    }
+    h.push_str("</section>");
+
+    h.push_str("<div class=\"grid\"><section id=\"alerts\"><h2>Alerts tonight</h2>");
+    if v.alerts.is_empty() {
+        h.push_str("<p>None.</p>");
+    } else {
+        h.push_str("<ul>");
+        for a in &v.alerts {
+            let _ = write!(
+                h,
+                "<li>{} <b>{}</b>: {}</li>",
+                e(a.time_local.as_deref().unwrap_or("")),
+                e(&a.kind),
+                e(&a.message)
+            );
+        }
+        h.push_str("</ul>");
+    }
+    h.push_str("</section><section id=\"sky\"><h2>Sky and daemon</h2><dl class=\"facts\">");
+    if let Some(s) = &v.sky {
+        let _ = write!(
+            h,
+            "<dt>Sun</dt><dd>{:.1}° ({})</dd><dt>Moon</dt><dd>{:.1}°, {:.0} % lit</dd>",
+            s.sun_alt_deg,
+            e(&s.twilight),
+            s.moon_alt_deg,
+            100.0 * s.moon_illumination
+        );
+        if let (Some(at), Some(m)) = (&s.astronomical_dawn_local, s.minutes_to_astronomical_dawn) {
+            let _ = write!(
+                h,
+                "<dt>astronomical dawn</dt><dd>{} (in {})</dd>",
+                e(at),
+                minutes(m * 60.0)
+            );
+        }
+    } else {
+        h.push_str(
+            "<dt>sky</dt><dd>set [site] latitude and longitude to see the Sun and Moon</dd>",
+        );
+    }
+    let d = &v.health;
+    let _ = write!(
+        h,
+        "<dt>daemon</dt><dd>process {}: {} waiting, {} being read{}</dd>",
+        d.daemon_pid,
+        d.waiting.unwrap_or(0),
+        d.being_read.unwrap_or(0),
+        match d.not_stored {
+            Some(n) if n > 0 => format!(", <span class=\"reject\">{n} not stored yet</span>"),
+            _ => String::new(),
+        }
+    );
+    if let (Some(t), Some(ago)) = (&d.last_frame_local, d.seconds_since_last_frame) {
+        let _ = write!(
+            h,
+            "<dt>last frame</dt><dd>{} ({} ago)</dd>",
+            e(t),
+            minutes(ago)
+        );
+    }
+    for disk in &d.disks {
+        let _ = write!(
+            h,
+            "<dt>free space</dt><dd>{:.1} GB at <span class=\"file\">{}</span></dd>",
+            disk.free_gb,
+            e(&disk.folder)
+        );
+    }
+    let _ = write!(
+        h,
+        "<dt>outbox</dt><dd>{} message(s) waiting{}</dd></dl></section></div>",
+        d.outbox_waiting,
+        d.outbox_last_error
+            .as_deref()
+            .map_or(String::new(), |err| format!(": {}", e(err)))
+    );
+    h.push_str("<section id=\"plots\"><h2>The night's plots</h2>");
+    if v.plots.is_empty() {
+        h.push_str("<p class=\"quiet\">Drawn once a few frames are in.</p>");
+    }
+    let mut group: Option<&str> = None;
+    for p in &v.plots {
+        if group != Some(p.group.as_str()) {
+            if group.is_some() {
+                h.push_str("</div>");
+            }
+            let _ = write!(h, "<h3>{}</h3><div class=\"plots\">", e(&p.group));
+            group = Some(p.group.as_str());
+        }
+        let _ = write!(
+            h,
+            "<img class=\"plot\" src=\"{}\" alt=\"{}: {}\">",
+            e(&p.url),
+            e(&p.group),
+            e(&p.title)
+        );
+    }
+    if group.is_some() {
+        h.push_str("</div>");
+    }
+    h.push_str("</section>");
+
+    h.push_str("<section id=\"frames\"><h2>Tonight's frames, newest first</h2>");
+    if v.frames.is_empty() {
+        h.push_str("<p>None yet.</p>");
+    } else {
+        h.push_str("<div class=\"scroll\"><table><tr><th>time</th><th>verdict</th><th>file, and why</th><th>FWHM</th><th>ecc.</th><th>sky ADU</th><th>stars</th></tr>");
+        for f in &v.frames {
+            let verdict = f.verdict.as_deref().unwrap_or(match f.status.as_str() {
+                "error" => "unreadable",
+                "skipped" => "not a light",
+                _ => "waiting",
+            });
+            let class = match verdict {
+                "reject" | "unreadable" => "reject",
+                "warn" => "warn",
+                "ok" => "ok",
+                _ => "quiet",
+            };
+            let fwhm = match (f.fwhm_arcsec, f.fwhm_px) {
+                (Some(a), _) => format!("{a:.2}″"),
+                (None, Some(p)) => format!("{p:.2} px"),
+                _ => "-".into(),
+            };
+            let _ = write!(
+                h,
+                "<tr><td>{}</td><td class=\"{class}\">{}</td><td><span class=\"file\">{}</span>",
+                e(f.time_local.as_deref().unwrap_or("-")),
+                e(verdict),
+                e(&f.file)
+            );
+            let why: Vec<&String> = f.explanations.iter().chain(f.error.iter()).collect();
+            if !why.is_empty() && verdict != "ok" {
+                h.push_str("<ul class=\"why\">");
+                for w in why {
+                    let _ = write!(h, "<li>{}</li>", e(w));
+                }
+                h.push_str("</ul>");
+            }
+            let _ = write!(
+                h,
+                "</td><td class=\"n\">{}</td><td class=\"n\">{}</td><td class=\"n\">{}</td><td class=\"n\">{}</td></tr>",
+                e(&fwhm),
+                num(f.eccentricity, 2),
+                num(f.background_adu, 0),
+                f.star_count.map_or("-".into(), |n| n.to_string())
+            );
+        }
+        h.push_str("</table></div>");
+    }
+    h.push_str("</section>");
+
+    h.push_str("<p class=\"quiet\">JSON for scripts: <code>api/night</code> (everything here), <code>api/version</code>.</p>");
+    h
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn values_from_files_are_escaped_everywhere_they_show() {
+        let hostile = "<script>alert(1)</script>\"'&";
+        let v = LiveView {
+            night: Some(hostile.into()),
+            night_placed_by: hostile.into(),
+            timezone: "UTC".into(),
+            groups: vec![LiveGroup {
+                heading: hostile.into(),
+                ..Default::default()
+            }],
+            frames: vec![LiveFrame {
+                file: hostile.into(),
+                verdict: Some("reject".into()),
+                explanations: vec![hostile.into()],
+                ..Default::default()
+            }],
+            latest: Some(LatestFrame {
+                file: hostile.into(),
+                ..Default::default()
+            }),
+            alerts: vec![LiveAlert {
+                kind: hostile.into(),
+                message: hostile.into(),
+                ..Default::default()
+            }],
+            analysed_unix: Some(0.0),
+            anomalies: vec![LiveAnomaly {
+                kind: hostile.into(),
+                group: hostile.into(),
+                what: hostile.into(),
+                file: Some(hostile.into()),
+                x: Some(1.0),
+                y: Some(1.0),
+                ..Default::default()
+            }],
+            ..Default::default()
+        };
+        let page = html(&v);
+        assert!(!page.contains("<script>alert"), "{page}");
+        assert_eq!(
+            page.matches("<script").count(),
+            1,
+            "only the page's own script"
+        );
+        assert!(page.contains("&lt;script&gt;alert(1)&lt;/script&gt;"));
+        assert!(
+            !page.contains(" style="),
+            "no inline style: the CSP forbids it"
+        );
+    }
+
+    #[test]
+    fn markers_sit_on_the_fits_pixels_of_the_picture() {
+        // A star at FITS (1, 1), the first pixel's centre, is half a pixel in from the
+        // picture's bottom-left corner.
+        let v = LiveView {
+            latest: Some(LatestFrame {
+                width: 100,
+                height: 50,
+                preview_url: Some("preview/1.png".into()),
+                stars: vec![[1.0, 1.0, 4.0]],
+                ..Default::default()
+            }),
+            ..Default::default()
+        };
+        assert!(part(&v).contains("cx=\"0.5\" cy=\"49.5\" r=\"4.0\""));
+    }
+}

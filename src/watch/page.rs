@@ -1,0 +1,496 @@
+//! What the status page shows, built from the store on a thread of its own: the night
+//! so far (frames, verdicts, alerts, health, the sky now) every couple of seconds, and,
+//! while someone is looking, the night's analysis, plots and cutouts at most every
+//! `ANALYSIS_EVERY` and the latest frame's picture once per frame. Every request is then
+//! answered from the last [`Snapshot`], so a flood of requests costs copies of bytes
+//! already made, never a query or a frame read; and this thread runs at a lower CPU
+//! priority than the daemon's ingestion.
+
+use std::collections::HashMap;
+use std::path::Path;
+use std::sync::atomic::{AtomicBool, AtomicU64, Ordering};
+use std::sync::{Arc, RwLock};
+use std::time::{Duration, Instant};
+
+use bytes::Bytes;
+
+use crate::clock::Clock;
+use crate::config::Config;
+use crate::live::{self, LiveView};
+use crate::report::{self, plots};
+use crate::rules::Verdict;
+use crate::store::Store;
+
+/// The night's analysis (anomalies, plots, cutouts) is run again at most this often, and
+/// only while the page is being looked at.
+pub(super) const ANALYSIS_EVERY: Duration = Duration::from_secs(30);
+/// The page counts as looked at for this long after a request.
+const LOOKED_AT_FOR: f64 = 120.0;
+/// The cutouts the page carries (the most interesting anomalies first).
+const PAGE_CUTOUTS: usize = 8;
+/// The latest frame's picture, longer side in pixels.
+const PREVIEW_SIDE: usize = 640;
+/// Stars drawn over the picture, brightest first.
+const PREVIEW_STARS: usize = 300;
+
+/// Everything the server answers with, made once per change.
+#[derive(Debug, Default)]
+pub struct Snapshot {
+    pub version: u64,
+    pub page: Bytes,
+    pub part: Bytes,
+    pub night_json: Bytes,
+    pub version_json: Bytes,
+    /// Plots, cutouts and the latest frame's picture, by their URL path without the
+    /// leading slash (`plot/0/fwhm.png`, `cutout/2.png`, `preview/17.png`).
+    pub images: HashMap<String, Bytes>,
+}
+
+/// Shared between the page builder and the server.
+#[derive(Default)]
+pub struct PageState {
+    pub snapshot: RwLock<Arc<Snapshot>>,
+    /// When the page was last asked for (Unix seconds × 1000).
+    pub asked_ms: AtomicU64,
+    pub stop: AtomicBool,
+}
+
+impl PageState {
+    pub fn current(&self) -> Arc<Snapshot> {
+        self.snapshot
+            .read()
+            .unwrap_or_else(|p| p.into_inner())
+            .clone()
+    }
+
+    pub fn asked(&self, now_unix: f64) {
+        self.asked_ms
+            .store((now_unix * 1000.0) as u64, Ordering::Relaxed);
+    }
+
+    fn looked_at(&self, now_unix: f64) -> bool {
+        let asked = self.asked_ms.load(Ordering::Relaxed) as f64 / 1000.0;
+        asked > 0.0 && now_unix - asked < LOOKED_AT_FOR
+    }
+}
+
+/// The analysis part of the view, kept between runs.
+#[derive(Default)]
+struct Analysis {
+    /// (frames, last recorded) when it ran.
+    stamp: Option<(i64, Option<f64>)>,
+    at: Option<Instant>,
+    analysed_unix: Option<f64>,
+    anomalies: Vec<live::LiveAnomaly>,
+    hot_pixels: usize,
+    cosmic_rays: usize,
+    plots: Vec<live::LivePlot>,
+    images: HashMap<String, Bytes>,
+    /// (path, x, y) of every anomaly on each frame, for the picture's marks.
+    marks: Vec<(String, f64, f64, String)>,
+    cutouts: HashMap<String, Bytes>,
+}
+
+/// Build snapshots until `state.stop`, every `every` (sooner while someone looks).
+pub fn run(config: Config, clock: Arc<dyn Clock>, state: Arc<PageState>) {
+    let reader = crate::reader::Reader::from_config(&config.measure);
+    let limits = crate::frame::DecodeLimits {
+        max_pixels: config.measure.max_pixels,
+    };
+    let mut store: Option<Store> = None;
+    let mut analysis = Analysis::default();
+    let mut preview: Option<(i64, Bytes, usize, usize)> = None;
+    // The picture before the latest stays served a while: a page fetched just before a
+    // new frame still shows its own.
+    let mut previous: Option<(i64, Bytes, usize, usize)> = None;
+    let mut last_part = String::new();
+    let mut version = 0u64;
+    while !state.stop.load(Ordering::Relaxed) {
+        let now = clock.now_unix();
+        let looked_at = state.looked_at(now);
+        if store.is_none() {
+            store = Store::open_read_only(&config.store.path)
+                .map_err(|e| tracing::warn!("status page: {e}"))
+                .ok();
+        }
+        if let Some(s) = &store {
+            match build(
+                s,
+                &config,
+                now,
+                looked_at,
+                &reader,
+                limits,
+                &mut analysis,
+                &mut preview,
+                &mut previous,
+            ) {
+                Ok((mut view, images)) => {
+                    let part = live::part(&view);
+                    if part != last_part {
+                        version += 1;
+                        last_part = part;
+                    }
+                    view.version = version;
+                    let snapshot = Snapshot {
+                        version,
+                        page: Bytes::from(live::html(&view)),
+                        part: Bytes::from(last_part.clone()),
+                        night_json: Bytes::from(serde_json::to_string(&view).unwrap_or_default()),
+                        version_json: Bytes::from(format!("{{\"version\":{version}}}")),
+                        images,
+                    };
+                    *state.snapshot.write().unwrap_or_else(|p| p.into_inner()) = Arc::new(snapshot);
+                }
+                Err(e) => {
+                    tracing::warn!("status page: {e}");
+                    store = None;
+                }
+            }
+        }
+        // Two seconds while someone looks, ten otherwise; the stop flag is seen within
+        // a quarter of a second.
+        let pause = if looked_at { 2.0 } else { 10.0 };
+        let until = Instant::now() + Duration::from_secs_f64(pause);
+        while Instant::now() < until && !state.stop.load(Ordering::Relaxed) {
+            if !looked_at && state.looked_at(clock.now_unix()) {
+                break;
+            }
+            std::thread::sleep(Duration::from_millis(250));
+        }
+    }
+}
+
+type Built = (LiveView, HashMap<String, Bytes>);
+
+#[allow(clippy::too_many_arguments)]
+fn build(
+    store: &Store,
+    config: &Config,
+    now: f64,
+    looked_at: bool,
+    reader: &crate::reader::Reader,
+    limits: crate::frame::DecodeLimits,
+    analysis: &mut Analysis,
+    preview: &mut Option<(i64, Bytes, usize, usize)>,
+    previous: &mut Option<(i64, Bytes, usize, usize)>,
+) -> Result<Built, crate::store::StoreError> {
+    let tz = config.timezone();
+    let clock_of = |t: f64| report::local_clock(t, tz);
+    let (night, placed_by) = match store.latest_dated_night()? {
+        Some(n) => (
+            Some(n),
+            "the night of the latest frame recorded, by its DATE-OBS",
+        ),
+        None => (
+            crate::sky::night_label(now, tz),
+            "tonight by the clock: no dated frame recorded yet",
+        ),
+    };
+    let mut view = LiveView {
+        night: night.clone(),
+        night_placed_by: placed_by.into(),
+        now_unix: now,
+        timezone: tz.name().into(),
+        ..Default::default()
+    };
+    let night = night.unwrap_or_default();
+    let frames = store.night_live_frames(&night)?;
+    let counts = store.night_counts(&night)?;
+
+    // Per group, in the summary's order (target, then filter).
+    let mut groups: Vec<live::LiveGroup> = Vec::new();
+    for f in &frames {
+        let r = &f.record;
+        if r.status == crate::record::FrameStatus::Skipped {
+            continue;
+        }
+        let i = match groups
+            .iter()
+            .position(|g| g.target == r.target && g.filter == r.filter)
+        {
+            Some(i) => i,
+            None => {
+                groups.push(live::LiveGroup {
+                    target: r.target.clone(),
+                    filter: r.filter.clone(),
+                    heading: report::group_heading(r.target.as_deref(), r.filter.as_deref()),
+                    ..Default::default()
+                });
+                groups.len() - 1
+            }
+        };
+        let g = &mut groups[i];
+        let exposure = r.header.as_ref().and_then(|h| h.exposure_s).unwrap_or(0.0);
+        match f.verdict {
+            Some(Verdict::Ok) => {
+                g.ok += 1;
+                g.usable_s += exposure;
+            }
+            Some(Verdict::Warn) => {
+                g.warn += 1;
+                if config.actions.stack_warned {
+                    g.usable_s += exposure;
+                }
+            }
+            Some(Verdict::Reject) => g.reject += 1,
+            _ => g.other += 1,
+        }
+    }
+    groups.sort_by(|a, b| (&a.target, &a.filter).cmp(&(&b.target, &b.filter)));
+    view.groups = groups;
+
+    view.frames = frames
+        .iter()
+        .rev()
+        .map(|f| {
+            let r = &f.record;
+            let m = r.metrics.as_ref();
+            live::LiveFrame {
+                id: f.id,
+                file: report::file_name(&r.identity.path),
+                path: r.identity.path.clone(),
+                time_unix: r.time_unix,
+                time_local: r.time_unix.and_then(clock_of),
+                target: r.target.clone(),
+                filter: r.filter.clone(),
+                verdict: f.verdict.map(|v| v.as_str().to_string()),
+                status: r.status.as_str().to_string(),
+                error: r.error.clone(),
+                explanations: f.explanations.clone(),
+                exposure_s: r.header.as_ref().and_then(|h| h.exposure_s),
+                star_count: m.map(|m| m.star_count),
+                fwhm_px: m.and_then(|m| m.fwhm_px),
+                fwhm_arcsec: m.and_then(|m| m.fwhm_arcsec),
+                eccentricity: m.and_then(|m| m.eccentricity),
+                background_adu: m.map(|m| m.background_adu).filter(|v| v.is_finite()),
+                noise_adu: m.map(|m| m.noise_adu).filter(|v| v.is_finite()),
+                snr_median: m.and_then(|m| m.snr_median),
+            }
+        })
+        .collect();
+
+    view.alerts = store
+        .night_alerts(&night)?
+        .into_iter()
+        .map(|(t, kind, message)| live::LiveAlert {
+            time_unix: t,
+            time_local: clock_of(t),
+            kind,
+            message,
+        })
+        .collect();
+
+    // The night's analysis, while someone looks and when frames came since.
+    let stamp = (counts.frames, counts.last_recorded_unix);
+    let due =
+        analysis.stamp != Some(stamp) && analysis.at.is_none_or(|t| t.elapsed() >= ANALYSIS_EVERY);
+    if looked_at && due && frames.len() >= 3 {
+        analyse(store, config, &night, now, reader, limits, analysis)?;
+        analysis.stamp = Some(stamp);
+        analysis.at = Some(Instant::now());
+    }
+    view.analysed_unix = analysis.analysed_unix;
+    view.anomalies = analysis.anomalies.clone();
+    view.hot_pixels = analysis.hot_pixels;
+    view.cosmic_rays = analysis.cosmic_rays;
+    view.plots = analysis.plots.clone();
+    let mut images = analysis.images.clone();
+
+    // The latest measured frame and its picture, made once per frame.
+    if let Some(f) = frames.iter().rev().find(|f| f.record.metrics.is_some()) {
+        let m = f.record.metrics.as_ref().expect("found with metrics");
+        if looked_at && preview.as_ref().map(|p| p.0) != Some(f.id) {
+            let made = reader
+                .preview(Path::new(&f.record.identity.path), PREVIEW_SIDE, limits)
+                .map(|p| (f.id, Bytes::from(p.png), m.width, m.height));
+            if made.is_some() {
+                *previous = std::mem::replace(preview, made);
+            }
+        }
+        if let Some((id, png, _, _)) = previous.as_ref() {
+            images.insert(format!("preview/{id}.png"), png.clone());
+        }
+        let mut stars = store.frame_star_records(f.id)?;
+        stars.sort_by(|a, b| b.flux.total_cmp(&a.flux));
+        let latest_preview = preview.as_ref().filter(|p| p.0 == f.id);
+        if let Some((id, png, _, _)) = latest_preview {
+            images.insert(format!("preview/{id}.png"), png.clone());
+        }
+        view.latest = Some(live::LatestFrame {
+            id: f.id,
+            file: report::file_name(&f.record.identity.path),
+            time_local: f.record.time_unix.and_then(clock_of),
+            width: m.width,
+            height: m.height,
+            preview_url: latest_preview.map(|p| format!("preview/{}.png", p.0)),
+            stars: stars
+                .iter()
+                .filter(|s| s.x.is_finite() && s.y.is_finite())
+                .take(PREVIEW_STARS)
+                .map(|s| {
+                    let r = if s.fwhm_px.is_finite() {
+                        (2.0 * s.fwhm_px).clamp(4.0, 40.0)
+                    } else {
+                        6.0
+                    };
+                    [s.x, s.y, r]
+                })
+                .collect(),
+            marks: analysis
+                .marks
+                .iter()
+                .filter(|(p, ..)| *p == f.record.identity.path)
+                .map(|(_, x, y, k)| (*x, *y, k.clone()))
+                .collect(),
+        });
+    }
+
+    if let Some((lat, lon, _)) = config.site_position() {
+        let jd = crate::sky::julian_date(now);
+        let sun = crate::sky::sun_altitude(jd, lat, lon);
+        let dawn = crate::sky::night_around(now, -18.0, lat, lon).1;
+        view.sky = Some(live::SkyNow {
+            sun_alt_deg: sun,
+            moon_alt_deg: crate::sky::moon_altitude(jd, lat, lon),
+            moon_illumination: crate::sky::moon_illumination(jd),
+            twilight: serde_json::to_value(crate::sky::twilight(sun))
+                .ok()
+                .and_then(|v| v.as_str().map(str::to_string))
+                .unwrap_or_default(),
+            astronomical_dawn_unix: dawn,
+            astronomical_dawn_local: dawn.and_then(clock_of),
+            minutes_to_astronomical_dawn: dawn.map(|d| (d - now) / 60.0),
+        });
+    }
+
+    let daemon: Option<serde_json::Value> = store
+        .meta("daemon")?
+        .and_then(|s| serde_json::from_str(&s).ok());
+    let field = |k: &str| daemon.as_ref().and_then(|d| d[k].as_u64());
+    let (outbox_waiting, outbox_last_error) = store.outbox_state()?;
+    view.health = live::Health {
+        daemon_pid: std::process::id(),
+        waiting: field("waiting"),
+        being_read: field("in_flight"),
+        not_stored: field("not_stored"),
+        last_frame_unix: counts.last_recorded_unix,
+        last_frame_local: counts.last_recorded_unix.and_then(clock_of),
+        seconds_since_last_frame: counts.last_recorded_unix.map(|t| (now - t).max(0.0)),
+        disks: super::checks::free_space(&super::checks::written_folders(config))
+            .into_iter()
+            .map(|(folder, free)| live::Disk {
+                folder: crate::logging::shown(&folder),
+                free_gb: free as f64 / 1e9,
+            })
+            .collect(),
+        outbox_waiting,
+        outbox_last_error,
+    };
+    Ok((view, images))
+}
+
+/// The night so far through the night model (as the anomaly alerts see it): anomalies
+/// most interesting first, plots per group, cutouts of the first few.
+fn analyse(
+    store: &Store,
+    config: &Config,
+    night: &str,
+    now: f64,
+    reader: &crate::reader::Reader,
+    limits: crate::frame::DecodeLimits,
+    a: &mut Analysis,
+) -> Result<(), crate::store::StoreError> {
+    let records = store.night_records(night)?;
+    let doc = crate::batch::analyse_records(
+        &records,
+        &config.rule_specs(),
+        config.site_position(),
+        crate::batch::Catalogues::Read(store),
+    )?;
+    let settings = crate::morning::settings(config);
+    let summary = report::summarise(night, &doc, settings);
+    a.images.clear();
+    a.plots.clear();
+    for (k, g) in summary.groups.iter().enumerate() {
+        let frames: Vec<&crate::contract::NightFrameRecord> = doc
+            .frames
+            .iter()
+            .filter(|f| g.is(f.target.as_deref(), f.filter.as_deref()))
+            .collect();
+        for p in &plots::PLOTTED {
+            if let Some(png) = plots::metric_plot(&frames, p, &g.limits, settings.tz) {
+                let url = format!("plot/{k}/{}.png", p.key);
+                a.images.insert(url.clone(), Bytes::from(png));
+                a.plots.push(live::LivePlot {
+                    group: g.heading(),
+                    title: p.title.to_string(),
+                    url,
+                });
+            }
+        }
+    }
+    a.marks = summary
+        .notable
+        .iter()
+        .flat_map(|an| {
+            an.detections
+                .iter()
+                .map(move |d| (d.path.clone(), d.x, d.y, an.kind.name().to_string()))
+        })
+        .collect();
+    a.anomalies.clear();
+    for (k, an) in summary.notable.iter().enumerate() {
+        let first = an.detections.first();
+        let mut cutout_url = None;
+        if let (true, Some(d)) = (k < PAGE_CUTOUTS, first) {
+            let key = format!("{}@{:.0},{:.0}", d.path, d.x, d.y);
+            if !a.cutouts.contains_key(&key) {
+                if let Some(png) = reader.cutout(Path::new(&d.path), d.x, d.y, 16, limits) {
+                    a.cutouts.insert(key.clone(), Bytes::from(png));
+                }
+            }
+            if let Some(png) = a.cutouts.get(&key) {
+                // Named by what it shows, so an older page never shows another's.
+                let url = format!("cutout/{:016x}.png", fnv1a(&key));
+                a.images.insert(url.clone(), png.clone());
+                cutout_url = Some(url);
+            }
+        }
+        a.anomalies.push(live::LiveAnomaly {
+            kind: an.kind.name().to_string(),
+            group: report::group_heading(an.target.as_deref(), an.filter.as_deref()),
+            what: report::what(an),
+            frames: an.detections.len(),
+            file: first.map(|d| report::file_name(&d.path)),
+            x: first.map(|d| d.x),
+            y: first.map(|d| d.y),
+            ra_deg: an.ra_deg,
+            dec_deg: an.dec_deg,
+            position: an
+                .ra_deg
+                .zip(an.dec_deg)
+                .map(|(r, d)| report::sexagesimal(r, d)),
+            cutout_url,
+        });
+    }
+    // Cutouts of anomalies no longer listed are let go.
+    let listed: Vec<String> = summary
+        .notable
+        .iter()
+        .filter_map(|an| an.detections.first())
+        .map(|d| format!("{}@{:.0},{:.0}", d.path, d.x, d.y))
+        .collect();
+    a.cutouts.retain(|k, _| listed.contains(k));
+    a.hot_pixels = summary.hot_pixels.len();
+    a.cosmic_rays = summary.cosmic_rays.len();
+    a.analysed_unix = Some(now);
+    Ok(())
+}
+
+/// FNV-1a, 64 bits (Fowler, Noll and Vo): a stable short name for a cutout.
+fn fnv1a(text: &str) -> u64 {
+    text.bytes().fold(0xcbf2_9ce4_8422_2325, |h, b| {
+        (h ^ u64::from(b)).wrapping_mul(0x0100_0000_01b3)
+    })
+}
