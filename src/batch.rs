@@ -32,11 +32,7 @@ pub fn analyse_records(
     site: Option<Site>,
     mut store: Catalogues<'_>,
 ) -> Result<NightDocument, StoreError> {
-    let mut doc = NightDocument {
-        frames: Vec::new(),
-        anomalies: Vec::new(),
-        limits: Vec::new(),
-    };
+    let mut doc = NightDocument::default();
     let mut groups: BTreeMap<(String, String), Vec<&FrameRecord>> = BTreeMap::new();
     for r in records.iter().filter(|r| r.status != FrameStatus::Skipped) {
         let key = (
@@ -79,6 +75,7 @@ pub fn analyse_records(
             let p = j.placement.as_ref();
             doc.frames.push(NightFrameRecord {
                 path: r.identity.path.clone(),
+                kind: "light",
                 status: if r.status == FrameStatus::Ok {
                     "ok"
                 } else {
@@ -121,6 +118,37 @@ pub fn analyse_records(
             });
         }
     }
+    // Darks, flats and bias frames, judged as calibration for these lights.
+    let all: Vec<&FrameRecord> = records.iter().collect();
+    let calibration = crate::night::calibration::judge_calibration(&all);
+    for c in &calibration.frames {
+        let r = all[c.index];
+        doc.calibration.push(NightFrameRecord {
+            path: r.identity.path.clone(),
+            kind: c.kind,
+            status: if r.calibration.is_some() {
+                "ok"
+            } else {
+                "error"
+            },
+            error: r.calibration.is_none().then(|| r.error.clone()).flatten(),
+            metrics: None,
+            verdict: c.judgement.verdict,
+            reasons: c.judgement.reasons.clone(),
+            explanations: c.judgement.explanations.clone(),
+            night: r.night.clone(),
+            target: r.target.clone(),
+            filter: r.filter.clone(),
+            time_unix: r.time_unix,
+            exposure_s: r.header.as_ref().and_then(|h| h.exposure_s),
+            registered: false,
+            registration_rms_px: None,
+            registration_transform: None,
+            sky: None,
+            transparency_loss_mag: None,
+        });
+    }
+    doc.calibration_notes = calibration.notes;
     doc.frames.sort_by(|a, b| {
         a.time_unix
             .unwrap_or(0.0)

@@ -43,6 +43,8 @@ impl MeasureRecord {
 #[derive(Debug, Clone, Serialize)]
 pub struct NightFrameRecord {
     pub path: String,
+    /// "light", or the calibration frame's kind: "dark", "flat", "bias".
+    pub kind: &'static str,
     pub status: &'static str,
     #[serde(skip_serializing_if = "Option::is_none")]
     pub error: Option<String>,
@@ -89,14 +91,31 @@ pub struct AnomalyRecord {
     pub filter: Option<String>,
 }
 
-/// The document `subwatch night --json` prints.
-#[derive(Debug, Clone, Serialize)]
+/// The document `subwatch night --json` prints: `frames` (the lights, then the
+/// calibration frames, each with its `kind`), `anomalies`, and `calibration_notes` (what
+/// calibration the lights lack, in words).
+#[derive(Debug, Clone, Default)]
 pub struct NightDocument {
+    /// The light frames.
     pub frames: Vec<NightFrameRecord>,
     pub anomalies: Vec<AnomalyRecord>,
     /// Each group's limits, for the summary's plots (not part of the JSON document).
-    #[serde(skip)]
     pub limits: Vec<GroupLimits>,
+    /// Darks, flats and bias frames, judged as calibration.
+    pub calibration: Vec<NightFrameRecord>,
+    pub calibration_notes: Vec<String>,
+}
+
+impl Serialize for NightDocument {
+    fn serialize<S: serde::Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
+        use serde::ser::SerializeStruct;
+        let mut d = s.serialize_struct("NightDocument", 3)?;
+        let frames: Vec<&NightFrameRecord> = self.frames.iter().chain(&self.calibration).collect();
+        d.serialize_field("frames", &frames)?;
+        d.serialize_field("anomalies", &self.anomalies)?;
+        d.serialize_field("calibration_notes", &self.calibration_notes)?;
+        d.end()
+    }
 }
 
 /// The limits one target-and-filter group was judged against.

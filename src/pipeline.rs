@@ -195,7 +195,28 @@ pub fn record_file(
         .filter(|_| !opts.measure_calibration)
     {
         rec.status = FrameStatus::Skipped;
-        rec.error = Some(kind);
+        // Not a light: measured as what it is, for the calibration checks.
+        match read_frame(path, opts.measure.limits) {
+            Ok(frame) => {
+                let full_scale = header.saturation_adu.or_else(|| {
+                    crate::measure::calibration::data_type_full_scale(
+                        frame.bitpix,
+                        crate::frame::cards::Cards::number(frame.cards.as_slice(), "BZERO"),
+                    )
+                });
+                let mut stats =
+                    crate::measure::calibration::calibration_stats(&frame.pixels, full_scale);
+                let lower = kind.to_ascii_lowercase();
+                stats.kind = ["dark", "flat", "bias"]
+                    .into_iter()
+                    .find(|k| lower.contains(k))
+                    .unwrap_or("unknown")
+                    .to_string();
+                rec.calibration = Some(stats);
+                rec.error = Some(kind);
+            }
+            Err(e) => rec.error = Some(format!("{kind}: {}", e.reason())),
+        }
         return rec;
     }
     match measure_file(path, &opts.measure) {

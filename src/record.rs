@@ -92,6 +92,9 @@ pub struct FrameRecord {
     pub rejected: Vec<Rejected>,
     /// The frame's celestial WCS, when it has one.
     pub wcs: Option<crate::frame::wcs::Wcs>,
+    /// What a calibration frame (dark, flat, bias) measured.
+    #[serde(default)]
+    pub calibration: Option<crate::measure::calibration::CalibrationStats>,
 }
 
 impl FrameRecord {
@@ -110,6 +113,7 @@ impl FrameRecord {
             stars: Vec::new(),
             rejected: Vec::new(),
             wcs: None,
+            calibration: None,
         }
     }
 }
@@ -247,6 +251,14 @@ pub struct HeaderFacts {
     pub bayer_pattern: Option<String>,
     pub ccd_temp_c: Option<f64>,
     pub has_wcs: bool,
+    #[serde(default)]
+    pub set_temp_c: Option<f64>,
+    #[serde(default)]
+    pub binning: Option<f64>,
+    #[serde(default)]
+    pub gain_setting: Option<f64>,
+    #[serde(default)]
+    pub offset: Option<f64>,
 }
 
 impl HeaderFacts {
@@ -260,6 +272,10 @@ impl HeaderFacts {
             bayer_pattern: h.bayer.and(h.bayer_pattern.clone()),
             ccd_temp_c: h.ccd_temp_c,
             has_wcs: h.wcs.is_some(),
+            set_temp_c: h.set_temp_c,
+            binning: h.x_binning,
+            gain_setting: h.gain_setting,
+            offset: h.offset,
         }
     }
 }

@@ -54,6 +54,10 @@ pub struct FrameHeader {
     pub pixel_size_y_um: Option<f64>,
     pub focal_length_mm: Option<f64>,
     pub ccd_temp_c: Option<f64>,
+    /// The cooler's set point (SET-TEMP), °C.
+    pub set_temp_c: Option<f64>,
+    /// OFFSET as written (a camera's offset setting).
+    pub offset: Option<f64>,
     /// GAIN as written: often a camera's gain setting rather than electrons per ADU.
     pub gain_setting: Option<f64>,
     /// Electrons per ADU, from EGAIN, or from GAIN when its value is plausible for e-/ADU.
@@ -98,6 +102,8 @@ impl FrameHeader {
             pixel_size_y_um: cards.number("YPIXSZ").filter(|p| *p > 0.0),
             focal_length_mm: cards.number("FOCALLEN").filter(|f| *f > 0.0),
             ccd_temp_c: cards.number("CCD-TEMP"),
+            set_temp_c: cards.number("SET-TEMP"),
+            offset: cards.number("OFFSET"),
             gain_setting,
             gain_e_per_adu,
             saturation_adu: cards.number("SATURATE").filter(|s| *s > 0.0),

@@ -9,6 +9,7 @@
 //! (`photometry`) → frame metrics. Color mosaics go through `mosaic`.
 
 pub mod background;
+pub mod calibration;
 mod candidate;
 pub mod detect;
 mod mosaic;

@@ -119,6 +119,48 @@ pub fn html(s: &Summary, image: &dyn Fn(&str) -> Option<String>) -> String {
     }
     h.push_str("</section>");
 
+    // Calibration frames, and what the lights lack.
+    let cal = &s.calibration;
+    if !cal.is_empty() {
+        h.push_str("<section id=\"calibration\"><h2>Calibration</h2><p>");
+        if cal.counts.is_empty() {
+            h.push_str("No darks, flats or bias frames tonight.");
+        } else {
+            let words: Vec<String> = cal
+                .counts
+                .iter()
+                .map(|(k, n, w, r)| format!("{n} {k}: {w} warn, {r} reject"))
+                .collect();
+            h.push_str(&e(&words.join("; ")));
+        }
+        h.push_str("</p>");
+        if !cal.flagged.is_empty() {
+            h.push_str("<table><tr><th>time</th><th>verdict</th><th>file, and why</th></tr>");
+            for f in &cal.flagged {
+                let _ = write!(
+                    h,
+                    "<tr><td>{}</td><td class=\"{v}\">{v}</td><td><span class=\"file\">{}</span><ul class=\"why\">",
+                    e(f.local_time.as_deref().unwrap_or("-")),
+                    e(&f.file),
+                    v = f.verdict.as_str(),
+                );
+                for x in &f.explanations {
+                    let _ = write!(h, "<li>{}</li>", e(x));
+                }
+                h.push_str("</ul></td></tr>");
+            }
+            h.push_str("</table>");
+        }
+        if !cal.notes.is_empty() {
+            h.push_str("<ul>");
+            for n in &cal.notes {
+                let _ = write!(h, "<li>{}</li>", e(n));
+            }
+            h.push_str("</ul>");
+        }
+        h.push_str("</section>");
+    }
+
     // What deserves a look, most interesting first.
     h.push_str("<section id=\"look\"><h2>Worth a look</h2>");
     if s.notable.is_empty() {

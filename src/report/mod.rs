@@ -139,6 +139,23 @@ pub struct Summary {
     pub ok: usize,
     pub warned: usize,
     pub rejected: usize,
+    pub calibration: CalibrationSummary,
+}
+
+/// The night's calibration frames: how many of each kind and how they fared, the ones
+/// that warned or were rejected with why, and what the lights lack.
+#[derive(Debug, Clone, Default)]
+pub struct CalibrationSummary {
+    /// (kind, frames, warned, rejected), in the order dark, flat, bias.
+    pub counts: Vec<(&'static str, usize, usize, usize)>,
+    pub flagged: Vec<FrameLine>,
+    pub notes: Vec<String>,
+}
+
+impl CalibrationSummary {
+    pub fn is_empty(&self) -> bool {
+        self.counts.is_empty() && self.notes.is_empty()
+    }
 }
 
 impl Summary {
@@ -258,7 +275,39 @@ pub fn summarise(night: &str, doc: &NightDocument, settings: Settings) -> Summar
         notable,
         hot_pixels,
         cosmic_rays,
+        calibration: calibration_summary(doc, settings.tz),
     }
+}
+
+fn calibration_summary(doc: &NightDocument, tz: Tz) -> CalibrationSummary {
+    let mut c = CalibrationSummary {
+        notes: doc.calibration_notes.clone(),
+        ..Default::default()
+    };
+    for kind in ["dark", "flat", "bias"] {
+        let of: Vec<&NightFrameRecord> =
+            doc.calibration.iter().filter(|f| f.kind == kind).collect();
+        if of.is_empty() {
+            continue;
+        }
+        let n = |v: Verdict| of.iter().filter(|f| f.verdict == v).count();
+        c.counts
+            .push((kind, of.len(), n(Verdict::Warn), n(Verdict::Reject)));
+    }
+    c.flagged = doc
+        .calibration
+        .iter()
+        .filter(|f| f.verdict != Verdict::Ok)
+        .map(|f| FrameLine {
+            path: f.path.clone(),
+            file: file_name(&f.path),
+            local_time: f.time_unix.and_then(|t| local_clock(t, tz)),
+            verdict: f.verdict,
+            reasons: f.reasons.clone(),
+            explanations: f.explanations.clone(),
+        })
+        .collect();
+    c
 }
 
 fn group(
@@ -526,6 +575,7 @@ mod tests {
     ) -> NightFrameRecord {
         NightFrameRecord {
             path: format!("/srv/capture/{name}"),
+            kind: "light",
             status: if why.iter().any(|w| w.0 == "unreadable") {
                 "error"
             } else {
@@ -638,6 +688,8 @@ mod tests {
                 cosmic,
             ],
             limits: Vec::new(),
+            calibration: Vec::new(),
+            calibration_notes: Vec::new(),
         }
     }
 

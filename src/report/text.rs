@@ -54,6 +54,38 @@ pub fn text(s: &Summary, all: bool) -> String {
         }
     );
 
+    let cal = &s.calibration;
+    if !cal.is_empty() {
+        let _ = writeln!(
+            t,
+            "Calibration: {}",
+            if cal.counts.is_empty() {
+                "no darks, flats or bias frames tonight".to_string()
+            } else {
+                cal.counts
+                    .iter()
+                    .map(|(k, n, w, r)| format!("{n} {k} ({w} warn, {r} reject)"))
+                    .collect::<Vec<_>>()
+                    .join(", ")
+            }
+        );
+        for f in &cal.flagged {
+            let _ = writeln!(
+                t,
+                "    {}  {:<6}  {}",
+                f.local_time.as_deref().unwrap_or("--:--:--"),
+                f.verdict.as_str(),
+                single_line(&f.file)
+            );
+            for e in &f.explanations {
+                let _ = writeln!(t, "        {}", single_line(e));
+            }
+        }
+        for n in &cal.notes {
+            let _ = writeln!(t, "    {}", single_line(n));
+        }
+    }
+
     if s.groups.iter().any(|g| g.flagged().next().is_some()) {
         let _ = writeln!(t, "\nWarned and rejected frames");
     }

@@ -150,8 +150,8 @@ impl Store {
         tx.execute(
             "INSERT INTO frames (path, size, mtime_ns, status, error, night, target, filter,
                 time_unix, header_json, metrics_json, star_count, fwhm_px, eccentricity,
-                background_adu, noise_adu, recorded_at, wcs_json)
-             VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17, ?18)",
+                background_adu, noise_adu, recorded_at, wcs_json, calibration_json)
+             VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17, ?18, ?19)",
             params![
                 f.identity.path,
                 f.identity.size as i64,
@@ -171,6 +171,7 @@ impl Store {
                 m.map(|m| m.noise_adu),
                 now_unix,
                 f.wcs.as_ref().and_then(|w| serde_json::to_string(w).ok()),
+                f.calibration.as_ref().and_then(|c| serde_json::to_string(c).ok()),
             ],
         )
         .map_err(err)?;
@@ -354,7 +355,7 @@ impl Store {
             .conn
             .prepare(&format!(
                 "SELECT id, path, size, mtime_ns, status, error, night, target, filter, time_unix,
-                        metrics_json, wcs_json, header_json, placement_json
+                        metrics_json, wcs_json, header_json, placement_json, calibration_json
                  FROM frames {filter} ORDER BY COALESCE(time_unix, recorded_at), id"
             ))
             .map_err(|e| self.err(e))?;
@@ -381,6 +382,7 @@ impl Store {
                         stars: Vec::new(),
                         rejected: Vec::new(),
                         wcs: json(11)?.and_then(|w| serde_json::from_str(&w).ok()),
+                        calibration: json(14)?.and_then(|c| serde_json::from_str(&c).ok()),
                     },
                     json(13)?.and_then(|p| serde_json::from_str(&p).ok()),
                 ))

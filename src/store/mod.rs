@@ -164,6 +164,7 @@ mod tests {
             stars: Vec::new(),
             rejected: Vec::new(),
             wcs: None,
+            calibration: None,
         }
     }
 

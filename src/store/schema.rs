@@ -1,7 +1,7 @@
 //! The store's schema: each migration in order; `PRAGMA user_version` says how many a
 //! store has had. A migration is never changed once released, only followed.
 
-pub const SCHEMA_VERSION: i64 = 7;
+pub const SCHEMA_VERSION: i64 = 8;
 
 pub(super) const MIGRATIONS: &[&str] = &[
     // 1: frames, their stars and rejected detections, and a key-value table.
@@ -99,4 +99,6 @@ pub(super) const MIGRATIONS: &[&str] = &[
      ALTER TABLE frames ADD COLUMN live_reasons_json TEXT;",
     // 7: the live verdict's explanations, so an alert can say what was measured.
     "ALTER TABLE frames ADD COLUMN live_explanations_json TEXT;",
+    // 8: what a calibration frame (dark, flat, bias) measured.
+    "ALTER TABLE frames ADD COLUMN calibration_json TEXT;",
 ];

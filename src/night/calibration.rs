@@ -1,0 +1,620 @@
+//! Calibration frames judged with the night: flats per filter and binning (level in the
+//! linear range, clipping, departure from the set's own shape), darks (exposure and
+//! temperature against the night's lights, level, noise and hot pixels against the set,
+//! a light leak), bias frames (level and read noise against the set), and for each group
+//! of lights whether matching darks, flats and bias frames were taken. Every threshold is
+//! a constant here with where it comes from; every reason comes with its values. Pure.
+
+use crate::record::{FrameRecord, FrameStatus};
+use crate::rules::{Judgement, Verdict};
+
+/// Flats: median level as a fraction of full scale. Inside the warn band is the linear
+/// range (common practice: a third to a half of full scale, with margin); past the
+/// reject limits a flat has too little signal or reaches the non-linear top.
+pub const FLAT_LEVEL_WARN: (f64, f64) = (0.25, 0.65);
+pub const FLAT_LEVEL_REJECT: (f64, f64) = (0.10, 0.85);
+/// Flats: share of pixels at full scale (clipped) that rejects a flat.
+pub const FLAT_CLIPPED_REJECT: f64 = 0.001;
+/// Flats: largest block departure from the set's median shape (fraction).
+pub const FLAT_DEPARTURE: (f64, f64) = (0.015, 0.03);
+/// Darks: exposure equal to a light's within this fraction (common practice).
+pub const DARK_EXPOSURE_TOLERANCE: f64 = 0.01;
+/// Darks: sensor temperature within this of the lights' (common practice: about 1 °C).
+pub const DARK_TEMPERATURE_TOLERANCE_C: f64 = 1.0;
+/// Darks and bias: level this many robust σ from the set's median, or noise this many
+/// times the set's median noise.
+pub const SET_LEVEL_SIGMAS: f64 = 5.0;
+pub const SET_NOISE_RATIO: f64 = 1.3;
+/// Darks: hot pixels more than this many times the set's median count (and at least
+/// `HOT_PIXELS_MIN_EXTRA` more): cooling that failed, or a sensor ageing.
+pub const HOT_PIXELS_RATIO: f64 = 2.0;
+pub const HOT_PIXELS_MIN_EXTRA: usize = 20;
+/// Darks and bias: a light leak shows as lit patches (stars, a glow) or a gradient many
+/// times a block's noise.
+pub const LEAK_SOURCES: usize = 3;
+pub const LEAK_GRADIENT_SIGMAS: f64 = 30.0;
+
+/// The judgement of one calibration frame.
+#[derive(Debug, Clone)]
+pub struct CalibrationJudged {
+    /// Index into the records given.
+    pub index: usize,
+    pub kind: &'static str,
+    pub judgement: Judgement,
+}
+
+/// The night's calibration: each frame judged, and what is missing, in words.
+#[derive(Debug, Clone, Default)]
+pub struct CalibrationReport {
+    pub frames: Vec<CalibrationJudged>,
+    pub notes: Vec<String>,
+}
+
+/// The kind of a calibration record, if it is one.
+pub fn kind_of(r: &FrameRecord) -> Option<&'static str> {
+    if r.status != FrameStatus::Skipped {
+        return None;
+    }
+    let said = r
+        .calibration
+        .as_ref()
+        .map(|c| c.kind.clone())
+        .unwrap_or_else(|| r.error.clone().unwrap_or_default().to_ascii_lowercase());
+    ["dark", "flat", "bias"]
+        .into_iter()
+        .find(|k| said.contains(k))
+}
+
+fn median(mut v: Vec<f64>) -> Option<f64> {
+    v.retain(|x| x.is_finite());
+    if v.is_empty() {
+        return None;
+    }
+    v.sort_by(f64::total_cmp);
+    let n = v.len();
+    Some(if n % 2 == 1 {
+        v[n / 2]
+    } else {
+        0.5 * (v[n / 2 - 1] + v[n / 2])
+    })
+}
+
+/// 1.4826 × the median absolute deviation (common practice).
+fn robust_sigma(v: &[f64]) -> Option<f64> {
+    let m = median(v.to_vec())?;
+    median(v.iter().map(|x| (x - m).abs()).collect()).map(|d| 1.4826 * d)
+}
+
+struct Verdicts {
+    verdict: Verdict,
+    reasons: Vec<String>,
+    explanations: Vec<String>,
+}
+
+impl Verdicts {
+    fn new() -> Self {
+        Verdicts {
+            verdict: Verdict::Ok,
+            reasons: Vec::new(),
+            explanations: Vec::new(),
+        }
+    }
+    fn add(&mut self, verdict: Verdict, reason: &str, explanation: String) {
+        self.verdict = self.verdict.max(verdict);
+        self.reasons.push(reason.to_string());
+        self.explanations.push(explanation);
+    }
+    fn done(self) -> Judgement {
+        Judgement {
+            verdict: self.verdict,
+            reasons: self.reasons,
+            explanations: self.explanations,
+        }
+    }
+}
+
+fn header_f(
+    r: &FrameRecord,
+    f: impl Fn(&crate::record::HeaderFacts) -> Option<f64>,
+) -> Option<f64> {
+    r.header.as_ref().and_then(f)
+}
+
+/// Same camera settings where both headers say: binning, gain and offset.
+fn same_settings(a: &FrameRecord, b: &FrameRecord) -> bool {
+    let same = |f: fn(&crate::record::HeaderFacts) -> Option<f64>| match (
+        header_f(a, f),
+        header_f(b, f),
+    ) {
+        (Some(x), Some(y)) => (x - y).abs() < 1e-6,
+        _ => true,
+    };
+    same(|h| h.binning) && same(|h| h.gain_setting) && same(|h| h.offset)
+}
+
+/// Judge the night's calibration frames among `records` (lights included, for the
+/// darks' exposure and temperature and the matching check).
+pub fn judge_calibration(records: &[&FrameRecord]) -> CalibrationReport {
+    let lights: Vec<&FrameRecord> = records
+        .iter()
+        .copied()
+        .filter(|r| r.status == FrameStatus::Ok)
+        .collect();
+    let mut out = CalibrationReport::default();
+    let of_kind = |kind: &str| -> Vec<usize> {
+        (0..records.len())
+            .filter(|&i| kind_of(records[i]) == Some(kind))
+            .collect()
+    };
+
+    // Flats, per filter and binning.
+    let flats = of_kind("flat");
+    let mut sets: Vec<Vec<usize>> = Vec::new();
+    for &i in &flats {
+        match sets.iter_mut().find(|s| {
+            let a = records[s[0]];
+            a.filter == records[i].filter && same_settings(a, records[i])
+        }) {
+            Some(s) => s.push(i),
+            None => sets.push(vec![i]),
+        }
+    }
+    for set in &sets {
+        let grids: Vec<&[f32]> = set
+            .iter()
+            .filter_map(|&i| records[i].calibration.as_ref())
+            .map(|c| c.grid.as_slice())
+            .collect();
+        let shape = crate::measure::calibration::median_grid(&grids);
+        for &i in set {
+            let mut v = Verdicts::new();
+            if let Some(c) = &records[i].calibration {
+                if let Some(level) = c.level_fraction {
+                    let pct = 100.0 * level;
+                    let band = format!(
+                        "(warn outside {:.0}–{:.0} %, reject below {:.0} % or above {:.0} %)",
+                        100.0 * FLAT_LEVEL_WARN.0,
+                        100.0 * FLAT_LEVEL_WARN.1,
+                        100.0 * FLAT_LEVEL_REJECT.0,
+                        100.0 * FLAT_LEVEL_REJECT.1
+                    );
+                    let words = format!(
+                        "level {:.0} ADU is {pct:.0} % of full scale {:.0} ADU {band}",
+                        c.median_adu,
+                        c.full_scale_adu.unwrap_or(f64::NAN)
+                    );
+                    if level < FLAT_LEVEL_REJECT.0 {
+                        v.add(Verdict::Reject, "flat_level_low", words);
+                    } else if level > FLAT_LEVEL_REJECT.1 {
+                        v.add(Verdict::Reject, "flat_level_high", words);
+                    } else if level < FLAT_LEVEL_WARN.0 {
+                        v.add(Verdict::Warn, "flat_level_low", words);
+                    } else if level > FLAT_LEVEL_WARN.1 {
+                        v.add(Verdict::Warn, "flat_level_high", words);
+                    }
+                }
+                if c.clipped_fraction > FLAT_CLIPPED_REJECT {
+                    v.add(
+                        Verdict::Reject,
+                        "flat_clipped",
+                        format!(
+                            "{:.2} % of pixels at full scale (reject above {:.1} %)",
+                            100.0 * c.clipped_fraction,
+                            100.0 * FLAT_CLIPPED_REJECT
+                        ),
+                    );
+                }
+                if set.len() >= 3 {
+                    if let Some(d) = crate::measure::calibration::grid_departure(&c.grid, &shape) {
+                        let words = format!(
+                            "its shape departs {:.1} % from the set's median flat somewhere (warn above {:.1} %, reject above {:.1} %): dust that moved, a flickering panel or a light leak",
+                            100.0 * d,
+                            100.0 * FLAT_DEPARTURE.0,
+                            100.0 * FLAT_DEPARTURE.1
+                        );
+                        if d > FLAT_DEPARTURE.1 {
+                            v.add(Verdict::Reject, "flat_departs", words);
+                        } else if d > FLAT_DEPARTURE.0 {
+                            v.add(Verdict::Warn, "flat_departs", words);
+                        }
+                    }
+                }
+            }
+            out.frames.push(CalibrationJudged {
+                index: i,
+                kind: "flat",
+                judgement: v.done(),
+            });
+        }
+    }
+
+    // Darks and bias frames against their own set.
+    for kind in ["dark", "bias"] {
+        let set = of_kind(kind);
+        let stats = |f: fn(&crate::measure::calibration::CalibrationStats) -> f64| -> Vec<f64> {
+            set.iter()
+                .filter_map(|&i| records[i].calibration.as_ref().map(f))
+                .collect()
+        };
+        let levels = stats(|c| c.median_adu);
+        let noises = stats(|c| c.noise_adu);
+        let hots = stats(|c| c.hot_pixel_count as f64);
+        let level_mid = median(levels.clone());
+        let noise_mid = median(noises.clone());
+        let hot_mid = median(hots);
+        // The spread of levels, with a floor of a tenth of the noise so a set of
+        // identical frames does not make every tiny difference significant.
+        let spread = robust_sigma(&levels)
+            .unwrap_or(0.0)
+            .max(0.1 * noise_mid.unwrap_or(0.0))
+            .max(1e-6);
+        for &i in &set {
+            let r = records[i];
+            let mut v = Verdicts::new();
+            if let Some(c) = &r.calibration {
+                if c.source_count >= LEAK_SOURCES || c.gradient_sigmas > LEAK_GRADIENT_SIGMAS {
+                    v.add(
+                        Verdict::Reject,
+                        "light_leak",
+                        format!(
+                            "{} lit patch(es) and a gradient of {:.0} σ across the frame (reject at {LEAK_SOURCES} patches or {LEAK_GRADIENT_SIGMAS:.0} σ): light reached the sensor",
+                            c.source_count, c.gradient_sigmas
+                        ),
+                    );
+                }
+                if set.len() >= 3 {
+                    if let Some(m) = level_mid {
+                        let z = (c.median_adu - m) / spread;
+                        if z.abs() > SET_LEVEL_SIGMAS {
+                            v.add(
+                                Verdict::Warn,
+                                &format!("{kind}_level_off"),
+                                format!(
+                                    "level {:.1} ADU is {z:+.0} σ from the set's median {m:.1} ADU (warn beyond {SET_LEVEL_SIGMAS:.0} σ)",
+                                    c.median_adu
+                                ),
+                            );
+                        }
+                    }
+                    if let Some(n) = noise_mid.filter(|n| *n > 0.0) {
+                        if c.noise_adu > SET_NOISE_RATIO * n {
+                            v.add(
+                                Verdict::Warn,
+                                &format!("{kind}_noise_high"),
+                                format!(
+                                    "noise {:.2} ADU is {:.2} × the set's median {n:.2} ADU (warn above {SET_NOISE_RATIO} ×)",
+                                    c.noise_adu,
+                                    c.noise_adu / n
+                                ),
+                            );
+                        }
+                    }
+                    if let (Some(h), "dark") = (hot_mid, kind) {
+                        let count = c.hot_pixel_count as f64;
+                        if count > HOT_PIXELS_RATIO * h && count - h >= HOT_PIXELS_MIN_EXTRA as f64
+                        {
+                            v.add(
+                                Verdict::Warn,
+                                "dark_hot_pixels",
+                                format!(
+                                    "{} hot pixels against the set's median {h:.0} (warn above {HOT_PIXELS_RATIO} ×): cooling that failed?",
+                                    c.hot_pixel_count
+                                ),
+                            );
+                        }
+                    }
+                }
+            }
+            if kind == "dark" {
+                dark_against_lights(r, &lights, &mut v);
+            }
+            out.frames.push(CalibrationJudged {
+                index: i,
+                kind: if kind == "dark" { "dark" } else { "bias" },
+                judgement: v.done(),
+            });
+        }
+    }
+    out.frames.sort_by_key(|f| f.index);
+    out.notes = missing(records, &lights, &out.frames);
+    out
+}
+
+/// A dark's exposure and temperature against the night's lights.
+fn dark_against_lights(dark: &FrameRecord, lights: &[&FrameRecord], v: &mut Verdicts) {
+    let exposure = |r: &FrameRecord| header_f(r, |h| h.exposure_s);
+    let temp = |r: &FrameRecord| header_f(r, |h| h.ccd_temp_c);
+    let Some(e) = exposure(dark) else {
+        return;
+    };
+    let light_exposures: Vec<f64> = lights.iter().filter_map(|l| exposure(l)).collect();
+    if light_exposures.is_empty() {
+        return;
+    }
+    let matching: Vec<&&FrameRecord> = lights
+        .iter()
+        .filter(|l| {
+            exposure(l).is_some_and(|x| (x - e).abs() <= DARK_EXPOSURE_TOLERANCE * x.max(e))
+        })
+        .collect();
+    if matching.is_empty() {
+        let mut shown: Vec<String> = light_exposures
+            .iter()
+            .map(|x| format!("{x:.0} s"))
+            .collect();
+        shown.sort();
+        shown.dedup();
+        v.add(
+            Verdict::Warn,
+            "dark_exposure_mismatch",
+            format!(
+                "exposure {e:.1} s matches no light of the night ({})",
+                shown.join(", ")
+            ),
+        );
+        return;
+    }
+    let (Some(t), Some(lt)) = (
+        temp(dark),
+        median(matching.iter().filter_map(|l| temp(l)).collect()),
+    ) else {
+        return;
+    };
+    if (t - lt).abs() > DARK_TEMPERATURE_TOLERANCE_C {
+        v.add(
+            Verdict::Warn,
+            "dark_temperature_mismatch",
+            format!(
+                "sensor at {t:.1} °C against the lights' {lt:.1} °C (warn beyond {DARK_TEMPERATURE_TOLERANCE_C:.0} °C)"
+            ),
+        );
+    }
+}
+
+/// For each group of lights (target, filter, exposure), what calibration is missing.
+fn missing(
+    records: &[&FrameRecord],
+    lights: &[&FrameRecord],
+    judged: &[CalibrationJudged],
+) -> Vec<String> {
+    let usable = |kind: &str| -> Vec<&FrameRecord> {
+        judged
+            .iter()
+            .filter(|j| j.kind == kind && j.judgement.verdict != Verdict::Reject)
+            .map(|j| records[j.index])
+            .collect()
+    };
+    let (darks, flats, bias) = (usable("dark"), usable("flat"), usable("bias"));
+    let exposure = |r: &FrameRecord| header_f(r, |h| h.exposure_s);
+    let temp = |r: &FrameRecord| header_f(r, |h| h.ccd_temp_c);
+    let mut notes = Vec::new();
+    // Lights of one target, filter and exposure.
+    struct Lights<'a> {
+        target: Option<String>,
+        filter: Option<String>,
+        exposure: Option<f64>,
+        frames: Vec<&'a FrameRecord>,
+    }
+    let mut groups: Vec<Lights<'_>> = Vec::new();
+    for l in lights {
+        let e = exposure(l).map(|x| (x * 100.0).round() / 100.0);
+        match groups
+            .iter_mut()
+            .find(|g| g.target == l.target && g.filter == l.filter && g.exposure == e)
+        {
+            Some(g) => g.frames.push(l),
+            None => groups.push(Lights {
+                target: l.target.clone(),
+                filter: l.filter.clone(),
+                exposure: e,
+                frames: vec![l],
+            }),
+        }
+    }
+    for Lights {
+        target,
+        filter,
+        exposure: e,
+        frames,
+    } in &groups
+    {
+        let heading = format!(
+            "{} / {}",
+            target.as_deref().unwrap_or("no target"),
+            filter.as_deref().unwrap_or("no filter")
+        );
+        let first = frames[0];
+        let t = median(frames.iter().filter_map(|l| temp(l)).collect());
+        if let Some(e) = e {
+            let ok = darks.iter().any(|d| {
+                exposure(d).is_some_and(|x| (x - e).abs() <= DARK_EXPOSURE_TOLERANCE * x.max(*e))
+                    && match (temp(d), t) {
+                        (Some(a), Some(b)) => (a - b).abs() <= DARK_TEMPERATURE_TOLERANCE_C,
+                        _ => true,
+                    }
+                    && same_settings(d, first)
+            });
+            if !ok {
+                notes.push(format!(
+                    "{heading}: no usable darks of {e:.0} s{} tonight for its {} light(s)",
+                    t.map_or(String::new(), |t| format!(" at {t:.0} °C")),
+                    frames.len()
+                ));
+            }
+        }
+        if !flats
+            .iter()
+            .any(|f| f.filter == *filter && same_settings(f, first))
+        {
+            notes.push(format!(
+                "{heading}: no usable flats for filter {} tonight",
+                filter.as_deref().unwrap_or("(none)")
+            ));
+        }
+        if !bias.iter().any(|b| same_settings(b, first)) {
+            notes.push(format!("{heading}: no usable bias frames tonight"));
+        }
+    }
+    notes
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::measure::calibration::CalibrationStats;
+    use crate::record::{HeaderFacts, Identity};
+
+    fn record(
+        kind: &str,
+        name: &str,
+        exposure: f64,
+        temp: f64,
+        stats: CalibrationStats,
+    ) -> FrameRecord {
+        let mut r = FrameRecord::failed(
+            Identity {
+                path: name.into(),
+                size: 1,
+                mtime_ns: 1,
+            },
+            "",
+        );
+        r.status = if kind == "light" {
+            FrameStatus::Ok
+        } else {
+            FrameStatus::Skipped
+        };
+        r.error = (kind != "light").then(|| format!("{kind} frame (IMAGETYP)"));
+        r.filter = Some("L".into());
+        r.target = Some("Kestrel Field A".into());
+        r.header = Some(HeaderFacts {
+            exposure_s: Some(exposure),
+            ccd_temp_c: Some(temp),
+            ..Default::default()
+        });
+        r.calibration = (kind != "light").then(|| CalibrationStats {
+            kind: kind.into(),
+            ..stats
+        });
+        r
+    }
+
+    fn stats(level: f64, noise: f64) -> CalibrationStats {
+        CalibrationStats {
+            median_adu: level,
+            noise_adu: noise,
+            full_scale_adu: Some(65535.0),
+            level_fraction: Some(level / 65535.0),
+            grid: vec![1.0; 16],
+            grid_width: 4,
+            grid_height: 4,
+            ..Default::default()
+        }
+    }
+
+    #[test]
+    fn each_fault_is_found_and_a_clean_set_passes() {
+        let mut rs = vec![
+            record("light", "l1", 120.0, -10.0, stats(0.0, 0.0)),
+            record("light", "l2", 120.0, -10.2, stats(0.0, 0.0)),
+        ];
+        for k in 0..5 {
+            rs.push(record(
+                "flat",
+                &format!("f{k}"),
+                2.0,
+                -10.0,
+                stats(25000.0, 150.0),
+            ));
+            rs.push(record(
+                "dark",
+                &format!("d{k}"),
+                120.0,
+                -10.0,
+                stats(1000.0, 12.0),
+            ));
+            rs.push(record(
+                "bias",
+                &format!("b{k}"),
+                0.0,
+                -10.0,
+                stats(990.0, 8.0),
+            ));
+        }
+        let all: Vec<&FrameRecord> = rs.iter().collect();
+        let clean = judge_calibration(&all);
+        assert_eq!(clean.frames.len(), 15);
+        assert!(
+            clean
+                .frames
+                .iter()
+                .all(|f| f.judgement.verdict == Verdict::Ok),
+            "{clean:?}"
+        );
+        assert!(clean.notes.is_empty(), "{:?}", clean.notes);
+
+        // 8 % and 95 % of full scale; a moved dust shadow; a warm dark; a short dark; a
+        // leaking dark.
+        rs.push(record(
+            "flat",
+            "low",
+            2.0,
+            -10.0,
+            stats(0.08 * 65535.0, 40.0),
+        ));
+        rs.push(record(
+            "flat",
+            "high",
+            2.0,
+            -10.0,
+            stats(0.95 * 65535.0, 200.0),
+        ));
+        let mut dust = stats(25000.0, 150.0);
+        dust.grid[5] = 0.95;
+        rs.push(record("flat", "dust", 2.0, -10.0, dust));
+        rs.push(record("dark", "warm", 120.0, -4.0, stats(1000.0, 12.0)));
+        rs.push(record("dark", "short", 60.0, -10.0, stats(1000.0, 12.0)));
+        let mut leak = stats(1000.0, 12.0);
+        leak.source_count = 12;
+        rs.push(record("dark", "leak", 120.0, -10.0, leak));
+        let all: Vec<&FrameRecord> = rs.iter().collect();
+        let r = judge_calibration(&all);
+        let reasons = |name: &str| -> Vec<String> {
+            let f = r
+                .frames
+                .iter()
+                .find(|f| all[f.index].identity.path == name)
+                .unwrap();
+            f.judgement.reasons.clone()
+        };
+        assert_eq!(reasons("low"), ["flat_level_low"]);
+        assert_eq!(reasons("high"), ["flat_level_high"]);
+        assert_eq!(reasons("dust"), ["flat_departs"]);
+        assert_eq!(reasons("warm"), ["dark_temperature_mismatch"]);
+        assert_eq!(reasons("short"), ["dark_exposure_mismatch"]);
+        assert_eq!(reasons("leak"), ["light_leak"]);
+        let flagged = r
+            .frames
+            .iter()
+            .filter(|f| f.judgement.verdict != Verdict::Ok)
+            .count();
+        assert_eq!(flagged, 6, "no false warning on the clean frames: {r:?}");
+    }
+
+    #[test]
+    fn missing_calibration_is_named_per_group_of_lights() {
+        let rs = [
+            record("light", "l1", 300.0, -10.0, stats(0.0, 0.0)),
+            record("dark", "d1", 120.0, -10.0, stats(1000.0, 12.0)),
+        ];
+        let all: Vec<&FrameRecord> = rs.iter().collect();
+        let notes = judge_calibration(&all).notes;
+        assert_eq!(notes.len(), 3, "{notes:?}");
+        assert!(
+            notes[0].contains("no usable darks of 300 s at -10 °C"),
+            "{notes:?}"
+        );
+        assert!(notes[1].contains("no usable flats for filter L"));
+        assert!(notes[2].contains("no usable bias frames"));
+    }
+}
