@@ -96,6 +96,13 @@ pub fn analyse_records(
                 registration_transform: p.and_then(|p| p.transform),
                 sky: j.sky,
                 transparency_loss_mag: j.transparency_loss_mag,
+                instrument: r.header.as_ref().and_then(|h| {
+                    let named: Vec<&str> = [h.telescope.as_deref(), h.instrument.as_deref()]
+                        .into_iter()
+                        .flatten()
+                        .collect();
+                    (!named.is_empty()).then(|| named.join(", "))
+                }),
             });
         }
         for a in &found.anomalies {
@@ -146,6 +153,7 @@ pub fn analyse_records(
             registration_transform: None,
             sky: None,
             transparency_loss_mag: None,
+            instrument: None,
         });
     }
     doc.calibration_notes = calibration.notes;

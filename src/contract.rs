@@ -69,6 +69,10 @@ pub struct NightFrameRecord {
     pub sky: Option<crate::sky::FrameSky>,
     #[serde(serialize_with = "finite")]
     pub transparency_loss_mag: Option<f64>,
+    /// TELESCOP and INSTRUME as the header names them (for VOEvent documents; not part
+    /// of the JSON document).
+    #[serde(skip)]
+    pub instrument: Option<String>,
 }
 
 #[derive(Debug, Clone, Serialize)]

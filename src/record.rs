@@ -259,6 +259,10 @@ pub struct HeaderFacts {
     pub gain_setting: Option<f64>,
     #[serde(default)]
     pub offset: Option<f64>,
+    #[serde(default)]
+    pub instrument: Option<String>,
+    #[serde(default)]
+    pub telescope: Option<String>,
 }
 
 impl HeaderFacts {
@@ -276,6 +280,8 @@ impl HeaderFacts {
             binning: h.x_binning,
             gain_setting: h.gain_setting,
             offset: h.offset,
+            instrument: h.instrument.clone(),
+            telescope: h.telescope.clone(),
         }
     }
 }

@@ -64,6 +64,14 @@ pub fn night(
         );
     }
     let night = subwatch::batch::night_of(&doc).unwrap_or_else(|| "night".into());
+    let events = subwatch::events::write_voevents(&doc, c, &night, subwatch::clock::now_unix())?;
+    if let Some(folder) = c.voevent.folder.as_ref().filter(|_| !events.is_empty()) {
+        eprintln!(
+            "VOEvent: {} document(s) written to {}",
+            events.len(),
+            folder.display()
+        );
+    }
     if let Some(folder) = report {
         let prepared = subwatch::morning::write_files(
             doc.clone(),

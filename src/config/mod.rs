@@ -244,6 +244,32 @@ pub struct ReportConfig {
     pub folder: Option<PathBuf>,
 }
 
+/// VOEvent documents of anomalies: off unless `folder` is set.
+#[derive(Debug, Clone)]
+pub struct VoEventConfig {
+    pub folder: Option<PathBuf>,
+    pub kinds: Vec<AnomalyKind>,
+    /// The observatory's own authority identifier, `ivo://...`.
+    pub authority: Option<String>,
+    /// The observatory's name, for the documents' Who.
+    pub author: Option<String>,
+}
+
+impl Default for VoEventConfig {
+    fn default() -> Self {
+        Self {
+            folder: None,
+            kinds: vec![
+                AnomalyKind::NewSource,
+                AnomalyKind::Moving,
+                AnomalyKind::Transient,
+            ],
+            authority: None,
+            author: None,
+        }
+    }
+}
+
 /// The live status page: off unless `listen` is set.
 #[derive(Debug, Clone, Default)]
 pub struct WebConfig {
@@ -291,6 +317,7 @@ pub struct Config {
     pub alerts: AlertsConfig,
     pub report: ReportConfig,
     pub web: WebConfig,
+    pub voevent: VoEventConfig,
     pub rules: Vec<RuleSpec>,
     /// The file this configuration was read from.
     pub source: Option<PathBuf>,

@@ -200,8 +200,9 @@ impl<'a> Reader<'a> {
     }
 }
 
-const SECTIONS: [&str; 10] = [
+const SECTIONS: [&str; 11] = [
     "watch", "store", "site", "optics", "measure", "actions", "mail", "alerts", "report", "web",
+    "voevent",
 ];
 
 /// A number from an integer or a float.
@@ -560,6 +561,40 @@ pub fn parse(text: &str, base: &Path) -> Result<Config, Vec<ConfigProblem>> {
         token_file: r.path("web", "token_file"),
         open_without_token: r.flag("web", "open_without_token", false),
     };
+    let kinds_expected = || {
+        format!(
+            "a list of anomaly kinds from {}",
+            AnomalyKind::NAMES.join(", ")
+        )
+    };
+    let voevent = VoEventConfig {
+        folder: r.path("voevent", "folder"),
+        kinds: r.read(
+            "voevent",
+            "kinds",
+            VoEventConfig::default().kinds,
+            |v| {
+                v.as_array()
+                    .ok_or_else(kinds_expected)?
+                    .iter()
+                    .map(|k| {
+                        k.as_str().and_then(AnomalyKind::from_name).ok_or_else(|| {
+                            format!("{}: {} is not one of them", kinds_expected(), shown_value(k))
+                        })
+                    })
+                    .collect()
+            },
+        ),
+        authority: r.read("voevent", "authority", None, |v| {
+            v.as_str()
+                .filter(|a| crate::voevent::valid_authority(a))
+                .map(|a| Some(a.to_string()))
+                .ok_or_else(|| {
+                    "your observatory's own authority identifier, such as \"ivo://kestrel-ridge.example/subwatch\" (ivo:// and a name, no spaces or #)".to_string()
+                })
+        }),
+        author: r.text("voevent", "author", "the observatory's name (text)"),
+    };
     let rules = read_rules(&mut r);
     r.unknown();
     let mut problems = std::mem::take(&mut r.problems);
@@ -574,6 +609,7 @@ pub fn parse(text: &str, base: &Path) -> Result<Config, Vec<ConfigProblem>> {
         alerts,
         report,
         web,
+        voevent,
         rules,
         source: None,
     };
@@ -722,6 +758,13 @@ impl Config {
                 "the summary would go nowhere: [mail] to is empty".into(),
             );
         }
+        if self.voevent.folder.is_some() && self.voevent.authority.is_none() {
+            bad(
+                "voevent",
+                "folder",
+                "VOEvent documents need [voevent] authority, your observatory's own identifier (\"ivo://...\")".into(),
+            );
+        }
         if let Some(addr) = self.web.listen {
             if !addr.ip().is_loopback()
                 && self.web.token_file.is_none()
@@ -805,6 +848,23 @@ mod tests {
         let both =
             "listen = \"0.0.0.0:8480\"\ntoken_file = \"/etc/t\"\nopen_without_token = true\n";
         assert_eq!(read(both).unwrap_err()[0].key, "web.open_without_token");
+    }
+
+    #[test]
+    fn voevent_documents_need_an_authority_of_the_observatorys_own() {
+        let base = "[watch]\nfolders = [\"/tmp\"]\n[voevent]\nfolder = \"/tmp/ev\"\n";
+        let read = |more: &str| parse(&format!("{base}{more}"), Path::new("/"));
+        assert_eq!(read("").unwrap_err()[0].key, "voevent.folder");
+        let problems = read("authority = \"http://x\"\n").unwrap_err();
+        assert_eq!(
+            (problems[0].key.as_str(), problems[0].line),
+            ("voevent.authority", Some(5))
+        );
+        let c =
+            read("authority = \"ivo://kestrel-ridge.example/subwatch\"\nkinds = [\"moving\"]\n")
+                .unwrap();
+        assert_eq!(c.voevent.kinds, vec![AnomalyKind::Moving]);
+        assert!(read("authority = \"ivo://k.example\"\nkinds = [\"comet\"]\n").is_err());
     }
 
     #[test]

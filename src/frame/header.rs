@@ -46,6 +46,9 @@ pub struct FrameHeader {
     pub exposure_s: Option<f64>,
     pub filter: Option<String>,
     pub object: Option<String>,
+    /// INSTRUME and TELESCOP as written.
+    pub instrument: Option<String>,
+    pub telescope: Option<String>,
     pub image_kind: Option<ImageKind>,
     pub x_binning: Option<f64>,
     pub y_binning: Option<f64>,
@@ -92,6 +95,8 @@ impl FrameHeader {
             exposure_s: cards.number("EXPTIME").or_else(|| cards.number("EXPOSURE")),
             filter: cards.text("FILTER").filter(|f| !means_no_filter(f)),
             object: cards.text("OBJECT"),
+            instrument: cards.text("INSTRUME"),
+            telescope: cards.text("TELESCOP"),
             image_kind: cards
                 .text("IMAGETYP")
                 .or_else(|| cards.text("FRAME"))

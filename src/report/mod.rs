@@ -600,6 +600,7 @@ mod tests {
             registration_transform: None,
             sky: None,
             transparency_loss_mag: None,
+            instrument: None,
         }
     }
 

@@ -105,7 +105,7 @@ pub(super) fn minute_checks(shared: &Shared) {
 /// Run the night analysis over tonight's frames so far and alert on anomalies of the
 /// chosen kinds, each once (same kind and place).
 fn anomaly_alerts(store: &Store, config: &Config, night: &str, now: f64) {
-    if config.alerts.anomaly_kinds.is_empty() {
+    if config.alerts.anomaly_kinds.is_empty() && config.voevent.folder.is_none() {
         return;
     }
     // Only when frames arrived since the last look.
@@ -141,6 +141,14 @@ fn anomaly_alerts(store: &Store, config: &Config, night: &str, now: f64) {
     ) else {
         return;
     };
+    match crate::events::write_voevents(&doc, config, night, now) {
+        Ok(written) => {
+            for p in written {
+                tracing::info!("VOEvent written: {}", crate::logging::shown(&p));
+            }
+        }
+        Err(e) => tracing::warn!("{e}"),
+    }
     for a in &doc.anomalies {
         let kind = a.kind.name();
         if !config.alerts.anomaly_kinds.contains(&a.kind) || a.detail.is_cosmic_ray() {

@@ -16,13 +16,13 @@ failed=0
 log="$(mktemp)"
 trap 'rm -f "$log"' EXIT
 
-if ! "$py" -c 'import numpy, scipy, astropy, photutils, sep, erfa, aiosmtpd, trustme' 2>/dev/null; then
+if ! "$py" -c 'import numpy, scipy, astropy, photutils, sep, erfa, aiosmtpd, trustme, voeventparse' 2>/dev/null; then
     echo "error: $py cannot import numpy/scipy/astropy/photutils/sep; install tests/crosscheck/requirements.txt" >&2
     echo "0 passed, 1 failed"
     exit 1
 fi
 
-for script in measure_crosscheck.py storage_crosscheck.py independent_render_crosscheck.py wcs_crosscheck.py sky_crosscheck.py mail_crosscheck.py calibration_crosscheck.py report_browser.py status_browser.py; do
+for script in measure_crosscheck.py storage_crosscheck.py independent_render_crosscheck.py wcs_crosscheck.py sky_crosscheck.py mail_crosscheck.py calibration_crosscheck.py voevent_crosscheck.py report_browser.py status_browser.py; do
     label="${script%.py}"
     echo "### $label ($bin)"
     "$py" "$here/$script" "$bin" 2>&1 | tee "$log"

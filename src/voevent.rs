@@ -1,0 +1,224 @@
+//! One anomaly as a VOEvent 2.0 document (IVOA Recommendation, 2011), the open format
+//! networks of observers exchange events in: Who (the observatory's own authority
+//! identifier, from the configuration), What (the kind, magnitude where known, SNR,
+//! frames, the cutout's file name), WhereWhen (ICRS position with its error radius and
+//! the time of the first detection, UTC, topocentric), How (the instrument as the headers
+//! name it) and Why (the kind in words). subwatch writes these files; it sends nothing.
+//! Pure: the caller gives the time the document is written.
+
+use std::fmt::Write as _;
+
+use crate::contract::AnomalyRecord;
+use crate::text::escape_html as escape;
+
+/// What the document needs beyond the anomaly.
+#[derive(Debug, Clone)]
+pub struct EventContext<'a> {
+    /// `ivo://...`: the observatory's own authority (and stream) identifier.
+    pub authority: &'a str,
+    /// The observatory's name, for Who/Author.
+    pub author: Option<&'a str>,
+    /// When the document is written, ISO 8601 UTC.
+    pub written_utc: &'a str,
+    /// The first detection's time, ISO 8601 UTC.
+    pub first_utc: Option<String>,
+    /// The position's error radius, degrees.
+    pub error_deg: f64,
+    /// The instrument and telescope as the headers name them.
+    pub instrument: Option<&'a str>,
+    pub telescope: Option<&'a str>,
+    /// The cutout's file name, when one is written beside the document.
+    pub cutout: Option<&'a str>,
+    pub night: &'a str,
+    /// A short, stable identifier of the anomaly (its kind and first detection).
+    pub local_id: &'a str,
+}
+
+/// The document's IVORN: the authority, then `#` and the night and anomaly.
+pub fn ivorn(ctx: &EventContext<'_>) -> String {
+    format!(
+        "{}#{}_{}",
+        ctx.authority.trim_end_matches('/'),
+        ctx.night,
+        ctx.local_id
+    )
+}
+
+/// Whether an authority identifier is usable: `ivo://` and a name, no spaces or `#`.
+pub fn valid_authority(a: &str) -> bool {
+    a.strip_prefix("ivo://").is_some_and(|rest| {
+        !rest.is_empty()
+            && rest
+                .chars()
+                .all(|c| c.is_ascii_graphic() && c != '#' && c != '"' && c != '<' && c != '>')
+    })
+}
+
+/// The VOEvent 2.0 XML of one anomaly; `None` without a sky position (an event must say
+/// where it is).
+pub fn voevent_xml(a: &AnomalyRecord, ctx: &EventContext<'_>) -> Option<String> {
+    let (ra, dec) = (a.ra_deg?, a.dec_deg?);
+    if !(ra.is_finite() && dec.is_finite()) {
+        return None;
+    }
+    let kind = a.kind.name();
+    let mut x = String::new();
+    let _ = write!(
+        x,
+        "<?xml version=\"1.0\" encoding=\"UTF-8\"?>\n\
+         <voe:VOEvent xmlns:voe=\"http://www.ivoa.net/xml/VOEvent/v2.0\" \
+         xmlns:xsi=\"http://www.w3.org/2001/XMLSchema-instance\" \
+         xsi:schemaLocation=\"http://www.ivoa.net/xml/VOEvent/v2.0 http://www.ivoa.net/xml/VOEvent/VOEvent-v2.0.xsd\" \
+         version=\"2.0\" role=\"observation\" ivorn=\"{}\">\n",
+        escape(&ivorn(ctx))
+    );
+    let _ = write!(
+        x,
+        "  <Who>\n    <AuthorIVORN>{}</AuthorIVORN>\n    <Date>{}</Date>\n",
+        escape(ctx.authority),
+        escape(ctx.written_utc)
+    );
+    if let Some(author) = ctx.author {
+        let _ = write!(
+            x,
+            "    <Author>\n      <title>{}</title>\n    </Author>\n",
+            escape(author)
+        );
+    }
+    x.push_str("  </Who>\n  <What>\n");
+    let param = |x: &mut String, name: &str, value: &str, kind: &str, unit: &str, ucd: &str| {
+        let _ = writeln!(
+            x,
+            "    <Param name=\"{name}\" value=\"{}\" dataType=\"{kind}\"{}{}/>",
+            escape(value),
+            if unit.is_empty() {
+                String::new()
+            } else {
+                format!(" unit=\"{unit}\"")
+            },
+            if ucd.is_empty() {
+                String::new()
+            } else {
+                format!(" ucd=\"{ucd}\"")
+            }
+        );
+    };
+    param(&mut x, "kind", kind, "string", "", "meta.code.class");
+    if let Some(m) = a.detail.instrumental_mag() {
+        // Instrumental: −2.5 log10 of the flux in ADU, with no zero point.
+        param(
+            &mut x,
+            "instrumental_mag",
+            &format!("{m:.3}"),
+            "float",
+            "mag",
+            "phot.mag",
+        );
+    }
+    if let crate::night::Detail::Transient(t) = &a.detail {
+        if let Some(snr) = t.snr {
+            param(&mut x, "snr", &format!("{snr:.1}"), "float", "", "stat.snr");
+        }
+    }
+    param(
+        &mut x,
+        "frames",
+        &a.detections.len().to_string(),
+        "int",
+        "",
+        "meta.number",
+    );
+    if let Some(first) = a.detections.first() {
+        let file = crate::report::file_name(&first.path);
+        param(&mut x, "first_frame", &file, "string", "", "meta.file");
+        param(
+            &mut x,
+            "first_pixel",
+            &format!("{:.2} {:.2}", first.x, first.y),
+            "string",
+            "pix",
+            "pos.cartesian",
+        );
+    }
+    if let Some(c) = ctx.cutout {
+        param(&mut x, "cutout", c, "string", "", "meta.file");
+    }
+    for (name, v) in [("target", &a.target), ("filter", &a.filter)] {
+        if let Some(v) = v {
+            param(&mut x, name, v, "string", "", "meta.id");
+        }
+    }
+    let _ = write!(
+        x,
+        "    <Description>{}</Description>\n  </What>\n",
+        escape(&crate::report::what(a))
+    );
+    let _ = write!(
+        x,
+        "  <WhereWhen>\n    <ObsDataLocation>\n      <ObservatoryLocation id=\"TOPOCENTER\"/>\n      \
+         <ObservationLocation>\n        <AstroCoordSystem id=\"UTC-ICRS-TOPO\"/>\n        \
+         <AstroCoords coord_system_id=\"UTC-ICRS-TOPO\">\n"
+    );
+    if let Some(t) = &ctx.first_utc {
+        let _ = write!(
+            x,
+            "          <Time unit=\"s\">\n            <TimeInstant>\n              <ISOTime>{}</ISOTime>\n            </TimeInstant>\n          </Time>\n",
+            escape(t)
+        );
+    }
+    let _ = write!(
+        x,
+        "          <Position2D unit=\"deg\">\n            <Name1>RA</Name1>\n            <Name2>Dec</Name2>\n            \
+         <Value2>\n              <C1>{ra:.8}</C1>\n              <C2>{dec:.8}</C2>\n            </Value2>\n            \
+         <Error2Radius>{:.6}</Error2Radius>\n          </Position2D>\n        </AstroCoords>\n      \
+         </ObservationLocation>\n    </ObsDataLocation>\n  </WhereWhen>\n",
+        ctx.error_deg
+    );
+    let instrument = [ctx.telescope, ctx.instrument]
+        .into_iter()
+        .flatten()
+        .collect::<Vec<_>>()
+        .join(", ");
+    let _ = write!(
+        x,
+        "  <How>\n    <Description>{}</Description>\n  </How>\n",
+        escape(&format!(
+            "found by subwatch {} in the night's frames{}",
+            env!("CARGO_PKG_VERSION"),
+            if instrument.is_empty() {
+                String::new()
+            } else {
+                format!(" taken with {instrument}")
+            }
+        ))
+    );
+    let concept = match a.kind {
+        crate::night::AnomalyKind::NewSource => "a source not seen on earlier nights",
+        crate::night::AnomalyKind::Moving => "a source moving across the frames",
+        crate::night::AnomalyKind::Variable => "a source whose brightness changed",
+        crate::night::AnomalyKind::Color => "a source whose color is far from the field's",
+        crate::night::AnomalyKind::Transient => "a source in one frame only",
+        crate::night::AnomalyKind::Trail => "a streak across the frame",
+        crate::night::AnomalyKind::HotPixel => "a hot pixel",
+    };
+    let _ = write!(
+        x,
+        "  <Why>\n    <Concept>{}</Concept>\n  </Why>\n</voe:VOEvent>\n",
+        escape(concept)
+    );
+    Some(x)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn authority_identifiers_are_checked() {
+        assert!(valid_authority("ivo://kestrel-ridge.example/subwatch"));
+        assert!(!valid_authority("http://kestrel-ridge.example"));
+        assert!(!valid_authority("ivo://"));
+        assert!(!valid_authority("ivo://a b"));
+        assert!(!valid_authority("ivo://a#b"));
+    }
+}

@@ -1,0 +1,121 @@
+"""VOEvent documents of a rendered night, checked by the reference library: every
+document subwatch writes must validate against the VOEvent 2.0 XML schema (IVOA
+Recommendation, 2011) as shipped in the `voevent-parse` package, through lxml; the
+position voevent-parse reads back must agree with the anomaly's J2000 position in
+`subwatch night --json` to 0.01 arcsec, and its time with the first detection's frame.
+
+The night is subwatch's own invented scenario (`render-night`: a moving object and a
+one-frame flash in a field of the invented Kestrel Ridge Observatory).
+
+usage: python voevent_crosscheck.py PATH/TO/subwatch
+"""
+
+from __future__ import annotations
+
+import datetime
+import glob
+import json
+import math
+import os
+import shutil
+import subprocess
+import sys
+import tempfile
+
+import voeventparse
+
+sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
+from common import Checks  # noqa: E402
+
+
+def sep_arcsec(ra1, dec1, ra2, dec2) -> float:
+    """Angular separation by the haversine formula (analytic)."""
+    r1, d1, r2, d2 = map(math.radians, (ra1, dec1, ra2, dec2))
+    h = math.sin((d2 - d1) / 2) ** 2 + math.cos(d1) * math.cos(d2) * math.sin((r2 - r1) / 2) ** 2
+    return math.degrees(2 * math.asin(min(1.0, math.sqrt(h)))) * 3600.0
+
+
+def main() -> int:
+    binary = os.path.abspath(sys.argv[1] if len(sys.argv) > 1 else "target/release/subwatch")
+    checks = Checks("voevent_crosscheck")
+    work = tempfile.mkdtemp(prefix="subwatch-voevent-")
+    try:
+        frames = os.path.join(work, "night")
+        out = subprocess.run(
+            [binary, "render-night", "--out", frames, "--frames", "12"], capture_output=True, text=True, timeout=600
+        )
+        checks.record("render-night writes a night", out.returncode == 0, out.stderr[-300:])
+        events = os.path.join(work, "events")
+        cfg = os.path.join(work, "subwatch.toml")
+        with open(cfg, "w") as f:
+            f.write(
+                f'[watch]\nfolders = ["{frames}"]\n[store]\npath = "{work}/s.db"\n'
+                f'[voevent]\nfolder = "{events}"\nkinds = ["moving", "transient", "variable", "new_source"]\n'
+                'authority = "ivo://kestrel-ridge.example/subwatch"\nauthor = "Kestrel Ridge Observatory (invented)"\n'
+            )
+        run = subprocess.run(
+            [binary, "night", frames, "--json", "--config", cfg], capture_output=True, text=True, timeout=900
+        )
+        doc = json.loads(run.stdout)
+        wanted = [
+            a
+            for a in doc["anomalies"]
+            if a["kind"] in ("moving", "transient", "variable", "new_source")
+            and not (a["kind"] == "transient" and a.get("detail", {}).get("cosmic_ray"))
+            and a.get("ra_deg") is not None
+        ]
+        files = sorted(glob.glob(os.path.join(events, "*.xml")))
+        checks.record(
+            "one document per anomaly of the chosen kinds with a position",
+            len(files) == len(wanted) and len(files) > 0,
+            f"{len(files)} documents for {len(wanted)} anomalies ({sorted(a['kind'] for a in wanted)})",
+        )
+        times = {f["path"]: f.get("time_unix") for f in doc["frames"]}
+        for path in files:
+            name = os.path.basename(path)
+            with open(path, "rb") as f:
+                v = voeventparse.load(f)
+            checks.record(f"{name}: valid VOEvent 2.0 (voevent-parse's schema, lxml)", voeventparse.valid_as_v2_0(v))
+            pos = voeventparse.get_event_position(v)
+            best = min(
+                wanted,
+                key=lambda a: sep_arcsec(pos.ra, pos.dec, a["ra_deg"], a["dec_deg"]),
+            )
+            d = sep_arcsec(pos.ra, pos.dec, best["ra_deg"], best["dec_deg"])
+            checks.record(
+                f"{name}: position read back within 0.01 arcsec of the anomaly's",
+                d < 0.01 and pos.system == "UTC-ICRS-TOPO",
+                f"{d:.5f} arcsec, {pos.system}, error radius {pos.err} {pos.units}",
+            )
+            t = voeventparse.get_event_time_as_utc(v)
+            first = times.get(best["detections"][0]["path"])
+            expect = datetime.datetime.fromtimestamp(first, datetime.timezone.utc) if first else None
+            checks.record(
+                f"{name}: time is the first detection's frame",
+                expect is not None and abs((t.replace(tzinfo=datetime.timezone.utc) - expect).total_seconds()) < 0.01,
+                f"{t} vs {expect}",
+            )
+            params = voeventparse.get_toplevel_params(v)
+            checks.record(
+                f"{name}: What names the kind and the frames; Who the authority",
+                params.get("kind", {}).get("value") == best["kind"]
+                and int(params.get("frames", {}).get("value", 0)) == len(best["detections"])
+                and str(v.Who.AuthorIVORN) == "ivo://kestrel-ridge.example/subwatch",
+                json.dumps({k: p.get("value") for k, p in params.items()}),
+            )
+        # A second run writes nothing again: one document per anomaly.
+        again = subprocess.run(
+            [binary, "night", frames, "--json", "--config", cfg], capture_output=True, text=True, timeout=900
+        )
+        checks.record(
+            "a second analysis of the same night writes no document twice",
+            len(glob.glob(os.path.join(events, "*.xml"))) == len(files) and again.returncode in (0, 1),
+            again.stderr[-200:],
+        )
+    finally:
+        shutil.rmtree(work, ignore_errors=True)
+    return checks.finish()
+
+
+if __name__ == "__main__":
+    sys.exit(main())
