@@ -157,6 +157,7 @@ pub fn run(
     for sub in [
         "capture/kestrel-field-a",
         "capture/kestrel-field-b",
+        "capture/calibration",
         "state",
         "previous",
         "scratch",
@@ -208,7 +209,15 @@ pub fn run(
         std::thread::spawn(move || crate::watch::run_until(config, stop))
     };
     std::thread::sleep(Duration::from_millis(300));
-    let total = tonight.len();
+    // The evening's calibration set, with one frame of each fault, lands first.
+    let calibration = crate::sim::calibration::demo_set(768, "2026-03-14T18:45:00");
+    for f in &calibration {
+        let dest = out.join("capture").join("calibration").join(&f.name);
+        let tmp = dest.with_extension("fits.part");
+        write_frame(&tmp, &f.pixels, Encoding::Unsigned16, &f.keys)?;
+        std::fs::rename(&tmp, &dest).map_err(io(&dest))?;
+    }
+    let total = tonight.len() + calibration.len();
     for (k, (f, folder)) in tonight.iter().enumerate() {
         let scratch = out.join("scratch").join(&f.name);
         write_frame(&scratch, &f.pixels, Encoding::Unsigned16, &f.keys)?;
@@ -229,7 +238,7 @@ pub fn run(
             std::thread::sleep(Duration::from_millis(40));
             file.write_all(&bytes[half..]).map_err(io(&dest))?;
         }
-        progress("capturing", k + 1, total);
+        progress("capturing", calibration.len() + k + 1, total);
         std::thread::sleep(Duration::from_millis(60));
     }
     // Wait until every frame is recorded and judged.
@@ -237,7 +246,7 @@ pub fn run(
     let done = loop {
         let judged = Store::open(&config.store.path)
             .and_then(|s| s.night_counts(NIGHT))
-            .map(|c| (c.measured + c.errors) as usize)
+            .map(|c| c.frames as usize)
             .unwrap_or(0);
         progress("measuring", judged.min(total), total);
         if judged >= total || Instant::now() > deadline {

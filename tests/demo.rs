@@ -25,8 +25,38 @@ fn the_demo_night_finds_everything_it_holds() {
     let doc: serde_json::Value =
         serde_json::from_slice(&std::fs::read(out.join("reports/night-2026-03-14.json")).unwrap())
             .unwrap();
-    let frames = doc["frames"].as_array().unwrap();
+    let all = doc["frames"].as_array().unwrap();
+    let frames: Vec<&serde_json::Value> = all.iter().filter(|f| f["kind"] == "light").collect();
     assert_eq!(frames.len(), 50);
+    // The evening's calibration set: one frame of each fault found with its own reason,
+    // and not one false warning on the good frames.
+    let calibration: Vec<&serde_json::Value> =
+        all.iter().filter(|f| f["kind"] != "light").collect();
+    assert_eq!(calibration.len(), 22);
+    let faulty = |name: &str| {
+        calibration
+            .iter()
+            .find(|f| f["path"].as_str().unwrap().ends_with(name))
+            .map(|f| f["reasons"].clone())
+            .unwrap()
+    };
+    for (name, reason) in [
+        ("flat-l_006.fits", "flat_level_low"),
+        ("flat-l_007.fits", "flat_level_high"),
+        ("flat-l_008.fits", "flat_departs"),
+        ("dark-120s_006.fits", "dark_temperature_mismatch"),
+        ("dark-120s_007.fits", "dark_exposure_mismatch"),
+        ("dark-120s_008.fits", "light_leak"),
+        ("bias_006.fits", "bias_noise_high"),
+    ] {
+        let reasons = faulty(name);
+        assert!(
+            reasons.as_array().unwrap().iter().any(|r| r == reason),
+            "{name}: {reasons}"
+        );
+    }
+    let flagged = calibration.iter().filter(|f| f["verdict"] != "ok").count();
+    assert_eq!(flagged, 7, "only the faulty frames are flagged");
     let has_reason = |r: &str| {
         frames
             .iter()

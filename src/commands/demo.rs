@@ -93,6 +93,25 @@ pub fn run(out: &std::path::Path, page_port: u16, keep_page: bool) -> Result<Exi
             .collect::<Vec<_>>()
             .join(", ")
     );
+    let cal = &doc.calibration;
+    let flagged: Vec<String> = cal
+        .iter()
+        .filter(|f| f.verdict != subwatch::rules::Verdict::Ok)
+        .flat_map(|f| f.reasons.iter().cloned())
+        .collect();
+    println!(
+        "  calibration: {} darks, {} flats, {} bias; {} flagged ({})",
+        cal.iter().filter(|f| f.kind == "dark").count(),
+        cal.iter().filter(|f| f.kind == "flat").count(),
+        cal.iter().filter(|f| f.kind == "bias").count(),
+        cal.iter()
+            .filter(|f| f.verdict != subwatch::rules::Verdict::Ok)
+            .count(),
+        flagged.join(", ")
+    );
+    for note in &doc.calibration_notes {
+        println!("    {note}");
+    }
     println!("Open:");
     println!("  report  {}", outcome.html.display());
     println!("  frames  {}", outcome.csv.display());

@@ -6,6 +6,7 @@
 
 use ndarray::Array2;
 
+pub mod calibration;
 pub mod night;
 use rand::rngs::StdRng;
 use rand::{Rng, SeedableRng};

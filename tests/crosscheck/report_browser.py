@@ -65,6 +65,7 @@ frame.addEventListener('load', () => {
     wide: wide.slice(0, 10),
     wideCount: wide.length,
     flagged: doc.getElementById('flagged') ? doc.getElementById('flagged').innerText : '',
+    calibration: doc.getElementById('calibration') ? doc.getElementById('calibration').innerText : '',
     look: doc.getElementById('look') ? doc.getElementById('look').innerText : '',
   };
   document.getElementById('result').textContent = JSON.stringify(result);
@@ -106,8 +107,12 @@ def color_samples(shot):
     return blue, red
 
 
-def flagged_frames(doc):
-    return [f for f in doc["frames"] if f["verdict"] in ("warn", "reject")]
+def flagged_frames(doc, kind="light"):
+    """Warned and rejected frames: the lights, or the calibration frames (kind "calibration")."""
+    def wanted(f):
+        light = f.get("kind", "light") == "light"
+        return light if kind == "light" else not light
+    return [f for f in doc["frames"] if f["verdict"] in ("warn", "reject") and wanted(f)]
 
 
 def check_mail(checks, out, doc):
@@ -189,6 +194,11 @@ def main():
                         missing.append(needle[:60])
             checks.record(f"{label}: every warned and rejected frame is listed with each reason", not missing,
                           f"{len(flagged_frames(doc))} frames; missing: {missing[:3]}")
+            cal = flagged_frames(doc, "calibration")
+            missing = [n[:60] for f in cal for n in [os.path.basename(f["path"]), *f["explanations"]]
+                       if n not in r["calibration"]]
+            checks.record(f"{label}: every flagged calibration frame is in the calibration section with each reason",
+                          len(cal) > 0 and not missing, f"{len(cal)} frames; missing: {missing[:3]}")
             kinds = [k for k in ["new_source", "moving", "variable", "color", "transient", "trail"] if k in r["look"]]
             order = [r["look"].find(k) for k in kinds]
             checks.record(f"{label}: what deserves a look leads with new sources, in order",
