@@ -26,11 +26,14 @@ pub enum Catalogues<'a> {
 
 /// Judge already-recorded frames as one night through the night model, group by group
 /// (target and filter; unreadable frames stay in their group).
+/// `calibration_days`: how many nights back earlier calibration frames (the library in
+/// the store) count.
 pub fn analyse_records(
     records: &[FrameRecord],
     rules: &[RuleSpec],
     site: Option<Site>,
     mut store: Catalogues<'_>,
+    calibration_days: u32,
 ) -> Result<NightDocument, StoreError> {
     let mut doc = NightDocument::default();
     let mut groups: BTreeMap<(String, String), Vec<&FrameRecord>> = BTreeMap::new();
@@ -127,7 +130,14 @@ pub fn analyse_records(
     }
     // Darks, flats and bias frames, judged as calibration for these lights.
     let all: Vec<&FrameRecord> = records.iter().collect();
-    let calibration = crate::night::calibration::judge_calibration(&all);
+    let tonight = majority(records.iter().filter_map(|r| r.night.clone()));
+    let earlier = match (&store, &tonight) {
+        (Catalogues::Read(s), Some(n)) => s.earlier_calibration(n, calibration_days)?,
+        (Catalogues::Keep(s), Some(n)) => s.earlier_calibration(n, calibration_days)?,
+        _ => Vec::new(),
+    };
+    let earlier: Vec<&FrameRecord> = earlier.iter().collect();
+    let calibration = crate::night::calibration::judge_calibration(&all, &earlier);
     for c in &calibration.frames {
         let r = all[c.index];
         doc.calibration.push(NightFrameRecord {
@@ -209,5 +219,6 @@ pub fn run_night(
             Some(s) => Catalogues::Keep(s),
             None => Catalogues::None,
         },
+        config.calibration.library_days,
     )
 }

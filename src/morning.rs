@@ -81,6 +81,7 @@ pub fn judge_night(store: &mut Store, c: &Config, night: &str) -> Result<Rejudge
         &c.rule_specs(),
         c.site_position(),
         crate::batch::Catalogues::Keep(store),
+        c.calibration.library_days,
     )?;
     let verdicts: Vec<(String, crate::rules::Verdict, Vec<String>)> = doc
         .frames
@@ -196,14 +197,50 @@ pub fn queue_mail(
             .then(|| format!("cid:{}", name.trim_end_matches(".png")))
     };
     let html = report::html(&p.summary, &cid);
+    // The night's VOEvent documents: written now if the daemon has not yet, and attached
+    // when asked for.
+    let mut files = vec![crate::mail::Attached {
+        name: format!("night-{}.csv", p.summary.night),
+        content_type: "text/csv; charset=utf-8".into(),
+        bytes: report::csv(&p.doc).into_bytes(),
+    }];
+    if c.voevent.folder.is_some() {
+        if let Err(e) = crate::events::write_voevents(&p.doc, c, &p.summary.night, now_unix) {
+            tracing::warn!("{e}");
+        }
+    }
+    if let (true, Some(folder)) = (c.voevent.attach, &c.voevent.folder) {
+        let prefix = format!("{}_", p.summary.night);
+        let mut names: Vec<std::path::PathBuf> = std::fs::read_dir(folder)
+            .map(|d| {
+                d.flatten()
+                    .map(|e| e.path())
+                    .filter(|p| {
+                        p.extension().is_some_and(|x| x == "xml")
+                            && p.file_name()
+                                .is_some_and(|n| n.to_string_lossy().starts_with(&prefix))
+                    })
+                    .collect()
+            })
+            .unwrap_or_default();
+        names.sort();
+        for path in names {
+            if let Ok(bytes) = std::fs::read(&path) {
+                files.push(crate::mail::Attached {
+                    name: report::file_name(&path.to_string_lossy()),
+                    content_type: "application/xml".into(),
+                    bytes,
+                });
+            }
+        }
+    }
     let composed = compose(
         &settings,
         &report::subject(&p.summary),
         &report::text(&p.summary, false),
         &html,
         &inline,
-        &format!("night-{}.csv", p.summary.night),
-        &report::csv(&p.doc),
+        &files,
     )?;
     Ok(crate::outbox::queue(store, composed, now_unix)?)
 }

@@ -18,6 +18,14 @@ impl Config {
                 errors.push(format!("watch.folders: {} is not a folder", f.display()));
             }
         }
+        if let Some(lib) = &self.calibration.library {
+            if !lib.is_dir() {
+                errors.push(format!(
+                    "calibration.library: {} is not a folder",
+                    lib.display()
+                ));
+            }
+        }
         let store_dir = self.store.path.parent().unwrap_or(Path::new("."));
         if !store_dir.is_dir() {
             errors.push(format!(

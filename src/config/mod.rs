@@ -244,6 +244,25 @@ pub struct ReportConfig {
     pub folder: Option<PathBuf>,
 }
 
+/// Calibration frames kept from earlier nights.
+#[derive(Debug, Clone)]
+pub struct CalibrationConfig {
+    /// A folder of darks, flats and bias frames (or masters) with IMAGETYP, watched with
+    /// the capture folders; each is recorded under the night its DATE-OBS gives.
+    pub library: Option<PathBuf>,
+    /// How many nights back earlier calibration frames count.
+    pub library_days: u32,
+}
+
+impl Default for CalibrationConfig {
+    fn default() -> Self {
+        Self {
+            library: None,
+            library_days: 60,
+        }
+    }
+}
+
 /// VOEvent documents of anomalies: off unless `folder` is set.
 #[derive(Debug, Clone)]
 pub struct VoEventConfig {
@@ -253,6 +272,8 @@ pub struct VoEventConfig {
     pub authority: Option<String>,
     /// The observatory's name, for the documents' Who.
     pub author: Option<String>,
+    /// Attach the night's documents to the morning mail.
+    pub attach: bool,
 }
 
 impl Default for VoEventConfig {
@@ -266,6 +287,7 @@ impl Default for VoEventConfig {
             ],
             authority: None,
             author: None,
+            attach: false,
         }
     }
 }
@@ -318,6 +340,7 @@ pub struct Config {
     pub report: ReportConfig,
     pub web: WebConfig,
     pub voevent: VoEventConfig,
+    pub calibration: CalibrationConfig,
     pub rules: Vec<RuleSpec>,
     /// The file this configuration was read from.
     pub source: Option<PathBuf>,

@@ -200,9 +200,19 @@ impl<'a> Reader<'a> {
     }
 }
 
-const SECTIONS: [&str; 11] = [
-    "watch", "store", "site", "optics", "measure", "actions", "mail", "alerts", "report", "web",
+const SECTIONS: [&str; 12] = [
+    "watch",
+    "store",
+    "site",
+    "optics",
+    "measure",
+    "actions",
+    "mail",
+    "alerts",
+    "report",
+    "web",
     "voevent",
+    "calibration",
 ];
 
 /// A number from an integer or a float.
@@ -594,6 +604,17 @@ pub fn parse(text: &str, base: &Path) -> Result<Config, Vec<ConfigProblem>> {
                 })
         }),
         author: r.text("voevent", "author", "the observatory's name (text)"),
+        attach: r.flag("voevent", "attach", false),
+    };
+    let calibration = CalibrationConfig {
+        library: r.path("calibration", "library"),
+        library_days: r.whole(
+            "calibration",
+            "library_days",
+            CalibrationConfig::default().library_days as u64,
+            (0, 3650),
+            "a whole number of nights from 0 to 3650",
+        ) as u32,
     };
     let rules = read_rules(&mut r);
     r.unknown();
@@ -610,6 +631,7 @@ pub fn parse(text: &str, base: &Path) -> Result<Config, Vec<ConfigProblem>> {
         report,
         web,
         voevent,
+        calibration,
         rules,
         source: None,
     };

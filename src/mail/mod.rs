@@ -161,32 +161,47 @@ pub struct Inline {
     pub png: Vec<u8>,
 }
 
-/// Compose the summary mail. The subject must already be one line.
+/// A file attached to a message as it is (a VOEvent document).
+#[derive(Debug, Clone)]
+pub struct Attached {
+    pub name: String,
+    pub content_type: String,
+    pub bytes: Vec<u8>,
+}
+
+/// Compose the summary mail: the text and HTML parts (images inline by Content-ID), then
+/// the files (the night's CSV, VOEvent documents). The subject must already be one line.
 pub fn compose(
     s: &MailSettings,
     subject: &str,
     text: &str,
     html: &str,
     inline: &[Inline],
-    csv_name: &str,
-    csv: &str,
+    files: &[Attached],
 ) -> Result<Composed, MailError> {
     let png = ContentType::parse("image/png").map_err(|e| MailError::Compose(e.to_string()))?;
-    let csv_type = ContentType::parse("text/csv; charset=utf-8")
-        .map_err(|e| MailError::Compose(e.to_string()))?;
     let mut related = MultiPart::related().singlepart(SinglePart::html(html.to_string()));
     for i in inline {
         related = related.singlepart(
             Attachment::new_inline(i.content_id.clone()).body(i.png.clone(), png.clone()),
         );
     }
-    let body = MultiPart::mixed()
-        .multipart(
-            MultiPart::alternative()
-                .singlepart(SinglePart::plain(text.to_string()))
-                .multipart(related),
-        )
-        .singlepart(Attachment::new(csv_name.to_string()).body(csv.to_string(), csv_type));
+    let mut body = MultiPart::mixed().multipart(
+        MultiPart::alternative()
+            .singlepart(SinglePart::plain(text.to_string()))
+            .multipart(related),
+    );
+    for f in files {
+        let kind = ContentType::parse(&f.content_type)
+            .map_err(|e| MailError::Compose(format!("{}: {e}", f.name)))?;
+        // Text stays text (quoted-printable where needed); anything else as it is.
+        body = match std::str::from_utf8(&f.bytes) {
+            Ok(text) => {
+                body.singlepart(Attachment::new(f.name.clone()).body(text.to_string(), kind))
+            }
+            Err(_) => body.singlepart(Attachment::new(f.name.clone()).body(f.bytes.clone(), kind)),
+        };
+    }
     finish(s, subject, body)
 }
 

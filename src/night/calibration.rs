@@ -133,8 +133,10 @@ fn same_settings(a: &FrameRecord, b: &FrameRecord) -> bool {
 }
 
 /// Judge the night's calibration frames among `records` (lights included, for the
-/// darks' exposure and temperature and the matching check).
-pub fn judge_calibration(records: &[&FrameRecord]) -> CalibrationReport {
+/// darks' exposure and temperature and the matching check). `earlier`: calibration
+/// frames of earlier nights (the library), for the darks' hot pixels and for lights
+/// without calibration of their own tonight.
+pub fn judge_calibration(records: &[&FrameRecord], earlier: &[&FrameRecord]) -> CalibrationReport {
     let lights: Vec<&FrameRecord> = records
         .iter()
         .copied()
@@ -307,6 +309,7 @@ pub fn judge_calibration(records: &[&FrameRecord]) -> CalibrationReport {
             }
             if kind == "dark" {
                 dark_against_lights(r, &lights, &mut v);
+                dark_against_earlier(r, earlier, &mut v);
             }
             out.frames.push(CalibrationJudged {
                 index: i,
@@ -316,8 +319,55 @@ pub fn judge_calibration(records: &[&FrameRecord]) -> CalibrationReport {
         }
     }
     out.frames.sort_by_key(|f| f.index);
-    out.notes = missing(records, &lights, &out.frames);
+    out.notes = missing(records, &lights, &out.frames, earlier);
     out
+}
+
+/// Nights between two night labels ("YYYY-MM-DD").
+fn nights_between(earlier: &str, later: &str) -> Option<i64> {
+    let d = |s: &str| chrono::NaiveDate::parse_from_str(s, "%Y-%m-%d").ok();
+    Some((d(later)? - d(earlier)?).num_days())
+}
+
+/// A dark's hot pixels against the earlier nights' darks of the same exposure and
+/// temperature: a sensor ageing, or cooling that failed tonight.
+fn dark_against_earlier(dark: &FrameRecord, earlier: &[&FrameRecord], v: &mut Verdicts) {
+    let Some(c) = &dark.calibration else {
+        return;
+    };
+    if v.reasons.iter().any(|r| r == "dark_hot_pixels") {
+        return;
+    }
+    let exposure = |r: &FrameRecord| header_f(r, |h| h.exposure_s);
+    let temp = |r: &FrameRecord| header_f(r, |h| h.ccd_temp_c);
+    let counts: Vec<f64> = earlier
+        .iter()
+        .filter(|e| kind_of(e) == Some("dark") && same_settings(e, dark))
+        .filter(|e| match (exposure(e), exposure(dark)) {
+            (Some(a), Some(b)) => (a - b).abs() <= DARK_EXPOSURE_TOLERANCE * a.max(b),
+            _ => false,
+        })
+        .filter(|e| match (temp(e), temp(dark)) {
+            (Some(a), Some(b)) => (a - b).abs() <= DARK_TEMPERATURE_TOLERANCE_C,
+            _ => true,
+        })
+        .filter_map(|e| e.calibration.as_ref().map(|c| c.hot_pixel_count as f64))
+        .collect();
+    let n = counts.len();
+    let Some(h) = median(counts) else {
+        return;
+    };
+    let count = c.hot_pixel_count as f64;
+    if count > HOT_PIXELS_RATIO * h && count - h >= HOT_PIXELS_MIN_EXTRA as f64 {
+        v.add(
+            Verdict::Warn,
+            "dark_hot_pixels",
+            format!(
+                "{} hot pixels against the median {h:.0} of {n} earlier nights' darks of this exposure and temperature (warn above {HOT_PIXELS_RATIO} ×): a sensor ageing, or cooling that failed?",
+                c.hot_pixel_count
+            ),
+        );
+    }
 }
 
 /// A dark's exposure and temperature against the night's lights.
@@ -376,7 +426,28 @@ fn missing(
     records: &[&FrameRecord],
     lights: &[&FrameRecord],
     judged: &[CalibrationJudged],
+    earlier: &[&FrameRecord],
 ) -> Vec<String> {
+    let tonight = lights
+        .iter()
+        .find_map(|l| l.night.clone())
+        .unwrap_or_default();
+    // The newest earlier frames of a kind that fit, as words: "5 from 2026-03-10, 4
+    // nights before".
+    let from_earlier = |kind: &str, fits: &dyn Fn(&FrameRecord) -> bool| -> Option<String> {
+        let found: Vec<&&FrameRecord> = earlier
+            .iter()
+            .filter(|e| kind_of(e) == Some(kind) && fits(e))
+            .collect();
+        let night = found.iter().filter_map(|e| e.night.clone()).max()?;
+        let n = found
+            .iter()
+            .filter(|e| e.night.as_deref() == Some(&night))
+            .count();
+        let age = nights_between(&night, &tonight)
+            .map_or(String::new(), |d| format!(", {d} night(s) before"));
+        Some(format!("{n} from {night}{age}"))
+    };
     let usable = |kind: &str| -> Vec<&FrameRecord> {
         judged
             .iter()
@@ -435,10 +506,22 @@ fn missing(
                     && same_settings(d, first)
             });
             if !ok {
+                let fits = |d: &FrameRecord| {
+                    exposure(d)
+                        .is_some_and(|x| (x - e).abs() <= DARK_EXPOSURE_TOLERANCE * x.max(*e))
+                        && match (temp(d), t) {
+                            (Some(a), Some(b)) => (a - b).abs() <= DARK_TEMPERATURE_TOLERANCE_C,
+                            _ => true,
+                        }
+                        && same_settings(d, first)
+                };
                 notes.push(format!(
-                    "{heading}: no usable darks of {e:.0} s{} tonight for its {} light(s)",
+                    "{heading}: no usable darks of {e:.0} s{} tonight for its {} light(s){}",
                     t.map_or(String::new(), |t| format!(" at {t:.0} °C")),
-                    frames.len()
+                    frames.len(),
+                    from_earlier("dark", &fits).map_or(String::new(), |w| format!(
+                        "; earlier darks that match: {w}"
+                    ))
                 ));
             }
         }
@@ -446,13 +529,23 @@ fn missing(
             .iter()
             .any(|f| f.filter == *filter && same_settings(f, first))
         {
+            let fits = |f: &FrameRecord| f.filter == *filter && same_settings(f, first);
             notes.push(format!(
-                "{heading}: no usable flats for filter {} tonight",
-                filter.as_deref().unwrap_or("(none)")
+                "{heading}: no usable flats for filter {} tonight{}",
+                filter.as_deref().unwrap_or("(none)"),
+                from_earlier("flat", &fits).map_or(String::new(), |w| format!(
+                    "; earlier flats that match: {w}"
+                ))
             ));
         }
         if !bias.iter().any(|b| same_settings(b, first)) {
-            notes.push(format!("{heading}: no usable bias frames tonight"));
+            let fits = |b: &FrameRecord| same_settings(b, first);
+            notes.push(format!(
+                "{heading}: no usable bias frames tonight{}",
+                from_earlier("bias", &fits).map_or(String::new(), |w| format!(
+                    "; earlier bias frames that match: {w}"
+                ))
+            ));
         }
     }
     notes
@@ -542,7 +635,7 @@ mod tests {
             ));
         }
         let all: Vec<&FrameRecord> = rs.iter().collect();
-        let clean = judge_calibration(&all);
+        let clean = judge_calibration(&all, &[]);
         assert_eq!(clean.frames.len(), 15);
         assert!(
             clean
@@ -578,7 +671,7 @@ mod tests {
         leak.source_count = 12;
         rs.push(record("dark", "leak", 120.0, -10.0, leak));
         let all: Vec<&FrameRecord> = rs.iter().collect();
-        let r = judge_calibration(&all);
+        let r = judge_calibration(&all, &[]);
         let reasons = |name: &str| -> Vec<String> {
             let f = r
                 .frames
@@ -602,13 +695,61 @@ mod tests {
     }
 
     #[test]
+    fn earlier_nights_stand_in_for_missing_calibration_and_judge_hot_pixels() {
+        let mut light = record("light", "l1", 120.0, -10.0, stats(0.0, 0.0));
+        light.night = Some("2026-03-14".into());
+        let mut tonight_dark = stats(1000.0, 12.0);
+        tonight_dark.hot_pixel_count = 400;
+        let mut dark = record("dark", "d1", 120.0, -10.0, tonight_dark);
+        dark.night = Some("2026-03-14".into());
+        let mut earlier = Vec::new();
+        for (k, night) in ["2026-03-10", "2026-03-10", "2026-03-02"]
+            .iter()
+            .enumerate()
+        {
+            let mut s = stats(1000.0, 12.0);
+            s.hot_pixel_count = 40 + k;
+            let mut e = record("dark", &format!("e{k}"), 120.0, -10.3, s);
+            e.night = Some(night.to_string());
+            earlier.push(e);
+            let mut f = record("flat", &format!("f{k}"), 2.0, -10.0, stats(25000.0, 150.0));
+            f.night = Some(night.to_string());
+            earlier.push(f);
+        }
+        let rs = [light, dark];
+        let all: Vec<&FrameRecord> = rs.iter().collect();
+        let before: Vec<&FrameRecord> = earlier.iter().collect();
+        let r = judge_calibration(&all, &before);
+        let d = r.frames.iter().find(|f| f.kind == "dark").unwrap();
+        assert_eq!(d.judgement.reasons, ["dark_hot_pixels"], "{r:?}");
+        assert!(
+            d.judgement.explanations[0].contains("3 earlier nights' darks"),
+            "{r:?}"
+        );
+        // Tonight's dark is only warned, so it stands; the flats come from 4 nights before.
+        assert!(
+            r.notes
+                .iter()
+                .any(|n| n
+                    .contains("earlier flats that match: 2 from 2026-03-10, 4 night(s) before")),
+            "{:?}",
+            r.notes
+        );
+        assert!(
+            r.notes.iter().all(|n| !n.contains("darks")),
+            "{:?}",
+            r.notes
+        );
+    }
+
+    #[test]
     fn missing_calibration_is_named_per_group_of_lights() {
         let rs = [
             record("light", "l1", 300.0, -10.0, stats(0.0, 0.0)),
             record("dark", "d1", 120.0, -10.0, stats(1000.0, 12.0)),
         ];
         let all: Vec<&FrameRecord> = rs.iter().collect();
-        let notes = judge_calibration(&all).notes;
+        let notes = judge_calibration(&all, &[]).notes;
         assert_eq!(notes.len(), 3, "{notes:?}");
         assert!(
             notes[0].contains("no usable darks of 300 s at -10 °C"),

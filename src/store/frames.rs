@@ -331,6 +331,23 @@ impl Store {
         Ok(out)
     }
 
+    /// Calibration frames (darks, flats, bias, with their measurements) of the `days`
+    /// nights before `night`, newest first: the library a night's lights can fall back on.
+    pub fn earlier_calibration(
+        &self,
+        night: &str,
+        days: u32,
+    ) -> Result<Vec<FrameRecord>, StoreError> {
+        let rows = self.frame_rows(
+            "WHERE status = 'skipped' AND calibration_json IS NOT NULL AND night < ?1
+               AND night >= date(?1, '-' || ?2 || ' days')",
+            params![night, days],
+        )?;
+        let mut out: Vec<FrameRecord> = rows.into_iter().map(|(_, r, _)| r).collect();
+        out.reverse();
+        Ok(out)
+    }
+
     /// The frames of one night, target and filter recorded so far, without their stars
     /// (for the live verdict): (id, record, placement on the group's reference).
     pub fn group_records(

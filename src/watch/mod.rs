@@ -141,6 +141,13 @@ async fn daemon(
     stop: Arc<AtomicBool>,
     wall: Arc<dyn Clock>,
 ) -> Result<(), WatchError> {
+    // The calibration library is watched as a capture folder: its frames are recorded
+    // under the nights their DATE-OBS gives, for later nights to fall back on.
+    if let Some(library) = config.calibration.library.clone() {
+        if !config.watch.folders.contains(&library) {
+            config.watch.folders.push(library);
+        }
+    }
     // One spelling per file: events, scans and the store all see canonical paths.
     for folder in config.watch.folders.iter_mut() {
         *folder = std::fs::canonicalize(&*folder).map_err(|e| WatchError::Notify {

@@ -407,6 +407,7 @@ fn analyse(
         &config.rule_specs(),
         config.site_position(),
         crate::batch::Catalogues::Read(store),
+        config.calibration.library_days,
     )?;
     let settings = crate::morning::settings(config);
     let summary = report::summarise(night, &doc, settings);

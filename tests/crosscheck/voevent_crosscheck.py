@@ -112,6 +112,70 @@ def main() -> int:
             len(glob.glob(os.path.join(events, "*.xml"))) == len(files) and again.returncode in (0, 1),
             again.stderr[-200:],
         )
+        # Attached to the morning mail on request: the daemon records the night, writes
+        # the documents, and `report --send` (no SMTP server: an .eml file) attaches them.
+        live = os.path.join(work, "live-events")
+        reports = os.path.join(work, "reports")
+        cfg2 = os.path.join(work, "live.toml")
+        with open(cfg2, "w") as f:
+            f.write(
+                f'[watch]\nfolders = ["{frames}"]\nsettle_seconds = 0.2\nchecks_seconds = 2\n'
+                f'[store]\npath = "{work}/live.db"\n[report]\nfolder = "{reports}"\n'
+                '[mail]\nfrom = "subwatch@kestrel-ridge.example"\nto = ["observer@kestrel-ridge.example"]\n'
+                f'[voevent]\nfolder = "{live}"\nkinds = ["moving", "transient", "variable", "new_source"]\n'
+                'authority = "ivo://kestrel-ridge.example/subwatch"\nattach = true\n'
+            )
+        import sqlite3
+        import time
+        import signal
+        import email
+        from email import policy
+
+        daemon = subprocess.Popen([binary, "watch", "--config", cfg2], stderr=subprocess.DEVNULL)
+        n_frames = len(glob.glob(os.path.join(frames, "*.fits")))
+        deadline = time.time() + 120
+        n = 0
+        while time.time() < deadline:
+            try:
+                n = sqlite3.connect(f"{work}/live.db").execute(
+                    "SELECT COUNT(*) FROM frames WHERE verdict IS NOT NULL"
+                ).fetchone()[0]
+            except sqlite3.Error:
+                n = 0
+            if n >= n_frames and len(glob.glob(os.path.join(live, "*.xml"))) > 0:
+                break
+            time.sleep(0.2)
+        time.sleep(3)
+        daemon.send_signal(signal.SIGTERM)
+        daemon.wait(timeout=60)
+        written = sorted(os.path.basename(p) for p in glob.glob(os.path.join(live, "*.xml")))
+        checks.record(
+            "the daemon writes the documents as it finds the anomalies",
+            n >= n_frames and len(written) > 0,
+            f"{n} of {n_frames} frames judged, {len(written)} documents",
+        )
+        r = subprocess.run(
+            [binary, "report", "--config", cfg2, "--night", "2026-03-14", "--send"],
+            capture_output=True, text=True, timeout=600,
+        )
+        emls = sorted(glob.glob(os.path.join(reports, "*.eml")))
+        attached = []
+        if emls:
+            with open(emls[-1], "rb") as f:
+                msg = email.message_from_bytes(f.read(), policy=policy.default)
+            for part in msg.iter_attachments():
+                if part.get_filename() and part.get_filename().endswith(".xml"):
+                    attached.append(part.get_filename())
+                    body = part.get_content()
+                    raw = body if isinstance(body, bytes) else body.encode()
+                    ok = voeventparse.valid_as_v2_0(voeventparse.loads(raw))
+                    checks.record(f"mail attachment {part.get_filename()} is a valid VOEvent (Python's email parser, voevent-parse)", ok)
+        all_now = sorted(os.path.basename(p) for p in glob.glob(os.path.join(live, "*.xml")))
+        checks.record(
+            "report --send attaches every document of the night (attach = true)",
+            r.returncode == 0 and attached and sorted(attached) == all_now,
+            f"exit {r.returncode}; attached {len(attached)} of {len(all_now)}; {r.stderr[-200:]}",
+        )
     finally:
         shutil.rmtree(work, ignore_errors=True)
     return checks.finish()
