@@ -26,14 +26,14 @@ pub enum Catalogues<'a> {
 
 /// Judge already-recorded frames as one night through the night model, group by group
 /// (target and filter; unreadable frames stay in their group).
-/// `calibration_days`: how many nights back earlier calibration frames (the library in
-/// the store) count.
+/// `calibration`: how many nights back earlier calibration frames (the library in the
+/// store) count, and the flats' level band.
 pub fn analyse_records(
     records: &[FrameRecord],
     rules: &[RuleSpec],
     site: Option<Site>,
     mut store: Catalogues<'_>,
-    calibration_days: u32,
+    calibration: &crate::night::calibration::CalibrationSettings,
 ) -> Result<NightDocument, StoreError> {
     let mut doc = NightDocument::default();
     let mut groups: BTreeMap<(String, String), Vec<&FrameRecord>> = BTreeMap::new();
@@ -132,13 +132,13 @@ pub fn analyse_records(
     let all: Vec<&FrameRecord> = records.iter().collect();
     let tonight = majority(records.iter().filter_map(|r| r.night.clone()));
     let earlier = match (&store, &tonight) {
-        (Catalogues::Read(s), Some(n)) => s.earlier_calibration(n, calibration_days)?,
-        (Catalogues::Keep(s), Some(n)) => s.earlier_calibration(n, calibration_days)?,
+        (Catalogues::Read(s), Some(n)) => s.earlier_calibration(n, calibration.library_days)?,
+        (Catalogues::Keep(s), Some(n)) => s.earlier_calibration(n, calibration.library_days)?,
         _ => Vec::new(),
     };
     let earlier: Vec<&FrameRecord> = earlier.iter().collect();
-    let calibration = crate::night::calibration::judge_calibration(&all, &earlier);
-    for c in &calibration.frames {
+    let judged = crate::night::calibration::judge_calibration(&all, &earlier, calibration);
+    for c in &judged.frames {
         let r = all[c.index];
         doc.calibration.push(NightFrameRecord {
             path: r.identity.path.clone(),
@@ -166,7 +166,7 @@ pub fn analyse_records(
             instrument: None,
         });
     }
-    doc.calibration_notes = calibration.notes;
+    doc.calibration_notes = judged.notes;
     doc.frames.sort_by(|a, b| {
         a.time_unix
             .unwrap_or(0.0)
@@ -219,6 +219,6 @@ pub fn run_night(
             Some(s) => Catalogues::Keep(s),
             None => Catalogues::None,
         },
-        config.calibration.library_days,
+        &config.calibration.settings,
     )
 }

@@ -198,7 +198,7 @@ pub fn run(
                 &[],
                 config.site_position(),
                 crate::batch::Catalogues::Keep(&mut store),
-                config.calibration.library_days,
+                &config.calibration.settings,
             )?;
         }
     }

@@ -1,5 +1,6 @@
 //! VOEvent documents written into `[voevent] folder`: one per anomaly of the chosen
-//! kinds that has a sky position, named by the night, the kind and the first detection,
+//! kinds that has a sky position, with its cutout (PNG) beside it under the same name,
+//! named by the night, the kind and the first detection,
 //! so the same anomaly found again (a later analysis of the same night) is written once.
 //! Each is written beside its final name and renamed into place, never over a file.
 
@@ -42,6 +43,11 @@ pub fn write_voevents(
     };
     let mut written = Vec::new();
     let now = iso_utc(now_unix).unwrap_or_default();
+    // Cutouts are read from the frames by a worker, as every frame is.
+    let reader = crate::reader::Reader::from_config(&c.measure);
+    let limits = crate::frame::DecodeLimits {
+        max_pixels: c.measure.max_pixels,
+    };
     for a in &doc.anomalies {
         if !c.voevent.kinds.contains(&a.kind) || a.detail.is_cosmic_ray() {
             continue;
@@ -59,6 +65,24 @@ pub fn write_voevents(
             continue;
         }
         let frame = doc.frames.iter().find(|f| f.path == first.path);
+        // The cutout beside the document, when its frame can still be read.
+        let cutout_name = format!("{night}_{local_id}.png");
+        let cutout = reader
+            .cutout(
+                std::path::Path::new(&first.path),
+                first.x,
+                first.y,
+                16,
+                limits,
+            )
+            .and_then(|png| {
+                std::fs::create_dir_all(folder).ok()?;
+                let p = folder.join(&cutout_name);
+                let part = p.with_extension("png.part");
+                std::fs::write(&part, png).ok()?;
+                std::fs::rename(&part, &p).ok()?;
+                Some(cutout_name.clone())
+            });
         // A position from a header WCS is good to about a pixel (common practice); 2″
         // when the plate scale is unknown.
         let scale = frame
@@ -73,7 +97,7 @@ pub fn write_voevents(
             error_deg: scale / 3600.0,
             instrument: frame.and_then(|f| f.instrument.as_deref()),
             telescope: None,
-            cutout: None,
+            cutout: cutout.as_deref(),
             night,
             local_id: &local_id,
         };

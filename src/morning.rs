@@ -81,7 +81,7 @@ pub fn judge_night(store: &mut Store, c: &Config, night: &str) -> Result<Rejudge
         &c.rule_specs(),
         c.site_position(),
         crate::batch::Catalogues::Keep(store),
-        c.calibration.library_days,
+        &c.calibration.settings,
     )?;
     let verdicts: Vec<(String, crate::rules::Verdict, Vec<String>)> = doc
         .frames

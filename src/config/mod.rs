@@ -245,22 +245,13 @@ pub struct ReportConfig {
 }
 
 /// Calibration frames kept from earlier nights.
-#[derive(Debug, Clone)]
+#[derive(Debug, Clone, Default)]
 pub struct CalibrationConfig {
     /// A folder of darks, flats and bias frames (or masters) with IMAGETYP, watched with
     /// the capture folders; each is recorded under the night its DATE-OBS gives.
     pub library: Option<PathBuf>,
-    /// How many nights back earlier calibration frames count.
-    pub library_days: u32,
-}
-
-impl Default for CalibrationConfig {
-    fn default() -> Self {
-        Self {
-            library: None,
-            library_days: 60,
-        }
-    }
+    /// How many nights back earlier calibration frames count, and the flats' level band.
+    pub settings: crate::night::calibration::CalibrationSettings,
 }
 
 /// VOEvent documents of anomalies: off unless `folder` is set.

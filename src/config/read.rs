@@ -606,15 +606,41 @@ pub fn parse(text: &str, base: &Path) -> Result<Config, Vec<ConfigProblem>> {
         author: r.text("voevent", "author", "the observatory's name (text)"),
         attach: r.flag("voevent", "attach", false),
     };
+    let cal_default = crate::night::calibration::CalibrationSettings::default();
+    let band = |v: &toml::Value| -> Result<(f64, f64), String> {
+        let expected = "two fractions of full scale, low then high, such as [0.25, 0.65]";
+        let list = v.as_array().ok_or_else(|| expected.to_string())?;
+        match list.as_slice() {
+            [a, b] => match (number_of(a), number_of(b)) {
+                (Some(a), Some(b)) if 0.0 <= a && a < b && b <= 1.0 => Ok((a, b)),
+                _ => Err(expected.to_string()),
+            },
+            _ => Err(expected.to_string()),
+        }
+    };
     let calibration = CalibrationConfig {
         library: r.path("calibration", "library"),
-        library_days: r.whole(
-            "calibration",
-            "library_days",
-            CalibrationConfig::default().library_days as u64,
-            (0, 3650),
-            "a whole number of nights from 0 to 3650",
-        ) as u32,
+        settings: crate::night::calibration::CalibrationSettings {
+            library_days: r.whole(
+                "calibration",
+                "library_days",
+                cal_default.library_days as u64,
+                (0, 3650),
+                "a whole number of nights from 0 to 3650",
+            ) as u32,
+            flat_level_warn: r.read(
+                "calibration",
+                "flat_level_warn",
+                cal_default.flat_level_warn,
+                band,
+            ),
+            flat_level_reject: r.read(
+                "calibration",
+                "flat_level_reject",
+                cal_default.flat_level_reject,
+                band,
+            ),
+        },
     };
     let rules = read_rules(&mut r);
     r.unknown();
@@ -780,6 +806,20 @@ impl Config {
                 "the summary would go nowhere: [mail] to is empty".into(),
             );
         }
+        let (warn, reject) = (
+            self.calibration.settings.flat_level_warn,
+            self.calibration.settings.flat_level_reject,
+        );
+        if reject.0 > warn.0 || warn.1 > reject.1 {
+            bad(
+                "calibration",
+                "flat_level_reject",
+                format!(
+                    "[{}, {}] must hold flat_level_warn [{}, {}]: a flat is rejected only beyond where it warns",
+                    reject.0, reject.1, warn.0, warn.1
+                ),
+            );
+        }
         if self.voevent.folder.is_some() && self.voevent.authority.is_none() {
             bad(
                 "voevent",
@@ -887,6 +927,23 @@ mod tests {
                 .unwrap();
         assert_eq!(c.voevent.kinds, vec![AnomalyKind::Moving]);
         assert!(read("authority = \"ivo://k.example\"\nkinds = [\"comet\"]\n").is_err());
+    }
+
+    #[test]
+    fn the_flats_level_band_is_the_users_to_set() {
+        let base = "[watch]\nfolders = [\"/tmp\"]\n[calibration]\n";
+        let read = |more: &str| parse(&format!("{base}{more}"), Path::new("/"));
+        let c = read("flat_level_warn = [0.3, 0.6]\nflat_level_reject = [0.05, 0.9]\n").unwrap();
+        assert_eq!(c.calibration.settings.flat_level_warn, (0.3, 0.6));
+        assert_eq!(c.calibration.settings.flat_level_reject, (0.05, 0.9));
+        assert_eq!(
+            read("flat_level_warn = [0.7, 0.6]\n").unwrap_err()[0].key,
+            "calibration.flat_level_warn"
+        );
+        assert_eq!(
+            read("flat_level_reject = [0.3, 0.9]\n").unwrap_err()[0].key,
+            "calibration.flat_level_reject"
+        );
     }
 
     #[test]

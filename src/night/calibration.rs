@@ -34,6 +34,25 @@ pub const HOT_PIXELS_MIN_EXTRA: usize = 20;
 pub const LEAK_SOURCES: usize = 3;
 pub const LEAK_GRADIENT_SIGMAS: f64 = 30.0;
 
+/// What the user may set: how far back earlier nights count, and the flats' level band
+/// (the linear range differs between cameras).
+#[derive(Debug, Clone, PartialEq)]
+pub struct CalibrationSettings {
+    pub library_days: u32,
+    pub flat_level_warn: (f64, f64),
+    pub flat_level_reject: (f64, f64),
+}
+
+impl Default for CalibrationSettings {
+    fn default() -> Self {
+        Self {
+            library_days: 60,
+            flat_level_warn: FLAT_LEVEL_WARN,
+            flat_level_reject: FLAT_LEVEL_REJECT,
+        }
+    }
+}
+
 /// The judgement of one calibration frame.
 #[derive(Debug, Clone)]
 pub struct CalibrationJudged {
@@ -136,7 +155,12 @@ fn same_settings(a: &FrameRecord, b: &FrameRecord) -> bool {
 /// darks' exposure and temperature and the matching check). `earlier`: calibration
 /// frames of earlier nights (the library), for the darks' hot pixels and for lights
 /// without calibration of their own tonight.
-pub fn judge_calibration(records: &[&FrameRecord], earlier: &[&FrameRecord]) -> CalibrationReport {
+pub fn judge_calibration(
+    records: &[&FrameRecord],
+    earlier: &[&FrameRecord],
+    settings: &CalibrationSettings,
+) -> CalibrationReport {
+    let (level_warn, level_reject) = (settings.flat_level_warn, settings.flat_level_reject);
     let lights: Vec<&FrameRecord> = records
         .iter()
         .copied()
@@ -175,23 +199,23 @@ pub fn judge_calibration(records: &[&FrameRecord], earlier: &[&FrameRecord]) -> 
                     let pct = 100.0 * level;
                     let band = format!(
                         "(warn outside {:.0}–{:.0} %, reject below {:.0} % or above {:.0} %)",
-                        100.0 * FLAT_LEVEL_WARN.0,
-                        100.0 * FLAT_LEVEL_WARN.1,
-                        100.0 * FLAT_LEVEL_REJECT.0,
-                        100.0 * FLAT_LEVEL_REJECT.1
+                        100.0 * level_warn.0,
+                        100.0 * level_warn.1,
+                        100.0 * level_reject.0,
+                        100.0 * level_reject.1
                     );
                     let words = format!(
                         "level {:.0} ADU is {pct:.0} % of full scale {:.0} ADU {band}",
                         c.median_adu,
                         c.full_scale_adu.unwrap_or(f64::NAN)
                     );
-                    if level < FLAT_LEVEL_REJECT.0 {
+                    if level < level_reject.0 {
                         v.add(Verdict::Reject, "flat_level_low", words);
-                    } else if level > FLAT_LEVEL_REJECT.1 {
+                    } else if level > level_reject.1 {
                         v.add(Verdict::Reject, "flat_level_high", words);
-                    } else if level < FLAT_LEVEL_WARN.0 {
+                    } else if level < level_warn.0 {
                         v.add(Verdict::Warn, "flat_level_low", words);
-                    } else if level > FLAT_LEVEL_WARN.1 {
+                    } else if level > level_warn.1 {
                         v.add(Verdict::Warn, "flat_level_high", words);
                     }
                 }
@@ -635,7 +659,7 @@ mod tests {
             ));
         }
         let all: Vec<&FrameRecord> = rs.iter().collect();
-        let clean = judge_calibration(&all, &[]);
+        let clean = judge_calibration(&all, &[], &CalibrationSettings::default());
         assert_eq!(clean.frames.len(), 15);
         assert!(
             clean
@@ -671,7 +695,7 @@ mod tests {
         leak.source_count = 12;
         rs.push(record("dark", "leak", 120.0, -10.0, leak));
         let all: Vec<&FrameRecord> = rs.iter().collect();
-        let r = judge_calibration(&all, &[]);
+        let r = judge_calibration(&all, &[], &CalibrationSettings::default());
         let reasons = |name: &str| -> Vec<String> {
             let f = r
                 .frames
@@ -719,7 +743,7 @@ mod tests {
         let rs = [light, dark];
         let all: Vec<&FrameRecord> = rs.iter().collect();
         let before: Vec<&FrameRecord> = earlier.iter().collect();
-        let r = judge_calibration(&all, &before);
+        let r = judge_calibration(&all, &before, &CalibrationSettings::default());
         let d = r.frames.iter().find(|f| f.kind == "dark").unwrap();
         assert_eq!(d.judgement.reasons, ["dark_hot_pixels"], "{r:?}");
         assert!(
@@ -749,7 +773,7 @@ mod tests {
             record("dark", "d1", 120.0, -10.0, stats(1000.0, 12.0)),
         ];
         let all: Vec<&FrameRecord> = rs.iter().collect();
-        let notes = judge_calibration(&all, &[]).notes;
+        let notes = judge_calibration(&all, &[], &CalibrationSettings::default()).notes;
         assert_eq!(notes.len(), 3, "{notes:?}");
         assert!(
             notes[0].contains("no usable darks of 300 s at -10 °C"),

@@ -138,7 +138,7 @@ fn anomaly_alerts(store: &Store, config: &Config, night: &str, now: f64) {
         &config.rule_specs(),
         config.site_position(),
         crate::batch::Catalogues::Read(store),
-        config.calibration.library_days,
+        &config.calibration.settings,
     ) else {
         return;
     };

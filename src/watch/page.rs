@@ -407,7 +407,7 @@ fn analyse(
         &config.rule_specs(),
         config.site_position(),
         crate::batch::Catalogues::Read(store),
-        config.calibration.library_days,
+        &config.calibration.settings,
     )?;
     let settings = crate::morning::settings(config);
     let summary = report::summarise(night, &doc, settings);

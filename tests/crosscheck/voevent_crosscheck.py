@@ -96,6 +96,13 @@ def main() -> int:
                 f"{t} vs {expect}",
             )
             params = voeventparse.get_toplevel_params(v)
+            cut = params.get("cutout", {}).get("value")
+            png = os.path.join(events, cut) if cut else None
+            checks.record(
+                f"{name}: What names its cutout, a PNG written beside it",
+                png is not None and open(png, "rb").read(8) == b"\x89PNG\r\n\x1a\n",
+                str(cut),
+            )
             checks.record(
                 f"{name}: What names the kind and the frames; Who the authority",
                 params.get("kind", {}).get("value") == best["kind"]
