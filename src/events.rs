@@ -18,13 +18,6 @@ pub struct EventError {
     pub source: std::io::Error,
 }
 
-/// FNV-1a, 64 bits (Fowler, Noll and Vo): a short stable name for an anomaly.
-fn fnv1a(text: &str) -> u64 {
-    text.bytes().fold(0xcbf2_9ce4_8422_2325, |h, b| {
-        (h ^ u64::from(b)).wrapping_mul(0x0100_0000_01b3)
-    })
-}
-
 fn iso_utc(t: f64) -> Option<String> {
     chrono::DateTime::from_timestamp_millis((t * 1000.0).round() as i64)
         .map(|d| d.format("%Y-%m-%dT%H:%M:%S%.3f").to_string())
@@ -58,7 +51,7 @@ pub fn write_voevents(
         let local_id = format!(
             "{}_{:016x}",
             a.kind.name(),
-            fnv1a(&format!("{}@{:.0},{:.0}", first.path, first.x, first.y))
+            crate::text::stable_hash(&format!("{}@{:.0},{:.0}", first.path, first.x, first.y))
         );
         let path = folder.join(format!("{night}_{local_id}.xml"));
         if path.exists() {

@@ -5,7 +5,7 @@
 use std::path::{Path, PathBuf};
 
 use crate::config::Config;
-use crate::contract::{NightDocument, NightFrameRecord};
+use crate::contract::NightDocument;
 use crate::mail::{compose, Inline, MailSettings};
 use crate::report::{self, plots};
 use crate::store::{Store, StoreError};
@@ -117,19 +117,10 @@ pub fn write_files(
         max_pixels: measure.max_pixels,
     };
     let summary = report::summarise(night, &doc, settings);
-    let mut images = Vec::new();
-    for (k, g) in summary.groups.iter().enumerate() {
-        let frames: Vec<&NightFrameRecord> = doc
-            .frames
-            .iter()
-            .filter(|f| g.is(f.target.as_deref(), f.filter.as_deref()))
-            .collect();
-        for p in &plots::PLOTTED {
-            if let Some(png) = plots::metric_plot(&frames, p, &g.limits, settings.tz) {
-                images.push((plots::plot_name(k, p.key), png));
-            }
-        }
-    }
+    let mut images: Vec<(String, Vec<u8>)> = plots::night_plots(&doc, &summary, settings.tz)
+        .into_iter()
+        .map(|p| (plots::plot_name(p.group, p.plotted.key), p.png))
+        .collect();
     for (k, a) in summary.notable.iter().enumerate() {
         let Some(d) = a.detections.first() else {
             continue;

@@ -26,6 +26,14 @@ pub fn single_line(s: &str) -> String {
         .collect()
 }
 
+/// FNV-1a, 64 bits (Fowler, Noll and Vo): a short name that stays the same for the same
+/// text across runs (files and URLs named by what they show). Not for secrets.
+pub fn stable_hash(text: &str) -> u64 {
+    text.bytes().fold(0xcbf2_9ce4_8422_2325, |h, b| {
+        (h ^ u64::from(b)).wrapping_mul(0x0100_0000_01b3)
+    })
+}
+
 /// Standard base64 (RFC 4648) for data URIs and inline images.
 pub fn base64(bytes: &[u8]) -> String {
     use base64::Engine;

@@ -6,7 +6,7 @@
 
 use std::fmt::Write as _;
 
-use super::{instrumental_mag, minutes, plots, sexagesimal, what, Summary};
+use super::{instrumental_mag, minutes, plots, sexagesimal, what, FrameLine, Summary};
 use crate::text::escape_html;
 
 const STYLE: &str =
@@ -24,6 +24,24 @@ img{max-width:100%;height:auto}\
 .kind{font-weight:bold}\
 ol.files{padding-left:28px}ol.files li{word-break:break-all;font-family:monospace;font-size:90%}\
 small{color:#555}";
+
+/// Table rows of flagged frames: time, verdict, the file and each reason.
+fn flagged_rows<'a>(h: &mut String, frames: impl IntoIterator<Item = &'a FrameLine>) {
+    let e = escape_html;
+    for f in frames {
+        let _ = write!(
+            h,
+            "<tr><td>{}</td><td class=\"{v}\">{v}</td><td><span class=\"file\">{}</span><ul class=\"why\">",
+            e(f.local_time.as_deref().unwrap_or("-")),
+            e(&f.file),
+            v = f.verdict.as_str(),
+        );
+        for x in &f.explanations {
+            let _ = write!(h, "<li>{}</li>", e(x));
+        }
+        h.push_str("</ul></td></tr>");
+    }
+}
 
 /// The HTML summary. `image` maps a plot or cutout name to its `src` (a `cid:` or a data
 /// URI); images without one are left out, and the page says how many cutouts it holds.
@@ -95,19 +113,7 @@ pub fn html(s: &Summary, image: &dyn Fn(&str) -> Option<String>) -> String {
             "<h3>{}</h3><table><tr><th>time</th><th>verdict</th><th>file, and why</th></tr>",
             e(&g.heading())
         );
-        for f in g.flagged() {
-            let _ = write!(
-                h,
-                "<tr><td>{}</td><td class=\"{v}\">{v}</td><td><span class=\"file\">{}</span><ul class=\"why\">",
-                e(f.local_time.as_deref().unwrap_or("-")),
-                e(&f.file),
-                v = f.verdict.as_str(),
-            );
-            for x in &f.explanations {
-                let _ = write!(h, "<li>{}</li>", e(x));
-            }
-            h.push_str("</ul></td></tr>");
-        }
+        flagged_rows(&mut h, g.flagged());
         h.push_str("</table>");
         if g.warned_left_out > 0 {
             let _ = write!(
@@ -136,19 +142,7 @@ pub fn html(s: &Summary, image: &dyn Fn(&str) -> Option<String>) -> String {
         h.push_str("</p>");
         if !cal.flagged.is_empty() {
             h.push_str("<table><tr><th>time</th><th>verdict</th><th>file, and why</th></tr>");
-            for f in &cal.flagged {
-                let _ = write!(
-                    h,
-                    "<tr><td>{}</td><td class=\"{v}\">{v}</td><td><span class=\"file\">{}</span><ul class=\"why\">",
-                    e(f.local_time.as_deref().unwrap_or("-")),
-                    e(&f.file),
-                    v = f.verdict.as_str(),
-                );
-                for x in &f.explanations {
-                    let _ = write!(h, "<li>{}</li>", e(x));
-                }
-                h.push_str("</ul></td></tr>");
-            }
+            flagged_rows(&mut h, &cal.flagged);
             h.push_str("</table>");
         }
         if !cal.notes.is_empty() {

@@ -189,6 +189,40 @@ fn y_range(values: &[f64], limits: &[(Verdict, f64, bool)], min_span: f64) -> (f
     (lo - pad, hi + pad)
 }
 
+/// One plot of the night: its group's place in the summary, the metric, the PNG.
+pub struct NightPlot {
+    pub group: usize,
+    pub plotted: &'static Plotted,
+    pub png: Vec<u8>,
+}
+
+/// Every plot of a night's summary: each group's frames, each plotted metric, with the
+/// group's limits (what the morning mail and the status page both show).
+pub fn night_plots(
+    doc: &crate::contract::NightDocument,
+    summary: &super::Summary,
+    tz: Tz,
+) -> Vec<NightPlot> {
+    let mut out = Vec::new();
+    for (k, g) in summary.groups.iter().enumerate() {
+        let frames: Vec<&NightFrameRecord> = doc
+            .frames
+            .iter()
+            .filter(|f| g.is(f.target.as_deref(), f.filter.as_deref()))
+            .collect();
+        for p in &PLOTTED {
+            if let Some(png) = metric_plot(&frames, p, &g.limits, tz) {
+                out.push(NightPlot {
+                    group: k,
+                    plotted: p,
+                    png,
+                });
+            }
+        }
+    }
+    out
+}
+
 /// One metric of one group against the site's clock time, with the group's limits drawn
 /// as dashed lines; `None` when there is nothing to plot.
 pub fn metric_plot(

@@ -5,8 +5,24 @@
 
 use std::fmt::Write as _;
 
-use super::{file_name, instrumental_mag, minutes, sexagesimal, what, Summary};
+use super::{file_name, instrumental_mag, minutes, sexagesimal, what, FrameLine, Summary};
 use crate::text::single_line;
+
+/// Lines of flagged frames: time, verdict and file, then each reason indented.
+fn flagged_lines<'a>(t: &mut String, frames: impl IntoIterator<Item = &'a FrameLine>) {
+    for f in frames {
+        let _ = writeln!(
+            t,
+            "    {}  {:<6}  {}",
+            f.local_time.as_deref().unwrap_or("--:--:--"),
+            f.verdict.as_str(),
+            single_line(&f.file)
+        );
+        for e in &f.explanations {
+            let _ = writeln!(t, "        {}", single_line(e));
+        }
+    }
+}
 
 /// The plain-text summary; `all` adds every frame and every cosmic-ray hit.
 pub fn text(s: &Summary, all: bool) -> String {
@@ -69,18 +85,7 @@ pub fn text(s: &Summary, all: bool) -> String {
                     .join(", ")
             }
         );
-        for f in &cal.flagged {
-            let _ = writeln!(
-                t,
-                "    {}  {:<6}  {}",
-                f.local_time.as_deref().unwrap_or("--:--:--"),
-                f.verdict.as_str(),
-                single_line(&f.file)
-            );
-            for e in &f.explanations {
-                let _ = writeln!(t, "        {}", single_line(e));
-            }
-        }
+        flagged_lines(&mut t, &cal.flagged);
         for n in &cal.notes {
             let _ = writeln!(t, "    {}", single_line(n));
         }
@@ -91,18 +96,7 @@ pub fn text(s: &Summary, all: bool) -> String {
     }
     for g in s.groups.iter().filter(|g| g.flagged().next().is_some()) {
         let _ = writeln!(t, "  {}", single_line(&g.heading()));
-        for f in g.flagged() {
-            let _ = writeln!(
-                t,
-                "    {}  {:<6}  {}",
-                f.local_time.as_deref().unwrap_or("--:--:--"),
-                f.verdict.as_str(),
-                single_line(&f.file)
-            );
-            for e in &f.explanations {
-                let _ = writeln!(t, "        {}", single_line(e));
-            }
-        }
+        flagged_lines(&mut t, g.flagged());
         if g.warned_left_out > 0 {
             let _ = writeln!(
                 t,

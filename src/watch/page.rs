@@ -413,23 +413,14 @@ fn analyse(
     let summary = report::summarise(night, &doc, settings);
     a.images.clear();
     a.plots.clear();
-    for (k, g) in summary.groups.iter().enumerate() {
-        let frames: Vec<&crate::contract::NightFrameRecord> = doc
-            .frames
-            .iter()
-            .filter(|f| g.is(f.target.as_deref(), f.filter.as_deref()))
-            .collect();
-        for p in &plots::PLOTTED {
-            if let Some(png) = plots::metric_plot(&frames, p, &g.limits, settings.tz) {
-                let url = format!("plot/{k}/{}.png", p.key);
-                a.images.insert(url.clone(), Bytes::from(png));
-                a.plots.push(live::LivePlot {
-                    group: g.heading(),
-                    title: p.title.to_string(),
-                    url,
-                });
-            }
-        }
+    for p in plots::night_plots(&doc, &summary, settings.tz) {
+        let url = format!("plot/{}/{}.png", p.group, p.plotted.key);
+        a.images.insert(url.clone(), Bytes::from(p.png));
+        a.plots.push(live::LivePlot {
+            group: summary.groups[p.group].heading(),
+            title: p.plotted.title.to_string(),
+            url,
+        });
     }
     a.marks = summary
         .notable
@@ -453,7 +444,7 @@ fn analyse(
             }
             if let Some(png) = a.cutouts.get(&key) {
                 // Named by what it shows, so an older page never shows another's.
-                let url = format!("cutout/{:016x}.png", fnv1a(&key));
+                let url = format!("cutout/{:016x}.png", crate::text::stable_hash(&key));
                 a.images.insert(url.clone(), png.clone());
                 cutout_url = Some(url);
             }
@@ -487,11 +478,4 @@ fn analyse(
     a.cosmic_rays = summary.cosmic_rays.len();
     a.analysed_unix = Some(now);
     Ok(())
-}
-
-/// FNV-1a, 64 bits (Fowler, Noll and Vo): a stable short name for a cutout.
-fn fnv1a(text: &str) -> u64 {
-    text.bytes().fold(0xcbf2_9ce4_8422_2325, |h, b| {
-        (h ^ u64::from(b)).wrapping_mul(0x0100_0000_01b3)
-    })
 }
