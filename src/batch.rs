@@ -6,7 +6,7 @@ use std::collections::BTreeMap;
 use std::path::Path;
 
 use crate::contract::{
-    AnomalyRecord, DetectionRecord, GroupLimits, NightDocument, NightFrameRecord,
+    AnomalyRecord, CatalogueMatch, DetectionRecord, GroupLimits, NightDocument, NightFrameRecord,
 };
 use crate::night::judge::{judge_night, Site};
 use crate::record::{FrameRecord, FrameStatus, Identity};
@@ -74,8 +74,19 @@ pub fn analyse_records(
                 s.save_catalog(&target, n, limit, &found.footprint, &found.catalog)?;
             }
         }
-        for (r, j) in frames.iter().zip(&judged.frames) {
+        let carried: Vec<Option<crate::astrometry::SkyFit>> = frames
+            .iter()
+            .zip(&judged.frames)
+            .map(|(r, j)| carried_fit(r, j.placement.as_ref(), &frames))
+            .collect();
+        for ((r, j), carried) in frames.iter().zip(&judged.frames).zip(&carried) {
             let p = j.placement.as_ref();
+            let metrics = r.metrics.clone().map(|mut m| {
+                if m.sky_fit.is_none() {
+                    m.sky_fit = carried.clone();
+                }
+                m
+            });
             doc.frames.push(NightFrameRecord {
                 path: r.identity.path.clone(),
                 kind: "light",
@@ -85,7 +96,7 @@ pub fn analyse_records(
                     "error"
                 },
                 error: r.error.clone(),
-                metrics: r.metrics.clone(),
+                metrics,
                 verdict: j.judgement.verdict,
                 reasons: j.judgement.reasons.clone(),
                 explanations: j.judgement.explanations.clone(),
@@ -109,10 +120,18 @@ pub fn analyse_records(
             });
         }
         for a in &found.anomalies {
+            // A position through a fit carried from the reference, where the frame had none.
+            let (ra_deg, dec_deg) = match (a.ra_deg, a.dec_deg, a.detections.first()) {
+                (None, None, Some(d)) => carried[judged.readable[d.frame]]
+                    .as_ref()
+                    .map(|f| f.wcs.pixel_to_sky(d.x, d.y))
+                    .map_or((None, None), |(ra, dec)| (Some(ra), Some(dec))),
+                (ra, dec, _) => (ra, dec),
+            };
             doc.anomalies.push(AnomalyRecord {
                 kind: a.kind,
-                ra_deg: a.ra_deg,
-                dec_deg: a.dec_deg,
+                ra_deg,
+                dec_deg,
                 detections: a
                     .detections
                     .iter()
@@ -125,6 +144,8 @@ pub fn analyse_records(
                 detail: a.detail.clone(),
                 target: Some(target.clone()).filter(|t| !t.is_empty()),
                 filter: Some(filter.clone()).filter(|t| !t.is_empty()),
+                catalogue: None,
+                catalogue_depth_mag: None,
             });
         }
     }
@@ -176,6 +197,99 @@ pub fn analyse_records(
     Ok(doc)
 }
 
+/// A frame without a sky fit of its own that registered on a reference frame with one:
+/// the reference's fit carried through the registration (`astrometry::carry`).
+fn carried_fit(
+    r: &FrameRecord,
+    placement: Option<&crate::night::judge::Placement>,
+    group: &[&FrameRecord],
+) -> Option<crate::astrometry::SkyFit> {
+    let m = r.metrics.as_ref()?;
+    if m.sky_fit.is_some() {
+        return None;
+    }
+    let p = placement.filter(|p| p.registered)?;
+    let affine = p.affine()?;
+    let reference = group.iter().find(|g| g.identity.path == p.reference)?;
+    let fit = reference.metrics.as_ref()?.sky_fit.as_ref()?;
+    let wcs = crate::astrometry::carry(&fit.wcs, affine.a, affine.t, m.width, m.height)?;
+    Some(crate::astrometry::SkyFit {
+        source: crate::astrometry::FitSource::Carried,
+        header_offset_px: None,
+        wcs,
+        ..fit.clone()
+    })
+}
+
+/// Each anomaly with a sky position matched to the catalogue: the nearest star within
+/// max(2″, 1.5 px), or the faintest magnitude the catalogue holds around it.
+pub fn cross_match(
+    doc: &mut NightDocument,
+    catalogue: &crate::config::CatalogueConfig,
+) -> Result<(), StoreError> {
+    // The commands build the index before any frame is read (`catalogue_import::ensure`).
+    let Some(path) = crate::catalogue_import::index_path(catalogue).filter(|p| p.exists()) else {
+        return Ok(());
+    };
+    let index = crate::store::catalogue_index::CatalogueIndex::open(&path)?;
+    let frames: BTreeMap<&str, &NightFrameRecord> =
+        doc.frames.iter().map(|f| (f.path.as_str(), f)).collect();
+    let mut found = Vec::with_capacity(doc.anomalies.len());
+    for a in &doc.anomalies {
+        use crate::night::AnomalyKind::{HotPixel, Trail};
+        // A streak or a detector defect lies on no star.
+        let (Some(ra), Some(dec), false) =
+            (a.ra_deg, a.dec_deg, matches!(a.kind, Trail | HotPixel))
+        else {
+            found.push((None, None));
+            continue;
+        };
+        let first = a
+            .detections
+            .first()
+            .and_then(|d| frames.get(d.path.as_str()));
+        let scale = first
+            .and_then(|f| f.metrics.as_ref())
+            .and_then(|m| m.plate_scale_arcsec)
+            .unwrap_or(1.0);
+        let year = first
+            .and_then(|f| f.time_unix)
+            .map_or(2000.0, crate::sky_fit::julian_year);
+        let band = first
+            .and_then(|f| f.metrics.as_ref())
+            .and_then(|m| m.zero_point_band.clone());
+        let radius = (1.5 * scale).max(2.0);
+        match crate::sky_fit::nearest(&index, ra, dec, radius, year)? {
+            Some((star, d)) => found.push((
+                Some(CatalogueMatch {
+                    mag: star.mag(band.as_deref()).or_else(|| star.mag(None)),
+                    band: band
+                        .clone()
+                        .or_else(|| star.mags.first().map(|m| m.0.clone())),
+                    id: star.id,
+                    separation_arcsec: d,
+                }),
+                None,
+            )),
+            None => {
+                let around = index.cone(ra, dec, 10.0 / 60.0)?;
+                let depth = around
+                    .iter()
+                    .filter_map(|s| s.mag(band.as_deref()).or_else(|| s.mag(None)))
+                    .fold(None, |acc: Option<f64>, m| {
+                        Some(acc.map_or(m, |a| a.max(m)))
+                    });
+                found.push((None, depth));
+            }
+        }
+    }
+    for (a, (m, depth)) in doc.anomalies.iter_mut().zip(found) {
+        a.catalogue = m;
+        a.catalogue_depth_mag = depth;
+    }
+    Ok(())
+}
+
 /// The night a document is mostly about (the label most of its frames carry).
 pub fn night_of(doc: &NightDocument) -> Option<String> {
     majority(doc.frames.iter().filter_map(|f| f.night.clone()))
@@ -211,7 +325,7 @@ pub fn run_night(
         records.push(reader.record(path, identity, mtime_unix, &options));
         progress(k + 1, total);
     }
-    analyse_records(
+    let mut doc = analyse_records(
         &records,
         &config.rule_specs(),
         config.site_position(),
@@ -220,5 +334,7 @@ pub fn run_night(
             None => Catalogues::None,
         },
         &config.calibration.settings,
-    )
+    )?;
+    cross_match(&mut doc, &config.catalogue)?;
+    Ok(doc)
 }

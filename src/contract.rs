@@ -4,7 +4,7 @@
 
 use serde::Serialize;
 
-use crate::finite::finite;
+use crate::finite::{finite, finite_num};
 use crate::record::{HeaderFacts, Metrics, StarRecord};
 
 /// One line of `subwatch measure --json`.
@@ -93,6 +93,24 @@ pub struct AnomalyRecord {
     pub detail: crate::night::Detail,
     pub target: Option<String>,
     pub filter: Option<String>,
+    /// The nearest catalogue star within the match radius, or `null` (also when no
+    /// catalogue is configured).
+    pub catalogue: Option<CatalogueMatch>,
+    /// When not catalogued: the faintest catalogue magnitude near it, so "not in the
+    /// catalogue down to magnitude X".
+    #[serde(skip_serializing_if = "Option::is_none", serialize_with = "finite")]
+    pub catalogue_depth_mag: Option<f64>,
+}
+
+/// A catalogue star an anomaly lies on.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct CatalogueMatch {
+    pub id: String,
+    #[serde(serialize_with = "finite")]
+    pub mag: Option<f64>,
+    pub band: Option<String>,
+    #[serde(serialize_with = "finite_num")]
+    pub separation_arcsec: f64,
 }
 
 /// The document `subwatch night --json` prints: `frames` (the lights, then the

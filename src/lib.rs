@@ -5,8 +5,11 @@
 //! See ARCHITECTURE.md for the map and the invariants.
 
 pub mod actions;
+pub mod astrometry;
 pub mod batch;
 pub mod buffer;
+pub mod catalogue;
+pub mod catalogue_import;
 pub mod clock;
 pub mod config;
 pub mod contract;
@@ -29,6 +32,7 @@ pub mod report;
 pub mod rules;
 pub mod sim;
 pub mod sky;
+pub mod sky_fit;
 pub mod store;
 pub mod text;
 pub mod voevent;

@@ -33,6 +33,19 @@ struct ConfigFile {
 }
 
 #[derive(Subcommand)]
+enum CatalogueAction {
+    /// Check the configured catalogue files and index them for cone queries (done
+    /// otherwise by the first command that needs them).
+    Import {
+        #[command(flatten)]
+        config: ConfigFile,
+        /// Build the index again even when it is current.
+        #[arg(long)]
+        force: bool,
+    },
+}
+
+#[derive(Subcommand)]
 enum Command {
     /// Measure frames: FWHM, eccentricity, background, noise, star count, SNR.
     Measure(commands::measure::MeasureArgs),
@@ -151,6 +164,11 @@ enum Command {
         #[arg(long)]
         frames: Option<usize>,
     },
+    /// The star catalogue: `import` checks the configured files and indexes them once.
+    Catalogue {
+        #[command(subcommand)]
+        action: CatalogueAction,
+    },
     /// Read one file for another subwatch process (request on stdin, record on stdout).
     #[command(name = "read-worker", hide = true)]
     ReadWorker,
@@ -249,6 +267,9 @@ fn run(cli: Cli) -> Result<ExitCode> {
             frames,
         } => render::night(&out, seed, second_night, color, frames),
         Command::Measure(args) => measure::run(args),
+        Command::Catalogue {
+            action: CatalogueAction::Import { config, force },
+        } => commands::catalogue::import(&config.path, force),
         Command::Render(args) => render::frame(args),
     }
 }

@@ -76,13 +76,14 @@ pub struct Rejudged {
 /// and, when lists are kept, rewrite the night's lists where a verdict changed.
 pub fn judge_night(store: &mut Store, c: &Config, night: &str) -> Result<Rejudged, MorningError> {
     let records = store.night_records(night)?;
-    let doc = crate::batch::analyse_records(
+    let mut doc = crate::batch::analyse_records(
         &records,
         &c.rule_specs(),
         c.site_position(),
         crate::batch::Catalogues::Keep(store),
         &c.calibration.settings,
     )?;
+    crate::batch::cross_match(&mut doc, &c.catalogue)?;
     let verdicts: Vec<(String, crate::rules::Verdict, Vec<String>)> = doc
         .frames
         .iter()

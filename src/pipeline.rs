@@ -85,6 +85,8 @@ pub struct RecordOptions {
     /// Measure darks, flats and bias frames as well, instead of setting them aside (the
     /// `measure` command measures whatever it is given).
     pub measure_calibration: bool,
+    /// Fit each light frame to the sky from the catalogue's index (`sky_fit`).
+    pub sky: Option<crate::sky_fit::SkyOptions>,
 }
 
 impl Default for RecordOptions {
@@ -94,6 +96,7 @@ impl Default for RecordOptions {
             timezone: chrono_tz::UTC,
             calibration_folders: Vec::new(),
             measure_calibration: false,
+            sky: None,
         }
     }
 }
@@ -120,6 +123,13 @@ impl RecordOptions {
                 .map(|s| s.to_lowercase())
                 .collect(),
             measure_calibration: false,
+            sky: crate::catalogue_import::index_path(&config.catalogue).map(|index| {
+                crate::sky_fit::SkyOptions {
+                    index,
+                    search_deg: config.catalogue.search_deg,
+                    filter_bands: config.catalogue.filter_bands.clone(),
+                }
+            }),
         }
     }
 }
@@ -230,6 +240,17 @@ pub fn record_file(
                 .map(|s| StarRecord::new(s, &m.frame_header))
                 .collect();
             rec.rejected = m.measurement.rejected;
+            if let Some(sky) = &opts.sky {
+                let gain = opts.measure.params.gain_e_per_adu.or(header.gain_e_per_adu);
+                // Without its index the frame is still recorded, only not placed on the sky.
+                let placed = crate::store::catalogue_index::CatalogueIndex::open(&sky.index)
+                    .and_then(|index| {
+                        crate::sky_fit::fit_record(&mut rec, &header, &index, sky, gain)
+                    });
+                if let Err(e) = placed {
+                    tracing::warn!("{}: not fitted to the sky: {e}", path.display());
+                }
+            }
         }
         Err(e) => rec.error = Some(e.reason()),
     }

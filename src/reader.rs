@@ -154,6 +154,19 @@ impl Default for Reader {
     }
 }
 
+/// A frame too large for the worker's memory limit, in words.
+fn out_of_memory(iso: &Isolation) -> String {
+    let mib = iso.memory_bytes >> 20;
+    let limit = if mib < 1024 {
+        format!("{mib} MiB")
+    } else {
+        format!("{:.1} GiB", mib as f64 / 1024.0)
+    };
+    format!(
+        "the FITS reader ran out of memory on this file (limit {limit}); raise [measure] reader_memory_mb if the frame is real"
+    )
+}
+
 /// Why a worker gave no answer, in words for the frame's record.
 fn failure_reason(status: std::process::ExitStatus, stderr: &str, iso: &Isolation) -> String {
     // The last thing the worker (or the C library under it) said, backtrace notes aside.
@@ -168,16 +181,8 @@ fn failure_reason(status: std::process::ExitStatus, stderr: &str, iso: &Isolatio
                 && !l.starts_with("stack backtrace")
         })
         .unwrap_or("");
-    let mib = iso.memory_bytes >> 20;
-    let limit = if mib < 1024 {
-        format!("{mib} MiB")
-    } else {
-        format!("{:.1} GiB", mib as f64 / 1024.0)
-    };
     if stderr.contains("memory allocation of") || stderr.contains("out of memory") {
-        return format!(
-            "the FITS reader ran out of memory on this file (limit {limit}); raise [measure] reader_memory_mb if the frame is real"
-        );
+        return out_of_memory(iso);
     }
     match status.signal() {
         Some(libc::SIGKILL) => "the FITS reader was killed on this file (signal 9; out of memory under the service's limit?)".to_string(),
@@ -378,7 +383,16 @@ impl Reader {
             r
         };
         match self.run(request) {
-            Ok(Reply::Record(r)) => *r,
+            Ok(Reply::Record(mut r)) => {
+                // A refused allocation inside the worker is its memory limit speaking,
+                // whichever allocation met it first.
+                if let (Reader::Isolated(iso), Some(e)) = (self, &r.error) {
+                    if e.starts_with("cannot allocate") {
+                        r.error = Some(format!("{}: {e}", out_of_memory(iso)));
+                    }
+                }
+                *r
+            }
             Ok(_) => failed("the FITS reader answered another question".into()),
             Err(reason) => failed(reason),
         }

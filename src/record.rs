@@ -186,6 +186,32 @@ impl StarRecord {
     }
 }
 
+/// How a frame's place on the sky was found (`astrometry`).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum FitSource {
+    /// Fitted here to the catalogue.
+    Fitted,
+    /// The header's WCS, checked against the catalogue (no fit was accepted).
+    Header,
+    /// Fitted on the group's reference frame and carried through the registration.
+    Carried,
+}
+
+/// A frame's place on the sky, as recorded and printed (`sky_fit`).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct SkyFit {
+    pub source: FitSource,
+    pub matched: usize,
+    /// RMS distance between matched stars and their catalogue positions, arcsec.
+    pub rms_arcsec: f64,
+    /// log10 of the probability that the matches are chance alignments, trials counted.
+    pub chance_log10: f64,
+    /// When the header had a WCS: its largest disagreement with the fit over the frame, px.
+    pub header_offset_px: Option<f64>,
+    pub wcs: crate::frame::wcs::Wcs,
+}
+
 /// Frame metrics (the contract's fields plus extras).
 #[derive(Debug, Clone, Serialize, Deserialize)]
 pub struct Metrics {
@@ -216,6 +242,22 @@ pub struct Metrics {
     /// Streaks found (satellites, aircraft, meteors), FITS 1-based end points.
     #[serde(default)]
     pub trails: Vec<crate::measure::detect::Trail>,
+    /// The frame's place on the sky from the catalogue, when one is configured.
+    #[serde(default)]
+    pub sky_fit: Option<SkyFit>,
+    /// Magnitude of a source giving 1 ADU per second in the photometric aperture, in
+    /// `zero_point_band` (`astrometry::photometric`).
+    #[serde(default, serialize_with = "finite")]
+    pub zero_point_mag: Option<f64>,
+    #[serde(default, serialize_with = "finite")]
+    pub zero_point_err_mag: Option<f64>,
+    #[serde(default)]
+    pub zero_point_stars: usize,
+    #[serde(default)]
+    pub zero_point_band: Option<String>,
+    /// Magnitude of a point source at SNR 5 (CCD equation).
+    #[serde(default, serialize_with = "finite")]
+    pub limit_mag: Option<f64>,
 }
 
 impl Metrics {
@@ -236,6 +278,12 @@ impl Metrics {
             background_range_adu: m.background_range_adu,
             plate_scale_arcsec: plate_scale,
             trails: m.trails.clone(),
+            sky_fit: None,
+            zero_point_mag: None,
+            zero_point_err_mag: None,
+            zero_point_stars: 0,
+            zero_point_band: None,
+            limit_mag: None,
         }
     }
 }

@@ -15,6 +15,7 @@ pub fn watch(config: &Path) -> Result<ExitCode> {
     if !errors.is_empty() {
         anyhow::bail!("{}: {}", config.display(), errors.join("; "));
     }
+    crate::commands::catalogue::prepare(&cfg.catalogue)?;
     subwatch::watch::run(cfg)?;
     Ok(ExitCode::SUCCESS)
 }
@@ -30,6 +31,10 @@ pub fn check_config(config: &Path, send_test: bool) -> Result<ExitCode> {
         println!("error: {e}");
     }
     if !errors.is_empty() {
+        return Ok(ExitCode::from(1));
+    }
+    if let Err(e) = crate::commands::catalogue::prepare(&cfg.catalogue) {
+        println!("error: {e:#}");
         return Ok(ExitCode::from(1));
     }
     println!("{}: ok", config.display());

@@ -27,6 +27,10 @@ pub struct MeasureArgs {
     /// Unbinned pixel size (µm) when the header has no XPIXSZ.
     #[arg(long)]
     pixel_size_um: Option<f64>,
+    /// Configuration: optics, measuring settings, and the star catalogue ([catalogue]),
+    /// with which each frame is fitted to the sky and gets a zero point and depth.
+    #[arg(long)]
+    config: Option<PathBuf>,
     #[arg(required = true)]
     files: Vec<PathBuf>,
 }
@@ -38,23 +42,38 @@ pub fn run(args: MeasureArgs) -> Result<ExitCode> {
         max_pixels,
         focal_length_mm,
         pixel_size_um,
+        config,
         files,
     } = args;
-    let mut measure = MeasureOptions {
-        focal_length_mm,
-        pixel_size_um,
-        ..Default::default()
+    let (opts, reader) = match config {
+        Some(path) => {
+            let c = subwatch::config::load(&path)?;
+            crate::commands::catalogue::prepare(&c.catalogue)?;
+            let mut opts = RecordOptions::from_config(&c);
+            opts.measure_calibration = true;
+            opts.measure.focal_length_mm = focal_length_mm.or(opts.measure.focal_length_mm);
+            opts.measure.pixel_size_um = pixel_size_um.or(opts.measure.pixel_size_um);
+            (opts, subwatch::reader::Reader::from_config(&c.measure))
+        }
+        None => {
+            let mut measure = MeasureOptions {
+                focal_length_mm,
+                pixel_size_um,
+                ..Default::default()
+            };
+            measure.limits.max_pixels = max_pixels;
+            let opts = RecordOptions {
+                measure,
+                measure_calibration: true,
+                ..Default::default()
+            };
+            let reader = subwatch::reader::Reader::from_config(&subwatch::config::MeasureConfig {
+                max_pixels,
+                ..Default::default()
+            });
+            (opts, reader)
+        }
     };
-    measure.limits.max_pixels = max_pixels;
-    let opts = RecordOptions {
-        measure,
-        measure_calibration: true,
-        ..Default::default()
-    };
-    let reader = subwatch::reader::Reader::from_config(&subwatch::config::MeasureConfig {
-        max_pixels,
-        ..Default::default()
-    });
     measure_command(&files, &opts, &reader, json, stars)
 }
 

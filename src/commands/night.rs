@@ -41,6 +41,7 @@ pub fn night(
     };
     let defaults = subwatch::config::Config::default();
     let c = cfg.as_ref().unwrap_or(&defaults);
+    crate::commands::catalogue::prepare(&c.catalogue)?;
     let mut store = match &cfg {
         Some(c) => Some(subwatch::store::Store::open(&c.store.path)?),
         None => None,
@@ -109,6 +110,7 @@ pub fn report(
 ) -> Result<ExitCode> {
     let night = night.as_deref().map(night_label).transpose()?;
     let cfg = subwatch::config::load(config)?;
+    crate::commands::catalogue::prepare(&cfg.catalogue)?;
     let now = subwatch::clock::now_unix();
     let night = match night {
         Some(n) => n,

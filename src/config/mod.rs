@@ -254,6 +254,22 @@ pub struct CalibrationConfig {
     pub settings: crate::night::calibration::CalibrationSettings,
 }
 
+/// The user's star catalogue: off unless `files` is set.
+#[derive(Debug, Clone, Default)]
+pub struct CatalogueConfig {
+    /// CSV files or FITS binary tables, read once into `index`.
+    pub files: Vec<PathBuf>,
+    /// Where the index is kept (default: a file in the system's temporary folder named
+    /// by the files it holds).
+    pub index: Option<PathBuf>,
+    pub columns: crate::catalogue::Columns,
+    /// The catalogue band that calibrates each filter (frame filter → band); a filter
+    /// not listed uses the band of its own name, else the catalogue's first band.
+    pub filter_bands: Vec<(String, String)>,
+    /// How far a frame's true centre may be from its header's pointing, degrees.
+    pub search_deg: f64,
+}
+
 /// VOEvent documents of anomalies: off unless `folder` is set.
 #[derive(Debug, Clone)]
 pub struct VoEventConfig {
@@ -332,6 +348,7 @@ pub struct Config {
     pub web: WebConfig,
     pub voevent: VoEventConfig,
     pub calibration: CalibrationConfig,
+    pub catalogue: CatalogueConfig,
     pub rules: Vec<RuleSpec>,
     /// The file this configuration was read from.
     pub source: Option<PathBuf>,

@@ -200,7 +200,7 @@ impl<'a> Reader<'a> {
     }
 }
 
-const SECTIONS: [&str; 12] = [
+const SECTIONS: [&str; 13] = [
     "watch",
     "store",
     "site",
@@ -213,7 +213,74 @@ const SECTIONS: [&str; 12] = [
     "web",
     "voevent",
     "calibration",
+    "catalogue",
 ];
+
+/// `[catalogue]`: the files, the index, and which columns hold what.
+fn read_catalogue(r: &mut Reader<'_>) -> CatalogueConfig {
+    let d = crate::catalogue::Columns::default();
+    let files: Vec<PathBuf> = r
+        .texts("catalogue", "files", Vec::new(), "a list of file paths")
+        .iter()
+        .map(|p| r.absolute(p))
+        .collect();
+    let column = |r: &mut Reader<'_>, key: &str, default: &str| {
+        r.text("catalogue", key, "a column name (text)")
+            .unwrap_or_else(|| default.to_string())
+    };
+    let names = |v: &toml::Value| -> Result<Vec<(String, String)>, String> {
+        let expected = "a table of names, such as { V = \"vmag\", R = \"rmag\" }";
+        v.as_table()
+            .ok_or_else(|| expected.to_string())?
+            .iter()
+            .map(|(k, v)| {
+                v.as_str()
+                    .filter(|s| !s.trim().is_empty())
+                    .map(|s| (k.clone(), s.to_string()))
+                    .ok_or_else(|| expected.to_string())
+            })
+            .collect()
+    };
+    let magnitudes = r.read("catalogue", "magnitudes", Vec::new(), names);
+    let mags = if magnitudes.is_empty() {
+        vec![(column(r, "mag_column", "mag"), None)]
+    } else {
+        magnitudes
+            .into_iter()
+            .map(|(band, col)| (col, Some(band)))
+            .collect()
+    };
+    let columns = crate::catalogue::Columns {
+        ra: column(r, "ra_column", &d.ra),
+        dec: column(r, "dec_column", &d.dec),
+        mags,
+        id: column(r, "id_column", &d.id),
+        band: column(r, "band_column", &d.band),
+        pm_ra: column(r, "pm_ra_column", &d.pm_ra),
+        pm_dec: column(r, "pm_dec_column", &d.pm_dec),
+        epoch: r.number(
+            "catalogue",
+            "epoch",
+            d.epoch,
+            (1800.0, 2200.0),
+            "a Julian year such as 2000.0 or 2016.0",
+        ),
+        file_band: r.text("catalogue", "band", "a band name (text), such as \"V\""),
+    };
+    CatalogueConfig {
+        files,
+        index: r.path("catalogue", "index"),
+        columns,
+        filter_bands: r.read("catalogue", "filter_bands", Vec::new(), names),
+        search_deg: r.number(
+            "catalogue",
+            "search_deg",
+            1.0,
+            (0.0, 10.0),
+            "degrees from 0 to 10",
+        ),
+    }
+}
 
 /// A number from an integer or a float.
 fn number_of(v: &toml::Value) -> Option<f64> {
@@ -642,6 +709,7 @@ pub fn parse(text: &str, base: &Path) -> Result<Config, Vec<ConfigProblem>> {
             ),
         },
     };
+    let catalogue = read_catalogue(&mut r);
     let rules = read_rules(&mut r);
     r.unknown();
     let mut problems = std::mem::take(&mut r.problems);
@@ -658,6 +726,7 @@ pub fn parse(text: &str, base: &Path) -> Result<Config, Vec<ConfigProblem>> {
         web,
         voevent,
         calibration,
+        catalogue,
         rules,
         source: None,
     };

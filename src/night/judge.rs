@@ -358,6 +358,12 @@ mod tests {
             background_range_adu: 1.0,
             plate_scale_arcsec: None,
             trails: Vec::new(),
+            sky_fit: None,
+            zero_point_mag: None,
+            zero_point_err_mag: None,
+            zero_point_stars: 0,
+            zero_point_band: None,
+            limit_mag: None,
         });
         r
     }

@@ -236,13 +236,22 @@ impl Placed for crate::record::StarRecord {
 /// Register `frame` stars onto `reference` stars. `None` when no consistent transform is
 /// found (clouds, another target).
 pub fn register<S: Placed>(reference: &[S], frame: &[S]) -> Option<Registration> {
+    register_brightest(reference, frame, 40)
+}
+
+/// [`register`] with the pattern search on the `n` brightest stars of each list.
+pub fn register_brightest<S: Placed>(
+    reference: &[S],
+    frame: &[S],
+    n: usize,
+) -> Option<Registration> {
     let brightest = |stars: &[S], n: usize| -> Vec<(f64, f64)> {
         let mut s: Vec<&S> = stars.iter().collect();
         s.sort_by(|a, b| b.flux().total_cmp(&a.flux()));
         s.into_iter().take(n).map(|p| p.xy()).collect()
     };
-    let rb = brightest(reference, 40);
-    let fb = brightest(frame, 40);
+    let rb = brightest(reference, n);
+    let fb = brightest(frame, n);
     if rb.len() < 4 || fb.len() < 4 {
         return None;
     }

@@ -617,6 +617,8 @@ mod tests {
             detail,
             target: Some("Field A".into()),
             filter: Some("L".into()),
+            catalogue: None,
+            catalogue_depth_mag: None,
         }
     }
 

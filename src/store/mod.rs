@@ -11,6 +11,7 @@ use rusqlite::Connection;
 
 mod alerts;
 mod catalog;
+pub mod catalogue_index;
 mod frames;
 mod lock;
 mod outbox;
@@ -40,6 +41,12 @@ pub enum StoreError {
         path: PathBuf,
         #[source]
         source: rusqlite::Error,
+    },
+    #[error("{path}: {source}")]
+    File {
+        path: PathBuf,
+        #[source]
+        source: std::io::Error,
     },
     #[error("store {path}: schema version {found} is newer than this program understands ({known}); upgrade subwatch")]
     TooNew {

@@ -332,6 +332,8 @@ mod tests {
             }),
             target: None,
             filter: None,
+            catalogue: None,
+            catalogue_depth_mag: None,
         }
     }
 

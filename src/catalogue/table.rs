@@ -1,0 +1,251 @@
+//! The first binary-table extension of a FITS file (FITS Standard 4.0, section 7.3),
+//! read from bytes with every size checked against what the bytes hold. Scalar columns
+//! of types L, B, I, J, K, E, D and character columns (A) are read; other types are
+//! skipped over by their width and read as empty.
+
+use crate::frame::cards::{keyword, parse_card, Cards, HeaderCard};
+
+const BLOCK: usize = 2880;
+const MAX_HEADER_BLOCKS: usize = 1000;
+const MAX_COLUMNS: usize = 999;
+
+pub enum Value<'a> {
+    Number(f64),
+    Text(&'a str),
+    Empty,
+}
+
+struct Column {
+    name: String,
+    offset: usize,
+    kind: u8,
+    repeat: usize,
+    scale: f64,
+    zero: f64,
+    null: Option<i64>,
+}
+
+pub struct BinTable {
+    columns: Vec<Column>,
+    row_bytes: usize,
+    rows: usize,
+    data_start: usize,
+}
+
+/// One header: its value cards and the offset just past its END block.
+fn header_at(bytes: &[u8], start: usize) -> Result<(Vec<HeaderCard>, usize), String> {
+    let mut cards = Vec::new();
+    for b in 0..MAX_HEADER_BLOCKS {
+        let at = start + b * BLOCK;
+        let Some(block) = bytes.get(at..at + BLOCK) else {
+            return Err(format!("the file ends inside a header (at byte {at})"));
+        };
+        for raw in block.chunks_exact(80) {
+            if keyword(raw) == "END" {
+                return Ok((cards, at + BLOCK));
+            }
+            if let Some(c) = std::str::from_utf8(raw).ok().and_then(parse_card) {
+                cards.push(c);
+            }
+        }
+    }
+    Err(format!(
+        "no END card within {MAX_HEADER_BLOCKS} header blocks"
+    ))
+}
+
+fn whole(cards: &[HeaderCard], key: &str) -> Result<usize, String> {
+    cards
+        .integer(key)
+        .filter(|v| *v >= 0)
+        .and_then(|v| usize::try_from(v).ok())
+        .ok_or_else(|| format!("{key} is missing or not a whole number"))
+}
+
+/// Bytes of an HDU's data (before padding), checked.
+fn data_bytes(cards: &[HeaderCard]) -> Result<usize, String> {
+    let naxis = whole(cards, "NAXIS")?;
+    if naxis == 0 {
+        return Ok(0);
+    }
+    if naxis > 999 {
+        return Err("NAXIS above 999".into());
+    }
+    let bitpix = cards.integer("BITPIX").ok_or("BITPIX is missing")?;
+    let mut n = (bitpix.unsigned_abs() as usize) / 8;
+    for k in 1..=naxis {
+        n = n
+            .checked_mul(whole(cards, &format!("NAXIS{k}"))?)
+            .ok_or("the data size overflows")?;
+    }
+    let pcount = cards.integer("PCOUNT").unwrap_or(0).max(0) as usize;
+    let gcount = cards.integer("GCOUNT").unwrap_or(1).max(1) as usize;
+    n.checked_add(pcount)
+        .and_then(|v| v.checked_mul(gcount))
+        .ok_or_else(|| "the data size overflows".into())
+}
+
+/// "1D", "12A", "E": repeat and type code.
+fn tform(s: &str) -> Option<(usize, u8)> {
+    let s = s.trim();
+    let digits = s.chars().take_while(|c| c.is_ascii_digit()).count();
+    let repeat = if digits == 0 {
+        1
+    } else {
+        s[..digits].parse().ok()?
+    };
+    let kind = *s.as_bytes().get(digits)?;
+    Some((repeat, kind.to_ascii_uppercase()))
+}
+
+fn width(kind: u8, repeat: usize) -> Option<usize> {
+    let each = match kind {
+        b'L' | b'B' | b'A' => 1,
+        b'I' => 2,
+        b'J' | b'E' => 4,
+        b'K' | b'D' | b'C' | b'P' => 8,
+        b'M' | b'Q' => 16,
+        b'X' => return Some(repeat.div_ceil(8)),
+        _ => return None,
+    };
+    repeat.checked_mul(each)
+}
+
+impl BinTable {
+    /// The first BINTABLE extension of the file.
+    pub fn find(bytes: &[u8]) -> Result<BinTable, String> {
+        if !super::is_fits(bytes) {
+            return Err("not a FITS file (no SIMPLE card)".into());
+        }
+        let mut start = 0usize;
+        for hdu in 0..1000 {
+            let (cards, data_start) = header_at(bytes, start)?;
+            let size = data_bytes(&cards)?;
+            let is_table = hdu > 0 && cards.text("XTENSION").as_deref() == Some("BINTABLE");
+            if is_table {
+                return Self::from_header(&cards, data_start, bytes.len());
+            }
+            let padded = size
+                .div_ceil(BLOCK)
+                .checked_mul(BLOCK)
+                .ok_or("size overflows")?;
+            start = data_start.checked_add(padded).ok_or("size overflows")?;
+            if start >= bytes.len() {
+                break;
+            }
+        }
+        Err("no binary table extension".into())
+    }
+
+    fn from_header(cards: &[HeaderCard], data_start: usize, len: usize) -> Result<Self, String> {
+        let row_bytes = whole(cards, "NAXIS1")?;
+        let rows = whole(cards, "NAXIS2")?;
+        let fields = whole(cards, "TFIELDS")?;
+        if fields > MAX_COLUMNS {
+            return Err(format!("TFIELDS = {fields}, more than {MAX_COLUMNS}"));
+        }
+        let end = row_bytes
+            .checked_mul(rows)
+            .and_then(|n| n.checked_add(data_start))
+            .ok_or("the table's size overflows")?;
+        if end > len {
+            return Err(format!(
+                "the table promises {rows} rows of {row_bytes} bytes, more than the file holds"
+            ));
+        }
+        let mut columns = Vec::with_capacity(fields);
+        let mut offset = 0usize;
+        for k in 1..=fields {
+            let form = cards
+                .text(&format!("TFORM{k}"))
+                .ok_or_else(|| format!("TFORM{k} is missing"))?;
+            let (repeat, kind) = tform(&form)
+                .ok_or_else(|| format!("TFORM{k} = {form:?} is not a column format"))?;
+            let w = width(kind, repeat)
+                .ok_or_else(|| format!("TFORM{k} = {form:?} is not a column format"))?;
+            columns.push(Column {
+                name: cards
+                    .text(&format!("TTYPE{k}"))
+                    .unwrap_or_else(|| format!("column {k}")),
+                offset,
+                kind,
+                repeat,
+                scale: cards.number(&format!("TSCAL{k}")).unwrap_or(1.0),
+                zero: cards.number(&format!("TZERO{k}")).unwrap_or(0.0),
+                null: cards.integer(&format!("TNULL{k}")),
+            });
+            offset = offset.checked_add(w).ok_or("the row's size overflows")?;
+        }
+        if offset > row_bytes {
+            return Err(format!(
+                "the columns need {offset} bytes per row, NAXIS1 gives {row_bytes}"
+            ));
+        }
+        Ok(BinTable {
+            columns,
+            row_bytes,
+            rows,
+            data_start,
+        })
+    }
+
+    pub fn names(&self) -> Vec<String> {
+        self.columns.iter().map(|c| c.name.clone()).collect()
+    }
+
+    pub fn rows(&self) -> usize {
+        self.rows
+    }
+
+    /// Column `c` of row `row` (both 0-based); the first element of a vector column.
+    pub fn value<'a>(&self, bytes: &'a [u8], row: usize, c: usize) -> Value<'a> {
+        let col = &self.columns[c];
+        let at = self.data_start + row * self.row_bytes + col.offset;
+        let take = |n: usize| bytes.get(at..at + n);
+        let int = |v: i64| {
+            if col.null == Some(v) {
+                Value::Empty
+            } else {
+                Value::Number(col.zero + col.scale * v as f64)
+            }
+        };
+        let float = |v: f64| {
+            if v.is_finite() {
+                Value::Number(col.zero + col.scale * v)
+            } else {
+                Value::Empty
+            }
+        };
+        if col.repeat == 0 {
+            return Value::Empty;
+        }
+        match col.kind {
+            b'A' => take(col.repeat)
+                .and_then(|b| std::str::from_utf8(b).ok())
+                .map_or(Value::Empty, |s| {
+                    Value::Text(s.trim_end_matches(['\0', ' ']))
+                }),
+            b'B' => take(1).map_or(Value::Empty, |b| int(i64::from(b[0]))),
+            b'I' => take(2).map_or(Value::Empty, |b| {
+                int(i64::from(i16::from_be_bytes([b[0], b[1]])))
+            }),
+            b'J' => take(4).map_or(Value::Empty, |b| {
+                int(i64::from(i32::from_be_bytes(
+                    b.try_into().expect("4 bytes"),
+                )))
+            }),
+            b'K' => take(8).map_or(Value::Empty, |b| {
+                int(i64::from_be_bytes(b.try_into().expect("8 bytes")))
+            }),
+            b'E' => take(4).map_or(Value::Empty, |b| {
+                float(f64::from(f32::from_be_bytes(
+                    b.try_into().expect("4 bytes"),
+                )))
+            }),
+            b'D' => take(8).map_or(Value::Empty, |b| {
+                float(f64::from_be_bytes(b.try_into().expect("8 bytes")))
+            }),
+            _ => Value::Empty,
+        }
+    }
+}

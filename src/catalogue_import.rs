@@ -1,0 +1,134 @@
+//! The user's catalogue files into the index, once: each configured file is read, parsed
+//! (`catalogue`) and indexed (`store::catalogue_index`); an index built from the same
+//! files (path, size, modification time) and the same column settings is reused.
+
+use std::path::{Path, PathBuf};
+
+use crate::catalogue::{is_fits, parse_csv, parse_fits_table, CatalogueError};
+use crate::config::CatalogueConfig;
+use crate::store::catalogue_index::{CatalogueIndex, IndexWriter, SourceFile};
+use crate::store::StoreError;
+
+/// Larger catalogue files are refused rather than read into memory.
+pub const MAX_FILE_BYTES: u64 = 4 << 30;
+
+#[derive(Debug, thiserror::Error)]
+pub enum ImportError {
+    #[error("catalogue file {path}: {source}")]
+    Read {
+        path: PathBuf,
+        #[source]
+        source: std::io::Error,
+    },
+    #[error("catalogue file {path}: {size} bytes, more than the {MAX_FILE_BYTES} this program reads; split it")]
+    TooLarge { path: PathBuf, size: u64 },
+    #[error(transparent)]
+    Parse(#[from] CatalogueError),
+    #[error("catalogue index: {0}")]
+    Store(#[from] StoreError),
+}
+
+/// What `ensure` found or did.
+#[derive(Debug, Clone)]
+pub struct Imported {
+    pub index: PathBuf,
+    pub stars: u64,
+    /// Whether the index was built now (rather than reused).
+    pub built: bool,
+}
+
+/// The settings an index depends on, as text to compare.
+fn settings_key(cfg: &CatalogueConfig) -> String {
+    serde_json::to_string(&cfg.columns).unwrap_or_default()
+}
+
+/// Where the index lives: `[catalogue] index`, else a file in the system's temporary
+/// folder named by the files it holds. `None` without catalogue files.
+pub fn index_path(cfg: &CatalogueConfig) -> Option<PathBuf> {
+    if cfg.files.is_empty() {
+        return None;
+    }
+    cfg.index.clone().or_else(|| {
+        let names: Vec<String> = cfg.files.iter().map(|p| p.display().to_string()).collect();
+        let hash = crate::text::stable_hash(&names.join("\n"));
+        Some(std::env::temp_dir().join(format!("subwatch-catalogue-{hash:016x}.sqlite")))
+    })
+}
+
+fn source_of(path: &Path) -> Result<SourceFile, ImportError> {
+    let meta = std::fs::metadata(path).map_err(|source| ImportError::Read {
+        path: path.to_path_buf(),
+        source,
+    })?;
+    let mtime_ns = meta
+        .modified()
+        .ok()
+        .and_then(|t| t.duration_since(std::time::UNIX_EPOCH).ok())
+        .map_or(0, |d| d.as_nanos() as i64);
+    Ok(SourceFile {
+        path: path.display().to_string(),
+        size: meta.len(),
+        mtime_ns,
+    })
+}
+
+/// Build the index if it is missing or stale (or `force`), and say what it holds.
+/// `None` when no catalogue is configured.
+pub fn ensure(cfg: &CatalogueConfig, force: bool) -> Result<Option<Imported>, ImportError> {
+    let Some(index) = index_path(cfg) else {
+        return Ok(None);
+    };
+    let sources = cfg
+        .files
+        .iter()
+        .map(|p| source_of(p))
+        .collect::<Result<Vec<_>, _>>()?;
+    let key = settings_key(cfg);
+    if !force && index.exists() {
+        if let Ok(existing) = CatalogueIndex::open(&index) {
+            if existing.is_current(&sources, &key) {
+                return Ok(Some(Imported {
+                    stars: existing.count()?,
+                    index,
+                    built: false,
+                }));
+            }
+        }
+    }
+    if let Some(parent) = index.parent() {
+        std::fs::create_dir_all(parent).map_err(|source| ImportError::Read {
+            path: parent.to_path_buf(),
+            source,
+        })?;
+    }
+    let mut writer = IndexWriter::create(&index)?;
+    for (path, source) in cfg.files.iter().zip(&sources) {
+        if source.size > MAX_FILE_BYTES {
+            return Err(ImportError::TooLarge {
+                path: path.clone(),
+                size: source.size,
+            });
+        }
+        let bytes = std::fs::read(path).map_err(|source| ImportError::Read {
+            path: path.clone(),
+            source,
+        })?;
+        let name = path.display().to_string();
+        let stars = if is_fits(&bytes) {
+            parse_fits_table(&name, &bytes, &cfg.columns)?
+        } else {
+            let text = String::from_utf8(bytes).map_err(|_| CatalogueError::Format {
+                file: name.clone(),
+                reason: "neither a FITS file nor UTF-8 text (CSV)".into(),
+            })?;
+            parse_csv(&name, &text, &cfg.columns)?
+        };
+        writer.add(&stars)?;
+    }
+    let built = writer.finish(&sources, &key)?;
+    Ok(Some(Imported {
+        stars: built.count()?,
+        index,
+        built: true,
+    }))
+}

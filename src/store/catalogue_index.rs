@@ -1,0 +1,287 @@
+//! The user's star catalogue, indexed once for cone queries: an SQLite file with the
+//! stars and an R*Tree (Guttman 1984; Beckmann et al. 1990) over each star's unit
+//! vector, so a cone is the box around its chord and a query over a million stars
+//! touches only the stars near it. The index remembers the files (path, size,
+//! modification time) and the column settings it was built from; a change to either
+//! makes it stale and it is built again.
+
+use std::path::{Path, PathBuf};
+
+use rusqlite::{params, Connection, OpenFlags};
+
+use crate::catalogue::CatalogueStar;
+
+use super::StoreError;
+
+/// A catalogue file as the index remembers it.
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct SourceFile {
+    pub path: String,
+    pub size: u64,
+    pub mtime_ns: i64,
+}
+
+pub struct CatalogueIndex {
+    conn: Connection,
+    path: PathBuf,
+}
+
+/// Builds an index in a temporary file beside `path`; `finish` renames it into place, so
+/// a reader never sees half an index.
+pub struct IndexWriter {
+    conn: Connection,
+    path: PathBuf,
+    tmp: PathBuf,
+    next_id: i64,
+    finished: bool,
+}
+
+// An abandoned build leaves no temporary file behind.
+impl Drop for IndexWriter {
+    fn drop(&mut self) {
+        if !self.finished {
+            let _ = std::fs::remove_file(&self.tmp);
+        }
+    }
+}
+
+fn unit(ra: f64, dec: f64) -> [f64; 3] {
+    let (a, d) = (ra.to_radians(), dec.to_radians());
+    [d.cos() * a.cos(), d.cos() * a.sin(), d.sin()]
+}
+
+impl IndexWriter {
+    pub fn create(path: &Path) -> Result<Self, StoreError> {
+        let tmp = path.with_extension(format!("building-{}", std::process::id()));
+        let err = |source| StoreError::Sqlite {
+            path: path.to_path_buf(),
+            source,
+        };
+        let _ = std::fs::remove_file(&tmp);
+        let conn = Connection::open(&tmp).map_err(err)?;
+        conn.execute_batch(
+            "PRAGMA journal_mode = OFF; PRAGMA synchronous = OFF;
+             CREATE TABLE meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
+             CREATE TABLE stars (id INTEGER PRIMARY KEY, name TEXT NOT NULL, ra REAL NOT NULL,
+                 dec REAL NOT NULL, pm_ra REAL, pm_dec REAL, epoch REAL NOT NULL, mags TEXT NOT NULL);
+             CREATE VIRTUAL TABLE stars_xyz USING rtree(id, x0, x1, y0, y1, z0, z1);
+             BEGIN;",
+        )
+        .map_err(err)?;
+        Ok(IndexWriter {
+            conn,
+            path: path.to_path_buf(),
+            tmp,
+            next_id: 1,
+            finished: false,
+        })
+    }
+
+    fn err(&self) -> impl Fn(rusqlite::Error) -> StoreError + '_ {
+        |source| StoreError::Sqlite {
+            path: self.path.clone(),
+            source,
+        }
+    }
+
+    pub fn add(&mut self, stars: &[CatalogueStar]) -> Result<(), StoreError> {
+        let mut star = self
+            .conn
+            .prepare_cached(
+                "INSERT INTO stars (id, name, ra, dec, pm_ra, pm_dec, epoch, mags)
+                 VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8)",
+            )
+            .map_err(self.err())?;
+        let mut boxed = self
+            .conn
+            .prepare_cached("INSERT INTO stars_xyz VALUES (?1, ?2, ?2, ?3, ?3, ?4, ?4)")
+            .map_err(self.err())?;
+        for s in stars {
+            let id = self.next_id;
+            self.next_id += 1;
+            let mags = serde_json::to_string(&s.mags).unwrap_or_else(|_| "[]".into());
+            star.execute(params![
+                id,
+                s.id,
+                s.ra_deg,
+                s.dec_deg,
+                s.pm_ra_mas_yr,
+                s.pm_dec_mas_yr,
+                s.epoch,
+                mags
+            ])
+            .map_err(|source| StoreError::Sqlite {
+                path: self.path.clone(),
+                source,
+            })?;
+            let v = unit(s.ra_deg, s.dec_deg);
+            boxed
+                .execute(params![id, v[0], v[1], v[2]])
+                .map_err(|source| StoreError::Sqlite {
+                    path: self.path.clone(),
+                    source,
+                })?;
+        }
+        Ok(())
+    }
+
+    /// Record what the index was built from, and move it into place.
+    pub fn finish(
+        mut self,
+        sources: &[SourceFile],
+        settings: &str,
+    ) -> Result<CatalogueIndex, StoreError> {
+        let meta = serde_json::to_string(sources).unwrap_or_default();
+        self.conn
+            .execute(
+                "INSERT INTO meta (key, value) VALUES ('sources', ?1), ('settings', ?2)",
+                params![meta, settings],
+            )
+            .map_err(self.err())?;
+        self.conn.execute_batch("COMMIT;").map_err(self.err())?;
+        let (path, tmp) = (self.path.clone(), self.tmp.clone());
+        self.finished = true;
+        drop(self);
+        std::fs::rename(&tmp, &path).map_err(|source| StoreError::File {
+            path: path.clone(),
+            source,
+        })?;
+        CatalogueIndex::open(&path)
+    }
+}
+
+impl CatalogueIndex {
+    /// Open an index to read.
+    pub fn open(path: &Path) -> Result<Self, StoreError> {
+        let conn = Connection::open_with_flags(
+            path,
+            OpenFlags::SQLITE_OPEN_READ_ONLY | OpenFlags::SQLITE_OPEN_NO_MUTEX,
+        )
+        .map_err(|source| StoreError::Sqlite {
+            path: path.to_path_buf(),
+            source,
+        })?;
+        Ok(CatalogueIndex {
+            conn,
+            path: path.to_path_buf(),
+        })
+    }
+
+    fn err(&self) -> impl Fn(rusqlite::Error) -> StoreError + '_ {
+        |source| StoreError::Sqlite {
+            path: self.path.clone(),
+            source,
+        }
+    }
+
+    /// Whether the index was built from exactly these files and settings.
+    pub fn is_current(&self, sources: &[SourceFile], settings: &str) -> bool {
+        let get = |key: &str| -> Option<String> {
+            self.conn
+                .query_row("SELECT value FROM meta WHERE key = ?1", [key], |r| r.get(0))
+                .ok()
+        };
+        let recorded: Option<Vec<SourceFile>> =
+            get("sources").and_then(|s| serde_json::from_str(&s).ok());
+        recorded.as_deref() == Some(sources) && get("settings").as_deref() == Some(settings)
+    }
+
+    pub fn count(&self) -> Result<u64, StoreError> {
+        self.conn
+            .query_row("SELECT count(*) FROM stars", [], |r| r.get::<_, i64>(0))
+            .map(|n| n.max(0) as u64)
+            .map_err(self.err())
+    }
+
+    /// Every star within `radius_deg` of (ra, dec) at its catalogue position.
+    pub fn cone(
+        &self,
+        ra: f64,
+        dec: f64,
+        radius_deg: f64,
+    ) -> Result<Vec<CatalogueStar>, StoreError> {
+        let r = radius_deg.clamp(0.0, 180.0);
+        let c = unit(ra, dec);
+        // The chord of the cone's radius, and a little for the index's 32-bit boxes.
+        let chord = 2.0 * (r.to_radians() / 2.0).sin() + 1e-6;
+        let mut q = self
+            .conn
+            .prepare_cached(
+                "SELECT s.name, s.ra, s.dec, s.pm_ra, s.pm_dec, s.epoch, s.mags
+                 FROM stars_xyz b JOIN stars s ON s.id = b.id
+                 WHERE b.x1 >= ?1 AND b.x0 <= ?2 AND b.y1 >= ?3 AND b.y0 <= ?4
+                   AND b.z1 >= ?5 AND b.z0 <= ?6",
+            )
+            .map_err(self.err())?;
+        let rows = q
+            .query_map(
+                params![
+                    c[0] - chord,
+                    c[0] + chord,
+                    c[1] - chord,
+                    c[1] + chord,
+                    c[2] - chord,
+                    c[2] + chord
+                ],
+                |row| {
+                    let mags: String = row.get(6)?;
+                    Ok(CatalogueStar {
+                        id: row.get(0)?,
+                        ra_deg: row.get(1)?,
+                        dec_deg: row.get(2)?,
+                        pm_ra_mas_yr: row.get(3)?,
+                        pm_dec_mas_yr: row.get(4)?,
+                        epoch: row.get(5)?,
+                        mags: serde_json::from_str(&mags).unwrap_or_default(),
+                    })
+                },
+            )
+            .map_err(self.err())?;
+        let mut out = Vec::new();
+        for s in rows {
+            let s = s.map_err(self.err())?;
+            if crate::astrometry::separation_deg((ra, dec), (s.ra_deg, s.dec_deg)) <= r {
+                out.push(s);
+            }
+        }
+        Ok(out)
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn a_cone_returns_exactly_the_stars_inside_it() {
+        let dir = std::env::temp_dir().join(format!("subwatch-idx-{}", std::process::id()));
+        std::fs::create_dir_all(&dir).unwrap();
+        let path = dir.join("index.sqlite");
+        let mut w = IndexWriter::create(&path).unwrap();
+        // A grid across RA = 0 near the pole and the equator.
+        let mut stars = Vec::new();
+        for i in 0..200 {
+            for dec in [0.0, 89.5] {
+                stars.push(CatalogueStar {
+                    id: format!("{i}-{dec}"),
+                    ra_deg: (f64::from(i) * 0.01 - 1.0).rem_euclid(360.0),
+                    dec_deg: dec,
+                    pm_ra_mas_yr: None,
+                    pm_dec_mas_yr: None,
+                    epoch: 2000.0,
+                    mags: vec![("V".into(), 12.0)],
+                });
+            }
+        }
+        w.add(&stars).unwrap();
+        let idx = w.finish(&[], "s").unwrap();
+        assert!(idx.is_current(&[], "s"));
+        assert!(!idx.is_current(&[], "t"));
+        let got = idx.cone(0.0, 0.0, 0.105).unwrap();
+        // RA from 359.895 to 0.105 at the equator: i from 90 to 110 (21 stars; the
+        // ends at exactly 0.105 deg by arithmetic may fall either side).
+        assert!((19..=21).contains(&got.len()), "{}", got.len());
+        assert!(got.iter().all(|s| s.dec_deg == 0.0));
+        std::fs::remove_dir_all(&dir).unwrap();
+    }
+}
