@@ -44,6 +44,9 @@ pub fn analyse_records(
         );
         groups.entry(key).or_default().push(r);
     }
+    // Per target, each filter group's catalogue of the night and its reference frame, for
+    // the colors between filters.
+    let mut bands: BTreeMap<String, Vec<BandEntry>> = BTreeMap::new();
     for ((target, filter), frames) in groups {
         let night_label = majority(
             frames
@@ -67,6 +70,23 @@ pub fn analyse_records(
             limits: judged.limits.clone(),
         });
         let found = &judged.findings;
+        let reference = judged
+            .frames
+            .iter()
+            .find_map(|j| j.placement.as_ref().map(|p| p.reference.clone()))
+            .and_then(|path| frames.iter().find(|r| r.identity.path == path).copied());
+        if let (Some(r), false, false) = (reference, target.is_empty(), filter.is_empty()) {
+            if let (Some(wcs), false) = (r.wcs.clone(), found.catalog.is_empty()) {
+                bands.entry(target.clone()).or_default().push(BandEntry {
+                    filter: filter.clone(),
+                    sources: found.catalog.clone(),
+                    limit_mag: found.limit_mag,
+                    reference: r.identity.path.clone(),
+                    scale_arcsec: wcs.scale_arcsec(),
+                    wcs,
+                });
+            }
+        }
         if let (Catalogues::Keep(s), Some(n), Some(limit)) =
             (&mut store, &night_label, found.limit_mag)
         {
@@ -146,8 +166,14 @@ pub fn analyse_records(
                 filter: Some(filter.clone()).filter(|t| !t.is_empty()),
                 catalogue: None,
                 catalogue_depth_mag: None,
+                mag: None,
+                mag_err: None,
+                mag_band: None,
             });
         }
+    }
+    for (target, entries) in &bands {
+        doc.anomalies.extend(band_colors(target, entries));
     }
     // Darks, flats and bias frames, judged as calibration for these lights.
     let all: Vec<&FrameRecord> = records.iter().collect();
@@ -197,6 +223,82 @@ pub fn analyse_records(
     Ok(doc)
 }
 
+/// One filter group of a target, for the colors between filters.
+struct BandEntry {
+    filter: String,
+    sources: Vec<crate::night::CatalogSource>,
+    limit_mag: Option<f64>,
+    reference: String,
+    wcs: crate::frame::wcs::Wcs,
+    scale_arcsec: f64,
+}
+
+/// Sources far from the field's color between two of a target's filters
+/// (`night::bands`), as color anomalies seen in each filter's reference frame.
+fn band_colors(target: &str, entries: &[BandEntry]) -> Vec<AnomalyRecord> {
+    use crate::night::bands::{band_outliers, BandGroup};
+    if entries.len() < 2 {
+        return Vec::new();
+    }
+    let groups: Vec<BandGroup<'_>> = entries
+        .iter()
+        .map(|e| BandGroup {
+            filter: &e.filter,
+            sources: &e.sources,
+            limit_mag: e.limit_mag,
+        })
+        .collect();
+    let scale = entries
+        .iter()
+        .map(|e| e.scale_arcsec)
+        .fold(0.0, f64::max)
+        .max(1.0);
+    band_outliers(&groups, 1.5 * scale / 3600.0)
+        .into_iter()
+        .map(|o| {
+            let (a, b) = (&entries[o.groups.0], &entries[o.groups.1]);
+            let detections = [a, b]
+                .iter()
+                .filter_map(|e| {
+                    let (x, y) = e.wcs.sky_to_pixel(o.ra_deg, o.dec_deg)?;
+                    Some(DetectionRecord {
+                        path: e.reference.clone(),
+                        x,
+                        y,
+                    })
+                })
+                .collect();
+            let ratio = |m: f64| 10f64.powf(-0.4 * m);
+            AnomalyRecord {
+                kind: crate::night::AnomalyKind::Color,
+                ra_deg: Some(o.ra_deg),
+                dec_deg: Some(o.dec_deg),
+                detections,
+                detail: crate::night::Detail::BandColor(crate::night::detail::BandColorDetail {
+                    bands: [a.filter.clone(), b.filter.clone()],
+                    color_mag: o.color_mag,
+                    field_color_mag: o.field_color_mag,
+                    flux_ratio: ratio(o.color_mag),
+                    field_flux_ratio: ratio(o.field_color_mag),
+                    z: o.z,
+                    sigma_mag: o.sigma_mag,
+                    tested: o.tested,
+                    false_alarm_probability: o.false_alarm_probability,
+                    instrumental_mag: a.sources[o.sources.0].mag,
+                    index: "m(first) - m(second), instrumental, robust z-score against the field",
+                }),
+                target: Some(target.to_string()),
+                filter: Some(format!("{}, {}", a.filter, b.filter)),
+                catalogue: None,
+                catalogue_depth_mag: None,
+                mag: None,
+                mag_err: None,
+                mag_band: None,
+            }
+        })
+        .collect()
+}
+
 /// A frame without a sky fit of its own that registered on a reference frame with one:
 /// the reference's fit carried through the registration (`astrometry::carry`).
 fn carried_fit(
@@ -235,7 +337,9 @@ pub fn cross_match(
     let frames: BTreeMap<&str, &NightFrameRecord> =
         doc.frames.iter().map(|f| (f.path.as_str(), f)).collect();
     let mut found = Vec::with_capacity(doc.anomalies.len());
+    let mut calibrated = Vec::with_capacity(doc.anomalies.len());
     for a in &doc.anomalies {
+        calibrated.push(calibrated_mag(a, &frames));
         use crate::night::AnomalyKind::{HotPixel, Trail};
         // A streak or a detector defect lies on no star.
         let (Some(ra), Some(dec), false) =
@@ -283,11 +387,36 @@ pub fn cross_match(
             }
         }
     }
-    for (a, (m, depth)) in doc.anomalies.iter_mut().zip(found) {
+    for ((a, (m, depth)), cal) in doc.anomalies.iter_mut().zip(found).zip(calibrated) {
         a.catalogue = m;
         a.catalogue_depth_mag = depth;
+        if let Some((mag, err, band)) = cal {
+            (a.mag, a.mag_err, a.mag_band) = (Some(mag), Some(err), band);
+        }
     }
     Ok(())
+}
+
+/// An anomaly's instrumental magnitude through its first frame's zero point: m = ZP +
+/// m_inst + 2.5 log10(t). The uncertainty adds the zero point's to the photon noise,
+/// taken as sky-limited from the frame's depth (SNR = 5 · 10^(0.4 (m_limit − m)); for a
+/// bright source the zero point's term dominates anyway).
+fn calibrated_mag(
+    a: &AnomalyRecord,
+    frames: &BTreeMap<&str, &NightFrameRecord>,
+) -> Option<(f64, f64, Option<String>)> {
+    let inst = a.detail.instrumental_mag()?;
+    let f = frames.get(a.detections.first()?.path.as_str())?;
+    let m = f.metrics.as_ref()?;
+    let zp = m.zero_point_mag?;
+    let t = f.exposure_s.filter(|t| *t > 0.0).unwrap_or(1.0);
+    let mag = inst + zp + 2.5 * t.log10();
+    let photon = m
+        .limit_mag
+        .map_or(0.0, |lim| 1.0857 / (5.0 * 10f64.powf(0.4 * (lim - mag))));
+    let err = m.zero_point_err_mag.unwrap_or(0.0).hypot(photon);
+    mag.is_finite()
+        .then(|| (mag, err, m.zero_point_band.clone()))
 }
 
 /// The night a document is mostly about (the label most of its frames carry).

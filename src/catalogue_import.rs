@@ -9,8 +9,9 @@ use crate::config::CatalogueConfig;
 use crate::store::catalogue_index::{CatalogueIndex, IndexWriter, SourceFile};
 use crate::store::StoreError;
 
-/// Larger catalogue files are refused rather than read into memory.
-pub const MAX_FILE_BYTES: u64 = 4 << 30;
+/// Larger catalogue files are refused rather than read into memory (a million stars
+/// take about 70 MB of CSV).
+pub const MAX_FILE_BYTES: u64 = 1 << 30;
 
 #[derive(Debug, thiserror::Error)]
 pub enum ImportError {
@@ -42,8 +43,8 @@ fn settings_key(cfg: &CatalogueConfig) -> String {
     serde_json::to_string(&cfg.columns).unwrap_or_default()
 }
 
-/// Where the index lives: `[catalogue] index`, else a file in the system's temporary
-/// folder named by the files it holds. `None` without catalogue files.
+/// Where the index lives: `[catalogue] index`, else a file in the user's cache folder
+/// named by the files it holds. `None` without catalogue files.
 pub fn index_path(cfg: &CatalogueConfig) -> Option<PathBuf> {
     if cfg.files.is_empty() {
         return None;
@@ -51,7 +52,26 @@ pub fn index_path(cfg: &CatalogueConfig) -> Option<PathBuf> {
     cfg.index.clone().or_else(|| {
         let names: Vec<String> = cfg.files.iter().map(|p| p.display().to_string()).collect();
         let hash = crate::text::stable_hash(&names.join("\n"));
-        Some(std::env::temp_dir().join(format!("subwatch-catalogue-{hash:016x}.sqlite")))
+        // The user's own cache folder; the shared temporary folder only without one, and
+        // then under a name with the user's id.
+        let folder = std::env::var_os("XDG_CACHE_HOME")
+            .map(PathBuf::from)
+            .filter(|p| p.is_absolute())
+            .or_else(|| {
+                std::env::var_os("HOME")
+                    .map(PathBuf::from)
+                    .filter(|p| p.is_absolute() && p.is_dir())
+                    .map(|h| h.join(".cache"))
+            })
+            .map(|c| c.join("subwatch"));
+        Some(match folder {
+            Some(f) => f.join(format!("catalogue-{hash:016x}.sqlite")),
+            None => std::env::temp_dir().join(format!(
+                "subwatch-{}-catalogue-{hash:016x}.sqlite",
+                // SAFETY: getuid cannot fail and touches no memory.
+                unsafe { libc::getuid() }
+            )),
+        })
     })
 }
 
@@ -109,10 +129,25 @@ pub fn ensure(cfg: &CatalogueConfig, force: bool) -> Result<Option<Imported>, Im
                 size: source.size,
             });
         }
-        let bytes = std::fs::read(path).map_err(|source| ImportError::Read {
-            path: path.clone(),
-            source,
-        })?;
+        // Read no more than the limit whatever the file grew to since it was measured.
+        let mut bytes = Vec::new();
+        std::fs::File::open(path)
+            .and_then(|f| {
+                std::io::Read::read_to_end(
+                    &mut std::io::Read::take(f, MAX_FILE_BYTES + 1),
+                    &mut bytes,
+                )
+            })
+            .map_err(|source| ImportError::Read {
+                path: path.clone(),
+                source,
+            })?;
+        if bytes.len() as u64 > MAX_FILE_BYTES {
+            return Err(ImportError::TooLarge {
+                path: path.clone(),
+                size: bytes.len() as u64,
+            });
+        }
         let name = path.display().to_string();
         let stars = if is_fits(&bytes) {
             parse_fits_table(&name, &bytes, &cfg.columns)?
@@ -123,7 +158,7 @@ pub fn ensure(cfg: &CatalogueConfig, force: bool) -> Result<Option<Imported>, Im
             })?;
             parse_csv(&name, &text, &cfg.columns)?
         };
-        writer.add(&stars)?;
+        writer.add(&crate::catalogue::merge_bands(stars))?;
     }
     let built = writer.finish(&sources, &key)?;
     Ok(Some(Imported {

@@ -100,6 +100,14 @@ pub struct AnomalyRecord {
     /// catalogue down to magnitude X".
     #[serde(skip_serializing_if = "Option::is_none", serialize_with = "finite")]
     pub catalogue_depth_mag: Option<f64>,
+    /// Calibrated magnitude in `mag_band` through the first detection's frame zero point,
+    /// with its 1σ uncertainty (zero point and photon noise).
+    #[serde(skip_serializing_if = "Option::is_none", serialize_with = "finite")]
+    pub mag: Option<f64>,
+    #[serde(skip_serializing_if = "Option::is_none", serialize_with = "finite")]
+    pub mag_err: Option<f64>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub mag_band: Option<String>,
 }
 
 /// A catalogue star an anomaly lies on.

@@ -55,6 +55,7 @@ const MARKER: &str = ".subwatch-demo";
 /// An invented site (not a real observatory): its latitude, east longitude, height.
 pub const SITE: (f64, f64, f64) = (39.4172, -2.0865, 1210.0);
 const FIELD_A: (f64, f64) = (246.5, 27.6);
+const FIELD_C: (f64, f64) = (231.8, 48.3);
 const NIGHT: &str = "2026-03-14";
 
 fn io(path: &Path) -> impl FnOnce(std::io::Error) -> DemoError + '_ {
@@ -85,7 +86,87 @@ pub fn demo_config(out: &Path, page: Option<std::net::SocketAddr>) -> Config {
     c.report.folder = Some(out.join("reports"));
     c.actions.accepted_lists = true;
     c.actions.lists_folder = Some(out.join("accepted"));
+    // The observatory's catalogue of its fields, in V and I.
+    c.catalogue.files = vec![out.join("catalogue").join("kestrel-fields.csv")];
+    c.catalogue.index = Some(out.join("state").join("catalogue-index.sqlite"));
+    c.catalogue.columns.mags = vec![
+        ("vmag".into(), Some("V".into())),
+        ("imag".into(), Some("I".into())),
+    ];
+    c.catalogue.filter_bands = vec![("L".into(), "V".into())];
+    c.catalogue.search_deg = 1.0;
     c
+}
+
+/// The plans of Kestrel Field C, imaged through V then I, with one star far brighter in
+/// I than its color says.
+fn field_c_plans(start: f64, cadence: f64) -> [NightPlan; 2] {
+    let base = NightPlan {
+        object: "Kestrel Field C".into(),
+        center_deg: FIELD_C,
+        field_seed: 63,
+        frames: 6,
+        star_count: 300,
+        cosmic_rays_per_frame: 0.0,
+        hot_pixels: 0,
+        ..NightPlan::full(43).quiet()
+    };
+    let v = NightPlan {
+        filter: "V".into(),
+        band_star_factor: Some(1.0),
+        start: iso(start),
+        ..base.clone()
+    };
+    let i = NightPlan {
+        seed: 44,
+        filter: "I".into(),
+        color_term: 1.0,
+        band_star_factor: Some(BAND_STAR_FACTOR),
+        start: iso(start + 6.0 * cadence),
+        ..base
+    };
+    [v, i]
+}
+
+/// How much brighter the star of Field C is in I than in V (2.26 mag).
+const BAND_STAR_FACTOR: f64 = 8.0;
+
+/// The catalogue of the demo's fields, as an observatory would have prepared it: every
+/// star of Fields A and C with V and I magnitudes (V from the flux a 1 e⁻/ADU camera
+/// collects, 25 − 2.5 log10(e⁻/s); I from the star's color). Tonight's new source is not
+/// in it, as it would not be.
+fn catalogue_csv(plans: &[&NightPlan]) -> String {
+    let mut out = String::from("id,ra_deg,dec_deg,vmag,imag\n");
+    for (k, plan) in plans.iter().enumerate() {
+        for (n, (ra, dec, flux_s, color, band_star)) in crate::sim::night::field_on_sky(plan)
+            .into_iter()
+            .enumerate()
+        {
+            let v = 25.0 - 2.5 * flux_s.log10();
+            let i = if band_star {
+                v - 2.5 * BAND_STAR_FACTOR.log10()
+            } else {
+                v - color
+            };
+            out.push_str(&format!(
+                "KRC-{}{n:04},{ra:.7},{dec:.7},{v:.3},{i:.3}\n",
+                ["A", "C"][k.min(1)]
+            ));
+        }
+    }
+    out
+}
+
+/// A frame as a capture program without a sky solution writes it: the mount's pointing
+/// (RA, DEC) instead of a WCS.
+fn pointing_only(keys: &mut Vec<(String, crate::frame::cards::OutValue)>, centre: (f64, f64)) {
+    const WCS: [&str; 10] = [
+        "CTYPE1", "CTYPE2", "CRPIX1", "CRPIX2", "CRVAL1", "CRVAL2", "CD1_1", "CD1_2", "CD2_1",
+        "CD2_2",
+    ];
+    keys.retain(|(k, _)| !WCS.contains(&k.as_str()));
+    keys.push(("RA".into(), crate::frame::cards::OutValue::Real(centre.0)));
+    keys.push(("DEC".into(), crate::frame::cards::OutValue::Real(centre.1)));
 }
 
 fn iso(t: f64) -> String {
@@ -98,7 +179,7 @@ fn iso(t: f64) -> String {
 /// of each of tonight's frames).
 fn render_all(
     progress: &mut dyn FnMut(&str, usize, usize),
-) -> (Vec<NightFrame>, Vec<(NightFrame, &'static str)>) {
+) -> (Vec<NightFrame>, Vec<(NightFrame, &'static str)>, String) {
     // Astronomical dawn at the site on the morning of the 15th: tonight ends in twilight.
     let evening = crate::frame::header::parse_iso_time("2026-03-14T18:00:00").unwrap_or(0.0);
     let dawn = crate::sky::sun_crossings(evening, -18.0, SITE.0, SITE.1)
@@ -117,22 +198,41 @@ fn render_all(
     b.bayer = crate::frame::bayer::BayerPattern::parse("RGGB");
     b.red_star = true;
     b.frames = 10;
-    b.start = iso(dawn - 35.6 * cadence - 11.0 * cadence - 600.0);
+    b.start = iso(b_start_minus(dawn, cadence));
+    let [c_v, c_i] = field_c_plans(b_start_minus(dawn, cadence) - 13.0 * cadence, cadence);
     let mut prev = NightPlan::full(40).quiet();
     prev.center_deg = FIELD_A;
     prev.frames = 8;
     prev.start = iso(dawn - 86_400.0 - 20.0 * cadence);
-    progress("rendering the previous night", 0, 3);
+    progress("rendering the previous night", 0, 4);
     let (previous, _) = render_night(&prev);
-    progress("rendering tonight (color target)", 1, 3);
+    progress("rendering tonight (two filters)", 1, 4);
+    let (mut band_frames, _) = render_night(&c_v);
+    band_frames.extend(render_night(&c_i).0);
+    progress("rendering tonight (color target)", 2, 4);
     let (color, _) = render_night(&b);
-    progress("rendering tonight (Kestrel Field A)", 2, 3);
-    let (mono, _) = render_night(&a);
-    progress("rendered", 3, 3);
-    let mut tonight: Vec<(NightFrame, &'static str)> =
-        color.into_iter().map(|f| (f, "kestrel-field-b")).collect();
+    progress("rendering tonight (Kestrel Field A)", 3, 4);
+    let (mut mono, _) = render_night(&a);
+    progress("rendered", 4, 4);
+    // Fields A and C come without a sky solution in their headers: subwatch fits them.
+    for f in &mut mono {
+        pointing_only(&mut f.keys, FIELD_A);
+    }
+    for f in &mut band_frames {
+        pointing_only(&mut f.keys, FIELD_C);
+    }
+    let mut tonight: Vec<(NightFrame, &'static str)> = band_frames
+        .into_iter()
+        .map(|f| (f, "kestrel-field-c"))
+        .collect();
+    tonight.extend(color.into_iter().map(|f| (f, "kestrel-field-b")));
     tonight.extend(mono.into_iter().map(|f| (f, "kestrel-field-a")));
-    (previous, tonight)
+    (previous, tonight, catalogue_csv(&[&a, &c_v]))
+}
+
+/// When the color target's sequence starts: before Field A's, which ends in twilight.
+fn b_start_minus(dawn: f64, cadence: f64) -> f64 {
+    dawn - 35.6 * cadence - 11.0 * cadence - 600.0
 }
 
 /// Run the demo into `out` (created; refused when it holds anything but an earlier demo).
@@ -157,6 +257,8 @@ pub fn run(
     for sub in [
         "capture/kestrel-field-a",
         "capture/kestrel-field-b",
+        "capture/kestrel-field-c",
+        "catalogue",
         "capture/calibration",
         "state",
         "previous",
@@ -168,7 +270,11 @@ pub fn run(
     let out = std::fs::canonicalize(out).map_err(io(out))?;
     let config = demo_config(&out, page);
 
-    let (previous, tonight) = render_all(progress);
+    let (previous, tonight, catalogue) = render_all(progress);
+    let catalogue_path = &config.catalogue.files[0];
+    std::fs::write(catalogue_path, catalogue).map_err(io(catalogue_path))?;
+    crate::catalogue_import::ensure(&config.catalogue, false)
+        .map_err(|e| DemoError::Folder(format!("the demo's catalogue: {e}")))?;
 
     // The previous night goes straight into the store, as the daemon would have left it.
     {

@@ -15,6 +15,12 @@ use crate::record::FrameRecord;
 use crate::store::catalogue_index::CatalogueIndex;
 use crate::store::StoreError;
 
+/// Plate scales outside this range (arcsec per pixel) are header mistakes, not optics.
+const MIN_SCALE_ARCSEC: f64 = 0.05;
+const MAX_SCALE_ARCSEC: f64 = 600.0;
+/// No frame's search needs a cone wider than this (degrees).
+const MAX_CONE_DEG: f64 = 30.0;
+
 /// What fitting frames to the sky needs from the configuration.
 #[derive(Debug, Clone, Default, Serialize, Deserialize)]
 pub struct SkyOptions {
@@ -42,14 +48,16 @@ fn hint_of(rec: &FrameRecord, header: &FrameHeader, search_deg: f64) -> Option<H
         }
         None => (header.ra_deg?, header.dec_deg?, m.plate_scale_arcsec?),
     };
-    (ra.is_finite() && dec.is_finite() && (-90.0..=90.0).contains(&dec) && scale > 0.0).then_some(
-        Hint {
-            ra_deg: ra.rem_euclid(360.0),
-            dec_deg: dec,
-            scale_arcsec: scale,
-            search_deg,
-        },
-    )
+    (ra.is_finite()
+        && dec.is_finite()
+        && (-90.0..=90.0).contains(&dec)
+        && (MIN_SCALE_ARCSEC..=MAX_SCALE_ARCSEC).contains(&scale))
+    .then_some(Hint {
+        ra_deg: ra.rem_euclid(360.0),
+        dec_deg: dec,
+        scale_arcsec: scale,
+        search_deg,
+    })
 }
 
 /// The band that calibrates a filter: the configured one, else the band of the filter's
@@ -91,11 +99,10 @@ pub fn fit_record(
         return Ok(());
     };
     let (w, h) = (m.width, m.height);
-    let half_diag = 0.5 * (w as f64).hypot(h as f64) * hint.scale_arcsec / 3600.0;
     let cat = index.cone(
         hint.ra_deg,
         hint.dec_deg,
-        hint.search_deg + 1.2 * half_diag + 0.02,
+        astrometry::cone_radius_deg(&hint, w, h).min(MAX_CONE_DEG),
     )?;
     let year = rec.time_unix.map_or(2000.0, julian_year);
     let sky: Vec<SkyStar> = cat
@@ -121,7 +128,20 @@ pub fn fit_record(
         width: w,
         height: h,
     };
-    let solution: Option<Solution> = match solve(&frame, &sky, hint) {
+    let priors: Vec<&crate::frame::wcs::Wcs> = header.wcs.iter().collect();
+    // Writers differ on whether XPIXSZ is binned already: a binned frame that does not
+    // fit at the scale its header gives is tried at that scale over the binning.
+    let binning = header.x_binning.unwrap_or(1.0);
+    let found = solve(&frame, &sky, hint, &priors).or_else(|| {
+        (binning > 1.0 && header.wcs.is_none()).then(|| {
+            let hint = Hint {
+                scale_arcsec: hint.scale_arcsec / binning,
+                ..hint
+            };
+            solve(&frame, &sky, hint, &[])
+        })?
+    });
+    let solution: Option<Solution> = match found {
         Some(mut sol) => {
             if let Some(hw) = &header.wcs {
                 sol.fit.header_offset_px = Some(disagreement_px(&sol.fit.wcs, hw, w, h));
@@ -182,7 +202,7 @@ pub fn nearest(
     radius_arcsec: f64,
     year: f64,
 ) -> Result<Option<(CatalogueStar, f64)>, StoreError> {
-    let near = index.cone(ra, dec, radius_arcsec / 3600.0 + 0.01)?;
+    let near = index.cone(ra, dec, (radius_arcsec / 3600.0 + 0.01).min(1.0))?;
     Ok(near
         .into_iter()
         .map(|s| {

@@ -27,7 +27,22 @@ fn the_demo_night_finds_everything_it_holds() {
             .unwrap();
     let all = doc["frames"].as_array().unwrap();
     let frames: Vec<&serde_json::Value> = all.iter().filter(|f| f["kind"] == "light").collect();
-    assert_eq!(frames.len(), 50);
+    assert_eq!(frames.len(), 62);
+    // Fields A and C carry no WCS: every frame of theirs is fitted to the demo's
+    // catalogue and calibrated (zero point and depth); Field B is not in the catalogue.
+    for f in &frames {
+        let target = f["target"].as_str().unwrap();
+        if target == "Kestrel Field B" {
+            continue;
+        }
+        assert_eq!(f["sky_fit"]["source"], "fitted", "{}", f["path"]);
+        assert!(f["sky_fit"]["rms_arcsec"].as_f64().unwrap() < 0.6);
+        // V from 25 − 2.5 log10(e⁻/s) with a gain of 1: the zero point is 25, less the
+        // light outside the photometric aperture (Moffat wings, a few per cent).
+        let zp = f["zero_point_mag"].as_f64().unwrap();
+        assert!((24.9..=25.02).contains(&zp), "{}: {zp}", f["path"]);
+        assert!(f["limit_mag"].as_f64().is_some());
+    }
     // The evening's calibration set: one frame of each fault found with its own reason,
     // and not one false warning on the good frames.
     let calibration: Vec<&serde_json::Value> =
@@ -92,6 +107,23 @@ fn the_demo_night_finds_everything_it_holds() {
             "the summary finds a {kind}: {kinds:?}"
         );
     }
+    // The star bright in one band only, between Field C's V and I frames, found and
+    // known to the catalogue; no other color anomaly between filters.
+    let band: Vec<&serde_json::Value> = anomalies
+        .iter()
+        .filter(|a| a["kind"] == "color" && a["detail"]["bands"].is_array())
+        .collect();
+    assert_eq!(band.len(), 1, "{band:?}");
+    assert!(band[0]["detail"]["z"].as_f64().unwrap().abs() > 5.0);
+    assert!(band[0]["catalogue"]["id"].is_string());
+    // Tonight's new source is not in the catalogue, and so leads the list.
+    let new: Vec<&serde_json::Value> = anomalies
+        .iter()
+        .filter(|a| a["kind"] == "new_source")
+        .collect();
+    assert!(new
+        .iter()
+        .any(|a| a["catalogue"].is_null() && a["catalogue_depth_mag"].is_number()));
     let cosmic = anomalies
         .iter()
         .filter(|a| a["detail"]["cosmic_ray"] == true)

@@ -156,20 +156,21 @@ fn match_stars(
     let cell = tol.max(0.5) * 2.0;
     let mut grid: std::collections::HashMap<(i64, i64), Vec<usize>> =
         std::collections::HashMap::new();
+    let sane = |p: &(f64, f64)| p.0.abs() < 1e9 && p.1.abs() < 1e9;
     for (j, q) in cat_px.iter().enumerate() {
-        if let Some(q) = q {
+        if let Some(q) = q.filter(|q| sane(q)) {
             grid.entry(((q.0 / cell).floor() as i64, (q.1 / cell).floor() as i64))
                 .or_default()
                 .push(j);
         }
     }
     let mut cand = Vec::new();
-    for (i, p) in frame.iter().enumerate() {
+    for (i, p) in frame.iter().enumerate().filter(|(_, p)| sane(p)) {
         let (cx, cy) = ((p.0 / cell).floor() as i64, (p.1 / cell).floor() as i64);
         for gx in cx - 1..=cx + 1 {
             for gy in cy - 1..=cy + 1 {
                 for &j in grid.get(&(gx, gy)).into_iter().flatten() {
-                    let q = cat_px[j].expect("gridded stars have a position");
+                    let Some(q) = cat_px[j] else { continue };
                     let d = (q.0 - p.0).hypot(q.1 - p.1);
                     if d <= tol {
                         cand.push((i, j, d));
@@ -253,7 +254,9 @@ fn fit_tan(
     order: u32,
 ) -> Option<(Wcs, f64)> {
     let t = terms(order);
-    if points.len() < t.len() + 2 {
+    // A polynomial needs three stars per term to be trusted; the linear fit, five.
+    let needed = if order >= 2 { 3 * t.len() } else { t.len() + 2 };
+    if points.len() < needed {
         return None;
     }
     // Scale the offsets so the normal equations stay well conditioned.
@@ -262,8 +265,8 @@ fn fit_tan(
         .map(|p| p.u.abs().max(p.v.abs()))
         .fold(1.0, f64::max);
     let mut crval = start;
-    let mut coef = (Vec::new(), Vec::new());
-    for _ in 0..4 {
+    let mut coef = None;
+    for _ in 0..8 {
         let mut m = vec![vec![0.0; t.len()]; t.len()];
         let mut bx = vec![0.0; t.len()];
         let mut by = vec![0.0; t.len()];
@@ -284,16 +287,15 @@ fn fit_tan(
         }
         let cx = solve_linear(m.clone(), bx)?;
         let cy = solve_linear(m, by)?;
-        // Move the reference point onto the constant terms' sky position.
-        let shifted = tan([0.0, 0.0], crval, [[1.0, 0.0], [0.0, 1.0]]).pixel_to_sky(cx[0], cy[0]);
-        crval = shifted;
-        let done = cx[0].hypot(cy[0]) < 1e-10;
-        coef = (cx, cy);
-        if done {
+        // Done when the constant terms vanish: the coefficients then belong to this
+        // reference point. Otherwise move it onto their sky position and fit again.
+        if cx[0].hypot(cy[0]) < 1e-10 {
+            coef = Some((cx, cy));
             break;
         }
+        crval = tan([0.0, 0.0], crval, [[1.0, 0.0], [0.0, 1.0]]).pixel_to_sky(cx[0], cy[0]);
     }
-    let (cx, cy) = coef;
+    let (cx, cy) = coef?;
     let cd = [[cx[1] / norm, cx[2] / norm], [cy[1] / norm, cy[2] / norm]];
     let det = cd[0][0] * cd[1][1] - cd[0][1] * cd[1][0];
     if !det.is_finite() || det.abs() < 1e-30 {
@@ -315,6 +317,17 @@ fn fit_tan(
         }
         Sip { a, b }
     });
+    // A distortion that moves the frame's corners by more than 3 % of their distance is
+    // a polynomial bent to mismatches, not optics.
+    if let Some(sip) = &sip {
+        for (u, v) in [(norm, norm), (-norm, norm), (norm, -norm), (-norm, -norm)] {
+            let (du, dv) = sip.apply(u, v);
+            let shift = (du - u).hypot(dv - v);
+            if shift.is_nan() || shift > 0.03 * norm * std::f64::consts::SQRT_2 {
+                return None;
+            }
+        }
+    }
     let wcs = Wcs {
         crpix,
         crval: [crval.0, crval.1],
@@ -415,21 +428,9 @@ fn refine<S: Placed>(
         }
         wcs = best?.1;
     }
-    // The decision rule (module documentation).
-    let cat_px = in_frame(&wcs, cat, frame.width, frame.height, 0.0);
-    let mut inside: Vec<usize> = (0..cat.len()).filter(|&j| cat_px[j].is_some()).collect();
-    inside.sort_by(|&a, &b| brightness(&cat[b]).total_cmp(&brightness(&cat[a])));
-    let area = (frame.width * frame.height) as f64;
-    let m = inside.len().min((3 * pos.len()).max(100));
-    let p = (m as f64 * std::f64::consts::PI * MATCH_TOLERANCE_PX.powi(2) / area).min(1.0);
+    // The decision rule (module documentation); the fit fixed 3 stars' worth of freedom.
+    let chance_log10 = chance_log10(&pos, cat, &wcs, frame.width, frame.height, trials, 3)?;
     let k = pairs.len();
-    let chance_log10 = (ln_binomial_tail(pos.len(), p, k.saturating_sub(3))
-        / std::f64::consts::LN_10
-        + trials.log10())
-    .min(0.0);
-    if k < MIN_MATCHED || chance_log10 > MAX_CHANCE_LOG10 {
-        return None;
-    }
     let sq: f64 = pairs.iter().map(|&(_, _, d)| d * d).sum();
     let scale = wcs.scale_arcsec();
     Some(Solution {
@@ -445,15 +446,50 @@ fn refine<S: Placed>(
     })
 }
 
+/// log10 of the probability that as many of the frame's stars fall within the match
+/// tolerance of a catalogue star by chance, `trials` hypotheses counted; `None` when
+/// the fit fails the decision rule. Only the brightest m = max(3N, 100) catalogue stars
+/// inside the frame take part, so a catalogue far deeper than the frame does not make
+/// chance matches likely; `fitted` stars' worth of matches are not counted (they fixed
+/// the hypothesis).
+fn chance_log10(
+    pos: &[(f64, f64)],
+    cat: &[SkyStar],
+    wcs: &Wcs,
+    width: usize,
+    height: usize,
+    trials: f64,
+    fitted: usize,
+) -> Option<f64> {
+    let mut cat_px = in_frame(wcs, cat, width, height, 0.0);
+    let mut inside: Vec<usize> = (0..cat.len()).filter(|&j| cat_px[j].is_some()).collect();
+    inside.sort_by(|&a, &b| brightness(&cat[b]).total_cmp(&brightness(&cat[a])));
+    let m = inside.len().min((3 * pos.len()).max(100));
+    for &j in &inside[m..] {
+        cat_px[j] = None;
+    }
+    let k = match_stars(pos, &cat_px, MATCH_TOLERANCE_PX).len();
+    let area = (width * height) as f64;
+    // Poisson: the chance that a random point lies within r of one of m stars.
+    let p = -(-(m as f64) * std::f64::consts::PI * MATCH_TOLERANCE_PX.powi(2) / area).exp_m1();
+    let n = pos.len().saturating_sub(fitted);
+    let c = (ln_binomial_tail(n, p, k.saturating_sub(fitted)) / std::f64::consts::LN_10
+        + trials.max(1.0).log10())
+    .clamp(-999.0, 0.0);
+    (k >= MIN_MATCHED && c <= MAX_CHANCE_LOG10).then_some(c)
+}
+
 /// Hypotheses one consensus search tries (pairs of its strongest 25 correspondences).
 const HYPOTHESES_PER_SEARCH: f64 = 300.0;
 
-/// Fit the frame to the sky. `cat` holds the catalogue stars around the hint (out to the
-/// search radius plus the frame's half-diagonal), at the frame's epoch.
+/// Fit the frame to the sky. `cat` holds the catalogue stars around the hint (out to
+/// [`cone_radius_deg`]), at the frame's epoch; `priors` are WCSs to try first (the
+/// header's).
 pub fn solve<S: Placed>(
     frame: &FrameStars<'_, S>,
     cat: &[SkyStar],
     hint: Hint,
+    priors: &[&Wcs],
 ) -> Option<Solution> {
     if frame.stars.len() < MIN_MATCHED || cat.len() < MIN_MATCHED || hint.scale_arcsec <= 0.0 {
         return None;
@@ -481,32 +517,44 @@ pub fn solve<S: Placed>(
             snr: 100.0,
         }))
         .collect();
-    // Tile centres: the hint, then rings outward half a frame apart.
-    let step = 0.5 * w.min(h) * s;
-    let rings = (hint.search_deg / step).ceil().clamp(0.0, 12.0) as i32;
-    let mut centres = vec![(hint.ra_deg, hint.dec_deg)];
+    // A WCS already at hand (the header's) is tried first, as one hypothesis.
+    let planned_tiles = tile_centres(&hint, crpix, s, w, h);
+    let trials = priors.len() as f64
+        + planned_tiles.len() as f64 * SEARCHES_PER_TILE as f64 * HYPOTHESES_PER_SEARCH;
+    for prior in priors {
+        if let Some(sol) = refine(frame, cat, prior, trials) {
+            return Some(sol);
+        }
+    }
+    // The catalogue on the hint's tangent plane (degrees), bucketed, so each tile finds
+    // its stars without scanning the whole cone.
     let hint_wcs = tan(
         crpix,
         (hint.ra_deg, hint.dec_deg),
         [[-1.0, 0.0], [0.0, 1.0]],
     );
-    for ring in 1..=rings {
-        for gx in -ring..=ring {
-            for gy in -ring..=ring {
-                if gx.abs().max(gy.abs()) != ring {
-                    continue;
-                }
-                let (dx, dy) = (f64::from(gx) * step, f64::from(gy) * step);
-                if dx.hypot(dy) > hint.search_deg + step {
-                    continue;
-                }
-                centres.push(hint_wcs.pixel_to_sky(crpix[0] - dx, crpix[1] + dy));
+    let cell = (half_diag * 1.1).max(1e-6);
+    let mut grid: std::collections::HashMap<(i64, i64), Vec<usize>> =
+        std::collections::HashMap::new();
+    for (j, star) in cat.iter().enumerate() {
+        if let Some((x, y)) = hint_wcs.sky_to_pixel(star.ra_deg, star.dec_deg) {
+            if x.is_finite() && y.is_finite() && x.abs() < 1e6 && y.abs() < 1e6 {
+                grid.entry(((x / cell).floor() as i64, (y / cell).floor() as i64))
+                    .or_default()
+                    .push(j);
             }
         }
     }
-    let mut trials = 0.0;
-    for &centre in &centres {
-        let near: Vec<usize> = (0..cat.len())
+    for &centre in &planned_tiles {
+        let Some((cx, cy)) = hint_wcs.sky_to_pixel(centre.0, centre.1) else {
+            continue;
+        };
+        let (gx, gy) = ((cx / cell).floor() as i64, (cy / cell).floor() as i64);
+        let near: Vec<usize> = (gx - 1..=gx + 1)
+            .flat_map(|x| (gy - 1..=gy + 1).map(move |y| (x, y)))
+            .filter_map(|key| grid.get(&key))
+            .flatten()
+            .copied()
             .filter(|&j| separation_deg(centre, (cat[j].ra_deg, cat[j].dec_deg)) <= half_diag * 1.1)
             .collect();
         if near.len() < MIN_MATCHED {
@@ -514,8 +562,7 @@ pub fn solve<S: Placed>(
         }
         // The brightest in both lists first; then deeper lists, for frames whose brightest
         // stars the catalogue orders otherwise (another band, saturation).
-        for (parity, n) in [(-1.0, 40), (1.0, 40), (-1.0, 80), (1.0, 80)] {
-            trials += HYPOTHESES_PER_SEARCH;
+        for parity in [-1.0, 1.0] {
             let tile_wcs = tan(crpix, centre, [[parity * s, 0.0], [0.0, s]]);
             let mut tile: Vec<Pt> = near
                 .iter()
@@ -530,51 +577,93 @@ pub fn solve<S: Placed>(
                 })
                 .collect();
             tile.sort_by(|a, b| b.flux.total_cmp(&a.flux));
-            tile.truncate(n * 3 / 2);
-            let Some(reg) = register_brightest(&tile, &frame_pts, n) else {
-                continue;
-            };
-            // Frame pixel p → tile pixel A·p + t → sky by the tile's WCS.
-            let a = reg.transform.a;
-            let det = a[0][0] * a[1][1] - a[0][1] * a[1][0];
-            if det.abs() < 1e-12 {
-                continue;
-            }
-            let inv = [
-                [a[1][1] / det, -a[0][1] / det],
-                [-a[1][0] / det, a[0][0] / det],
-            ];
-            let d = [crpix[0] - reg.transform.t[0], crpix[1] - reg.transform.t[1]];
-            let p0 = [
-                inv[0][0] * d[0] + inv[0][1] * d[1],
-                inv[1][0] * d[0] + inv[1][1] * d[1],
-            ];
-            let cd = tile_wcs.cd;
-            let start = Wcs {
-                crpix: p0,
-                crval: [centre.0, centre.1],
-                cd: [
-                    [
-                        cd[0][0] * a[0][0] + cd[0][1] * a[1][0],
-                        cd[0][0] * a[0][1] + cd[0][1] * a[1][1],
+            for n in [40, 80] {
+                let Some(reg) = register_brightest(&tile, &frame_pts, n) else {
+                    continue;
+                };
+                // Frame pixel p → tile pixel A·p + t → sky by the tile's WCS.
+                let a = reg.transform.a;
+                let det = a[0][0] * a[1][1] - a[0][1] * a[1][0];
+                if det.abs() < 1e-12 {
+                    continue;
+                }
+                let inv = [
+                    [a[1][1] / det, -a[0][1] / det],
+                    [-a[1][0] / det, a[0][0] / det],
+                ];
+                let d = [crpix[0] - reg.transform.t[0], crpix[1] - reg.transform.t[1]];
+                let p0 = [
+                    inv[0][0] * d[0] + inv[0][1] * d[1],
+                    inv[1][0] * d[0] + inv[1][1] * d[1],
+                ];
+                let cd = tile_wcs.cd;
+                let start = Wcs {
+                    crpix: p0,
+                    crval: [centre.0, centre.1],
+                    cd: [
+                        [
+                            cd[0][0] * a[0][0] + cd[0][1] * a[1][0],
+                            cd[0][0] * a[0][1] + cd[0][1] * a[1][1],
+                        ],
+                        [
+                            cd[1][0] * a[0][0] + cd[1][1] * a[1][0],
+                            cd[1][0] * a[0][1] + cd[1][1] * a[1][1],
+                        ],
                     ],
-                    [
-                        cd[1][0] * a[0][0] + cd[1][1] * a[1][0],
-                        cd[1][0] * a[0][1] + cd[1][1] * a[1][1],
-                    ],
-                ],
-                lonpole: 180.0,
-                sip: None,
-            };
-            // Re-express with CRPIX at the frame's centre before refining.
-            let c = start.pixel_to_sky(crpix[0], crpix[1]);
-            let start = tan(crpix, c, start.cd);
-            if let Some(sol) = refine(frame, cat, &start, trials) {
-                return Some(sol);
+                    lonpole: 180.0,
+                    sip: None,
+                };
+                // Refined from the tile's own tangent point: re-centring it on the frame with
+                // the tile's CD would turn it by Δα·sin δ, far too much near a pole.
+                if let Some(sol) = refine(frame, cat, &start, trials) {
+                    return Some(sol);
+                }
             }
         }
     }
     None
+}
+
+/// Searches one tile makes: two parities, each with the 40 and then the 80 brightest.
+const SEARCHES_PER_TILE: usize = 4;
+/// Rings of tiles around the pointing at most (a pointing further off than 12
+/// half-frames is not found).
+const MAX_RINGS: f64 = 12.0;
+
+/// Tile centres: the hint, then rings outward half a frame apart, out to the search
+/// radius.
+fn tile_centres(hint: &Hint, crpix: [f64; 2], s: f64, w: f64, h: f64) -> Vec<(f64, f64)> {
+    let step = (0.5 * w.min(h) * s).max(1e-6);
+    let rings = (hint.search_deg / step).ceil().clamp(0.0, MAX_RINGS) as i32;
+    let hint_wcs = tan(
+        crpix,
+        (hint.ra_deg, hint.dec_deg),
+        [[-1.0, 0.0], [0.0, 1.0]],
+    );
+    let mut centres = vec![(hint.ra_deg, hint.dec_deg)];
+    for ring in 1..=rings {
+        for gx in -ring..=ring {
+            for gy in -ring..=ring {
+                if gx.abs().max(gy.abs()) != ring {
+                    continue;
+                }
+                let (dx, dy) = (f64::from(gx) * step, f64::from(gy) * step);
+                if dx.hypot(dy) > hint.search_deg + step {
+                    continue;
+                }
+                centres.push(hint_wcs.pixel_to_sky(crpix[0] - dx, crpix[1] + dy));
+            }
+        }
+    }
+    centres
+}
+
+/// How far from the hint the catalogue must reach for every tile: the search radius, a
+/// tile step and a tile's radius.
+pub fn cone_radius_deg(hint: &Hint, width: usize, height: usize) -> f64 {
+    let s = hint.scale_arcsec / 3600.0;
+    let (w, h) = (width as f64, height as f64);
+    hint.search_deg + 0.5 * w.min(h) * s + 1.15 * 0.5 * w.hypot(h) * s
 }
 
 /// Check a WCS (the header's) against the catalogue without fitting: the same matching
@@ -583,15 +672,8 @@ pub fn check<S: Placed>(frame: &FrameStars<'_, S>, cat: &[SkyStar], wcs: &Wcs) -
     let pos: Vec<(f64, f64)> = frame.stars.iter().map(|s| s.xy()).collect();
     let cat_px = in_frame(wcs, cat, frame.width, frame.height, 0.0);
     let pairs = match_stars(&pos, &cat_px, MATCH_TOLERANCE_PX);
-    let inside = cat_px.iter().filter(|p| p.is_some()).count();
-    let m = inside.min((3 * pos.len()).max(100));
-    let area = (frame.width * frame.height) as f64;
-    let p = (m as f64 * std::f64::consts::PI * MATCH_TOLERANCE_PX.powi(2) / area).min(1.0);
+    let chance_log10 = chance_log10(&pos, cat, wcs, frame.width, frame.height, 1.0, 0)?;
     let k = pairs.len();
-    let chance_log10 = (ln_binomial_tail(pos.len(), p, k) / std::f64::consts::LN_10).min(0.0);
-    if k < MIN_MATCHED || chance_log10 > MAX_CHANCE_LOG10 {
-        return None;
-    }
     let sq: f64 = pairs.iter().map(|&(_, _, d)| d * d).sum();
     Some(Solution {
         fit: SkyFit {
@@ -599,12 +681,15 @@ pub fn check<S: Placed>(frame: &FrameStars<'_, S>, cat: &[SkyStar], wcs: &Wcs) -
             matched: k,
             rms_arcsec: (sq / k as f64).sqrt() * wcs.scale_arcsec(),
             chance_log10,
-            header_offset_px: Some(0.0),
+            header_offset_px: None,
             wcs: wcs.clone(),
         },
         pairs: pairs.iter().map(|&(i, j, _)| (i, j)).collect(),
     })
 }
+
+/// What [`disagreement_px`] reports for WCSs that do not even map the same sky.
+pub const DISAGREES_ENTIRELY_PX: f64 = 1.0e9;
 
 /// The largest distance, px, between where two WCSs put the same sky over the frame.
 pub fn disagreement_px(a: &Wcs, b: &Wcs, width: usize, height: usize) -> f64 {
@@ -614,9 +699,13 @@ pub fn disagreement_px(a: &Wcs, b: &Wcs, width: usize, height: usize) -> f64 {
             let x = 0.5 + width as f64 * f64::from(i) / 8.0;
             let y = 0.5 + height as f64 * f64::from(j) / 8.0;
             let (ra, dec) = a.pixel_to_sky(x, y);
-            match b.sky_to_pixel(ra, dec) {
-                Some((bx, by)) => worst = worst.max((bx - x).hypot(by - y)),
-                None => return f64::INFINITY,
+            match b
+                .sky_to_pixel(ra, dec)
+                .map(|(bx, by)| (bx - x).hypot(by - y))
+            {
+                Some(d) if d.is_finite() => worst = worst.max(d),
+                // Off the projection, or a distortion that does not invert.
+                _ => return DISAGREES_ENTIRELY_PX,
             }
         }
     }
@@ -769,7 +858,7 @@ mod tests {
             scale_arcsec: 1.94 * 1.08,
             search_deg: 1.2,
         };
-        let sol = solve(&frame, &cat, hint).expect("solved");
+        let sol = solve(&frame, &cat, hint, &[]).expect("solved");
         assert!(
             sol.fit.matched >= stars.len() * 9 / 10,
             "{}",
@@ -800,7 +889,7 @@ mod tests {
             scale_arcsec: 2.5,
             search_deg: 0.5,
         };
-        let sol = solve(&frame, &cat, hint).expect("solved");
+        let sol = solve(&frame, &cat, hint, &[]).expect("solved");
         assert!(disagreement_px(&truth, &sol.fit.wcs, 800, 600) < 1e-3);
     }
 
@@ -825,7 +914,7 @@ mod tests {
                 scale_arcsec: 2.0,
                 search_deg: 0.5,
             };
-            accepted += usize::from(solve(&frame, &cat, hint).is_some());
+            accepted += usize::from(solve(&frame, &cat, hint, &[]).is_some());
         }
         assert_eq!(accepted, 0);
     }
@@ -853,7 +942,7 @@ mod tests {
             scale_arcsec: 1.5,
             search_deg: 0.3,
         };
-        let sol = solve(&frame, &cat, hint).expect("solved");
+        let sol = solve(&frame, &cat, hint, &[]).expect("solved");
         assert!(sol.fit.wcs.sip.is_some());
         let off = disagreement_px(&truth, &sol.fit.wcs, 1024, 1024);
         assert!(off < 0.05, "{off}");

@@ -35,9 +35,21 @@ impl CatalogueStar {
         if !dt.is_finite() || dt == 0.0 {
             return (self.ra_deg, self.dec_deg);
         }
-        let cos_dec = self.dec_deg.to_radians().cos().max(1e-6);
-        let ra = self.ra_deg + pa * dt / 3.6e6 / cos_dec;
-        let dec = (self.dec_deg + pd * dt / 3.6e6).clamp(-90.0, 90.0);
+        // The unit vector moved along the local east and north directions and normalised
+        // (ESA 1997, The Hipparcos and Tycho Catalogues, vol. 1, sec. 1.5.5, without the
+        // radial terms): right across the pole too.
+        let (a, d) = (self.ra_deg.to_radians(), self.dec_deg.to_radians());
+        let p = [d.cos() * a.cos(), d.cos() * a.sin(), d.sin()];
+        let east = [-a.sin(), a.cos(), 0.0];
+        let north = [-d.sin() * a.cos(), -d.sin() * a.sin(), d.cos()];
+        let mas = (1.0f64 / 3.6e6).to_radians();
+        let (ea, nd) = (pa * dt * mas, pd * dt * mas);
+        let v: Vec<f64> = (0..3)
+            .map(|k| p[k] + ea * east[k] + nd * north[k])
+            .collect();
+        let norm = (v[0] * v[0] + v[1] * v[1] + v[2] * v[2]).sqrt();
+        let ra = v[1].atan2(v[0]).to_degrees();
+        let dec = (v[2] / norm).clamp(-1.0, 1.0).asin().to_degrees();
         (ra.rem_euclid(360.0), dec)
     }
 
@@ -134,7 +146,7 @@ fn layout(file: &str, names: &[String], cols: &Columns) -> Result<Layout, Catalo
         find(name).ok_or_else(|| CatalogueError::MissingColumn {
             file: file.to_string(),
             column: name.to_string(),
-            present: names.join(", "),
+            present: shorten(&names.join(", ")),
         })
     };
     let mut mags = Vec::new();
@@ -242,15 +254,21 @@ fn star_of<'a>(
 
 /// At most 64 characters of a value, for ids and messages.
 fn shorten(t: &str) -> String {
-    t.chars()
-        .filter(|c| !c.is_control())
-        .take(64)
-        .collect::<String>()
+    let mut out: String = t.chars().filter(|c| !c.is_control()).take(64).collect();
+    if t.chars().count() > 64 {
+        out.push('…');
+    }
+    out
 }
 
+/// The longest line a catalogue row may have, characters.
+pub const MAX_LINE: usize = 65_536;
+/// The most columns a catalogue may have (as FITS tables: TFIELDS ≤ 999).
+pub const MAX_COLUMNS: usize = 999;
+
 /// Split one CSV line (RFC 4180 quoting: a quoted field may hold commas and doubled
-/// quotes; fields do not span lines).
-fn csv_fields(line: &str) -> Vec<String> {
+/// quotes; fields do not span lines), at most `max` fields (the rest is one more).
+fn csv_fields(line: &str, max: usize) -> Vec<String> {
     let mut out = Vec::new();
     let mut field = String::new();
     let mut quoted = false;
@@ -266,7 +284,7 @@ fn csv_fields(line: &str) -> Vec<String> {
                 field.clear();
                 quoted = true;
             }
-            (',', false) => out.push(std::mem::take(&mut field)),
+            (',', false) if out.len() < max => out.push(std::mem::take(&mut field)),
             _ => field.push(c),
         }
     }
@@ -291,14 +309,30 @@ pub fn parse_csv(
             reason: "no header row".into(),
         });
     };
-    let names: Vec<String> = csv_fields(head.trim_start_matches('\u{feff}'))
+    let too_long = |row: usize| CatalogueError::Format {
+        file: file.to_string(),
+        reason: format!("row {row}: longer than {MAX_LINE} characters"),
+    };
+    if head.len() > MAX_LINE {
+        return Err(too_long(0));
+    }
+    let names: Vec<String> = csv_fields(head.trim_start_matches('\u{feff}'), MAX_COLUMNS)
         .into_iter()
         .map(|n| n.trim().to_string())
         .collect();
+    if names.len() > MAX_COLUMNS {
+        return Err(CatalogueError::Format {
+            file: file.to_string(),
+            reason: format!("the header row names more than {MAX_COLUMNS} columns"),
+        });
+    }
     let lay = layout(file, &names, cols)?;
     let mut stars = Vec::new();
     for (row, (_, line)) in lines.enumerate() {
-        let fields = csv_fields(line);
+        if line.len() > MAX_LINE {
+            return Err(too_long(row + 1));
+        }
+        let fields = csv_fields(line, names.len());
         if fields.len() != names.len() {
             return Err(CatalogueError::Format {
                 file: file.to_string(),
@@ -336,7 +370,8 @@ pub fn parse_fits_table(
     let t = table::BinTable::find(bytes).map_err(format)?;
     let names = t.names();
     let lay = layout(file, &names, cols)?;
-    let mut stars = Vec::with_capacity(t.rows());
+    // Not sized from the header: NAXIS2 is a claim until the rows are read.
+    let mut stars = Vec::with_capacity(t.rows().min(1 << 16));
     for row in 0..t.rows() {
         let cell = |c: usize| match t.value(bytes, row, c) {
             table::Value::Number(v) => Cell::Number(v),
@@ -353,9 +388,58 @@ pub fn is_fits(bytes: &[u8]) -> bool {
     bytes.starts_with(b"SIMPLE  =")
 }
 
+/// Rows that name the same star (one row per band) as one star with all their
+/// magnitudes: the same id within an arcsecond.
+pub fn merge_bands(stars: Vec<CatalogueStar>) -> Vec<CatalogueStar> {
+    let mut by_id: std::collections::HashMap<String, usize> = std::collections::HashMap::new();
+    let mut out: Vec<CatalogueStar> = Vec::with_capacity(stars.len());
+    for s in stars {
+        if let Some(&k) = by_id.get(&s.id) {
+            let o = &out[k];
+            let sep = (o.dec_deg - s.dec_deg).hypot(
+                ((o.ra_deg - s.ra_deg + 540.0).rem_euclid(360.0) - 180.0)
+                    * o.dec_deg.to_radians().cos(),
+            );
+            if sep * 3600.0 <= 1.0 {
+                let o = &mut out[k];
+                for m in s.mags {
+                    if !o.mags.iter().any(|(b, _)| *b == m.0) {
+                        o.mags.push(m);
+                    }
+                }
+                continue;
+            }
+        }
+        by_id.insert(s.id.clone(), out.len());
+        out.push(s);
+    }
+    out
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn rows_of_one_star_in_several_bands_become_one_star() {
+        let text = "id,ra_deg,dec_deg,mag,band\nK-1,84.25,27.6,11.5,V\nK-1,84.25,27.6,10.9,I\nK-2,84.3,27.6,12.0,V\n";
+        let stars = merge_bands(parse_csv("c.csv", text, &Columns::default()).unwrap());
+        assert_eq!(stars.len(), 2);
+        assert_eq!(
+            stars[0].mags,
+            vec![("V".to_string(), 11.5), ("I".to_string(), 10.9)]
+        );
+    }
+
+    #[test]
+    fn a_hostile_line_is_refused_before_it_is_split() {
+        let long = format!("ra_deg,dec_deg,mag\n{}\n", ",".repeat(MAX_LINE + 1));
+        let e = parse_csv("c.csv", &long, &Columns::default()).unwrap_err();
+        assert!(e.to_string().contains("longer than"), "{e}");
+        let many = format!("{}\n", ",".repeat(5000));
+        let e = parse_csv("c.csv", &many, &Columns::default()).unwrap_err();
+        assert!(e.to_string().contains("more than 999 columns"), "{e}");
+    }
 
     #[test]
     fn reads_the_contracts_columns_and_names_bad_rows() {
@@ -385,7 +469,9 @@ mod tests {
 
     #[test]
     fn proper_motion_moves_a_star_by_its_rate() {
-        // 1000 mas/yr in Dec for 26 years: 26 arcsec north (linear; exact here).
+        // 1000 mas/yr in each direction for 26 years: 26 arcsec north, and 26 arcsec
+        // east, which is 52 arcsec of RA at Dec 60; second-order terms of the
+        // propagation are (26″)² / 1 rad ≈ 3 mas, so 10 mas is the tolerance.
         let s = CatalogueStar {
             id: "a".into(),
             ra_deg: 10.0,
@@ -396,8 +482,19 @@ mod tests {
             mags: vec![],
         };
         let (ra, dec) = s.position_at(2026.0);
-        assert!((dec - 60.0 - 26.0 / 3600.0).abs() < 1e-12);
-        // RA moves by pm / cos(dec): 52 arcsec of RA at Dec 60.
-        assert!((ra - 10.0 - 52.0 / 3600.0).abs() < 1e-9);
+        assert!(((dec - 60.0) * 3600.0 - 26.0).abs() < 0.01, "{dec}");
+        assert!(((ra - 10.0) * 3600.0 - 52.0).abs() < 0.02, "{ra}");
+        // Across the pole: 1″ north of it, moving 2″ north, ends 1″ beyond, at RA + 180.
+        let polar = CatalogueStar {
+            ra_deg: 30.0,
+            dec_deg: 90.0 - 1.0 / 3600.0,
+            pm_ra_mas_yr: Some(0.0),
+            pm_dec_mas_yr: Some(2000.0),
+            epoch: 2000.0,
+            ..s
+        };
+        let (ra, dec) = polar.position_at(2001.0);
+        assert!(((90.0 - dec) * 3600.0 - 1.0).abs() < 1e-4, "{dec}");
+        assert!((ra - 210.0).abs() < 1e-6, "{ra}");
     }
 }

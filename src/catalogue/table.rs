@@ -1,7 +1,7 @@
 //! The first binary-table extension of a FITS file (FITS Standard 4.0, section 7.3),
 //! read from bytes with every size checked against what the bytes hold. Scalar columns
-//! of types L, B, I, J, K, E, D and character columns (A) are read; other types are
-//! skipped over by their width and read as empty.
+//! of types B, I, J, K, E, D and character columns (A) are read; other types (logical,
+//! bits, complex, arrays) are skipped over by their width and read as empty.
 
 use crate::frame::cards::{keyword, parse_card, Cards, HeaderCard};
 
@@ -72,16 +72,21 @@ fn data_bytes(cards: &[HeaderCard]) -> Result<usize, String> {
         return Err("NAXIS above 999".into());
     }
     let bitpix = cards.integer("BITPIX").ok_or("BITPIX is missing")?;
-    let mut n = (bitpix.unsigned_abs() as usize) / 8;
+    // FITS Standard 4.0, eq. 2: |BITPIX|/8 · GCOUNT · (PCOUNT + NAXIS1 ··· NAXISn), with
+    // NAXIS1 = 0 left out of the product for random groups.
+    let mut n = 1usize;
     for k in 1..=naxis {
-        n = n
-            .checked_mul(whole(cards, &format!("NAXIS{k}"))?)
-            .ok_or("the data size overflows")?;
+        let axis = whole(cards, &format!("NAXIS{k}"))?;
+        if k == 1 && axis == 0 {
+            continue;
+        }
+        n = n.checked_mul(axis).ok_or("the data size overflows")?;
     }
     let pcount = cards.integer("PCOUNT").unwrap_or(0).max(0) as usize;
     let gcount = cards.integer("GCOUNT").unwrap_or(1).max(1) as usize;
     n.checked_add(pcount)
         .and_then(|v| v.checked_mul(gcount))
+        .and_then(|v| v.checked_mul((bitpix.unsigned_abs() as usize) / 8))
         .ok_or_else(|| "the data size overflows".into())
 }
 
@@ -140,6 +145,9 @@ impl BinTable {
     fn from_header(cards: &[HeaderCard], data_start: usize, len: usize) -> Result<Self, String> {
         let row_bytes = whole(cards, "NAXIS1")?;
         let rows = whole(cards, "NAXIS2")?;
+        if rows > 0 && row_bytes == 0 {
+            return Err(format!("NAXIS2 = {rows} rows of NAXIS1 = 0 bytes"));
+        }
         let fields = whole(cards, "TFIELDS")?;
         if fields > MAX_COLUMNS {
             return Err(format!("TFIELDS = {fields}, more than {MAX_COLUMNS}"));

@@ -28,7 +28,7 @@ pub struct Sip {
 }
 
 impl Sip {
-    fn apply(&self, u: f64, v: f64) -> (f64, f64) {
+    pub fn apply(&self, u: f64, v: f64) -> (f64, f64) {
         let poly = |terms: &[(u32, u32, f64)]| {
             terms
                 .iter()

@@ -92,6 +92,29 @@ pub struct ColorDetail {
     pub index: &'static str,
 }
 
+/// A source whose brightness in one filter against another lies far from the field's:
+/// the same kind as a mosaic's color outlier, from two filter groups of one target.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct BandColorDetail {
+    /// The two filters, and the color index between them: m(first) − m(second).
+    pub bands: [String; 2],
+    pub color_mag: f64,
+    pub field_color_mag: f64,
+    /// The flux ratio first / second, and the field's.
+    pub flux_ratio: f64,
+    pub field_flux_ratio: f64,
+    /// Robust z-score against the field (σ from the median absolute deviation).
+    pub z: f64,
+    pub sigma_mag: f64,
+    /// Stars compared across every pair of filters, and the chance of so large a z among
+    /// them all (Gaussian tails).
+    pub tested: usize,
+    pub false_alarm_probability: f64,
+    #[serde(serialize_with = "finite")]
+    pub instrumental_mag: Option<f64>,
+    pub index: &'static str,
+}
+
 /// A source persistent tonight and absent from an earlier night that could have seen it.
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct NewSourceDetail {
@@ -110,6 +133,7 @@ pub enum Detail {
     Moving(MovingDetail),
     Variable(VariableDetail),
     Color(ColorDetail),
+    BandColor(BandColorDetail),
     NewSource(NewSourceDetail),
 }
 
@@ -126,6 +150,7 @@ impl Detail {
             Detail::Moving(m) => m.instrumental_mag,
             Detail::Variable(v) => Some(v.instrumental_mag),
             Detail::Color(c) => c.instrumental_mag,
+            Detail::BandColor(c) => c.instrumental_mag,
             Detail::NewSource(n) => Some(n.instrumental_mag),
             Detail::Trail(_) | Detail::HotPixel(_) => None,
         }

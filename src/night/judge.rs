@@ -224,6 +224,8 @@ fn judge_group_and_limits(
                     fwhm_arcsec: m.fwhm_arcsec,
                     snr_median: m.snr_median,
                     hfr_px: m.hfr_px,
+                    limit_mag: m.limit_mag,
+                    zero_point_mag: m.zero_point_mag,
                     registered: placement.map(|p| p.registered),
                     ..Default::default()
                 },

@@ -4,6 +4,7 @@
 //! frame records in, judgements and anomalies out. The daemon, `night`, `report` and
 //! the morning summary all come through `judge`.
 
+pub mod bands;
 pub mod calibration;
 pub mod classify;
 pub mod detail;

@@ -6,7 +6,9 @@
 
 use std::fmt::Write as _;
 
-use super::{instrumental_mag, minutes, plots, sexagesimal, what, FrameLine, Summary};
+use super::{
+    brightness_words, catalogue_words, minutes, plots, sexagesimal, what, FrameLine, Summary,
+};
 use crate::text::escape_html;
 
 const STYLE: &str =
@@ -77,8 +79,9 @@ pub fn html(s: &Summary, image: &dyn Fn(&str) -> Option<String>) -> String {
         };
         let _ = write!(
             h,
-            "<tr><td>{}</td><td class=\"n\">{}</td><td class=\"n warn\">{}</td><td class=\"n reject\">{}</td><td class=\"n\">{}</td><td class=\"n\">{}</td></tr>",
+            "<tr><td>{}{}</td><td class=\"n\">{}</td><td class=\"n warn\">{}</td><td class=\"n reject\">{}</td><td class=\"n\">{}</td><td class=\"n\">{}</td></tr>",
             e(&g.heading()),
+            e(&g.depth_words()),
             g.ok,
             g.warn,
             g.reject,
@@ -194,8 +197,11 @@ pub fn html(s: &Summary, image: &dyn Fn(&str) -> Option<String>) -> String {
             e(&pos),
             e(&what(a))
         );
-        if let Some(m) = instrumental_mag(a) {
-            let _ = write!(h, "; mag {m:.2}");
+        if let Some(m) = brightness_words(a) {
+            let _ = write!(h, "; {}", e(&m));
+        }
+        if let Some(c) = catalogue_words(a) {
+            let _ = write!(h, "; {}", e(&c));
         }
         let _ = write!(h, "; {} frame(s)", a.detections.len());
         if let Some(d) = a.detections.first() {

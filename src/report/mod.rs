@@ -77,6 +77,11 @@ pub struct GroupSummary {
     pub usable_seconds: f64,
     pub median_fwhm_arcsec: Option<f64>,
     pub median_fwhm_px: Option<f64>,
+    /// Median limiting magnitude and zero point of the frames to stack, with the band
+    /// (with a catalogue).
+    pub median_limit_mag: Option<f64>,
+    pub median_zero_point_mag: Option<f64>,
+    pub zero_point_band: Option<String>,
     pub best: Option<String>,
     pub worst: Option<String>,
     /// Every frame, in time order.
@@ -241,7 +246,14 @@ pub fn summarise(night: &str, doc: &NightDocument, settings: Settings) -> Summar
         .filter(|a| a.kind != AnomalyKind::HotPixel && !a.detail.is_cosmic_ray())
         .cloned()
         .collect();
-    notable.sort_by_key(|a| look_order(a.kind));
+    // Within a kind, what the catalogue does not know first (a new source absent from
+    // the catalogue heads the list).
+    notable.sort_by_key(|a| {
+        (
+            look_order(a.kind),
+            a.catalogue.is_some() || a.catalogue_depth_mag.is_none(),
+        )
+    });
     let hot_pixels = doc
         .anomalies
         .iter()
@@ -377,6 +389,21 @@ fn group(
                 .collect::<Vec<_>>(),
         ),
         median_fwhm_px: median_f64(&usable.iter().filter_map(|f| fwhm(f)).collect::<Vec<_>>()),
+        median_limit_mag: median_f64(
+            &usable
+                .iter()
+                .filter_map(|f| f.metrics.as_ref().and_then(|m| m.limit_mag))
+                .collect::<Vec<_>>(),
+        ),
+        median_zero_point_mag: median_f64(
+            &usable
+                .iter()
+                .filter_map(|f| f.metrics.as_ref().and_then(|m| m.zero_point_mag))
+                .collect::<Vec<_>>(),
+        ),
+        zero_point_band: usable
+            .iter()
+            .find_map(|f| f.metrics.as_ref().and_then(|m| m.zero_point_band.clone())),
         best: ranked.first().map(|f| file_name(&f.path)),
         worst: ranked.last().map(|f| file_name(&f.path)),
         lines,
@@ -440,6 +467,53 @@ pub fn instrumental_mag(a: &AnomalyRecord) -> Option<f64> {
     a.detail.instrumental_mag()
 }
 
+/// The anomaly's brightness in words: calibrated through the frame's zero point where a
+/// catalogue gave one, else instrumental.
+pub fn brightness_words(a: &AnomalyRecord) -> Option<String> {
+    match (a.mag, a.mag_err) {
+        (Some(m), Some(e)) => Some(format!(
+            "mag {m:.2} ± {e:.2}{}",
+            a.mag_band
+                .as_deref()
+                .map_or(String::new(), |b| format!(" ({b})"))
+        )),
+        _ => instrumental_mag(a).map(|m| format!("mag {m:.2} (instrumental)")),
+    }
+}
+
+/// The anomaly against the catalogue, in words; `None` without a catalogue.
+pub fn catalogue_words(a: &AnomalyRecord) -> Option<String> {
+    match (&a.catalogue, a.catalogue_depth_mag) {
+        (Some(c), _) => Some(format!(
+            "catalogued: {} ({}) {:.1}″ away",
+            c.id,
+            match (c.mag, c.band.as_deref()) {
+                (Some(m), Some(b)) => format!("{b} {m:.2}"),
+                (Some(m), None) => format!("mag {m:.2}"),
+                _ => "no magnitude".into(),
+            },
+            c.separation_arcsec
+        )),
+        (None, Some(d)) => Some(format!("not in the catalogue down to mag {d:.1}")),
+        _ => None,
+    }
+}
+
+impl GroupSummary {
+    /// "; depth 18.45 mag (V), zero point 23.12" where a catalogue gave them.
+    pub fn depth_words(&self) -> String {
+        let band = self
+            .zero_point_band
+            .as_deref()
+            .map_or(String::new(), |b| format!(" ({b})"));
+        match (self.median_limit_mag, self.median_zero_point_mag) {
+            (Some(l), Some(z)) => format!("; depth {l:.2} mag{band} at 5σ, zero point {z:.2}"),
+            (None, Some(z)) => format!("; zero point {z:.2}{band}"),
+            _ => String::new(),
+        }
+    }
+}
+
 /// What was seen, in plain words with its values.
 pub fn what(a: &AnomalyRecord) -> String {
     match &a.detail {
@@ -474,6 +548,18 @@ pub fn what(a: &AnomalyRecord) -> String {
             c.z_rg,
             c.z_bg
         ),
+        Detail::BandColor(c) => format!(
+            "{} − {} = {} mag against the field's {} ({:.1} robust σ; flux ratio {:.2} against {:.2}; false-alarm probability {:.1e} over {} stars)",
+            c.bands[0],
+            c.bands[1],
+            signed(c.color_mag),
+            signed(c.field_color_mag),
+            c.z,
+            c.flux_ratio,
+            c.field_flux_ratio,
+            c.false_alarm_probability,
+            c.tested
+        ),
         Detail::Transient(t) => format!(
             "{}{}",
             t.reason,
@@ -494,13 +580,13 @@ pub fn what(a: &AnomalyRecord) -> String {
 pub fn csv(doc: &NightDocument) -> String {
     let q = |s: &str| csv_text(s);
     let n = |v: Option<f64>| v.map_or(String::new(), |x| format!("{x:.4}"));
-    let mut out = String::from("path,target,filter,time_unix,verdict,reasons,star_count,fwhm_px,fwhm_arcsec,eccentricity,background_adu,noise_adu,snr_median,hfr_px,transparency_loss_mag,explanations\n");
+    let mut out = String::from("path,target,filter,time_unix,verdict,reasons,star_count,fwhm_px,fwhm_arcsec,eccentricity,background_adu,noise_adu,snr_median,hfr_px,transparency_loss_mag,explanations,zero_point_mag,limit_mag\n");
     for f in &doc.frames {
         let m = f.metrics.as_ref();
         let verdict = f.verdict.as_str();
         let _ = writeln!(
             out,
-            "{},{},{},{},{},{},{},{},{},{},{},{},{},{},{},{}",
+            "{},{},{},{},{},{},{},{},{},{},{},{},{},{},{},{},{},{}",
             q(&f.path),
             q(f.target.as_deref().unwrap_or("")),
             q(f.filter.as_deref().unwrap_or("")),
@@ -517,6 +603,8 @@ pub fn csv(doc: &NightDocument) -> String {
             n(m.and_then(|m| m.hfr_px)),
             n(f.transparency_loss_mag),
             q(&f.explanations.join(" | ")),
+            n(m.and_then(|m| m.zero_point_mag)),
+            n(m.and_then(|m| m.limit_mag)),
         );
     }
     out
@@ -619,6 +707,9 @@ mod tests {
             filter: Some("L".into()),
             catalogue: None,
             catalogue_depth_mag: None,
+            mag: None,
+            mag_err: None,
+            mag_band: None,
         }
     }
 

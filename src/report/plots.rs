@@ -26,7 +26,7 @@ pub struct Plotted {
 }
 
 /// The metrics plotted for every group, in page order.
-pub const PLOTTED: [Plotted; 5] = [
+pub const PLOTTED: [Plotted; 7] = [
     Plotted {
         key: "fwhm",
         title: "FWHM",
@@ -50,6 +50,17 @@ pub const PLOTTED: [Plotted; 5] = [
     Plotted {
         key: "transparency_loss_mag",
         title: "transparency loss",
+        min_span: 0.5,
+    },
+    // With a catalogue only (no values, no plot).
+    Plotted {
+        key: "limit_mag",
+        title: "depth",
+        min_span: 1.0,
+    },
+    Plotted {
+        key: "zero_point_mag",
+        title: "zero point",
         min_span: 0.5,
     },
 ];
@@ -109,6 +120,8 @@ fn value(f: &NightFrameRecord, key: &str, arcsec: bool) -> Option<f64> {
         "background_adu" => Some(m.background_adu),
         "star_count" => Some(m.star_count as f64),
         "transparency_loss_mag" => f.transparency_loss_mag,
+        "limit_mag" => m.limit_mag,
+        "zero_point_mag" => m.zero_point_mag,
         _ => None,
     }
 }
@@ -120,6 +133,8 @@ fn axis_title(key: &str, arcsec: bool) -> &'static str {
         "eccentricity" => "eccentricity (0 = round)",
         "background_adu" => "background (ADU)",
         "star_count" => "stars (count)",
+        "limit_mag" => "limiting magnitude, 5σ (mag)",
+        "zero_point_mag" => "zero point (mag for 1 ADU/s)",
         _ => "transparency loss (mag)",
     }
 }
@@ -152,7 +167,9 @@ fn limits_for(
                 ("eccentricity", Metric::Eccentricity)
                 | ("background_adu", Metric::BackgroundAdu)
                 | ("star_count", Metric::StarCount)
-                | ("transparency_loss_mag", Metric::TransparencyLossMag) => l.value,
+                | ("transparency_loss_mag", Metric::TransparencyLossMag)
+                | ("limit_mag", Metric::LimitMag)
+                | ("zero_point_mag", Metric::ZeroPointMag) => l.value,
                 _ => return None,
             };
             v.is_finite().then_some((l.verdict, v, l.above))
@@ -438,7 +455,7 @@ fn legend(
         "fwhm" if arcsec => "″",
         "fwhm" => " px",
         "background_adu" => " ADU",
-        "transparency_loss_mag" => " mag",
+        "transparency_loss_mag" | "limit_mag" | "zero_point_mag" => " mag",
         _ => "",
     };
     let mut shown: Vec<(Verdict, f64, bool)> = lines.to_vec();

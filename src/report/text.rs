@@ -5,7 +5,9 @@
 
 use std::fmt::Write as _;
 
-use super::{file_name, instrumental_mag, minutes, sexagesimal, what, FrameLine, Summary};
+use super::{
+    brightness_words, catalogue_words, file_name, minutes, sexagesimal, what, FrameLine, Summary,
+};
 use crate::text::single_line;
 
 /// Lines of flagged frames: time, verdict and file, then each reason indented.
@@ -45,7 +47,7 @@ pub fn text(s: &Summary, all: bool) -> String {
         };
         let _ = writeln!(
             t,
-            "  {}: {} frames: {} ok, {} warn, {} reject; to stack {} in {} frames{fwhm}",
+            "  {}: {} frames: {} ok, {} warn, {} reject; to stack {} in {} frames{fwhm}{}",
             single_line(&g.heading()),
             g.frames,
             g.ok,
@@ -53,6 +55,7 @@ pub fn text(s: &Summary, all: bool) -> String {
             g.reject,
             minutes(g.usable_seconds),
             g.stack.len(),
+            g.depth_words(),
         );
     }
     let counts = s.kind_counts();
@@ -114,8 +117,8 @@ pub fn text(s: &Summary, all: bool) -> String {
             (Some(r), Some(d)) => format!("{} ({r:.5}, {d:+.5})", sexagesimal(r, d)),
             _ => "no sky position".into(),
         };
-        let mag =
-            instrumental_mag(a).map_or(String::new(), |m| format!("; mag {m:.2} (instrumental)"));
+        let mag = brightness_words(a).map_or(String::new(), |m| format!("; {m}"));
+        let known = catalogue_words(a).map_or(String::new(), |c| format!("; {c}"));
         let first = a
             .detections
             .first()
@@ -131,8 +134,9 @@ pub fn text(s: &Summary, all: bool) -> String {
         let _ = writeln!(t, "  {:<10} {pos}", a.kind.name());
         let _ = writeln!(
             t,
-            "             {}{mag}; {} frame(s){}",
+            "             {}{mag}{}; {} frame(s){}",
             single_line(&what(a)),
+            single_line(&known),
             a.detections.len(),
             single_line(&first)
         );

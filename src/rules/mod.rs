@@ -47,6 +47,9 @@ pub struct FrameFacts {
     pub fwhm_arcsec: Option<f64>,
     pub snr_median: Option<f64>,
     pub hfr_px: Option<f64>,
+    /// Magnitude of a point source at SNR 5 (with a catalogue configured).
+    pub limit_mag: Option<f64>,
+    pub zero_point_mag: Option<f64>,
     /// The Sun's altitude at mid-exposure, when the site is known.
     pub sun_alt_deg: Option<f64>,
 }
@@ -64,6 +67,8 @@ pub enum Metric {
     SnrMedian,
     HfrPx,
     TransparencyLossMag,
+    LimitMag,
+    ZeroPointMag,
 }
 
 impl Metric {
@@ -79,6 +84,8 @@ impl Metric {
             Metric::SnrMedian => "snr_median",
             Metric::HfrPx => "hfr_px",
             Metric::TransparencyLossMag => "transparency_loss_mag",
+            Metric::LimitMag => "limit_mag",
+            Metric::ZeroPointMag => "zero_point_mag",
         }
     }
 
@@ -93,6 +100,8 @@ impl Metric {
             Metric::SnrMedian => f.snr_median,
             Metric::HfrPx => f.hfr_px,
             Metric::TransparencyLossMag => f.transparency_loss_mag,
+            Metric::LimitMag => f.limit_mag,
+            Metric::ZeroPointMag => f.zero_point_mag,
         }
     }
 }
@@ -196,6 +205,10 @@ const ECCENTRICITY_FLOOR: (f64, f64) = (0.5, 0.65);
 const BACKGROUND_SIGMAS: (f64, f64) = (10.0, 50.0);
 const STAR_FRACTION: (f64, f64) = (0.6, 0.3);
 const TRANSPARENCY_MAG: (f64, f64) = (0.3, 0.75);
+// A limiting magnitude this far above (brighter than) the night's median: half a
+// magnitude costs the signal-to-noise ratio of a faint star a factor 10^0.2 = 1.6, as
+// much as 60 % less exposure.
+const DEPTH_LOSS_MAG: (f64, f64) = (0.5, 1.0);
 // Astronomical twilight (Sun above −18°) brightens the sky; by nautical twilight (above
 // −12°) a frame is rarely worth stacking.
 const SUN_ALTITUDE_DEG: (f64, f64) = (-18.0, -12.0);
@@ -208,6 +221,7 @@ struct GroupStats {
     background: Option<f64>,
     noise: Option<f64>,
     stars: Option<f64>,
+    depth: Option<f64>,
     /// Per configured rule: (median, robust σ) of its metric over readable frames.
     rules: Vec<(Option<f64>, Option<f64>)>,
 }
@@ -224,6 +238,7 @@ impl GroupStats {
             background: med(&|f| f.background_adu),
             noise: med(&|f| f.noise_adu),
             stars: med(&|f| f.star_count.map(|c| c as f64)),
+            depth: med(&|f| f.limit_mag),
             rules: rules
                 .iter()
                 .map(|r| {
@@ -253,6 +268,12 @@ impl GroupStats {
     fn star_limits(&self) -> Option<(f64, f64)> {
         let m = self.stars?.max(1.0);
         Some((STAR_FRACTION.0 * m, STAR_FRACTION.1 * m))
+    }
+
+    /// (warn, reject) limiting magnitudes below which the depth rule fires.
+    fn depth_limits(&self) -> Option<(f64, f64)> {
+        let m = self.depth?;
+        Some((m - DEPTH_LOSS_MAG.0, m - DEPTH_LOSS_MAG.1))
     }
 
     /// (warn, reject) background levels, ADU.
@@ -306,6 +327,9 @@ impl GroupStats {
             TRANSPARENCY_MAG,
             true,
         );
+        if let Some(l) = self.depth_limits() {
+            pair("depth_low", Metric::LimitMag, l, false);
+        }
         for (r, &(median, sigma)) in rules.iter().zip(&self.rules) {
             let value = match r.test {
                 Test::Above | Test::Below => Some(r.value),
@@ -511,6 +535,12 @@ fn judge(f: &FrameFacts, c: &GroupStats, replaced: &[&str]) -> Judgement {
             fire(verdict, "transparency_low", format!("stars {loss:.2} mag fainter than in the reference frame (warn above {w}, reject above {r})"));
         }
     }
+    if let (Some(v), Some(limits), Some(m)) = (f.limit_mag, c.depth_limits(), c.depth) {
+        if let Some(verdict) = level(v, limits, false) {
+            let (w, r) = DEPTH_LOSS_MAG;
+            fire(verdict, "depth_low", format!("limiting magnitude {v:.2} is {:.2} mag brighter than the night's median {m:.2} (warn beyond {w}, reject beyond {r})", m - v));
+        }
+    }
     if let Some(sun) = f.sun_alt_deg {
         if let Some(verdict) = level(sun, SUN_ALTITUDE_DEG, true) {
             // Written with the minus sign, as the other explanations are.
@@ -563,6 +593,8 @@ mod tests {
             fwhm_arcsec: Some(6.0),
             snr_median: Some(40.0),
             hfr_px: Some(1.6),
+            limit_mag: Some(18.5),
+            zero_point_mag: Some(23.0),
             sun_alt_deg: Some(-30.0),
         }
     }
@@ -639,6 +671,7 @@ mod tests {
                         f.star_count = Some(if fires { c } else { inside } as usize);
                     }
                     Metric::TransparencyLossMag => f.transparency_loss_mag = Some(v),
+                    Metric::LimitMag => f.limit_mag = Some(v),
                     other => panic!("no built-in limit on {other:?}"),
                 }
                 let j = &judge_group(&probe)[0];
@@ -648,7 +681,7 @@ mod tests {
         }
         assert_eq!(
             limits.len(),
-            10,
+            12,
             "{:?}",
             limits.iter().map(metrics).collect::<Vec<_>>()
         );
@@ -674,8 +707,9 @@ mod tests {
 
     #[test]
     fn each_default_rule_fires_on_its_fault_and_stays_quiet_otherwise() {
-        let mut frames = vec![good(); 10];
+        let mut frames = vec![good(); 11];
         frames[9].sun_alt_deg = Some(-10.0);
+        frames[10].limit_mag = Some(17.9);
         frames[1].fwhm_px = Some(4.8);
         frames[2].eccentricity = Some(0.7);
         frames[3].background_adu = Some(1200.0);
@@ -695,6 +729,7 @@ mod tests {
             (6, "trail", Verdict::Warn),
             (7, "unreadable", Verdict::Reject),
             (9, "twilight", Verdict::Reject),
+            (10, "depth_low", Verdict::Warn),
         ];
         for (i, code, verdict) in expect {
             assert_eq!(j[i].reasons, vec![code.to_string()], "frame {i}");

@@ -535,7 +535,7 @@ fn header_keys(p: &SimParams) -> Vec<(String, OutValue)> {
             Text(if p.bayer.is_some() {
                 "None".into()
             } else {
-                "L".into()
+                p.filter.clone()
             }),
         ),
         ("XBINNING".into(), Int(1)),

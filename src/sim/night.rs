@@ -7,6 +7,7 @@
 use ndarray::Array2;
 use rand::rngs::StdRng;
 use rand::{Rng, SeedableRng};
+use rand_distr::Distribution;
 use serde::Serialize;
 
 use super::{base_cd, render, PsfShape, Scene, SceneStar, SimParams, SimTruth, TrailSpec};
@@ -44,6 +45,14 @@ pub struct NightPlan {
     pub red_star: bool,
     /// From this frame on, the sky brightens as dawn comes (twilight).
     pub twilight_from: Option<usize>,
+    /// The filter named in the headers (monochrome plans).
+    pub filter: String,
+    /// How this filter sees the field's colors: each star of color index c (drawn per
+    /// star from the field's seed, σ 0.25 mag) is brighter by c × `color_term` mag.
+    pub color_term: f64,
+    /// One star of the field this many times brighter than its color says (a star
+    /// bright in one band only); 1 elsewhere.
+    pub band_star_factor: Option<f64>,
 }
 
 impl NightPlan {
@@ -74,6 +83,9 @@ impl NightPlan {
             new_source: false,
             red_star: false,
             twilight_from: None,
+            filter: "L".into(),
+            color_term: 0.0,
+            band_star_factor: None,
         }
     }
 }
@@ -151,27 +163,97 @@ fn to_frame(p: (f64, f64), c: (f64, f64), d: (f64, f64), rot: f64) -> (f64, f64)
     (co * x - s * y + c.0 + d.0, s * x + co * y + c.1 + d.1)
 }
 
-pub fn render_night(plan: &NightPlan) -> (Vec<NightFrame>, Vec<TrueAnomaly>) {
-    let mut field = StdRng::seed_from_u64(plan.field_seed);
-    let mut rng = StdRng::seed_from_u64(plan.seed);
+/// A star of the field, with its color index (mag; the filters' color terms scale it).
+#[derive(Debug, Clone, Copy)]
+pub struct FieldStar {
+    /// In reference pixels (0-based), flux in this plan's filter.
+    pub star: SceneStar,
+    pub color_mag: f64,
+    /// The field's star bright in one band only.
+    pub band_star: bool,
+}
+
+/// The field of a plan, in its reference frame's pixels: counts rising towards faint
+/// stars, each with a color, and the star bright in one band where the plan has one.
+/// `field` is the plan's field generator, fresh.
+fn field_stars(plan: &NightPlan, field: &mut StdRng) -> Vec<FieldStar> {
     let (w, h) = (plan.width as f64, plan.height as f64);
-    let c = ((w - 1.0) / 2.0, (h - 1.0) / 2.0);
     let margin = 40.0;
-    // The field, in reference pixels: counts rising towards faint stars.
-    let mut catalog: Vec<SceneStar> = (0..plan.star_count)
+    // Colors from a generator of their own, so fields drawn before colors existed keep
+    // their stars.
+    let mut colors = StdRng::seed_from_u64(plan.field_seed ^ 0xC010_0125);
+    let mut out: Vec<FieldStar> = (0..plan.star_count)
         .map(|_| {
             let u: f64 = field.gen();
             let flux_e = 4000.0 * (400.0f64).powf(u.powf(2.5));
             let x = field.gen_range(-margin..w + margin);
             let y = field.gen_range(-margin..h + margin);
             let t: f64 = field.gen_range(-0.25..0.25);
-            SceneStar {
-                x,
-                y,
-                flux_e,
-                rgb: plan.bayer.map(|_| [1.0 + t, 1.0, 1.0 - t]),
+            let g: f64 = rand_distr::StandardNormal.sample(&mut colors);
+            let color_mag = 0.25 * g;
+            FieldStar {
+                star: SceneStar {
+                    x,
+                    y,
+                    flux_e: flux_e * 10f64.powf(0.4 * color_mag * plan.color_term),
+                    rgb: plan.bayer.map(|_| [1.0 + t, 1.0, 1.0 - t]),
+                },
+                color_mag,
+                band_star: false,
             }
         })
+        .collect();
+    if let Some(factor) = plan.band_star_factor {
+        let x = colors.gen_range(0.25 * w..0.75 * w);
+        let y = colors.gen_range(0.25 * h..0.75 * h);
+        out.push(FieldStar {
+            star: SceneStar {
+                x,
+                y,
+                flux_e: 60_000.0 * factor,
+                rgb: None,
+            },
+            color_mag: 0.0,
+            band_star: true,
+        });
+    }
+    out
+}
+
+/// The field of a plan on the sky, as a catalogue would list it: (RA, Dec) degrees, the
+/// flux in electrons per second the plan's filter collects, the color index, and
+/// whether it is the star bright in one band only. Positions through the reference
+/// frame's WCS (the one the plan's unturned, undithered frame carries).
+pub fn field_on_sky(plan: &NightPlan) -> Vec<(f64, f64, f64, f64, bool)> {
+    let mut field = StdRng::seed_from_u64(plan.field_seed);
+    let c = (
+        (plan.width as f64 + 1.0) / 2.0,
+        (plan.height as f64 + 1.0) / 2.0,
+    );
+    let wcs = crate::frame::wcs::Wcs {
+        crpix: [c.0, c.1],
+        crval: [plan.center_deg.0, plan.center_deg.1],
+        cd: base_cd(1.94, 0.0),
+        lonpole: 180.0,
+        sip: None,
+    };
+    field_stars(plan, &mut field)
+        .into_iter()
+        .map(|f| {
+            let (ra, dec) = wcs.pixel_to_sky(f.star.x + 1.0, f.star.y + 1.0);
+            (ra, dec, f.star.flux_e / 120.0, f.color_mag, f.band_star)
+        })
+        .collect()
+}
+
+pub fn render_night(plan: &NightPlan) -> (Vec<NightFrame>, Vec<TrueAnomaly>) {
+    let mut field = StdRng::seed_from_u64(plan.field_seed);
+    let mut rng = StdRng::seed_from_u64(plan.seed);
+    let (w, h) = (plan.width as f64, plan.height as f64);
+    let c = ((w - 1.0) / 2.0, (h - 1.0) / 2.0);
+    let mut catalog: Vec<SceneStar> = field_stars(plan, &mut field)
+        .into_iter()
+        .map(|f| f.star)
         .collect();
     let mut anomalies = Vec::new();
     let inner = |rng: &mut StdRng| {
@@ -403,6 +485,7 @@ pub fn render_night(plan: &NightPlan) -> (Vec<NightFrame>, Vec<TrueAnomaly>) {
             center_deg: plan.center_deg,
             date_obs: date,
             object: plan.object.clone(),
+            filter: plan.filter.clone(),
             scene: Some(Scene {
                 stars,
                 hot_pixels: hot.clone(),
@@ -426,8 +509,14 @@ pub fn render_night(plan: &NightPlan) -> (Vec<NightFrame>, Vec<TrueAnomaly>) {
         }
         frames.push(NightFrame {
             name: format!(
-                "{}_{:03}.fits",
+                "{}{}_{:03}.fits",
                 plan.object.to_lowercase().replace(' ', "-"),
+                // Filters other than the scenario's usual L are named in the file name.
+                if plan.filter == "L" || plan.bayer.is_some() {
+                    String::new()
+                } else {
+                    format!("-{}", plan.filter.to_lowercase())
+                },
                 i + 1
             ),
             pixels,

@@ -21,6 +21,9 @@ pub struct SourceFile {
     pub mtime_ns: i64,
 }
 
+/// A cone holding more stars than this is refused (a frame needs thousands).
+pub const MAX_CONE_STARS: usize = 2_000_000;
+
 pub struct CatalogueIndex {
     conn: Connection,
     path: PathBuf,
@@ -58,6 +61,15 @@ impl IndexWriter {
             source,
         };
         let _ = std::fs::remove_file(&tmp);
+        // Created here and now (never a file or link someone else left at that name).
+        std::fs::OpenOptions::new()
+            .write(true)
+            .create_new(true)
+            .open(&tmp)
+            .map_err(|source| StoreError::File {
+                path: tmp.clone(),
+                source,
+            })?;
         let conn = Connection::open(&tmp).map_err(err)?;
         conn.execute_batch(
             "PRAGMA journal_mode = OFF; PRAGMA synchronous = OFF;
@@ -200,6 +212,9 @@ impl CatalogueIndex {
         dec: f64,
         radius_deg: f64,
     ) -> Result<Vec<CatalogueStar>, StoreError> {
+        if !(ra.is_finite() && dec.is_finite() && radius_deg.is_finite()) {
+            return Ok(Vec::new());
+        }
         let r = radius_deg.clamp(0.0, 180.0);
         let c = unit(ra, dec);
         // The chord of the cone's radius, and a little for the index's 32-bit boxes.
@@ -238,7 +253,13 @@ impl CatalogueIndex {
             )
             .map_err(self.err())?;
         let mut out = Vec::new();
-        for s in rows {
+        for (n, s) in rows.enumerate() {
+            if n >= MAX_CONE_STARS {
+                return Err(StoreError::TooMany {
+                    path: self.path.clone(),
+                    limit: MAX_CONE_STARS,
+                });
+            }
             let s = s.map_err(self.err())?;
             if crate::astrometry::separation_deg((ra, dec), (s.ra_deg, s.dec_deg)) <= r {
                 out.push(s);

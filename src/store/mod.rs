@@ -42,6 +42,8 @@ pub enum StoreError {
         #[source]
         source: rusqlite::Error,
     },
+    #[error("{path}: a query around one frame found more than {limit} catalogue stars; give a catalogue limited to the stars your camera reaches")]
+    TooMany { path: PathBuf, limit: usize },
     #[error("{path}: {source}")]
     File {
         path: PathBuf,

@@ -334,6 +334,9 @@ mod tests {
             filter: None,
             catalogue: None,
             catalogue_depth_mag: None,
+            mag: None,
+            mag_err: None,
+            mag_band: None,
         }
     }
 
