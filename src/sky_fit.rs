@@ -99,20 +99,25 @@ pub fn fit_record(
         return Ok(());
     };
     let (w, h) = (m.width, m.height);
-    let cat = index.cone(
+    let cone = index.cone_positions(
         hint.ra_deg,
         hint.dec_deg,
         astrometry::cone_radius_deg(&hint, w, h).min(MAX_CONE_DEG),
     )?;
     let year = rec.time_unix.map_or(2000.0, julian_year);
-    let sky: Vec<SkyStar> = cat
+    let sky: Vec<SkyStar> = cone
         .iter()
         .map(|s| {
-            let (ra, dec) = s.position_at(year);
+            let (ra, dec) = crate::catalogue::propagate(
+                (s.ra_deg, s.dec_deg),
+                (s.pm_ra_mas_yr, s.pm_dec_mas_yr),
+                s.epoch,
+                year,
+            );
             SkyStar {
                 ra_deg: ra,
                 dec_deg: dec,
-                mag: s.mag(None),
+                mag: s.mag,
             }
         })
         .collect();
@@ -153,13 +158,21 @@ pub fn fit_record(
     let Some(sol) = solution else {
         return Ok(());
     };
-    let band = band_for(rec.filter.as_deref(), opts, &cat);
+    // The matched stars' whole rows, for their magnitudes in every band.
+    let matched = index.stars(
+        &sol.pairs
+            .iter()
+            .map(|&(_, j)| cone[j].row)
+            .collect::<Vec<_>>(),
+    )?;
+    let band = band_for(rec.filter.as_deref(), opts, &matched);
     let pairs: Vec<(f64, f64, f64)> = sol
         .pairs
         .iter()
-        .filter_map(|&(i, j)| {
+        .zip(&matched)
+        .filter_map(|(&(i, _), star)| {
             let s = &rec.stars[i];
-            Some((s.flux, s.snr, cat[j].mag(band.as_deref())?))
+            Some((s.flux, s.snr, star.mag(band.as_deref())?))
         })
         .collect();
     let exposure = rec.header.as_ref().and_then(|hf| hf.exposure_s);

@@ -38,9 +38,18 @@ fn the_demo_night_finds_everything_it_holds() {
         assert_eq!(f["sky_fit"]["source"], "fitted", "{}", f["path"]);
         assert!(f["sky_fit"]["rms_arcsec"].as_f64().unwrap() < 0.6);
         // V from 25 − 2.5 log10(e⁻/s) with a gain of 1: the zero point is 25, less the
-        // light outside the photometric aperture (Moffat wings, a few per cent).
+        // light outside the photometric aperture (Moffat wings, a few per cent); through
+        // the cloud of frames 12–14 (30 % of the light) 2.5 log10(0.3) = 1.31 mag less.
         let zp = f["zero_point_mag"].as_f64().unwrap();
-        assert!((24.9..=25.02).contains(&zp), "{}: {zp}", f["path"]);
+        let path = f["path"].as_str().unwrap();
+        let cloud = ["a_012.fits", "a_013.fits", "a_014.fits"]
+            .iter()
+            .any(|n| path.ends_with(n));
+        let expected = if cloud { 25.0 - 1.307 } else { 25.0 };
+        assert!(
+            (expected - 0.1..=expected + 0.02).contains(&zp),
+            "{path}: {zp}"
+        );
         assert!(f["limit_mag"].as_f64().is_some());
     }
     // The evening's calibration set: one frame of each fault found with its own reason,

@@ -28,29 +28,12 @@ impl CatalogueStar {
     /// The position at Julian year `year`, by linear proper motion on the tangent plane
     /// (adequate over decades for the motions of field stars; common practice).
     pub fn position_at(&self, year: f64) -> (f64, f64) {
-        let dt = year - self.epoch;
-        let (Some(pa), Some(pd)) = (self.pm_ra_mas_yr, self.pm_dec_mas_yr) else {
-            return (self.ra_deg, self.dec_deg);
-        };
-        if !dt.is_finite() || dt == 0.0 {
-            return (self.ra_deg, self.dec_deg);
-        }
-        // The unit vector moved along the local east and north directions and normalised
-        // (ESA 1997, The Hipparcos and Tycho Catalogues, vol. 1, sec. 1.5.5, without the
-        // radial terms): right across the pole too.
-        let (a, d) = (self.ra_deg.to_radians(), self.dec_deg.to_radians());
-        let p = [d.cos() * a.cos(), d.cos() * a.sin(), d.sin()];
-        let east = [-a.sin(), a.cos(), 0.0];
-        let north = [-d.sin() * a.cos(), -d.sin() * a.sin(), d.cos()];
-        let mas = (1.0f64 / 3.6e6).to_radians();
-        let (ea, nd) = (pa * dt * mas, pd * dt * mas);
-        let v: Vec<f64> = (0..3)
-            .map(|k| p[k] + ea * east[k] + nd * north[k])
-            .collect();
-        let norm = (v[0] * v[0] + v[1] * v[1] + v[2] * v[2]).sqrt();
-        let ra = v[1].atan2(v[0]).to_degrees();
-        let dec = (v[2] / norm).clamp(-1.0, 1.0).asin().to_degrees();
-        (ra.rem_euclid(360.0), dec)
+        propagate(
+            (self.ra_deg, self.dec_deg),
+            (self.pm_ra_mas_yr, self.pm_dec_mas_yr),
+            self.epoch,
+            year,
+        )
     }
 
     /// The magnitude in `band` (case-insensitive), or the first one when `band` is `None`.
@@ -64,6 +47,38 @@ impl CatalogueStar {
             None => self.mags.first().map(|m| m.1),
         }
     }
+}
+
+/// A position at `epoch` carried to Julian year `year` by its proper motion (μα cos δ,
+/// μδ in mas/yr): the unit vector moved along the local east and north directions and
+/// normalised (ESA 1997, The Hipparcos and Tycho Catalogues, vol. 1, sec. 1.5.5, without
+/// the radial terms), so right across the pole too.
+pub fn propagate(
+    (ra_deg, dec_deg): (f64, f64),
+    pm: (Option<f64>, Option<f64>),
+    epoch: f64,
+    year: f64,
+) -> (f64, f64) {
+    let dt = year - epoch;
+    let (Some(pa), Some(pd)) = pm else {
+        return (ra_deg, dec_deg);
+    };
+    if !dt.is_finite() || dt == 0.0 {
+        return (ra_deg, dec_deg);
+    }
+    let (a, d) = (ra_deg.to_radians(), dec_deg.to_radians());
+    let p = [d.cos() * a.cos(), d.cos() * a.sin(), d.sin()];
+    let east = [-a.sin(), a.cos(), 0.0];
+    let north = [-d.sin() * a.cos(), -d.sin() * a.sin(), d.cos()];
+    let mas = (1.0f64 / 3.6e6).to_radians();
+    let (ea, nd) = (pa * dt * mas, pd * dt * mas);
+    let v: Vec<f64> = (0..3)
+        .map(|k| p[k] + ea * east[k] + nd * north[k])
+        .collect();
+    let norm = (v[0] * v[0] + v[1] * v[1] + v[2] * v[2]).sqrt();
+    let ra = v[1].atan2(v[0]).to_degrees();
+    let dec = (v[2] / norm).clamp(-1.0, 1.0).asin().to_degrees();
+    (ra.rem_euclid(360.0), dec)
 }
 
 /// Which columns hold what. The defaults are the contract's names.

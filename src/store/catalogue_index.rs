@@ -21,6 +21,23 @@ pub struct SourceFile {
     pub mtime_ns: i64,
 }
 
+/// The index's layout; an index of another is built again.
+const FORMAT: &str = "2";
+
+/// A star as the fit needs it, straight from the index's boxes (no row read, no parse).
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct ConeStar {
+    /// The star's row, to read the whole of it later ([`CatalogueIndex::stars`]).
+    pub row: i64,
+    pub ra_deg: f64,
+    pub dec_deg: f64,
+    pub pm_ra_mas_yr: Option<f64>,
+    pub pm_dec_mas_yr: Option<f64>,
+    pub epoch: f64,
+    /// The first magnitude the catalogue gives it.
+    pub mag: Option<f64>,
+}
+
 /// A cone holding more stars than this is refused (a frame needs thousands).
 pub const MAX_CONE_STARS: usize = 2_000_000;
 
@@ -76,7 +93,8 @@ impl IndexWriter {
              CREATE TABLE meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
              CREATE TABLE stars (id INTEGER PRIMARY KEY, name TEXT NOT NULL, ra REAL NOT NULL,
                  dec REAL NOT NULL, pm_ra REAL, pm_dec REAL, epoch REAL NOT NULL, mags TEXT NOT NULL);
-             CREATE VIRTUAL TABLE stars_xyz USING rtree(id, x0, x1, y0, y1, z0, z1);
+             CREATE VIRTUAL TABLE stars_xyz USING rtree(id, x0, x1, y0, y1, z0, z1,
+                 +ra, +dec, +pm_ra, +pm_dec, +epoch, +mag);
              BEGIN;",
         )
         .map_err(err)?;
@@ -106,7 +124,9 @@ impl IndexWriter {
             .map_err(self.err())?;
         let mut boxed = self
             .conn
-            .prepare_cached("INSERT INTO stars_xyz VALUES (?1, ?2, ?2, ?3, ?3, ?4, ?4)")
+            .prepare_cached(
+                "INSERT INTO stars_xyz VALUES (?1, ?2, ?2, ?3, ?3, ?4, ?4, ?5, ?6, ?7, ?8, ?9, ?10)",
+            )
             .map_err(self.err())?;
         for s in stars {
             let id = self.next_id;
@@ -128,7 +148,18 @@ impl IndexWriter {
             })?;
             let v = unit(s.ra_deg, s.dec_deg);
             boxed
-                .execute(params![id, v[0], v[1], v[2]])
+                .execute(params![
+                    id,
+                    v[0],
+                    v[1],
+                    v[2],
+                    s.ra_deg,
+                    s.dec_deg,
+                    s.pm_ra_mas_yr,
+                    s.pm_dec_mas_yr,
+                    s.epoch,
+                    s.mags.first().map(|m| m.1)
+                ])
                 .map_err(|source| StoreError::Sqlite {
                     path: self.path.clone(),
                     source,
@@ -146,8 +177,8 @@ impl IndexWriter {
         let meta = serde_json::to_string(sources).unwrap_or_default();
         self.conn
             .execute(
-                "INSERT INTO meta (key, value) VALUES ('sources', ?1), ('settings', ?2)",
-                params![meta, settings],
+                "INSERT INTO meta (key, value) VALUES ('sources', ?1), ('settings', ?2), ('format', ?3)",
+                params![meta, settings, FORMAT],
             )
             .map_err(self.err())?;
         self.conn.execute_batch("COMMIT;").map_err(self.err())?;
@@ -195,7 +226,9 @@ impl CatalogueIndex {
         };
         let recorded: Option<Vec<SourceFile>> =
             get("sources").and_then(|s| serde_json::from_str(&s).ok());
-        recorded.as_deref() == Some(sources) && get("settings").as_deref() == Some(settings)
+        recorded.as_deref() == Some(sources)
+            && get("settings").as_deref() == Some(settings)
+            && get("format").as_deref() == Some(FORMAT)
     }
 
     pub fn count(&self) -> Result<u64, StoreError> {
@@ -203,6 +236,93 @@ impl CatalogueIndex {
             .query_row("SELECT count(*) FROM stars", [], |r| r.get::<_, i64>(0))
             .map(|n| n.max(0) as u64)
             .map_err(self.err())
+    }
+
+    /// Every star within `radius_deg` of (ra, dec) at its catalogue position, as the fit
+    /// needs it: read from the R*Tree alone.
+    pub fn cone_positions(
+        &self,
+        ra: f64,
+        dec: f64,
+        radius_deg: f64,
+    ) -> Result<Vec<ConeStar>, StoreError> {
+        if !(ra.is_finite() && dec.is_finite() && radius_deg.is_finite()) {
+            return Ok(Vec::new());
+        }
+        let r = radius_deg.clamp(0.0, 180.0);
+        let c = unit(ra, dec);
+        let chord = 2.0 * (r.to_radians() / 2.0).sin() + 1e-6;
+        let mut q = self
+            .conn
+            .prepare_cached(
+                "SELECT id, ra, dec, pm_ra, pm_dec, epoch, mag FROM stars_xyz
+                 WHERE x1 >= ?1 AND x0 <= ?2 AND y1 >= ?3 AND y0 <= ?4 AND z1 >= ?5 AND z0 <= ?6",
+            )
+            .map_err(self.err())?;
+        let rows = q
+            .query_map(
+                params![
+                    c[0] - chord,
+                    c[0] + chord,
+                    c[1] - chord,
+                    c[1] + chord,
+                    c[2] - chord,
+                    c[2] + chord
+                ],
+                |row| {
+                    Ok(ConeStar {
+                        row: row.get(0)?,
+                        ra_deg: row.get(1)?,
+                        dec_deg: row.get(2)?,
+                        pm_ra_mas_yr: row.get(3)?,
+                        pm_dec_mas_yr: row.get(4)?,
+                        epoch: row.get(5)?,
+                        mag: row.get(6)?,
+                    })
+                },
+            )
+            .map_err(self.err())?;
+        let mut out = Vec::new();
+        for (n, s) in rows.enumerate() {
+            if n >= MAX_CONE_STARS {
+                return Err(StoreError::TooMany {
+                    path: self.path.clone(),
+                    limit: MAX_CONE_STARS,
+                });
+            }
+            let s = s.map_err(self.err())?;
+            if crate::astrometry::separation_deg((ra, dec), (s.ra_deg, s.dec_deg)) <= r {
+                out.push(s);
+            }
+        }
+        Ok(out)
+    }
+
+    /// The whole catalogue rows of these stars, in the order given.
+    pub fn stars(&self, rows: &[i64]) -> Result<Vec<CatalogueStar>, StoreError> {
+        let mut q = self
+            .conn
+            .prepare_cached(
+                "SELECT name, ra, dec, pm_ra, pm_dec, epoch, mags FROM stars WHERE id = ?1",
+            )
+            .map_err(self.err())?;
+        rows.iter()
+            .map(|&id| {
+                q.query_row([id], |row| {
+                    let mags: String = row.get(6)?;
+                    Ok(CatalogueStar {
+                        id: row.get(0)?,
+                        ra_deg: row.get(1)?,
+                        dec_deg: row.get(2)?,
+                        pm_ra_mas_yr: row.get(3)?,
+                        pm_dec_mas_yr: row.get(4)?,
+                        epoch: row.get(5)?,
+                        mags: serde_json::from_str(&mags).unwrap_or_default(),
+                    })
+                })
+                .map_err(self.err())
+            })
+            .collect()
     }
 
     /// Every star within `radius_deg` of (ra, dec) at its catalogue position.
