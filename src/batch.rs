@@ -44,9 +44,9 @@ pub fn analyse_records(
         );
         groups.entry(key).or_default().push(r);
     }
-    // Per target, each filter group's catalogue of the night and its reference frame, for
-    // the colors between filters.
-    let mut bands: BTreeMap<String, Vec<BandEntry>> = BTreeMap::new();
+    // Per target, tonight's label and each filter group's catalogue of the night with its
+    // reference frame, for the colors between filters.
+    let mut bands: BTreeMap<String, (Option<String>, Vec<BandEntry>)> = BTreeMap::new();
     for ((target, filter), frames) in groups {
         let night_label = majority(
             frames
@@ -56,10 +56,10 @@ pub fn analyse_records(
         );
         let earlier = match (&store, &night_label) {
             (Catalogues::Read(s), Some(n)) if !target.is_empty() => {
-                s.earlier_catalogs(&target, n)?
+                s.earlier_catalogs(&target, &filter, n)?
             }
             (Catalogues::Keep(s), Some(n)) if !target.is_empty() => {
-                s.earlier_catalogs(&target, n)?
+                s.earlier_catalogs(&target, &filter, n)?
             }
             _ => Vec::new(),
         };
@@ -77,13 +77,14 @@ pub fn analyse_records(
             .and_then(|path| frames.iter().find(|r| r.identity.path == path).copied());
         if let (Some(r), false, false) = (reference, target.is_empty(), filter.is_empty()) {
             if let (Some(wcs), false) = (r.wcs.clone(), found.catalog.is_empty()) {
-                bands.entry(target.clone()).or_default().push(BandEntry {
+                let entries = bands.entry(target.clone()).or_default();
+                entries.0 = entries.0.take().or(night_label.clone());
+                entries.1.push(BandEntry {
                     filter: filter.clone(),
                     sources: found.catalog.clone(),
                     limit_mag: found.limit_mag,
-                    reference: r.identity.path.clone(),
+                    seen: Some((r.identity.path.clone(), wcs.clone())),
                     scale_arcsec: wcs.scale_arcsec(),
-                    wcs,
                 });
             }
         }
@@ -91,7 +92,7 @@ pub fn analyse_records(
             (&mut store, &night_label, found.limit_mag)
         {
             if !target.is_empty() && !found.catalog.is_empty() {
-                s.save_catalog(&target, n, limit, &found.footprint, &found.catalog)?;
+                s.save_catalog(&target, &filter, n, limit, &found.footprint, &found.catalog)?;
             }
         }
         let carried: Vec<Option<crate::astrometry::SkyFit>> = frames
@@ -172,7 +173,26 @@ pub fn analyse_records(
             });
         }
     }
-    for (target, entries) in &bands {
+    for (target, (tonight, entries)) in &mut bands {
+        // Filters not imaged tonight, from the newest earlier night the store holds.
+        let earlier = match (&store, tonight.as_deref()) {
+            (Catalogues::Read(s), Some(n)) => s.catalogs_before(target, n)?,
+            (Catalogues::Keep(s), Some(n)) => s.catalogs_before(target, n)?,
+            _ => Vec::new(),
+        };
+        let scale = entries.first().map_or(1.0, |e| e.scale_arcsec);
+        for (filter, night) in earlier {
+            if filter.is_empty() || entries.iter().any(|e| e.filter == filter) {
+                continue;
+            }
+            entries.push(BandEntry {
+                filter: format!("{filter} ({})", night.night),
+                sources: night.sources,
+                limit_mag: Some(night.limit_mag),
+                seen: None,
+                scale_arcsec: scale,
+            });
+        }
         doc.anomalies.extend(band_colors(target, entries));
     }
     // Darks, flats and bias frames, judged as calibration for these lights.
@@ -223,13 +243,14 @@ pub fn analyse_records(
     Ok(doc)
 }
 
-/// One filter group of a target, for the colors between filters.
+/// One filter group of a target, for the colors between filters: tonight's, with the
+/// reference frame it was seen in, or an earlier night's from the store (its filter then
+/// names the night).
 struct BandEntry {
     filter: String,
     sources: Vec<crate::night::CatalogSource>,
     limit_mag: Option<f64>,
-    reference: String,
-    wcs: crate::frame::wcs::Wcs,
+    seen: Option<(String, crate::frame::wcs::Wcs)>,
     scale_arcsec: f64,
 }
 
@@ -255,14 +276,17 @@ fn band_colors(target: &str, entries: &[BandEntry]) -> Vec<AnomalyRecord> {
         .max(1.0);
     band_outliers(&groups, 1.5 * scale / 3600.0)
         .into_iter()
+        // Between two earlier nights is not tonight's news.
+        .filter(|o| entries[o.groups.0].seen.is_some() || entries[o.groups.1].seen.is_some())
         .map(|o| {
             let (a, b) = (&entries[o.groups.0], &entries[o.groups.1]);
-            let detections = [a, b]
+            let detections: Vec<DetectionRecord> = [a, b]
                 .iter()
                 .filter_map(|e| {
-                    let (x, y) = e.wcs.sky_to_pixel(o.ra_deg, o.dec_deg)?;
+                    let (path, wcs) = e.seen.as_ref()?;
+                    let (x, y) = wcs.sky_to_pixel(o.ra_deg, o.dec_deg)?;
                     Some(DetectionRecord {
-                        path: e.reference.clone(),
+                        path: path.clone(),
                         x,
                         y,
                     })

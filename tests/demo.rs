@@ -125,6 +125,13 @@ fn the_demo_night_finds_everything_it_holds() {
     assert_eq!(band.len(), 1, "{band:?}");
     assert!(band[0]["detail"]["z"].as_f64().unwrap().abs() > 5.0);
     assert!(band[0]["catalogue"]["id"].is_string());
+    // Nothing flashes in Field C: a bright star measured in one frame and saturated in
+    // the others is not a transient.
+    let field_c_transients: Vec<&serde_json::Value> = anomalies
+        .iter()
+        .filter(|a| a["kind"] == "transient" && a["target"] == "Kestrel Field C")
+        .collect();
+    assert!(field_c_transients.is_empty(), "{field_c_transients:?}");
     // Tonight's new source is not in the catalogue, and so leads the list.
     let new: Vec<&serde_json::Value> = anomalies
         .iter()

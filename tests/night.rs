@@ -447,3 +447,97 @@ fn the_daemon_store_gives_the_same_night_as_the_batch_command() {
     assert_eq!(summary(&from_store), summary(&batch));
     assert_eq!(from_store["frames"].as_array().unwrap().len(), frames.len());
 }
+
+/// One target through V tonight and through I the next night, with a star eight times
+/// brighter in I than its color says: found between the nights the store holds, and
+/// between the two filters of one night; no other star is called out.
+#[test]
+fn a_star_bright_in_one_band_only_is_found_between_filters() {
+    let dir = tempfile::tempdir().unwrap();
+    let store = dir.path().join("store");
+    std::fs::create_dir_all(&store).unwrap();
+    let config = store.join("subwatch.toml");
+    std::fs::write(
+        &config,
+        format!("[watch]\nfolders = [\"{}\"]\n[store]\npath = \"subwatch.db\"\n[site]\ntimezone = \"Europe/Madrid\"\n", store.display()),
+    )
+    .unwrap();
+    let base = NightPlan {
+        object: "Kestrel Field C".into(),
+        field_seed: 63,
+        frames: 6,
+        star_count: 300,
+        cosmic_rays_per_frame: 0.0,
+        hot_pixels: 0,
+        ..NightPlan::full(43).quiet()
+    };
+    let v = NightPlan {
+        filter: "V".into(),
+        band_star_factor: Some(1.0),
+        start: "2026-03-14T21:00:00".into(),
+        ..base.clone()
+    };
+    let i = NightPlan {
+        seed: 44,
+        filter: "I".into(),
+        color_term: 1.0,
+        band_star_factor: Some(8.0),
+        start: "2026-03-15T21:00:00".into(),
+        ..base.clone()
+    };
+    let band_colors = |doc: &Value| -> Vec<Value> {
+        doc["anomalies"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .filter(|a| a["kind"] == "color" && a["detail"]["bands"].is_array())
+            .cloned()
+            .collect()
+    };
+    // Across nights: V into the store first, then I.
+    write_night(&dir.path().join("v"), &v);
+    let first = run_night(&dir.path().join("v"), Some(&config));
+    assert!(band_colors(&first).is_empty(), "one filter alone: {first}");
+    let (frames, _) = write_night(&dir.path().join("i"), &i);
+    let second = run_night(&dir.path().join("i"), Some(&config));
+    let found = band_colors(&second);
+    assert_eq!(found.len(), 1, "{found:?}");
+    let bands = found[0]["detail"]["bands"].to_string();
+    assert!(
+        bands.contains("\"I\"") && bands.contains("V (2026-03-14)"),
+        "{bands}"
+    );
+    assert!(found[0]["detail"]["z"].as_f64().unwrap().abs() > 5.0);
+    // Where the rendered star is: it was placed by the plan, not by the frames' seed.
+    let star = subwatch::sim::night::field_on_sky(&i)
+        .into_iter()
+        .find(|s| s.4)
+        .unwrap();
+    let sep = subwatch::astrometry::separation_deg(
+        (star.0, star.1),
+        (
+            found[0]["ra_deg"].as_f64().unwrap(),
+            found[0]["dec_deg"].as_f64().unwrap(),
+        ),
+    ) * 3600.0;
+    assert!(sep < 2.0, "{sep} arcsec from the star bright in I");
+    assert_eq!(
+        found[0]["detections"][0]["path"]
+            .as_str()
+            .map(|p| p.contains("-i_")),
+        Some(true)
+    );
+    // Within one night: both filters in one folder.
+    let both = dir.path().join("both");
+    write_night(&both, &v);
+    let same_night = NightPlan {
+        start: "2026-03-14T21:20:00".into(),
+        ..i
+    };
+    write_night(&both, &same_night);
+    let doc = run_night(&both, None);
+    let found = band_colors(&doc);
+    assert_eq!(found.len(), 1, "{found:?}");
+    assert_eq!(found[0]["detections"].as_array().unwrap().len(), 2);
+    drop(frames);
+}

@@ -37,6 +37,9 @@ pub struct FrameInput<'a> {
     pub trails: &'a [Trail],
     /// Detections set aside as wider than the stars (galaxies, blends), FITS pixels.
     pub extended: Vec<(f64, f64)>,
+    /// Saturated stars, FITS pixels: a star at the edge of saturation is measured in one
+    /// frame and set aside in the next.
+    pub saturated: Vec<(f64, f64)>,
     pub wcs: Option<&'a Wcs>,
 }
 
@@ -57,6 +60,7 @@ impl<'a> FrameInput<'a> {
                 .collect(),
             trails: m.map_or(&[], |m| &m.trails),
             extended: of_kind(RejectKind::Extended).map(|x| (x.x, x.y)).collect(),
+            saturated: of_kind(RejectKind::Saturated).map(|x| (x.x, x.y)).collect(),
             wcs: r.wcs.as_ref(),
         }
     }

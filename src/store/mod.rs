@@ -285,6 +285,46 @@ mod tests {
         assert_eq!(s.recorded_versions().unwrap()["/a.fits"].0, 11);
     }
 
+    #[test]
+    fn two_filters_of_a_target_keep_their_own_catalogues_and_old_ones_stay_readable() {
+        let dir = tempfile::tempdir().unwrap();
+        let db = dir.path().join("s.db");
+        let src = |mag: f64| crate::night::CatalogSource {
+            ra_deg: 10.0,
+            dec_deg: 20.0,
+            mag: Some(mag),
+        };
+        {
+            // A store as version 8 left it: one catalogue per target and night.
+            let conn = Connection::open(&db).unwrap();
+            for (i, sql) in MIGRATIONS.iter().take(8).enumerate() {
+                conn.execute_batch(sql).unwrap();
+                conn.execute_batch(&format!("PRAGMA user_version = {}", i + 1))
+                    .unwrap();
+            }
+            conn.execute_batch(
+                "INSERT INTO catalog_nights (target, night, limit_mag) VALUES ('T', '2026-03-01', 18.0);
+                 INSERT INTO catalog (target, night, ra_deg, dec_deg, mag) VALUES ('T', '2026-03-01', 10.0, 20.0, 12.0);",
+            )
+            .unwrap();
+        }
+        let mut s = Store::open(&db).unwrap();
+        s.save_catalog("T", "V", "2026-03-02", 19.0, &[], &[src(12.5)])
+            .unwrap();
+        s.save_catalog("T", "I", "2026-03-02", 18.5, &[], &[src(11.5)])
+            .unwrap();
+        let v = s.earlier_catalogs("T", "V", "2026-03-05").unwrap();
+        assert_eq!(
+            v.iter().map(|n| n.night.as_str()).collect::<Vec<_>>(),
+            ["2026-03-02", "2026-03-01"],
+            "V's own night, then the one recorded before filters were named"
+        );
+        assert_eq!(v[0].sources[0].mag, Some(12.5));
+        let all = s.catalogs_before("T", "2026-03-05").unwrap();
+        let filters: Vec<&str> = all.iter().map(|(f, _)| f.as_str()).collect();
+        assert_eq!(filters, ["I", "V", ""]);
+    }
+
     fn star() -> crate::record::StarRecord {
         crate::record::StarRecord {
             x: 0.0,

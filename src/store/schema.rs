@@ -1,7 +1,7 @@
 //! The store's schema: each migration in order; `PRAGMA user_version` says how many a
 //! store has had. A migration is never changed once released, only followed.
 
-pub const SCHEMA_VERSION: i64 = 8;
+pub const SCHEMA_VERSION: i64 = 9;
 
 pub(super) const MIGRATIONS: &[&str] = &[
     // 1: frames, their stars and rejected detections, and a key-value table.
@@ -101,4 +101,18 @@ pub(super) const MIGRATIONS: &[&str] = &[
     "ALTER TABLE frames ADD COLUMN live_explanations_json TEXT;",
     // 8: what a calibration frame (dark, flat, bias) measured.
     "ALTER TABLE frames ADD COLUMN calibration_json TEXT;",
+    // 9: the catalogue of persistent sources per target and filter (two filters of one
+    // target no longer overwrite each other's night); earlier rows keep filter ''.
+    "CREATE TABLE catalog_nights_by_filter (
+        target TEXT NOT NULL, filter TEXT NOT NULL DEFAULT '', night TEXT NOT NULL,
+        limit_mag REAL NOT NULL, footprint_json TEXT,
+        PRIMARY KEY (target, filter, night)
+     );
+     INSERT INTO catalog_nights_by_filter (target, filter, night, limit_mag, footprint_json)
+        SELECT target, '', night, limit_mag, footprint_json FROM catalog_nights;
+     DROP TABLE catalog_nights;
+     ALTER TABLE catalog_nights_by_filter RENAME TO catalog_nights;
+     ALTER TABLE catalog ADD COLUMN filter TEXT NOT NULL DEFAULT '';
+     DROP INDEX catalog_target;
+     CREATE INDEX catalog_target ON catalog (target, filter, night);",
 ];

@@ -178,6 +178,18 @@ pub(super) fn moving_and_transients(night: &Night) -> Vec<Anomaly> {
             .filter(|&p| p < n)
             .map(|p| order[p])
             .collect();
+        // Saturated in the frames around it: a bright star just below saturation here.
+        let saturated_around = neighbours.iter().any(|&j| {
+            transforms[j].is_some_and(|t| {
+                frames[j].saturated.iter().any(|&p| {
+                    let (xr, yr) = t.apply(p);
+                    (xr - o.xr).hypot(yr - o.yr) < 2.5 * frame_fwhm.max(fwhm)
+                })
+            })
+        });
+        if saturated_around {
+            continue;
+        }
         let deep = !neighbours.is_empty()
             && neighbours.iter().all(|&j| {
                 transforms[j].is_some_and(|t| {
