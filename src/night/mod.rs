@@ -37,9 +37,10 @@ pub struct FrameInput<'a> {
     pub trails: &'a [Trail],
     /// Detections set aside as wider than the stars (galaxies, blends), FITS pixels.
     pub extended: Vec<(f64, f64)>,
-    /// Saturated stars, FITS pixels: a star at the edge of saturation is measured in one
-    /// frame and set aside in the next.
-    pub saturated: Vec<(f64, f64)>,
+    /// Detections set aside but for sharpness (saturated, clipped by the edge, unfit,
+    /// extended), FITS pixels: a star measured in one frame may be set aside in the next
+    /// (at the edge of saturation, dithered onto the edge, blended), and it was there.
+    pub set_aside: Vec<(f64, f64)>,
     pub wcs: Option<&'a Wcs>,
 }
 
@@ -60,7 +61,12 @@ impl<'a> FrameInput<'a> {
                 .collect(),
             trails: m.map_or(&[], |m| &m.trails),
             extended: of_kind(RejectKind::Extended).map(|x| (x.x, x.y)).collect(),
-            saturated: of_kind(RejectKind::Saturated).map(|x| (x.x, x.y)).collect(),
+            set_aside: r
+                .rejected
+                .iter()
+                .filter(|x| x.kind != RejectKind::Sharp)
+                .map(|x| (x.x, x.y))
+                .collect(),
             wcs: r.wcs.as_ref(),
         }
     }

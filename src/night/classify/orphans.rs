@@ -178,16 +178,17 @@ pub(super) fn moving_and_transients(night: &Night) -> Vec<Anomaly> {
             .filter(|&p| p < n)
             .map(|p| order[p])
             .collect();
-        // Saturated in the frames around it: a bright star just below saturation here.
-        let saturated_around = neighbours.iter().any(|&j| {
+        // Detected but set aside in a frame around it (saturated, on the edge, blended):
+        // something was there all along.
+        let there_around = neighbours.iter().any(|&j| {
             transforms[j].is_some_and(|t| {
-                frames[j].saturated.iter().any(|&p| {
+                frames[j].set_aside.iter().any(|&p| {
                     let (xr, yr) = t.apply(p);
                     (xr - o.xr).hypot(yr - o.yr) < 2.5 * frame_fwhm.max(fwhm)
                 })
             })
         });
-        if saturated_around {
+        if there_around {
             continue;
         }
         let deep = !neighbours.is_empty()
