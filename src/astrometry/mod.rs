@@ -581,37 +581,16 @@ pub fn solve<S: Placed>(
                 let Some(reg) = register_brightest(&tile, &frame_pts, n) else {
                     continue;
                 };
-                // Frame pixel p → tile pixel A·p + t → sky by the tile's WCS.
-                let a = reg.transform.a;
-                let det = a[0][0] * a[1][1] - a[0][1] * a[1][0];
-                if det.abs() < 1e-12 {
+                // Frame pixel p → tile pixel A·p + t → sky by the tile's WCS: the tile's
+                // projection carried through the registration (exact for TAN).
+                let Some(start) = carry(
+                    &tile_wcs,
+                    reg.transform.a,
+                    reg.transform.t,
+                    frame.width,
+                    frame.height,
+                ) else {
                     continue;
-                }
-                let inv = [
-                    [a[1][1] / det, -a[0][1] / det],
-                    [-a[1][0] / det, a[0][0] / det],
-                ];
-                let d = [crpix[0] - reg.transform.t[0], crpix[1] - reg.transform.t[1]];
-                let p0 = [
-                    inv[0][0] * d[0] + inv[0][1] * d[1],
-                    inv[1][0] * d[0] + inv[1][1] * d[1],
-                ];
-                let cd = tile_wcs.cd;
-                let start = Wcs {
-                    crpix: p0,
-                    crval: [centre.0, centre.1],
-                    cd: [
-                        [
-                            cd[0][0] * a[0][0] + cd[0][1] * a[1][0],
-                            cd[0][0] * a[0][1] + cd[0][1] * a[1][1],
-                        ],
-                        [
-                            cd[1][0] * a[0][0] + cd[1][1] * a[1][0],
-                            cd[1][0] * a[0][1] + cd[1][1] * a[1][1],
-                        ],
-                    ],
-                    lonpole: 180.0,
-                    sip: None,
                 };
                 // Refined from the tile's own tangent point: re-centring it on the frame with
                 // the tile's CD would turn it by Δα·sin δ, far too much near a pole.

@@ -325,67 +325,19 @@ impl CatalogueIndex {
             .collect()
     }
 
-    /// Every star within `radius_deg` of (ra, dec) at its catalogue position.
+    /// Every star within `radius_deg` of (ra, dec) at its catalogue position, whole.
     pub fn cone(
         &self,
         ra: f64,
         dec: f64,
         radius_deg: f64,
     ) -> Result<Vec<CatalogueStar>, StoreError> {
-        if !(ra.is_finite() && dec.is_finite() && radius_deg.is_finite()) {
-            return Ok(Vec::new());
-        }
-        let r = radius_deg.clamp(0.0, 180.0);
-        let c = unit(ra, dec);
-        // The chord of the cone's radius, and a little for the index's 32-bit boxes.
-        let chord = 2.0 * (r.to_radians() / 2.0).sin() + 1e-6;
-        let mut q = self
-            .conn
-            .prepare_cached(
-                "SELECT s.name, s.ra, s.dec, s.pm_ra, s.pm_dec, s.epoch, s.mags
-                 FROM stars_xyz b JOIN stars s ON s.id = b.id
-                 WHERE b.x1 >= ?1 AND b.x0 <= ?2 AND b.y1 >= ?3 AND b.y0 <= ?4
-                   AND b.z1 >= ?5 AND b.z0 <= ?6",
-            )
-            .map_err(self.err())?;
-        let rows = q
-            .query_map(
-                params![
-                    c[0] - chord,
-                    c[0] + chord,
-                    c[1] - chord,
-                    c[1] + chord,
-                    c[2] - chord,
-                    c[2] + chord
-                ],
-                |row| {
-                    let mags: String = row.get(6)?;
-                    Ok(CatalogueStar {
-                        id: row.get(0)?,
-                        ra_deg: row.get(1)?,
-                        dec_deg: row.get(2)?,
-                        pm_ra_mas_yr: row.get(3)?,
-                        pm_dec_mas_yr: row.get(4)?,
-                        epoch: row.get(5)?,
-                        mags: serde_json::from_str(&mags).unwrap_or_default(),
-                    })
-                },
-            )
-            .map_err(self.err())?;
-        let mut out = Vec::new();
-        for (n, s) in rows.enumerate() {
-            if n >= MAX_CONE_STARS {
-                return Err(StoreError::TooMany {
-                    path: self.path.clone(),
-                    limit: MAX_CONE_STARS,
-                });
-            }
-            let s = s.map_err(self.err())?;
-            if crate::astrometry::separation_deg((ra, dec), (s.ra_deg, s.dec_deg)) <= r {
-                out.push(s);
-            }
-        }
-        Ok(out)
+        let rows: Vec<i64> = self
+            .cone_positions(ra, dec, radius_deg)?
+            .iter()
+            .map(|s| s.row)
+            .collect();
+        self.stars(&rows)
     }
 }
 
