@@ -18,6 +18,7 @@ pub mod photometry;
 mod pixels;
 pub mod psf;
 mod seeing;
+pub mod shape;
 mod sharp;
 pub mod stats;
 
@@ -105,9 +106,9 @@ pub struct Star {
     /// Highest background-subtracted pixel, ADU.
     pub peak_adu: f64,
     pub blended: bool,
-    /// Shape components (see `PsfFit::shape_components`).
+    /// Shape components and their noise (see `shape`).
     #[serde(skip)]
-    pub shape_e: (f64, f64),
+    pub shape: shape::Shape,
     /// [r, g, b] fluxes for one-shot-color frames.
     #[serde(skip_serializing_if = "Option::is_none")]
     pub rgb: Option<[f64; 3]>,
@@ -387,29 +388,46 @@ pub fn measure_image(
                 moffat_beta: (f.fit.model == PsfModel::Moffat).then_some(f.fit.beta),
                 peak_adu: f.peak,
                 blended: f.blended,
-                shape_e: f.fit.shape_components(),
+                shape: {
+                    let (e1, e2) = f.fit.shape_components();
+                    shape::Shape {
+                        e1,
+                        e2,
+                        variance: f.fit.shape_variance(),
+                    }
+                },
                 rgb: None,
             })
         })
         .collect();
     stars.sort_by(|a, b| b.flux.total_cmp(&a.flux));
 
-    let mut shape: Vec<&Star> = stars
+    let mut voters: Vec<bool> = stars
         .iter()
-        .filter(|s| !s.blended && s.snr >= params.min_shape_snr)
+        .map(|s| !s.blended && s.snr >= params.min_shape_snr)
         .collect();
-    if shape.len() < 5 {
-        shape = stars.iter().filter(|s| !s.blended).collect();
+    if voters.iter().filter(|&&v| v).count() < 5 {
+        voters = stars.iter().map(|s| !s.blended).collect();
     }
+    let shapes: Vec<shape::Shape> = stars.iter().map(|s| s.shape).collect();
+    for (star, e) in stars.iter_mut().zip(shape::shrink(&shapes, &voters)) {
+        star.eccentricity = e;
+    }
+    let shape: Vec<&Star> = stars
+        .iter()
+        .zip(&voters)
+        .filter(|(_, &v)| v)
+        .map(|(s, _)| s)
+        .collect();
     let med = |f: &dyn Fn(&Star) -> Option<f64>| {
         median_f64(&shape.iter().filter_map(|s| f(s)).collect::<Vec<_>>())
     };
     let fwhm_px = med(&|s| Some(s.fwhm_px));
     // Near round, one star's eccentricity is dominated by noise (it grows as the
     // square root of the noise in its shape, so a round star at SNR 100 reads about
-    // 0.2 before correction). Each star's value is corrected for that bias (see
-    // `PsfFit::eccentricity`), and the median is weighted by SNR (capped at 300), so
-    // the better-measured stars count for more without a few bright ones deciding.
+    // 0.2 before correction). Each star's value is helped by the frame's shape (see
+    // `shape`), and the median is weighted by SNR (capped at 300), so the
+    // better-measured stars count for more without a few bright ones deciding.
     let eccentricity = weighted_median(
         &shape
             .iter()

@@ -118,7 +118,7 @@ mod tests {
             moffat_beta: None,
             peak_adu: 1.0,
             blended: false,
-            shape_e: (0.0, 0.0),
+            shape: Default::default(),
             rgb: None,
         };
         to_mosaic_star(&mut s);

@@ -170,19 +170,25 @@ impl PsfFit {
         (1.0 - (minor / major).powi(2)).max(0.0).sqrt()
     }
 
-    /// Eccentricity with the fit noise's upward bias removed.
+    /// Eccentricity of this star alone, with the fit noise's upward bias removed.
     ///
     /// The shape components e1 = (qa − qc)/(qa + qc), e2 = 2qb/(qa + qc) carry noise, and
     /// |e| = sqrt(e1² + e2²) is biased upwards like a polarisation amplitude; the
     /// estimator of Wardle & Kronberg (1974, ApJ 194, 249), |e|² − σ², is applied with the
-    /// variances of e1 and e2 propagated from the fit covariance. |e| relates to the axis
-    /// ratio by (b/a)² = (1 − |e|)/(1 + |e|), so the eccentricity is sqrt(2|e|/(1 + |e|)).
+    /// variances of e1 and e2 propagated from the fit covariance. A frame's stars share
+    /// its PSF, and `shape::shrink` uses that to do better for each star of a frame.
     pub fn eccentricity(&self) -> f64 {
+        let (e1, e2) = self.shape_components();
+        let debiased = (e1 * e1 + e2 * e2 - 2.0 * self.shape_variance()).max(0.0);
+        super::shape::eccentricity_of(debiased.sqrt())
+    }
+
+    /// Variance of each of the sampled shape components (e1, e2), propagated from the fit
+    /// covariance of (qa, qb, qc) and scaled as the pixel sampling scales |e|.
+    pub fn shape_variance(&self) -> f64 {
         let [a, b, c] = self.q;
         let t = a + c;
-        let e1 = (a - c) / t;
-        let e2 = 2.0 * b / t;
-        // Gradients with respect to (qa, qb, qc).
+        // Gradients of the model's e1 and e2 with respect to (qa, qb, qc).
         let g1 = [2.0 * c / (t * t), 0.0, -2.0 * a / (t * t)];
         let g2 = [-2.0 * b / (t * t), 2.0 / t, -2.0 * b / (t * t)];
         let var = |g: [f64; 3]| {
@@ -194,20 +200,17 @@ impl PsfFit {
             }
             s.max(0.0)
         };
-        let raw = (e1 * e1 + e2 * e2).sqrt();
-        let debiased = (e1 * e1 + e2 * e2 - var(g1) - var(g2)).max(0.0).sqrt();
-        // The same relative correction applies to the pixel-sampled shape, whose |e|
-        // follows from its axis ratio.
-        let (major, minor) = self.sampled_axes;
-        let q2 = (minor / major).powi(2);
-        let sampled = (1.0 - q2) / (1.0 + q2);
-        let e = if raw > 0.0 {
-            sampled * debiased / raw
+        let model = (((a - c) / t).powi(2) + (2.0 * b / t).powi(2)).sqrt();
+        let (e1, e2) = self.shape_components();
+        let sampled = e1.hypot(e2);
+        // Sampling by the pixel shrinks |e| by a factor that hardly depends on |e|;
+        // near round the ratio is taken as 1.
+        let scale = if model > 1e-6 {
+            (sampled / model).min(1.0)
         } else {
-            0.0
-        }
-        .min(0.999_999);
-        (2.0 * e / (1.0 + e)).sqrt()
+            1.0
+        };
+        0.5 * (var(g1) + var(g2)) * scale * scale
     }
 
     /// Shape components (e1, e2) of the star as sampled: |e| = (1 − q²)/(1 + q²) with
