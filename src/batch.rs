@@ -110,6 +110,7 @@ pub fn analyse_records(
             });
             doc.frames.push(NightFrameRecord {
                 path: r.identity.path.clone(),
+                rig: None,
                 kind: "light",
                 status: if r.status == FrameStatus::Ok {
                     "ok"
@@ -209,6 +210,7 @@ pub fn analyse_records(
         let r = all[c.index];
         doc.calibration.push(NightFrameRecord {
             path: r.identity.path.clone(),
+            rig: None,
             kind: c.kind,
             status: if r.calibration.is_some() {
                 "ok"
@@ -489,5 +491,6 @@ pub fn run_night(
         &config.calibration.settings,
     )?;
     cross_match(&mut doc, &config.catalogue)?;
+    doc.set_rig(&config.rig.name);
     Ok(doc)
 }

@@ -43,6 +43,8 @@ impl MeasureRecord {
 #[derive(Debug, Clone, Serialize)]
 pub struct NightFrameRecord {
     pub path: String,
+    /// The rig that took the frame (`[rig] name`; null where unnamed).
+    pub rig: Option<String>,
     /// "light", or the calibration frame's kind: "dark", "flat", "bias".
     pub kind: &'static str,
     pub status: &'static str,
@@ -134,6 +136,16 @@ pub struct NightDocument {
     /// Darks, flats and bias frames, judged as calibration.
     pub calibration: Vec<NightFrameRecord>,
     pub calibration_notes: Vec<String>,
+}
+
+impl NightDocument {
+    /// Name the rig that took every frame of the document ('' leaves them unnamed).
+    pub fn set_rig(&mut self, rig: &str) {
+        let rig = (!rig.is_empty()).then(|| rig.to_string());
+        for f in self.frames.iter_mut().chain(&mut self.calibration) {
+            f.rig = rig.clone();
+        }
+    }
 }
 
 impl Serialize for NightDocument {

@@ -278,7 +278,7 @@ pub fn run(
 
     // The previous night goes straight into the store, as the daemon would have left it.
     {
-        let mut store = Store::open(&config.store.path)?;
+        let mut store = Store::open_for_rig(&config.store.path, &config.rig.name)?;
         let options = crate::pipeline::RecordOptions::from_config(&config);
         let reader = crate::reader::Reader::from_config(&config.measure);
         let judging = crate::watch::Judging {
@@ -351,7 +351,7 @@ pub fn run(
     // Wait until every frame is recorded and judged.
     let deadline = Instant::now() + Duration::from_secs(180);
     let done = loop {
-        let judged = Store::open(&config.store.path)
+        let judged = Store::open_for_rig(&config.store.path, &config.rig.name)
             .and_then(|s| s.night_counts(NIGHT))
             .map(|c| c.frames as usize)
             .unwrap_or(0);
@@ -373,7 +373,7 @@ pub fn run(
 
     // The morning.
     progress("writing the morning summary", 0, 1);
-    let mut store = Store::open(&config.store.path)?;
+    let mut store = Store::open_for_rig(&config.store.path, &config.rig.name)?;
     let prepared = crate::morning::prepare(&mut store, &config, NIGHT)?;
     let now = prepared
         .doc

@@ -84,6 +84,7 @@ pub fn judge_night(store: &mut Store, c: &Config, night: &str) -> Result<Rejudge
         &c.calibration.settings,
     )?;
     crate::batch::cross_match(&mut doc, &c.catalogue)?;
+    doc.set_rig(&c.rig.name);
     let verdicts: Vec<(String, crate::rules::Verdict, Vec<String>)> = doc
         .frames
         .iter()

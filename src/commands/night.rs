@@ -43,7 +43,10 @@ pub fn night(
     let c = cfg.as_ref().unwrap_or(&defaults);
     crate::commands::catalogue::prepare(&c.catalogue)?;
     let mut store = match &cfg {
-        Some(c) => Some(subwatch::store::Store::open(&c.store.path)?),
+        Some(c) => Some(subwatch::store::Store::open_for_rig(
+            &c.store.path,
+            &c.rig.name,
+        )?),
         None => None,
     };
     let bar = progress_bar(!json && std::io::IsTerminal::is_terminal(&std::io::stderr()));
@@ -122,7 +125,7 @@ pub fn report(
             config.display()
         );
     }
-    let mut store = subwatch::store::Store::open(&cfg.store.path)?;
+    let mut store = subwatch::store::Store::open_for_rig(&cfg.store.path, &cfg.rig.name)?;
     if store.night_counts(&night)?.frames == 0 {
         let known = store.nights()?;
         anyhow::bail!(

@@ -86,6 +86,13 @@ impl Default for StoreConfig {
     }
 }
 
+/// `[rig]`: which telescope and camera this daemon watches, where several share a site.
+/// Unnamed (empty) where a rig keeps a store of its own.
+#[derive(Debug, Clone, Default)]
+pub struct RigConfig {
+    pub name: String,
+}
+
 #[derive(Debug, Clone)]
 pub struct SiteConfig {
     /// Degrees, north positive; unset: no Sun, Moon or twilight context.
@@ -338,6 +345,7 @@ impl WebConfig {
 pub struct Config {
     pub watch: WatchConfig,
     pub store: StoreConfig,
+    pub rig: RigConfig,
     pub site: SiteConfig,
     pub optics: OpticsConfig,
     pub measure: MeasureConfig,

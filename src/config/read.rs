@@ -200,9 +200,10 @@ impl<'a> Reader<'a> {
     }
 }
 
-const SECTIONS: [&str; 13] = [
+const SECTIONS: [&str; 14] = [
     "watch",
     "store",
+    "rig",
     "site",
     "optics",
     "measure",
@@ -215,6 +216,17 @@ const SECTIONS: [&str; 13] = [
     "calibration",
     "catalogue",
 ];
+
+/// A rig's name goes into every record and the site's summary: plain characters only,
+/// so it reads the same in a mail subject, a file name and a database.
+fn rig_name_ok(s: &str) -> bool {
+    let t = s.trim();
+    !t.is_empty()
+        && t == s
+        && s.chars().count() <= 64
+        && s.chars()
+            .all(|c| c.is_alphanumeric() || matches!(c, ' ' | '.' | '-' | '_'))
+}
 
 /// `[catalogue]`: the files, the index, and which columns hold what.
 fn read_catalogue(r: &mut Reader<'_>) -> CatalogueConfig {
@@ -411,6 +423,17 @@ pub fn parse(text: &str, base: &Path) -> Result<Config, Vec<ConfigProblem>> {
         path: r
             .path("store", "path")
             .unwrap_or_else(|| r.absolute("subwatch.db")),
+    };
+    let rig = RigConfig {
+        name: r.read("rig", "name", String::new(), |v| {
+            v.as_str()
+                .filter(|s| rig_name_ok(s))
+                .map(str::to_string)
+                .ok_or_else(|| {
+                    "a name of 1 to 64 letters, digits, spaces, dots, dashes or underscores, unique at the site"
+                        .to_string()
+                })
+        }),
     };
     let site = SiteConfig {
         latitude: r.optional_number(
@@ -716,6 +739,7 @@ pub fn parse(text: &str, base: &Path) -> Result<Config, Vec<ConfigProblem>> {
     let config = Config {
         watch,
         store,
+        rig,
         site,
         optics,
         measure,
@@ -1025,6 +1049,27 @@ mod tests {
         assert_eq!(problems[0].key, "rules[1]");
         assert_eq!(problems[0].line, Some(3));
         assert!(problems[0].message.contains("seeing"), "{problems:?}");
+    }
+
+    #[test]
+    fn a_rig_name_is_plain_text() {
+        let base = Path::new("/etc");
+        let with = |rig: &str| parse(&format!("[watch]\nfolders = [\"/tmp\"]\n{rig}"), base);
+        let c = with("[rig]\nname = \"north pier-2\"\n").unwrap();
+        assert_eq!(c.rig.name, "north pier-2");
+        assert_eq!(with("").unwrap().rig.name, "");
+        let long = format!("\"{}\"", "r".repeat(65));
+        for bad in [
+            "\"\"",
+            "\" north\"",
+            "\"a/b\"",
+            "\"x\\ny\"",
+            "7",
+            long.as_str(),
+        ] {
+            let problems = with(&format!("[rig]\nname = {bad}\n")).unwrap_err();
+            assert_eq!(problems[0].key, "rig.name", "{bad}: {problems:?}");
+        }
     }
 
     #[test]

@@ -663,6 +663,7 @@ mod tests {
     ) -> NightFrameRecord {
         NightFrameRecord {
             path: format!("/srv/capture/{name}"),
+            rig: None,
             kind: "light",
             status: if why.iter().any(|w| w.0 == "unreadable") {
                 "error"

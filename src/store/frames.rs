@@ -102,8 +102,9 @@ impl Store {
         let tx = self.conn.transaction().map_err(err)?;
         let existing: Option<(i64, i64, i64, GroupKey)> = tx
             .query_row(
-                "SELECT id, size, mtime_ns, night, target, filter, status FROM frames WHERE path = ?1",
-                params![f.identity.path],
+                "SELECT id, size, mtime_ns, night, target, filter, status FROM frames
+                 WHERE rig = ?2 AND path = ?1",
+                params![f.identity.path, self.rig],
                 |r| {
                     let status: String = r.get(6)?;
                     Ok((
@@ -126,8 +127,8 @@ impl Store {
         if let Some((id, size, mtime_ns, key)) = existing {
             if size == f.identity.size as i64 && mtime_ns == f.identity.mtime_ns {
                 tx.execute(
-                    "DELETE FROM reading WHERE path = ?1",
-                    params![f.identity.path],
+                    "DELETE FROM reading WHERE rig = ?2 AND path = ?1",
+                    params![f.identity.path, self.rig],
                 )
                 .map_err(err)?;
                 tx.commit().map_err(err)?;
@@ -150,8 +151,8 @@ impl Store {
         tx.execute(
             "INSERT INTO frames (path, size, mtime_ns, status, error, night, target, filter,
                 time_unix, header_json, metrics_json, star_count, fwhm_px, eccentricity,
-                background_adu, noise_adu, recorded_at, wcs_json, calibration_json)
-             VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17, ?18, ?19)",
+                background_adu, noise_adu, recorded_at, wcs_json, calibration_json, rig)
+             VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17, ?18, ?19, ?20)",
             params![
                 f.identity.path,
                 f.identity.size as i64,
@@ -172,6 +173,7 @@ impl Store {
                 now_unix,
                 f.wcs.as_ref().and_then(|w| serde_json::to_string(w).ok()),
                 f.calibration.as_ref().and_then(|c| serde_json::to_string(c).ok()),
+                self.rig,
             ],
         )
         .map_err(err)?;
@@ -213,8 +215,8 @@ impl Store {
             }
         }
         tx.execute(
-            "DELETE FROM reading WHERE path = ?1",
-            params![f.identity.path],
+            "DELETE FROM reading WHERE rig = ?2 AND path = ?1",
+            params![f.identity.path, self.rig],
         )
         .map_err(err)?;
         tx.commit().map_err(err)?;
@@ -231,12 +233,12 @@ impl Store {
     /// process for this same version of the file keeps its count of interruptions.
     pub fn begin_reading(&self, id: &Identity, now_unix: f64) -> Result<(), StoreError> {
         self.run(
-            "INSERT INTO reading (path, size, mtime_ns, started_unix) VALUES (?1, ?2, ?3, ?4)
-             ON CONFLICT (path) DO UPDATE SET started_unix = excluded.started_unix,
+            "INSERT INTO reading (path, size, mtime_ns, started_unix, rig) VALUES (?1, ?2, ?3, ?4, ?5)
+             ON CONFLICT (rig, path) DO UPDATE SET started_unix = excluded.started_unix,
                 interruptions = CASE WHEN size = excluded.size AND mtime_ns = excluded.mtime_ns
                                      THEN interruptions ELSE 0 END,
                 size = excluded.size, mtime_ns = excluded.mtime_ns",
-            params![id.path, id.size as i64, id.mtime_ns, now_unix],
+            params![id.path, id.size as i64, id.mtime_ns, now_unix, self.rig],
         )
     }
 
@@ -250,14 +252,20 @@ impl Store {
             source,
         };
         let tx = self.conn.transaction().map_err(err)?;
-        tx.execute("UPDATE reading SET interruptions = interruptions + 1", [])
-            .map_err(err)?;
+        tx.execute(
+            "UPDATE reading SET interruptions = interruptions + 1 WHERE rig = ?1",
+            params![self.rig],
+        )
+        .map_err(err)?;
         let rows = {
             let mut st = tx
-                .prepare("SELECT path, size, mtime_ns, interruptions FROM reading ORDER BY path")
+                .prepare(
+                    "SELECT path, size, mtime_ns, interruptions FROM reading WHERE rig = ?1
+                     ORDER BY path",
+                )
                 .map_err(err)?;
             let rows = st
-                .query_map([], |r| {
+                .query_map(params![self.rig], |r| {
                     Ok(Interrupted {
                         identity: Identity {
                             path: r.get(0)?,
@@ -283,10 +291,10 @@ impl Store {
     ) -> Result<std::collections::HashMap<String, (u64, i64)>, StoreError> {
         let mut st = self
             .conn
-            .prepare("SELECT path, size, mtime_ns FROM frames")
+            .prepare("SELECT path, size, mtime_ns FROM frames WHERE rig = ?1")
             .map_err(|e| self.err(e))?;
         let rows = st
-            .query_map([], |r| {
+            .query_map(params![self.rig], |r| {
                 Ok((r.get(0)?, (r.get::<_, i64>(1)? as u64, r.get(2)?)))
             })
             .map_err(|e| self.err(e))?;
@@ -506,8 +514,8 @@ impl Store {
         };
         let tx = self.conn.transaction().map_err(err)?;
         tx.execute(
-            "DELETE FROM frames WHERE path = ?2 AND id != ?1",
-            params![id, path],
+            "DELETE FROM frames WHERE rig = ?3 AND path = ?2 AND id != ?1",
+            params![id, path, self.rig],
         )
         .map_err(err)?;
         tx.execute(
@@ -623,23 +631,23 @@ impl Store {
         let mut changed = Vec::new();
         {
             let mut before = tx
-                .prepare_cached("SELECT verdict FROM frames WHERE path = ?1")
+                .prepare_cached("SELECT verdict FROM frames WHERE rig = ?2 AND path = ?1")
                 .map_err(err)?;
             let mut st = tx
                 .prepare_cached(
                     "UPDATE frames SET verdict = ?2, reasons_json = ?3
-                     WHERE path = ?1 AND (verdict IS NOT ?2 OR reasons_json IS NOT ?3)",
+                     WHERE rig = ?4 AND path = ?1 AND (verdict IS NOT ?2 OR reasons_json IS NOT ?3)",
                 )
                 .map_err(err)?;
             for (p, verdict, reasons) in verdicts {
                 let reasons = serde_json::to_string(reasons).unwrap_or_default();
                 let was: Option<String> = before
-                    .query_row(params![p], |row| row.get(0))
+                    .query_row(params![p, self.rig], |row| row.get(0))
                     .optional()
                     .map_err(err)?
                     .flatten();
                 if st
-                    .execute(params![p, verdict.as_str(), reasons])
+                    .execute(params![p, verdict.as_str(), reasons, self.rig])
                     .map_err(err)?
                     > 0
                 {

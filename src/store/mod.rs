@@ -22,8 +22,8 @@ pub use frames::{
 };
 pub use lock::{claim, daemon_pid, DaemonLock};
 pub use outbox::OutboxMessage;
-use schema::MIGRATIONS;
 pub use schema::SCHEMA_VERSION;
+use schema::{MIGRATIONS, REBUILDS_TABLES};
 
 #[derive(Debug, thiserror::Error)]
 pub enum StoreError {
@@ -61,6 +61,9 @@ pub enum StoreError {
 pub struct Store {
     conn: Connection,
     path: PathBuf,
+    /// The rig whose frames this handle records ('' unnamed): paths and files being read
+    /// are kept per rig.
+    rig: String,
 }
 
 impl Store {
@@ -80,9 +83,39 @@ impl Store {
         let mut store = Store {
             conn,
             path: path.to_path_buf(),
+            rig: String::new(),
         };
         store.migrate()?;
         Ok(store)
+    }
+
+    /// Open the store of a named rig (`[rig] name`; '' for an unnamed one). A store
+    /// keeps one rig's frames: rows recorded before the rig was named become its own,
+    /// so naming a rig later records nothing twice.
+    pub fn open_for_rig(path: &Path, rig: &str) -> Result<Self, StoreError> {
+        let mut store = Store::open(path)?;
+        if !rig.is_empty() {
+            // A path the rig recorded under its name already keeps that record.
+            store.run(
+                "DELETE FROM frames WHERE rig = '' AND path IN
+                    (SELECT path FROM frames WHERE rig = ?1)",
+                [rig],
+            )?;
+            store.run("UPDATE frames SET rig = ?1 WHERE rig = ''", [rig])?;
+            store.run(
+                "UPDATE reading SET rig = ?1 WHERE rig = '' AND path NOT IN
+                    (SELECT path FROM reading WHERE rig = ?1)",
+                [rig],
+            )?;
+            store.run("DELETE FROM reading WHERE rig = ''", [])?;
+            store.rig = rig.to_string();
+        }
+        Ok(store)
+    }
+
+    /// The rig this handle records for ('' unnamed).
+    pub fn rig(&self) -> &str {
+        &self.rig
     }
 
     /// Open an existing store to read only (the status page's own connection: WAL lets
@@ -102,6 +135,7 @@ impl Store {
         Ok(Store {
             conn,
             path: path.to_path_buf(),
+            rig: String::new(),
         })
     }
 
@@ -133,17 +167,43 @@ impl Store {
             });
         }
         for (i, sql) in MIGRATIONS.iter().enumerate().skip(version as usize) {
-            let tx = self.conn.transaction().map_err(|e| StoreError::Sqlite {
-                path: self.path.clone(),
-                source: e,
-            })?;
-            tx.execute_batch(sql)
-                .and_then(|_| tx.execute_batch(&format!("PRAGMA user_version = {}", i + 1)))
-                .and_then(|_| tx.commit())
-                .map_err(|e| StoreError::Sqlite {
-                    path: self.path.clone(),
-                    source: e,
-                })?;
+            // A migration that rebuilds a table runs with foreign keys off (a dropped
+            // table would take its stars with it) and is checked before it commits:
+            // SQLite's documented procedure for schema changes. The others keep them
+            // on, so their deletes cascade. The pragma has no effect inside a
+            // transaction.
+            let rebuilds = REBUILDS_TABLES.contains(&(i + 1));
+            if rebuilds {
+                self.conn
+                    .execute_batch("PRAGMA foreign_keys = OFF")
+                    .map_err(|e| self.err(e))?;
+            }
+            let migrated = (|| {
+                let tx = self.conn.transaction()?;
+                tx.execute_batch(sql)?;
+                let broken: i64 =
+                    tx.query_row("SELECT COUNT(*) FROM pragma_foreign_key_check", [], |r| {
+                        r.get(0)
+                    })?;
+                if broken > 0 {
+                    // Rolled back when the transaction drops.
+                    return Err(rusqlite::Error::SqliteFailure(
+                        rusqlite::ffi::Error::new(rusqlite::ffi::SQLITE_CONSTRAINT_FOREIGNKEY),
+                        Some(format!(
+                            "migration {} left {broken} rows without their frame",
+                            i + 1
+                        )),
+                    ));
+                }
+                tx.execute_batch(&format!("PRAGMA user_version = {}", i + 1))?;
+                tx.commit()
+            })();
+            let on = if rebuilds {
+                self.conn.execute_batch("PRAGMA foreign_keys = ON")
+            } else {
+                Ok(())
+            };
+            migrated.and(on).map_err(|e| self.err(e))?;
         }
         Ok(())
     }
@@ -279,10 +339,25 @@ mod tests {
                 )
                 .unwrap();
             }
+            conn.execute_batch(
+                "INSERT INTO stars (frame_id, x, y) SELECT MAX(id), 1.0, 2.0 FROM frames",
+            )
+            .unwrap();
         }
         let s = Store::open(&db).unwrap();
         assert_eq!(s.recorded_versions().unwrap().len(), 1);
         assert_eq!(s.recorded_versions().unwrap()["/a.fits"].0, 11);
+        // The rebuilt frames table (migration 10) kept the frame's stars and their link.
+        let id: i64 = s
+            .conn
+            .query_row("SELECT id FROM frames", [], |r| r.get(0))
+            .unwrap();
+        assert_eq!(s.frame_star_records(id).unwrap().len(), 1);
+        let fk: bool = s
+            .conn
+            .query_row("PRAGMA foreign_keys", [], |r| r.get(0))
+            .unwrap();
+        assert!(fk, "foreign keys are on again after migrating");
     }
 
     #[test]
@@ -323,6 +398,45 @@ mod tests {
         let all = s.catalogs_before("T", "2026-03-05").unwrap();
         let filters: Vec<&str> = all.iter().map(|(f, _)| f.as_str()).collect();
         assert_eq!(filters, ["I", "V", ""]);
+    }
+
+    #[test]
+    fn each_rig_records_a_path_once_and_an_unnamed_store_becomes_the_rigs() {
+        let dir = tempfile::tempdir().unwrap();
+        let db = dir.path().join("s.db");
+        {
+            // Recorded before the rig had a name, with a file in the reader.
+            let mut s = Store::open(&db).unwrap();
+            s.record_frame(&record("/a.fits", 10), 1.0).unwrap();
+            s.begin_reading(&record("/b.fits", 10).identity, 1.0)
+                .unwrap();
+        }
+        let mut north = Store::open_for_rig(&db, "north pier").unwrap();
+        assert_eq!(north.rig(), "north pier");
+        assert_eq!(
+            north.record_frame(&record("/a.fits", 10), 2.0).unwrap(),
+            Recorded::Already,
+            "the unnamed record became the named rig's"
+        );
+        assert_eq!(north.take_interrupted().unwrap().len(), 1);
+        // Another rig of the site with a file at the same path records it for itself.
+        let mut south = Store::open_for_rig(&db, "south-pier").unwrap();
+        assert!(south.recorded_versions().unwrap().is_empty());
+        assert!(matches!(
+            south.record_frame(&record("/a.fits", 10), 3.0).unwrap(),
+            Recorded::New(_)
+        ));
+        assert!(south.take_interrupted().unwrap().is_empty());
+        assert_eq!(
+            south.record_frame(&record("/a.fits", 10), 4.0).unwrap(),
+            Recorded::Already
+        );
+        assert_eq!(north.recorded_versions().unwrap().len(), 1);
+        let rows: i64 = north
+            .conn
+            .query_row("SELECT COUNT(*) FROM frames", [], |r| r.get(0))
+            .unwrap();
+        assert_eq!(rows, 2);
     }
 
     fn star() -> crate::record::StarRecord {

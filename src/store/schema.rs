@@ -1,7 +1,10 @@
 //! The store's schema: each migration in order; `PRAGMA user_version` says how many a
 //! store has had. A migration is never changed once released, only followed.
 
-pub const SCHEMA_VERSION: i64 = 9;
+pub const SCHEMA_VERSION: i64 = 10;
+
+/// Migrations (numbered from 1) that rebuild a table, run with foreign keys off.
+pub(super) const REBUILDS_TABLES: &[usize] = &[10];
 
 pub(super) const MIGRATIONS: &[&str] = &[
     // 1: frames, their stars and rejected detections, and a key-value table.
@@ -115,4 +118,51 @@ pub(super) const MIGRATIONS: &[&str] = &[
      ALTER TABLE catalog ADD COLUMN filter TEXT NOT NULL DEFAULT '';
      DROP INDEX catalog_target;
      CREATE INDEX catalog_target ON catalog (target, filter, night);",
+    // 10: the rig each frame came from, where several rigs share a site: a path is
+    // recorded once per rig. Rows from before are the unnamed rig's ('').
+    // The table is rebuilt (SQLite cannot drop the first migration's UNIQUE constraint
+    // of path, size and modification time), as SQLite's documented procedure for
+    // schema changes does, with foreign keys off while it runs (see `Store::migrate`).
+    "CREATE TABLE frames_by_rig (
+        id INTEGER PRIMARY KEY,
+        rig TEXT NOT NULL DEFAULT '',
+        path TEXT NOT NULL,
+        size INTEGER NOT NULL,
+        mtime_ns INTEGER NOT NULL,
+        status TEXT NOT NULL,
+        error TEXT, night TEXT, target TEXT, filter TEXT, time_unix REAL,
+        header_json TEXT, metrics_json TEXT, star_count INTEGER, fwhm_px REAL,
+        eccentricity REAL, background_adu REAL, noise_adu REAL,
+        recorded_at REAL NOT NULL,
+        wcs_json TEXT, verdict TEXT, transparency_loss_mag REAL, registration_rms_px REAL,
+        reasons_json TEXT, placement_json TEXT, live_verdict TEXT, live_reasons_json TEXT,
+        live_explanations_json TEXT, calibration_json TEXT
+     );
+     INSERT INTO frames_by_rig (id, rig, path, size, mtime_ns, status, error, night, target,
+        filter, time_unix, header_json, metrics_json, star_count, fwhm_px, eccentricity,
+        background_adu, noise_adu, recorded_at, wcs_json, verdict, transparency_loss_mag,
+        registration_rms_px, reasons_json, placement_json, live_verdict, live_reasons_json,
+        live_explanations_json, calibration_json)
+        SELECT id, '', path, size, mtime_ns, status, error, night, target,
+        filter, time_unix, header_json, metrics_json, star_count, fwhm_px, eccentricity,
+        background_adu, noise_adu, recorded_at, wcs_json, verdict, transparency_loss_mag,
+        registration_rms_px, reasons_json, placement_json, live_verdict, live_reasons_json,
+        live_explanations_json, calibration_json FROM frames;
+     DROP TABLE frames;
+     ALTER TABLE frames_by_rig RENAME TO frames;
+     CREATE INDEX frames_night ON frames (night, target, filter);
+     CREATE UNIQUE INDEX frames_rig_path ON frames (rig, path);
+     CREATE TABLE reading_by_rig (
+        rig TEXT NOT NULL DEFAULT '',
+        path TEXT NOT NULL,
+        size INTEGER NOT NULL,
+        mtime_ns INTEGER NOT NULL,
+        started_unix REAL NOT NULL,
+        interruptions INTEGER NOT NULL DEFAULT 0,
+        PRIMARY KEY (rig, path)
+     );
+     INSERT INTO reading_by_rig (rig, path, size, mtime_ns, started_unix, interruptions)
+        SELECT '', path, size, mtime_ns, started_unix, interruptions FROM reading;
+     DROP TABLE reading;
+     ALTER TABLE reading_by_rig RENAME TO reading;",
 ];

@@ -157,7 +157,7 @@ async fn daemon(
     }
     // One daemon per store: a second one is refused, naming the first.
     let _claim = crate::store::claim(&config.store.path)?;
-    let mut store = Store::open(&config.store.path)?;
+    let mut store = Store::open_for_rig(&config.store.path, &config.rig.name)?;
     settle_interrupted(&mut store, wall.now_unix())?;
     // The status page: a failure to serve it costs the page, never the watching.
     let _web = match web::start(&config, wall.clone()) {
