@@ -285,6 +285,40 @@ fn the_daemons_night_reported_graded_again_and_its_alerts_told() {
         "2026-03-14",
         "--json",
     ]));
+    let rigs = |o: &Output| -> Vec<serde_json::Value> {
+        let doc: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
+        doc["frames"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|f| f["rig"].clone())
+            .collect()
+    };
+    let unnamed = run(&[
+        "report",
+        "--config",
+        config,
+        "--night",
+        "2026-03-14",
+        "--json",
+    ]);
+    assert!(rigs(&unnamed).iter().all(|r| r.is_null()));
+
+    // The rig named afterwards: the frames recorded unnamed become its own, each once,
+    // with the same verdicts, and the document names the rig on every frame.
+    let base = base + "[rig]\nname = \"north pier\"\n";
+    std::fs::write(&s.config, &base).unwrap();
+    let named = run(&[
+        "report",
+        "--config",
+        config,
+        "--night",
+        "2026-03-14",
+        "--json",
+    ]);
+    assert!(named.status.success(), "{}", text(&named.stderr));
+    assert_eq!(rigs(&named), vec![serde_json::json!("north pier"); 9]);
+    assert_eq!(verdicts(&named), before);
 
     // New rules: eccentricity and FWHM judged leniently. `report` grades the night again,
     // says which frames changed verdict, and rewrites the list.
