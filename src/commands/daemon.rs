@@ -63,7 +63,7 @@ pub fn check_config(config: &Path, send_test: bool) -> Result<ExitCode> {
 /// `subwatch outbox`: deliver what waits in the outbox.
 pub fn outbox(config: &Path, now: bool) -> Result<ExitCode> {
     let cfg = subwatch::config::load(config)?;
-    let store = subwatch::store::Store::open_for_rig(&cfg.store.path, &cfg.rig.name)?;
+    let store = subwatch::store::Store::open_configured(&cfg)?;
     let r = subwatch::morning::flush_outbox(
         &store,
         &cfg,
@@ -98,7 +98,7 @@ pub fn status(config: &Path, night: Option<String>, json: bool) -> Result<ExitCo
         .transpose()?;
     let cfg = subwatch::config::load(config)?;
     let now = subwatch::clock::now_unix();
-    let store = subwatch::store::Store::open_for_rig(&cfg.store.path, &cfg.rig.name)?;
+    let store = subwatch::store::Store::open_configured(&cfg)?;
     // The night in progress is the one the frames' own DATE-OBS put the latest frame in
     // (frames of an earlier night, copied in today, are still that night); the wall
     // clock decides only before any dated frame is recorded.
@@ -118,7 +118,7 @@ pub fn status(config: &Path, night: Option<String>, json: bool) -> Result<ExitCo
         .and_then(|s| serde_json::from_str(&s).ok());
     // Running means holding the store's daemon lock, which goes when the process does,
     // however it ends; a heartbeat alone would outlive a killed daemon.
-    let running_pid = subwatch::store::daemon_pid(&cfg.store.path);
+    let running_pid = subwatch::store::configured_daemon_pid(&cfg);
     let alive = running_pid.is_some();
     if json {
         let doc = serde_json::json!({

@@ -43,10 +43,7 @@ pub fn night(
     let c = cfg.as_ref().unwrap_or(&defaults);
     crate::commands::catalogue::prepare(&c.catalogue)?;
     let mut store = match &cfg {
-        Some(c) => Some(subwatch::store::Store::open_for_rig(
-            &c.store.path,
-            &c.rig.name,
-        )?),
+        Some(c) => Some(subwatch::store::Store::open_configured(c)?),
         None => None,
     };
     let bar = progress_bar(!json && std::io::IsTerminal::is_terminal(&std::io::stderr()));
@@ -125,12 +122,12 @@ pub fn report(
             config.display()
         );
     }
-    let mut store = subwatch::store::Store::open_for_rig(&cfg.store.path, &cfg.rig.name)?;
+    let mut store = subwatch::store::Store::open_configured(&cfg)?;
     if store.night_counts(&night)?.frames == 0 {
         let known = store.nights()?;
         anyhow::bail!(
             "no frames of night {night} in the store {}{}",
-            cfg.store.path.display(),
+            subwatch::store::Location::from_config(&cfg.store),
             match known.last() {
                 Some(last) => format!(" (nights recorded: {}, the latest {last})", known.len()),
                 None => " (it holds no frames yet)".into(),

@@ -26,22 +26,29 @@ impl Config {
                 ));
             }
         }
-        let store_dir = self.store.path.parent().unwrap_or(Path::new("."));
-        if !store_dir.is_dir() {
-            errors.push(format!(
-                "store.path: folder {} does not exist",
-                store_dir.display()
-            ));
-        } else {
-            let probe = store_dir.join(format!(".subwatch-write-test-{}", std::process::id()));
-            match std::fs::write(&probe, b"") {
-                Ok(()) => {
-                    let _ = std::fs::remove_file(&probe);
-                }
-                Err(e) => errors.push(format!(
-                    "store.path: cannot write in {}: {e}",
+        if self.store.url.is_none() {
+            let store_dir = self.store.path.parent().unwrap_or(Path::new("."));
+            if !store_dir.is_dir() {
+                errors.push(format!(
+                    "store.path: folder {} does not exist",
                     store_dir.display()
-                )),
+                ));
+            } else {
+                let probe = store_dir.join(format!(".subwatch-write-test-{}", std::process::id()));
+                match std::fs::write(&probe, b"") {
+                    Ok(()) => {
+                        let _ = std::fs::remove_file(&probe);
+                    }
+                    Err(e) => errors.push(format!(
+                        "store.path: cannot write in {}: {e}",
+                        store_dir.display()
+                    )),
+                }
+            }
+        }
+        if let Some(pw) = &self.store.password_file {
+            if let Err(e) = check_secret_file(pw) {
+                errors.push(format!("store.password_file: {e}"));
             }
         }
         if let Some(pw) = &self.mail.password_file {

@@ -75,13 +75,20 @@ impl Default for WatchConfig {
 
 #[derive(Debug, Clone)]
 pub struct StoreConfig {
+    /// The SQLite file (when no `url` is given).
     pub path: PathBuf,
+    /// A PostgreSQL database a site's rigs share (`postgresql://USER@HOST:PORT/DB`).
+    pub url: Option<String>,
+    /// The file holding the database password, this user's alone.
+    pub password_file: Option<PathBuf>,
 }
 
 impl Default for StoreConfig {
     fn default() -> Self {
         Self {
             path: PathBuf::from("subwatch.db"),
+            url: None,
+            password_file: None,
         }
     }
 }

@@ -219,6 +219,14 @@ const SECTIONS: [&str; 14] = [
 
 /// A rig's name goes into every record and the site's summary: plain characters only,
 /// so it reads the same in a mail subject, a file name and a database.
+/// A PostgreSQL address the client can read, with no password in it.
+fn postgres_url_ok(url: &str) -> bool {
+    (url.starts_with("postgresql://") || url.starts_with("postgres://"))
+        && url
+            .parse::<postgres::Config>()
+            .is_ok_and(|c| c.get_password().is_none())
+}
+
 fn rig_name_ok(s: &str) -> bool {
     let t = s.trim();
     !t.is_empty()
@@ -419,10 +427,35 @@ pub fn parse(text: &str, base: &Path) -> Result<Config, Vec<ConfigProblem>> {
             &secs("from 1 to 3600"),
         ),
     };
+    let path = r.path("store", "path");
+    let url: Option<String> = r.read("store", "url", None, |v| {
+        v.as_str()
+            .filter(|s| postgres_url_ok(s))
+            .map(|s| Some(s.to_string()))
+            .ok_or_else(|| {
+                "a PostgreSQL address \"postgresql://USER@HOST:PORT/DATABASE\", without a password (that goes in password_file)"
+                    .to_string()
+            })
+    });
+    if url.is_some() && path.is_some() {
+        r.problem(
+            "store",
+            "url",
+            "give path (an SQLite file on this PC) or url (a PostgreSQL database), not both".into(),
+        );
+    }
+    let password_file = r.path("store", "password_file");
+    if password_file.is_some() && url.is_none() {
+        r.problem(
+            "store",
+            "password_file",
+            "only a PostgreSQL store (url) takes a password".into(),
+        );
+    }
     let store = StoreConfig {
-        path: r
-            .path("store", "path")
-            .unwrap_or_else(|| r.absolute("subwatch.db")),
+        path: path.unwrap_or_else(|| r.absolute("subwatch.db")),
+        url,
+        password_file,
     };
     let rig = RigConfig {
         name: r.read("rig", "name", String::new(), |v| {

@@ -1,8 +1,7 @@
 //! Alerts raised (which also carry their rate limit across restarts) and the key-value
 //! table of small facts (the daemon's heartbeat, what was already alerted or mailed).
 
-use rusqlite::{params, OptionalExtension};
-
+use super::db::{values, DbError};
 use super::{Store, StoreError};
 
 impl Store {
@@ -12,36 +11,35 @@ impl Store {
         night: &str,
         kind: &str,
     ) -> Result<(Option<f64>, usize), StoreError> {
-        let last: Option<f64> = self
-            .conn
-            .query_row(
-                "SELECT MAX(created_unix) FROM alerts WHERE kind = ?1",
-                params![kind],
-                |r| r.get(0),
-            )
-            .map_err(|e| self.err(e))?;
-        let count: i64 = self
-            .conn
-            .query_row(
-                "SELECT COUNT(*) FROM alerts WHERE night = ?1",
-                params![night],
-                |r| r.get(0),
-            )
-            .map_err(|e| self.err(e))?;
+        let read = || -> Result<(Option<f64>, i64), DbError> {
+            let last = self
+                .conn
+                .query_one(
+                    "SELECT MAX(created_unix) FROM alerts WHERE kind = ?1 AND rig = ?2",
+                    values![kind, self.rig],
+                )?
+                .get(0)?;
+            let count = self
+                .conn
+                .query_one(
+                    "SELECT COUNT(*) FROM alerts WHERE night = ?1 AND rig = ?2",
+                    values![night, self.rig],
+                )?
+                .get(0)?;
+            Ok((last, count))
+        };
+        let (last, count) = read().map_err(|e| self.err(e))?;
         Ok((last, count as usize))
     }
 
     /// Whether this exact alert (night, kind, message) was raised already.
     pub fn alert_exists(&self, night: &str, kind: &str, message: &str) -> Result<bool, StoreError> {
-        self.conn
-            .query_row(
-                "SELECT 1 FROM alerts WHERE night = ?1 AND kind = ?2 AND message = ?3",
-                params![night, kind, message],
-                |_| Ok(()),
-            )
-            .optional()
-            .map(|r| r.is_some())
-            .map_err(|e| self.err(e))
+        Ok(!self
+            .rows(
+                "SELECT 1 FROM alerts WHERE night = ?1 AND kind = ?2 AND message = ?3 AND rig = ?4",
+                values![night, kind, message, self.rig],
+            )?
+            .is_empty())
     }
 
     pub fn add_alert(
@@ -52,38 +50,56 @@ impl Store {
         now_unix: f64,
     ) -> Result<(), StoreError> {
         self.run(
-            "INSERT INTO alerts (night, kind, created_unix, message) VALUES (?1, ?2, ?3, ?4)",
-            params![night, kind, now_unix, message],
+            "INSERT INTO alerts (night, kind, created_unix, message, rig)
+             VALUES (?1, ?2, ?3, ?4, ?5)",
+            values![night, kind, now_unix, message, self.rig],
         )
     }
 
     /// The alerts raised for `night`, oldest first: (time, kind, message).
     pub fn night_alerts(&self, night: &str) -> Result<Vec<(f64, String, String)>, StoreError> {
-        let mut st = self
-            .conn
-            .prepare_cached(
-                "SELECT created_unix, kind, message FROM alerts WHERE night = ?1 ORDER BY created_unix, id",
-            )
-            .map_err(|e| self.err(e))?;
-        let rows = st
-            .query_map(params![night], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)))
-            .map_err(|e| self.err(e))?;
-        rows.collect::<Result<_, _>>().map_err(|e| self.err(e))
+        self.rows(
+            "SELECT created_unix, kind, message FROM alerts
+             WHERE night = ?1 AND (rig = ?2 OR ?2 IS NULL)
+             ORDER BY created_unix, id",
+            values![night, self.scope()],
+        )?
+        .iter()
+        .map(|r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)))
+        .collect::<Result<_, DbError>>()
+        .map_err(|e| self.err(e))
     }
 
+    /// Keep a small fact of this rig's (a named rig's keys are its own in a shared store).
     pub fn set_meta(&self, key: &str, value: &str) -> Result<(), StoreError> {
         self.run(
-            "INSERT INTO meta (key, value) VALUES (?1, ?2) ON CONFLICT (key) DO UPDATE SET value = excluded.value",
-            params![key, value],
+            "INSERT INTO meta (key, value) VALUES (?1, ?2)
+             ON CONFLICT (key) DO UPDATE SET value = excluded.value",
+            values![self.meta_key(key), value],
         )
     }
 
+    /// A small fact of this rig's.
     pub fn meta(&self, key: &str) -> Result<Option<String>, StoreError> {
-        self.conn
-            .query_row("SELECT value FROM meta WHERE key = ?1", params![key], |r| {
-                r.get(0)
-            })
-            .optional()
-            .map_err(|e| self.err(e))
+        match self
+            .rows(
+                "SELECT value FROM meta WHERE key = ?1",
+                values![self.meta_key(key)],
+            )?
+            .first()
+        {
+            Some(r) => r.get(0).map(Some).map_err(|e| self.err(e)),
+            None => Ok(None),
+        }
+    }
+
+    /// The key this rig keeps `key` under: as given for an unnamed rig, "rig NAME: key"
+    /// for a named one.
+    fn meta_key(&self, key: &str) -> String {
+        if self.rig.is_empty() {
+            key.to_string()
+        } else {
+            format!("rig {}: {key}", self.rig)
+        }
     }
 }

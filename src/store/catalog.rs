@@ -1,8 +1,7 @@
 //! Each target's catalogue of persistent sources per filter and night, against which
 //! later nights look for new sources, and other filters' nights for colors.
 
-use rusqlite::params;
-
+use super::db::{values, DbError};
 use super::{Store, StoreError};
 
 impl Store {
@@ -16,32 +15,36 @@ impl Store {
         footprint: &[(f64, f64)],
         sources: &[crate::night::CatalogSource],
     ) -> Result<(), StoreError> {
-        let path = self.path.clone();
-        let err = |source| StoreError::Sqlite {
-            path: path.clone(),
-            source,
-        };
-        let tx = self.conn.transaction().map_err(err)?;
-        tx.execute(
-            "DELETE FROM catalog WHERE target = ?1 AND filter = ?2 AND night = ?3",
-            params![target, filter, night],
-        )
-        .map_err(err)?;
-        tx.execute(
-            "INSERT OR REPLACE INTO catalog_nights (target, filter, night, limit_mag, footprint_json) VALUES (?1, ?2, ?3, ?4, ?5)",
-            params![target, filter, night, limit_mag, serde_json::to_string(footprint).ok()],
-        )
-        .map_err(err)?;
-        {
-            let mut st = tx
-                .prepare_cached("INSERT INTO catalog (target, filter, night, ra_deg, dec_deg, mag) VALUES (?1, ?2, ?3, ?4, ?5, ?6)")
-                .map_err(err)?;
+        let c = &self.conn;
+        c.transaction(|| {
+            c.execute(
+                "DELETE FROM catalog WHERE target = ?1 AND filter = ?2 AND night = ?3 AND rig = ?4",
+                values![target, filter, night, self.rig],
+            )?;
+            c.execute(
+                "INSERT INTO catalog_nights (target, filter, night, limit_mag, footprint_json, rig)
+                 VALUES (?1, ?2, ?3, ?4, ?5, ?6)
+                 ON CONFLICT (target, filter, night, rig) DO UPDATE
+                    SET limit_mag = excluded.limit_mag, footprint_json = excluded.footprint_json",
+                values![
+                    target,
+                    filter,
+                    night,
+                    limit_mag,
+                    serde_json::to_string(footprint).ok(),
+                    self.rig
+                ],
+            )?;
             for s in sources {
-                st.execute(params![target, filter, night, s.ra_deg, s.dec_deg, s.mag])
-                    .map_err(err)?;
+                c.execute(
+                    "INSERT INTO catalog (target, filter, night, ra_deg, dec_deg, mag, rig)
+                     VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7)",
+                    values![target, filter, night, s.ra_deg, s.dec_deg, s.mag, self.rig],
+                )?;
             }
-        }
-        tx.commit().map_err(err)
+            Ok::<_, DbError>(())
+        })
+        .map_err(|e| self.err(e))
     }
 
     /// Catalogues of `target` through `filter` from nights before `night`, newest first
@@ -61,48 +64,43 @@ impl Store {
     }
 
     /// Every filter's catalogues of `target` from nights before `night`, newest first,
-    /// each with its filter ('' where it was not recorded).
+    /// each with its filter ('' where it was not recorded): every rig's, since a source
+    /// new to one rig is checked against what any rig of the site saw of that target.
     pub fn catalogs_before(
         &self,
         target: &str,
         night: &str,
     ) -> Result<Vec<(String, crate::night::EarlierNight)>, StoreError> {
-        let mut st = self
-            .conn
-            .prepare(
-                "SELECT filter, night, limit_mag, footprint_json FROM catalog_nights
-                 WHERE target = ?1 AND night < ?2 ORDER BY night DESC, filter",
-            )
-            .map_err(|e| self.err(e))?;
-        let nights: Vec<(String, String, f64, Option<String>)> = st
-            .query_map(params![target, night], |r| {
-                Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?))
-            })
-            .map_err(|e| self.err(e))?
-            .collect::<Result<_, _>>()
+        let nights: Vec<(String, String, f64, Option<String>, String)> = self
+            .rows(
+                "SELECT filter, night, limit_mag, footprint_json, rig FROM catalog_nights
+                 WHERE target = ?1 AND night < ?2 ORDER BY night DESC, filter, rig",
+                values![target, night],
+            )?
+            .iter()
+            .map(|r| Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?, r.get(4)?)))
+            .collect::<Result<_, DbError>>()
             .map_err(|e| self.err(e))?;
         let mut out = Vec::new();
-        for (filter, n, limit_mag, footprint) in nights {
+        for (filter, n, limit_mag, footprint, rig) in nights {
             let footprint: Vec<(f64, f64)> = footprint
                 .and_then(|f| serde_json::from_str(&f).ok())
                 .unwrap_or_default();
-            let mut q = self
-                .conn
-                .prepare_cached(
+            let sources = self
+                .rows(
                     "SELECT ra_deg, dec_deg, mag FROM catalog
-                     WHERE target = ?1 AND filter = ?2 AND night = ?3",
-                )
-                .map_err(|e| self.err(e))?;
-            let sources = q
-                .query_map(params![target, filter, n], |r| {
+                     WHERE target = ?1 AND filter = ?2 AND night = ?3 AND rig = ?4",
+                    values![target, filter, n, rig],
+                )?
+                .iter()
+                .map(|r| {
                     Ok(crate::night::CatalogSource {
                         ra_deg: r.get(0)?,
                         dec_deg: r.get(1)?,
                         mag: r.get(2)?,
                     })
                 })
-                .map_err(|e| self.err(e))?
-                .collect::<Result<_, _>>()
+                .collect::<Result<_, DbError>>()
                 .map_err(|e| self.err(e))?;
             out.push((
                 filter,

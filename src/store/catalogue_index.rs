@@ -73,9 +73,9 @@ fn unit(ra: f64, dec: f64) -> [f64; 3] {
 impl IndexWriter {
     pub fn create(path: &Path) -> Result<Self, StoreError> {
         let tmp = path.with_extension(format!("building-{}", std::process::id()));
-        let err = |source| StoreError::Sqlite {
-            path: path.to_path_buf(),
-            source,
+        let err = |source: rusqlite::Error| StoreError::Database {
+            store: path.to_path_buf().display().to_string(),
+            source: source.into(),
         };
         let _ = std::fs::remove_file(&tmp);
         // Created here and now (never a file or link someone else left at that name).
@@ -108,9 +108,9 @@ impl IndexWriter {
     }
 
     fn err(&self) -> impl Fn(rusqlite::Error) -> StoreError + '_ {
-        |source| StoreError::Sqlite {
-            path: self.path.clone(),
-            source,
+        |source: rusqlite::Error| StoreError::Database {
+            store: self.path.clone().display().to_string(),
+            source: source.into(),
         }
     }
 
@@ -142,9 +142,9 @@ impl IndexWriter {
                 s.epoch,
                 mags
             ])
-            .map_err(|source| StoreError::Sqlite {
-                path: self.path.clone(),
-                source,
+            .map_err(|source: rusqlite::Error| StoreError::Database {
+                store: self.path.clone().display().to_string(),
+                source: source.into(),
             })?;
             let v = unit(s.ra_deg, s.dec_deg);
             boxed
@@ -160,9 +160,9 @@ impl IndexWriter {
                     s.epoch,
                     s.mags.first().map(|m| m.1)
                 ])
-                .map_err(|source| StoreError::Sqlite {
-                    path: self.path.clone(),
-                    source,
+                .map_err(|source: rusqlite::Error| StoreError::Database {
+                    store: self.path.clone().display().to_string(),
+                    source: source.into(),
                 })?;
         }
         Ok(())
@@ -200,9 +200,9 @@ impl CatalogueIndex {
             path,
             OpenFlags::SQLITE_OPEN_READ_ONLY | OpenFlags::SQLITE_OPEN_NO_MUTEX,
         )
-        .map_err(|source| StoreError::Sqlite {
-            path: path.to_path_buf(),
-            source,
+        .map_err(|source: rusqlite::Error| StoreError::Database {
+            store: path.to_path_buf().display().to_string(),
+            source: source.into(),
         })?;
         Ok(CatalogueIndex {
             conn,
@@ -211,9 +211,9 @@ impl CatalogueIndex {
     }
 
     fn err(&self) -> impl Fn(rusqlite::Error) -> StoreError + '_ {
-        |source| StoreError::Sqlite {
-            path: self.path.clone(),
-            source,
+        |source: rusqlite::Error| StoreError::Database {
+            store: self.path.clone().display().to_string(),
+            source: source.into(),
         }
     }
 

@@ -3,9 +3,9 @@
 //! verdicts, and the queries of a night's frames.
 //! About 600 lines: every query of the frames table, in one place beside its schema.
 
-use rusqlite::{params, OptionalExtension};
 use serde::Serialize;
 
+use super::db::{values, DbError, Row};
 use super::{Store, StoreError};
 use crate::measure::Rejected;
 use crate::night::judge::Placement;
@@ -88,145 +88,193 @@ pub struct NightCounts {
     pub last_recorded_unix: Option<f64>,
 }
 
+/// A frame row's group, from columns night, target, filter, status at `at`.
+fn group_key(r: &Row, at: usize) -> Result<GroupKey, DbError> {
+    let status: String = r.get(at + 3)?;
+    Ok(GroupKey {
+        night: r.get(at)?,
+        target: r.get(at + 1)?,
+        filter: r.get(at + 2)?,
+        ok: status == "ok",
+        skipped: status == "skipped",
+    })
+}
+
+/// The columns `frame_rows` reads, in the order `frame_from_row` expects.
+const FRAME_COLUMNS: &str = "id, path, size, mtime_ns, status, error, night, target, filter,
+    time_unix, metrics_json, wcs_json, header_json, placement_json, calibration_json";
+
+fn frame_from_row(r: &Row) -> Result<(i64, FrameRecord, Option<Placement>), DbError> {
+    let status: String = r.get(4)?;
+    let json = |k: usize| -> Result<Option<String>, DbError> { r.get(k) };
+    Ok((
+        r.get(0)?,
+        FrameRecord {
+            identity: Identity {
+                path: r.get(1)?,
+                size: r.get::<i64>(2)? as u64,
+                mtime_ns: r.get(3)?,
+            },
+            status: FrameStatus::from_name(&status),
+            error: r.get(5)?,
+            night: r.get(6)?,
+            target: r.get(7)?,
+            filter: r.get(8)?,
+            time_unix: r.get(9)?,
+            header: json(12)?.and_then(|h| serde_json::from_str(&h).ok()),
+            metrics: json(10)?.and_then(|m| serde_json::from_str(&m).ok()),
+            stars: Vec::new(),
+            rejected: Vec::new(),
+            wcs: json(11)?.and_then(|w| serde_json::from_str(&w).ok()),
+            calibration: json(14)?.and_then(|c| serde_json::from_str(&c).ok()),
+        },
+        json(13)?.and_then(|p| serde_json::from_str(&p).ok()),
+    ))
+}
+
+fn star_from_row(r: &Row) -> Result<StarRecord, DbError> {
+    let flux: f64 = r.get::<Option<f64>>(2)?.unwrap_or(0.0);
+    let fwhm: f64 = r.get::<Option<f64>>(3)?.unwrap_or(f64::NAN);
+    let rgb: [Option<f64>; 3] = [r.get(8)?, r.get(9)?, r.get(10)?];
+    Ok(StarRecord {
+        x: r.get(0)?,
+        y: r.get(1)?,
+        flux,
+        fwhm_px: fwhm,
+        eccentricity: r.get::<Option<f64>>(4)?.unwrap_or(f64::NAN),
+        snr: r.get::<Option<f64>>(5)?.unwrap_or(0.0),
+        flux_err: r.get::<Option<f64>>(11)?.unwrap_or(f64::NAN),
+        hfr_px: None,
+        fwhm_major_px: fwhm,
+        fwhm_minor_px: fwhm,
+        angle_deg: 0.0,
+        psf_flux: flux,
+        psf_model: crate::measure::psf::PsfModel::Gaussian,
+        moffat_beta: None,
+        peak_adu: f64::NAN,
+        blended: r.get::<Option<i64>>(12)?.unwrap_or(0) != 0,
+        ra_deg: r.get(6)?,
+        dec_deg: r.get(7)?,
+        rgb: rgb.iter().any(|c| c.is_some()).then_some(rgb),
+    })
+}
+
+/// The night `days` nights before `night` (both YYYY-MM-DD); `None` when `night` is not
+/// a date.
+fn nights_before(night: &str, days: u32) -> Option<String> {
+    let d = chrono::NaiveDate::parse_from_str(night, "%Y-%m-%d").ok()?;
+    Some(
+        d.checked_sub_days(chrono::Days::new(days.into()))?
+            .format("%Y-%m-%d")
+            .to_string(),
+    )
+}
+
 impl Store {
     /// Record a frame with its stars, atomically: nothing when this version of the file
     /// is recorded already, a new record, or the replacement of an older version's
     /// record (its stars, rejected detections and verdict go with it). The file's
     /// reading mark is cleared in the same transaction.
     pub fn record_frame(&mut self, f: &FrameRecord, now_unix: f64) -> Result<Recorded, StoreError> {
-        let path = self.path.clone();
-        let err = |source| StoreError::Sqlite {
-            path: path.clone(),
-            source,
-        };
-        let tx = self.conn.transaction().map_err(err)?;
-        let existing: Option<(i64, i64, i64, GroupKey)> = tx
-            .query_row(
+        let c = &self.conn;
+        let rig = &self.rig;
+        c.transaction(|| {
+            let existing = c.query_opt(
                 "SELECT id, size, mtime_ns, night, target, filter, status FROM frames
                  WHERE rig = ?2 AND path = ?1",
-                params![f.identity.path, self.rig],
-                |r| {
-                    let status: String = r.get(6)?;
-                    Ok((
-                        r.get(0)?,
-                        r.get(1)?,
-                        r.get(2)?,
-                        GroupKey {
-                            night: r.get(3)?,
-                            target: r.get(4)?,
-                            filter: r.get(5)?,
-                            ok: status == "ok",
-                            skipped: status == "skipped",
-                        },
-                    ))
-                },
-            )
-            .optional()
-            .map_err(err)?;
-        let mut earlier = None;
-        if let Some((id, size, mtime_ns, key)) = existing {
-            if size == f.identity.size as i64 && mtime_ns == f.identity.mtime_ns {
-                tx.execute(
-                    "DELETE FROM reading WHERE rig = ?2 AND path = ?1",
-                    params![f.identity.path, self.rig],
-                )
-                .map_err(err)?;
-                tx.commit().map_err(err)?;
-                return Ok(Recorded::Already);
+                values![f.identity.path, rig],
+            )?;
+            let mut earlier = None;
+            if let Some(row) = existing {
+                let (id, size, mtime_ns): (i64, i64, i64) = (row.get(0)?, row.get(1)?, row.get(2)?);
+                if size == f.identity.size as i64 && mtime_ns == f.identity.mtime_ns {
+                    c.execute(
+                        "DELETE FROM reading WHERE rig = ?2 AND path = ?1",
+                        values![f.identity.path, rig],
+                    )?;
+                    return Ok(Recorded::Already);
+                }
+                // Stars and rejected detections go with the row (ON DELETE CASCADE).
+                c.execute("DELETE FROM frames WHERE id = ?1", values![id])?;
+                earlier = Some(group_key(&row, 3)?);
             }
-            // Stars and rejected detections go with the row (ON DELETE CASCADE).
-            tx.execute("DELETE FROM frames WHERE id = ?1", params![id])
-                .map_err(err)?;
-            earlier = Some(key);
-        }
-        let metrics_json = f
-            .metrics
-            .as_ref()
-            .map(|m| serde_json::to_string(m).unwrap_or_default());
-        let header_json = f
-            .header
-            .as_ref()
-            .map(|h| serde_json::to_string(h).unwrap_or_default());
-        let m = f.metrics.as_ref();
-        tx.execute(
-            "INSERT INTO frames (path, size, mtime_ns, status, error, night, target, filter,
-                time_unix, header_json, metrics_json, star_count, fwhm_px, eccentricity,
-                background_adu, noise_adu, recorded_at, wcs_json, calibration_json, rig)
-             VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17, ?18, ?19, ?20)",
-            params![
-                f.identity.path,
-                f.identity.size as i64,
-                f.identity.mtime_ns,
-                f.status.as_str(),
-                f.error,
-                f.night,
-                f.target,
-                f.filter,
-                f.time_unix,
-                header_json,
-                metrics_json,
-                m.map(|m| m.star_count as i64),
-                m.and_then(|m| m.fwhm_px),
-                m.and_then(|m| m.eccentricity),
-                m.map(|m| m.background_adu),
-                m.map(|m| m.noise_adu),
-                now_unix,
-                f.wcs.as_ref().and_then(|w| serde_json::to_string(w).ok()),
-                f.calibration.as_ref().and_then(|c| serde_json::to_string(c).ok()),
-                self.rig,
-            ],
-        )
-        .map_err(err)?;
-        let frame_id = tx.last_insert_rowid();
-        {
-            let mut st = tx
-                .prepare_cached(
-                    "INSERT INTO stars (frame_id, x, y, flux, fwhm_px, eccentricity, snr, ra_deg, dec_deg, r, g, b,
-                        flux_err, blended)
-                     VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14)",
-                )
-                .map_err(err)?;
+            let m = f.metrics.as_ref();
+            let json = |v: Option<String>| v;
+            let frame_id: i64 = c
+                .query_one(
+                    "INSERT INTO frames (path, size, mtime_ns, status, error, night, target, filter,
+                        time_unix, header_json, metrics_json, star_count, fwhm_px, eccentricity,
+                        background_adu, noise_adu, recorded_at, wcs_json, calibration_json, rig)
+                     VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16,
+                        ?17, ?18, ?19, ?20)
+                     RETURNING id",
+                    values![
+                        f.identity.path,
+                        f.identity.size,
+                        f.identity.mtime_ns,
+                        f.status.as_str(),
+                        f.error,
+                        f.night,
+                        f.target,
+                        f.filter,
+                        f.time_unix,
+                        json(f.header.as_ref().map(|h| serde_json::to_string(h).unwrap_or_default())),
+                        json(m.map(|m| serde_json::to_string(m).unwrap_or_default())),
+                        m.map(|m| m.star_count),
+                        m.and_then(|m| m.fwhm_px),
+                        m.and_then(|m| m.eccentricity),
+                        m.map(|m| m.background_adu),
+                        m.map(|m| m.noise_adu),
+                        now_unix,
+                        f.wcs.as_ref().and_then(|w| serde_json::to_string(w).ok()),
+                        f.calibration.as_ref().and_then(|c| serde_json::to_string(c).ok()),
+                        rig,
+                    ],
+                )?
+                .get(0)?;
             for s in &f.stars {
-                let c = |i: usize| s.rgb.and_then(|c| c[i]);
-                st.execute(params![
-                    frame_id,
-                    s.x,
-                    s.y,
-                    s.flux,
-                    s.fwhm_px,
-                    s.eccentricity,
-                    s.snr,
-                    s.ra_deg,
-                    s.dec_deg,
-                    c(0),
-                    c(1),
-                    c(2),
-                    s.flux_err,
-                    s.blended
-                ])
-                .map_err(err)?;
+                let rgb = |i: usize| s.rgb.and_then(|c| c[i]);
+                c.execute(
+                    "INSERT INTO stars (frame_id, x, y, flux, fwhm_px, eccentricity, snr, ra_deg,
+                        dec_deg, r, g, b, flux_err, blended)
+                     VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14)",
+                    values![
+                        frame_id,
+                        s.x,
+                        s.y,
+                        s.flux,
+                        s.fwhm_px,
+                        s.eccentricity,
+                        s.snr,
+                        s.ra_deg,
+                        s.dec_deg,
+                        rgb(0),
+                        rgb(1),
+                        rgb(2),
+                        s.flux_err,
+                        s.blended
+                    ],
+                )?;
             }
-            let mut rj = tx
-                .prepare_cached("INSERT INTO rejected (frame_id, x, y, kind, peak_adu) VALUES (?1, ?2, ?3, ?4, ?5)")
-                .map_err(err)?;
             for r in &f.rejected {
-                rj.execute(params![frame_id, r.x, r.y, r.kind.as_str(), r.peak_adu])
-                    .map_err(err)?;
+                c.execute(
+                    "INSERT INTO rejected (frame_id, x, y, kind, peak_adu) VALUES (?1, ?2, ?3, ?4, ?5)",
+                    values![frame_id, r.x, r.y, r.kind.as_str(), r.peak_adu],
+                )?;
             }
-        }
-        tx.execute(
-            "DELETE FROM reading WHERE rig = ?2 AND path = ?1",
-            params![f.identity.path, self.rig],
-        )
-        .map_err(err)?;
-        tx.commit().map_err(err)?;
-        Ok(match earlier {
-            Some(earlier) => Recorded::Replaced {
-                id: frame_id,
-                earlier,
-            },
-            None => Recorded::New(frame_id),
+            c.execute(
+                "DELETE FROM reading WHERE rig = ?2 AND path = ?1",
+                values![f.identity.path, rig],
+            )?;
+            Ok::<_, DbError>(match earlier {
+                Some(earlier) => Recorded::Replaced {
+                    id: frame_id,
+                    earlier,
+                },
+                None => Recorded::New(frame_id),
+            })
         })
+        .map_err(|e| self.err(e))
     }
 
     /// Mark a file as being read (before its reader starts). A mark left from an earlier
@@ -235,10 +283,11 @@ impl Store {
         self.run(
             "INSERT INTO reading (path, size, mtime_ns, started_unix, rig) VALUES (?1, ?2, ?3, ?4, ?5)
              ON CONFLICT (rig, path) DO UPDATE SET started_unix = excluded.started_unix,
-                interruptions = CASE WHEN size = excluded.size AND mtime_ns = excluded.mtime_ns
-                                     THEN interruptions ELSE 0 END,
+                interruptions = CASE WHEN reading.size = excluded.size
+                                      AND reading.mtime_ns = excluded.mtime_ns
+                                     THEN reading.interruptions ELSE 0 END,
                 size = excluded.size, mtime_ns = excluded.mtime_ns",
-            params![id.path, id.size as i64, id.mtime_ns, now_unix, self.rig],
+            values![id.path, id.size, id.mtime_ns, now_unix, self.rig],
         )
     }
 
@@ -246,42 +295,31 @@ impl Store {
     /// stopped. Each one's count of interruptions goes up by one here (call once, at
     /// start-up, before any file is read).
     pub fn take_interrupted(&mut self) -> Result<Vec<Interrupted>, StoreError> {
-        let path = self.path.clone();
-        let err = |source| StoreError::Sqlite {
-            path: path.clone(),
-            source,
-        };
-        let tx = self.conn.transaction().map_err(err)?;
-        tx.execute(
-            "UPDATE reading SET interruptions = interruptions + 1 WHERE rig = ?1",
-            params![self.rig],
-        )
-        .map_err(err)?;
-        let rows = {
-            let mut st = tx
-                .prepare(
-                    "SELECT path, size, mtime_ns, interruptions FROM reading WHERE rig = ?1
-                     ORDER BY path",
-                )
-                .map_err(err)?;
-            let rows = st
-                .query_map(params![self.rig], |r| {
-                    Ok(Interrupted {
-                        identity: Identity {
-                            path: r.get(0)?,
-                            size: r.get::<_, i64>(1)? as u64,
-                            mtime_ns: r.get(2)?,
-                        },
-                        interruptions: r.get(3)?,
-                    })
+        let c = &self.conn;
+        c.transaction(|| {
+            c.execute(
+                "UPDATE reading SET interruptions = interruptions + 1 WHERE rig = ?1",
+                values![self.rig],
+            )?;
+            c.query(
+                "SELECT path, size, mtime_ns, interruptions FROM reading WHERE rig = ?1
+                 ORDER BY path",
+                values![self.rig],
+            )?
+            .iter()
+            .map(|r| {
+                Ok(Interrupted {
+                    identity: Identity {
+                        path: r.get(0)?,
+                        size: r.get::<i64>(1)? as u64,
+                        mtime_ns: r.get(2)?,
+                    },
+                    interruptions: r.get(3)?,
                 })
-                .map_err(err)?
-                .collect::<Result<Vec<_>, _>>()
-                .map_err(err)?;
-            rows
-        };
-        tx.commit().map_err(err)?;
-        Ok(rows)
+            })
+            .collect::<Result<Vec<_>, DbError>>()
+        })
+        .map_err(|e| self.err(e))
     }
 
     /// The recorded version (size, modification time) of every path, for the catch-up
@@ -289,22 +327,23 @@ impl Store {
     pub fn recorded_versions(
         &self,
     ) -> Result<std::collections::HashMap<String, (u64, i64)>, StoreError> {
-        let mut st = self
-            .conn
-            .prepare("SELECT path, size, mtime_ns FROM frames WHERE rig = ?1")
-            .map_err(|e| self.err(e))?;
-        let rows = st
-            .query_map(params![self.rig], |r| {
-                Ok((r.get(0)?, (r.get::<_, i64>(1)? as u64, r.get(2)?)))
-            })
-            .map_err(|e| self.err(e))?;
-        rows.collect::<Result<_, _>>().map_err(|e| self.err(e))
+        self.rows(
+            "SELECT path, size, mtime_ns FROM frames WHERE rig = ?1",
+            values![self.rig],
+        )?
+        .iter()
+        .map(|r| Ok((r.get(0)?, (r.get::<i64>(1)? as u64, r.get(2)?))))
+        .collect::<Result<_, DbError>>()
+        .map_err(|e| self.err(e))
     }
 
     /// Everything recorded for one night, rebuilt as records for the night analysis,
     /// stars and rejected detections included.
     pub fn night_records(&self, night: &str) -> Result<Vec<FrameRecord>, StoreError> {
-        let rows = self.frame_rows("WHERE night = ?1", params![night])?;
+        let rows = self.frame_rows(
+            "WHERE night = ?1 AND (rig = ?2 OR ?2 IS NULL)",
+            values![night, self.scope()],
+        )?;
         let mut out = Vec::with_capacity(rows.len());
         for (id, mut rec, _) in rows {
             rec.stars = self.frame_star_records(id)?;
@@ -317,16 +356,23 @@ impl Store {
     /// Every frame of one night with its live verdict and explanations, in time order,
     /// without stars.
     pub fn night_live_frames(&self, night: &str) -> Result<Vec<LiveFrame>, StoreError> {
-        let rows = self.frame_rows("WHERE night = ?1", params![night])?;
-        let mut st = self
-            .conn
-            .prepare_cached("SELECT live_verdict, live_explanations_json FROM frames WHERE id = ?1")
-            .map_err(|e| self.err(e))?;
+        let rows = self.frame_rows(
+            "WHERE night = ?1 AND (rig = ?2 OR ?2 IS NULL)",
+            values![night, self.scope()],
+        )?;
         let mut out = Vec::with_capacity(rows.len());
         for (id, record, _) in rows {
-            let (verdict, explanations): (Option<String>, Option<String>) = st
-                .query_row(params![id], |r| Ok((r.get(0)?, r.get(1)?)))
+            let row = self
+                .conn
+                .query_one(
+                    "SELECT live_verdict, live_explanations_json FROM frames WHERE id = ?1",
+                    values![id],
+                )
                 .map_err(|e| self.err(e))?;
+            let (verdict, explanations): (Option<String>, Option<String>) = (
+                row.get(0).map_err(|e| self.err(e))?,
+                row.get(1).map_err(|e| self.err(e))?,
+            );
             out.push(LiveFrame {
                 id,
                 record,
@@ -346,10 +392,13 @@ impl Store {
         night: &str,
         days: u32,
     ) -> Result<Vec<FrameRecord>, StoreError> {
+        let Some(first) = nights_before(night, days) else {
+            return Ok(Vec::new());
+        };
         let rows = self.frame_rows(
             "WHERE status = 'skipped' AND calibration_json IS NOT NULL AND night < ?1
-               AND night >= date(?1, '-' || ?2 || ' days')",
-            params![night, days],
+               AND night >= ?2 AND (rig = ?3 OR ?3 IS NULL)",
+            values![night, first, self.scope()],
         )?;
         let mut out: Vec<FrameRecord> = rows.into_iter().map(|(_, r, _)| r).collect();
         out.reverse();
@@ -365,8 +414,10 @@ impl Store {
         filter: Option<&str>,
     ) -> Result<Vec<(i64, FrameRecord, Option<Placement>)>, StoreError> {
         self.frame_rows(
-            "WHERE night = ?1 AND target IS ?2 AND filter IS ?3 AND status != 'skipped'",
-            params![night, target, filter],
+            "WHERE night = ?1 AND target IS NOT DISTINCT FROM ?2
+               AND filter IS NOT DISTINCT FROM ?3 AND status != 'skipped'
+               AND (rig = ?4 OR ?4 IS NULL)",
+            values![night, target, filter, self.scope()],
         )
     }
 
@@ -374,163 +425,92 @@ impl Store {
     fn frame_rows(
         &self,
         filter: &str,
-        values: impl rusqlite::Params,
+        values: &[super::db::Value],
     ) -> Result<Vec<(i64, FrameRecord, Option<Placement>)>, StoreError> {
-        let mut st = self
-            .conn
-            .prepare(&format!(
-                "SELECT id, path, size, mtime_ns, status, error, night, target, filter, time_unix,
-                        metrics_json, wcs_json, header_json, placement_json, calibration_json
-                 FROM frames {filter} ORDER BY COALESCE(time_unix, recorded_at), id"
-            ))
-            .map_err(|e| self.err(e))?;
-        let rows = st
-            .query_map(values, |r| {
-                let status: String = r.get(4)?;
-                let json = |k: usize| -> rusqlite::Result<Option<String>> { r.get(k) };
-                Ok((
-                    r.get(0)?,
-                    FrameRecord {
-                        identity: Identity {
-                            path: r.get(1)?,
-                            size: r.get::<_, i64>(2)? as u64,
-                            mtime_ns: r.get(3)?,
-                        },
-                        status: FrameStatus::from_name(&status),
-                        error: r.get(5)?,
-                        night: r.get(6)?,
-                        target: r.get(7)?,
-                        filter: r.get(8)?,
-                        time_unix: r.get(9)?,
-                        header: json(12)?.and_then(|h| serde_json::from_str(&h).ok()),
-                        metrics: json(10)?.and_then(|m| serde_json::from_str(&m).ok()),
-                        stars: Vec::new(),
-                        rejected: Vec::new(),
-                        wcs: json(11)?.and_then(|w| serde_json::from_str(&w).ok()),
-                        calibration: json(14)?.and_then(|c| serde_json::from_str(&c).ok()),
-                    },
-                    json(13)?.and_then(|p| serde_json::from_str(&p).ok()),
-                ))
-            })
-            .map_err(|e| self.err(e))?;
-        rows.collect::<Result<_, _>>().map_err(|e| self.err(e))
+        self.rows(
+            &format!(
+                "SELECT {FRAME_COLUMNS} FROM frames {filter}
+                 ORDER BY COALESCE(time_unix, recorded_at), id"
+            ),
+            values,
+        )?
+        .iter()
+        .map(frame_from_row)
+        .collect::<Result<_, _>>()
+        .map_err(|e| self.err(e))
     }
 
     /// The stars of one frame. Star fields the store does not keep (half-flux radius,
     /// axes, angle, PSF model) come back as their simplest stand-ins.
     pub fn frame_star_records(&self, id: i64) -> Result<Vec<StarRecord>, StoreError> {
-        let mut stars = self
-            .conn
-            .prepare_cached(
-                "SELECT x, y, flux, fwhm_px, eccentricity, snr, ra_deg, dec_deg, r, g, b, flux_err, blended
-                 FROM stars WHERE frame_id = ?1",
-            )
-            .map_err(|e| self.err(e))?;
-        let rows = stars
-            .query_map(params![id], |r| {
-                let flux: f64 = r.get::<_, Option<f64>>(2)?.unwrap_or(0.0);
-                let fwhm: f64 = r.get::<_, Option<f64>>(3)?.unwrap_or(f64::NAN);
-                let rgb: [Option<f64>; 3] = [r.get(8)?, r.get(9)?, r.get(10)?];
-                Ok(StarRecord {
-                    x: r.get(0)?,
-                    y: r.get(1)?,
-                    flux,
-                    fwhm_px: fwhm,
-                    eccentricity: r.get::<_, Option<f64>>(4)?.unwrap_or(f64::NAN),
-                    snr: r.get::<_, Option<f64>>(5)?.unwrap_or(0.0),
-                    flux_err: r.get::<_, Option<f64>>(11)?.unwrap_or(f64::NAN),
-                    hfr_px: None,
-                    fwhm_major_px: fwhm,
-                    fwhm_minor_px: fwhm,
-                    angle_deg: 0.0,
-                    psf_flux: flux,
-                    psf_model: crate::measure::psf::PsfModel::Gaussian,
-                    moffat_beta: None,
-                    peak_adu: f64::NAN,
-                    blended: r.get::<_, Option<i64>>(12)?.unwrap_or(0) != 0,
-                    ra_deg: r.get(6)?,
-                    dec_deg: r.get(7)?,
-                    rgb: rgb.iter().any(|c| c.is_some()).then_some(rgb),
-                })
-            })
-            .map_err(|e| self.err(e))?;
-        rows.collect::<Result<_, _>>().map_err(|e| self.err(e))
+        self.rows(
+            "SELECT x, y, flux, fwhm_px, eccentricity, snr, ra_deg, dec_deg, r, g, b, flux_err,
+                blended
+             FROM stars WHERE frame_id = ?1",
+            values![id],
+        )?
+        .iter()
+        .map(star_from_row)
+        .collect::<Result<_, _>>()
+        .map_err(|e| self.err(e))
     }
 
     fn frame_rejected(&self, id: i64) -> Result<Vec<Rejected>, StoreError> {
-        let mut rejected = self
-            .conn
-            .prepare_cached("SELECT x, y, kind, peak_adu FROM rejected WHERE frame_id = ?1")
-            .map_err(|e| self.err(e))?;
-        let rows = rejected
-            .query_map(params![id], |r| {
-                let kind: String = r.get(2)?;
-                Ok(Rejected {
-                    x: r.get(0)?,
-                    y: r.get(1)?,
-                    kind: crate::measure::RejectKind::from_name(&kind)
-                        .unwrap_or(crate::measure::RejectKind::Unfit),
-                    peak_adu: r.get::<_, Option<f64>>(3)?.unwrap_or(0.0),
-                })
+        self.rows(
+            "SELECT x, y, kind, peak_adu FROM rejected WHERE frame_id = ?1",
+            values![id],
+        )?
+        .iter()
+        .map(|r| {
+            let kind: String = r.get(2)?;
+            Ok(Rejected {
+                x: r.get(0)?,
+                y: r.get(1)?,
+                kind: crate::measure::RejectKind::from_name(&kind)
+                    .unwrap_or(crate::measure::RejectKind::Unfit),
+                peak_adu: r.get::<Option<f64>>(3)?.unwrap_or(0.0),
             })
-            .map_err(|e| self.err(e))?;
-        rows.collect::<Result<_, _>>().map_err(|e| self.err(e))
+        })
+        .collect::<Result<_, DbError>>()
+        .map_err(|e| self.err(e))
     }
 
-    /// Frames that have no verdict yet (oldest first).
+    /// This rig's frames that have no verdict yet (oldest first).
     pub fn frames_without_verdict(&self) -> Result<Vec<(i64, GroupKey)>, StoreError> {
-        let mut st = self
-            .conn
-            .prepare(
-                "SELECT id, night, target, filter, status FROM frames
-                 WHERE verdict IS NULL AND status != 'skipped' ORDER BY id",
-            )
-            .map_err(|e| self.err(e))?;
-        let rows = st
-            .query_map([], |r| {
-                let status: String = r.get(4)?;
-                Ok((
-                    r.get(0)?,
-                    GroupKey {
-                        night: r.get(1)?,
-                        target: r.get(2)?,
-                        filter: r.get(3)?,
-                        ok: status == "ok",
-                        skipped: false,
-                    },
-                ))
-            })
-            .map_err(|e| self.err(e))?;
-        rows.collect::<Result<_, _>>().map_err(|e| self.err(e))
+        self.rows(
+            "SELECT id, night, target, filter, status FROM frames
+             WHERE verdict IS NULL AND status != 'skipped' AND rig = ?1 ORDER BY id",
+            values![self.rig],
+        )?
+        .iter()
+        .map(|r| Ok((r.get(0)?, group_key(r, 1)?)))
+        .collect::<Result<_, DbError>>()
+        .map_err(|e| self.err(e))
     }
 
     /// A recorded frame's file moved (the rejected-frames action). A stale record of a
     /// file that was once at the new path (and is not there now) gives way.
     pub fn set_path(&mut self, id: i64, path: &str) -> Result<(), StoreError> {
-        let err_path = self.path.clone();
-        let err = |source| StoreError::Sqlite {
-            path: err_path.clone(),
-            source,
-        };
-        let tx = self.conn.transaction().map_err(err)?;
-        tx.execute(
-            "DELETE FROM frames WHERE rig = ?3 AND path = ?2 AND id != ?1",
-            params![id, path, self.rig],
-        )
-        .map_err(err)?;
-        tx.execute(
-            "UPDATE frames SET path = ?2 WHERE id = ?1",
-            params![id, path],
-        )
-        .map_err(err)?;
-        tx.commit().map_err(err)
+        let c = &self.conn;
+        c.transaction(|| {
+            c.execute(
+                "DELETE FROM frames WHERE rig = ?3 AND path = ?2 AND id != ?1",
+                values![id, path, self.rig],
+            )?;
+            c.execute(
+                "UPDATE frames SET path = ?2 WHERE id = ?1",
+                values![id, path],
+            )
+        })
+        .map(|_| ())
+        .map_err(|e| self.err(e))
     }
 
     /// Record where a frame sits on its group's reference frame.
     pub fn set_placement(&self, id: i64, p: &Placement) -> Result<(), StoreError> {
         self.run(
             "UPDATE frames SET placement_json = ?2, registration_rms_px = ?3 WHERE id = ?1",
-            params![id, serde_json::to_string(p).ok(), p.rms_px],
+            values![id, serde_json::to_string(p).ok(), p.rms_px],
         )
     }
 
@@ -548,7 +528,7 @@ impl Store {
             "UPDATE frames SET verdict = ?2, reasons_json = ?3, live_verdict = ?2,
                 live_reasons_json = ?3, transparency_loss_mag = ?4, live_explanations_json = ?5
              WHERE id = ?1",
-            params![
+            values![
                 id,
                 judgement.verdict.as_str(),
                 reasons,
@@ -558,8 +538,8 @@ impl Store {
         )
     }
 
-    /// The last `n` judged frames of one night-target-filter group, newest last: path,
-    /// live verdict and its explanations.
+    /// The last `n` judged frames of this rig's night-target-filter group, newest last:
+    /// path, live verdict and its explanations.
     pub fn latest_live_judgements(
         &self,
         night: &str,
@@ -567,26 +547,19 @@ impl Store {
         filter: Option<&str>,
         n: usize,
     ) -> Result<Vec<(String, Verdict, Vec<String>)>, StoreError> {
-        let mut st = self
-            .conn
-            .prepare_cached(
-                "SELECT path, live_verdict, live_explanations_json FROM frames
-                 WHERE night = ?1 AND target IS ?2 AND filter IS ?3 AND live_verdict IS NOT NULL
-                 ORDER BY COALESCE(time_unix, recorded_at) DESC, id DESC LIMIT ?4",
-            )
-            .map_err(|e| self.err(e))?;
-        let rows = st
-            .query_map(params![night, target, filter, n as i64], |r| {
-                Ok((
-                    r.get::<_, String>(0)?,
-                    r.get::<_, String>(1)?,
-                    r.get::<_, Option<String>>(2)?,
-                ))
-            })
-            .map_err(|e| self.err(e))?;
+        let rows = self.rows(
+            "SELECT path, live_verdict, live_explanations_json FROM frames
+             WHERE night = ?1 AND target IS NOT DISTINCT FROM ?2
+               AND filter IS NOT DISTINCT FROM ?3 AND live_verdict IS NOT NULL AND rig = ?5
+             ORDER BY COALESCE(time_unix, recorded_at) DESC, id DESC LIMIT ?4",
+            values![night, target, filter, n, self.rig],
+        )?;
         let mut out = Vec::new();
-        for row in rows {
-            let (path, verdict, explanations) = row.map_err(|e| self.err(e))?;
+        for r in &rows {
+            let read = || -> Result<(String, String, Option<String>), DbError> {
+                Ok((r.get(0)?, r.get(1)?, r.get(2)?))
+            };
+            let (path, verdict, explanations) = read().map_err(|e| self.err(e))?;
             let Some(verdict) = Verdict::from_name(&verdict) else {
                 continue;
             };
@@ -608,7 +581,7 @@ impl Store {
     ) -> Result<(), StoreError> {
         self.run(
             "UPDATE frames SET verdict = ?2, reasons_json = ?3 WHERE id = ?1",
-            params![
+            values![
                 id,
                 verdict.as_str(),
                 serde_json::to_string(reasons).unwrap_or_default()
@@ -622,35 +595,26 @@ impl Store {
         &mut self,
         verdicts: &[(String, Verdict, Vec<String>)],
     ) -> Result<Vec<VerdictChange>, StoreError> {
-        let path = self.path.clone();
-        let err = |source| StoreError::Sqlite {
-            path: path.clone(),
-            source,
-        };
-        let tx = self.conn.transaction().map_err(err)?;
-        let mut changed = Vec::new();
-        {
-            let mut before = tx
-                .prepare_cached("SELECT verdict FROM frames WHERE rig = ?2 AND path = ?1")
-                .map_err(err)?;
-            let mut st = tx
-                .prepare_cached(
-                    "UPDATE frames SET verdict = ?2, reasons_json = ?3
-                     WHERE rig = ?4 AND path = ?1 AND (verdict IS NOT ?2 OR reasons_json IS NOT ?3)",
-                )
-                .map_err(err)?;
+        let c = &self.conn;
+        let rig = &self.rig;
+        c.transaction(|| {
+            let mut changed = Vec::new();
             for (p, verdict, reasons) in verdicts {
                 let reasons = serde_json::to_string(reasons).unwrap_or_default();
-                let was: Option<String> = before
-                    .query_row(params![p, self.rig], |row| row.get(0))
-                    .optional()
-                    .map_err(err)?
-                    .flatten();
-                if st
-                    .execute(params![p, verdict.as_str(), reasons, self.rig])
-                    .map_err(err)?
-                    > 0
-                {
+                let was: Option<String> = match c.query_opt(
+                    "SELECT verdict FROM frames WHERE rig = ?2 AND path = ?1",
+                    values![p, rig],
+                )? {
+                    Some(row) => row.get(0)?,
+                    None => None,
+                };
+                let updated = c.execute(
+                    "UPDATE frames SET verdict = ?2, reasons_json = ?3
+                     WHERE rig = ?4 AND path = ?1
+                       AND (verdict IS DISTINCT FROM ?2 OR reasons_json IS DISTINCT FROM ?3)",
+                    values![p, verdict.as_str(), reasons, rig],
+                )?;
+                if updated > 0 {
                     changed.push(VerdictChange {
                         path: p.clone(),
                         before: was.as_deref().and_then(Verdict::from_name),
@@ -658,9 +622,9 @@ impl Store {
                     });
                 }
             }
-        }
-        tx.commit().map_err(err)?;
-        Ok(changed)
+            Ok::<_, DbError>(changed)
+        })
+        .map_err(|e| self.err(e))
     }
 
     /// Paths of the frames of one night, target and filter to stack: verdict ok, and
@@ -673,37 +637,37 @@ impl Store {
         with_warned: bool,
     ) -> Result<Vec<String>, StoreError> {
         self.strings(
-            "SELECT path FROM frames WHERE night = ?1 AND target IS ?2 AND filter IS ?3
-             AND status = 'ok' AND (verdict = 'ok' OR (?4 AND verdict = 'warn'))
+            "SELECT path FROM frames WHERE night = ?1 AND target IS NOT DISTINCT FROM ?2
+               AND filter IS NOT DISTINCT FROM ?3 AND (rig = ?5 OR ?5 IS NULL)
+               AND status = 'ok' AND (verdict = 'ok' OR (?4 AND verdict = 'warn'))
              ORDER BY COALESCE(time_unix, recorded_at), id",
-            params![night, target, filter, with_warned],
+            values![night, target, filter, with_warned, self.scope()],
         )
     }
 
     /// The (target, filter) groups of one night's frames.
     pub fn night_groups(&self, night: &str) -> Result<Vec<TargetFilter>, StoreError> {
-        let mut st = self
-            .conn
-            .prepare(
-                "SELECT DISTINCT target, filter FROM frames WHERE night = ?1 AND status != 'skipped'
-                 ORDER BY target, filter",
-            )
-            .map_err(|e| self.err(e))?;
-        let rows = st
-            .query_map(params![night], |r| Ok((r.get(0)?, r.get(1)?)))
-            .map_err(|e| self.err(e))?;
-        rows.collect::<Result<_, _>>().map_err(|e| self.err(e))
+        self.rows(
+            "SELECT DISTINCT target, filter FROM frames
+             WHERE night = ?1 AND status != 'skipped' AND (rig = ?2 OR ?2 IS NULL)
+             ORDER BY target NULLS FIRST, filter NULLS FIRST",
+            values![night, self.scope()],
+        )?
+        .iter()
+        .map(|r| Ok((r.get(0)?, r.get(1)?)))
+        .collect::<Result<_, DbError>>()
+        .map_err(|e| self.err(e))
     }
 
-    /// Counts for one night.
     /// The night of the frame recorded last that carries a readable DATE-OBS: the
     /// night in progress as the frames themselves place it.
     pub fn latest_dated_night(&self) -> Result<Option<String>, StoreError> {
         Ok(self
             .strings(
-                "SELECT night FROM frames WHERE time_unix IS NOT NULL AND night IS NOT NULL
+                "SELECT night FROM frames
+                 WHERE time_unix IS NOT NULL AND night IS NOT NULL AND (rig = ?1 OR ?1 IS NULL)
                  ORDER BY recorded_at DESC, id DESC LIMIT 1",
-                [],
+                values![self.scope()],
             )?
             .pop())
     }
@@ -711,47 +675,63 @@ impl Store {
     /// The night labels that hold frames, oldest first.
     pub fn nights(&self) -> Result<Vec<String>, StoreError> {
         self.strings(
-            "SELECT DISTINCT night FROM frames WHERE night IS NOT NULL ORDER BY night",
-            [],
+            "SELECT DISTINCT night FROM frames
+             WHERE night IS NOT NULL AND (rig = ?1 OR ?1 IS NULL) ORDER BY night",
+            values![self.scope()],
         )
     }
 
+    /// Counts for one night.
     pub fn night_counts(&self, night: &str) -> Result<NightCounts, StoreError> {
-        self.conn
-            .query_row(
+        let r = self
+            .conn
+            .query_one(
                 "SELECT COUNT(*),
-                        COALESCE(SUM(status = 'ok'), 0),
-                        COALESCE(SUM(status = 'error'), 0),
-                        COALESCE(SUM(status = 'skipped'), 0),
-                        COALESCE(SUM(verdict = 'warn'), 0),
-                        COALESCE(SUM(verdict = 'reject'), 0),
-                        COALESCE(SUM(time_unix IS NULL), 0),
+                        COUNT(CASE WHEN status = 'ok' THEN 1 END),
+                        COUNT(CASE WHEN status = 'error' THEN 1 END),
+                        COUNT(CASE WHEN status = 'skipped' THEN 1 END),
+                        COUNT(CASE WHEN verdict = 'warn' THEN 1 END),
+                        COUNT(CASE WHEN verdict = 'reject' THEN 1 END),
+                        COUNT(CASE WHEN time_unix IS NULL THEN 1 END),
                         MAX(time_unix), MAX(recorded_at)
-                 FROM frames WHERE night = ?1",
-                params![night],
-                |r| {
-                    Ok(NightCounts {
-                        frames: r.get(0)?,
-                        measured: r.get(1)?,
-                        errors: r.get(2)?,
-                        skipped: r.get(3)?,
-                        warned: r.get(4)?,
-                        rejected: r.get(5)?,
-                        undated: r.get(6)?,
-                        last_frame_time_unix: r.get(7)?,
-                        last_recorded_unix: r.get(8)?,
-                    })
-                },
+                 FROM frames WHERE night = ?1 AND (rig = ?2 OR ?2 IS NULL)",
+                values![night, self.scope()],
             )
-            .map_err(|e| self.err(e))
+            .map_err(|e| self.err(e))?;
+        let counts = || -> Result<NightCounts, DbError> {
+            Ok(NightCounts {
+                frames: r.get(0)?,
+                measured: r.get(1)?,
+                errors: r.get(2)?,
+                skipped: r.get(3)?,
+                warned: r.get(4)?,
+                rejected: r.get(5)?,
+                undated: r.get(6)?,
+                last_frame_time_unix: r.get(7)?,
+                last_recorded_unix: r.get(8)?,
+            })
+        };
+        counts().map_err(|e| self.err(e))
     }
 
     /// The first column of every row of a query, as text.
-    fn strings(&self, sql: &str, values: impl rusqlite::Params) -> Result<Vec<String>, StoreError> {
-        let mut st = self.conn.prepare(sql).map_err(|e| self.err(e))?;
-        let rows = st
-            .query_map(values, |r| r.get(0))
-            .map_err(|e| self.err(e))?;
-        rows.collect::<Result<_, _>>().map_err(|e| self.err(e))
+    fn strings(&self, sql: &str, values: &[super::db::Value]) -> Result<Vec<String>, StoreError> {
+        self.rows(sql, values)?
+            .iter()
+            .map(|r| r.get(0))
+            .collect::<Result<_, _>>()
+            .map_err(|e| self.err(e))
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    #[test]
+    fn nights_before_counts_back_across_months() {
+        assert_eq!(
+            super::nights_before("2026-03-02", 3).as_deref(),
+            Some("2026-02-27")
+        );
+        assert_eq!(super::nights_before("not a date", 3), None);
     }
 }

@@ -187,7 +187,9 @@ fn alert_identity(night: &str, alert_kind: &str, a: &crate::contract::AnomalyRec
 /// store's folder, the reports and the lists.
 pub(super) fn written_folders(c: &Config) -> Vec<PathBuf> {
     let mut folders = c.watch.folders.clone();
-    folders.extend(c.store.path.parent().map(Path::to_path_buf));
+    if c.store.url.is_none() {
+        folders.extend(c.store.path.parent().map(Path::to_path_buf));
+    }
     folders.push(crate::morning::report_folder(c));
     folders.extend(crate::lists::Lists::from_config(c).map(|l| l.folder));
     folders
@@ -258,7 +260,7 @@ fn summary_if_due(store: &Store, config: &Config, now: f64) {
         return;
     }
     // The store is locked by the caller; prepare reads it through a second connection.
-    let result = Store::open(&config.store.path)
+    let result = Store::open_configured(config)
         .map_err(crate::morning::MorningError::from)
         .and_then(|mut s| {
             let p = crate::morning::prepare(&mut s, config, &night)?;

@@ -156,8 +156,8 @@ async fn daemon(
         })?;
     }
     // One daemon per store: a second one is refused, naming the first.
-    let _claim = crate::store::claim(&config.store.path)?;
-    let mut store = Store::open_for_rig(&config.store.path, &config.rig.name)?;
+    let _claim = crate::store::claim_configured(&config)?;
+    let mut store = Store::open_configured(&config)?;
     settle_interrupted(&mut store, wall.now_unix())?;
     // The status page: a failure to serve it costs the page, never the watching.
     let _web = match web::start(&config, wall.clone()) {
@@ -292,7 +292,7 @@ async fn daemon(
             .map(|f| shown(f))
             .collect::<Vec<_>>()
             .join(", "),
-        shown(&config.store.path),
+        crate::store::Location::from_config(&config.store),
         mail_state(&config),
         tracker.len(),
         workers

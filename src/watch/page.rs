@@ -109,9 +109,14 @@ pub fn run(config: Config, clock: Arc<dyn Clock>, state: Arc<PageState>) {
         let now = clock.now_unix();
         let looked_at = state.looked_at(now);
         if store.is_none() {
-            store = Store::open_read_only(&config.store.path)
-                .map_err(|e| tracing::warn!("status page: {e}"))
-                .ok();
+            store = match &config.store.url {
+                None => Store::open_read_only(&config.store.path),
+                // A shared database has no read-only file to open: the page's own
+                // connection only ever reads.
+                Some(_) => Store::open_configured(&config),
+            }
+            .map_err(|e| tracing::warn!("status page: {e}"))
+            .ok();
         }
         if let Some(s) = &store {
             match build(

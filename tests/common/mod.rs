@@ -3,6 +3,7 @@
 #![allow(dead_code)]
 
 pub mod daemon;
+pub mod postgres;
 
 use std::path::{Path, PathBuf};
 use std::process::Command;

@@ -1,0 +1,587 @@
+//! The store's one connection: an SQLite file or a PostgreSQL server behind the same few
+//! calls. Statements are written once, in the SQL both understand (`?N` parameters,
+//! `IS NOT DISTINCT FROM`, `ON CONFLICT`, `RETURNING`, `NULLS FIRST`); PostgreSQL gets
+//! `$N`. Values cross as one small type that adapts to the column it meets, since
+//! PostgreSQL, unlike SQLite, is strict about a parameter's type.
+
+use std::cell::RefCell;
+use std::collections::HashMap;
+
+use bytes::BytesMut;
+use postgres::types::{to_sql_checked, FromSql, IsNull, ToSql, Type};
+
+/// One value in or out of a statement.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Value {
+    Null,
+    Int(i64),
+    Real(f64),
+    Text(String),
+    Blob(Vec<u8>),
+}
+
+#[derive(Debug, thiserror::Error)]
+pub enum DbError {
+    #[error("{0}")]
+    Sqlite(#[from] rusqlite::Error),
+    #[error("{}", postgres_message(.0))]
+    Postgres(#[from] postgres::Error),
+    #[error("column {index} holds {found:?}, not {expected}")]
+    Type {
+        index: usize,
+        expected: &'static str,
+        found: Value,
+    },
+    #[error("the query returned no row")]
+    NoRow,
+    #[error("the connection to the database server broke")]
+    Broken,
+    #[error("{0}")]
+    Other(String),
+}
+
+/// PostgreSQL's own words where the server sent them (the client's Display says only "db error").
+fn postgres_message(e: &postgres::Error) -> String {
+    match e.as_db_error() {
+        Some(db) => format!("{}: {}", db.severity(), db.message()),
+        None => e.to_string(),
+    }
+}
+
+impl DbError {
+    /// Whether the server could not be reached or the connection broke (the store is
+    /// away), rather than a statement failing.
+    pub fn is_connection(&self) -> bool {
+        match self {
+            // Classes 08 (connection exception) and 57 (operator intervention: a server
+            // shutting down or ending the session) are the server going away.
+            DbError::Postgres(e) => match e.as_db_error() {
+                // No answer from the server: the client's own failures to connect or to
+                // talk (an I/O error, a closed connection, a timeout), not a value it
+                // could not convert.
+                None => {
+                    let text = e.to_string();
+                    e.is_closed()
+                        || std::error::Error::source(e).is_some_and(|s| s.is::<std::io::Error>())
+                        || text.starts_with("error connecting")
+                        || text.starts_with("error communicating")
+                        || text.contains("timeout")
+                }
+                Some(db) => e.is_closed() || matches!(&db.code().code()[..2], "08" | "57"),
+            },
+            DbError::Broken => true,
+            _ => false,
+        }
+    }
+}
+
+/// Anything that can be a statement's parameter.
+pub trait IntoValue {
+    fn to_value(&self) -> Value;
+}
+
+impl<T: IntoValue + ?Sized> IntoValue for &T {
+    fn to_value(&self) -> Value {
+        (**self).to_value()
+    }
+}
+impl<T: IntoValue> IntoValue for Option<T> {
+    fn to_value(&self) -> Value {
+        self.as_ref().map_or(Value::Null, IntoValue::to_value)
+    }
+}
+impl IntoValue for Value {
+    fn to_value(&self) -> Value {
+        self.clone()
+    }
+}
+impl IntoValue for str {
+    fn to_value(&self) -> Value {
+        Value::Text(self.to_string())
+    }
+}
+impl IntoValue for String {
+    fn to_value(&self) -> Value {
+        Value::Text(self.clone())
+    }
+}
+impl IntoValue for [u8] {
+    fn to_value(&self) -> Value {
+        Value::Blob(self.to_vec())
+    }
+}
+impl IntoValue for Vec<u8> {
+    fn to_value(&self) -> Value {
+        Value::Blob(self.clone())
+    }
+}
+impl IntoValue for f64 {
+    fn to_value(&self) -> Value {
+        Value::Real(*self)
+    }
+}
+impl IntoValue for bool {
+    fn to_value(&self) -> Value {
+        Value::Int(i64::from(*self))
+    }
+}
+macro_rules! int_values {
+    ($($t:ty),*) => {$(
+        impl IntoValue for $t {
+            fn to_value(&self) -> Value {
+                Value::Int(*self as i64)
+            }
+        }
+    )*};
+}
+int_values!(i64, i32, u32, u64, usize);
+
+/// A statement's parameters: `values![a, b]` borrows each and turns it into a [`Value`].
+macro_rules! values {
+    ($($v:expr),* $(,)?) => {
+        &[$($crate::store::db::IntoValue::to_value(&$v)),*][..]
+    };
+}
+pub(crate) use values;
+
+/// What a column's value reads as.
+pub trait FromValue: Sized {
+    const NAME: &'static str;
+    fn from_value(v: &Value) -> Option<Self>;
+}
+
+impl<T: FromValue> FromValue for Option<T> {
+    const NAME: &'static str = T::NAME;
+    fn from_value(v: &Value) -> Option<Self> {
+        match v {
+            Value::Null => Some(None),
+            v => T::from_value(v).map(Some),
+        }
+    }
+}
+impl FromValue for i64 {
+    const NAME: &'static str = "an integer";
+    fn from_value(v: &Value) -> Option<Self> {
+        match v {
+            Value::Int(i) => Some(*i),
+            _ => None,
+        }
+    }
+}
+impl FromValue for f64 {
+    const NAME: &'static str = "a number";
+    fn from_value(v: &Value) -> Option<Self> {
+        match v {
+            Value::Real(f) => Some(*f),
+            Value::Int(i) => Some(*i as f64),
+            _ => None,
+        }
+    }
+}
+impl FromValue for bool {
+    const NAME: &'static str = "a truth value";
+    fn from_value(v: &Value) -> Option<Self> {
+        i64::from_value(v).map(|i| i != 0)
+    }
+}
+impl FromValue for String {
+    const NAME: &'static str = "text";
+    fn from_value(v: &Value) -> Option<Self> {
+        match v {
+            Value::Text(s) => Some(s.clone()),
+            _ => None,
+        }
+    }
+}
+impl FromValue for Vec<u8> {
+    const NAME: &'static str = "bytes";
+    fn from_value(v: &Value) -> Option<Self> {
+        match v {
+            Value::Blob(b) => Some(b.clone()),
+            _ => None,
+        }
+    }
+}
+
+/// One row of a result.
+#[derive(Debug, Clone)]
+pub struct Row(pub Vec<Value>);
+
+impl Row {
+    pub fn get<T: FromValue>(&self, index: usize) -> Result<T, DbError> {
+        let v = self.0.get(index).unwrap_or(&Value::Null);
+        T::from_value(v).ok_or_else(|| DbError::Type {
+            index,
+            expected: T::NAME,
+            found: v.clone(),
+        })
+    }
+}
+
+impl rusqlite::ToSql for Value {
+    fn to_sql(&self) -> rusqlite::Result<rusqlite::types::ToSqlOutput<'_>> {
+        use rusqlite::types::{ToSqlOutput, ValueRef};
+        Ok(ToSqlOutput::Borrowed(match self {
+            Value::Null => ValueRef::Null,
+            Value::Int(i) => ValueRef::Integer(*i),
+            Value::Real(f) => ValueRef::Real(*f),
+            Value::Text(s) => ValueRef::Text(s.as_bytes()),
+            Value::Blob(b) => ValueRef::Blob(b),
+        }))
+    }
+}
+
+fn from_sqlite(v: rusqlite::types::ValueRef<'_>) -> Value {
+    use rusqlite::types::ValueRef;
+    match v {
+        ValueRef::Null => Value::Null,
+        ValueRef::Integer(i) => Value::Int(i),
+        ValueRef::Real(f) => Value::Real(f),
+        ValueRef::Text(t) => Value::Text(String::from_utf8_lossy(t).into_owned()),
+        ValueRef::Blob(b) => Value::Blob(b.to_vec()),
+    }
+}
+
+type BoxError = Box<dyn std::error::Error + Sync + Send>;
+
+impl ToSql for Value {
+    /// Written as the type the server expects at this place: an integer where a number
+    /// goes is sent as one, a flag as a boolean, and so on.
+    fn to_sql(&self, ty: &Type, out: &mut BytesMut) -> Result<IsNull, BoxError> {
+        let mismatch = || -> BoxError { format!("{self:?} cannot be sent as {ty}").into() };
+        match (self, ty) {
+            (Value::Null, _) => Ok(IsNull::Yes),
+            (Value::Int(i), &Type::INT8) => i.to_sql(ty, out),
+            (Value::Int(i), &Type::INT4) => i32::try_from(*i)?.to_sql(ty, out),
+            (Value::Int(i), &Type::INT2) => i16::try_from(*i)?.to_sql(ty, out),
+            (Value::Int(i), &Type::FLOAT8) => (*i as f64).to_sql(ty, out),
+            (Value::Int(i), &Type::FLOAT4) => (*i as f32).to_sql(ty, out),
+            (Value::Int(i), &Type::BOOL) => (*i != 0).to_sql(ty, out),
+            (Value::Int(i), &Type::TEXT | &Type::VARCHAR) => i.to_string().to_sql(ty, out),
+            (Value::Real(f), &Type::FLOAT8) => f.to_sql(ty, out),
+            (Value::Real(f), &Type::FLOAT4) => (*f as f32).to_sql(ty, out),
+            (Value::Real(f), &Type::INT8) if f.fract() == 0.0 && f.abs() < 9.0e18 => {
+                (*f as i64).to_sql(ty, out)
+            }
+            (Value::Real(f), &Type::TEXT | &Type::VARCHAR) => f.to_string().to_sql(ty, out),
+            (Value::Text(s), &Type::TEXT | &Type::VARCHAR | &Type::BPCHAR | &Type::NAME) => {
+                s.as_str().to_sql(ty, out)
+            }
+            (Value::Text(s), &Type::UNKNOWN) => s.as_str().to_sql(&Type::TEXT, out),
+            (Value::Blob(b), &Type::BYTEA) => b.as_slice().to_sql(ty, out),
+            _ => Err(mismatch()),
+        }
+    }
+
+    fn accepts(_: &Type) -> bool {
+        true
+    }
+
+    to_sql_checked!();
+}
+
+impl<'a> FromSql<'a> for Value {
+    fn from_sql(ty: &Type, raw: &'a [u8]) -> Result<Self, BoxError> {
+        Ok(match *ty {
+            Type::INT8 => Value::Int(i64::from_sql(ty, raw)?),
+            Type::INT4 => Value::Int(i32::from_sql(ty, raw)?.into()),
+            Type::INT2 => Value::Int(i16::from_sql(ty, raw)?.into()),
+            Type::BOOL => Value::Int(bool::from_sql(ty, raw)?.into()),
+            Type::FLOAT8 => Value::Real(f64::from_sql(ty, raw)?),
+            Type::FLOAT4 => Value::Real(f32::from_sql(ty, raw)?.into()),
+            Type::BYTEA => Value::Blob(<&[u8]>::from_sql(ty, raw)?.to_vec()),
+            _ => Value::Text(String::from_sql(ty, raw)?),
+        })
+    }
+
+    fn from_sql_null(_: &Type) -> Result<Self, BoxError> {
+        Ok(Value::Null)
+    }
+
+    fn accepts(ty: &Type) -> bool {
+        matches!(
+            *ty,
+            Type::INT8
+                | Type::INT4
+                | Type::INT2
+                | Type::BOOL
+                | Type::FLOAT8
+                | Type::FLOAT4
+                | Type::BYTEA
+                | Type::TEXT
+                | Type::VARCHAR
+                | Type::BPCHAR
+                | Type::NAME
+        )
+    }
+}
+
+/// `?N` written as PostgreSQL's `$N` (quoted text left alone).
+fn postgres_placeholders(sql: &str) -> String {
+    let mut out = String::with_capacity(sql.len());
+    let mut quoted = false;
+    let mut chars = sql.chars().peekable();
+    while let Some(c) = chars.next() {
+        match c {
+            '\'' => quoted = !quoted,
+            '?' if !quoted && chars.peek().is_some_and(|d| d.is_ascii_digit()) => {
+                out.push('$');
+                continue;
+            }
+            _ => {}
+        }
+        out.push(c);
+    }
+    out
+}
+
+/// A PostgreSQL connection that comes back after the server went away: a broken
+/// connection is opened again at the next call, though never inside a transaction (its
+/// first statements went with the old connection).
+pub struct PgConn {
+    config: postgres::Config,
+    client: Option<postgres::Client>,
+    statements: HashMap<String, postgres::Statement>,
+    in_transaction: bool,
+}
+
+impl PgConn {
+    fn client(&mut self) -> Result<&mut postgres::Client, DbError> {
+        let broken = self.client.as_ref().is_none_or(|c| c.is_closed());
+        if broken {
+            if self.in_transaction {
+                return Err(DbError::Broken);
+            }
+            self.statements.clear();
+            self.client = None;
+            self.client = Some(self.config.connect(postgres::NoTls)?);
+        }
+        self.client.as_mut().ok_or(DbError::Broken)
+    }
+
+    fn statement(&mut self, sql: &str) -> Result<postgres::Statement, DbError> {
+        if let Some(st) = self.statements.get(sql) {
+            return Ok(st.clone());
+        }
+        let st = self.client()?.prepare(&postgres_placeholders(sql))?;
+        self.statements.insert(sql.to_string(), st.clone());
+        Ok(st)
+    }
+}
+
+/// Run `f` where the PostgreSQL client may block: its calls start a runtime of their own,
+/// which cannot happen on a thread already inside one (the daemon's start-up), so there
+/// the call runs on a thread of its own.
+fn off_runtime<T: Send>(f: impl FnOnce() -> T + Send) -> T {
+    if tokio::runtime::Handle::try_current().is_err() {
+        return f();
+    }
+    std::thread::scope(|s| {
+        s.spawn(f)
+            .join()
+            .unwrap_or_else(|p| std::panic::resume_unwind(p))
+    })
+}
+
+/// Which kind of server a store is.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Kind {
+    Sqlite,
+    Postgres,
+}
+
+pub enum Conn {
+    Sqlite(rusqlite::Connection),
+    Postgres(Box<RefCell<PgConn>>),
+}
+
+impl Conn {
+    /// Connect to PostgreSQL (the first connection; later ones follow a broken one).
+    pub fn postgres(config: postgres::Config) -> Result<Self, DbError> {
+        let client = config.connect(postgres::NoTls)?;
+        Ok(Conn::Postgres(Box::new(RefCell::new(PgConn {
+            config,
+            client: Some(client),
+            statements: HashMap::new(),
+            in_transaction: false,
+        }))))
+    }
+
+    pub fn kind(&self) -> Kind {
+        match self {
+            Conn::Sqlite(_) => Kind::Sqlite,
+            Conn::Postgres(_) => Kind::Postgres,
+        }
+    }
+
+    fn with_pg<T: Send>(
+        pg: &RefCell<PgConn>,
+        f: impl FnOnce(&mut PgConn) -> Result<T, DbError> + Send,
+    ) -> Result<T, DbError> {
+        let mut pg = pg.borrow_mut();
+        let pg: &mut PgConn = &mut pg;
+        off_runtime(move || {
+            let result = f(pg);
+            // A connection the server ended is not used again (its client may not know
+            // yet): the next call opens a new one.
+            if result.as_ref().is_err_and(DbError::is_connection) {
+                pg.client = None;
+            }
+            result
+        })
+    }
+
+    /// Run one statement; the number of rows it changed.
+    pub fn execute(&self, sql: &str, params: &[Value]) -> Result<u64, DbError> {
+        match self {
+            Conn::Sqlite(c) => {
+                let mut st = c.prepare_cached(sql)?;
+                Ok(st.execute(rusqlite::params_from_iter(params))? as u64)
+            }
+            Conn::Postgres(pg) => Self::with_pg(pg, |pg| {
+                let st = pg.statement(sql)?;
+                let refs: Vec<&(dyn ToSql + Sync)> =
+                    params.iter().map(|v| v as &(dyn ToSql + Sync)).collect();
+                Ok(pg.client()?.execute(&st, &refs)?)
+            }),
+        }
+    }
+
+    /// Every row of a query.
+    pub fn query(&self, sql: &str, params: &[Value]) -> Result<Vec<Row>, DbError> {
+        match self {
+            Conn::Sqlite(c) => {
+                let mut st = c.prepare_cached(sql)?;
+                let n = st.column_count();
+                let mut rows = st.query(rusqlite::params_from_iter(params))?;
+                let mut out = Vec::new();
+                while let Some(r) = rows.next()? {
+                    let mut row = Vec::with_capacity(n);
+                    for i in 0..n {
+                        row.push(from_sqlite(r.get_ref(i)?));
+                    }
+                    out.push(Row(row));
+                }
+                Ok(out)
+            }
+            Conn::Postgres(pg) => Self::with_pg(pg, |pg| {
+                let st = pg.statement(sql)?;
+                let refs: Vec<&(dyn ToSql + Sync)> =
+                    params.iter().map(|v| v as &(dyn ToSql + Sync)).collect();
+                let rows = pg.client()?.query(&st, &refs)?;
+                let rows = rows
+                    .iter()
+                    .map(|r| {
+                        (0..r.len())
+                            .map(|i| r.try_get::<_, Value>(i))
+                            .collect::<Result<Vec<_>, _>>()
+                            .map(Row)
+                    })
+                    .collect::<Result<Vec<_>, _>>()?;
+                Ok(rows)
+            }),
+        }
+    }
+
+    /// The first row of a query, if there is one.
+    pub fn query_opt(&self, sql: &str, params: &[Value]) -> Result<Option<Row>, DbError> {
+        Ok(self.query(sql, params)?.into_iter().next())
+    }
+
+    /// The first row of a query that always returns one (an aggregate).
+    pub fn query_one(&self, sql: &str, params: &[Value]) -> Result<Row, DbError> {
+        self.query_opt(sql, params)?.ok_or(DbError::NoRow)
+    }
+
+    /// Statements without parameters, separated by semicolons.
+    pub fn batch(&self, sql: &str) -> Result<(), DbError> {
+        match self {
+            Conn::Sqlite(c) => Ok(c.execute_batch(sql)?),
+            Conn::Postgres(pg) => Self::with_pg(pg, |pg| {
+                // A transaction's statements stay on the connection that began it.
+                let ends = matches!(sql, "COMMIT" | "ROLLBACK");
+                let result = pg.client().and_then(|c| Ok(c.batch_execute(sql)?));
+                if sql == "BEGIN" && result.is_ok() {
+                    pg.in_transaction = true;
+                } else if ends {
+                    pg.in_transaction = false;
+                }
+                result
+            }),
+        }
+    }
+
+    /// Run `f` in one transaction: committed when it returns Ok, rolled back otherwise.
+    pub fn transaction<T, E: From<DbError>>(
+        &self,
+        f: impl FnOnce() -> Result<T, E>,
+    ) -> Result<T, E> {
+        self.batch("BEGIN")?;
+        match f() {
+            Ok(v) => {
+                if let Err(e) = self.batch("COMMIT") {
+                    let _ = self.batch("ROLLBACK");
+                    return Err(e.into());
+                }
+                Ok(v)
+            }
+            Err(e) => {
+                let _ = self.batch("ROLLBACK");
+                Err(e)
+            }
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn placeholders_become_dollars_outside_quotes() {
+        assert_eq!(
+            postgres_placeholders("SELECT '?1', x FROM t WHERE a = ?1 AND b IS ?12"),
+            "SELECT '?1', x FROM t WHERE a = $1 AND b IS $12"
+        );
+    }
+
+    #[test]
+    fn values_round_trip_through_sqlite() {
+        let c = Conn::Sqlite(rusqlite::Connection::open_in_memory().unwrap());
+        c.batch("CREATE TABLE t (i INTEGER, r REAL, s TEXT, b BLOB)")
+            .unwrap();
+        let blob = vec![0u8, 1, 255];
+        c.execute(
+            "INSERT INTO t VALUES (?1, ?2, ?3, ?4)",
+            values![7usize, 2.5, "x", blob],
+        )
+        .unwrap();
+        c.execute(
+            "INSERT INTO t VALUES (?1, ?2, ?3, ?4)",
+            values![None::<i64>, None::<f64>, None::<&str>, None::<Vec<u8>>],
+        )
+        .unwrap();
+        let rows = c
+            .query("SELECT i, r, s, b FROM t ORDER BY i NULLS LAST", &[])
+            .unwrap();
+        assert_eq!(rows[0].get::<i64>(0).unwrap(), 7);
+        assert_eq!(rows[0].get::<f64>(1).unwrap(), 2.5);
+        assert_eq!(rows[0].get::<String>(2).unwrap(), "x");
+        assert_eq!(rows[0].get::<Vec<u8>>(3).unwrap(), blob);
+        assert_eq!(rows[1].get::<Option<f64>>(1).unwrap(), None);
+        assert!(rows[1].get::<f64>(1).is_err());
+        // A failed transaction leaves nothing behind.
+        let failed: Result<(), DbError> = c.transaction(|| {
+            c.execute("DELETE FROM t", &[])?;
+            Err(DbError::NoRow)
+        });
+        assert!(failed.is_err());
+        assert_eq!(
+            c.query_one("SELECT COUNT(*) FROM t", &[])
+                .unwrap()
+                .get::<i64>(0)
+                .unwrap(),
+            2
+        );
+    }
+}

@@ -1,0 +1,346 @@
+//! The store's behaviour, one test body run against both back ends: an SQLite file and a
+//! PostgreSQL database of the test's own on the throwaway server `.ci/postgres` starts.
+
+mod common;
+
+use common::postgres::TestDatabase;
+use subwatch::record::{FrameRecord, FrameStatus, Identity, StarRecord};
+use subwatch::store::{Interrupted, Location, Recorded, Store};
+
+/// Where one run of a test body keeps its store, and what to clean up after it.
+enum Backend {
+    Sqlite(tempfile::TempDir),
+    Postgres(TestDatabase),
+}
+
+impl Backend {
+    fn location(&self) -> Location {
+        match self {
+            Backend::Sqlite(dir) => Location::File(dir.path().join("s.db")),
+            Backend::Postgres(db) => db.location(),
+        }
+    }
+}
+
+/// Run `body` once on SQLite and once on PostgreSQL, each with an empty store.
+fn on_both(body: impl Fn(&Location)) {
+    for backend in [
+        Backend::Sqlite(tempfile::tempdir().unwrap()),
+        Backend::Postgres(TestDatabase::new()),
+    ] {
+        body(&backend.location());
+    }
+}
+
+fn record(path: &str, size: u64) -> FrameRecord {
+    FrameRecord {
+        identity: Identity {
+            path: path.into(),
+            size,
+            mtime_ns: 7,
+        },
+        status: FrameStatus::Ok,
+        error: None,
+        night: Some("2026-03-14".into()),
+        target: Some("Kestrel Field A".into()),
+        filter: Some("L".into()),
+        time_unix: Some(1.0),
+        header: None,
+        metrics: None,
+        stars: Vec::new(),
+        rejected: Vec::new(),
+        wcs: None,
+        calibration: None,
+    }
+}
+
+fn star(x: f64, y: f64) -> StarRecord {
+    StarRecord {
+        x,
+        y,
+        flux: 1.0,
+        fwhm_px: 3.0,
+        eccentricity: 0.1,
+        snr: 50.0,
+        flux_err: 0.1,
+        hfr_px: None,
+        fwhm_major_px: 3.0,
+        fwhm_minor_px: 3.0,
+        angle_deg: 0.0,
+        psf_flux: 1.0,
+        psf_model: subwatch::measure::psf::PsfModel::Gaussian,
+        moffat_beta: None,
+        peak_adu: 1.0,
+        blended: true,
+        ra_deg: Some(150.25),
+        dec_deg: None,
+        rgb: Some([Some(1.0), None, Some(0.5)]),
+    }
+}
+
+#[test]
+fn a_path_holds_one_record_and_a_newer_file_replaces_it() {
+    on_both(|at| {
+        let mut s = Store::connect(at).unwrap();
+        let first = s.record_frame(&record("/a.fits", 10), 1.0).unwrap();
+        assert!(matches!(first, Recorded::New(_)), "{at}");
+        s.set_verdict(
+            first.id().unwrap(),
+            subwatch::rules::Verdict::Reject,
+            &["fwhm_high".into()],
+        )
+        .unwrap();
+        assert_eq!(
+            s.record_frame(&record("/a.fits", 10), 2.0).unwrap(),
+            Recorded::Already
+        );
+        let mut newer = record("/a.fits", 11);
+        newer.stars.push(star(1.0, 2.0));
+        let replaced = s.record_frame(&newer, 3.0).unwrap();
+        let Recorded::Replaced { id, earlier } = replaced else {
+            panic!("{at}: {replaced:?}")
+        };
+        assert_eq!(earlier.filter.as_deref(), Some("L"));
+        assert_eq!(s.night_counts("2026-03-14").unwrap().frames, 1);
+        // The earlier version's stars and verdict went with its record; the star's
+        // values come back as they went in.
+        let stars = s.frame_star_records(id).unwrap();
+        assert_eq!(stars.len(), 1, "{at}");
+        assert_eq!((stars[0].x, stars[0].y, stars[0].blended), (1.0, 2.0, true));
+        assert_eq!(stars[0].ra_deg, Some(150.25));
+        assert_eq!(stars[0].dec_deg, None);
+        assert_eq!(stars[0].rgb, Some([Some(1.0), None, Some(0.5)]));
+        assert_eq!(s.frames_without_verdict().unwrap().len(), 1);
+        // Reopening migrates nothing and keeps the row.
+        drop(s);
+        let s = Store::connect(at).unwrap();
+        assert_eq!(s.recorded_versions().unwrap()["/a.fits"], (11, 7));
+    });
+}
+
+#[test]
+fn a_file_in_the_reader_when_the_process_died_is_counted_not_retried_for_ever() {
+    on_both(|at| {
+        let mut s = Store::connect(at).unwrap();
+        let a = record("/a.fits", 10).identity;
+        s.begin_reading(&a, 1.0).unwrap();
+        // The process died; at each start the mark counts one more interruption.
+        for n in 1..=3 {
+            let left = s.take_interrupted().unwrap();
+            assert_eq!(
+                left,
+                vec![Interrupted {
+                    identity: a.clone(),
+                    interruptions: n
+                }],
+                "{at}"
+            );
+            s.begin_reading(&a, 2.0).unwrap();
+        }
+        // A changed file starts counting again; a record clears the mark.
+        let mut b = a.clone();
+        b.size = 12;
+        s.begin_reading(&b, 3.0).unwrap();
+        assert_eq!(s.take_interrupted().unwrap()[0].interruptions, 1);
+        s.record_frame(&record("/a.fits", 12), 4.0).unwrap();
+        assert!(s.take_interrupted().unwrap().is_empty());
+    });
+}
+
+#[test]
+fn each_rig_records_a_path_once_and_an_unnamed_store_becomes_the_rigs() {
+    on_both(|at| {
+        {
+            // Recorded before the rig had a name, with a file in the reader.
+            let mut s = Store::connect(at).unwrap();
+            s.record_frame(&record("/a.fits", 10), 1.0).unwrap();
+            s.begin_reading(&record("/b.fits", 10).identity, 1.0)
+                .unwrap();
+        }
+        let mut north = Store::connect_for_rig(at, "north pier").unwrap();
+        assert_eq!(north.rig(), "north pier");
+        assert_eq!(
+            north.record_frame(&record("/a.fits", 10), 2.0).unwrap(),
+            Recorded::Already,
+            "{at}: the unnamed record became the named rig's"
+        );
+        assert_eq!(north.take_interrupted().unwrap().len(), 1);
+        // Another rig of the site with a file at the same path records it for itself.
+        let mut south = Store::connect_for_rig(at, "south-pier").unwrap();
+        assert!(south.recorded_versions().unwrap().is_empty());
+        assert!(matches!(
+            south.record_frame(&record("/a.fits", 10), 3.0).unwrap(),
+            Recorded::New(_)
+        ));
+        assert!(south.take_interrupted().unwrap().is_empty());
+        assert_eq!(
+            south.record_frame(&record("/a.fits", 10), 4.0).unwrap(),
+            Recorded::Already
+        );
+        assert_eq!(north.recorded_versions().unwrap().len(), 1);
+        // Each rig reads its own night; a site handle reads both.
+        assert_eq!(north.night_counts("2026-03-14").unwrap().frames, 1);
+        let site = Store::connect_for_rig(at, "north pier")
+            .unwrap()
+            .whole_site();
+        assert_eq!(site.night_counts("2026-03-14").unwrap().frames, 2, "{at}");
+        assert_eq!(site.night_records("2026-03-14").unwrap().len(), 2);
+    });
+}
+
+#[test]
+fn verdicts_alerts_meta_outbox_and_catalogues_keep_what_was_stored() {
+    on_both(|at| {
+        let mut s = Store::connect(at).unwrap();
+        let mut night = vec![record("/a.fits", 1), record("/b.fits", 1)];
+        night[1].time_unix = Some(2.0);
+        night[1].filter = None;
+        for r in &night {
+            s.record_frame(r, 1.0).unwrap();
+        }
+        use subwatch::rules::Verdict;
+        let changed = s
+            .update_verdicts(&[
+                ("/a.fits".into(), Verdict::Ok, vec![]),
+                ("/b.fits".into(), Verdict::Warn, vec!["fwhm_high".into()]),
+            ])
+            .unwrap();
+        assert_eq!(changed.len(), 2, "{at}");
+        // The same verdicts again change nothing.
+        let again = s
+            .update_verdicts(&[("/a.fits".into(), Verdict::Ok, vec![])])
+            .unwrap();
+        assert!(again.is_empty(), "{at}");
+        let counts = s.night_counts("2026-03-14").unwrap();
+        assert_eq!((counts.frames, counts.measured, counts.warned), (2, 2, 1));
+        assert_eq!(counts.last_frame_time_unix, Some(2.0));
+        // A group with no filter is its own group, named by NULL, ordered first.
+        assert_eq!(
+            s.night_groups("2026-03-14").unwrap(),
+            vec![
+                (Some("Kestrel Field A".into()), None),
+                (Some("Kestrel Field A".into()), Some("L".into()))
+            ]
+        );
+        assert_eq!(
+            s.accepted_paths("2026-03-14", Some("Kestrel Field A"), None, true)
+                .unwrap(),
+            vec!["/b.fits".to_string()]
+        );
+        assert!(s
+            .accepted_paths("2026-03-14", Some("Kestrel Field A"), None, false)
+            .unwrap()
+            .is_empty());
+        assert_eq!(s.nights().unwrap(), vec!["2026-03-14".to_string()]);
+
+        s.add_alert("2026-03-14", "transient", "a flash", 10.0)
+            .unwrap();
+        assert!(s
+            .alert_exists("2026-03-14", "transient", "a flash")
+            .unwrap());
+        assert_eq!(
+            s.alert_history("2026-03-14", "transient").unwrap(),
+            (Some(10.0), 1)
+        );
+        s.set_meta("k", "one").unwrap();
+        s.set_meta("k", "two").unwrap();
+        assert_eq!(s.meta("k").unwrap().as_deref(), Some("two"));
+        assert_eq!(s.meta("nothing").unwrap(), None);
+
+        let msg = subwatch::store::OutboxMessage {
+            subject: "night".into(),
+            from: "a@example.org".into(),
+            to: vec!["b@example.org".into()],
+            bytes: vec![0, 159, 255, 10],
+        };
+        let id = s.enqueue_mail(&msg, 5.0).unwrap();
+        let due = s.due_mail(6.0).unwrap();
+        assert_eq!(due, vec![(id, msg.clone(), 0)], "{at}");
+        s.mail_failed(id, "refused", 100.0).unwrap();
+        assert_eq!(s.outbox_state().unwrap(), (1, Some("refused".into())));
+        assert!(s.due_mail(6.0).unwrap().is_empty());
+        s.mail_done(id, "sent", 101.0).unwrap();
+        assert_eq!(s.outbox_state().unwrap(), (0, None));
+
+        let src = |mag: f64| subwatch::night::CatalogSource {
+            ra_deg: 10.0,
+            dec_deg: 20.0,
+            mag: Some(mag),
+        };
+        s.save_catalog("T", "V", "2026-03-02", 19.0, &[(1.0, 2.0)], &[src(12.5)])
+            .unwrap();
+        // Saving a night again replaces it.
+        s.save_catalog("T", "V", "2026-03-02", 19.5, &[(1.0, 2.0)], &[src(12.0)])
+            .unwrap();
+        let v = s.earlier_catalogs("T", "V", "2026-03-05").unwrap();
+        assert_eq!(v.len(), 1);
+        assert_eq!((v[0].limit_mag, v[0].sources.len()), (19.5, 1));
+        assert_eq!(v[0].sources[0].mag, Some(12.0));
+        assert_eq!(v[0].footprint, vec![(1.0, 2.0)]);
+    });
+}
+
+#[test]
+fn both_back_ends_have_the_same_tables_columns_and_types() {
+    let sqlite = tempfile::tempdir().unwrap();
+    let postgres = TestDatabase::new();
+    let a = Store::connect(&Location::File(sqlite.path().join("s.db")))
+        .unwrap()
+        .schema()
+        .unwrap();
+    let b = Store::connect(&postgres.location())
+        .unwrap()
+        .schema()
+        .unwrap();
+    assert!(a.len() > 60, "{a:?}");
+    assert_eq!(a, b);
+}
+
+#[test]
+fn a_daemon_claims_its_rig_in_a_shared_database_and_a_second_is_refused() {
+    let db = TestDatabase::new();
+    let at = db.location();
+    let first = subwatch::store::claim_rig(&at, "north").unwrap();
+    let refused = subwatch::store::claim_rig(&at, "north")
+        .err()
+        .expect("a second claim of the rig is refused");
+    assert!(
+        refused
+            .to_string()
+            .contains(&format!("process {} on", std::process::id())),
+        "{refused}"
+    );
+    assert!(subwatch::store::rig_daemon(&at, "north").is_some());
+    // Another rig of the site is free to start.
+    let _south = subwatch::store::claim_rig(&at, "south").unwrap();
+    drop(first);
+    assert_eq!(subwatch::store::rig_daemon(&at, "north"), None);
+    assert!(subwatch::store::claim_rig(&at, "north").is_ok());
+}
+
+#[test]
+fn a_broken_connection_is_opened_again_at_the_next_call() {
+    let db = TestDatabase::new();
+    let mut s = Store::connect(&db.location()).unwrap();
+    s.record_frame(&record("/a.fits", 1), 1.0).unwrap();
+    // The server ends every connection to the database (as a restart would).
+    let mut admin =
+        postgres::Client::connect(&common::postgres::server(), postgres::NoTls).unwrap();
+    let name = db.url.rsplit('/').next().unwrap().to_string();
+    admin
+        .execute(
+            "SELECT pg_terminate_backend(pid) FROM pg_stat_activity WHERE datname = $1",
+            &[&name],
+        )
+        .unwrap();
+    // The first call after may see the broken connection; the one after works.
+    let first = s.night_counts("2026-03-14");
+    if let Err(e) = &first {
+        assert!(e.is_unreachable(), "{e}");
+    }
+    assert_eq!(s.night_counts("2026-03-14").unwrap().frames, 1);
+    assert!(matches!(
+        s.record_frame(&record("/b.fits", 1), 2.0).unwrap(),
+        Recorded::New(_)
+    ));
+}
