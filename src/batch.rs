@@ -65,6 +65,7 @@ pub fn analyse_records(
         };
         let judged = judge_night(&frames, &earlier, rules, site);
         doc.limits.push(GroupLimits {
+            rig: None,
             target: Some(target.clone()).filter(|t| !t.is_empty()),
             filter: Some(filter.clone()).filter(|t| !t.is_empty()),
             limits: judged.limits.clone(),

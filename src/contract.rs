@@ -145,6 +145,28 @@ impl NightDocument {
         for f in self.frames.iter_mut().chain(&mut self.calibration) {
             f.rig = rig.clone();
         }
+        for l in &mut self.limits {
+            l.rig = rig.clone();
+        }
+    }
+
+    /// Add another rig's night (a site's document): its frames, anomalies and limits,
+    /// and its calibration notes named by its rig.
+    pub fn append(&mut self, other: NightDocument) {
+        let rig = other
+            .frames
+            .iter()
+            .chain(&other.calibration)
+            .find_map(|f| f.rig.clone());
+        self.frames.extend(other.frames);
+        self.anomalies.extend(other.anomalies);
+        self.limits.extend(other.limits);
+        self.calibration.extend(other.calibration);
+        self.calibration_notes
+            .extend(other.calibration_notes.into_iter().map(|n| match &rig {
+                Some(r) => format!("{r}: {n}"),
+                None => n,
+            }));
     }
 }
 
@@ -163,6 +185,8 @@ impl Serialize for NightDocument {
 /// The limits one target-and-filter group was judged against.
 #[derive(Debug, Clone)]
 pub struct GroupLimits {
+    /// The rig whose group this is, where it is named.
+    pub rig: Option<String>,
     pub target: Option<String>,
     pub filter: Option<String>,
     pub limits: Vec<crate::rules::Limit>,

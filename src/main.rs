@@ -46,6 +46,26 @@ enum CatalogueAction {
 }
 
 #[derive(Subcommand)]
+enum StoreAction {
+    /// Move an SQLite store into a PostgreSQL database a site's rigs share: every row, in
+    /// one transaction, verified by counting each table on both sides.
+    Copy {
+        /// The SQLite store file.
+        #[arg(long)]
+        from: PathBuf,
+        /// The database: postgresql://USER@HOST:PORT/DATABASE
+        #[arg(long)]
+        to: String,
+        /// The file holding the database password (this user's alone: mode 600).
+        #[arg(long)]
+        password_file: Option<PathBuf>,
+        /// Name the rig whose frames these are, where the store was kept without one.
+        #[arg(long)]
+        rig: Option<String>,
+    },
+}
+
+#[derive(Subcommand)]
 enum Command {
     /// Measure frames: FWHM, eccentricity, background, noise, star count, SNR.
     Measure(commands::measure::MeasureArgs),
@@ -107,6 +127,10 @@ enum Command {
         /// Write the summary files and mail the summary (to a .eml file without a server).
         #[arg(long)]
         send: bool,
+        /// Every rig of the site that shares this store, not only this one: each frame
+        /// names its rig, and the summary has a group per rig, target and filter.
+        #[arg(long)]
+        site: bool,
     },
     /// Deliver the mail waiting in the outbox (it is retried with growing waits).
     Outbox {
@@ -168,6 +192,11 @@ enum Command {
     Catalogue {
         #[command(subcommand)]
         action: CatalogueAction,
+    },
+    /// The store: `copy` moves an SQLite store into a shared PostgreSQL database.
+    Store {
+        #[command(subcommand)]
+        action: StoreAction,
     },
     /// Read one file for another subwatch process (request on stdin, record on stdout).
     #[command(name = "read-worker", hide = true)]
@@ -237,7 +266,17 @@ fn run(cli: Cli) -> Result<ExitCode> {
             json,
             all,
             send,
-        } => night::report(&config.path, night, json, all, send),
+            site,
+        } => night::report(
+            &config.path,
+            night,
+            night::ReportOptions {
+                json,
+                all,
+                send,
+                site,
+            },
+        ),
         Command::Demo {
             out,
             page_port,
@@ -271,5 +310,14 @@ fn run(cli: Cli) -> Result<ExitCode> {
             action: CatalogueAction::Import { config, force },
         } => commands::catalogue::import(&config.path, force),
         Command::Render(args) => render::frame(args),
+        Command::Store {
+            action:
+                StoreAction::Copy {
+                    from,
+                    to,
+                    password_file,
+                    rig,
+                },
+        } => commands::store::copy(&from, &to, password_file, rig.as_deref()),
     }
 }

@@ -55,7 +55,11 @@ pub fn settings(c: &Config) -> report::Settings {
 
 /// Build the night's summary and write its HTML (images inside as data URIs) and CSV.
 pub fn prepare(store: &mut Store, c: &Config, night: &str) -> Result<Prepared, MorningError> {
-    let judged = judge_night(store, c, night)?;
+    let judged = if c.mail.summary_of_site {
+        judge_site(store, c, night)?
+    } else {
+        judge_night(store, c, night)?
+    };
     write_files(
         judged.doc,
         night,
@@ -99,6 +103,38 @@ pub fn judge_night(store: &mut Store, c: &Config, night: &str) -> Result<Rejudge
         }
     }
     Ok(Rejudged { doc, changed })
+}
+
+/// Judge every rig's frames of a recorded night (a site's summary): this daemon's rig as
+/// [`judge_night`] does, its verdicts kept; every other rig's by the same rules without
+/// storing anything (each rig's own daemon keeps its verdicts and catalogues). Each
+/// frame names its rig.
+pub fn judge_site(store: &mut Store, c: &Config, night: &str) -> Result<Rejudged, MorningError> {
+    let mut site = NightDocument::default();
+    let mut changed = Vec::new();
+    for rig in store.night_rigs(night)? {
+        let doc = if rig == c.rig.name {
+            let own = judge_night(store, c, night)?;
+            changed = own.changed;
+            own.doc
+        } else {
+            store.as_rig(&rig, |s| -> Result<NightDocument, MorningError> {
+                let records = s.night_records(night)?;
+                let mut doc = crate::batch::analyse_records(
+                    &records,
+                    &c.rule_specs(),
+                    c.site_position(),
+                    crate::batch::Catalogues::Read(s),
+                    &c.calibration.settings,
+                )?;
+                crate::batch::cross_match(&mut doc, &c.catalogue)?;
+                doc.set_rig(&rig);
+                Ok(doc)
+            })?
+        };
+        site.append(doc);
+    }
+    Ok(Rejudged { doc: site, changed })
 }
 
 /// How many cutouts the mail carries (the most interesting anomalies first); the report

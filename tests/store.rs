@@ -344,3 +344,74 @@ fn a_broken_connection_is_opened_again_at_the_next_call() {
         Recorded::New(_)
     ));
 }
+
+#[test]
+fn one_daemon_of_a_site_takes_a_lease_and_a_dead_holders_lease_runs_out() {
+    on_both(|at| {
+        let a = Store::connect_for_rig(at, "north").unwrap();
+        let b = Store::connect_for_rig(at, "south").unwrap();
+        let key = "summary:2026-03-14";
+        assert!(a.take_lease(key, "north", 100.0, 600.0).unwrap(), "{at}");
+        assert!(!b.take_lease(key, "south", 200.0, 600.0).unwrap());
+        assert!(!a.take_lease(key, "north again", 300.0, 600.0).unwrap());
+        // North died holding it: once its time ran out, south takes it.
+        assert!(b.take_lease(key, "south", 701.0, 600.0).unwrap());
+        assert!(!a.take_lease(key, "north", 702.0, 600.0).unwrap());
+        b.finish_lease(key, "south", 710.0).unwrap();
+        // Done is done, however long after.
+        assert!(!a.take_lease(key, "north", 1.0e9, 600.0).unwrap());
+        // Given back undone, it is free at once.
+        assert!(a.take_lease("other", "north", 1.0, 600.0).unwrap());
+        a.release_lease("other").unwrap();
+        assert!(b.take_lease("other", "south", 2.0, 600.0).unwrap());
+    });
+}
+
+#[test]
+fn an_sqlite_store_copied_into_postgresql_reads_the_same_and_is_copied_once() {
+    let dir = tempfile::tempdir().unwrap();
+    let db = dir.path().join("s.db");
+    {
+        let mut s = Store::open_for_rig(&db, "north").unwrap();
+        for (i, path) in ["/a.fits", "/b.fits", "/c.fits"].iter().enumerate() {
+            let mut r = record(path, 10 + i as u64);
+            r.stars = (0..70).map(|k| star(k as f64, i as f64)).collect();
+            s.record_frame(&r, 1.0).unwrap();
+        }
+        s.add_alert("2026-03-14", "transient", "a flash", 10.0)
+            .unwrap();
+        s.set_meta("summary:2026-03-14", "sent").unwrap();
+        s.save_catalog("T", "V", "2026-03-14", 19.0, &[], &[])
+            .unwrap();
+    }
+    let pg = TestDatabase::new();
+    let copied = subwatch::store::copy(&db, &pg.location()).unwrap();
+    let n = |t: &str| copied.tables.iter().find(|(name, _)| name == t).unwrap().1;
+    assert_eq!(
+        (n("frames"), n("stars"), n("alerts"), n("catalog_nights")),
+        (3, 210, 1, 1)
+    );
+    let sqlite = Store::open_for_rig(&db, "north").unwrap();
+    let shared = Store::connect_for_rig(&pg.location(), "north").unwrap();
+    let read = |s: &Store| {
+        let mut r = s.night_records("2026-03-14").unwrap();
+        r.sort_by(|a, b| a.identity.path.cmp(&b.identity.path));
+        r.iter()
+            .map(|f| (f.identity.clone(), f.stars.len(), f.stars[5].x))
+            .collect::<Vec<_>>()
+    };
+    assert_eq!(read(&sqlite), read(&shared));
+    assert_eq!(
+        shared.meta("summary:2026-03-14").unwrap().as_deref(),
+        Some("sent")
+    );
+    // A second copy of the same rig is refused, and adds nothing.
+    let again = subwatch::store::copy(&db, &pg.location()).unwrap_err();
+    assert!(
+        again
+            .to_string()
+            .contains("already holds 3 frame(s) of rig 'north'"),
+        "{again}"
+    );
+    assert_eq!(shared.night_counts("2026-03-14").unwrap().frames, 3);
+}

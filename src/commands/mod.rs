@@ -8,3 +8,4 @@ pub mod measure;
 pub mod night;
 pub mod render;
 pub mod sky;
+pub mod store;

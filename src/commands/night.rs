@@ -100,14 +100,30 @@ pub fn night_label(text: &str) -> Result<String> {
     }
 }
 
+/// What `subwatch report` is asked for.
+pub struct ReportOptions {
+    /// The night document as JSON.
+    pub json: bool,
+    /// Every frame and cosmic-ray hit in the text.
+    pub all: bool,
+    /// Write the files and mail the summary.
+    pub send: bool,
+    /// Every rig sharing the store, not only this one.
+    pub site: bool,
+}
+
 /// `subwatch report`.
 pub fn report(
     config: &std::path::Path,
     night: Option<String>,
-    json: bool,
-    all: bool,
-    send: bool,
+    options: ReportOptions,
 ) -> Result<ExitCode> {
+    let ReportOptions {
+        json,
+        all,
+        send,
+        site,
+    } = options;
     let night = night.as_deref().map(night_label).transpose()?;
     let cfg = subwatch::config::load(config)?;
     crate::commands::catalogue::prepare(&cfg.catalogue)?;
@@ -123,7 +139,12 @@ pub fn report(
         );
     }
     let mut store = subwatch::store::Store::open_configured(&cfg)?;
-    if store.night_counts(&night)?.frames == 0 {
+    let frames = if site {
+        store.night_rigs(&night)?.len()
+    } else {
+        store.night_counts(&night)?.frames as usize
+    };
+    if frames == 0 {
         let known = store.nights()?;
         anyhow::bail!(
             "no frames of night {night} in the store {}{}",
@@ -134,7 +155,11 @@ pub fn report(
             }
         );
     }
-    let rejudged = subwatch::morning::judge_night(&mut store, &cfg, &night)?;
+    let rejudged = if site {
+        subwatch::morning::judge_site(&mut store, &cfg, &night)?
+    } else {
+        subwatch::morning::judge_night(&mut store, &cfg, &night)?
+    };
     tell_changes(&rejudged.changed);
     if !send {
         return print_night(

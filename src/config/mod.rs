@@ -14,7 +14,7 @@ use std::path::{Path, PathBuf};
 use lettre::message::Mailbox;
 
 pub use environment::check_secret_file;
-pub use read::{parse, parse_summary_time};
+pub use read::{parse, parse_summary_time, rig_name_ok};
 
 use crate::night::AnomalyKind;
 use crate::rules::RuleSpec;
@@ -214,6 +214,9 @@ pub struct MailConfig {
     pub from: Option<Mailbox>,
     pub to: Vec<Mailbox>,
     pub summary_time: Option<SummaryTime>,
+    /// The scheduled summary covers every rig sharing the store (`summary_of = "site"`),
+    /// sent by one daemon of the site, rather than this rig alone.
+    pub summary_of_site: bool,
     /// The user's explicit consent to send the password over a connection that is not
     /// encrypted (`security = "none"`).
     pub send_password_unencrypted: bool,

@@ -227,7 +227,8 @@ fn postgres_url_ok(url: &str) -> bool {
             .is_ok_and(|c| c.get_password().is_none())
 }
 
-fn rig_name_ok(s: &str) -> bool {
+/// A rig name: 1 to 64 letters, digits, spaces, dots, dashes or underscores.
+pub fn rig_name_ok(s: &str) -> bool {
     let t = s.trim();
     !t.is_empty()
         && t == s
@@ -617,6 +618,11 @@ pub fn parse(text: &str, base: &Path) -> Result<Config, Vec<ConfigProblem>> {
                 })
         }),
         send_password_unencrypted: r.flag("mail", "send_password_unencrypted", false),
+        summary_of_site: r.read("mail", "summary_of", false, |v| match v.as_str() {
+            Some("rig") => Ok(false),
+            Some("site") => Ok(true),
+            _ => Err("\"rig\" (this rig's frames) or \"site\" (every rig sharing the store; one daemon sends it)".to_string()),
+        }),
     };
     let alerts = AlertsConfig {
         enabled: r.flag("alerts", "enabled", true),

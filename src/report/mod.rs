@@ -214,17 +214,21 @@ pub fn local_clock(t_unix: f64, tz: Tz) -> Option<String> {
 
 /// Build the summary of a night document.
 pub fn summarise(night: &str, doc: &NightDocument, settings: Settings) -> Summary {
-    type Key = (Option<String>, Option<String>);
+    // A site's night (several rigs) has a group per rig, target and filter, each headed
+    // by its rig; one rig's night is headed as before.
+    type Key = (Option<String>, Option<String>, Option<String>);
     let mut groups: BTreeMap<Key, Vec<&NightFrameRecord>> = BTreeMap::new();
     for f in &doc.frames {
         groups
-            .entry((f.target.clone(), f.filter.clone()))
+            .entry((f.rig.clone(), f.target.clone(), f.filter.clone()))
             .or_default()
             .push(f);
     }
+    let rigs: std::collections::BTreeSet<&Option<String>> = groups.keys().map(|k| &k.0).collect();
+    let several_rigs = rigs.len() > 1;
     let groups = groups
         .into_iter()
-        .map(|((target, filter), mut frames)| {
+        .map(|((rig, target, filter), mut frames)| {
             frames.sort_by(|a, b| {
                 a.time_unix
                     .unwrap_or(f64::MAX)
@@ -234,10 +238,16 @@ pub fn summarise(night: &str, doc: &NightDocument, settings: Settings) -> Summar
             let limits = doc
                 .limits
                 .iter()
-                .find(|l| l.target == target && l.filter == filter)
+                .find(|l| l.rig == rig && l.target == target && l.filter == filter)
                 .map(|l| l.limits.clone())
                 .unwrap_or_default();
-            group(target, filter, &frames, limits, settings)
+            let heading = match (&rig, several_rigs) {
+                (Some(r), true) => {
+                    Some(format!("{r}: {}", target.as_deref().unwrap_or("no target")))
+                }
+                _ => target,
+            };
+            group(heading, filter, &frames, limits, settings)
         })
         .collect::<Vec<_>>();
     let mut notable: Vec<AnomalyRecord> = doc

@@ -369,6 +369,15 @@ impl PgConn {
     }
 }
 
+impl Drop for PgConn {
+    /// The client says goodbye to the server as it goes, which blocks: off any runtime.
+    fn drop(&mut self) {
+        if let Some(client) = self.client.take() {
+            off_runtime(move || drop(client));
+        }
+    }
+}
+
 /// Run `f` where the PostgreSQL client may block: its calls start a runtime of their own,
 /// which cannot happen on a thread already inside one (the daemon's start-up), so there
 /// the call runs on a thread of its own.
@@ -398,7 +407,7 @@ pub enum Conn {
 impl Conn {
     /// Connect to PostgreSQL (the first connection; later ones follow a broken one).
     pub fn postgres(config: postgres::Config) -> Result<Self, DbError> {
-        let client = config.connect(postgres::NoTls)?;
+        let client = off_runtime(|| config.connect(postgres::NoTls))?;
         Ok(Conn::Postgres(Box::new(RefCell::new(PgConn {
             config,
             client: Some(client),
@@ -445,6 +454,34 @@ impl Conn {
                 Ok(pg.client()?.execute(&st, &refs)?)
             }),
         }
+    }
+
+    /// Insert `rows` (each one value per column) into `table`, many rows a statement:
+    /// a frame's hundreds of stars in a few round trips to a server, not hundreds.
+    pub fn insert_rows(
+        &self,
+        table: &str,
+        columns: &[&str],
+        rows: &[Vec<Value>],
+    ) -> Result<(), DbError> {
+        const ROWS_PER_STATEMENT: usize = 64;
+        let n = columns.len();
+        for chunk in rows.chunks(ROWS_PER_STATEMENT) {
+            let tuples: Vec<String> = (0..chunk.len())
+                .map(|r| {
+                    let p: Vec<String> = (1..=n).map(|c| format!("?{}", r * n + c)).collect();
+                    format!("({})", p.join(", "))
+                })
+                .collect();
+            let sql = format!(
+                "INSERT INTO {table} ({}) VALUES {}",
+                columns.join(", "),
+                tuples.join(", ")
+            );
+            let params: Vec<Value> = chunk.iter().flatten().cloned().collect();
+            self.execute(&sql, &params)?;
+        }
+        Ok(())
     }
 
     /// Every row of a query.

@@ -5,7 +5,7 @@
 
 use serde::Serialize;
 
-use super::db::{values, DbError, Row};
+use super::db::{values, DbError, Row, Value};
 use super::{Store, StoreError};
 use crate::measure::Rejected;
 use crate::night::judge::Placement;
@@ -232,12 +232,11 @@ impl Store {
                     ],
                 )?
                 .get(0)?;
-            for s in &f.stars {
-                let rgb = |i: usize| s.rgb.and_then(|c| c[i]);
-                c.execute(
-                    "INSERT INTO stars (frame_id, x, y, flux, fwhm_px, eccentricity, snr, ra_deg,
-                        dec_deg, r, g, b, flux_err, blended)
-                     VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14)",
+            let stars: Vec<Vec<Value>> = f
+                .stars
+                .iter()
+                .map(|s| {
+                    let rgb = |i: usize| s.rgb.and_then(|c| c[i]);
                     values![
                         frame_id,
                         s.x,
@@ -253,15 +252,40 @@ impl Store {
                         rgb(2),
                         s.flux_err,
                         s.blended
-                    ],
-                )?;
-            }
-            for r in &f.rejected {
-                c.execute(
-                    "INSERT INTO rejected (frame_id, x, y, kind, peak_adu) VALUES (?1, ?2, ?3, ?4, ?5)",
-                    values![frame_id, r.x, r.y, r.kind.as_str(), r.peak_adu],
-                )?;
-            }
+                    ]
+                    .to_vec()
+                })
+                .collect();
+            c.insert_rows(
+                "stars",
+                &[
+                    "frame_id",
+                    "x",
+                    "y",
+                    "flux",
+                    "fwhm_px",
+                    "eccentricity",
+                    "snr",
+                    "ra_deg",
+                    "dec_deg",
+                    "r",
+                    "g",
+                    "b",
+                    "flux_err",
+                    "blended",
+                ],
+                &stars,
+            )?;
+            let rejected: Vec<Vec<Value>> = f
+                .rejected
+                .iter()
+                .map(|r| values![frame_id, r.x, r.y, r.kind.as_str(), r.peak_adu].to_vec())
+                .collect();
+            c.insert_rows(
+                "rejected",
+                &["frame_id", "x", "y", "kind", "peak_adu"],
+                &rejected,
+            )?;
             c.execute(
                 "DELETE FROM reading WHERE rig = ?2 AND path = ?1",
                 values![f.identity.path, rig],

@@ -13,6 +13,7 @@ mod alerts;
 mod catalog;
 pub mod catalogue_index;
 mod connect;
+mod copy;
 pub(crate) mod db;
 mod frames;
 mod lock;
@@ -22,6 +23,7 @@ mod schema;
 pub use connect::{
     claim_configured, claim_rig, configured_daemon_pid, rig_daemon, Claim, Location, PgClaim,
 };
+pub use copy::{copy, Copied};
 pub use db::{DbError, Kind};
 pub use frames::{
     GroupKey, Interrupted, LiveFrame, NightCounts, Recorded, TargetFilter, VerdictChange,
@@ -195,6 +197,100 @@ impl Store {
         self
     }
 
+    /// Run `f` with this handle reading and writing as `rig`'s (a site's summary judges
+    /// each rig's night in turn); the handle is its own rig's again after.
+    pub fn as_rig<T>(&mut self, rig: &str, f: impl FnOnce(&mut Store) -> T) -> T {
+        let own = std::mem::replace(&mut self.rig, rig.to_string());
+        let site = std::mem::replace(&mut self.site, false);
+        let out = f(self);
+        self.rig = own;
+        self.site = site;
+        out
+    }
+
+    /// The rigs that recorded frames of `night`, in name order ('' for an unnamed one).
+    pub fn night_rigs(&self, night: &str) -> Result<Vec<String>, StoreError> {
+        self.rows(
+            "SELECT DISTINCT rig FROM frames WHERE night = ?1 ORDER BY rig",
+            values![night],
+        )?
+        .iter()
+        .map(|r| r.get(0))
+        .collect::<Result<_, _>>()
+        .map_err(|e| self.err(e))
+    }
+
+    /// Take the site-wide lease `key` (one daemon of a site does a job: the site's
+    /// morning summary) for `holder` until `now + seconds`. Taken when nobody holds it,
+    /// or when its holder's time ran out without it being done (that daemon died); never
+    /// when it is done. Atomic on both back ends: an insert that does nothing on a
+    /// conflict, and a compare-and-set of the expired value.
+    pub fn take_lease(
+        &self,
+        key: &str,
+        holder: &str,
+        now: f64,
+        seconds: f64,
+    ) -> Result<bool, StoreError> {
+        let key = format!("site {key}");
+        let held = serde_json::json!({"held_by": holder, "until": now + seconds}).to_string();
+        let inserted = self
+            .conn
+            .execute(
+                "INSERT INTO meta (key, value) VALUES (?1, ?2) ON CONFLICT (key) DO NOTHING",
+                values![key, held],
+            )
+            .map_err(|e| self.err(e))?;
+        if inserted == 1 {
+            return Ok(true);
+        }
+        let Some(before) = self
+            .rows("SELECT value FROM meta WHERE key = ?1", values![key])?
+            .first()
+            .map(|r| r.get::<String>(0))
+            .transpose()
+            .map_err(|e| self.err(e))?
+        else {
+            return Ok(false);
+        };
+        let parsed: serde_json::Value = serde_json::from_str(&before).unwrap_or_default();
+        let expired = parsed.get("done_by").is_none()
+            && parsed
+                .get("until")
+                .and_then(serde_json::Value::as_f64)
+                .is_none_or(|until| until < now);
+        if !expired {
+            return Ok(false);
+        }
+        let swapped = self
+            .conn
+            .execute(
+                "UPDATE meta SET value = ?3 WHERE key = ?1 AND value = ?2",
+                values![key, before, held],
+            )
+            .map_err(|e| self.err(e))?;
+        Ok(swapped == 1)
+    }
+
+    /// The lease `key` done: nobody takes it again.
+    pub fn finish_lease(&self, key: &str, holder: &str, now: f64) -> Result<(), StoreError> {
+        self.run(
+            "UPDATE meta SET value = ?2 WHERE key = ?1",
+            values![
+                format!("site {key}"),
+                serde_json::json!({"done_by": holder, "at": now}).to_string()
+            ],
+        )
+    }
+
+    /// The lease `key` given back undone (the job failed): another may take it now.
+    pub fn release_lease(&self, key: &str) -> Result<(), StoreError> {
+        self.run(
+            "DELETE FROM meta WHERE key = ?1",
+            values![format!("site {key}")],
+        )
+    }
+
     /// The rig this handle records for ('' unnamed).
     pub fn rig(&self) -> &str {
         &self.rig
@@ -205,13 +301,14 @@ impl Store {
         self.conn.kind()
     }
 
-    /// Open an existing SQLite store to read only (the status page's own connection: WAL
-    /// lets it read while the daemon writes, and it can never change a row).
-    pub fn open_read_only(path: &Path) -> Result<Self, StoreError> {
+    /// Open an existing SQLite store to read only, as `rig`'s (the status page's own
+    /// connection: WAL lets it read while the daemon writes, and it can never change a
+    /// row).
+    pub fn open_read_only(path: &Path, rig: &str) -> Result<Self, StoreError> {
         Ok(Store {
             conn: connect::open_sqlite_read_only(path)?,
             place: path.display().to_string(),
-            rig: String::new(),
+            rig: rig.to_string(),
             site: false,
         })
     }

@@ -343,14 +343,18 @@ fn migrate_postgres(conn: &Conn, too_new: impl Fn(i64) -> StoreError) -> Result<
     // PostgreSQL changes a schema inside a transaction: all of it lands, or none.
     conn.transaction(|| {
         conn.execute("SELECT pg_advisory_xact_lock(?1)", values![MIGRATION_LOCK])?;
-        conn.batch("CREATE TABLE IF NOT EXISTS schema_version (version BIGINT NOT NULL)")?;
-        let version: i64 = match conn.query_opt("SELECT version FROM schema_version", &[])? {
-            Some(row) => row.get(0)?,
-            None => {
-                conn.batch("INSERT INTO schema_version (version) VALUES (0)")?;
-                0
-            }
-        };
+        let exists: bool = conn
+            .query_one("SELECT to_regclass('schema_version') IS NOT NULL", &[])?
+            .get(0)?;
+        if !exists {
+            conn.batch(
+                "CREATE TABLE schema_version (version BIGINT NOT NULL);
+                 INSERT INTO schema_version (version) VALUES (0);",
+            )?;
+        }
+        let version: i64 = conn
+            .query_one("SELECT version FROM schema_version", &[])?
+            .get(0)?;
         if version > SCHEMA_VERSION {
             return Err(Migration::Store(too_new(version)));
         }

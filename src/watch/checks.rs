@@ -66,6 +66,13 @@ pub(super) fn minute_checks(shared: &Shared) {
         return;
     };
     let store = shared.store.lock().unwrap_or_else(|p| p.into_inner());
+    // While the store is away the checks wait for it (the frames kept say when it is
+    // back); they would only fail, each with its own line.
+    match store.night_counts(&night) {
+        Ok(_) => shared.outage.answered(now, 0),
+        Err(e) if shared.outage.failed(&e, now) => return,
+        Err(_) => {}
+    }
     let limits = alerts::AlertLimits::from_config(&config.alerts);
     let dark = super::schedule::dark(now, config.site_position());
     if let Ok(counts) = store.night_counts(&night) {
@@ -244,6 +251,9 @@ fn free_bytes(folder: &Path) -> Option<u64> {
     Some(st.f_bavail.saturating_mul(st.f_frsize))
 }
 
+/// How long a daemon may take to make a site's summary before another may take over.
+const SITE_SUMMARY_LEASE_SECONDS: f64 = 600.0;
+
 /// The morning summary of the night that just ended, once, when `schedule` says it is
 /// due.
 fn summary_if_due(store: &Store, config: &Config, now: f64) {
@@ -259,6 +269,20 @@ fn summary_if_due(store: &Store, config: &Config, now: f64) {
     if store.meta(&key).ok().flatten().is_some() {
         return;
     }
+    // A site's summary is sent by one daemon: the one that takes the site's lease. A
+    // daemon that dies holding it lets it run out, and another sends the summary then.
+    let site = config.mail.summary_of_site;
+    if site {
+        let holder = format!("rig '{}' (process {})", config.rig.name, std::process::id());
+        match store.take_lease(&key, &holder, now, SITE_SUMMARY_LEASE_SECONDS) {
+            Ok(true) => {}
+            Ok(false) => return,
+            Err(e) => {
+                tracing::error!("site summary of {night}: {e}");
+                return;
+            }
+        }
+    }
     // The store is locked by the caller; prepare reads it through a second connection.
     let result = Store::open_configured(config)
         .map_err(crate::morning::MorningError::from)
@@ -269,9 +293,20 @@ fn summary_if_due(store: &Store, config: &Config, now: f64) {
     match result {
         Ok(_) => {
             let _ = store.set_meta(&key, &now.to_string());
-            tracing::info!("morning summary of {night} queued for mail");
+            if site {
+                let _ = store.finish_lease(&key, &config.rig.name, now);
+            }
+            tracing::info!(
+                "morning summary of {night}{} queued for mail",
+                if site { " (every rig of the site)" } else { "" }
+            );
         }
-        Err(e) => tracing::error!("morning summary of {night} not made: {e}"),
+        Err(e) => {
+            if site {
+                let _ = store.release_lease(&key);
+            }
+            tracing::error!("morning summary of {night} not made: {e}");
+        }
     }
 }
 

@@ -69,8 +69,11 @@ pub(super) fn process(shared: &Shared, path: &Path) -> Outcome {
     };
     {
         let store = shared.store.lock().unwrap_or_else(|p| p.into_inner());
-        if let Err(e) = store.begin_reading(&identity, shared.clock.now_unix()) {
-            tracing::error!("{e} (marking {} as being read)", shown(path));
+        let now = shared.clock.now_unix();
+        if let Err(e) = store.begin_reading(&identity, now) {
+            if !shared.outage.failed(&e, now) {
+                tracing::error!("{e} (marking {} as being read)", shown(path));
+            }
         }
     }
     let mtime_unix = identity.mtime_unix();
@@ -85,13 +88,15 @@ pub(super) fn store_record(shared: &Shared, record: FrameRecord) -> Outcome {
     let path = PathBuf::from(&record.identity.path);
     let version = (record.identity.size, record.identity.mtime_ns);
     let mut store = shared.store.lock().unwrap_or_else(|p| p.into_inner());
-    let recorded = match store.record_frame(&record, shared.clock.now_unix()) {
+    let now = shared.clock.now_unix();
+    let recorded = match store.record_frame(&record, now) {
         Ok(r) => r,
         Err(e) => {
+            shared.outage.failed(&e, now);
             return Outcome::NotStored {
                 record: Box::new(record),
                 error: e.to_string(),
-            }
+            };
         }
     };
     let (mut line, warn) = match frame_line(&record) {

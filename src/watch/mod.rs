@@ -19,6 +19,7 @@ pub mod alerts;
 mod checks;
 mod frame;
 pub mod judge;
+mod outage;
 pub mod page;
 pub mod schedule;
 pub mod settle;
@@ -79,6 +80,7 @@ fn observation(id: &Identity) -> Observation {
 
 pub(super) struct Shared {
     clock: Arc<dyn Clock>,
+    outage: outage::Outage,
     store: Mutex<Store>,
     options: RecordOptions,
     reader: crate::reader::Reader,
@@ -156,8 +158,26 @@ async fn daemon(
         })?;
     }
     // One daemon per store: a second one is refused, naming the first.
-    let _claim = crate::store::claim_configured(&config)?;
-    let mut store = Store::open_configured(&config)?;
+    // A shared database not reachable yet (the server starting with the PC) is waited
+    // for, said once; anything else wrong with the store stops the start.
+    let mut said = false;
+    let (_claim, mut store) = loop {
+        let opened = crate::store::claim_configured(&config)
+            .and_then(|claim| Ok((claim, Store::open_configured(&config)?)));
+        match opened {
+            Ok(pair) => break pair,
+            Err(e) if e.is_unreachable() && !stop.load(Ordering::Relaxed) => {
+                if !said {
+                    tracing::error!(
+                        "the store cannot be reached: {e}; trying again every 15 s (said once)"
+                    );
+                    said = true;
+                }
+                tokio::time::sleep(Duration::from_secs(15)).await;
+            }
+            Err(e) => return Err(e.into()),
+        }
+    };
     settle_interrupted(&mut store, wall.now_unix())?;
     // The status page: a failure to serve it costs the page, never the watching.
     let _web = match web::start(&config, wall.clone()) {
@@ -186,6 +206,7 @@ async fn daemon(
     let filter = crate::walk::FrameFilter::from_config(&config);
     let shared = Arc::new(Shared {
         clock: wall.clone(),
+        outage: outage::Outage::default(),
         store: Mutex::new(store),
         options: RecordOptions::from_config(&config),
         reader: crate::reader::Reader::from_config(&config.measure),
@@ -375,6 +396,7 @@ async fn daemon(
                 for outcome in outcomes {
                     match outcome {
                         Outcome::Stored { path, version, log } => {
+                            shared.outage.answered(wall.now_unix(), pending.len());
                             in_flight.remove(&path);
                             pending_paths.remove(&path);
                             recorded.insert(path.to_string_lossy().into_owned(), version);
@@ -393,7 +415,7 @@ async fn daemon(
                         Outcome::NotStored { record, error } => {
                             let path = PathBuf::from(&record.identity.path);
                             in_flight.remove(&path);
-                            if !was_retry {
+                            if !was_retry && !shared.outage.away() {
                                 tracing::error!(
                                     "{} not recorded: {error}; kept, and stored again every 15 s until the store takes it",
                                     shown(&path)
@@ -419,7 +441,7 @@ async fn daemon(
                         }
                     }
                 }
-                if let Some(error) = retry_failed {
+                if let (Some(error), false) = (retry_failed, shared.outage.away()) {
                     tracing::error!(
                         "the store still fails ({} frame(s) waiting to be stored): {error}",
                         pending.len()

@@ -110,7 +110,7 @@ pub fn run(config: Config, clock: Arc<dyn Clock>, state: Arc<PageState>) {
         let looked_at = state.looked_at(now);
         if store.is_none() {
             store = match &config.store.url {
-                None => Store::open_read_only(&config.store.path),
+                None => Store::open_read_only(&config.store.path, &config.rig.name),
                 // A shared database has no read-only file to open: the page's own
                 // connection only ever reads.
                 Some(_) => Store::open_configured(&config),

@@ -22,7 +22,7 @@ if ! "$py" -c 'import numpy, scipy, astropy, photutils, sep, erfa, aiosmtpd, tru
     exit 1
 fi
 
-for script in measure_crosscheck.py storage_crosscheck.py independent_render_crosscheck.py wcs_crosscheck.py skyfit_crosscheck.py sky_crosscheck.py mail_crosscheck.py calibration_crosscheck.py voevent_crosscheck.py report_browser.py status_browser.py; do
+for script in measure_crosscheck.py storage_crosscheck.py independent_render_crosscheck.py wcs_crosscheck.py skyfit_crosscheck.py sky_crosscheck.py mail_crosscheck.py site_crosscheck.py calibration_crosscheck.py voevent_crosscheck.py report_browser.py status_browser.py; do
     label="${script%.py}"
     echo "### $label ($bin)"
     "$py" "$here/$script" "$bin" 2>&1 | tee "$log"

@@ -1,0 +1,41 @@
+//! `subwatch store copy`: an SQLite store into a shared PostgreSQL database.
+
+use std::path::{Path, PathBuf};
+use std::process::ExitCode;
+
+use anyhow::{Context, Result};
+
+pub fn copy(
+    from: &Path,
+    to: &str,
+    password_file: Option<PathBuf>,
+    rig: Option<&str>,
+) -> Result<ExitCode> {
+    if !from.is_file() {
+        anyhow::bail!("store copy: {} is not a store file", from.display());
+    }
+    if let Some(rig) = rig {
+        if !subwatch::config::rig_name_ok(rig) {
+            anyhow::bail!(
+                "store copy --rig {rig:?}: a name of 1 to 64 letters, digits, spaces, dots, dashes or underscores"
+            );
+        }
+        // The rows kept without a rig become this rig's, as the daemon would do.
+        subwatch::store::Store::open_for_rig(from, rig)
+            .with_context(|| format!("naming the rig of {}", from.display()))?;
+    }
+    let to = subwatch::store::Location::Server {
+        url: to.to_string(),
+        password_file,
+    };
+    let copied = subwatch::store::copy(from, &to)
+        .with_context(|| format!("copying {} into {to}", from.display()))?;
+    println!(
+        "copied {} into {to}, every table counted on both sides:",
+        from.display()
+    );
+    for (table, n) in &copied.tables {
+        println!("  {table}: {n}");
+    }
+    Ok(ExitCode::SUCCESS)
+}
