@@ -98,6 +98,7 @@ fn main() {
     let pg = per_frame(&Location::Server {
         url: format!("{}/{name}", server.rsplit_once('/').expect("url").0),
         password_file: None,
+        ca_file: None,
     });
     admin
         .batch_execute(&format!("DROP DATABASE {name} WITH (FORCE)"))

@@ -59,6 +59,10 @@ enum StoreAction {
         /// The file holding the database password (this user's alone: mode 600).
         #[arg(long)]
         password_file: Option<PathBuf>,
+        /// The authority (PEM) that signed the server's certificate, where the address
+        /// asks for TLS (sslmode=require) and it is a site's own.
+        #[arg(long)]
+        ca_file: Option<PathBuf>,
         /// Name the rig whose frames these are, where the store was kept without one.
         #[arg(long)]
         rig: Option<String>,
@@ -91,6 +95,9 @@ enum Command {
         night: Option<String>,
         #[arg(long)]
         json: bool,
+        /// Also every rig that shares the store: its frames and whether its daemon runs.
+        #[arg(long)]
+        site: bool,
     },
     /// Process every light frame under DIR as one night and report verdicts and anomalies.
     Night {
@@ -251,7 +258,8 @@ fn run(cli: Cli) -> Result<ExitCode> {
             config,
             night,
             json,
-        } => daemon::status(&config.path, night, json),
+            site,
+        } => daemon::status(&config.path, night, json, site),
         Command::Outbox { config, now } => daemon::outbox(&config.path, now),
         Command::Night {
             dir,
@@ -316,8 +324,9 @@ fn run(cli: Cli) -> Result<ExitCode> {
                     from,
                     to,
                     password_file,
+                    ca_file,
                     rig,
                 },
-        } => commands::store::copy(&from, &to, password_file, rig.as_deref()),
+        } => commands::store::copy(&from, &to, password_file, ca_file, rig.as_deref()),
     }
 }

@@ -91,7 +91,7 @@ pub fn outbox(config: &Path, now: bool) -> Result<ExitCode> {
 }
 
 /// `subwatch status`: tonight so far, and whether the daemon runs.
-pub fn status(config: &Path, night: Option<String>, json: bool) -> Result<ExitCode> {
+pub fn status(config: &Path, night: Option<String>, json: bool, site: bool) -> Result<ExitCode> {
     let night = night
         .as_deref()
         .map(super::night::night_label)
@@ -120,8 +120,13 @@ pub fn status(config: &Path, night: Option<String>, json: bool) -> Result<ExitCo
     // however it ends; a heartbeat alone would outlive a killed daemon.
     let running_pid = subwatch::store::configured_daemon_pid(&cfg);
     let alive = running_pid.is_some();
+    let rigs = if site {
+        site_status(store, &cfg, &night)?
+    } else {
+        Vec::new()
+    };
     if json {
-        let doc = serde_json::json!({
+        let mut doc = serde_json::json!({
             "night": night,
             "night_placed_by": placed_by,
             "counts": counts,
@@ -129,6 +134,9 @@ pub fn status(config: &Path, night: Option<String>, json: bool) -> Result<ExitCo
             "daemon_running": alive,
             "daemon_pid": running_pid,
         });
+        if site {
+            doc["rigs"] = serde_json::to_value(&rigs)?;
+        }
         println!("{doc}");
     } else {
         println!("night {night} ({placed_by})");
@@ -158,6 +166,59 @@ pub fn status(config: &Path, night: Option<String>, json: bool) -> Result<ExitCo
             (None, Some(pid)) => println!("  daemon running (process {pid})"),
             (_, None) => println!("  daemon not running"),
         }
+        for r in &rigs {
+            println!(
+                "rig {}: frames {}  measured {}  warned {}  rejected {}  daemon {}",
+                if r.rig.is_empty() {
+                    "(unnamed)"
+                } else {
+                    &r.rig
+                },
+                r.counts.frames,
+                r.counts.measured,
+                r.counts.warned,
+                r.counts.rejected,
+                r.daemon
+                    .as_deref()
+                    .map_or("not running".to_string(), |d| format!(
+                        "running (process {d})"
+                    ))
+            );
+        }
     }
     Ok(ExitCode::SUCCESS)
+}
+
+/// One rig of the site in `status --site`.
+#[derive(serde::Serialize)]
+struct RigStatus {
+    rig: String,
+    counts: subwatch::store::NightCounts,
+    /// The daemon holding the rig now ("PID on HOST"), if one does.
+    daemon: Option<String>,
+}
+
+/// Every rig with frames in `night`, with its counts and whether its daemon runs.
+fn site_status(
+    mut store: subwatch::store::Store,
+    cfg: &subwatch::config::Config,
+    night: &str,
+) -> Result<Vec<RigStatus>> {
+    let location = subwatch::store::Location::from_config(&cfg.store);
+    let mut out = Vec::new();
+    for rig in store.night_rigs(night)? {
+        let counts = store.as_rig(&rig, |s| s.night_counts(night))?;
+        let daemon = match &location {
+            subwatch::store::Location::File(path) => (rig == cfg.rig.name)
+                .then(|| subwatch::store::daemon_pid(path).map(|p| p.to_string()))
+                .flatten(),
+            server => subwatch::store::rig_daemon(server, &rig),
+        };
+        out.push(RigStatus {
+            rig,
+            counts,
+            daemon,
+        });
+    }
+    Ok(out)
 }

@@ -9,6 +9,7 @@ pub fn copy(
     from: &Path,
     to: &str,
     password_file: Option<PathBuf>,
+    ca_file: Option<PathBuf>,
     rig: Option<&str>,
 ) -> Result<ExitCode> {
     if !from.is_file() {
@@ -27,6 +28,7 @@ pub fn copy(
     let to = subwatch::store::Location::Server {
         url: to.to_string(),
         password_file,
+        ca_file,
     };
     let copied = subwatch::store::copy(from, &to)
         .with_context(|| format!("copying {} into {to}", from.display()))?;

@@ -46,6 +46,11 @@ impl Config {
                 }
             }
         }
+        if let Some(ca) = &self.store.ca_file {
+            if let Err(e) = std::fs::read(ca) {
+                errors.push(format!("store.ca_file: {}: {e}", ca.display()));
+            }
+        }
         if let Some(pw) = &self.store.password_file {
             if let Err(e) = check_secret_file(pw) {
                 errors.push(format!("store.password_file: {e}"));

@@ -81,6 +81,9 @@ pub struct StoreConfig {
     pub url: Option<String>,
     /// The file holding the database password, this user's alone.
     pub password_file: Option<PathBuf>,
+    /// The authority (PEM) that signed the database server's certificate, where it is a
+    /// site's own.
+    pub ca_file: Option<PathBuf>,
 }
 
 impl Default for StoreConfig {
@@ -89,6 +92,7 @@ impl Default for StoreConfig {
             path: PathBuf::from("subwatch.db"),
             url: None,
             password_file: None,
+            ca_file: None,
         }
     }
 }

@@ -223,6 +223,8 @@ const SECTIONS: [&str; 14] = [
 fn postgres_url_ok(url: &str) -> bool {
     (url.starts_with("postgresql://") || url.starts_with("postgres://"))
         && url
+            .replace("sslmode=verify-full", "sslmode=require")
+            .replace("sslmode=verify-ca", "sslmode=require")
             .parse::<postgres::Config>()
             .is_ok_and(|c| c.get_password().is_none())
 }
@@ -453,10 +455,19 @@ pub fn parse(text: &str, base: &Path) -> Result<Config, Vec<ConfigProblem>> {
             "only a PostgreSQL store (url) takes a password".into(),
         );
     }
+    let ca_file = r.path("store", "ca_file");
+    if ca_file.is_some() && url.is_none() {
+        r.problem(
+            "store",
+            "ca_file",
+            "only a PostgreSQL store (url) is reached over TLS".into(),
+        );
+    }
     let store = StoreConfig {
         path: path.unwrap_or_else(|| r.absolute("subwatch.db")),
         url,
         password_file,
+        ca_file,
     };
     let rig = RigConfig {
         name: r.read("rig", "name", String::new(), |v| {

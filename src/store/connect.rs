@@ -19,6 +19,9 @@ pub enum Location {
     Server {
         url: String,
         password_file: Option<PathBuf>,
+        /// Certificates (PEM) of the authority that signed the server's, where it is not
+        /// one the public web trusts (a site's own).
+        ca_file: Option<PathBuf>,
     },
 }
 
@@ -28,6 +31,7 @@ impl Location {
             Some(url) => Location::Server {
                 url: url.clone(),
                 password_file: c.password_file.clone(),
+                ca_file: c.ca_file.clone(),
             },
             None => Location::File(c.path.clone()),
         }
@@ -62,6 +66,13 @@ fn without_password(url: &str) -> String {
     }
 }
 
+/// libpq's names for TLS with the server's certificate checked, which this client always
+/// checks (chain and host name) when it uses TLS at all.
+fn checked_tls_as_required(url: &str) -> String {
+    url.replace("sslmode=verify-full", "sslmode=require")
+        .replace("sslmode=verify-ca", "sslmode=require")
+}
+
 /// The PostgreSQL settings of a URL, with the password from its file.
 pub(super) fn postgres_config(
     url: &str,
@@ -70,7 +81,7 @@ pub(super) fn postgres_config(
     if !(url.starts_with("postgresql://") || url.starts_with("postgres://")) {
         return Err("url: give a postgresql://USER@HOST:PORT/DATABASE address".into());
     }
-    let mut config: postgres::Config = url
+    let mut config: postgres::Config = checked_tls_as_required(url)
         .parse()
         .map_err(|e| format!("url {}: {e}", without_password(url)))?;
     if config.get_password().is_some() {
@@ -108,16 +119,58 @@ pub(super) fn open(location: &Location) -> Result<Conn, StoreError> {
             .map_err(|e| err(e.into()))?;
             Ok(Conn::Sqlite(conn))
         }
-        Location::Server { url, password_file } => {
-            let config = postgres_config(url, password_file.as_deref()).map_err(|message| {
-                StoreError::Settings {
-                    store: place.clone(),
-                    message,
+        Location::Server {
+            url,
+            password_file,
+            ca_file,
+        } => {
+            let settings = |message| StoreError::Settings {
+                store: place.clone(),
+                message,
+            };
+            let config = postgres_config(url, password_file.as_deref()).map_err(settings)?;
+            // TLS where the address asks for it (sslmode=require or verify-full), the
+            // server's certificate checked against the web's authorities and `ca_file`.
+            let tls = match config.get_ssl_mode() {
+                postgres::config::SslMode::Require => {
+                    Some(tls_connector(ca_file.as_deref()).map_err(settings)?)
                 }
-            })?;
-            Conn::postgres(config).map_err(err)
+                _ => None,
+            };
+            Conn::postgres(config, tls).map_err(err)
         }
     }
+}
+
+/// A TLS connector that trusts the web's certificate authorities (Mozilla's list, as
+/// webpki-roots carries it) and those in `ca_file`.
+fn tls_connector(
+    ca_file: Option<&Path>,
+) -> Result<tokio_postgres_rustls::MakeRustlsConnect, String> {
+    use rustls_pki_types::pem::PemObject;
+    let mut roots = rustls::RootCertStore::empty();
+    roots.extend(webpki_roots::TLS_SERVER_ROOTS.iter().cloned());
+    if let Some(file) = ca_file {
+        let certs: Vec<_> = rustls_pki_types::CertificateDer::pem_file_iter(file)
+            .and_then(|it| it.collect::<Result<Vec<_>, _>>())
+            .map_err(|e| format!("ca_file {}: {e}", file.display()))?;
+        if certs.is_empty() {
+            return Err(format!("ca_file {}: no certificate in it", file.display()));
+        }
+        for cert in certs {
+            roots
+                .add(cert)
+                .map_err(|e| format!("ca_file {}: {e}", file.display()))?;
+        }
+    }
+    let config = rustls::ClientConfig::builder_with_provider(std::sync::Arc::new(
+        rustls::crypto::ring::default_provider(),
+    ))
+    .with_safe_default_protocol_versions()
+    .map_err(|e| e.to_string())?
+    .with_root_certificates(roots)
+    .with_no_client_auth();
+    Ok(tokio_postgres_rustls::MakeRustlsConnect::new(config))
 }
 
 pub(super) fn open_sqlite_read_only(path: &Path) -> Result<Conn, StoreError> {

@@ -24,8 +24,10 @@ pub enum Value {
 pub enum DbError {
     #[error("{0}")]
     Sqlite(#[from] rusqlite::Error),
+    /// The server's own words (not chained as a source: the client's Display adds only
+    /// "db error").
     #[error("{}", postgres_message(.0))]
-    Postgres(#[from] postgres::Error),
+    Postgres(postgres::Error),
     #[error("column {index} holds {found:?}, not {expected}")]
     Type {
         index: usize,
@@ -40,11 +42,27 @@ pub enum DbError {
     Other(String),
 }
 
+impl From<postgres::Error> for DbError {
+    fn from(e: postgres::Error) -> Self {
+        DbError::Postgres(e)
+    }
+}
+
 /// PostgreSQL's own words where the server sent them (the client's Display says only "db error").
 fn postgres_message(e: &postgres::Error) -> String {
     match e.as_db_error() {
         Some(db) => format!("{}: {}", db.severity(), db.message()),
-        None => e.to_string(),
+        None => {
+            // The client's own failures say why in their sources (a refused connection,
+            // a certificate from an unknown authority).
+            let mut text = e.to_string();
+            let mut source = std::error::Error::source(e);
+            while let Some(s) = source {
+                text.push_str(&format!(": {s}"));
+                source = s.source();
+            }
+            text
+        }
     }
 }
 
@@ -340,6 +358,8 @@ fn postgres_placeholders(sql: &str) -> String {
 /// first statements went with the old connection).
 pub struct PgConn {
     config: postgres::Config,
+    /// TLS to the server, where the address asks for it.
+    tls: Option<tokio_postgres_rustls::MakeRustlsConnect>,
     client: Option<postgres::Client>,
     statements: HashMap<String, postgres::Statement>,
     in_transaction: bool,
@@ -354,7 +374,7 @@ impl PgConn {
             }
             self.statements.clear();
             self.client = None;
-            self.client = Some(self.config.connect(postgres::NoTls)?);
+            self.client = Some(connect(&self.config, &self.tls)?);
         }
         self.client.as_mut().ok_or(DbError::Broken)
     }
@@ -366,6 +386,16 @@ impl PgConn {
         let st = self.client()?.prepare(&postgres_placeholders(sql))?;
         self.statements.insert(sql.to_string(), st.clone());
         Ok(st)
+    }
+}
+
+fn connect(
+    config: &postgres::Config,
+    tls: &Option<tokio_postgres_rustls::MakeRustlsConnect>,
+) -> Result<postgres::Client, postgres::Error> {
+    match tls {
+        Some(tls) => config.connect(tls.clone()),
+        None => config.connect(postgres::NoTls),
     }
 }
 
@@ -406,10 +436,14 @@ pub enum Conn {
 
 impl Conn {
     /// Connect to PostgreSQL (the first connection; later ones follow a broken one).
-    pub fn postgres(config: postgres::Config) -> Result<Self, DbError> {
-        let client = off_runtime(|| config.connect(postgres::NoTls))?;
+    pub fn postgres(
+        config: postgres::Config,
+        tls: Option<tokio_postgres_rustls::MakeRustlsConnect>,
+    ) -> Result<Self, DbError> {
+        let client = off_runtime(|| connect(&config, &tls))?;
         Ok(Conn::Postgres(Box::new(RefCell::new(PgConn {
             config,
+            tls,
             client: Some(client),
             statements: HashMap::new(),
             in_transaction: false,

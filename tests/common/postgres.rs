@@ -50,6 +50,7 @@ impl TestDatabase {
         subwatch::store::Location::Server {
             url: self.url.clone(),
             password_file: None,
+            ca_file: None,
         }
     }
 }

@@ -10,12 +10,17 @@ standard email parser. Checked:
   exactly once per rig, no file left marked as being read;
 - each rig's verdicts equal those of the same frames recorded by a daemon into an SQLite
   store (read back with Python's sqlite3);
-- `report --site --json` gives every rig's frames, each naming its rig;
+- `report --site --json` gives every rig's frames, each naming its rig, and
+  `status --site --json` every rig's count and running daemon;
 - with the summary set to cover the site, the three daemons mail one summary, once,
   naming every rig;
 - the server stopped for 60 s with a daemon running: the frames that land meanwhile are
   kept and recorded once it is back, the outage is logged once, and the daemon does not
-  spin (its CPU time over the outage is counted).
+  spin (its CPU time over the outage is counted);
+- TLS where the address asks for it: with the server's certificate from an authority
+  trustme makes, and the database refused to connections without TLS, `sslmode=require`
+  with that authority as `ca_file` connects, without TLS and with an unknown authority the
+  store is refused.
 
 usage: python site_crosscheck.py path/to/subwatch
 """
@@ -233,6 +238,12 @@ def main():
             while time.monotonic() < deadline and not smtp.messages:
                 time.sleep(0.5)
             time.sleep(8)  # several more rounds of checks by every daemon
+            out = subprocess.run([binary, "status", "--config", pg[2], "--night", night, "--site", "--json"],
+                                 capture_output=True, text=True)
+            rigs = json.loads(out.stdout).get("rigs", []) if out.returncode == 0 else []
+            seen = {r["rig"]: (r["counts"]["frames"], r["daemon"] is not None) for r in rigs}
+            checks.record("status --site shows every rig's frames and its running daemon",
+                          seen == {r: (FRAMES, True) for r in RIGS}, f"{seen} {out.stderr.strip()[-200:]}")
             for k in range(len(RIGS)):
                 daemons[k].send_signal(signal.SIGTERM)
                 daemons[k].wait(timeout=60)
@@ -282,6 +293,7 @@ def main():
             # pause would use the whole 60 s.
             checks.record("the daemon does not spin while the store is away", cpu_away < 6.0,
                           f"{cpu_away:.2f} s of CPU over 60 s")
+        tls_checks(binary, checks, server, pg_dir, url)
     finally:
         for p in daemons.values():
             if p.poll() is None:
@@ -293,6 +305,59 @@ def main():
         except subprocess.CalledProcessError:
             pass
     return checks.finish()
+
+
+def tls_checks(binary, checks, server, pg_dir, url):
+    """TLS to the server where the address asks for it: the server given a certificate
+    from an authority made by trustme (an outside library), and told to refuse this
+    database to any connection without TLS."""
+    import trustme
+    data = os.path.join(pg_dir, "data")
+    hba = os.path.join(data, "pg_hba.conf")
+    hba_before = open(hba).read()
+    dbname = url.rsplit("/", 1)[1]
+    ca = trustme.CA()
+    cert = ca.issue_cert("127.0.0.1")
+    owner = os.stat(data).st_uid
+    for name, blob in (("server.crt", cert.cert_chain_pems[0].bytes()), ("server.key", cert.private_key_pem.bytes())):
+        path = os.path.join(data, name)
+        with open(path, "wb") as f:
+            f.write(blob)
+        os.chmod(path, 0o600)
+        os.chown(path, owner, -1)
+    with tempfile.TemporaryDirectory() as tmp:
+        ca_file = os.path.join(tmp, "site-ca.pem")
+        ca.cert_pem.write_to_path(ca_file)
+        try:
+            with open(hba, "w") as f:
+                f.write(f"hostnossl {dbname} all 127.0.0.1/32 reject\n" + hba_before)
+            psql(server, "ALTER SYSTEM SET ssl = on")
+            psql(server, "SELECT pg_reload_conf()")
+            time.sleep(1)
+
+            def status(address, ca_line):
+                cfg = os.path.join(tmp, "tls.toml")
+                with open(cfg, "w") as f:
+                    f.write(f'[watch]\nfolders = ["{tmp}"]\n[store]\nurl = "{address}"\n{ca_line}'
+                            f'[rig]\nname = "north pier"\n[site]\ntimezone = "UTC"\n')
+                return subprocess.run([binary, "status", "--config", cfg, "--json"], capture_output=True, text=True)
+
+            plain = status(url, "")
+            checks.record("without TLS the server (hostnossl reject) refuses the store",
+                          plain.returncode != 0 and "no encryption" in plain.stderr,
+                          plain.stderr.strip()[-160:])
+            good = status(url + "?sslmode=require", f'ca_file = "{ca_file}"\n')
+            checks.record("sslmode=require with the site's authority as ca_file connects over TLS",
+                          good.returncode == 0, (good.stderr or good.stdout).strip()[-200:])
+            unknown = status(url + "?sslmode=verify-full", "")
+            checks.record("a certificate from an unknown authority is refused",
+                          unknown.returncode != 0 and "certificate" in unknown.stderr.lower(),
+                          unknown.stderr.strip()[-200:])
+        finally:
+            with open(hba, "w") as f:
+                f.write(hba_before)
+            psql(server, "ALTER SYSTEM SET ssl = off")
+            psql(server, "SELECT pg_reload_conf()")
 
 
 if __name__ == "__main__":
