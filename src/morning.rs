@@ -106,8 +106,9 @@ pub fn judge_night(store: &mut Store, c: &Config, night: &str) -> Result<Rejudge
 }
 
 /// Judge every rig's frames of a recorded night (a site's summary): this daemon's rig as
-/// [`judge_night`] does, its verdicts kept; every other rig's by the same rules without
-/// storing anything (each rig's own daemon keeps its verdicts and catalogues). Each
+/// [`judge_night`] does, its verdicts kept; every other rig's night analysed (anomalies,
+/// limits) without storing anything, its frames keeping the verdicts their own daemon
+/// gave them by that rig's rules (a frame it has not judged yet gets this daemon's). Each
 /// frame names its rig.
 pub fn judge_site(store: &mut Store, c: &Config, night: &str) -> Result<Rejudged, MorningError> {
     let mut site = NightDocument::default();
@@ -128,6 +129,16 @@ pub fn judge_site(store: &mut Store, c: &Config, night: &str) -> Result<Rejudged
                     &c.calibration.settings,
                 )?;
                 crate::batch::cross_match(&mut doc, &c.catalogue)?;
+                let stored = s.stored_verdicts(night)?;
+                for f in &mut doc.frames {
+                    if let Some((verdict, reasons)) = stored.get(&f.path) {
+                        if (f.verdict, &f.reasons) != (*verdict, reasons) {
+                            f.explanations.clear();
+                        }
+                        f.verdict = *verdict;
+                        f.reasons = reasons.clone();
+                    }
+                }
                 doc.set_rig(&rig);
                 Ok(doc)
             })?

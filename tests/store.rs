@@ -351,19 +351,38 @@ fn one_daemon_of_a_site_takes_a_lease_and_a_dead_holders_lease_runs_out() {
         let a = Store::connect_for_rig(at, "north").unwrap();
         let b = Store::connect_for_rig(at, "south").unwrap();
         let key = "summary:2026-03-14";
-        assert!(a.take_lease(key, "north", 100.0, 600.0).unwrap(), "{at}");
-        assert!(!b.take_lease(key, "south", 200.0, 600.0).unwrap());
-        assert!(!a.take_lease(key, "north again", 300.0, 600.0).unwrap());
-        // North died holding it: once its time ran out, south takes it.
-        assert!(b.take_lease(key, "south", 701.0, 600.0).unwrap());
-        assert!(!a.take_lease(key, "north", 702.0, 600.0).unwrap());
-        b.finish_lease(key, "south", 710.0).unwrap();
+        let norths = a
+            .take_lease(key, "north", 100.0, 600.0)
+            .unwrap()
+            .expect("free");
+        assert!(
+            b.take_lease(key, "south", 200.0, 600.0).unwrap().is_none(),
+            "{at}"
+        );
+        assert!(a
+            .take_lease(key, "north again", 300.0, 600.0)
+            .unwrap()
+            .is_none());
+        // North stalled holding it: once its time ran out, south takes it, and north's
+        // late finish or release does not touch south's lease.
+        let souths = b
+            .take_lease(key, "south", 701.0, 600.0)
+            .unwrap()
+            .expect("expired");
+        assert!(a.take_lease(key, "north", 702.0, 600.0).unwrap().is_none());
+        assert!(!a.finish_lease(key, &norths, "north", 703.0).unwrap());
+        a.release_lease(key, &norths).unwrap();
+        assert!(a.take_lease(key, "third", 704.0, 600.0).unwrap().is_none());
+        assert!(b.finish_lease(key, &souths, "south", 710.0).unwrap());
         // Done is done, however long after.
-        assert!(!a.take_lease(key, "north", 1.0e9, 600.0).unwrap());
+        assert!(a.take_lease(key, "north", 1.0e9, 600.0).unwrap().is_none());
         // Given back undone, it is free at once.
-        assert!(a.take_lease("other", "north", 1.0, 600.0).unwrap());
-        a.release_lease("other").unwrap();
-        assert!(b.take_lease("other", "south", 2.0, 600.0).unwrap());
+        let other = a.take_lease("other", "north", 1.0, 600.0).unwrap().unwrap();
+        a.release_lease("other", &other).unwrap();
+        assert!(b
+            .take_lease("other", "south", 2.0, 600.0)
+            .unwrap()
+            .is_some());
     });
 }
 
@@ -414,4 +433,35 @@ fn an_sqlite_store_copied_into_postgresql_reads_the_same_and_is_copied_once() {
         "{again}"
     );
     assert_eq!(shared.night_counts("2026-03-14").unwrap().frames, 3);
+}
+
+#[test]
+fn a_claim_lost_with_the_servers_sessions_is_taken_again_unless_another_daemon_has_it() {
+    let db = TestDatabase::new();
+    let at = db.location();
+    let name = db.url.rsplit('/').next().unwrap().to_string();
+    let end_sessions = || {
+        let mut admin =
+            postgres::Client::connect(&common::postgres::server(), postgres::NoTls).unwrap();
+        admin
+            .execute(
+                "SELECT pg_terminate_backend(pid) FROM pg_stat_activity WHERE datname = $1",
+                &[&name],
+            )
+            .unwrap();
+    };
+    // The first answer after the break may still be the broken connection's.
+    let settled = |c: &subwatch::store::PgClaim| {
+        let _ = c.keep();
+        c.keep().unwrap()
+    };
+    let north = subwatch::store::claim_rig(&at, "north").unwrap();
+    assert!(north.keep().unwrap());
+    end_sessions();
+    assert!(settled(&north), "nobody else wanted it: taken again");
+    assert!(subwatch::store::rig_daemon(&at, "north").is_some());
+    end_sessions();
+    let usurper = subwatch::store::claim_rig(&at, "north").unwrap();
+    assert!(!settled(&north), "another daemon took the rig first");
+    drop(usurper);
 }

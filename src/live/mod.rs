@@ -39,6 +39,21 @@ pub struct LiveView {
     pub plots: Vec<LivePlot>,
     pub sky: Option<SkyNow>,
     pub health: Health,
+    /// Every rig with frames tonight, where several share the store (empty otherwise).
+    pub rigs: Vec<LiveRig>,
+}
+
+/// One rig of a site sharing the store, as the page lists it.
+#[derive(Debug, Clone, Default, Serialize)]
+pub struct LiveRig {
+    pub rig: String,
+    pub frames: i64,
+    pub warned: i64,
+    pub rejected: i64,
+    /// The site's clock when its last frame was recorded.
+    pub last_recorded_local: Option<String>,
+    /// Seconds since its daemon last said it was alive, if it ever did.
+    pub heard_s_ago: Option<f64>,
 }
 
 #[derive(Debug, Clone, Default, Serialize)]
@@ -298,6 +313,28 @@ pub fn part(v: &LiveView) -> String {
     }
     h.push_str("</section>");
 
+    if v.rigs.len() > 1 {
+        h.push_str("<section id=\"rigs\"><h2>Rigs of the site</h2><div class=\"scroll\"><table><tr><th>rig</th><th>frames</th><th>warn</th><th>reject</th><th>last frame</th><th>daemon</th></tr>");
+        for r in &v.rigs {
+            let heard = match r.heard_s_ago {
+                Some(s) if s <= 60.0 => format!("heard {s:.0} s ago"),
+                Some(s) => format!("silent for {}", minutes(s)),
+                None => "never heard".into(),
+            };
+            let _ = write!(
+                h,
+                "<tr><td>{}</td><td class=\"n\">{}</td><td class=\"n warn\">{}</td><td class=\"n reject\">{}</td><td>{}</td><td>{}</td></tr>",
+                e(if r.rig.is_empty() { "(unnamed)" } else { &r.rig }),
+                r.frames,
+                r.warned,
+                r.rejected,
+                e(r.last_recorded_local.as_deref().unwrap_or("-")),
+                e(&heard)
+            );
+        }
+        h.push_str("</table></div></section>");
+    }
+
     h.push_str("<section id=\"latest\"><h2>Latest frame</h2>");
     match &v.latest {
         Some(l) => {
@@ -555,6 +592,28 @@ pub fn part(v: &LiveView) -> String {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn a_site_lists_its_rigs_and_one_rig_does_not() {
+        let rig = |name: &str, heard: Option<f64>| LiveRig {
+            rig: name.into(),
+            frames: 100,
+            warned: 3,
+            rejected: 2,
+            last_recorded_local: Some("01:02:03".into()),
+            heard_s_ago: heard,
+        };
+        let mut v = LiveView {
+            rigs: vec![rig("north <pier>", Some(4.0))],
+            ..Default::default()
+        };
+        assert!(!part(&v).contains("Rigs of the site"));
+        v.rigs.push(rig("south pier", Some(600.0)));
+        let h = part(&v);
+        assert!(h.contains("Rigs of the site"), "{h}");
+        assert!(h.contains("north &lt;pier&gt;") && h.contains("heard 4 s ago"));
+        assert!(h.contains("silent for 10 min"));
+    }
 
     #[test]
     fn values_from_files_are_escaped_everywhere_they_show() {

@@ -93,6 +93,22 @@ impl Store {
         }
     }
 
+    /// A small fact of another rig's (its daemon's heartbeat, for a site's page).
+    pub fn rig_meta(&self, rig: &str, key: &str) -> Result<Option<String>, StoreError> {
+        let key = if rig.is_empty() {
+            key.to_string()
+        } else {
+            format!("rig {rig}: {key}")
+        };
+        match self
+            .rows("SELECT value FROM meta WHERE key = ?1", values![key])?
+            .first()
+        {
+            Some(r) => r.get(0).map(Some).map_err(|e| self.err(e)),
+            None => Ok(None),
+        }
+    }
+
     /// The key this rig keeps `key` under: as given for an unnamed rig, "rig NAME: key"
     /// for a named one.
     fn meta_key(&self, key: &str) -> String {

@@ -35,13 +35,21 @@ impl Store {
                     self.rig
                 ],
             )?;
-            for s in sources {
-                c.execute(
-                    "INSERT INTO catalog (target, filter, night, ra_deg, dec_deg, mag, rig)
-                     VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7)",
-                    values![target, filter, night, s.ra_deg, s.dec_deg, s.mag, self.rig],
-                )?;
-            }
+            let rows: Vec<Vec<super::db::Value>> = sources
+                .iter()
+                .enumerate()
+                .map(|(seq, s)| {
+                    values![target, filter, night, s.ra_deg, s.dec_deg, s.mag, self.rig, seq]
+                        .to_vec()
+                })
+                .collect();
+            c.insert_rows(
+                "catalog",
+                &[
+                    "target", "filter", "night", "ra_deg", "dec_deg", "mag", "rig", "seq",
+                ],
+                &rows,
+            )?;
             Ok::<_, DbError>(())
         })
         .map_err(|e| self.err(e))
@@ -89,7 +97,8 @@ impl Store {
             let sources = self
                 .rows(
                     "SELECT ra_deg, dec_deg, mag FROM catalog
-                     WHERE target = ?1 AND filter = ?2 AND night = ?3 AND rig = ?4",
+                     WHERE target = ?1 AND filter = ?2 AND night = ?3 AND rig = ?4
+                     ORDER BY seq",
                     values![target, filter, n, rig],
                 )?
                 .iter()

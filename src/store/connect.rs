@@ -192,7 +192,50 @@ pub(super) fn open_sqlite_read_only(path: &Path) -> Result<Conn, StoreError> {
 /// held on a connection of its own for the daemon's life. The server lets it go when the
 /// connection ends, so a killed daemon leaves no claim behind.
 pub struct PgClaim {
-    _conn: Conn,
+    conn: Conn,
+    key: i64,
+    rig: String,
+}
+
+impl PgClaim {
+    /// Whether this daemon still holds its rig. A server that restarted (or a broken
+    /// connection) took the lock with the session: it is taken again on a new one, unless
+    /// another daemon of the same rig took it meanwhile. A server still away counts as
+    /// held (nobody else can have it there).
+    pub fn keep(&self) -> Result<bool, StoreError> {
+        let mine: Result<bool, DbError> = self
+            .conn
+            .query_one(
+                "SELECT EXISTS (SELECT 1 FROM pg_locks WHERE locktype = 'advisory' AND granted
+                    AND pid = pg_backend_pid() AND classid::bigint = ?1
+                    AND objid::bigint = ?2 AND objsubid = 1)",
+                values![lock_halves(self.key).0, lock_halves(self.key).1],
+            )
+            .and_then(|r| r.get(0));
+        let retaken = match mine {
+            Ok(true) => return Ok(true),
+            Ok(false) => self
+                .conn
+                .query_one("SELECT pg_try_advisory_lock(?1)", values![self.key])
+                .and_then(|r| r.get(0)),
+            Err(e) => Err(e),
+        };
+        match retaken {
+            Ok(got) => Ok(got),
+            Err(e) if e.is_connection() => Ok(true),
+            Err(source) => Err(StoreError::Database {
+                store: format!("rig '{}'", self.rig),
+                source,
+            }),
+        }
+    }
+}
+
+/// How PostgreSQL shows a 64-bit advisory key in `pg_locks`: its high half as `classid`,
+/// its low half as `objid` (with `objsubid` 1).
+fn lock_halves(key: i64) -> (i64, i64) {
+    let k = key as u64;
+    ((k >> 32) as i64, (k & 0xffff_ffff) as i64)
 }
 
 /// The advisory lock key of a rig (FNV-1a of its name: stable across runs and builds).
@@ -240,18 +283,30 @@ pub fn claim_rig(location: &Location, rig: &str) -> Result<PgClaim, StoreError> 
         values![key, me],
     )
     .map_err(err)?;
-    Ok(PgClaim { _conn: conn })
+    Ok(PgClaim {
+        conn,
+        key: rig_key(rig),
+        rig: rig.to_string(),
+    })
 }
 
 /// The daemon holding `rig` in the database at `location` now, if one does ("PID on
 /// HOST"): its lock is tried, and let go at once when it was free.
 pub fn rig_daemon(location: &Location, rig: &str) -> Option<String> {
     let conn = open(location).ok()?;
-    let free: bool = conn
-        .query_one("SELECT pg_try_advisory_lock(?1)", values![rig_key(rig)])
+    // Looked up, not tried: trying would hold it a moment, and refuse a daemon starting
+    // just then.
+    let (high, low) = lock_halves(rig_key(rig));
+    let held: bool = conn
+        .query_one(
+            "SELECT EXISTS (SELECT 1 FROM pg_locks WHERE locktype = 'advisory' AND granted
+                AND classid::bigint = ?1 AND objid::bigint = ?2 AND objsubid = 1
+                AND database = (SELECT oid FROM pg_database WHERE datname = current_database()))",
+            values![high, low],
+        )
         .and_then(|r| r.get(0))
         .ok()?;
-    if free {
+    if !held {
         return None;
     }
     conn.query_opt(
@@ -269,6 +324,17 @@ pub fn rig_daemon(location: &Location, rig: &str) -> Option<String> {
 pub enum Claim {
     File(super::DaemonLock),
     Server(PgClaim),
+}
+
+impl Claim {
+    /// Whether this daemon still holds its store (see [`PgClaim::keep`]); a file's lock
+    /// is held as long as the process lives.
+    pub fn keep(&self) -> Result<bool, StoreError> {
+        match self {
+            Claim::File(_) => Ok(true),
+            Claim::Server(c) => c.keep(),
+        }
+    }
 }
 
 /// Claim the configured store (and rig) for this daemon.

@@ -53,6 +53,12 @@ pub fn copy(from: &std::path::Path, to: &Location) -> Result<Copied, StoreError>
         .map(|r| r.get(0))
         .collect::<Result<_, _>>()
         .map_err(|e| source.err(e))?;
+    if rigs.iter().any(String::is_empty) {
+        return Err(StoreError::Settings {
+            store: source.place.clone(),
+            message: "holds frames of a rig without a name; name it (store copy --rig NAME) so the site can tell its frames from another rig's".into(),
+        });
+    }
     for rig in &rigs {
         let there = count(
             &dest.conn,
@@ -71,6 +77,13 @@ pub fn copy(from: &std::path::Path, to: &Location) -> Result<Copied, StoreError>
     }
     let mut copied = Vec::new();
     let dc = &dest.conn;
+    // One snapshot for the counts before and after: rigs still recording meanwhile
+    // change nothing this transaction sees but its own rows.
+    dc.batch(match dc.kind() {
+        super::Kind::Postgres => "BEGIN ISOLATION LEVEL REPEATABLE READ",
+        super::Kind::Sqlite => "BEGIN",
+    })
+    .map_err(|e| dest.err(e))?;
     let mut before: HashMap<&str, i64> = HashMap::new();
     for table in ["frames"]
         .iter()
@@ -78,11 +91,14 @@ pub fn copy(from: &std::path::Path, to: &Location) -> Result<Copied, StoreError>
         .chain(PLAIN_TABLES)
         .chain(ID_TABLES)
     {
-        let n =
-            count(dc, &format!("SELECT COUNT(*) FROM {table}"), &[]).map_err(|e| dest.err(e))?;
-        before.insert(table, n);
+        match count(dc, &format!("SELECT COUNT(*) FROM {table}"), &[]) {
+            Ok(n) => before.insert(table, n),
+            Err(e) => {
+                let _ = dc.batch("ROLLBACK");
+                return Err(dest.err(e));
+            }
+        };
     }
-    dc.batch("BEGIN").map_err(|e| dest.err(e))?;
     let result = (|| -> Result<(), StoreError> {
         let at_dest = |e| dest.err(e);
         let at_source = |e| source.err(e);
@@ -117,24 +133,21 @@ pub fn copy(from: &std::path::Path, to: &Location) -> Result<Copied, StoreError>
                 .into_iter()
                 .filter(|c| c != "frame_id")
                 .collect();
-            let insert = format!(
-                "INSERT INTO {table} (frame_id, {}) VALUES (?1, {})",
-                cols.join(", "),
-                placeholders(cols.len(), 2)
-            );
-            let mut n = 0;
+            let mut rows = Vec::new();
             for row in source.rows(
                 &format!("SELECT frame_id, {} FROM {table}", cols.join(", ")),
                 &[],
             )? {
                 let old: i64 = row.get(0).map_err(at_source)?;
                 let Some(id) = new_id.get(&old) else { continue };
-                let mut params = vec![Value::Int(*id)];
-                params.extend_from_slice(&row.0[1..]);
-                dc.execute(&insert, &params).map_err(at_dest)?;
-                n += 1;
+                let mut values = vec![Value::Int(*id)];
+                values.extend_from_slice(&row.0[1..]);
+                rows.push(values);
             }
-            copied.push((table.to_string(), n));
+            let mut names = vec!["frame_id"];
+            names.extend(cols.iter().map(String::as_str));
+            dc.insert_rows(table, &names, &rows).map_err(at_dest)?;
+            copied.push((table.to_string(), rows.len() as i64));
         }
         for (table, keep_id) in PLAIN_TABLES
             .iter()

@@ -36,7 +36,7 @@ pub enum DbError {
     },
     #[error("the query returned no row")]
     NoRow,
-    #[error("the connection to the database server broke")]
+    #[error("the connection to the database server is broken (tried again within seconds)")]
     Broken,
     #[error("{0}")]
     Other(String),
@@ -79,13 +79,22 @@ impl DbError {
                 // could not convert.
                 None => {
                     let text = e.to_string();
+                    // A certificate refused is a setting to mend, not a server away.
+                    if text.starts_with("error performing TLS handshake") {
+                        return false;
+                    }
                     e.is_closed()
                         || std::error::Error::source(e).is_some_and(|s| s.is::<std::io::Error>())
                         || text.starts_with("error connecting")
                         || text.starts_with("error communicating")
                         || text.contains("timeout")
                 }
-                Some(db) => e.is_closed() || matches!(&db.code().code()[..2], "08" | "57"),
+                // 57014 is a statement cancelled, not the server going.
+                Some(db) => {
+                    e.is_closed()
+                        || (matches!(&db.code().code()[..2], "08" | "57")
+                            && db.code().code() != "57014")
+                }
             },
             DbError::Broken => true,
             _ => false,
@@ -134,8 +143,14 @@ impl IntoValue for Vec<u8> {
     }
 }
 impl IntoValue for f64 {
+    /// A value that is not a number (or infinite) is kept as NULL, as SQLite keeps NaN:
+    /// both back ends then read back the same.
     fn to_value(&self) -> Value {
-        Value::Real(*self)
+        if self.is_finite() {
+            Value::Real(*self)
+        } else {
+            Value::Null
+        }
     }
 }
 impl IntoValue for bool {
@@ -363,7 +378,13 @@ pub struct PgConn {
     client: Option<postgres::Client>,
     statements: HashMap<String, postgres::Statement>,
     in_transaction: bool,
+    /// After a failed connect, calls fail at once until then (a server away is not
+    /// asked again by every call: each could wait out the connect timeout).
+    quiet_until: Option<std::time::Instant>,
 }
+
+/// How long a failed connect keeps the next calls from trying again.
+const RECONNECT_PAUSE: std::time::Duration = std::time::Duration::from_secs(5);
 
 impl PgConn {
     fn client(&mut self) -> Result<&mut postgres::Client, DbError> {
@@ -372,14 +393,31 @@ impl PgConn {
             if self.in_transaction {
                 return Err(DbError::Broken);
             }
+            if self
+                .quiet_until
+                .is_some_and(|t| std::time::Instant::now() < t)
+            {
+                return Err(DbError::Broken);
+            }
             self.statements.clear();
             self.client = None;
-            self.client = Some(connect(&self.config, &self.tls)?);
+            match connect(&self.config, &self.tls) {
+                Ok(c) => {
+                    self.quiet_until = None;
+                    self.client = Some(c);
+                }
+                Err(e) => {
+                    self.quiet_until = Some(std::time::Instant::now() + RECONNECT_PAUSE);
+                    return Err(e.into());
+                }
+            }
         }
         self.client.as_mut().ok_or(DbError::Broken)
     }
 
     fn statement(&mut self, sql: &str) -> Result<postgres::Statement, DbError> {
+        // Connected first: a new connection has none of the old one's statements.
+        self.client()?;
         if let Some(st) = self.statements.get(sql) {
             return Ok(st.clone());
         }
@@ -447,6 +485,7 @@ impl Conn {
             client: Some(client),
             statements: HashMap::new(),
             in_transaction: false,
+            quiet_until: None,
         }))))
     }
 
@@ -572,7 +611,7 @@ impl Conn {
                 // A transaction's statements stay on the connection that began it.
                 let ends = matches!(sql, "COMMIT" | "ROLLBACK");
                 let result = pg.client().and_then(|c| Ok(c.batch_execute(sql)?));
-                if sql == "BEGIN" && result.is_ok() {
+                if sql.starts_with("BEGIN") && result.is_ok() {
                     pg.in_transaction = true;
                 } else if ends {
                     pg.in_transaction = false;

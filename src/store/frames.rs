@@ -235,10 +235,12 @@ impl Store {
             let stars: Vec<Vec<Value>> = f
                 .stars
                 .iter()
-                .map(|s| {
+                .enumerate()
+                .map(|(seq, s)| {
                     let rgb = |i: usize| s.rgb.and_then(|c| c[i]);
                     values![
                         frame_id,
+                        seq,
                         s.x,
                         s.y,
                         s.flux,
@@ -260,6 +262,7 @@ impl Store {
                 "stars",
                 &[
                     "frame_id",
+                    "seq",
                     "x",
                     "y",
                     "flux",
@@ -279,11 +282,14 @@ impl Store {
             let rejected: Vec<Vec<Value>> = f
                 .rejected
                 .iter()
-                .map(|r| values![frame_id, r.x, r.y, r.kind.as_str(), r.peak_adu].to_vec())
+                .enumerate()
+                .map(|(seq, r)| {
+                    values![frame_id, seq, r.x, r.y, r.kind.as_str(), r.peak_adu].to_vec()
+                })
                 .collect();
             c.insert_rows(
                 "rejected",
-                &["frame_id", "x", "y", "kind", "peak_adu"],
+                &["frame_id", "seq", "x", "y", "kind", "peak_adu"],
                 &rejected,
             )?;
             c.execute(
@@ -470,7 +476,7 @@ impl Store {
         self.rows(
             "SELECT x, y, flux, fwhm_px, eccentricity, snr, ra_deg, dec_deg, r, g, b, flux_err,
                 blended
-             FROM stars WHERE frame_id = ?1",
+             FROM stars WHERE frame_id = ?1 ORDER BY seq",
             values![id],
         )?
         .iter()
@@ -481,7 +487,7 @@ impl Store {
 
     fn frame_rejected(&self, id: i64) -> Result<Vec<Rejected>, StoreError> {
         self.rows(
-            "SELECT x, y, kind, peak_adu FROM rejected WHERE frame_id = ?1",
+            "SELECT x, y, kind, peak_adu FROM rejected WHERE frame_id = ?1 ORDER BY seq",
             values![id],
         )?
         .iter()
@@ -651,6 +657,33 @@ impl Store {
         .map_err(|e| self.err(e))
     }
 
+    /// The verdicts this rig's frames of `night` hold in the store, by path: (verdict,
+    /// reasons). A frame not judged yet is left out.
+    pub fn stored_verdicts(
+        &self,
+        night: &str,
+    ) -> Result<std::collections::HashMap<String, (Verdict, Vec<String>)>, StoreError> {
+        let rows = self.rows(
+            "SELECT path, verdict, reasons_json FROM frames
+             WHERE night = ?1 AND rig = ?2 AND verdict IS NOT NULL",
+            values![night, self.rig],
+        )?;
+        let mut out = std::collections::HashMap::new();
+        for r in &rows {
+            let read = || -> Result<(String, String, Option<String>), DbError> {
+                Ok((r.get(0)?, r.get(1)?, r.get(2)?))
+            };
+            let (path, verdict, reasons) = read().map_err(|e| self.err(e))?;
+            if let Some(v) = Verdict::from_name(&verdict) {
+                let reasons = reasons
+                    .and_then(|j| serde_json::from_str(&j).ok())
+                    .unwrap_or_default();
+                out.insert(path, (v, reasons));
+            }
+        }
+        Ok(out)
+    }
+
     /// Paths of the frames of one night, target and filter to stack: verdict ok, and
     /// warn when `with_warned`.
     pub fn accepted_paths(
@@ -736,6 +769,44 @@ impl Store {
             })
         };
         counts().map_err(|e| self.err(e))
+    }
+
+    /// Every rig's counts for one night, by rig name (a site's page).
+    pub fn night_counts_by_rig(
+        &self,
+        night: &str,
+    ) -> Result<Vec<(String, NightCounts)>, StoreError> {
+        self.rows(
+            "SELECT rig, COUNT(*),
+                    COUNT(CASE WHEN status = 'ok' THEN 1 END),
+                    COUNT(CASE WHEN status = 'error' THEN 1 END),
+                    COUNT(CASE WHEN status = 'skipped' THEN 1 END),
+                    COUNT(CASE WHEN verdict = 'warn' THEN 1 END),
+                    COUNT(CASE WHEN verdict = 'reject' THEN 1 END),
+                    COUNT(CASE WHEN time_unix IS NULL THEN 1 END),
+                    MAX(time_unix), MAX(recorded_at)
+             FROM frames WHERE night = ?1 GROUP BY rig ORDER BY rig",
+            values![night],
+        )?
+        .iter()
+        .map(|r| {
+            Ok((
+                r.get(0)?,
+                NightCounts {
+                    frames: r.get(1)?,
+                    measured: r.get(2)?,
+                    errors: r.get(3)?,
+                    skipped: r.get(4)?,
+                    warned: r.get(5)?,
+                    rejected: r.get(6)?,
+                    undated: r.get(7)?,
+                    last_frame_time_unix: r.get(8)?,
+                    last_recorded_unix: r.get(9)?,
+                },
+            ))
+        })
+        .collect::<Result<_, DbError>>()
+        .map_err(|e| self.err(e))
     }
 
     /// The first column of every row of a query, as text.

@@ -224,14 +224,15 @@ impl Store {
     /// morning summary) for `holder` until `now + seconds`. Taken when nobody holds it,
     /// or when its holder's time ran out without it being done (that daemon died); never
     /// when it is done. Atomic on both back ends: an insert that does nothing on a
-    /// conflict, and a compare-and-set of the expired value.
+    /// conflict, and a compare-and-set of the expired value. Returns the lease (what
+    /// finishing or giving it back names), or `None` when another holds it or it is done.
     pub fn take_lease(
         &self,
         key: &str,
         holder: &str,
         now: f64,
         seconds: f64,
-    ) -> Result<bool, StoreError> {
+    ) -> Result<Option<String>, StoreError> {
         let key = format!("site {key}");
         let held = serde_json::json!({"held_by": holder, "until": now + seconds}).to_string();
         let inserted = self
@@ -242,7 +243,7 @@ impl Store {
             )
             .map_err(|e| self.err(e))?;
         if inserted == 1 {
-            return Ok(true);
+            return Ok(Some(held));
         }
         let Some(before) = self
             .rows("SELECT value FROM meta WHERE key = ?1", values![key])?
@@ -251,7 +252,7 @@ impl Store {
             .transpose()
             .map_err(|e| self.err(e))?
         else {
-            return Ok(false);
+            return Ok(None);
         };
         let parsed: serde_json::Value = serde_json::from_str(&before).unwrap_or_default();
         let expired = parsed.get("done_by").is_none()
@@ -260,7 +261,7 @@ impl Store {
                 .and_then(serde_json::Value::as_f64)
                 .is_none_or(|until| until < now);
         if !expired {
-            return Ok(false);
+            return Ok(None);
         }
         let swapped = self
             .conn
@@ -269,25 +270,39 @@ impl Store {
                 values![key, before, held],
             )
             .map_err(|e| self.err(e))?;
-        Ok(swapped == 1)
+        Ok((swapped == 1).then_some(held))
     }
 
-    /// The lease `key` done: nobody takes it again.
-    pub fn finish_lease(&self, key: &str, holder: &str, now: f64) -> Result<(), StoreError> {
-        self.run(
-            "UPDATE meta SET value = ?2 WHERE key = ?1",
-            values![
-                format!("site {key}"),
-                serde_json::json!({"done_by": holder, "at": now}).to_string()
-            ],
-        )
+    /// The lease `key` done: nobody takes it again. Only while `lease` (what
+    /// [`Store::take_lease`] returned) is still the one held: a holder whose time ran
+    /// out and was taken over does not mark the new holder's done. Returns whether it
+    /// was.
+    pub fn finish_lease(
+        &self,
+        key: &str,
+        lease: &str,
+        holder: &str,
+        now: f64,
+    ) -> Result<bool, StoreError> {
+        self.conn
+            .execute(
+                "UPDATE meta SET value = ?3 WHERE key = ?1 AND value = ?2",
+                values![
+                    format!("site {key}"),
+                    lease,
+                    serde_json::json!({"done_by": holder, "at": now}).to_string()
+                ],
+            )
+            .map(|n| n == 1)
+            .map_err(|e| self.err(e))
     }
 
-    /// The lease `key` given back undone (the job failed): another may take it now.
-    pub fn release_lease(&self, key: &str) -> Result<(), StoreError> {
+    /// The lease `key` given back undone (the job failed): another may take it now. Only
+    /// while `lease` is still the one held.
+    pub fn release_lease(&self, key: &str, lease: &str) -> Result<(), StoreError> {
         self.run(
-            "DELETE FROM meta WHERE key = ?1",
-            values![format!("site {key}")],
+            "DELETE FROM meta WHERE key = ?1 AND value = ?2",
+            values![format!("site {key}"), lease],
         )
     }
 

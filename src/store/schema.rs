@@ -9,7 +9,7 @@
 use super::db::{values, Conn, DbError, Kind};
 use super::StoreError;
 
-pub const SCHEMA_VERSION: i64 = 11;
+pub const SCHEMA_VERSION: i64 = 12;
 
 /// Migrations (numbered from 1) that rebuild a table, run with foreign keys off.
 const REBUILDS_TABLES: &[usize] = &[10];
@@ -191,6 +191,15 @@ pub(crate) const MIGRATIONS: &[&str] = &[
      ALTER TABLE catalog ADD COLUMN rig TEXT NOT NULL DEFAULT '';
      DROP INDEX catalog_target;
      CREATE INDEX catalog_target ON catalog (target, filter, night, rig);",
+    // 12: the order of a frame's stars and rejected detections, and of a catalogue's
+    // sources, kept as written: PostgreSQL, unlike SQLite, promises no order of rows
+    // read back. Rows from before keep SQLite's own order (their rowid).
+    "ALTER TABLE stars ADD COLUMN seq INTEGER;
+     UPDATE stars SET seq = rowid;
+     ALTER TABLE rejected ADD COLUMN seq INTEGER;
+     UPDATE rejected SET seq = rowid;
+     ALTER TABLE catalog ADD COLUMN seq INTEGER;
+     UPDATE catalog SET seq = rowid;",
 ];
 
 /// Migrations PostgreSQL runs in place of SQLite's text (which rebuilds a table there).
@@ -215,6 +224,12 @@ const POSTGRES_INSTEAD: &[(usize, &str)] = &[
          ALTER TABLE catalog ADD COLUMN rig TEXT NOT NULL DEFAULT '';
          DROP INDEX catalog_target;
          CREATE INDEX catalog_target ON catalog (target, filter, night, rig);",
+    ),
+    (
+        12,
+        "ALTER TABLE stars ADD COLUMN seq INTEGER;
+         ALTER TABLE rejected ADD COLUMN seq INTEGER;
+         ALTER TABLE catalog ADD COLUMN seq INTEGER;",
     ),
 ];
 

@@ -272,17 +272,19 @@ fn summary_if_due(store: &Store, config: &Config, now: f64) {
     // A site's summary is sent by one daemon: the one that takes the site's lease. A
     // daemon that dies holding it lets it run out, and another sends the summary then.
     let site = config.mail.summary_of_site;
-    if site {
-        let holder = format!("rig '{}' (process {})", config.rig.name, std::process::id());
+    let holder = format!("rig '{}' (process {})", config.rig.name, std::process::id());
+    let lease = if site {
         match store.take_lease(&key, &holder, now, SITE_SUMMARY_LEASE_SECONDS) {
-            Ok(true) => {}
-            Ok(false) => return,
+            Ok(Some(lease)) => Some(lease),
+            Ok(None) => return,
             Err(e) => {
                 tracing::error!("site summary of {night}: {e}");
                 return;
             }
         }
-    }
+    } else {
+        None
+    };
     // The store is locked by the caller; prepare reads it through a second connection.
     let result = Store::open_configured(config)
         .map_err(crate::morning::MorningError::from)
@@ -292,9 +294,19 @@ fn summary_if_due(store: &Store, config: &Config, now: f64) {
         });
     match result {
         Ok(_) => {
-            let _ = store.set_meta(&key, &now.to_string());
-            if site {
-                let _ = store.finish_lease(&key, &config.rig.name, now);
+            if let Err(e) = store.set_meta(&key, &now.to_string()) {
+                tracing::error!("morning summary of {night} queued, but not marked sent: {e}");
+            }
+            if let Some(lease) = &lease {
+                match store.finish_lease(&key, lease, &holder, now) {
+                    Ok(true) => {}
+                    Ok(false) => tracing::warn!(
+                        "site summary of {night}: queued after this daemon's lease ran out; another daemon may send it too"
+                    ),
+                    Err(e) => {
+                        tracing::error!("site summary of {night} queued, but not marked sent: {e}")
+                    }
+                }
             }
             tracing::info!(
                 "morning summary of {night}{} queued for mail",
@@ -302,8 +314,8 @@ fn summary_if_due(store: &Store, config: &Config, now: f64) {
             );
         }
         Err(e) => {
-            if site {
-                let _ = store.release_lease(&key);
+            if let Some(lease) = &lease {
+                let _ = store.release_lease(&key, lease);
             }
             tracing::error!("morning summary of {night} not made: {e}");
         }

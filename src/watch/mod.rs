@@ -161,7 +161,7 @@ async fn daemon(
     // A shared database not reachable yet (the server starting with the PC) is waited
     // for, said once; anything else wrong with the store stops the start.
     let mut said = false;
-    let (_claim, mut store) = loop {
+    let (claim, mut store) = loop {
         let opened = crate::store::claim_configured(&config)
             .and_then(|claim| Ok((claim, Store::open_configured(&config)?)));
         match opened {
@@ -201,6 +201,7 @@ async fn daemon(
             None
         }
     };
+    let claim = Arc::new(Mutex::new(claim));
     let mut recorded: HashMap<String, (u64, i64)> = store.recorded_versions()?;
     let lists = crate::lists::Lists::from_config(&config);
     let filter = crate::walk::FrameFilter::from_config(&config);
@@ -374,12 +375,29 @@ async fn daemon(
                     "updated_unix": wall.now_unix(),
                 });
                 let shared = shared.clone();
-                let _ = tokio::task::spawn_blocking(move || {
-                    let store = shared.store.lock().unwrap_or_else(|p| p.into_inner());
-                    if let Err(e) = store.set_meta("daemon", &state.to_string()) {
-                        tracing::debug!("heartbeat: {e}");
+                let claim = claim.clone();
+                let kept = tokio::task::spawn_blocking(move || {
+                    if !shared.outage.away() {
+                        let store = shared.store.lock().unwrap_or_else(|p| p.into_inner());
+                        if let Err(e) = store.set_meta("daemon", &state.to_string()) {
+                            tracing::debug!("heartbeat: {e}");
+                        }
                     }
+                    // A shared store's server that restarted took the rig's claim with
+                    // it: taken again, unless another daemon of this rig took it first.
+                    claim.lock().unwrap_or_else(|p| p.into_inner()).keep()
                 }).await;
+                match kept {
+                    Ok(Ok(false)) => {
+                        tracing::error!(
+                            "another daemon took rig '{}' while the store's server was away; this one stops (give each daemon its own rig name)",
+                            config.rig.name
+                        );
+                        break "another daemon holds this rig";
+                    }
+                    Ok(Err(e)) => tracing::debug!("claim: {e}"),
+                    _ => {}
+                }
             }
             Some(done) = jobs.join_next() => {
                 let (was_retry, outcomes) = match done {

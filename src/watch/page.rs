@@ -105,6 +105,8 @@ pub fn run(config: Config, clock: Arc<dyn Clock>, state: Arc<PageState>) {
     let mut previous: Option<(i64, Bytes, usize, usize)> = None;
     let mut last_part = String::new();
     let mut version = 0u64;
+    // A store that fails (a shared server away) is said once, not at every refresh.
+    let mut said = false;
     while !state.stop.load(Ordering::Relaxed) {
         let now = clock.now_unix();
         let looked_at = state.looked_at(now);
@@ -115,7 +117,12 @@ pub fn run(config: Config, clock: Arc<dyn Clock>, state: Arc<PageState>) {
                 // connection only ever reads.
                 Some(_) => Store::open_configured(&config),
             }
-            .map_err(|e| tracing::warn!("status page: {e}"))
+            .map_err(|e| {
+                if !said {
+                    tracing::warn!("status page: {e} (said once until it works again)");
+                    said = true;
+                }
+            })
             .ok();
         }
         if let Some(s) = &store {
@@ -131,6 +138,7 @@ pub fn run(config: Config, clock: Arc<dyn Clock>, state: Arc<PageState>) {
                 &mut previous,
             ) {
                 Ok((mut view, images)) => {
+                    said = false;
                     let part = live::part(&view);
                     if part != last_part {
                         version += 1;
@@ -148,7 +156,10 @@ pub fn run(config: Config, clock: Arc<dyn Clock>, state: Arc<PageState>) {
                     *state.snapshot.write().unwrap_or_else(|p| p.into_inner()) = Arc::new(snapshot);
                 }
                 Err(e) => {
-                    tracing::warn!("status page: {e}");
+                    if !said {
+                        tracing::warn!("status page: {e} (said once until it works again)");
+                        said = true;
+                    }
                     store = None;
                 }
             }
@@ -202,6 +213,25 @@ fn build(
     let night = night.unwrap_or_default();
     let frames = store.night_live_frames(&night)?;
     let counts = store.night_counts(&night)?;
+    // Where rigs share the store, every rig of the night, with when its daemon last said
+    // it was alive (its heartbeat).
+    if config.store.url.is_some() {
+        for (rig, c) in store.night_counts_by_rig(&night)? {
+            let heard = store
+                .rig_meta(&rig, "daemon")?
+                .and_then(|d| serde_json::from_str::<serde_json::Value>(&d).ok())
+                .and_then(|d| d["updated_unix"].as_f64())
+                .map(|t| (now - t).max(0.0));
+            view.rigs.push(live::LiveRig {
+                rig,
+                frames: c.frames,
+                warned: c.warned,
+                rejected: c.rejected,
+                last_recorded_local: c.last_recorded_unix.and_then(clock_of),
+                heard_s_ago: heard,
+            });
+        }
+    }
 
     // Per group, in the summary's order (target, then filter).
     let mut groups: Vec<live::LiveGroup> = Vec::new();

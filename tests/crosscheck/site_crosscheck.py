@@ -11,7 +11,7 @@ standard email parser. Checked:
 - each rig's verdicts equal those of the same frames recorded by a daemon into an SQLite
   store (read back with Python's sqlite3);
 - `report --site --json` gives every rig's frames, each naming its rig, and
-  `status --site --json` every rig's count and running daemon;
+  `status --site --json` and the status page every rig's count and running daemon;
 - with the summary set to cover the site, the three daemons mail one summary, once,
   naming every rig;
 - the server stopped for 60 s with a daemon running: the frames that land meanwhile are
@@ -36,6 +36,7 @@ import subprocess
 import sys
 import tempfile
 import time
+import urllib.request
 from email import policy
 
 from aiosmtpd.controller import Controller
@@ -230,7 +231,9 @@ def main():
                           by_rig == {r: FRAMES for r in RIGS}, f"{by_rig} {out.stderr.strip()[-200:]}")
 
             # The site's summary: three daemons, one mail.
-            summary = [config(k, f'url = "{url}"', 'summary_time = "00:01"\nsummary_of = "site"\n')
+            web_port = free_port()
+            summary = [config(k, f'url = "{url}"', 'summary_time = "00:01"\nsummary_of = "site"\n'
+                              + (f'[web]\nlisten = "127.0.0.1:{web_port}"\n' if k == 0 else ""))
                        for k in range(len(RIGS))]
             for k in range(len(RIGS)):
                 start(k, summary[k])
@@ -244,6 +247,15 @@ def main():
             seen = {r["rig"]: (r["counts"]["frames"], r["daemon"] is not None) for r in rigs}
             checks.record("status --site shows every rig's frames and its running daemon",
                           seen == {r: (FRAMES, True) for r in RIGS}, f"{seen} {out.stderr.strip()[-200:]}")
+            try:
+                with urllib.request.urlopen(f"http://127.0.0.1:{web_port}/api/night", timeout=10) as page:
+                    view = json.loads(page.read())
+            except (OSError, ValueError) as e:
+                view = {"error": str(e)}
+            listed = {r["rig"]: (r["frames"], r["heard_s_ago"] is not None and r["heard_s_ago"] < 30)
+                      for r in view.get("rigs", [])}
+            checks.record("the status page lists every rig, its frames and a daemon heard lately",
+                          listed == {r: (FRAMES, True) for r in RIGS}, str(listed or view)[:300])
             for k in range(len(RIGS)):
                 daemons[k].send_signal(signal.SIGTERM)
                 daemons[k].wait(timeout=60)
