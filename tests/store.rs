@@ -259,6 +259,8 @@ fn verdicts_alerts_meta_outbox_and_catalogues_keep_what_was_stored() {
         s.mail_failed(id, "refused", 100.0).unwrap();
         assert_eq!(s.outbox_state().unwrap(), (1, Some("refused".into())));
         assert!(s.due_mail(6.0).unwrap().is_empty());
+        // "Now, whatever its wait" asks for everything due by +∞.
+        assert_eq!(s.due_mail(f64::INFINITY).unwrap().len(), 1, "{at}");
         s.mail_done(id, "sent", 101.0).unwrap();
         assert_eq!(s.outbox_state().unwrap(), (0, None));
 

@@ -37,6 +37,20 @@ pub fn check_config(config: &Path, send_test: bool) -> Result<ExitCode> {
         println!("error: {e:#}");
         return Ok(ExitCode::from(1));
     }
+    if cfg.store.url.is_some() {
+        // A shared store is reached now (address, password, TLS), and left as it is.
+        let location = subwatch::store::Location::from_config(&cfg.store);
+        match subwatch::store::probe(&location) {
+            Ok(0) => {
+                println!("store: reached {location} (no tables yet: the first daemon makes them)")
+            }
+            Ok(v) => println!("store: reached {location} (schema version {v})"),
+            Err(e) => {
+                println!("error: {e}");
+                return Ok(ExitCode::from(1));
+            }
+        }
+    }
     println!("{}: ok", config.display());
     if send_test {
         let settings = subwatch::mail::MailSettings::from_config(&cfg)?;

@@ -6,7 +6,7 @@
 use std::fmt;
 use std::path::{Path, PathBuf};
 
-use super::db::{values, Conn, DbError};
+use super::db::{values, Conn, DbError, Kind};
 use super::StoreError;
 
 /// Where a store is.
@@ -186,6 +186,43 @@ pub(super) fn open_sqlite_read_only(path: &Path) -> Result<Conn, StoreError> {
     conn.busy_timeout(std::time::Duration::from_secs(2))
         .map_err(err)?;
     Ok(Conn::Sqlite(conn))
+}
+
+/// Reach the store at `location` without changing it (`check-config`): the address, the
+/// password, TLS, and the schema version it holds (0 before any daemon made it), refused
+/// when it is newer than this program knows.
+pub fn probe(location: &Location) -> Result<i64, StoreError> {
+    let place = location.to_string();
+    let conn = open(location)?;
+    let err = |source| StoreError::Database {
+        store: place.clone(),
+        source,
+    };
+    let read = || -> Result<i64, DbError> {
+        match conn.kind() {
+            Kind::Sqlite => conn.query_one("PRAGMA user_version", &[])?.get(0),
+            Kind::Postgres => {
+                let made: bool = conn
+                    .query_one("SELECT to_regclass('schema_version') IS NOT NULL", &[])?
+                    .get(0)?;
+                if !made {
+                    return Ok(0);
+                }
+                conn.query_one("SELECT MAX(version) FROM schema_version", &[])?
+                    .get::<Option<i64>>(0)
+                    .map(|v| v.unwrap_or(0))
+            }
+        }
+    };
+    let version = read().map_err(err)?;
+    if version > super::SCHEMA_VERSION {
+        return Err(StoreError::TooNew {
+            store: place,
+            found: version,
+            known: super::SCHEMA_VERSION,
+        });
+    }
+    Ok(version)
 }
 
 /// A daemon's claim on its rig in a shared PostgreSQL store: a session advisory lock

@@ -143,13 +143,14 @@ impl IntoValue for Vec<u8> {
     }
 }
 impl IntoValue for f64 {
-    /// A value that is not a number (or infinite) is kept as NULL, as SQLite keeps NaN:
-    /// both back ends then read back the same.
+    /// A value that is not a number is kept as NULL, as SQLite keeps NaN: both back ends
+    /// then read back the same. Infinities are numbers to both (the outbox asks for
+    /// messages due by +∞).
     fn to_value(&self) -> Value {
-        if self.is_finite() {
-            Value::Real(*self)
-        } else {
+        if self.is_nan() {
             Value::Null
+        } else {
+            Value::Real(*self)
         }
     }
 }

@@ -21,7 +21,7 @@ mod outbox;
 mod schema;
 
 pub use connect::{
-    claim_configured, claim_rig, configured_daemon_pid, rig_daemon, Claim, Location, PgClaim,
+    claim_configured, claim_rig, configured_daemon_pid, probe, rig_daemon, Claim, Location, PgClaim,
 };
 pub use copy::{copy, Copied};
 pub use db::{DbError, Kind};

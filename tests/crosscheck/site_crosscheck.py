@@ -365,6 +365,15 @@ def tls_checks(binary, checks, server, pg_dir, url):
             checks.record("a certificate from an unknown authority is refused",
                           unknown.returncode != 0 and "certificate" in unknown.stderr.lower(),
                           unknown.stderr.strip()[-200:])
+            cfg = os.path.join(tmp, "tls.toml")
+            status(url + "?sslmode=require", f'ca_file = "{ca_file}"\n')
+            good_check = subprocess.run([binary, "check-config", "--config", cfg], capture_output=True, text=True)
+            status(url + "?sslmode=require", "")
+            bad_check = subprocess.run([binary, "check-config", "--config", cfg], capture_output=True, text=True)
+            checks.record("check-config reaches the store over TLS, and names a refused certificate",
+                          good_check.returncode == 0 and "store: reached" in good_check.stdout
+                          and bad_check.returncode == 1 and "UnknownIssuer" in bad_check.stdout,
+                          (good_check.stdout + bad_check.stdout).strip()[-300:])
         finally:
             with open(hba, "w") as f:
                 f.write(hba_before)
