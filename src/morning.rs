@@ -76,18 +76,29 @@ pub struct Rejudged {
     pub changed: Vec<crate::store::VerdictChange>,
 }
 
+/// A recorded night's frames through the night analysis with the configuration's rules,
+/// then matched to the star catalogue.
+fn analyse(
+    records: &[crate::record::FrameRecord],
+    c: &Config,
+    catalogues: crate::batch::Catalogues,
+) -> Result<NightDocument, MorningError> {
+    let mut doc = crate::batch::analyse_records(
+        records,
+        &c.rule_specs(),
+        c.site_position(),
+        catalogues,
+        &c.calibration.settings,
+    )?;
+    crate::batch::cross_match(&mut doc, &c.catalogue)?;
+    Ok(doc)
+}
+
 /// Judge a recorded night with the configuration's rules, keep the verdicts in the store
 /// and, when lists are kept, rewrite the night's lists where a verdict changed.
 pub fn judge_night(store: &mut Store, c: &Config, night: &str) -> Result<Rejudged, MorningError> {
     let records = store.night_records(night)?;
-    let mut doc = crate::batch::analyse_records(
-        &records,
-        &c.rule_specs(),
-        c.site_position(),
-        crate::batch::Catalogues::Keep(store),
-        &c.calibration.settings,
-    )?;
-    crate::batch::cross_match(&mut doc, &c.catalogue)?;
+    let mut doc = analyse(&records, c, crate::batch::Catalogues::Keep(store))?;
     doc.set_rig(&c.rig.name);
     let verdicts: Vec<(String, crate::rules::Verdict, Vec<String>)> = doc
         .frames
@@ -121,14 +132,7 @@ pub fn judge_site(store: &mut Store, c: &Config, night: &str) -> Result<Rejudged
         } else {
             store.as_rig(&rig, |s| -> Result<NightDocument, MorningError> {
                 let records = s.night_records(night)?;
-                let mut doc = crate::batch::analyse_records(
-                    &records,
-                    &c.rule_specs(),
-                    c.site_position(),
-                    crate::batch::Catalogues::Read(s),
-                    &c.calibration.settings,
-                )?;
-                crate::batch::cross_match(&mut doc, &c.catalogue)?;
+                let mut doc = analyse(&records, c, crate::batch::Catalogues::Read(s))?;
                 let stored = s.stored_verdicts(night)?;
                 for f in &mut doc.frames {
                     if let Some((verdict, reasons)) = stored.get(&f.path) {

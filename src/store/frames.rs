@@ -88,6 +88,31 @@ pub struct NightCounts {
     pub last_recorded_unix: Option<f64>,
 }
 
+/// The aggregates a night's counts are read from, in the order `counts_from_row` reads.
+const COUNT_COLUMNS: &str = "COUNT(*),
+    COUNT(CASE WHEN status = 'ok' THEN 1 END),
+    COUNT(CASE WHEN status = 'error' THEN 1 END),
+    COUNT(CASE WHEN status = 'skipped' THEN 1 END),
+    COUNT(CASE WHEN verdict = 'warn' THEN 1 END),
+    COUNT(CASE WHEN verdict = 'reject' THEN 1 END),
+    COUNT(CASE WHEN time_unix IS NULL THEN 1 END),
+    MAX(time_unix), MAX(recorded_at)";
+
+/// A night's counts from the `COUNT_COLUMNS` of a row, starting at column `at`.
+fn counts_from_row(r: &Row, at: usize) -> Result<NightCounts, DbError> {
+    Ok(NightCounts {
+        frames: r.get(at)?,
+        measured: r.get(at + 1)?,
+        errors: r.get(at + 2)?,
+        skipped: r.get(at + 3)?,
+        warned: r.get(at + 4)?,
+        rejected: r.get(at + 5)?,
+        undated: r.get(at + 6)?,
+        last_frame_time_unix: r.get(at + 7)?,
+        last_recorded_unix: r.get(at + 8)?,
+    })
+}
+
 /// A frame row's group, from columns night, target, filter, status at `at`.
 fn group_key(r: &Row, at: usize) -> Result<GroupKey, DbError> {
     let status: String = r.get(at + 3)?;
@@ -740,35 +765,16 @@ impl Store {
 
     /// Counts for one night.
     pub fn night_counts(&self, night: &str) -> Result<NightCounts, StoreError> {
-        let r = self
-            .conn
+        self.conn
             .query_one(
-                "SELECT COUNT(*),
-                        COUNT(CASE WHEN status = 'ok' THEN 1 END),
-                        COUNT(CASE WHEN status = 'error' THEN 1 END),
-                        COUNT(CASE WHEN status = 'skipped' THEN 1 END),
-                        COUNT(CASE WHEN verdict = 'warn' THEN 1 END),
-                        COUNT(CASE WHEN verdict = 'reject' THEN 1 END),
-                        COUNT(CASE WHEN time_unix IS NULL THEN 1 END),
-                        MAX(time_unix), MAX(recorded_at)
-                 FROM frames WHERE night = ?1 AND (rig = ?2 OR ?2 IS NULL)",
+                &format!(
+                    "SELECT {COUNT_COLUMNS} FROM frames
+                     WHERE night = ?1 AND (rig = ?2 OR ?2 IS NULL)"
+                ),
                 values![night, self.scope()],
             )
-            .map_err(|e| self.err(e))?;
-        let counts = || -> Result<NightCounts, DbError> {
-            Ok(NightCounts {
-                frames: r.get(0)?,
-                measured: r.get(1)?,
-                errors: r.get(2)?,
-                skipped: r.get(3)?,
-                warned: r.get(4)?,
-                rejected: r.get(5)?,
-                undated: r.get(6)?,
-                last_frame_time_unix: r.get(7)?,
-                last_recorded_unix: r.get(8)?,
-            })
-        };
-        counts().map_err(|e| self.err(e))
+            .and_then(|r| counts_from_row(&r, 0))
+            .map_err(|e| self.err(e))
     }
 
     /// Every rig's counts for one night, by rig name (a site's page).
@@ -777,34 +783,14 @@ impl Store {
         night: &str,
     ) -> Result<Vec<(String, NightCounts)>, StoreError> {
         self.rows(
-            "SELECT rig, COUNT(*),
-                    COUNT(CASE WHEN status = 'ok' THEN 1 END),
-                    COUNT(CASE WHEN status = 'error' THEN 1 END),
-                    COUNT(CASE WHEN status = 'skipped' THEN 1 END),
-                    COUNT(CASE WHEN verdict = 'warn' THEN 1 END),
-                    COUNT(CASE WHEN verdict = 'reject' THEN 1 END),
-                    COUNT(CASE WHEN time_unix IS NULL THEN 1 END),
-                    MAX(time_unix), MAX(recorded_at)
-             FROM frames WHERE night = ?1 GROUP BY rig ORDER BY rig",
+            &format!(
+                "SELECT rig, {COUNT_COLUMNS} FROM frames WHERE night = ?1
+                 GROUP BY rig ORDER BY rig"
+            ),
             values![night],
         )?
         .iter()
-        .map(|r| {
-            Ok((
-                r.get(0)?,
-                NightCounts {
-                    frames: r.get(1)?,
-                    measured: r.get(2)?,
-                    errors: r.get(3)?,
-                    skipped: r.get(4)?,
-                    warned: r.get(5)?,
-                    rejected: r.get(6)?,
-                    undated: r.get(7)?,
-                    last_frame_time_unix: r.get(8)?,
-                    last_recorded_unix: r.get(9)?,
-                },
-            ))
-        })
+        .map(|r| Ok((r.get(0)?, counts_from_row(r, 1)?)))
         .collect::<Result<_, DbError>>()
         .map_err(|e| self.err(e))
     }
