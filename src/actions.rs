@@ -12,41 +12,6 @@ fn sync_dir(dir: &Path) -> std::io::Result<()> {
     std::fs::File::open(dir)?.sync_all()
 }
 
-/// Rename `from` to `to` unless `to` exists (renameat2 with RENAME_NOREPLACE). `Ok(false)`
-/// when `to` exists; `EXDEV` when they are on different file systems.
-fn rename_no_replace(from: &Path, to: &Path) -> std::io::Result<bool> {
-    use std::os::unix::ffi::OsStrExt;
-    let c = |p: &Path| {
-        std::ffi::CString::new(p.as_os_str().as_bytes())
-            .map_err(|_| std::io::Error::other("path contains a NUL byte"))
-    };
-    let (a, b) = (c(from)?, c(to)?);
-    // SAFETY: two valid C strings; AT_FDCWD resolves them like open() would.
-    let rc = unsafe {
-        libc::renameat2(
-            libc::AT_FDCWD,
-            a.as_ptr(),
-            libc::AT_FDCWD,
-            b.as_ptr(),
-            libc::RENAME_NOREPLACE,
-        )
-    };
-    if rc == 0 {
-        return Ok(true);
-    }
-    let e = std::io::Error::last_os_error();
-    match e.raw_os_error() {
-        Some(libc::EEXIST) => Ok(false),
-        // File systems without RENAME_NOREPLACE: a hard link refuses an existing name too.
-        Some(libc::EINVAL) | Some(libc::ENOSYS) => match std::fs::hard_link(from, to) {
-            Ok(()) => std::fs::remove_file(from).map(|_| true),
-            Err(e) if e.kind() == std::io::ErrorKind::AlreadyExists => Ok(false),
-            Err(e) => Err(e),
-        },
-        _ => Err(e),
-    }
-}
-
 /// Candidate names in `folder` for a file called `name`: `name`, `name.1`, `name.2`, ...
 fn candidates<'a>(folder: &'a Path, name: &std::ffi::OsStr) -> impl Iterator<Item = PathBuf> + 'a {
     let name = name.to_owned();
@@ -66,7 +31,7 @@ pub fn move_aside(src: &Path, folder: &Path) -> std::io::Result<PathBuf> {
         .file_name()
         .ok_or_else(|| std::io::Error::other("no file name"))?;
     for dest in candidates(folder, name) {
-        match rename_no_replace(src, &dest) {
+        match crate::os::rename_no_replace(src, &dest) {
             Ok(true) => {
                 sync_dir(folder)?;
                 if let Some(parent) = src.parent() {
@@ -75,7 +40,7 @@ pub fn move_aside(src: &Path, folder: &Path) -> std::io::Result<PathBuf> {
                 return Ok(dest);
             }
             Ok(false) => continue,
-            Err(e) if e.raw_os_error() == Some(libc::EXDEV) => {
+            Err(e) if crate::os::is_cross_device(&e) => {
                 return copy_across(src, folder, std::io::copy)
             }
             Err(e) => return Err(e),
@@ -118,7 +83,7 @@ fn copy_across(
             ));
         }
         for dest in candidates(folder, name) {
-            if rename_no_replace(&part, &dest)? {
+            if crate::os::rename_no_replace(&part, &dest)? {
                 sync_dir(folder)?;
                 return Ok(dest);
             }
@@ -201,10 +166,13 @@ mod tests {
             let mut half = vec![0u8; 50_000];
             from.read_exact(&mut half)?;
             to.write_all(&half)?;
-            Err(std::io::Error::from_raw_os_error(libc::ENOSPC))
+            Err(std::io::Error::new(
+                std::io::ErrorKind::StorageFull,
+                "disk full",
+            ))
         })
         .unwrap_err();
-        assert_eq!(err.raw_os_error(), Some(libc::ENOSPC));
+        assert_eq!(err.kind(), std::io::ErrorKind::StorageFull);
         assert!(listing(&folder).is_empty(), "{:?}", listing(&folder));
         assert_eq!(std::fs::read(&src).unwrap().len(), 100_000);
     }

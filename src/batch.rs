@@ -330,7 +330,7 @@ fn band_colors(target: &str, entries: &[BandEntry]) -> Vec<AnomalyRecord> {
 /// the reference's fit carried through the registration (`astrometry::carry`).
 fn carried_fit(
     r: &FrameRecord,
-    placement: Option<&crate::night::judge::Placement>,
+    placement: Option<&crate::night::register::Placement>,
     group: &[&FrameRecord],
 ) -> Option<crate::astrometry::SkyFit> {
     let m = r.metrics.as_ref()?;

@@ -68,8 +68,7 @@ pub fn index_path(cfg: &CatalogueConfig) -> Option<PathBuf> {
             Some(f) => f.join(format!("catalogue-{hash:016x}.sqlite")),
             None => std::env::temp_dir().join(format!(
                 "subwatch-{}-catalogue-{hash:016x}.sqlite",
-                // SAFETY: getuid cannot fail and touches no memory.
-                unsafe { libc::getuid() }
+                crate::os::user_tag()
             )),
         })
     })

@@ -24,6 +24,7 @@ pub mod mail;
 pub mod measure;
 pub mod morning;
 pub mod night;
+pub mod os;
 pub mod outbox;
 pub mod pipeline;
 pub mod reader;

@@ -12,7 +12,6 @@
 //! state (cfitsio's globals, a heap a bad file fragmented) outlives the file that made it.
 
 use std::io::{Read, Write};
-use std::os::unix::process::{CommandExt, ExitStatusExt};
 use std::path::{Path, PathBuf};
 use std::process::{Command, Stdio};
 use std::sync::OnceLock;
@@ -98,43 +97,49 @@ fn program() -> PathBuf {
         .unwrap_or_else(|| PathBuf::from("subwatch"))
 }
 
-/// Physical memory of this machine, bytes (0 when unknown).
-fn physical_memory() -> u64 {
-    // SAFETY: sysconf has no preconditions.
-    let (pages, size) = unsafe {
-        (
-            libc::sysconf(libc::_SC_PHYS_PAGES),
-            libc::sysconf(libc::_SC_PAGESIZE),
-        )
-    };
-    if pages > 0 && size > 0 {
-        pages as u64 * size as u64
-    } else {
-        0
-    }
-}
-
 impl Isolation {
     /// Limits for frames of up to `max_pixels`: `memory_mb` MiB of address space (0 =
     /// automatic: 16 bytes per pixel of the largest allowed frame plus 1 GiB for code,
     /// threads and their arenas, but at most three quarters of this machine's memory),
     /// and `timeout_s` seconds per file.
     pub fn new(max_pixels: u64, memory_mb: u64, timeout_s: f64) -> Self {
-        let memory_bytes = if memory_mb > 0 {
+        let needed = max_pixels.saturating_mul(16).saturating_add(1 << 30);
+        let wanted = if memory_mb > 0 {
             memory_mb.saturating_mul(1 << 20)
         } else {
-            let wanted = max_pixels.saturating_mul(16).saturating_add(1 << 30);
-            match physical_memory() {
-                0 => wanted,
-                ram => wanted.min(ram / 4 * 3).max(1 << 30),
+            match crate::os::physical_memory() {
+                0 => needed,
+                ram => needed.min(ram / 4 * 3).max(1 << 30),
             }
         };
+        let memory_bytes = within_ceiling(wanted, needed, crate::os::address_space_ceiling());
         Isolation {
             program: program(),
             memory_bytes,
             timeout: Duration::from_secs_f64(timeout_s.max(1.0)),
         }
     }
+}
+
+/// The worker's address-space limit: `wanted`, lowered to the `ceiling` this process
+/// runs under itself (a scheduler's, a container's, `LimitAS=`), which a child cannot
+/// exceed. Said once in the log when that is less than the largest allowed frame
+/// (`needed`) takes: such a frame will then fail as out of memory, and nothing else.
+fn within_ceiling(wanted: u64, needed: u64, ceiling: Option<u64>) -> u64 {
+    static SAID: std::sync::Once = std::sync::Once::new();
+    let Some(ceiling) = ceiling else {
+        return wanted;
+    };
+    if ceiling < wanted.min(needed) {
+        SAID.call_once(|| {
+            tracing::warn!(
+                "this process runs under an address-space limit of {} MiB, less than the {} MiB the largest allowed frame ([measure] max_pixels) takes to read; larger frames will fail as out of memory",
+                ceiling >> 20,
+                needed >> 20
+            )
+        });
+    }
+    wanted.min(ceiling)
 }
 
 impl Reader {
@@ -184,38 +189,26 @@ fn failure_reason(status: std::process::ExitStatus, stderr: &str, iso: &Isolatio
     if stderr.contains("memory allocation of") || stderr.contains("out of memory") {
         return out_of_memory(iso);
     }
-    match status.signal() {
-        Some(libc::SIGKILL) => "the FITS reader was killed on this file (signal 9; out of memory under the service's limit?)".to_string(),
-        Some(sig) => {
-            let name = match sig {
-                libc::SIGSEGV => "segmentation fault",
-                libc::SIGFPE => "arithmetic fault",
-                libc::SIGBUS => "bus error",
-                libc::SIGABRT => "abort",
-                libc::SIGILL => "illegal instruction",
-                libc::SIGXCPU => "CPU time limit",
-                _ => "signal",
-            };
-            // What the C library said before it went, when it said anything.
-            let said = if last.is_empty() {
-                String::new()
-            } else {
-                format!(": {}", crate::logging::one_line(last))
-            };
-            format!("the FITS reader crashed on this file (signal {sig}, {name}{said})")
+    let said = if last.is_empty() {
+        String::new()
+    } else {
+        format!(": {}", crate::logging::one_line(last))
+    };
+    match crate::os::ending(&status) {
+        crate::os::Ending::Killed => {
+            "the FITS reader was killed on this file (out of memory under the service's limit?)"
+                .to_string()
         }
-        None => match status.code() {
-            Some(101) => "internal error while measuring (a bug; please report it)".into(),
-            code => format!(
-                "the FITS reader stopped on this file (exit {}){}",
-                code.map_or("?".into(), |c| c.to_string()),
-                if last.is_empty() {
-                    String::new()
-                } else {
-                    format!(": {}", crate::logging::one_line(last))
-                }
-            ),
-        },
+        // What the C library said before it went, when it said anything.
+        crate::os::Ending::Crashed { code, what } => {
+            format!("the FITS reader crashed on this file ({code}, {what}{said})")
+        }
+        crate::os::Ending::Exited(101) => {
+            "internal error while measuring (a bug; please report it)".into()
+        }
+        crate::os::Ending::Exited(code) => {
+            format!("the FITS reader stopped on this file (exit {code}){said}")
+        }
     }
 }
 
@@ -230,7 +223,6 @@ fn read_bounded(mut r: impl Read, limit: usize) -> Vec<u8> {
 /// Run one request in a worker process.
 pub fn run_isolated(iso: &Isolation, request: &Request) -> Result<Reply, String> {
     let input = serde_json::to_vec(request).map_err(|e| format!("encoding the request: {e}"))?;
-    let memory = iso.memory_bytes;
     let mut cmd = Command::new(&iso.program);
     cmd.arg(WORKER_COMMAND)
         // A fault's story is one line, not a backtrace.
@@ -238,34 +230,15 @@ pub fn run_isolated(iso: &Isolation, request: &Request) -> Result<Reply, String>
         .stdin(Stdio::piped())
         .stdout(Stdio::piped())
         .stderr(Stdio::piped());
-    // SAFETY: only async-signal-safe calls (setrlimit, prctl) between fork and exec.
-    unsafe {
-        cmd.pre_exec(move || {
-            let limit = |resource, value: u64| {
-                let r = libc::rlimit {
-                    rlim_cur: value as libc::rlim_t,
-                    rlim_max: value as libc::rlim_t,
-                };
-                if libc::setrlimit(resource, &r) != 0 {
-                    return Err(std::io::Error::last_os_error());
-                }
-                Ok(())
-            };
-            limit(libc::RLIMIT_AS, memory)?;
-            limit(libc::RLIMIT_CORE, 0)?;
-            // A worker does not outlive the process that asked (a killed daemon).
-            if libc::prctl(libc::PR_SET_PDEATHSIG, libc::SIGKILL) != 0 {
-                return Err(std::io::Error::last_os_error());
-            }
-            Ok(())
-        });
-    }
-    let mut child = cmd.spawn().map_err(|e| {
+    let confined = crate::os::spawn_confined(&mut cmd, iso.memory_bytes).map_err(|e| {
         format!(
             "the FITS reader could not be started ({}): {e}",
             iso.program.display()
         )
     })?;
+    // The guard (Windows: the job that holds the worker) lives until this returns.
+    let mut confined = confined;
+    let child = &mut confined.child;
     let mut stdin = child.stdin.take().expect("piped stdin");
     let stdout = child.stdout.take().expect("piped stdout");
     let stderr = child.stderr.take().expect("piped stderr");

@@ -29,14 +29,18 @@ impl Identity {
 
     /// The identity from metadata already read; times before 1970 count negative.
     pub fn from_metadata(path: &Path, m: &std::fs::Metadata) -> Self {
-        use std::os::unix::fs::MetadataExt;
+        let nanos = |d: std::time::Duration| i64::try_from(d.as_nanos()).unwrap_or(i64::MAX);
+        let mtime_ns = match m.modified() {
+            Ok(t) => match t.duration_since(std::time::UNIX_EPOCH) {
+                Ok(after) => nanos(after),
+                Err(before) => -nanos(before.duration()),
+            },
+            Err(_) => 0,
+        };
         Identity {
             path: path.to_string_lossy().into_owned(),
             size: m.len(),
-            mtime_ns: m
-                .mtime()
-                .saturating_mul(1_000_000_000)
-                .saturating_add(m.mtime_nsec()),
+            mtime_ns,
         }
     }
 

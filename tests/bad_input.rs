@@ -235,3 +235,29 @@ fn pixel_limit_is_configurable() {
         .unwrap()
         .contains("16384 pixels, over the limit of 10000"));
 }
+
+/// A batch scheduler, a container or `LimitAS=` in a unit run subwatch under a hard
+/// address-space limit of their own; the reader's worker must fit under it, not fail to
+/// start (setrlimit cannot raise a hard limit: POSIX getrlimit/setrlimit).
+#[cfg(unix)]
+#[test]
+fn frames_are_measured_under_the_callers_address_space_limit() {
+    let frame = Path::new(env!("CARGO_MANIFEST_DIR")).join("sample-frames/kfa-001-good.fits");
+    for limit_kib in [4_194_304u64, 1_048_576] {
+        let out = std::process::Command::new("sh")
+            .arg("-c")
+            .arg(format!(
+                "ulimit -v {limit_kib} && exec \"$0\" measure --json \"$1\""
+            ))
+            .arg(common::binary())
+            .arg(&frame)
+            .output()
+            .unwrap();
+        let stdout = String::from_utf8_lossy(&out.stdout);
+        let doc: serde_json::Value = serde_json::from_str(stdout.trim())
+            .unwrap_or_else(|e| panic!("{e}: {stdout} {}", String::from_utf8_lossy(&out.stderr)));
+        assert_eq!(doc["status"], "ok", "under {limit_kib} KiB: {doc}");
+        assert!(doc["star_count"].as_u64().unwrap() > 10, "{doc}");
+        assert_eq!(out.status.code(), Some(0));
+    }
+}

@@ -406,7 +406,7 @@ fn an_sqlite_store_copied_into_postgresql_reads_the_same_and_is_copied_once() {
             .unwrap();
     }
     let pg = TestDatabase::new();
-    let copied = subwatch::store::copy(&db, &pg.location()).unwrap();
+    let copied = subwatch::store::copy(&db, &pg.location(), None).unwrap();
     let n = |t: &str| copied.tables.iter().find(|(name, _)| name == t).unwrap().1;
     assert_eq!(
         (n("frames"), n("stars"), n("alerts"), n("catalog_nights")),
@@ -427,7 +427,7 @@ fn an_sqlite_store_copied_into_postgresql_reads_the_same_and_is_copied_once() {
         Some("sent")
     );
     // A second copy of the same rig is refused, and adds nothing.
-    let again = subwatch::store::copy(&db, &pg.location()).unwrap_err();
+    let again = subwatch::store::copy(&db, &pg.location(), None).unwrap_err();
     assert!(
         again
             .to_string()
@@ -435,6 +435,103 @@ fn an_sqlite_store_copied_into_postgresql_reads_the_same_and_is_copied_once() {
         "{again}"
     );
     assert_eq!(shared.night_counts("2026-03-14").unwrap().frames, 3);
+}
+
+/// Every row of an SQLite store as text, table by table: what "unchanged" compares.
+fn dump(db: &std::path::Path) -> String {
+    let conn =
+        rusqlite::Connection::open_with_flags(db, rusqlite::OpenFlags::SQLITE_OPEN_READ_ONLY)
+            .unwrap();
+    let mut out = String::new();
+    for table in [
+        "frames",
+        "reading",
+        "alerts",
+        "outbox",
+        "meta",
+        "catalog_nights",
+        "catalog",
+    ] {
+        let mut stmt = conn
+            .prepare(&format!("SELECT * FROM {table} ORDER BY 1, 2"))
+            .unwrap();
+        let n = stmt.column_count();
+        let rows = stmt
+            .query_map([], |r| {
+                Ok((0..n)
+                    .map(|i| format!("{:?}", r.get_ref(i).unwrap()))
+                    .collect::<Vec<_>>()
+                    .join("|"))
+            })
+            .unwrap();
+        for row in rows {
+            out.push_str(&format!("{table}: {}\n", row.unwrap()));
+        }
+    }
+    out
+}
+
+/// A store an unnamed rig kept, with a path it also recorded under the name `pier`
+/// (that record wins, as when a daemon names its rig).
+fn unnamed_store(db: &std::path::Path) {
+    let mut s = Store::open(db).unwrap();
+    for (i, path) in ["/a.fits", "/b.fits", "/c.fits"].iter().enumerate() {
+        let mut r = record(path, 10 + i as u64);
+        r.stars = (0..5).map(|k| star(k as f64, i as f64)).collect();
+        s.record_frame(&r, 1.0).unwrap();
+    }
+    s.add_alert("2026-03-14", "transient", "a flash", 10.0)
+        .unwrap();
+    s.set_meta("summary:2026-03-14", "sent").unwrap();
+    s.save_catalog("T", "V", "2026-03-14", 19.0, &[], &[])
+        .unwrap();
+}
+
+#[test]
+fn a_copy_never_writes_its_source_and_names_the_rig_only_in_the_destination() {
+    let dir = tempfile::tempdir().unwrap();
+    let db = dir.path().join("s.db");
+    unnamed_store(&db);
+    let before = dump(&db);
+    // The real binary, a server that is not there: the copy fails and the source stays
+    // as it was (before, the source's rows were renamed first).
+    let out = std::process::Command::new(common::binary())
+        .args(["store", "copy", "--from"])
+        .arg(&db)
+        .args(["--to", "postgresql://nobody@127.0.0.1:9/x", "--rig", "pier"])
+        .output()
+        .unwrap();
+    assert!(!out.status.success());
+    assert_eq!(dump(&db), before, "the source changed");
+    // Into a real database: every row is the rig's there, and still unnamed here.
+    let pg = TestDatabase::new();
+    let copied = subwatch::store::copy(&db, &pg.location(), Some("pier")).unwrap();
+    let n = |t: &str| copied.tables.iter().find(|(name, _)| name == t).unwrap().1;
+    assert_eq!((n("frames"), n("stars"), n("alerts")), (3, 15, 1));
+    assert_eq!(dump(&db), before, "the source changed");
+    let shared = Store::connect(&pg.location()).unwrap();
+    assert_eq!(
+        shared.night_rigs("2026-03-14").unwrap(),
+        vec!["pier".to_string()]
+    );
+    let pier = Store::connect_for_rig(&pg.location(), "pier").unwrap();
+    assert_eq!(pier.night_counts("2026-03-14").unwrap().frames, 3);
+    assert_eq!(
+        pier.meta("summary:2026-03-14").unwrap().as_deref(),
+        Some("sent")
+    );
+    // The same source, named as the daemon would name it, reads the same.
+    let named = dir.path().join("named.db");
+    std::fs::copy(&db, &named).unwrap();
+    let local = Store::open_for_rig(&named, "pier").unwrap();
+    let read = |s: &Store| {
+        let mut r = s.night_records("2026-03-14").unwrap();
+        r.sort_by(|a, b| a.identity.path.cmp(&b.identity.path));
+        r.iter()
+            .map(|f| (f.identity.clone(), f.stars.len()))
+            .collect::<Vec<_>>()
+    };
+    assert_eq!(read(&local), read(&pier));
 }
 
 #[test]

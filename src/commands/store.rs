@@ -21,16 +21,13 @@ pub fn copy(
                 "store copy --rig {rig:?}: a name of 1 to 64 letters, digits, spaces, dots, dashes or underscores"
             );
         }
-        // The rows kept without a rig become this rig's, as the daemon would do.
-        subwatch::store::Store::open_for_rig(from, rig)
-            .with_context(|| format!("naming the rig of {}", from.display()))?;
     }
     let to = subwatch::store::Location::Server {
         url: to.to_string(),
         password_file,
         ca_file,
     };
-    let copied = subwatch::store::copy(from, &to)
+    let copied = subwatch::store::copy(from, &to, rig)
         .with_context(|| format!("copying {} into {to}", from.display()))?;
     println!(
         "copied {} into {to}, every table counted on both sides:",

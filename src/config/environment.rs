@@ -52,17 +52,17 @@ impl Config {
             }
         }
         if let Some(pw) = &self.store.password_file {
-            if let Err(e) = check_secret_file(pw) {
+            if let Err(e) = crate::os::check_private_file(pw) {
                 errors.push(format!("store.password_file: {e}"));
             }
         }
         if let Some(pw) = &self.mail.password_file {
-            if let Err(e) = check_secret_file(pw) {
+            if let Err(e) = crate::os::check_private_file(pw) {
                 errors.push(format!("mail.password_file: {e}"));
             }
         }
         if let Some(token) = &self.web.token_file {
-            if let Err(e) = check_secret_file(token) {
+            if let Err(e) = crate::os::check_private_file(token) {
                 errors.push(format!("web.token_file: {e}"));
             } else if let Err(e) = self.web.token() {
                 errors.push(format!("web.token_file: {e}"));
@@ -84,49 +84,5 @@ impl Config {
             );
         }
         (errors, warnings)
-    }
-}
-
-/// A file holding a secret must belong to the user reading it and be readable by nobody
-/// else (as ssh requires of a private key).
-pub fn check_secret_file(path: &Path) -> Result<(), String> {
-    use std::os::unix::fs::MetadataExt;
-    let m = std::fs::metadata(path).map_err(|e| format!("{}: {e}", path.display()))?;
-    // SAFETY: geteuid has no preconditions.
-    let me = unsafe { libc::geteuid() };
-    if m.uid() != me {
-        return Err(format!(
-            "{} belongs to user id {}, not to the user subwatch runs as ({me}); chown it",
-            path.display(),
-            m.uid()
-        ));
-    }
-    if m.mode() & 0o077 != 0 {
-        return Err(format!(
-            "{} can be read or written by other users (mode {:o}); chmod 600 it",
-            path.display(),
-            m.mode() & 0o777
-        ));
-    }
-    Ok(())
-}
-
-#[cfg(test)]
-mod tests {
-    use super::*;
-
-    #[test]
-    fn a_secret_file_readable_by_others_or_owned_by_another_user_is_refused() {
-        use std::os::unix::fs::PermissionsExt;
-        let dir = tempfile::tempdir().unwrap();
-        let pw = dir.path().join("pw");
-        std::fs::write(&pw, "secret\n").unwrap();
-        std::fs::set_permissions(&pw, std::fs::Permissions::from_mode(0o600)).unwrap();
-        assert!(check_secret_file(&pw).is_ok());
-        for mode in [0o640, 0o604, 0o660] {
-            std::fs::set_permissions(&pw, std::fs::Permissions::from_mode(mode)).unwrap();
-            let e = check_secret_file(&pw).unwrap_err();
-            assert!(e.contains("chmod 600"), "{e}");
-        }
     }
 }

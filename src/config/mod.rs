@@ -13,7 +13,6 @@ use std::path::{Path, PathBuf};
 
 use lettre::message::Mailbox;
 
-pub use environment::check_secret_file;
 pub use read::{parse, parse_summary_time, rig_name_ok};
 
 use crate::night::AnomalyKind;

@@ -15,7 +15,6 @@
 //! the file it reads.
 
 use std::io::Read;
-use std::os::unix::fs::FileExt;
 use std::path::Path;
 
 use ndarray::Array2;
@@ -78,8 +77,7 @@ impl BlockSource for FileBlocks {
             return Ok(None);
         }
         let mut b = Box::new([0u8; 2880]);
-        self.file
-            .read_exact_at(&mut b[..], offset)
+        crate::os::read_exact_at(&self.file, &mut b[..], offset)
             .map_err(|e| format!("reading at byte {offset}: {e}"))?;
         Ok(Some(b))
     }
@@ -169,7 +167,7 @@ fn open(path: &Path, limits: &DecodeLimits) -> Result<Source, FrameError> {
     }
     let file = std::fs::File::open(path).map_err(io)?;
     let mut head = [0u8; 6];
-    let got = file.read_at(&mut head, 0).map_err(io)?;
+    let got = crate::os::read_at(&file, &mut head, 0).map_err(io)?;
     if head[..got].starts_with(&[0x1f, 0x8b]) {
         let mut inflated = Inflated {
             decoder: flate2::read::MultiGzDecoder::new(std::io::BufReader::new(file)),
@@ -300,7 +298,7 @@ fn read_plain(file: &std::fs::File, len: u64, image: &PlainImage) -> Result<Vec<
         .try_for_each_init(Vec::new, |bytes: &mut Vec<u8>, (k, dst)| {
             bytes.resize(dst.len() * width, 0);
             let offset = image.data_start + (k * CHUNK * width) as u64;
-            file.read_exact_at(bytes, offset).map_err(|e| {
+            crate::os::read_exact_at(file, bytes, offset).map_err(|e| {
                 if e.kind() == std::io::ErrorKind::UnexpectedEof {
                     TRUNCATED.to_string()
                 } else {
@@ -389,7 +387,7 @@ pub fn looks_complete(path: &Path) -> Option<bool> {
     let file = std::fs::File::open(path).ok()?;
     let len = file.metadata().ok()?.len();
     let mut magic = [0u8; 6];
-    if file.read_exact_at(&mut magic, 0).is_err() || &magic != b"SIMPLE" {
+    if crate::os::read_exact_at(&file, &mut magic, 0).is_err() || &magic != b"SIMPLE" {
         // Not plain FITS (gzip, or not FITS at all): only the settle time can decide.
         return None;
     }

@@ -70,7 +70,7 @@ impl MailSettings {
         let password = match &m.password_file {
             Some(p) => {
                 // The same rule as check-config: this user's, and nobody else's to read.
-                crate::config::check_secret_file(p)
+                crate::os::check_private_file(p)
                     .map_err(|e| MailError::Settings(format!("password_file {e}")))?;
                 Some(
                     std::fs::read_to_string(p)

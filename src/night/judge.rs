@@ -22,10 +22,8 @@
 //! whole night. That is the one way a frame's live verdict can differ from its morning
 //! verdict; `tests/live_and_morning.rs` asserts it frame by frame.
 
-use serde::{Deserialize, Serialize};
-
 use super::classify::{self, Findings};
-use super::register::{register, Affine};
+use super::register::{register, Placement};
 use super::{EarlierNight, FrameInput};
 use crate::measure::stats::median_f64;
 use crate::record::{FrameRecord, FrameStatus, StarRecord};
@@ -37,30 +35,6 @@ pub const REFERENCE_WINDOW: usize = 10;
 
 /// A site: latitude, east longitude (degrees), elevation (m).
 pub type Site = (f64, f64, f64);
-
-/// A frame placed on its group's reference frame.
-#[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize)]
-pub struct Placement {
-    /// The reference frame's path (the placement holds while it stays the reference).
-    pub reference: String,
-    pub registered: bool,
-    /// Frame → reference transform [a00, a01, a10, a11, t0, t1] in FITS pixels.
-    pub transform: Option<[f64; 6]>,
-    pub rms_px: Option<f64>,
-    pub matched: usize,
-    /// Median magnitude difference of the stars with SNR > 20 in both frames (this frame
-    /// minus the reference; positive: less light came through). Needs three such stars.
-    pub offset_mag: Option<f64>,
-}
-
-impl Placement {
-    pub fn affine(&self) -> Option<Affine> {
-        self.transform.map(|t| Affine {
-            a: [[t[0], t[1]], [t[2], t[3]]],
-            t: [t[4], t[5]],
-        })
-    }
-}
 
 /// What the model says of one frame.
 #[derive(Debug, Clone)]

@@ -5,6 +5,30 @@
 //! a meridian flip are all of this kind), and least squares on every matched star
 //! refines it to an affine transform with its residual RMS. Pure.
 
+/// A frame placed on its group's reference frame.
+#[derive(Debug, Clone, Default, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct Placement {
+    /// The reference frame's path (the placement holds while it stays the reference).
+    pub reference: String,
+    pub registered: bool,
+    /// Frame → reference transform [a00, a01, a10, a11, t0, t1] in FITS pixels.
+    pub transform: Option<[f64; 6]>,
+    pub rms_px: Option<f64>,
+    pub matched: usize,
+    /// Median magnitude difference of the stars with SNR > 20 in both frames (this frame
+    /// minus the reference; positive: less light came through). Needs three such stars.
+    pub offset_mag: Option<f64>,
+}
+
+impl Placement {
+    pub fn affine(&self) -> Option<Affine> {
+        self.transform.map(|t| Affine {
+            a: [[t[0], t[1]], [t[2], t[3]]],
+            t: [t[4], t[5]],
+        })
+    }
+}
+
 /// p_ref = A · p + t, positions in FITS pixels.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct Affine {

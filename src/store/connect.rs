@@ -88,7 +88,7 @@ pub(super) fn postgres_config(
         return Err("url: keep the password out of the address; put it in password_file".into());
     }
     if let Some(file) = password_file {
-        crate::config::check_secret_file(file).map_err(|e| format!("password_file {e}"))?;
+        crate::os::check_private_file(file).map_err(|e| format!("password_file {e}"))?;
         let pw = std::fs::read_to_string(file)
             .map_err(|e| format!("password_file {}: {e}", file.display()))?;
         config.password(pw.trim_end_matches(['\n', '\r']));

@@ -1,7 +1,12 @@
-//! Moving an SQLite store into a shared PostgreSQL database (`subwatch store copy`): every
+//! Copying an SQLite store into a shared PostgreSQL database (`subwatch store copy`): every
 //! row of every table, in one transaction, frames given new ids (other rigs' frames may
 //! hold the old ones) and their stars and rejected detections following them; then each
 //! table's rows counted on both sides.
+//!
+//! The source is opened read-only and never written, not even migrated: a daemon may be
+//! running on it, and a copy that fails must leave it as it was. Rows an unnamed rig
+//! recorded are named in what is inserted (the same rules as `Store::adopt_unnamed`:
+//! a path or a catalogue night the rig has under its name already keeps that row).
 
 use std::collections::HashMap;
 
@@ -42,13 +47,103 @@ fn count(conn: &Conn, sql: &str, params: &[Value]) -> Result<i64, DbError> {
     conn.query_one(sql, params)?.get(0)
 }
 
+/// How the source's rows are read when an unnamed rig's rows are to be named `rig` (`?1`
+/// in every query): the rig column's value, and which rows are left out because the rig
+/// has the same row under its name already.
+struct Naming<'a> {
+    rig: Option<&'a str>,
+}
+
+impl Naming<'_> {
+    /// The parameters of `sql`, a query this naming wrote (the rig, where it names it).
+    fn params(&self, sql: &str) -> Vec<Value> {
+        match self.rig {
+            Some(r) if sql.contains("?1") => vec![Value::Text(r.to_string())],
+            _ => Vec::new(),
+        }
+    }
+
+    /// Every row `sql` (a query this naming wrote) reads from `source`.
+    fn rows(&self, source: &Store, sql: &str) -> Result<Vec<super::db::Row>, StoreError> {
+        source.rows(sql, &self.params(sql))
+    }
+
+    /// `cols` as a select list, the rig column named.
+    fn select(&self, cols: &[String]) -> String {
+        cols.iter()
+            .map(|c| match (c.as_str(), self.rig) {
+                ("rig", Some(_)) => "CASE WHEN rig = '' THEN ?1 ELSE rig END".to_string(),
+                _ => c.clone(),
+            })
+            .collect::<Vec<_>>()
+            .join(", ")
+    }
+
+    /// The rows of `table` to copy.
+    fn filter(&self, table: &str) -> String {
+        if self.rig.is_none() {
+            return String::new();
+        }
+        match table {
+            "frames" | "reading" => format!(
+                " WHERE NOT (rig = '' AND path IN (SELECT path FROM {table} WHERE rig = ?1))"
+            ),
+            "catalog_nights" | "catalog" => format!(
+                " WHERE NOT (rig = '' AND EXISTS (SELECT 1 FROM catalog_nights n WHERE n.rig = ?1
+                   AND n.target = {table}.target AND n.filter = {table}.filter
+                   AND n.night = {table}.night))"
+            ),
+            "stars" | "rejected" => format!(
+                " WHERE frame_id IN (SELECT id FROM frames{})",
+                self.filter("frames")
+            ),
+            _ => String::new(),
+        }
+    }
+
+    /// The small facts' key: an unnamed rig's facts are the rig's (`rig NAME: key`).
+    fn meta_key(&self) -> &'static str {
+        match self.rig {
+            Some(_) => {
+                "CASE WHEN key NOT LIKE 'rig %' AND key NOT LIKE 'daemon of rig %'
+                AND key NOT LIKE 'site %' THEN 'rig ' || ?1 || ': ' || key ELSE key END"
+            }
+            None => "key",
+        }
+    }
+}
+
 /// Copy the SQLite store at `from` into the database at `to`, which must hold none of
-/// the rigs `from` holds. Returns the rows copied per table, verified by counting.
-pub fn copy(from: &std::path::Path, to: &Location) -> Result<Copied, StoreError> {
-    let source = Store::open(from)?;
+/// the rigs `from` holds; with `rig`, the rows `from` recorded without a rig's name are
+/// copied as `rig`'s. `from` is only read. Returns the rows copied per table, verified by
+/// counting.
+pub fn copy(
+    from: &std::path::Path,
+    to: &Location,
+    rig: Option<&str>,
+) -> Result<Copied, StoreError> {
     let dest = Store::connect(to)?;
-    let rigs: Vec<String> = source
-        .rows("SELECT DISTINCT rig FROM frames ORDER BY rig", &[])?
+    let source = Store::open_read_only(from, "")?;
+    let version = super::schema::version_of(&source.conn).map_err(|e| source.err(e))?;
+    if version != super::SCHEMA_VERSION {
+        return Err(StoreError::Settings {
+            store: source.place.clone(),
+            message: format!(
+                "is at schema version {version}, this program's is {}; run this version's daemon or `subwatch status` on it once so it is brought up to date, then copy it",
+                super::SCHEMA_VERSION
+            ),
+        });
+    }
+    let naming = Naming { rig };
+    let rigs: Vec<String> = naming
+        .rows(
+            &source,
+            &format!(
+                "SELECT DISTINCT {} FROM frames{} ORDER BY 1",
+                naming.select(&["rig".to_string()]),
+                naming.filter("frames")
+            ),
+        )?
         .iter()
         .map(|r| r.get(0))
         .collect::<Result<_, _>>()
@@ -113,12 +208,13 @@ pub fn copy(from: &std::path::Path, to: &Location) -> Result<Copied, StoreError>
             placeholders(frame_columns.len(), 1)
         );
         let mut new_id: HashMap<i64, i64> = HashMap::new();
-        for row in source.rows(
+        for row in naming.rows(
+            &source,
             &format!(
-                "SELECT id, {} FROM frames ORDER BY id",
-                frame_columns.join(", ")
+                "SELECT id, {} FROM frames{} ORDER BY id",
+                naming.select(&frame_columns),
+                naming.filter("frames")
             ),
-            &[],
         )? {
             let old: i64 = row.get(0).map_err(at_source)?;
             let id: i64 = dc
@@ -134,9 +230,13 @@ pub fn copy(from: &std::path::Path, to: &Location) -> Result<Copied, StoreError>
                 .filter(|c| c != "frame_id")
                 .collect();
             let mut rows = Vec::new();
-            for row in source.rows(
-                &format!("SELECT frame_id, {} FROM {table}", cols.join(", ")),
-                &[],
+            for row in naming.rows(
+                &source,
+                &format!(
+                    "SELECT frame_id, {} FROM {table}{}",
+                    cols.join(", "),
+                    naming.filter(table)
+                ),
             )? {
                 let old: i64 = row.get(0).map_err(at_source)?;
                 let Some(id) = new_id.get(&old) else { continue };
@@ -163,14 +263,24 @@ pub fn copy(from: &std::path::Path, to: &Location) -> Result<Copied, StoreError>
                 cols.join(", "),
                 placeholders(cols.len(), 1)
             );
-            let rows = source.rows(&format!("SELECT {} FROM {table}", cols.join(", ")), &[])?;
+            let rows = naming.rows(
+                &source,
+                &format!(
+                    "SELECT {} FROM {table}{}",
+                    naming.select(&cols),
+                    naming.filter(table)
+                ),
+            )?;
             for row in &rows {
                 dc.execute(&insert, &row.0).map_err(at_dest)?;
             }
             copied.push((table.to_string(), rows.len() as i64));
         }
         // The small facts, where the destination does not have them already.
-        let rows = source.rows("SELECT key, value FROM meta", &[])?;
+        let rows = naming.rows(
+            &source,
+            &format!("SELECT {}, value FROM meta", naming.meta_key()),
+        )?;
         for row in &rows {
             dc.execute(
                 "INSERT INTO meta (key, value) VALUES (?1, ?2) ON CONFLICT (key) DO NOTHING",
@@ -182,7 +292,9 @@ pub fn copy(from: &std::path::Path, to: &Location) -> Result<Copied, StoreError>
         // gained.
         for (table, n) in &copied {
             let sql = format!("SELECT COUNT(*) FROM {table}");
-            let in_source = count(&source.conn, &sql, &[]).map_err(at_source)?;
+            let filtered = format!("{sql}{}", naming.filter(table));
+            let in_source =
+                count(&source.conn, &filtered, &naming.params(&filtered)).map_err(at_source)?;
             let gained = count(dc, &sql, &[]).map_err(at_dest)? - before[table.as_str()];
             if in_source != *n || gained != *n {
                 return Err(StoreError::Settings {

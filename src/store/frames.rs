@@ -8,7 +8,7 @@ use serde::Serialize;
 use super::db::{values, DbError, Row, Value};
 use super::{Store, StoreError};
 use crate::measure::Rejected;
-use crate::night::judge::Placement;
+use crate::night::register::Placement;
 use crate::record::{FrameRecord, FrameStatus, Identity, StarRecord};
 use crate::rules::Verdict;
 

@@ -1,10 +1,10 @@
-//! One daemon per store: the daemon's claim is an exclusive flock on `<store>.lock`.
+//! One daemon per store: the daemon's claim is an exclusive lock on `<store>.lock`.
 
 use std::path::{Path, PathBuf};
 
 use super::StoreError;
 
-/// A daemon's claim on its store: an exclusive lock (flock) on `<store>.lock`, which
+/// A daemon's claim on its store: an exclusive lock (`os::try_lock`) on `<store>.lock`, which
 /// holds the daemon's process id. The kernel releases it when the process ends, however
 /// it ends, so a killed daemon never leaves a stale claim behind.
 pub struct DaemonLock {
@@ -15,20 +15,6 @@ fn lock_path(store: &Path) -> PathBuf {
     let mut name = store.as_os_str().to_owned();
     name.push(".lock");
     PathBuf::from(name)
-}
-
-fn try_flock(file: &std::fs::File, mode: libc::c_int) -> std::io::Result<bool> {
-    use std::os::fd::AsRawFd;
-    // SAFETY: flock on a file descriptor this function borrows.
-    if unsafe { libc::flock(file.as_raw_fd(), mode | libc::LOCK_NB) } == 0 {
-        return Ok(true);
-    }
-    let e = std::io::Error::last_os_error();
-    if e.raw_os_error() == Some(libc::EWOULDBLOCK) {
-        Ok(false)
-    } else {
-        Err(e)
-    }
 }
 
 /// Claim `store` for this daemon; refused while another daemon holds it.
@@ -47,7 +33,7 @@ pub fn claim(store: &Path) -> Result<DaemonLock, StoreError> {
         .truncate(false)
         .open(&lock)
         .map_err(fail)?;
-    if !try_flock(&file, libc::LOCK_EX).map_err(fail)? {
+    if !crate::os::try_lock(&file, true).map_err(fail)? {
         let pid = std::fs::read_to_string(&lock).unwrap_or_default();
         return Err(StoreError::InUse {
             path: store.to_path_buf(),
@@ -64,7 +50,7 @@ pub fn claim(store: &Path) -> Result<DaemonLock, StoreError> {
 pub fn daemon_pid(store: &Path) -> Option<u32> {
     let lock = lock_path(store);
     let file = std::fs::File::open(&lock).ok()?;
-    match try_flock(&file, libc::LOCK_SH) {
+    match crate::os::try_lock(&file, false) {
         // Nobody holds it (the lock goes when this file closes).
         Ok(true) => None,
         Ok(false) => std::fs::read_to_string(&lock).ok()?.trim().parse().ok(),

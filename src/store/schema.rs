@@ -314,6 +314,11 @@ impl From<DbError> for Migration {
     }
 }
 
+/// The schema version of an SQLite store, read without changing it.
+pub(super) fn version_of(conn: &Conn) -> Result<i64, DbError> {
+    conn.query_one("PRAGMA user_version", &[])?.get(0)
+}
+
 fn migrate_sqlite(conn: &Conn, too_new: impl Fn(i64) -> StoreError) -> Result<(), Migration> {
     let version: i64 = conn.query_one("PRAGMA user_version", &[])?.get(0)?;
     if version > SCHEMA_VERSION {

@@ -205,18 +205,17 @@ pub(super) fn written_folders(c: &Config) -> Vec<PathBuf> {
 /// Free bytes of each file system holding one of `folders`, once per file system (the
 /// first folder named for it). A folder not made yet counts by its nearest parent.
 pub(super) fn free_space(folders: &[PathBuf]) -> Vec<(PathBuf, u64)> {
-    use std::os::unix::fs::MetadataExt;
     let mut seen = std::collections::HashSet::new();
     let mut out = Vec::new();
     for folder in folders {
         let Some(existing) = folder.ancestors().find(|p| p.exists()) else {
             continue;
         };
-        let Ok(meta) = std::fs::metadata(existing) else {
+        let Some(file_system) = crate::os::file_system_of(existing) else {
             continue;
         };
-        if seen.insert(meta.dev()) {
-            if let Some(free) = free_bytes(existing) {
+        if seen.insert(file_system) {
+            if let Some(free) = crate::os::free_bytes(existing) {
                 out.push((folder.clone(), free));
             }
         }
@@ -243,12 +242,6 @@ pub(super) fn flush_outbox(store: &Store, config: &Config, now: f64) {
         }
         Err(e) => tracing::error!("outbox: {e}"),
     }
-}
-
-/// Free bytes on the file system holding `folder`.
-fn free_bytes(folder: &Path) -> Option<u64> {
-    let st = rustix::fs::statvfs(folder).ok()?;
-    Some(st.f_bavail.saturating_mul(st.f_frsize))
 }
 
 /// How long a daemon may take to make a site's summary before another may take over.
@@ -411,12 +404,10 @@ mod tests {
         // yet count by their nearest parent.
         let free = free_space(&folders);
         let devices = |p: &Path| {
-            use std::os::unix::fs::MetadataExt;
-            std::fs::metadata(p.ancestors().find(|a| a.exists()).unwrap())
-                .unwrap()
-                .dev()
+            crate::os::file_system_of(p.ancestors().find(|a| a.exists()).unwrap()).unwrap()
         };
-        let distinct: std::collections::HashSet<u64> = folders.iter().map(|f| devices(f)).collect();
+        let distinct: std::collections::HashSet<String> =
+            folders.iter().map(|f| devices(f)).collect();
         assert_eq!(free.len(), distinct.len());
         assert_eq!(free[0].0, dir.path().join("capture"));
     }

@@ -3,7 +3,8 @@
 //! stored (and kept as its live verdict) and its group's list rewritten. Only the new
 //! frame is registered, unless the group's reference changed since the others were.
 
-use crate::night::judge::{self, Placement, Site};
+use crate::night::judge::{self, Site};
+use crate::night::register::Placement;
 use crate::record::FrameRecord;
 use crate::rules::Verdict;
 use crate::store::{GroupKey, Store, StoreError};

@@ -111,8 +111,7 @@ pub fn run_with_clock(
         config.watch.workers
     };
     // Past a file-size limit a write fails (and is retried) instead of ending the daemon.
-    // SAFETY: setting a signal's disposition to "ignore" has no preconditions.
-    unsafe { libc::signal(libc::SIGXFSZ, libc::SIG_IGN) };
+    crate::os::prepare_daemon_process();
     let runtime = tokio::runtime::Builder::new_multi_thread()
         .worker_threads(1)
         .max_blocking_threads(workers.max(1) + 2)

@@ -241,17 +241,6 @@ impl Drop for WebServer {
     }
 }
 
-/// Lower this thread's CPU priority: the page yields to ingestion (and so do the reader
-/// processes it starts, which inherit it).
-fn lower_priority() {
-    // SAFETY: gettid and setpriority take plain integers and have no preconditions; a
-    // failure leaves the priority as it was.
-    unsafe {
-        let tid = libc::syscall(libc::SYS_gettid) as libc::id_t;
-        libc::setpriority(libc::PRIO_PROCESS, tid, 10);
-    }
-}
-
 /// Bind `[web] listen` and serve the page. The address bound is returned (a port 0
 /// becomes the one the system chose).
 pub fn start(
@@ -277,7 +266,7 @@ pub fn start(
     std::thread::Builder::new()
         .name("subwatch-page".into())
         .spawn(move || {
-            lower_priority();
+            crate::os::lower_thread_priority();
             super::page::run(builder_config, builder_clock, builder_state)
         })
         .map_err(|e| format!("cannot start the status page: {e}"))?;
@@ -286,7 +275,7 @@ pub fn start(
     std::thread::Builder::new()
         .name("subwatch-web".into())
         .spawn(move || {
-            lower_priority();
+            crate::os::lower_thread_priority();
             let runtime = match tokio::runtime::Builder::new_current_thread()
                 .enable_all()
                 .build()

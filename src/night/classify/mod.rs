@@ -12,8 +12,8 @@ mod sharp;
 mod trails;
 mod variables;
 
-use super::judge::Placement;
 use super::register::Affine;
+use super::register::Placement;
 use super::tracks::{covers, Source, TrackPoint, Tracks};
 use super::{Anomaly, AnomalyKind, CatalogSource, Detail, Detection, EarlierNight, FrameInput};
 use crate::measure::stats::{median_f64, MAD_TO_SIGMA};

@@ -1,0 +1,214 @@
+//! What differs by operating system, in one place: a Unix half (`unix.rs`, Linux) and a
+//! Windows half (`windows.rs`) behind one set of functions, so the rest of the code names
+//! no platform. Each function here says what it promises; each half says how it keeps it.
+
+use std::fs::File;
+use std::io;
+use std::path::Path;
+use std::process::{Child, Command, ExitStatus};
+
+#[cfg(unix)]
+#[path = "unix.rs"]
+mod imp;
+#[cfg(windows)]
+#[path = "windows.rs"]
+mod imp;
+
+/// Physical memory of this machine, bytes (0 when unknown).
+pub fn physical_memory() -> u64 {
+    imp::physical_memory()
+}
+
+/// The most address space (bytes) this process may give a child it starts: the hard
+/// limit it runs under itself (a batch scheduler's, a container's, `LimitAS=` in a unit).
+/// `None` when there is no such limit.
+pub fn address_space_ceiling() -> Option<u64> {
+    imp::address_space_ceiling()
+}
+
+/// A worker process confined to a memory limit, with no core dump or error dialog, that
+/// dies with this process. Dropping it kills the worker if it is still running.
+pub struct Confined {
+    pub child: Child,
+    _guard: imp::Guard,
+}
+
+/// Start `cmd` confined to `memory_bytes` of memory (lowered to what this process may
+/// give, never refused for it).
+pub fn spawn_confined(cmd: &mut Command, memory_bytes: u64) -> io::Result<Confined> {
+    let (child, guard) = imp::spawn_confined(cmd, memory_bytes)?;
+    Ok(Confined {
+        child,
+        _guard: guard,
+    })
+}
+
+/// How a process ended, in the terms a reader of the log needs.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub enum Ending {
+    /// Ended by itself with this code.
+    Exited(i32),
+    /// Killed from outside (SIGKILL; a job's or the system's memory killer).
+    Killed,
+    /// A fault or an abort: how the system names it ("signal 11", "exception
+    /// 0xC0000005") and what it is ("segmentation fault", "access violation").
+    Crashed { code: String, what: &'static str },
+}
+
+/// How a finished process ended.
+pub fn ending(status: &ExitStatus) -> Ending {
+    imp::ending(status)
+}
+
+/// Rename `from` to `to` unless `to` exists: `Ok(false)` when it does. Never replaces a
+/// file. An error for which [`is_cross_device`] holds when the two are on different
+/// file systems.
+pub fn rename_no_replace(from: &Path, to: &Path) -> io::Result<bool> {
+    imp::rename_no_replace(from, to)
+}
+
+/// Whether a rename failed because its two names are on different file systems.
+pub fn is_cross_device(e: &io::Error) -> bool {
+    imp::is_cross_device(e)
+}
+
+/// Whether an error says the disk is full.
+pub fn is_disk_full(e: &io::Error) -> bool {
+    imp::is_disk_full(e)
+}
+
+/// Whether opening a file failed because another program holds it open without sharing
+/// (a capture program still writing it on Windows): the file is still being written.
+pub fn is_held_by_writer(e: &io::Error) -> bool {
+    imp::is_held_by_writer(e)
+}
+
+/// Take a lock on `file` without waiting: exclusive, or shared with other shared
+/// holders. `Ok(false)` when another process holds a lock that conflicts. The system
+/// lets it go when the file is closed or the process ends, however it ends. The file's
+/// bytes stay readable by others while it is held.
+pub fn try_lock(file: &File, exclusive: bool) -> io::Result<bool> {
+    imp::try_lock(file, exclusive)
+}
+
+/// Which file system holds `path` (a value equal for two paths on the same one).
+pub fn file_system_of(path: &Path) -> Option<String> {
+    imp::file_system_of(path)
+}
+
+/// Free bytes (available to this user) on the file system holding `folder`.
+pub fn free_bytes(folder: &Path) -> Option<u64> {
+    imp::free_bytes(folder)
+}
+
+/// Read into `buf` from byte `offset` of `file`.
+pub fn read_at(file: &File, buf: &mut [u8], offset: u64) -> io::Result<usize> {
+    imp::read_at(file, buf, offset)
+}
+
+/// Fill `buf` from byte `offset` of `file` (an error at the end of the file).
+pub fn read_exact_at(file: &File, buf: &mut [u8], offset: u64) -> io::Result<()> {
+    imp::read_exact_at(file, buf, offset)
+}
+
+/// A file holding a secret (a password, a token) must be this user's and readable by
+/// nobody else; the reason in words when it is not.
+pub fn check_private_file(path: &Path) -> Result<(), String> {
+    imp::check_private_file(path)
+}
+
+/// Make `path` readable and writable by its owner only (a test's or a setup's secret).
+pub fn make_private(path: &Path) -> io::Result<()> {
+    imp::make_private(path)
+}
+
+/// A short name for the user this process runs as, for per-user temporary names.
+pub fn user_tag() -> String {
+    imp::user_tag()
+}
+
+/// Lower the calling thread's CPU priority (the status page yields to ingestion).
+pub fn lower_thread_priority() {
+    imp::lower_thread_priority()
+}
+
+/// Prepare the process for a long run: where the system would end it for a write past a
+/// file-size limit, the write fails instead (and is retried).
+pub fn prepare_daemon_process() {
+    imp::prepare_daemon_process()
+}
+
+/// The folder where a system-wide install keeps its configuration, store, reports and
+/// logs: `/etc/subwatch` and `/var/lib/subwatch` on Linux, `%ProgramData%\subwatch` on
+/// Windows. `kind` is "config", "data" or "logs".
+pub fn system_folder(kind: &str) -> std::path::PathBuf {
+    imp::system_folder(kind)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn a_rename_never_replaces_and_says_so() {
+        let dir = tempfile::tempdir().unwrap();
+        let (a, b) = (dir.path().join("a"), dir.path().join("b"));
+        std::fs::write(&a, "one").unwrap();
+        std::fs::write(&b, "two").unwrap();
+        assert!(!rename_no_replace(&a, &b).unwrap());
+        assert_eq!(std::fs::read_to_string(&b).unwrap(), "two");
+        std::fs::remove_file(&b).unwrap();
+        assert!(rename_no_replace(&a, &b).unwrap());
+        assert!(!a.exists());
+        assert_eq!(std::fs::read_to_string(&b).unwrap(), "one");
+    }
+
+    #[test]
+    fn the_file_system_and_its_free_space_are_known_for_a_folder() {
+        let dir = tempfile::tempdir().unwrap();
+        let sub = dir.path().join("sub");
+        std::fs::create_dir(&sub).unwrap();
+        assert!(file_system_of(dir.path()).is_some());
+        assert_eq!(file_system_of(dir.path()), file_system_of(&sub));
+        assert!(free_bytes(dir.path()).is_some_and(|b| b > 0));
+    }
+
+    #[test]
+    fn a_private_file_passes_and_an_open_one_does_not() {
+        let dir = tempfile::tempdir().unwrap();
+        let pw = dir.path().join("pw");
+        std::fs::write(&pw, "secret\n").unwrap();
+        make_private(&pw).unwrap();
+        assert_eq!(check_private_file(&pw), Ok(()));
+    }
+
+    #[test]
+    fn reading_at_an_offset_reads_those_bytes() {
+        let dir = tempfile::tempdir().unwrap();
+        let p = dir.path().join("f");
+        std::fs::write(&p, b"0123456789").unwrap();
+        let f = File::open(&p).unwrap();
+        let mut buf = [0u8; 3];
+        assert_eq!(read_at(&f, &mut buf, 4).unwrap(), 3);
+        assert_eq!(&buf, b"456");
+    }
+
+    #[test]
+    fn a_lock_is_refused_while_held_and_its_file_stays_readable() {
+        let dir = tempfile::tempdir().unwrap();
+        let p = dir.path().join("lock");
+        std::fs::write(&p, "4242\n").unwrap();
+        let holder = File::options().read(true).write(true).open(&p).unwrap();
+        assert!(try_lock(&holder, true).unwrap());
+        let other = File::open(&p).unwrap();
+        assert!(!try_lock(&other, false).unwrap());
+        assert_eq!(std::fs::read_to_string(&p).unwrap(), "4242\n");
+        drop(holder);
+        assert!(try_lock(&other, false).unwrap());
+    }
+
+    #[test]
+    fn the_machine_has_memory() {
+        assert!(physical_memory() > 0);
+    }
+}
