@@ -1,17 +1,16 @@
-//! The user's catalogue files into the index, once: each configured file is read, parsed
-//! (`catalogue`) and indexed (`store::catalogue_index`); an index built from the same
-//! files (path, size, modification time) and the same column settings is reused.
+//! The user's catalogue files into the index, once: each configured file is read a
+//! batch of rows at a time (`catalogue::Reader`) and indexed (`store::catalogue_index`),
+//! so memory stays bounded whatever the catalogue's size; an index built from the same
+//! files (path, size, modification time) and the same column settings is reused. The
+//! index is built beside its place and renamed into it only when every file was read:
+//! a file that fails leaves the last good index where it was.
 
 use std::path::{Path, PathBuf};
 
-use crate::catalogue::{is_fits, parse_csv, parse_fits_table, CatalogueError};
+use crate::catalogue::{CatalogueError, BATCH_ROWS};
 use crate::config::CatalogueConfig;
 use crate::store::catalogue_index::{CatalogueIndex, IndexWriter, SourceFile};
 use crate::store::StoreError;
-
-/// Larger catalogue files are refused rather than read into memory (a million stars
-/// take about 70 MB of CSV).
-pub const MAX_FILE_BYTES: u64 = 1 << 30;
 
 #[derive(Debug, thiserror::Error)]
 pub enum ImportError {
@@ -21,8 +20,6 @@ pub enum ImportError {
         #[source]
         source: std::io::Error,
     },
-    #[error("catalogue file {path}: {size} bytes, more than the {MAX_FILE_BYTES} this program reads; split it")]
-    TooLarge { path: PathBuf, size: u64 },
     #[error(transparent)]
     Parse(#[from] CatalogueError),
     #[error("catalogue index: {0}")]
@@ -91,6 +88,28 @@ fn source_of(path: &Path) -> Result<SourceFile, ImportError> {
     })
 }
 
+/// Read every configured file through as an import would, writing nothing: the stars
+/// they hold, or the first problem with its file, row and column (`check-config`).
+pub fn check(cfg: &CatalogueConfig) -> Result<u64, ImportError> {
+    let mut stars = 0u64;
+    for path in &cfg.files {
+        let file = std::fs::File::open(path).map_err(|source| ImportError::Read {
+            path: path.clone(),
+            source,
+        })?;
+        let name = path.display().to_string();
+        let mut reader = crate::catalogue::Reader::open(&name, file, &cfg.columns)?;
+        loop {
+            let batch = reader.next_batch(BATCH_ROWS)?;
+            if batch.is_empty() {
+                break;
+            }
+            stars += batch.len() as u64;
+        }
+    }
+    Ok(stars)
+}
+
 /// Build the index if it is missing or stale (or `force`), and say what it holds.
 /// `None` when no catalogue is configured.
 pub fn ensure(cfg: &CatalogueConfig, force: bool) -> Result<Option<Imported>, ImportError> {
@@ -121,43 +140,21 @@ pub fn ensure(cfg: &CatalogueConfig, force: bool) -> Result<Option<Imported>, Im
         })?;
     }
     let mut writer = IndexWriter::create(&index)?;
-    for (path, source) in cfg.files.iter().zip(&sources) {
-        if source.size > MAX_FILE_BYTES {
-            return Err(ImportError::TooLarge {
-                path: path.clone(),
-                size: source.size,
-            });
-        }
-        // Read no more than the limit whatever the file grew to since it was measured.
-        let mut bytes = Vec::new();
-        std::fs::File::open(path)
-            .and_then(|f| {
-                std::io::Read::read_to_end(
-                    &mut std::io::Read::take(f, MAX_FILE_BYTES + 1),
-                    &mut bytes,
-                )
-            })
-            .map_err(|source| ImportError::Read {
-                path: path.clone(),
-                source,
-            })?;
-        if bytes.len() as u64 > MAX_FILE_BYTES {
-            return Err(ImportError::TooLarge {
-                path: path.clone(),
-                size: bytes.len() as u64,
-            });
-        }
+    for path in &cfg.files {
+        let file = std::fs::File::open(path).map_err(|source| ImportError::Read {
+            path: path.clone(),
+            source,
+        })?;
         let name = path.display().to_string();
-        let stars = if is_fits(&bytes) {
-            parse_fits_table(&name, &bytes, &cfg.columns)?
-        } else {
-            let text = String::from_utf8(bytes).map_err(|_| CatalogueError::Format {
-                file: name.clone(),
-                reason: "neither a FITS file nor UTF-8 text (CSV)".into(),
-            })?;
-            parse_csv(&name, &text, &cfg.columns)?
-        };
-        writer.add(&crate::catalogue::merge_bands(stars))?;
+        let mut reader = crate::catalogue::Reader::open(&name, file, &cfg.columns)?;
+        writer.begin_file(reader.has_ids())?;
+        loop {
+            let batch = reader.next_batch(BATCH_ROWS)?;
+            if batch.is_empty() {
+                break;
+            }
+            writer.add(&batch)?;
+        }
     }
     let built = writer.finish(&sources, &key)?;
     Ok(Some(Imported {

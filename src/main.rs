@@ -47,8 +47,9 @@ enum CatalogueAction {
 
 #[derive(Subcommand)]
 enum StoreAction {
-    /// Move an SQLite store into a PostgreSQL database a site's rigs share: every row, in
-    /// one transaction, verified by counting each table on both sides.
+    /// Copy an SQLite store into a PostgreSQL database a site's rigs share: every row, in
+    /// one transaction, verified by counting each table on both sides. The SQLite store
+    /// is only read.
     Copy {
         /// The SQLite store file.
         #[arg(long)]
@@ -122,18 +123,22 @@ enum Command {
         #[command(flatten)]
         config: ConfigFile,
         /// Night label (YYYY-MM-DD): the local date of the evening the night began;
-        /// default: the night in progress, or the one that ended this morning.
+        /// default: the newest night with frames, by their DATE-OBS.
         #[arg(long)]
         night: Option<String>,
-        /// Print the night document as JSON.
+        /// Print the night document as JSON (and write no files, unless --send).
         #[arg(long)]
         json: bool,
         /// Also list every frame and every cosmic-ray hit.
         #[arg(long, conflicts_with = "json")]
         all: bool,
-        /// Write the summary files and mail the summary (to a .eml file without a server).
+        /// Also mail the summary (to a .eml file without a server). Without it the summary
+        /// files (HTML, CSV, JSON) are written and the summary printed.
         #[arg(long)]
         send: bool,
+        /// Write the summary files here instead of [report] folder.
+        #[arg(long)]
+        out: Option<PathBuf>,
         /// Every rig of the site that shares this store, not only this one: each frame
         /// names its rig, and the summary has a group per rig, target and filter.
         #[arg(long)]
@@ -225,11 +230,25 @@ fn main() -> ExitCode {
     }));
     match run(cli) {
         Ok(code) => code,
+        // The reader of the output closed the pipe (`| head`): quiet, as standard tools
+        // are; the status a shell gives a command that SIGPIPE ended (128 + 13).
+        Err(e) if closed_pipe(&e) => ExitCode::from(141),
         Err(e) => {
             eprintln!("subwatch: {}", describe(&e));
             ExitCode::from(2)
         }
     }
+}
+
+/// Whether an error is the output's reader having gone.
+fn closed_pipe(e: &anyhow::Error) -> bool {
+    e.chain().any(|c| {
+        c.downcast_ref::<std::io::Error>()
+            .is_some_and(|io| io.kind() == std::io::ErrorKind::BrokenPipe)
+            || c.downcast_ref::<serde_json::Error>()
+                .and_then(|j| j.io_error_kind())
+                == Some(std::io::ErrorKind::BrokenPipe)
+    })
 }
 
 /// An error and its causes on one line, each cause once: a library error that already
@@ -275,6 +294,7 @@ fn run(cli: Cli) -> Result<ExitCode> {
             all,
             send,
             site,
+            out,
         } => night::report(
             &config.path,
             night,
@@ -283,6 +303,7 @@ fn run(cli: Cli) -> Result<ExitCode> {
                 all,
                 send,
                 site,
+                out,
             },
         ),
         Command::Demo {

@@ -29,6 +29,8 @@ pub struct Prepared {
     pub summary: report::Summary,
     pub html_path: PathBuf,
     pub csv_path: PathBuf,
+    /// The night document (the contract's JSON), as `report --json` prints it.
+    pub json_path: PathBuf,
     /// (name, PNG) of every plot and cutout.
     pub images: Vec<(String, Vec<u8>)>,
 }
@@ -206,11 +208,18 @@ pub fn write_files(
         path: csv_path.clone(),
         source,
     })?;
+    let json_path = folder.join(format!("night-{night}.json"));
+    let json = serde_json::to_vec(&doc).unwrap_or_default();
+    std::fs::write(&json_path, json).map_err(|source| MorningError::Write {
+        path: json_path.clone(),
+        source,
+    })?;
     Ok(Prepared {
         doc,
         summary,
         html_path,
         csv_path,
+        json_path,
         images,
     })
 }

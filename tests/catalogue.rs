@@ -52,7 +52,7 @@ fn a_bad_row_is_named_by_file_row_and_column() {
     let (code, _, err) = import(&config(dir.path(), &["stars.csv"]));
     assert_ne!(code, 0);
     assert!(
-        err.contains("stars.csv: row 2, column \"dec_deg\": \"twenty\" is not a number"),
+        err.contains("stars.csv: row 2 (line 3), column \"dec_deg\": \"twenty\" is not a number"),
         "{err}"
     );
     // A missing column names the columns there are.
@@ -60,6 +60,76 @@ fn a_bad_row_is_named_by_file_row_and_column() {
     let (code, _, err) = import(&config(dir.path(), &["stars.csv"]));
     assert_ne!(code, 0);
     assert!(err.contains("no column \"ra_deg\""), "{err}");
+}
+
+/// A catalogue edited mid-night with a bad row: the daemon still starts and records
+/// frames (with the index of the catalogue's last good version), `report` still
+/// reports, and the problem is said with its file, row and column; `check-config` says
+/// it too and fails, without writing anything.
+#[test]
+fn a_bad_row_added_mid_night_stops_nothing_and_is_said() {
+    let s = common::daemon::site("");
+    let stars = s.root.join("stars.csv");
+    std::fs::write(&stars, "id,ra_deg,dec_deg,mag\nA,10.0,20.0,12.1\n").unwrap();
+    let mut text = std::fs::read_to_string(&s.config).unwrap();
+    text.push_str(&format!(
+        "[catalogue]\nfiles = [\"{}\"]\nindex = \"{}\"\n",
+        stars.display(),
+        s.root.join("index.sqlite").display()
+    ));
+    std::fs::write(&s.config, text).unwrap();
+    assert_eq!(import(&s.config).0, 0);
+    let index_before = std::fs::read(s.root.join("index.sqlite")).unwrap();
+    let mut csv = std::fs::read_to_string(&stars).unwrap();
+    csv.push_str("BAD,NaN,1,2\n");
+    std::fs::write(&stars, csv).unwrap();
+    let check = Command::new(common::binary())
+        .args(["check-config", "--config"])
+        .arg(&s.config)
+        .output()
+        .unwrap();
+    let said = String::from_utf8_lossy(&check.stdout);
+    assert_eq!(check.status.code(), Some(1), "{said}");
+    assert!(
+        said.contains("stars.csv: row 2 (line 3), column \"ra_deg\": \"NaN\" is not a number"),
+        "{said}"
+    );
+    let d = common::daemon::Logged::start(&s.config);
+    assert!(
+        d.wait_log(" started: config", std::time::Duration::from_secs(20)),
+        "{}",
+        d.log()
+    );
+    std::fs::write(
+        s.capture.join("kfa_001.fits"),
+        common::daemon::frame_bytes(7, &s.root, "Light"),
+    )
+    .unwrap();
+    let rows = common::daemon::wait_for(&s.db, 1, std::time::Duration::from_secs(30));
+    let log = d.stop();
+    assert_eq!(rows.len(), 1, "{log}");
+    assert_eq!(rows[0].1, "ok", "{rows:?}");
+    assert!(
+        log.contains("row 2 (line 3), column \"ra_deg\": \"NaN\" is not a number")
+            && log.contains("last good version stays in use"),
+        "{log}"
+    );
+    assert_eq!(
+        std::fs::read(s.root.join("index.sqlite")).unwrap(),
+        index_before,
+        "the last good index is kept as it was"
+    );
+    let report = Command::new(common::binary())
+        .args(["report", "--json", "--config"])
+        .arg(&s.config)
+        .output()
+        .unwrap();
+    assert_eq!(
+        report.status.code(),
+        Some(0),
+        "{}",
+        String::from_utf8_lossy(&report.stderr)
+    );
 }
 
 #[test]
@@ -82,13 +152,17 @@ fn a_hostile_fits_table_is_an_error_not_a_crash() {
         "XTENSION= 'BINTABLE'",
         "BITPIX  =                    8",
         "NAXIS   =                    2",
-        "NAXIS1  =                    8",
+        "NAXIS1  =                   24",
         "NAXIS2  =     1000000000000000",
         "PCOUNT  =                    0",
         "GCOUNT  =                    1",
-        "TFIELDS =                    1",
+        "TFIELDS =                    3",
         "TTYPE1  = 'ra_deg  '",
         "TFORM1  = 'D       '",
+        "TTYPE2  = 'dec_deg '",
+        "TFORM2  = 'D       '",
+        "TTYPE3  = 'mag     '",
+        "TFORM3  = 'D       '",
         "END",
     ] {
         bytes.push_str(&card(c));
@@ -101,7 +175,10 @@ fn a_hostile_fits_table_is_an_error_not_a_crash() {
     let (code, _, err) = import(&config(dir.path(), &["stars.fits"]));
     assert_eq!(code, 2, "{err}");
     assert!(
-        err.contains("stars.fits") && err.contains("more than the file holds"),
+        err.contains("stars.fits")
+            && err.contains(
+                "the table promises 1000000000000000 rows of 24 bytes; the file ends in row 1"
+            ),
         "{err}"
     );
 }

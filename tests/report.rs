@@ -244,10 +244,68 @@ fn the_daemons_night_reported_graded_again_and_its_alerts_told() {
     // status: the night the frames' DATE-OBS place them in, whatever today's date.
     let status = text(&run(&["status", "--config", config]).stdout);
     assert!(
-        status.starts_with("night 2026-03-14 (the night of the latest frame recorded"),
+        status.starts_with("night 2026-03-14 (the newest night with frames, by their DATE-OBS"),
         "{status}"
     );
     assert!(status.contains("frames 9 "), "{status}");
+
+    // report without --night means the same night, and without mail it writes the
+    // summary files (HTML, CSV, JSON) and says where; --out chooses the folder.
+    let out_dir = s.root.join("summary here");
+    let o = run(&[
+        "report",
+        "--config",
+        config,
+        "--out",
+        out_dir.to_str().unwrap(),
+    ]);
+    assert!(o.status.success(), "{}", text(&o.stderr));
+    assert!(
+        text(&o.stdout).starts_with("Night 2026-03-14: 9 frames: "),
+        "{}",
+        text(&o.stdout)
+    );
+    let said = text(&o.stderr);
+    assert!(
+        said.contains(&format!(
+            "night 2026-03-14: the summary is written in {}: night-2026-03-14.html, night-2026-03-14.csv, night-2026-03-14.json",
+            out_dir.display()
+        )),
+        "{said}"
+    );
+    let written: serde_json::Value =
+        serde_json::from_slice(&std::fs::read(out_dir.join("night-2026-03-14.json")).unwrap())
+            .unwrap();
+    assert_eq!(written["frames"].as_array().unwrap().len(), 9);
+    assert!(
+        std::fs::read_to_string(out_dir.join("night-2026-03-14.html"))
+            .unwrap()
+            .contains("<html")
+    );
+    // The default folder: [report] folder, else `reports` beside the store.
+    let o = run(&["report", "--config", config]);
+    assert!(o.status.success(), "{}", text(&o.stderr));
+    assert!(s.root.join("reports/night-2026-03-14.csv").exists());
+
+    // A reader that closes the pipe before the document comes ends the command quietly,
+    // as standard tools end (killed by SIGPIPE: status 128 + 13 in a shell): no panic,
+    // no message.
+    for args in [
+        vec!["report", "--config", config, "--json"],
+        vec!["night", s.capture.to_str().unwrap(), "--json"],
+    ] {
+        let mut child = Command::new(common::binary())
+            .args(&args)
+            .stdout(std::process::Stdio::piped())
+            .stderr(std::process::Stdio::piped())
+            .spawn()
+            .unwrap();
+        drop(child.stdout.take());
+        let out = child.wait_with_output().unwrap();
+        let err = text(&out.stderr);
+        assert_eq!(out.status.code(), Some(141), "{args:?}: {err}");
+        assert!(err.is_empty(), "{args:?}: {err}");
+    }
 
     // report: counts first, then the rejected frames with their reasons.
     let o = run(&["report", "--config", config, "--night", "2026-03-14"]);

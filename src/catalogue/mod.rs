@@ -4,6 +4,7 @@
 //! and nothing is guessed. Proper motion carries a position from the catalogue's epoch to
 //! the frame's. Pure: the shell reads the files and indexes the stars (`store::catalogue`).
 
+mod csv_rows;
 mod table;
 
 use serde::{Deserialize, Serialize};
@@ -123,15 +124,29 @@ pub enum CatalogueError {
         column: String,
         present: String,
     },
-    #[error("{file}: row {row}, column {column:?}: {reason}")]
+    #[error("{file}: row {row}{}, column {column:?}: {reason}", at_line(*line))]
     BadValue {
         file: String,
         row: usize,
+        /// The text line the row starts on (CSV: comments, blank lines and quoted line
+        /// breaks make it differ from the row).
+        line: Option<u64>,
         column: String,
         reason: String,
     },
+    #[error("{file}: the column {column:?} is named twice (columns {first} and {second}); which one holds the value cannot be known, so rename or remove one")]
+    DuplicateColumn {
+        file: String,
+        column: String,
+        first: usize,
+        second: usize,
+    },
     #[error("{file}: {reason}")]
     Format { file: String, reason: String },
+}
+
+fn at_line(line: Option<u64>) -> String {
+    line.map(|l| format!(" (line {l})")).unwrap_or_default()
 }
 
 /// A row's values by column, for both formats.
@@ -152,6 +167,32 @@ struct Layout {
 }
 
 fn layout(file: &str, names: &[String], cols: &Columns) -> Result<Layout, CatalogueError> {
+    // A column read twice over would be read from one of them silently: refused.
+    let wanted = [
+        &cols.ra,
+        &cols.dec,
+        &cols.id,
+        &cols.band,
+        &cols.pm_ra,
+        &cols.pm_dec,
+    ]
+    .into_iter()
+    .chain(cols.mags.iter().map(|(c, _)| c));
+    for name in wanted {
+        let mut at = names
+            .iter()
+            .enumerate()
+            .filter(|(_, n)| n.trim().eq_ignore_ascii_case(name))
+            .map(|(k, _)| k + 1);
+        if let (Some(first), Some(second)) = (at.next(), at.next()) {
+            return Err(CatalogueError::DuplicateColumn {
+                file: file.to_string(),
+                column: name.clone(),
+                first,
+                second,
+            });
+        }
+    }
     let find = |name: &str| {
         names
             .iter()
@@ -193,7 +234,7 @@ fn layout(file: &str, names: &[String], cols: &Columns) -> Result<Layout, Catalo
 /// One row into a star. `row` is 1-based, counting data rows.
 fn star_of<'a>(
     file: &str,
-    row: usize,
+    (row, line): (usize, Option<u64>),
     names: &[String],
     lay: &Layout,
     cols: &Columns,
@@ -202,6 +243,7 @@ fn star_of<'a>(
     let bad = |c: usize, reason: String| CatalogueError::BadValue {
         file: file.to_string(),
         row,
+        line,
         column: names[c].trim().to_string(),
         reason,
     };
@@ -276,174 +318,162 @@ fn shorten(t: &str) -> String {
     out
 }
 
-/// The longest line a catalogue row may have, characters.
+/// The longest row a catalogue may have, bytes: a hostile file cannot make one row
+/// fill memory.
 pub const MAX_LINE: usize = 65_536;
 /// The most columns a catalogue may have (as FITS tables: TFIELDS ≤ 999).
 pub const MAX_COLUMNS: usize = 999;
+/// Rows are read and handed on at most this many at a time, so a catalogue of any size
+/// is imported in bounded memory.
+pub const BATCH_ROWS: usize = 20_000;
 
-/// Split one CSV line (RFC 4180 quoting: a quoted field may hold commas and doubled
-/// quotes; fields do not span lines), at most `max` fields (the rest is one more).
-fn csv_fields(line: &str, max: usize) -> Vec<String> {
-    let mut out = Vec::new();
-    let mut field = String::new();
-    let mut quoted = false;
-    let mut chars = line.chars().peekable();
-    while let Some(c) = chars.next() {
-        match (c, quoted) {
-            ('"', true) if chars.peek() == Some(&'"') => {
-                field.push('"');
-                chars.next();
-            }
-            ('"', true) => quoted = false,
-            ('"', false) if field.trim().is_empty() => {
-                field.clear();
-                quoted = true;
-            }
-            (',', false) if out.len() < max => out.push(std::mem::take(&mut field)),
-            _ => field.push(c),
-        }
-    }
-    out.push(field);
-    out
+/// A catalogue being read, a batch of stars at a time: CSV (`csv_rows`) or the first
+/// binary table of a FITS file (`table`), told apart by the first bytes.
+pub struct Reader<R: std::io::Read> {
+    file: String,
+    cols: Columns,
+    names: Vec<String>,
+    lay: Layout,
+    rows: Rows<R>,
+    /// Data rows read so far.
+    row: usize,
 }
 
-/// Parse a CSV catalogue: a header row naming the columns, then one star per line.
-/// Blank lines and lines starting with `#` are passed over.
-pub fn parse_csv(
-    file: &str,
-    text: &str,
-    cols: &Columns,
-) -> Result<Vec<CatalogueStar>, CatalogueError> {
-    let mut lines = text
-        .lines()
-        .enumerate()
-        .filter(|(_, l)| !l.trim().is_empty() && !l.trim_start().starts_with('#'));
-    let Some((_, head)) = lines.next() else {
-        return Err(CatalogueError::Format {
+enum Rows<R: std::io::Read> {
+    Csv(csv_rows::CsvRows<std::io::Chain<std::io::Cursor<Vec<u8>>, R>>),
+    Fits(table::TableRows<std::io::Chain<std::io::Cursor<Vec<u8>>, R>>),
+}
+
+impl<R: std::io::Read> Reader<R> {
+    /// Start reading `input` (named `file` in messages): its header row or table header
+    /// read and every wanted column found.
+    pub fn open(file: &str, mut input: R, cols: &Columns) -> Result<Self, CatalogueError> {
+        let format = |reason: String| CatalogueError::Format {
             file: file.to_string(),
-            reason: "no header row".into(),
-        });
-    };
-    let too_long = |row: usize| CatalogueError::Format {
-        file: file.to_string(),
-        reason: format!("row {row}: longer than {MAX_LINE} characters"),
-    };
-    if head.len() > MAX_LINE {
-        return Err(too_long(0));
-    }
-    let names: Vec<String> = csv_fields(head.trim_start_matches('\u{feff}'), MAX_COLUMNS)
-        .into_iter()
-        .map(|n| n.trim().to_string())
-        .collect();
-    if names.len() > MAX_COLUMNS {
-        return Err(CatalogueError::Format {
-            file: file.to_string(),
-            reason: format!("the header row names more than {MAX_COLUMNS} columns"),
-        });
-    }
-    let lay = layout(file, &names, cols)?;
-    let mut stars = Vec::new();
-    for (row, (_, line)) in lines.enumerate() {
-        if line.len() > MAX_LINE {
-            return Err(too_long(row + 1));
-        }
-        let fields = csv_fields(line, names.len());
-        if fields.len() != names.len() {
-            return Err(CatalogueError::Format {
-                file: file.to_string(),
-                reason: format!(
-                    "row {}: {} fields where the header row names {}",
-                    row + 1,
-                    fields.len(),
-                    names.len()
-                ),
-            });
-        }
-        let cell = |c: usize| {
-            let t = fields[c].as_str();
-            if t.trim().is_empty() {
-                Cell::Empty
-            } else {
-                Cell::Text(t)
-            }
+            reason,
         };
-        stars.push(star_of(file, row + 1, &names, &lay, cols, &cell)?);
+        let mut head = Vec::new();
+        std::io::Read::read_to_end(&mut std::io::Read::take(&mut input, 80), &mut head)
+            .map_err(|e| format(format!("cannot be read: {e}")))?;
+        let fits = head.starts_with(b"SIMPLE  =");
+        let input = std::io::Read::chain(std::io::Cursor::new(head), input);
+        let (names, rows) = if fits {
+            let t = table::TableRows::open(input).map_err(format)?;
+            (t.names(), Rows::Fits(t))
+        } else {
+            let c = csv_rows::CsvRows::open(input).map_err(format)?;
+            (c.names().to_vec(), Rows::Csv(c))
+        };
+        let lay = layout(file, &names, cols)?;
+        Ok(Reader {
+            file: file.to_string(),
+            cols: cols.clone(),
+            names,
+            lay,
+            rows,
+            row: 0,
+        })
     }
-    Ok(stars)
+
+    /// Whether the rows carry ids of their own (else each star is named by its row, and
+    /// no two rows can be one star).
+    pub fn has_ids(&self) -> bool {
+        self.lay.id.is_some()
+    }
+
+    /// The next stars, at most `max`; empty at the end.
+    pub fn next_batch(&mut self, max: usize) -> Result<Vec<CatalogueStar>, CatalogueError> {
+        let mut out = Vec::new();
+        let file = self.file.clone();
+        let format = |reason: String| CatalogueError::Format {
+            file: file.clone(),
+            reason,
+        };
+        while out.len() < max {
+            let row = self.row + 1;
+            let star = match &mut self.rows {
+                Rows::Csv(c) => {
+                    let Some(line) = c.next_row(self.names.len()).map_err(format)? else {
+                        break;
+                    };
+                    let cell = |k: usize| {
+                        let t = c.field(k);
+                        if t.trim().is_empty() {
+                            Cell::Empty
+                        } else {
+                            Cell::Text(t)
+                        }
+                    };
+                    star_of(
+                        &self.file,
+                        (row, Some(line)),
+                        &self.names,
+                        &self.lay,
+                        &self.cols,
+                        &cell,
+                    )?
+                }
+                Rows::Fits(t) => {
+                    if !t.next_row().map_err(format)? {
+                        break;
+                    }
+                    let cell = |k: usize| match t.value(k) {
+                        table::Value::Number(v) => Cell::Number(v),
+                        table::Value::Text(s) => Cell::Text(s),
+                        table::Value::Empty => Cell::Empty,
+                    };
+                    star_of(
+                        &self.file,
+                        (row, None),
+                        &self.names,
+                        &self.lay,
+                        &self.cols,
+                        &cell,
+                    )?
+                }
+            };
+            self.row = row;
+            out.push(star);
+        }
+        Ok(out)
+    }
 }
 
-/// Parse a catalogue from the first binary-table extension of a FITS file's bytes.
-pub fn parse_fits_table(
+/// Every star of a catalogue held in memory (tests, small files), row by row; rows of
+/// one star in several bands are merged where the index is built, not here.
+pub fn read_all(
     file: &str,
     bytes: &[u8],
     cols: &Columns,
 ) -> Result<Vec<CatalogueStar>, CatalogueError> {
-    let format = |reason: String| CatalogueError::Format {
-        file: file.to_string(),
-        reason,
-    };
-    let t = table::BinTable::find(bytes).map_err(format)?;
-    let names = t.names();
-    let lay = layout(file, &names, cols)?;
-    // Not sized from the header: NAXIS2 is a claim until the rows are read.
-    let mut stars = Vec::with_capacity(t.rows().min(1 << 16));
-    for row in 0..t.rows() {
-        let cell = |c: usize| match t.value(bytes, row, c) {
-            table::Value::Number(v) => Cell::Number(v),
-            table::Value::Text(s) => Cell::Text(s),
-            table::Value::Empty => Cell::Empty,
-        };
-        stars.push(star_of(file, row + 1, &names, &lay, cols, &cell)?);
-    }
-    Ok(stars)
-}
-
-/// Whether bytes look like a FITS file (its first card is SIMPLE).
-pub fn is_fits(bytes: &[u8]) -> bool {
-    bytes.starts_with(b"SIMPLE  =")
-}
-
-/// Rows that name the same star (one row per band) as one star with all their
-/// magnitudes: the same id within an arcsecond.
-pub fn merge_bands(stars: Vec<CatalogueStar>) -> Vec<CatalogueStar> {
-    let mut by_id: std::collections::HashMap<String, usize> = std::collections::HashMap::new();
-    let mut out: Vec<CatalogueStar> = Vec::with_capacity(stars.len());
-    for s in stars {
-        if let Some(&k) = by_id.get(&s.id) {
-            let o = &out[k];
-            let sep = (o.dec_deg - s.dec_deg).hypot(
-                ((o.ra_deg - s.ra_deg + 540.0).rem_euclid(360.0) - 180.0)
-                    * o.dec_deg.to_radians().cos(),
-            );
-            if sep * 3600.0 <= 1.0 {
-                let o = &mut out[k];
-                for m in s.mags {
-                    if !o.mags.iter().any(|(b, _)| *b == m.0) {
-                        o.mags.push(m);
-                    }
-                }
-                continue;
-            }
+    let mut reader = Reader::open(file, bytes, cols)?;
+    let mut stars = Vec::new();
+    loop {
+        let batch = reader.next_batch(BATCH_ROWS)?;
+        if batch.is_empty() {
+            return Ok(stars);
         }
-        by_id.insert(s.id.clone(), out.len());
-        out.push(s);
+        stars.extend(batch);
     }
-    out
+}
+
+/// Whether two positions of rows naming the same star are one star: within an arcsecond.
+pub fn same_star(a: (f64, f64), b: (f64, f64)) -> bool {
+    let sep =
+        (a.1 - b.1).hypot(((a.0 - b.0 + 540.0).rem_euclid(360.0) - 180.0) * a.1.to_radians().cos());
+    sep * 3600.0 <= 1.0
 }
 
 #[cfg(test)]
 mod tests {
     use super::*;
 
-    #[test]
-    fn rows_of_one_star_in_several_bands_become_one_star() {
-        let text = "id,ra_deg,dec_deg,mag,band\nK-1,84.25,27.6,11.5,V\nK-1,84.25,27.6,10.9,I\nK-2,84.3,27.6,12.0,V\n";
-        let stars = merge_bands(parse_csv("c.csv", text, &Columns::default()).unwrap());
-        assert_eq!(stars.len(), 2);
-        assert_eq!(
-            stars[0].mags,
-            vec![("V".to_string(), 11.5), ("I".to_string(), 10.9)]
-        );
+    fn parse_csv(
+        file: &str,
+        text: &str,
+        cols: &Columns,
+    ) -> Result<Vec<CatalogueStar>, CatalogueError> {
+        read_all(file, text.as_bytes(), cols)
     }
 
     #[test]
@@ -454,6 +484,45 @@ mod tests {
         let many = format!("{}\n", ",".repeat(5000));
         let e = parse_csv("c.csv", &many, &Columns::default()).unwrap_err();
         assert!(e.to_string().contains("more than 999 columns"), "{e}");
+        // No line break at all: refused within a bounded read, not held whole.
+        let endless = format!("ra_deg,dec_deg,mag\n1,2,\"{}", "x".repeat(10 * MAX_LINE));
+        let e = parse_csv("c.csv", &endless, &Columns::default()).unwrap_err();
+        assert!(e.to_string().contains("longer than"), "{e}");
+    }
+
+    #[test]
+    fn a_column_named_twice_is_refused() {
+        let e = parse_csv(
+            "c.csv",
+            "id,ra_deg,RA_DEG,dec_deg,mag\nK-1,1,2,3,4\n",
+            &Columns::default(),
+        )
+        .unwrap_err();
+        assert_eq!(
+            e.to_string(),
+            "c.csv: the column \"ra_deg\" is named twice (columns 2 and 3); which one holds the value cannot be known, so rename or remove one"
+        );
+        // A column nobody reads may repeat.
+        assert!(parse_csv(
+            "c.csv",
+            "note,ra_deg,dec_deg,mag,note\na,1,2,3,b\n",
+            &Columns::default()
+        )
+        .is_ok());
+    }
+
+    #[test]
+    fn quoted_line_breaks_comments_and_the_line_of_a_bad_row() {
+        // RFC 4180 section 2, rule 6: a quoted field may hold a line break.
+        let text = "# a note\nid,ra_deg,dec_deg,mag\n\"K-1\nsecond line\",84.25,27.6,11.5\n\n# another\nK-2,84.3,x,12\n";
+        let e = parse_csv("c.csv", text, &Columns::default()).unwrap_err();
+        assert_eq!(
+            e.to_string(),
+            "c.csv: row 2 (line 7), column \"dec_deg\": \"x\" is not a number"
+        );
+        let ok = parse_csv("c.csv", &text.replace(",x,", ",27.6,"), &Columns::default()).unwrap();
+        assert_eq!(ok.len(), 2);
+        assert_eq!(ok[0].id, "K-1second line");
     }
 
     #[test]
@@ -472,7 +541,7 @@ mod tests {
         .unwrap_err();
         assert_eq!(
             bad.to_string(),
-            "c.csv: row 2, column \"dec_deg\": \"x\" is not a number"
+            "c.csv: row 2 (line 3), column \"dec_deg\": \"x\" is not a number"
         );
         let missing = parse_csv("c.csv", "ra,dec_deg,mag\n", &Columns::default()).unwrap_err();
         assert!(

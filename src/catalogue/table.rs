@@ -1,7 +1,12 @@
 //! The first binary-table extension of a FITS file (FITS Standard 4.0, section 7.3),
-//! read from bytes with every size checked against what the bytes hold. Scalar columns
-//! of types B, I, J, K, E, D and character columns (A) are read; other types (logical,
-//! bits, complex, arrays) are skipped over by their width and read as empty.
+//! read from a stream: the headers block by block (at most `MAX_HEADER_BLOCKS` each),
+//! other HDUs' data passed over, then the table a row at a time, so memory does not
+//! grow with the table. Every size is checked; a file that ends before the rows its
+//! header promises is an error at the row where it ends. Scalar columns of types B, I,
+//! J, K, E, D and character columns (A) are read; other types (logical, bits, complex,
+//! arrays) are skipped over by their width and read as empty.
+
+use std::io::Read;
 
 use crate::frame::cards::{keyword, parse_card, Cards, HeaderCard};
 
@@ -25,24 +30,26 @@ struct Column {
     null: Option<i64>,
 }
 
-pub struct BinTable {
+struct BinTable {
     columns: Vec<Column>,
     row_bytes: usize,
     rows: usize,
-    data_start: usize,
 }
 
-/// One header: its value cards and the offset just past its END block.
-fn header_at(bytes: &[u8], start: usize) -> Result<(Vec<HeaderCard>, usize), String> {
+/// One header read from `input`: its value cards (the input is left just past its END
+/// block).
+fn read_header(input: &mut impl Read) -> Result<Option<Vec<HeaderCard>>, String> {
     let mut cards = Vec::new();
+    let mut block = vec![0u8; BLOCK];
     for b in 0..MAX_HEADER_BLOCKS {
-        let at = start + b * BLOCK;
-        let Some(block) = bytes.get(at..at + BLOCK) else {
-            return Err(format!("the file ends inside a header (at byte {at})"));
-        };
+        match read_full(input, &mut block)? {
+            0 if b == 0 => return Ok(None),
+            BLOCK => {}
+            _ => return Err("the file ends inside a header".into()),
+        }
         for raw in block.chunks_exact(80) {
             if keyword(raw) == "END" {
-                return Ok((cards, at + BLOCK));
+                return Ok(Some(cards));
             }
             if let Some(c) = std::str::from_utf8(raw).ok().and_then(parse_card) {
                 cards.push(c);
@@ -52,6 +59,20 @@ fn header_at(bytes: &[u8], start: usize) -> Result<(Vec<HeaderCard>, usize), Str
     Err(format!(
         "no END card within {MAX_HEADER_BLOCKS} header blocks"
     ))
+}
+
+/// Read until `buf` is full or the input ends; how many bytes were read.
+fn read_full(input: &mut impl Read, buf: &mut [u8]) -> Result<usize, String> {
+    let mut got = 0;
+    while got < buf.len() {
+        match input.read(&mut buf[got..]) {
+            Ok(0) => break,
+            Ok(n) => got += n,
+            Err(e) if e.kind() == std::io::ErrorKind::Interrupted => {}
+            Err(e) => return Err(format!("cannot be read: {e}")),
+        }
+    }
+    Ok(got)
 }
 
 fn whole(cards: &[HeaderCard], key: &str) -> Result<usize, String> {
@@ -116,33 +137,79 @@ fn width(kind: u8, repeat: usize) -> Option<usize> {
     repeat.checked_mul(each)
 }
 
-impl BinTable {
-    /// The first BINTABLE extension of the file.
-    pub fn find(bytes: &[u8]) -> Result<BinTable, String> {
-        if !super::is_fits(bytes) {
-            return Err("not a FITS file (no SIMPLE card)".into());
-        }
-        let mut start = 0usize;
+/// A binary table being read row by row.
+pub struct TableRows<R: Read> {
+    input: std::io::BufReader<R>,
+    table: BinTable,
+    row: Vec<u8>,
+    read: usize,
+}
+
+impl<R: Read> TableRows<R> {
+    /// Find the first BINTABLE extension of the stream.
+    pub fn open(input: R) -> Result<Self, String> {
+        let mut input = std::io::BufReader::with_capacity(1 << 16, input);
         for hdu in 0..1000 {
-            let (cards, data_start) = header_at(bytes, start)?;
-            let size = data_bytes(&cards)?;
-            let is_table = hdu > 0 && cards.text("XTENSION").as_deref() == Some("BINTABLE");
-            if is_table {
-                return Self::from_header(&cards, data_start, bytes.len());
+            let Some(cards) = read_header(&mut input)? else {
+                break;
+            };
+            if hdu == 0 && cards.logical("SIMPLE").is_none() {
+                return Err("not a FITS file (no SIMPLE card)".into());
             }
-            let padded = size
+            if hdu > 0 && cards.text("XTENSION").as_deref() == Some("BINTABLE") {
+                let table = BinTable::from_header(&cards)?;
+                return Ok(TableRows {
+                    input,
+                    row: vec![0u8; table.row_bytes],
+                    table,
+                    read: 0,
+                });
+            }
+            let padded = data_bytes(&cards)?
                 .div_ceil(BLOCK)
                 .checked_mul(BLOCK)
                 .ok_or("size overflows")?;
-            start = data_start.checked_add(padded).ok_or("size overflows")?;
-            if start >= bytes.len() {
+            let skipped = std::io::copy(
+                &mut Read::take(&mut input, padded as u64),
+                &mut std::io::sink(),
+            )
+            .map_err(|e| format!("cannot be read: {e}"))?;
+            if skipped < padded as u64 {
                 break;
             }
         }
         Err("no binary table extension".into())
     }
 
-    fn from_header(cards: &[HeaderCard], data_start: usize, len: usize) -> Result<Self, String> {
+    pub fn names(&self) -> Vec<String> {
+        self.table.columns.iter().map(|c| c.name.clone()).collect()
+    }
+
+    /// Read the next row; `false` after the last.
+    pub fn next_row(&mut self) -> Result<bool, String> {
+        if self.read == self.table.rows {
+            return Ok(false);
+        }
+        if read_full(&mut self.input, &mut self.row)? < self.row.len() {
+            return Err(format!(
+                "the table promises {} rows of {} bytes; the file ends in row {}",
+                self.table.rows,
+                self.table.row_bytes,
+                self.read + 1
+            ));
+        }
+        self.read += 1;
+        Ok(true)
+    }
+
+    /// Column `c` of the row last read.
+    pub fn value(&self, c: usize) -> Value<'_> {
+        self.table.value(&self.row, c)
+    }
+}
+
+impl BinTable {
+    fn from_header(cards: &[HeaderCard]) -> Result<Self, String> {
         let row_bytes = whole(cards, "NAXIS1")?;
         let rows = whole(cards, "NAXIS2")?;
         if rows > 0 && row_bytes == 0 {
@@ -152,15 +219,9 @@ impl BinTable {
         if fields > MAX_COLUMNS {
             return Err(format!("TFIELDS = {fields}, more than {MAX_COLUMNS}"));
         }
-        let end = row_bytes
+        row_bytes
             .checked_mul(rows)
-            .and_then(|n| n.checked_add(data_start))
             .ok_or("the table's size overflows")?;
-        if end > len {
-            return Err(format!(
-                "the table promises {rows} rows of {row_bytes} bytes, more than the file holds"
-            ));
-        }
         let mut columns = Vec::with_capacity(fields);
         let mut offset = 0usize;
         for k in 1..=fields {
@@ -193,23 +254,14 @@ impl BinTable {
             columns,
             row_bytes,
             rows,
-            data_start,
         })
     }
 
-    pub fn names(&self) -> Vec<String> {
-        self.columns.iter().map(|c| c.name.clone()).collect()
-    }
-
-    pub fn rows(&self) -> usize {
-        self.rows
-    }
-
-    /// Column `c` of row `row` (both 0-based); the first element of a vector column.
-    pub fn value<'a>(&self, bytes: &'a [u8], row: usize, c: usize) -> Value<'a> {
+    /// Column `c` of a row's bytes; the first element of a vector column.
+    fn value<'a>(&self, row: &'a [u8], c: usize) -> Value<'a> {
         let col = &self.columns[c];
-        let at = self.data_start + row * self.row_bytes + col.offset;
-        let take = |n: usize| bytes.get(at..at + n);
+        let at = col.offset;
+        let take = |n: usize| row.get(at..at + n);
         let int = |v: i64| {
             if col.null == Some(v) {
                 Value::Empty

@@ -5,27 +5,40 @@ use std::process::ExitCode;
 
 use anyhow::{Context, Result};
 
-/// Build the catalogue's index when it is missing or stale, saying so on stderr (a
-/// million stars take some seconds, once).
-pub fn prepare(cfg: &subwatch::config::CatalogueConfig) -> Result<()> {
+/// Build the catalogue's index when it is missing or stale, saying so (a million stars
+/// take some seconds, once). A catalogue that cannot be read stops nothing: frames are
+/// still measured and judged, with the last good index (the one built before the files
+/// changed) or without one, and the problem is logged as an error naming the file, the
+/// row and the column. A catalogue edited mid-night must not keep a daemon from
+/// starting, nor a restart loop from a unit's `Restart=on-failure`.
+pub fn prepare(cfg: &subwatch::config::CatalogueConfig) {
     if cfg.files.is_empty() {
-        return Ok(());
+        return;
     }
     let started = std::time::Instant::now();
-    if let Some(done) = subwatch::catalogue_import::ensure(cfg, false)
-        .context("the star catalogue ([catalogue] files)")?
-    {
-        if done.built {
-            tracing::info!(
-                "catalogue: {} stars from {} file(s) indexed into {} in {:.1} s",
-                done.stars,
-                cfg.files.len(),
-                done.index.display(),
-                started.elapsed().as_secs_f64()
+    match subwatch::catalogue_import::ensure(cfg, false) {
+        Ok(Some(done)) if done.built => tracing::info!(
+            "catalogue: {} stars from {} file(s) indexed into {} in {:.1} s",
+            done.stars,
+            cfg.files.len(),
+            done.index.display(),
+            started.elapsed().as_secs_f64()
+        ),
+        Ok(_) => {}
+        Err(e) => {
+            let kept = subwatch::catalogue_import::index_path(cfg).filter(|p| p.exists());
+            let instead = match kept {
+                Some(p) => format!(
+                    "the index built from the files' last good version stays in use ({})",
+                    p.display()
+                ),
+                None => "frames are measured and judged without a catalogue".to_string(),
+            };
+            tracing::error!(
+                "the star catalogue ([catalogue] files) cannot be read: {e}; {instead}; fix the file, then `subwatch catalogue import` (or a restart) indexes it"
             );
         }
     }
-    Ok(())
 }
 
 /// `subwatch catalogue import --config CFG [--force]`.
@@ -41,7 +54,7 @@ pub fn import(config: &std::path::Path, force: bool) -> Result<ExitCode> {
     let done = subwatch::catalogue_import::ensure(&c.catalogue, force)
         .context("the star catalogue ([catalogue] files)")?
         .context("no catalogue index path")?;
-    println!(
+    outln!(
         "{} stars from {} file(s) {} {} ({:.1} s)",
         done.stars,
         c.catalogue.files.len(),
@@ -52,6 +65,6 @@ pub fn import(config: &std::path::Path, force: bool) -> Result<ExitCode> {
         },
         done.index.display(),
         started.elapsed().as_secs_f64()
-    );
+    )?;
     Ok(ExitCode::SUCCESS)
 }

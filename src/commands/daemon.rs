@@ -15,7 +15,7 @@ pub fn watch(config: &Path) -> Result<ExitCode> {
     if !errors.is_empty() {
         anyhow::bail!("{}: {}", config.display(), errors.join("; "));
     }
-    crate::commands::catalogue::prepare(&cfg.catalogue)?;
+    crate::commands::catalogue::prepare(&cfg.catalogue);
     subwatch::watch::run(cfg)?;
     Ok(ExitCode::SUCCESS)
 }
@@ -25,33 +25,43 @@ pub fn check_config(config: &Path, send_test: bool) -> Result<ExitCode> {
     let cfg = subwatch::config::load(config)?;
     let (errors, warnings) = cfg.check_environment();
     for w in &warnings {
-        println!("warning: {w}");
+        outln!("warning: {w}")?;
     }
     for e in &errors {
-        println!("error: {e}");
+        outln!("error: {e}")?;
     }
     if !errors.is_empty() {
         return Ok(ExitCode::from(1));
     }
-    if let Err(e) = crate::commands::catalogue::prepare(&cfg.catalogue) {
-        println!("error: {e:#}");
-        return Ok(ExitCode::from(1));
+    // The catalogue read through, nothing written (the index is built by the daemon or
+    // `catalogue import`).
+    if !cfg.catalogue.files.is_empty() {
+        match subwatch::catalogue_import::check(&cfg.catalogue) {
+            Ok(rows) => outln!(
+                "catalogue: {rows} rows in {} file(s) read without a problem",
+                cfg.catalogue.files.len()
+            )?,
+            Err(e) => {
+                outln!("error: catalogue: {e}")?;
+                return Ok(ExitCode::from(1));
+            }
+        }
     }
     if cfg.store.url.is_some() {
         // A shared store is reached now (address, password, TLS), and left as it is.
         let location = subwatch::store::Location::from_config(&cfg.store);
         match subwatch::store::probe(&location) {
             Ok(0) => {
-                println!("store: reached {location} (no tables yet: the first daemon makes them)")
+                outln!("store: reached {location} (no tables yet: the first daemon makes them)")?
             }
-            Ok(v) => println!("store: reached {location} (schema version {v})"),
+            Ok(v) => outln!("store: reached {location} (schema version {v})")?,
             Err(e) => {
-                println!("error: {e}");
+                outln!("error: {e}")?;
                 return Ok(ExitCode::from(1));
             }
         }
     }
-    println!("{}: ok", config.display());
+    outln!("{}: ok", config.display())?;
     if send_test {
         let settings = subwatch::mail::MailSettings::from_config(&cfg)?;
         let note = subwatch::mail::compose_note(
@@ -61,13 +71,13 @@ pub fn check_config(config: &Path, send_test: bool) -> Result<ExitCode> {
             )?;
         let folder = subwatch::morning::report_folder(&cfg);
         match subwatch::outbox::deliver(&settings, &note.into(), &folder, "subwatch-test.eml")? {
-            subwatch::outbox::Delivered::Sent => println!(
+            subwatch::outbox::Delivered::Sent => outln!(
                 "test mail sent through {}:{}",
                 settings.host.as_deref().unwrap_or(""),
                 settings.port
-            ),
+            )?,
             subwatch::outbox::Delivered::Written(path) => {
-                println!("no smtp_host: test mail written to {}", path.display())
+                outln!("no smtp_host: test mail written to {}", path.display())?
             }
         }
     }
@@ -88,12 +98,12 @@ pub fn outbox(config: &Path, now: bool) -> Result<ExitCode> {
             subwatch::outbox::Due::AsScheduled
         },
     )?;
-    println!(
+    outln!(
         "sent {}, written {}, failed {}",
         r.sent,
         r.written.len(),
         r.failed.len()
-    );
+    )?;
     for f in &r.failed {
         eprintln!("{f}");
     }
@@ -118,11 +128,11 @@ pub fn status(config: &Path, night: Option<String>, json: bool, site: bool) -> R
     // clock decides only before any dated frame is recorded.
     let (night, placed_by) = match night {
         Some(n) => (n, "as asked"),
-        None => match store.latest_dated_night()? {
-            Some(n) => (n, "the night of the latest frame recorded, by its DATE-OBS"),
+        None => match super::night::latest_night(&store)? {
+            Some(chosen) => chosen,
             None => (
                 subwatch::sky::night_label(now, cfg.timezone()).context("clock out of range")?,
-                "tonight by the clock: no dated frame recorded yet",
+                "tonight by the clock: no frame recorded yet",
             ),
         },
     };
@@ -151,10 +161,10 @@ pub fn status(config: &Path, night: Option<String>, json: bool, site: bool) -> R
         if site {
             doc["rigs"] = serde_json::to_value(&rigs)?;
         }
-        println!("{doc}");
+        outln!("{doc}")?;
     } else {
-        println!("night {night} ({placed_by})");
-        println!(
+        outln!("night {night} ({placed_by})")?;
+        outln!(
             "  frames {}  measured {}  errors {}  skipped {}  warned {}  rejected {}",
             counts.frames,
             counts.measured,
@@ -162,26 +172,27 @@ pub fn status(config: &Path, night: Option<String>, json: bool, site: bool) -> R
             counts.skipped,
             counts.warned,
             counts.rejected
-        );
+        )?;
         if counts.undated > 0 {
-            println!(
+            outln!(
                 "  {} frame(s) without a readable DATE-OBS, placed in this night by the file's time",
                 counts.undated
-            );
+            )?;
         }
         if let Some(t) = counts.last_recorded_unix {
-            println!("  last frame recorded {:.0} s ago", now - t);
+            outln!("  last frame recorded {:.0} s ago", now - t)?;
         }
         match (&daemon, running_pid) {
-            (Some(d), Some(pid)) => println!(
+            (Some(d), Some(pid)) => outln!(
                 "  daemon running (process {pid}): {} waiting, {} being read",
-                d["waiting"], d["in_flight"]
-            ),
-            (None, Some(pid)) => println!("  daemon running (process {pid})"),
-            (_, None) => println!("  daemon not running"),
+                d["waiting"],
+                d["in_flight"]
+            )?,
+            (None, Some(pid)) => outln!("  daemon running (process {pid})")?,
+            (_, None) => outln!("  daemon not running")?,
         }
         for r in &rigs {
-            println!(
+            outln!(
                 "rig {}: frames {}  measured {}  warned {}  rejected {}  daemon {}",
                 if r.rig.is_empty() {
                     "(unnamed)"
@@ -197,7 +208,7 @@ pub fn status(config: &Path, night: Option<String>, json: bool, site: bool) -> R
                     .map_or("not running".to_string(), |d| format!(
                         "running (process {d})"
                     ))
-            );
+            )?;
         }
     }
     Ok(ExitCode::SUCCESS)

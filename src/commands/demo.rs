@@ -51,32 +51,32 @@ pub fn run(out: &std::path::Path, page_port: u16, keep_page: bool) -> Result<Exi
     }
     let doc = &outcome.doc;
     let count = |v: subwatch::rules::Verdict| doc.frames.iter().filter(|f| f.verdict == v).count();
-    println!(
+    outln!(
         "Night {} at the Kestrel Ridge Observatory (invented): {} frames in {:.0} s",
         outcome.night,
         doc.frames.len(),
         outcome.seconds
-    );
-    println!(
+    )?;
+    outln!(
         "  verdicts: {} ok, {} warn, {} reject",
         count(subwatch::rules::Verdict::Ok),
         count(subwatch::rules::Verdict::Warn),
         count(subwatch::rules::Verdict::Reject)
-    );
+    )?;
     let mut reasons: std::collections::BTreeMap<&str, usize> = Default::default();
     for f in &doc.frames {
         for r in &f.reasons {
             *reasons.entry(r.as_str()).or_default() += 1;
         }
     }
-    println!(
+    outln!(
         "  reasons: {}",
         reasons
             .iter()
             .map(|(r, n)| format!("{r} {n}"))
             .collect::<Vec<_>>()
             .join(", ")
-    );
+    )?;
     let mut kinds: std::collections::BTreeMap<String, usize> = Default::default();
     for a in &doc.anomalies {
         let k = a.kind.name().to_string();
@@ -85,21 +85,21 @@ pub fn run(out: &std::path::Path, page_port: u16, keep_page: bool) -> Result<Exi
             .entry(if cosmic { "cosmic ray".into() } else { k })
             .or_default() += 1;
     }
-    println!(
+    outln!(
         "  anomalies: {}",
         kinds
             .iter()
             .map(|(k, n)| format!("{k} {n}"))
             .collect::<Vec<_>>()
             .join(", ")
-    );
+    )?;
     let cal = &doc.calibration;
     let flagged: Vec<String> = cal
         .iter()
         .filter(|f| f.verdict != subwatch::rules::Verdict::Ok)
         .flat_map(|f| f.reasons.iter().cloned())
         .collect();
-    println!(
+    outln!(
         "  calibration: {} darks, {} flats, {} bias; {} flagged ({})",
         cal.iter().filter(|f| f.kind == "dark").count(),
         cal.iter().filter(|f| f.kind == "flat").count(),
@@ -108,33 +108,33 @@ pub fn run(out: &std::path::Path, page_port: u16, keep_page: bool) -> Result<Exi
             .filter(|f| f.verdict != subwatch::rules::Verdict::Ok)
             .count(),
         flagged.join(", ")
-    );
+    )?;
     for note in &doc.calibration_notes {
-        println!("    {note}");
+        outln!("    {note}")?;
     }
-    println!("Open:");
-    println!("  report  {}", outcome.html.display());
-    println!("  frames  {}", outcome.csv.display());
-    println!("  night   {}", outcome.json.display());
+    outln!("Open:")?;
+    outln!("  report  {}", outcome.html.display())?;
+    outln!("  frames  {}", outcome.csv.display())?;
+    outln!("  night   {}", outcome.json.display())?;
     for m in &outcome.mails {
-        println!("  mail    {}", m.display());
+        outln!("  mail    {}", m.display())?;
     }
-    println!("Next:");
-    println!(
+    outln!("Next:")?;
+    outln!(
         "  open the report in a browser:   xdg-open {}",
         outcome.html.display()
-    );
-    println!("  measure your own frames:        subwatch measure /path/to/your/*.fits");
-    println!("  grade a night you already have: subwatch night /path/to/night-folder --report /tmp/night-report");
-    println!("  watch every night as a service: see systemd/README.md (config/subwatch.toml documents every key)");
+    )?;
+    outln!("  measure your own frames:        subwatch measure /path/to/your/*.fits")?;
+    outln!("  grade a night you already have: subwatch night /path/to/night-folder --report /tmp/night-report")?;
+    outln!("  watch every night as a service: see systemd/README.md (config/subwatch.toml documents every key)")?;
     match (page, keep_page) {
         (Some(addr), true) => {
-            println!("The status page stays at http://{addr}/ until Ctrl-C.");
+            outln!("The status page stays at http://{addr}/ until Ctrl-C.")?;
             subwatch::watch::run(subwatch::demo::demo_config(&outcome.out, Some(addr)))?;
         }
-        (Some(_), false) => println!(
+        (Some(_), false) => outln!(
             "  see the night's status page again: subwatch demo --keep-page (it stays open until Ctrl-C)"
-        ),
+        )?,
         _ => {}
     }
     Ok(ExitCode::SUCCESS)

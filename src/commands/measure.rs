@@ -48,7 +48,7 @@ pub fn run(args: MeasureArgs) -> Result<ExitCode> {
     let (opts, reader) = match config {
         Some(path) => {
             let c = subwatch::config::load(&path)?;
-            crate::commands::catalogue::prepare(&c.catalogue)?;
+            crate::commands::catalogue::prepare(&c.catalogue);
             let mut opts = RecordOptions::from_config(&c);
             opts.measure_calibration = true;
             opts.measure.focal_length_mm = focal_length_mm.or(opts.measure.focal_length_mm);

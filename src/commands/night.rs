@@ -5,7 +5,7 @@
 
 use std::process::ExitCode;
 
-use anyhow::{Context, Result};
+use anyhow::Result;
 
 /// A progress bar on stderr while files are read, shown only on a terminal and never
 /// with JSON output (systemd and pipes get nothing).
@@ -41,7 +41,7 @@ pub fn night(
     };
     let defaults = subwatch::config::Config::default();
     let c = cfg.as_ref().unwrap_or(&defaults);
-    crate::commands::catalogue::prepare(&c.catalogue)?;
+    crate::commands::catalogue::prepare(&c.catalogue);
     let mut store = match &cfg {
         Some(c) => Some(subwatch::store::Store::open_configured(c)?),
         None => None,
@@ -110,6 +110,22 @@ pub struct ReportOptions {
     pub send: bool,
     /// Every rig sharing the store, not only this one.
     pub site: bool,
+    /// Where the summary files go instead of `[report] folder`.
+    pub out: Option<std::path::PathBuf>,
+}
+
+/// The night a command means when none is named: the newest night with frames, by the
+/// frames' own DATE-OBS (a frame of an earlier night copied in today is still that
+/// night), else the newest night any frame was recorded under; `status` and `report`
+/// alike. `None` when the store holds no frame. Also how it was chosen, in words.
+pub fn latest_night(store: &subwatch::store::Store) -> Result<Option<(String, &'static str)>> {
+    if let Some(n) = store.latest_dated_night()? {
+        return Ok(Some((n, "the newest night with frames, by their DATE-OBS")));
+    }
+    Ok(store
+        .nights()?
+        .pop()
+        .map(|n| (n, "the newest night with frames (none has a DATE-OBS)")))
 }
 
 /// `subwatch report`.
@@ -123,22 +139,35 @@ pub fn report(
         all,
         send,
         site,
+        out,
     } = options;
     let night = night.as_deref().map(night_label).transpose()?;
     let cfg = subwatch::config::load(config)?;
-    crate::commands::catalogue::prepare(&cfg.catalogue)?;
+    crate::commands::catalogue::prepare(&cfg.catalogue);
     let now = subwatch::clock::now_unix();
-    let night = match night {
-        Some(n) => n,
-        None => subwatch::sky::night_label(now, cfg.timezone()).context("clock out of range")?,
-    };
     if send && cfg.mail.to.is_empty() {
         anyhow::bail!(
-            "report --send: [mail] to is empty in {}, so there is nobody to send to; add recipients, or run report without --send",
+            "report --send: [mail] to is empty in {}, so there is nobody to send to; add recipients, or run report without --send (it writes the summary files)",
             config.display()
         );
     }
     let mut store = subwatch::store::Store::open_configured(&cfg)?;
+    let night = match night {
+        Some(n) => n,
+        None => {
+            // A site's report: the newest night of any rig.
+            let whole = if site { store.whole_site() } else { store };
+            let latest = latest_night(&whole)?;
+            store = whole.own_rig();
+            match latest {
+                Some((n, _)) => n,
+                None => anyhow::bail!(
+                    "the store {} holds no frames yet",
+                    subwatch::store::Location::from_config(&cfg.store)
+                ),
+            }
+        }
+    };
     let frames = if site {
         store.night_rigs(&night)?.len()
     } else {
@@ -161,30 +190,27 @@ pub fn report(
         subwatch::morning::judge_night(&mut store, &cfg, &night)?
     };
     tell_changes(&rejudged.changed);
-    if !send {
-        return print_night(
-            &rejudged.doc,
-            &night,
-            subwatch::morning::settings(&cfg),
-            json,
-            all,
-        );
-    }
     let settings = subwatch::morning::settings(&cfg);
-    let prepared = subwatch::morning::write_files(
-        rejudged.doc,
-        &night,
-        &subwatch::morning::report_folder(&cfg),
-        &cfg.measure,
-        settings,
-    )?;
-    if json {
-        print_night(&prepared.doc, &night, settings, true, false)?;
+    if json && !send {
+        // The document for scripts; nothing written.
+        return print_night(&rejudged.doc, &night, settings, true, false);
+    }
+    let folder = out.unwrap_or_else(|| subwatch::morning::report_folder(&cfg));
+    let prepared =
+        subwatch::morning::write_files(rejudged.doc, &night, &folder, &cfg.measure, settings)?;
+    print_night(&prepared.doc, &night, settings, json, all)?;
+    eprintln!(
+        "night {night}: the summary is written in {}: {}, {}, {}",
+        folder.display(),
+        file_name(&prepared.html_path),
+        file_name(&prepared.csv_path),
+        file_name(&prepared.json_path)
+    );
+    if !send {
+        return Ok(ExitCode::SUCCESS);
     }
     subwatch::morning::queue_mail(&store, &cfg, &prepared, now)?;
     let flushed = subwatch::morning::flush(&store, &cfg, now)?;
-    eprintln!("report: {}", prepared.html_path.display());
-    eprintln!("frames: {}", prepared.csv_path.display());
     for p in &flushed.written {
         eprintln!("mail (no server configured): {}", p.display());
     }
@@ -199,6 +225,13 @@ pub fn report(
     } else {
         ExitCode::from(3)
     })
+}
+
+fn file_name(p: &std::path::Path) -> String {
+    p.file_name().map_or_else(
+        || p.display().to_string(),
+        |n| n.to_string_lossy().into_owned(),
+    )
 }
 
 /// Say which frames changed verdict when the night was judged again (rules changed
@@ -235,12 +268,12 @@ pub fn print_night(
     all: bool,
 ) -> Result<ExitCode> {
     if json {
-        println!("{}", serde_json::to_string(doc)?);
+        outln!("{}", serde_json::to_string(doc)?)?;
     } else {
         let summary = subwatch::report::summarise(night, doc, settings);
-        print!("{}", subwatch::report::text(&summary, all));
+        out!("{}", subwatch::report::text(&summary, all))?;
         if !all {
-            println!("(--all lists every frame and every cosmic-ray hit)");
+            outln!("(--all lists every frame and every cosmic-ray hit)")?;
         }
     }
     Ok(ExitCode::SUCCESS)

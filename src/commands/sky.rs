@@ -45,6 +45,6 @@ pub fn run(
         "astronomical": crossing(-18.0),
         "target": target,
     });
-    println!("{doc}");
+    outln!("{doc}")?;
     Ok(ExitCode::SUCCESS)
 }

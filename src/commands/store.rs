@@ -29,12 +29,12 @@ pub fn copy(
     };
     let copied = subwatch::store::copy(from, &to, rig)
         .with_context(|| format!("copying {} into {to}", from.display()))?;
-    println!(
+    outln!(
         "copied {} into {to}, every table counted on both sides:",
         from.display()
-    );
+    )?;
     for (table, n) in &copied.tables {
-        println!("  {table}: {n}");
+        outln!("  {table}: {n}")?;
     }
     Ok(ExitCode::SUCCESS)
 }

@@ -7,7 +7,7 @@
 
 use std::path::{Path, PathBuf};
 
-use rusqlite::{params, Connection, OpenFlags};
+use rusqlite::{params, Connection, OpenFlags, OptionalExtension};
 
 use crate::catalogue::CatalogueStar;
 
@@ -53,6 +53,10 @@ pub struct IndexWriter {
     path: PathBuf,
     tmp: PathBuf,
     next_id: i64,
+    /// The file being added (rows of one star in several bands are merged within a
+    /// file), and whether its rows carry ids (without, no two rows are one star).
+    file: i64,
+    merging: bool,
     finished: bool,
 }
 
@@ -95,6 +99,8 @@ impl IndexWriter {
                  dec REAL NOT NULL, pm_ra REAL, pm_dec REAL, epoch REAL NOT NULL, mags TEXT NOT NULL);
              CREATE VIRTUAL TABLE stars_xyz USING rtree(id, x0, x1, y0, y1, z0, z1,
                  +ra, +dec, +pm_ra, +pm_dec, +epoch, +mag);
+             CREATE TEMP TABLE named (file INTEGER NOT NULL, name TEXT NOT NULL,
+                 id INTEGER NOT NULL, PRIMARY KEY (file, name)) WITHOUT ROWID;
              BEGIN;",
         )
         .map_err(err)?;
@@ -103,8 +109,17 @@ impl IndexWriter {
             path: path.to_path_buf(),
             tmp,
             next_id: 1,
+            file: 0,
+            merging: false,
             finished: false,
         })
+    }
+
+    /// Stars from here on come from the next file; `ids`: its rows name their stars.
+    pub fn begin_file(&mut self, ids: bool) -> Result<(), StoreError> {
+        self.file += 1;
+        self.merging = ids;
+        Ok(())
     }
 
     fn err(&self) -> impl Fn(rusqlite::Error) -> StoreError + '_ {
@@ -114,21 +129,73 @@ impl IndexWriter {
         }
     }
 
+    /// Add stars. A star whose id an earlier row of the same file gave, within an
+    /// arcsecond of it, is that star in another band: its magnitudes join the earlier
+    /// row's (a band it has already keeps the first value). The lookup is the index
+    /// file's own table, so memory does not grow with the catalogue.
     pub fn add(&mut self, stars: &[CatalogueStar]) -> Result<(), StoreError> {
+        let err = |source: rusqlite::Error| StoreError::Database {
+            store: self.path.display().to_string(),
+            source: source.into(),
+        };
         let mut star = self
             .conn
             .prepare_cached(
                 "INSERT INTO stars (id, name, ra, dec, pm_ra, pm_dec, epoch, mags)
                  VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8)",
             )
-            .map_err(self.err())?;
+            .map_err(err)?;
         let mut boxed = self
             .conn
             .prepare_cached(
                 "INSERT INTO stars_xyz VALUES (?1, ?2, ?2, ?3, ?3, ?4, ?4, ?5, ?6, ?7, ?8, ?9, ?10)",
             )
-            .map_err(self.err())?;
+            .map_err(err)?;
+        let mut earlier = self
+            .conn
+            .prepare_cached(
+                "SELECT s.id, s.ra, s.dec, s.mags FROM temp.named n JOIN stars s ON s.id = n.id
+                 WHERE n.file = ?1 AND n.name = ?2",
+            )
+            .map_err(err)?;
+        let mut joined = self
+            .conn
+            .prepare_cached("UPDATE stars SET mags = ?2 WHERE id = ?1")
+            .map_err(err)?;
+        let mut name = self
+            .conn
+            .prepare_cached(
+                "INSERT OR REPLACE INTO temp.named (file, name, id) VALUES (?1, ?2, ?3)",
+            )
+            .map_err(err)?;
         for s in stars {
+            if self.merging {
+                let found = earlier
+                    .query_row(params![self.file, s.id], |r| {
+                        Ok((
+                            r.get::<_, i64>(0)?,
+                            r.get::<_, f64>(1)?,
+                            r.get::<_, f64>(2)?,
+                            r.get::<_, String>(3)?,
+                        ))
+                    })
+                    .optional()
+                    .map_err(err)?;
+                if let Some((id, ra, dec, mags)) = found {
+                    if crate::catalogue::same_star((ra, dec), (s.ra_deg, s.dec_deg)) {
+                        let mut all: Vec<(String, f64)> =
+                            serde_json::from_str(&mags).unwrap_or_default();
+                        for m in &s.mags {
+                            if !all.iter().any(|(b, _)| *b == m.0) {
+                                all.push(m.clone());
+                            }
+                        }
+                        let all = serde_json::to_string(&all).unwrap_or_else(|_| "[]".into());
+                        joined.execute(params![id, all]).map_err(err)?;
+                        continue;
+                    }
+                }
+            }
             let id = self.next_id;
             self.next_id += 1;
             let mags = serde_json::to_string(&s.mags).unwrap_or_else(|_| "[]".into());
@@ -142,10 +209,7 @@ impl IndexWriter {
                 s.epoch,
                 mags
             ])
-            .map_err(|source: rusqlite::Error| StoreError::Database {
-                store: self.path.clone().display().to_string(),
-                source: source.into(),
-            })?;
+            .map_err(err)?;
             let v = unit(s.ra_deg, s.dec_deg);
             boxed
                 .execute(params![
@@ -160,10 +224,10 @@ impl IndexWriter {
                     s.epoch,
                     s.mags.first().map(|m| m.1)
                 ])
-                .map_err(|source: rusqlite::Error| StoreError::Database {
-                    store: self.path.clone().display().to_string(),
-                    source: source.into(),
-                })?;
+                .map_err(err)?;
+            if self.merging {
+                name.execute(params![self.file, s.id, id]).map_err(err)?;
+            }
         }
         Ok(())
     }
@@ -376,5 +440,31 @@ mod tests {
         assert!((19..=21).contains(&got.len()), "{}", got.len());
         assert!(got.iter().all(|s| s.dec_deg == 0.0));
         std::fs::remove_dir_all(&dir).unwrap();
+    }
+
+    #[test]
+    fn rows_of_one_star_in_several_bands_become_one_star_within_a_file() {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("index.sqlite");
+        let text = "id,ra_deg,dec_deg,mag,band\nK-1,84.25,27.6,11.5,V\nK-1,84.25,27.6,10.9,I\nK-2,84.3,27.6,12.0,V\nK-1,84.25,27.6,11.7,V\nK-2,10.0,5.0,9.0,V\n";
+        let cols = crate::catalogue::Columns::default();
+        let mut w = IndexWriter::create(&path).unwrap();
+        for _ in 0..2 {
+            // The same file twice: a second file's rows never join the first's.
+            let mut r = crate::catalogue::Reader::open("c.csv", text.as_bytes(), &cols).unwrap();
+            w.begin_file(r.has_ids()).unwrap();
+            w.add(&r.next_batch(2).unwrap()).unwrap();
+            w.add(&r.next_batch(10).unwrap()).unwrap();
+        }
+        let idx = w.finish(&[], "s").unwrap();
+        // Per file: K-1 (V 11.5, I 10.9; the second V keeps the first), K-2 at 84.3,
+        // and K-2 at RA 10, too far to be the same star.
+        assert_eq!(idx.count().unwrap(), 6);
+        let near = idx.cone(84.25, 27.6, 0.001).unwrap();
+        assert_eq!(near.len(), 2);
+        assert_eq!(
+            near[0].mags,
+            vec![("V".to_string(), 11.5), ("I".to_string(), 10.9)]
+        );
     }
 }

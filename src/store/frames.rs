@@ -741,14 +741,15 @@ impl Store {
         .map_err(|e| self.err(e))
     }
 
-    /// The night of the frame recorded last that carries a readable DATE-OBS: the
+    /// The night of the newest frame by its DATE-OBS (the order frames were recorded in
+    /// does not matter: an archive of old nights recorded today leaves it alone): the
     /// night in progress as the frames themselves place it.
     pub fn latest_dated_night(&self) -> Result<Option<String>, StoreError> {
         Ok(self
             .strings(
                 "SELECT night FROM frames
                  WHERE time_unix IS NOT NULL AND night IS NOT NULL AND (rig = ?1 OR ?1 IS NULL)
-                 ORDER BY recorded_at DESC, id DESC LIMIT 1",
+                 ORDER BY time_unix DESC, id DESC LIMIT 1",
                 values![self.scope()],
             )?
             .pop())

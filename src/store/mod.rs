@@ -197,6 +197,12 @@ impl Store {
         self
     }
 
+    /// Reads from here on cover this handle's rig alone again.
+    pub fn own_rig(mut self) -> Self {
+        self.site = false;
+        self
+    }
+
     /// Run `f` with this handle reading and writing as `rig`'s (a site's summary judges
     /// each rig's night in turn); the handle is its own rig's again after.
     pub fn as_rig<T>(&mut self, rig: &str, f: impl FnOnce(&mut Store) -> T) -> T {
