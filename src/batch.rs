@@ -104,11 +104,18 @@ pub fn analyse_records(
         for ((r, j), carried) in frames.iter().zip(&judged.frames).zip(&carried) {
             let p = j.placement.as_ref();
             let metrics = r.metrics.clone().map(|mut m| {
-                if m.sky_fit.is_none() {
+                if m.sky_fit.is_none() && carried.is_some() {
                     m.sky_fit = carried.clone();
+                    m.sky_fit_note = None;
                 }
                 m
             });
+            let mut explanations = j.judgement.explanations.clone();
+            // After the verdict's own explanations (one per reason), why the frame has
+            // no place on the sky, where a catalogue was there to give it one.
+            if let Some(note) = metrics.as_ref().and_then(|m| m.sky_fit_note.as_ref()) {
+                explanations.push(format!("not placed on the sky: {note}"));
+            }
             doc.frames.push(NightFrameRecord {
                 path: r.identity.path.clone(),
                 rig: None,
@@ -122,7 +129,7 @@ pub fn analyse_records(
                 metrics,
                 verdict: j.judgement.verdict,
                 reasons: j.judgement.reasons.clone(),
-                explanations: j.judgement.explanations.clone(),
+                explanations,
                 night: r.night.clone(),
                 target: r.target.clone(),
                 filter: r.filter.clone(),

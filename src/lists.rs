@@ -37,9 +37,8 @@ impl Lists {
 }
 
 /// A name made safe for a file name: letters, digits, `-` and `_`; anything else `_`.
-fn file_part(s: Option<&str>) -> String {
-    s.unwrap_or("unknown")
-        .chars()
+fn file_part(s: &str) -> String {
+    s.chars()
         .map(|c| {
             if c.is_ascii_alphanumeric() || c == '-' || c == '_' {
                 c
@@ -57,10 +56,10 @@ pub fn list_path(
     target: Option<&str>,
     filter: Option<&str>,
 ) -> PathBuf {
-    folder.join(file_part(Some(night))).join(format!(
+    folder.join(file_part(night)).join(format!(
         "{}__{}.txt",
-        file_part(target),
-        file_part(filter)
+        file_part(target.unwrap_or(crate::text::NO_TARGET)),
+        file_part(filter.unwrap_or(crate::text::NO_FILTER))
     ))
 }
 

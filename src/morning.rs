@@ -204,9 +204,11 @@ pub fn write_files(
         source,
     })?;
     let csv_path = folder.join(format!("night-{night}.csv"));
-    std::fs::write(&csv_path, report::csv(&doc)).map_err(|source| MorningError::Write {
-        path: csv_path.clone(),
-        source,
+    std::fs::write(&csv_path, report::csv(&doc, settings.tz)).map_err(|source| {
+        MorningError::Write {
+            path: csv_path.clone(),
+            source,
+        }
     })?;
     let json_path = folder.join(format!("night-{night}.json"));
     let json = serde_json::to_vec(&doc).unwrap_or_default();
@@ -255,7 +257,7 @@ pub fn queue_mail(
     let mut files = vec![crate::mail::Attached {
         name: format!("night-{}.csv", p.summary.night),
         content_type: "text/csv; charset=utf-8".into(),
-        bytes: report::csv(&p.doc).into_bytes(),
+        bytes: report::csv(&p.doc, p.summary.tz).into_bytes(),
     }];
     if c.voevent.folder.is_some() {
         if let Err(e) = crate::events::write_voevents(&p.doc, c, &p.summary.night, now_unix) {

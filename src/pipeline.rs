@@ -249,6 +249,10 @@ pub fn record_file(
                     });
                 if let Err(e) = placed {
                     tracing::warn!("{}: not fitted to the sky: {e}", path.display());
+                    if let Some(m) = rec.metrics.as_mut() {
+                        m.sky_fit_note =
+                            Some(format!("the catalogue's index could not be read: {e}"));
+                    }
                 }
             }
         }

@@ -249,6 +249,10 @@ pub struct Metrics {
     /// The frame's place on the sky from the catalogue, when one is configured.
     #[serde(default)]
     pub sky_fit: Option<SkyFit>,
+    /// With a catalogue configured, why the frame was not placed on the sky (no
+    /// pointing in the header, too few matches, ...); `None` when it was, or without one.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub sky_fit_note: Option<String>,
     /// Magnitude of a source giving 1 ADU per second in the photometric aperture, in
     /// `zero_point_band` (`astrometry::photometric`).
     #[serde(default, serialize_with = "finite")]
@@ -283,6 +287,7 @@ impl Metrics {
             plate_scale_arcsec: plate_scale,
             trails: m.trails.clone(),
             sky_fit: None,
+            sky_fit_note: None,
             zero_point_mag: None,
             zero_point_err_mag: None,
             zero_point_stars: 0,

@@ -38,21 +38,40 @@ pub fn julian_year(unix: f64) -> f64 {
 
 /// Where the frame points and at what scale, from its WCS or its pointing keywords and
 /// optics.
-fn hint_of(rec: &FrameRecord, header: &FrameHeader, search_deg: f64) -> Option<Hint> {
-    let m = rec.metrics.as_ref()?;
+/// Where to search the catalogue, from the header: its WCS, else its pointing and the
+/// plate scale. The reason in words when the header does not say enough.
+fn hint_of(
+    m: &crate::record::Metrics,
+    header: &FrameHeader,
+    search_deg: f64,
+) -> Result<Hint, String> {
     let centre = ((m.width as f64 + 1.0) / 2.0, (m.height as f64 + 1.0) / 2.0);
     let (ra, dec, scale) = match &header.wcs {
         Some(w) => {
             let (ra, dec) = w.pixel_to_sky(centre.0, centre.1);
             (ra, dec, w.scale_arcsec())
         }
-        None => (header.ra_deg?, header.dec_deg?, m.plate_scale_arcsec?),
+        None => {
+            let (Some(ra), Some(dec)) = (header.ra_deg, header.dec_deg) else {
+                return Err("the header gives no pointing (RA and DEC, or a WCS) to search the catalogue around".into());
+            };
+            let Some(scale) = m.plate_scale_arcsec else {
+                return Err("the plate scale is unknown (no FOCALLEN and XPIXSZ in the header, nor [optics] in the config)".into());
+            };
+            (ra, dec, scale)
+        }
     };
-    (ra.is_finite()
-        && dec.is_finite()
-        && (-90.0..=90.0).contains(&dec)
-        && (MIN_SCALE_ARCSEC..=MAX_SCALE_ARCSEC).contains(&scale))
-    .then_some(Hint {
+    if !(ra.is_finite() && dec.is_finite() && (-90.0..=90.0).contains(&dec)) {
+        return Err(format!(
+            "the header's pointing ({ra}, {dec}) is not a place on the sky"
+        ));
+    }
+    if !(MIN_SCALE_ARCSEC..=MAX_SCALE_ARCSEC).contains(&scale) {
+        return Err(format!(
+            "the plate scale {scale:.3}″/px is outside the {MIN_SCALE_ARCSEC} to {MAX_SCALE_ARCSEC}″/px the fit searches"
+        ));
+    }
+    Ok(Hint {
         ra_deg: ra.rem_euclid(360.0),
         dec_deg: dec,
         scale_arcsec: scale,
@@ -84,7 +103,8 @@ fn band_for(filter: Option<&str>, opts: &SkyOptions, cat: &[CatalogueStar]) -> O
 }
 
 /// Fit `rec` to the sky and record the fit, the stars' positions, the zero point and
-/// the depth. A frame that cannot be fitted keeps its header's WCS, if any.
+/// the depth. A frame that cannot be fitted keeps its header's WCS, if any, and its
+/// metrics say why it was not fitted (`sky_fit_note`).
 pub fn fit_record(
     rec: &mut FrameRecord,
     header: &FrameHeader,
@@ -92,11 +112,15 @@ pub fn fit_record(
     opts: &SkyOptions,
     gain_e_per_adu: Option<f64>,
 ) -> Result<(), StoreError> {
-    let Some(hint) = hint_of(rec, header, opts.search_deg) else {
+    let Some(m) = rec.metrics.as_mut() else {
         return Ok(());
     };
-    let Some(m) = rec.metrics.as_ref() else {
-        return Ok(());
+    let hint = match hint_of(m, header, opts.search_deg) {
+        Ok(h) => h,
+        Err(why) => {
+            m.sky_fit_note = Some(why);
+            return Ok(());
+        }
     };
     let (w, h) = (m.width, m.height);
     let cone = index.cone_positions(
@@ -156,6 +180,25 @@ pub fn fit_record(
         None => header.wcs.as_ref().and_then(|hw| check(&frame, &sky, hw)),
     };
     let Some(sol) = solution else {
+        let note = if sky.is_empty() {
+            format!(
+                "the catalogue holds no star within {:.2}° of the pointing ({:.4}, {:+.4})",
+                astrometry::cone_radius_deg(&hint, w, h).min(MAX_CONE_DEG),
+                hint.ra_deg,
+                hint.dec_deg
+            )
+        } else {
+            format!(
+                "too few of the frame's {} stars matched the catalogue's {} around the pointing ({:.4}, {:+.4}) to rule out chance",
+                rec.stars.len(),
+                sky.len(),
+                hint.ra_deg,
+                hint.dec_deg
+            )
+        };
+        if let Some(m) = rec.metrics.as_mut() {
+            m.sky_fit_note = Some(note);
+        }
         return Ok(());
     };
     // The matched stars' whole rows, for their magnitudes in every band.

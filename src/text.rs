@@ -1,6 +1,12 @@
 //! Text made safe for where it goes: HTML, a single line (a mail subject, a table
 //! cell), base64 for data URIs. A leaf; the values come from users' files and headers.
 
+/// What a group without a FILTER value is called, wherever it is named (summaries,
+/// the page, calibration notes, list files).
+pub const NO_FILTER: &str = "no filter";
+/// What a group without an OBJECT value (or folder) is called.
+pub const NO_TARGET: &str = "no target";
+
 /// Escape text for HTML (header values are the user's, or anyone's, strings).
 pub fn escape_html(s: &str) -> String {
     let mut out = String::with_capacity(s.len());

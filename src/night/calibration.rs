@@ -515,8 +515,8 @@ fn missing(
     {
         let heading = format!(
             "{} / {}",
-            target.as_deref().unwrap_or("no target"),
-            filter.as_deref().unwrap_or("no filter")
+            target.as_deref().unwrap_or(crate::text::NO_TARGET),
+            filter.as_deref().unwrap_or(crate::text::NO_FILTER)
         );
         let first = frames[0];
         let t = median(frames.iter().filter_map(|l| temp(l)).collect());
@@ -555,8 +555,11 @@ fn missing(
         {
             let fits = |f: &FrameRecord| f.filter == *filter && same_settings(f, first);
             notes.push(format!(
-                "{heading}: no usable flats for filter {} tonight{}",
-                filter.as_deref().unwrap_or("(none)"),
+                "{heading}: no usable flats for {} tonight{}",
+                filter.as_deref().map_or(
+                    format!("the frames with {}", crate::text::NO_FILTER),
+                    |f| format!("filter {f}")
+                ),
                 from_earlier("flat", &fits).map_or(String::new(), |w| format!(
                     "; earlier flats that match: {w}"
                 ))

@@ -335,6 +335,7 @@ mod tests {
             plate_scale_arcsec: None,
             trails: Vec::new(),
             sky_fit: None,
+            sky_fit_note: None,
             zero_point_mag: None,
             zero_point_err_mag: None,
             zero_point_stars: 0,

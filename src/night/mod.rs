@@ -42,6 +42,8 @@ pub struct FrameInput<'a> {
     /// (at the edge of saturation, dithered onto the edge, blended), and it was there.
     pub set_aside: Vec<(f64, f64)>,
     pub wcs: Option<&'a Wcs>,
+    /// Arcseconds per pixel, where the header or the configuration gave it.
+    pub plate_scale_arcsec: Option<f64>,
 }
 
 impl<'a> FrameInput<'a> {
@@ -68,6 +70,7 @@ impl<'a> FrameInput<'a> {
                 .map(|x| (x.x, x.y))
                 .collect(),
             wcs: r.wcs.as_ref(),
+            plate_scale_arcsec: m.and_then(|m| m.plate_scale_arcsec),
         }
     }
 }

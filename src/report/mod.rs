@@ -7,13 +7,14 @@
 //! the plain-words explanation of each reason, then what in the sky deserves a look.
 //! Hot pixels are summarised as positions and cosmic-ray hits counted.
 
+mod csv;
 mod html;
 pub mod plots;
 pub mod preview;
 mod text;
+mod words;
 
 use std::collections::BTreeMap;
-use std::fmt::Write as _;
 
 use chrono_tz::Tz;
 
@@ -22,8 +23,14 @@ use crate::measure::stats::median_f64;
 use crate::night::{AnomalyKind, Detail};
 use crate::rules::{Limit, Verdict};
 
+pub use csv::{csv, csv_text};
 pub use html::html;
 pub use text::text;
+use words::kind_label;
+pub use words::{
+    brightness_words, catalogue_words, episodes_sentence, instrumental_mag, minutes, plural,
+    sexagesimal, subject, to_stack, what, with_uncertainty,
+};
 
 /// How the summary is made: the site's clock, and whether frames that only warned go
 /// into the lists of frames to stack (marked there) or are left out.
@@ -92,6 +99,92 @@ pub struct GroupSummary {
     pub warned_left_out: usize,
     /// The limits the group was judged against (for the plots).
     pub limits: Vec<Limit>,
+    /// Reasons that held over consecutive frames, as episodes, in time order.
+    pub episodes: Vec<Episode>,
+    /// With a catalogue: why frames were not placed on the sky, each with how many.
+    pub unplaced: Vec<(String, usize)>,
+}
+
+/// Consecutive frames of a group flagged for one cause: cloud, twilight, elongated
+/// stars...
+#[derive(Debug, Clone, PartialEq)]
+pub struct Episode {
+    pub cause: &'static str,
+    pub frames: usize,
+    /// Site clock "HH:MM" of the first and last frame.
+    pub start: String,
+    pub end: String,
+    /// Whether it began with the group's first frame, or lasted to its last.
+    pub from_start: bool,
+    pub to_end: bool,
+}
+
+/// The cause a reason code stands for in an episode; `None` for reasons that are one
+/// frame's own (a streak, an unreadable file) or a configured rule's.
+fn cause_of(reason: &str) -> Option<&'static str> {
+    Some(match reason {
+        "fwhm_high" => "soft stars (FWHM)",
+        "eccentricity_high" => "elongated stars (wind or tracking)",
+        "background_high" => "a bright sky",
+        "star_count_low" | "transparency_low" | "depth_low" => "cloud",
+        "twilight" => "twilight",
+        _ => return None,
+    })
+}
+
+/// Runs of consecutive frames (in time order) flagged for the same cause: two frames or
+/// more, twilight from one.
+fn episodes(lines: &[FrameLine]) -> Vec<Episode> {
+    let causes: Vec<Vec<&'static str>> = lines
+        .iter()
+        .map(|l| {
+            let mut c: Vec<&'static str> = if l.verdict == Verdict::Ok {
+                Vec::new()
+            } else {
+                l.reasons.iter().filter_map(|r| cause_of(r)).collect()
+            };
+            c.dedup();
+            c
+        })
+        .collect();
+    let hhmm = |l: &FrameLine| {
+        l.local_time
+            .as_deref()
+            .map_or("--:--".to_string(), |t| t.chars().take(5).collect())
+    };
+    let mut found: Vec<(usize, Episode)> = Vec::new();
+    let mut seen: Vec<&'static str> = causes.iter().flatten().copied().collect();
+    seen.sort_unstable();
+    seen.dedup();
+    for cause in seen {
+        let mut k = 0;
+        while k < lines.len() {
+            if !causes[k].contains(&cause) {
+                k += 1;
+                continue;
+            }
+            let start = k;
+            while k < lines.len() && causes[k].contains(&cause) {
+                k += 1;
+            }
+            let n = k - start;
+            if n >= 2 || cause == "twilight" {
+                found.push((
+                    start,
+                    Episode {
+                        cause,
+                        frames: n,
+                        start: hhmm(&lines[start]),
+                        end: hhmm(&lines[k - 1]),
+                        from_start: start == 0,
+                        to_end: k == lines.len(),
+                    },
+                ));
+            }
+        }
+    }
+    found.sort_by_key(|(start, e)| (*start, e.cause));
+    found.into_iter().map(|(_, e)| e).collect()
 }
 
 impl GroupSummary {
@@ -115,8 +208,8 @@ impl GroupSummary {
 pub fn group_heading(target: Option<&str>, filter: Option<&str>) -> String {
     format!(
         "{} / {}",
-        target.unwrap_or("no target"),
-        filter.unwrap_or("no filter")
+        target.unwrap_or(crate::text::NO_TARGET),
+        filter.unwrap_or(crate::text::NO_FILTER)
     )
 }
 
@@ -242,9 +335,10 @@ pub fn summarise(night: &str, doc: &NightDocument, settings: Settings) -> Summar
                 .map(|l| l.limits.clone())
                 .unwrap_or_default();
             let heading = match (&rig, several_rigs) {
-                (Some(r), true) => {
-                    Some(format!("{r}: {}", target.as_deref().unwrap_or("no target")))
-                }
+                (Some(r), true) => Some(format!(
+                    "{r}: {}",
+                    target.as_deref().unwrap_or(crate::text::NO_TARGET)
+                )),
                 _ => target,
             };
             group(heading, filter, &frames, limits, settings)
@@ -362,7 +456,7 @@ fn group(
             .unwrap_or(f64::MAX)
             .total_cmp(&fwhm(b).unwrap_or(f64::MAX))
     });
-    let lines = frames
+    let lines: Vec<FrameLine> = frames
         .iter()
         .map(|f| {
             let mut explanations = f.explanations.clone();
@@ -416,6 +510,16 @@ fn group(
             .find_map(|f| f.metrics.as_ref().and_then(|m| m.zero_point_band.clone())),
         best: ranked.first().map(|f| file_name(&f.path)),
         worst: ranked.last().map(|f| file_name(&f.path)),
+        episodes: episodes(&lines),
+        unplaced: {
+            let mut notes: BTreeMap<String, usize> = BTreeMap::new();
+            for f in frames {
+                if let Some(n) = f.metrics.as_ref().and_then(|m| m.sky_fit_note.as_ref()) {
+                    *notes.entry(n.clone()).or_default() += 1;
+                }
+            }
+            notes.into_iter().collect()
+        },
         lines,
         stack: usable
             .iter()
@@ -430,210 +534,6 @@ fn group(
             count(Verdict::Warn)
         },
         limits,
-    }
-}
-
-/// Sexagesimal RA (hours) and Dec (degrees) for a J2000 position.
-pub fn sexagesimal(ra_deg: f64, dec_deg: f64) -> String {
-    // Round once, in the last unit shown, so 59.999 s never prints as 60.00 s.
-    let cs = (ra_deg.rem_euclid(360.0) / 15.0 * 360_000.0).round() as i64 % (24 * 360_000);
-    let (hh, mm, ss) = (cs / 360_000, (cs / 6_000) % 60, (cs % 6_000) as f64 / 100.0);
-    let sign = if dec_deg < 0.0 { '-' } else { '+' };
-    let ds = (dec_deg.abs() * 36_000.0).round() as i64;
-    let (dd, dm, dsec) = (ds / 36_000, (ds / 600) % 60, (ds % 600) as f64 / 10.0);
-    format!("{hh:02}h{mm:02}m{ss:05.2}s {sign}{dd:02}°{dm:02}′{dsec:04.1}″")
-}
-
-/// A signed value to two decimals, never "-0.00".
-fn signed(x: f64) -> String {
-    let r = (x * 100.0).round() / 100.0 + 0.0;
-    format!("{r:+.2}")
-}
-
-/// Minutes of exposure, for people.
-fn minutes(s: f64) -> String {
-    format!("{:.0} min", s / 60.0)
-}
-
-/// Subject line of the morning mail (one line, whatever the headers hold).
-pub fn subject(s: &Summary) -> String {
-    crate::text::single_line(&format!(
-        "subwatch night {}: {} frames, {} rejected, {} warned, {} worth a look",
-        s.night,
-        s.frames,
-        s.rejected,
-        s.warned,
-        s.notable.len()
-    ))
-}
-
-/// The name a kind is listed under: the contract's spelling.
-fn kind_label(a: &AnomalyRecord) -> &'static str {
-    a.kind.name()
-}
-
-/// The anomaly's instrumental magnitude, when the analysis gave one.
-pub fn instrumental_mag(a: &AnomalyRecord) -> Option<f64> {
-    a.detail.instrumental_mag()
-}
-
-/// The anomaly's brightness in words: calibrated through the frame's zero point where a
-/// catalogue gave one, else instrumental.
-pub fn brightness_words(a: &AnomalyRecord) -> Option<String> {
-    match (a.mag, a.mag_err) {
-        (Some(m), Some(e)) => Some(format!(
-            "mag {m:.2} ± {e:.2}{}",
-            a.mag_band
-                .as_deref()
-                .map_or(String::new(), |b| format!(" ({b})"))
-        )),
-        _ => instrumental_mag(a).map(|m| format!("mag {m:.2} (instrumental)")),
-    }
-}
-
-/// The anomaly against the catalogue, in words; `None` without a catalogue.
-pub fn catalogue_words(a: &AnomalyRecord) -> Option<String> {
-    match (&a.catalogue, a.catalogue_depth_mag) {
-        (Some(c), _) => Some(format!(
-            "catalogued: {} ({}) {:.1}″ away",
-            c.id,
-            match (c.mag, c.band.as_deref()) {
-                (Some(m), Some(b)) => format!("{b} {m:.2}"),
-                (Some(m), None) => format!("mag {m:.2}"),
-                _ => "no magnitude".into(),
-            },
-            c.separation_arcsec
-        )),
-        (None, Some(d)) => Some(format!("not in the catalogue down to mag {d:.1}")),
-        _ => None,
-    }
-}
-
-impl GroupSummary {
-    /// "; depth 18.45 mag (V), zero point 23.12" where a catalogue gave them.
-    pub fn depth_words(&self) -> String {
-        let band = self
-            .zero_point_band
-            .as_deref()
-            .map_or(String::new(), |b| format!(" ({b})"));
-        match (self.median_limit_mag, self.median_zero_point_mag) {
-            (Some(l), Some(z)) => format!("; depth {l:.2} mag{band} at 5σ, zero point {z:.2}"),
-            (None, Some(z)) => format!("; zero point {z:.2}{band}"),
-            _ => String::new(),
-        }
-    }
-}
-
-/// What was seen, in plain words with its values.
-pub fn what(a: &AnomalyRecord) -> String {
-    match &a.detail {
-        Detail::NewSource(n) => format!(
-            "not seen on {} (that night reached mag {:.2}); mag {:.2} tonight",
-            n.absent_on, n.earlier_limit_mag, n.instrumental_mag
-        ),
-        Detail::Moving(m) => {
-            let rate = match (m.rate_arcsec_per_min, m.position_angle_deg) {
-                (Some(r), Some(pa)) => format!("{r:.2}″/min towards position angle {pa:.0}°"),
-                (Some(r), None) => format!("{r:.2}″/min"),
-                _ => format!("{:.2} px/min", m.rate_px_per_min),
-            };
-            format!("moving {rate}")
-        }
-        Detail::Variable(v) => format!(
-            "brightness changed by {:.2} mag over {} frames (false-alarm probability {})",
-            v.amplitude_mag,
-            v.frames,
-            if v.false_alarm_probability < 1e-6 {
-                "below 1e-6".to_string()
-            } else {
-                format!("{:.1e}", v.false_alarm_probability)
-            }
-        ),
-        Detail::Color(c) => format!(
-            "color R−G {} mag, B−G {} mag against the field's {} and {} ({:.1} and {:.1} robust σ)",
-            signed(c.color_rg_mag),
-            signed(c.color_bg_mag),
-            signed(c.field_rg_mag),
-            signed(c.field_bg_mag),
-            c.z_rg,
-            c.z_bg
-        ),
-        Detail::BandColor(c) => format!(
-            "{} − {} = {} mag against the field's {} ({:.1} robust σ; flux ratio {:.2} against {:.2}; false-alarm probability {:.1e} over {} stars)",
-            c.bands[0],
-            c.bands[1],
-            signed(c.color_mag),
-            signed(c.field_color_mag),
-            c.z,
-            c.flux_ratio,
-            c.field_flux_ratio,
-            c.false_alarm_probability,
-            c.tested
-        ),
-        Detail::Transient(t) => format!(
-            "{}{}",
-            t.reason,
-            t.snr.map_or(String::new(), |s| format!(", SNR {s:.0}"))
-        ),
-        Detail::Trail(t) => format!(
-            "streak {:.0} px long, {:.1} px wide, at {:.0}° from the x axis",
-            t.trail.length_px, t.trail.width_px, t.trail.angle_deg
-        ),
-        Detail::HotPixel(h) => format!(
-            "fixed at detector ({:.0}, {:.0}) in {} of {} frames",
-            h.detector_x, h.detector_y, h.frames, h.frames_total
-        ),
-    }
-}
-
-/// Every frame's metrics as CSV (RFC 4180 quoting).
-pub fn csv(doc: &NightDocument) -> String {
-    let q = |s: &str| csv_text(s);
-    let n = |v: Option<f64>| v.map_or(String::new(), |x| format!("{x:.4}"));
-    let mut out = String::from("path,target,filter,time_unix,verdict,reasons,star_count,fwhm_px,fwhm_arcsec,eccentricity,background_adu,noise_adu,snr_median,hfr_px,transparency_loss_mag,explanations,zero_point_mag,limit_mag\n");
-    for f in &doc.frames {
-        let m = f.metrics.as_ref();
-        let verdict = f.verdict.as_str();
-        let _ = writeln!(
-            out,
-            "{},{},{},{},{},{},{},{},{},{},{},{},{},{},{},{},{},{}",
-            q(&f.path),
-            q(f.target.as_deref().unwrap_or("")),
-            q(f.filter.as_deref().unwrap_or("")),
-            n(f.time_unix),
-            verdict,
-            q(&f.reasons.join(";")),
-            m.map_or(String::new(), |m| m.star_count.to_string()),
-            n(m.and_then(|m| m.fwhm_px)),
-            n(m.and_then(|m| m.fwhm_arcsec)),
-            n(m.and_then(|m| m.eccentricity)),
-            n(m.map(|m| m.background_adu)),
-            n(m.map(|m| m.noise_adu)),
-            n(m.and_then(|m| m.snr_median)),
-            n(m.and_then(|m| m.hfr_px)),
-            n(f.transparency_loss_mag),
-            q(&f.explanations.join(" | ")),
-            n(m.and_then(|m| m.zero_point_mag)),
-            n(m.and_then(|m| m.limit_mag)),
-        );
-    }
-    out
-}
-
-/// A text cell of the CSV: quoted where RFC 4180 needs it, and a cell a spreadsheet
-/// would run as a formula (one that starts with `=`, `+`, `-`, `@`, a tab or a carriage
-/// return) neutralised with a leading apostrophe, as the OWASP guidance on CSV
-/// injection advises. Numbers are written by the caller and never pass through here.
-pub fn csv_text(s: &str) -> String {
-    let s = if s.starts_with(['=', '+', '-', '@', '\t', '\r']) {
-        format!("'{s}")
-    } else {
-        s.to_string()
-    };
-    if s.contains([',', '"', '\n', '\r']) {
-        format!("\"{}\"", s.replace('"', "\"\""))
-    } else {
-        s
     }
 }
 
@@ -755,7 +655,7 @@ mod tests {
                     Some("L"),
                     40.0,
                     Verdict::Warn,
-                    &[("trail", "1 streak(s) cross the frame")],
+                    &[("trail", "a streak crosses the frame")],
                 ),
                 frame("a1.fits", "Field A", Some("L"), 30.0, Verdict::Ok, &[]),
                 frame(

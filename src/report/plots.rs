@@ -131,7 +131,7 @@ fn axis_title(key: &str, arcsec: bool) -> &'static str {
         "fwhm" if arcsec => "FWHM (arcsec)",
         "fwhm" => "FWHM (px)",
         "eccentricity" => "eccentricity (0 = round)",
-        "background_adu" => "background (ADU)",
+        "background_adu" => "background (ADU, log scale)",
         "star_count" => "stars (count)",
         "limit_mag" => "limiting magnitude, 5σ (mag)",
         "zero_point_mag" => "zero point (mag for 1 ADU/s)",
@@ -179,9 +179,60 @@ fn limits_for(
 
 /// Local clock time of a moment, "HH:MM".
 fn clock(t_unix: f64, tz: Tz) -> String {
-    chrono::DateTime::from_timestamp(t_unix.floor() as i64, 0)
+    chrono::DateTime::from_timestamp(t_unix.round() as i64, 0)
         .map(|t| t.with_timezone(&tz).format("%H:%M").to_string())
         .unwrap_or_default()
+}
+
+/// The moment of the local midnight that began the day of `t_unix` on the site's clock:
+/// the time axis counts hours from it, so the axis's round numbers (0.1, 0.5, 1 h) fall
+/// on round clock times (hh:06, hh:30, hh:00).
+fn local_midnight(t_unix: f64, tz: Tz) -> f64 {
+    use chrono::Timelike;
+    chrono::DateTime::from_timestamp(t_unix.floor() as i64, 0)
+        .map(|t| {
+            let local = t.with_timezone(&tz);
+            t_unix - f64::from(local.num_seconds_from_midnight())
+        })
+        .unwrap_or(t_unix)
+}
+
+/// How a metric's values are drawn: the sky background on a log scale when it stays
+/// positive and spans a factor of two or more (a cloud's dip and dawn's rise both show);
+/// everything else as it is.
+#[derive(Debug, Clone, Copy, PartialEq)]
+enum Scale {
+    Linear,
+    Log,
+}
+
+impl Scale {
+    fn of(key: &str, values: &[f64]) -> Scale {
+        let (lo, hi) = values
+            .iter()
+            .fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), v| {
+                (a.min(*v), b.max(*v))
+            });
+        if key == "background_adu" && lo > 0.0 && hi / lo >= 2.0 {
+            Scale::Log
+        } else {
+            Scale::Linear
+        }
+    }
+
+    fn to_axis(self, v: f64) -> f64 {
+        match self {
+            Scale::Linear => v,
+            Scale::Log => v.log10(),
+        }
+    }
+
+    fn from_axis(self, y: f64) -> f64 {
+        match self {
+            Scale::Linear => y,
+            Scale::Log => 10f64.powf(y),
+        }
+    }
 }
 
 /// The y range: the values, the limits near them, and at least the metric's smallest
@@ -276,12 +327,29 @@ pub fn metric_plot(
     } else {
         plotted.min_span
     };
+    let scale = Scale::of(key, &values_of(&pts));
+    if scale == Scale::Log {
+        for p in &mut pts {
+            p.1 = scale.to_axis(p.1);
+        }
+    }
+    // Limits on the drawn scale (a limit at or below zero has no place on a log axis).
+    let drawn: Vec<(Verdict, f64, bool)> = lines
+        .iter()
+        .filter(|l| scale == Scale::Linear || l.1 > 0.0)
+        .map(|l| (l.0, scale.to_axis(l.1), l.2))
+        .collect();
+    let min_span = match scale {
+        Scale::Linear => min_span,
+        Scale::Log => 0.3,
+    };
     let values = values_of(&pts);
-    let (y_lo, y_hi) = y_range(&values, &lines, min_span);
-    let t0 = pts[0].0;
+    let (y_lo, y_hi) = y_range(&values, &drawn, min_span);
+    let t0 = local_midnight(pts[0].0, tz);
     let hours = |t: f64| (t - t0) / 3600.0;
-    let x_max = hours(pts[pts.len() - 1].0).max(0.05);
-    let x_pad = 0.02 * x_max;
+    let x_first = hours(pts[0].0);
+    let x_last = hours(pts[pts.len() - 1].0).max(x_first + 0.05);
+    let x_pad = 0.02 * (x_last - x_first);
     let bands = bands(frames, &pts);
     let (w, h) = (WIDTH, CHART_HEIGHT + LEGEND_HEIGHT);
     let mut buf = vec![255u8; (w * h * 3) as usize];
@@ -292,13 +360,16 @@ pub fn metric_plot(
         let formatter = |x: &f64| clock(t0 + x * 3600.0, tz);
         // As many decimals as the label step needs (six labels over the span).
         let decimals = (-((y_hi - y_lo) / 6.0).log10().floor()).clamp(0.0, 4.0) as usize;
-        let y_formatter = |y: &f64| format!("{y:.decimals$}");
+        let y_formatter = |y: &f64| match scale {
+            Scale::Linear => format!("{y:.decimals$}"),
+            Scale::Log => significant(scale.from_axis(*y)),
+        };
         let mut chart = ChartBuilder::on(&chart_area)
             .margin(6)
             .margin_right(14)
             .x_label_area_size(34)
             .y_label_area_size(58)
-            .build_cartesian_2d(-x_pad..x_max + x_pad, y_lo..y_hi)
+            .build_cartesian_2d(x_first - x_pad..x_last + x_pad, y_lo..y_hi)
             .ok()?;
         for (left, right, color) in &bands {
             chart
@@ -322,7 +393,7 @@ pub fn metric_plot(
             .light_line_style(WHITE.mix(0.0))
             .draw()
             .ok()?;
-        for (verdict, v, _) in &lines {
+        for (verdict, v, _) in &drawn {
             if *v < y_lo || *v > y_hi {
                 continue;
             }
@@ -333,7 +404,7 @@ pub fn metric_plot(
             };
             chart
                 .draw_series(DashedLineSeries::new(
-                    [(-x_pad, *v), (x_max + x_pad, *v)],
+                    [(x_first - x_pad, *v), (x_last + x_pad, *v)],
                     6,
                     4,
                     color.stroke_width(1),
@@ -355,7 +426,14 @@ pub fn metric_plot(
                 )
             }))
             .ok()?;
-        legend(&legend_area, &lines, key, arcsec)?;
+        let shown: Vec<(Verdict, f64, bool, bool)> = lines
+            .iter()
+            .map(|l| {
+                let y = scale.to_axis(l.1);
+                (l.0, l.1, l.2, y.is_finite() && y >= y_lo && y <= y_hi)
+            })
+            .collect();
+        legend(&legend_area, &shown, key, arcsec)?;
         root.present().ok()?;
     }
     encode_png(&buf, w, h, image::ColorType::Rgb8)
@@ -418,9 +496,11 @@ fn bands(frames: &[&NightFrameRecord], pts: &[(f64, f64, Verdict)]) -> Vec<(f64,
 
 /// The legend strip under the chart: every color the chart can hold, then the limits
 /// with their values.
+/// Each limit is (verdict, value, crossed upwards, drawn): one outside the plotted range
+/// is listed as such rather than drawn off the chart.
 fn legend(
     area: &DrawingArea<BitMapBackend, Shift>,
-    lines: &[(Verdict, f64, bool)],
+    lines: &[(Verdict, f64, bool, bool)],
     key: &str,
     arcsec: bool,
 ) -> Option<()> {
@@ -458,7 +538,7 @@ fn legend(
         "transparency_loss_mag" | "limit_mag" | "zero_point_mag" => " mag",
         _ => "",
     };
-    let mut shown: Vec<(Verdict, f64, bool)> = lines.to_vec();
+    let mut shown: Vec<(Verdict, f64, bool, bool)> = lines.to_vec();
     shown.sort_by(|a, b| a.0.cmp(&b.0).then(a.1.total_cmp(&b.1)));
     shown.dedup_by(|a, b| a.0 == b.0 && (a.1 - b.1).abs() < 1e-9);
     if shown.is_empty() {
@@ -470,7 +550,7 @@ fn legend(
         .ok()?;
         return Some(());
     }
-    for (verdict, v, above) in shown {
+    for (verdict, v, above, drawn) in shown {
         let color = if verdict == Verdict::Reject {
             REJECT_COLOR
         } else {
@@ -487,10 +567,11 @@ fn legend(
         ))
         .ok()?;
         let text = format!(
-            "{} {} {}{unit}",
+            "{} {} {}{unit}{}",
             verdict.as_str(),
             if above { "above" } else { "below" },
-            significant(v)
+            significant(v),
+            if drawn { "" } else { " (off the plot)" }
         );
         area.draw(&Text::new(text.clone(), (x + 20, y - 7), font.clone()))
             .ok()?;
@@ -590,5 +671,34 @@ mod tests {
         let t = 1_773_531_000.0;
         assert_eq!(clock(t, chrono_tz::Europe::Madrid), "00:30");
         assert_eq!(clock(t, chrono_tz::UTC), "23:30");
+    }
+
+    #[test]
+    fn hours_count_from_the_sites_midnight_so_round_numbers_are_round_times() {
+        // 2026-03-14 23:30 UTC is 00:30 on the 15th in Madrid (UTC+1 in March; the IANA
+        // tz database): its midnight is 23:00 UTC on the 14th.
+        let t = 1_773_531_000.0;
+        let m = local_midnight(t, chrono_tz::Europe::Madrid);
+        assert_eq!(t - m, 1800.0);
+        assert_eq!(clock(m + 0.5 * 3600.0, chrono_tz::Europe::Madrid), "00:30");
+    }
+
+    #[test]
+    fn the_background_goes_on_a_log_scale_when_it_spans_a_factor_of_two() {
+        assert_eq!(
+            Scale::of("background_adu", &[900.0, 1000.0, 30_000.0]),
+            Scale::Log
+        );
+        assert_eq!(
+            Scale::of("background_adu", &[900.0, 1000.0, 1100.0]),
+            Scale::Linear
+        );
+        // A bias-subtracted sky near zero stays linear (no log of zero).
+        assert_eq!(
+            Scale::of("background_adu", &[-3.0, 10.0, 400.0]),
+            Scale::Linear
+        );
+        assert_eq!(Scale::of("fwhm", &[1.0, 9.0]), Scale::Linear);
+        assert!((Scale::Log.from_axis(Scale::Log.to_axis(2500.0)) - 2500.0).abs() < 1e-9);
     }
 }

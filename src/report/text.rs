@@ -6,7 +6,8 @@
 use std::fmt::Write as _;
 
 use super::{
-    brightness_words, catalogue_words, file_name, minutes, sexagesimal, what, FrameLine, Summary,
+    brightness_words, catalogue_words, episodes_sentence, file_name, plural, sexagesimal, to_stack,
+    what, FrameLine, Summary,
 };
 use crate::text::single_line;
 
@@ -31,9 +32,9 @@ pub fn text(s: &Summary, all: bool) -> String {
     let mut t = String::new();
     let _ = writeln!(
         t,
-        "Night {}: {} frames: {} ok, {} warn, {} reject. Clock times are {}.",
+        "Night {}: {}: {} ok, {} warn, {} reject. Clock times are {}.",
         s.night,
-        s.frames,
+        plural(s.frames, "frame", "frames"),
         s.ok,
         s.warned,
         s.rejected,
@@ -47,16 +48,27 @@ pub fn text(s: &Summary, all: bool) -> String {
         };
         let _ = writeln!(
             t,
-            "  {}: {} frames: {} ok, {} warn, {} reject; to stack {} in {} frames{fwhm}{}",
+            "  {}: {}: {} ok, {} warn, {} reject; to stack {}{fwhm}{}",
             single_line(&g.heading()),
-            g.frames,
+            plural(g.frames, "frame", "frames"),
             g.ok,
             g.warn,
             g.reject,
-            minutes(g.usable_seconds),
-            g.stack.len(),
+            to_stack(g),
             g.depth_words(),
         );
+        let episodes = episodes_sentence(&g.episodes);
+        if !episodes.is_empty() {
+            let _ = writeln!(t, "    {episodes}");
+        }
+        for (note, n) in &g.unplaced {
+            let _ = writeln!(
+                t,
+                "    {} not placed on the sky: {}",
+                plural(*n, "frame", "frames"),
+                single_line(note)
+            );
+        }
     }
     let counts = s.kind_counts();
     let _ = writeln!(
@@ -83,7 +95,15 @@ pub fn text(s: &Summary, all: bool) -> String {
             } else {
                 cal.counts
                     .iter()
-                    .map(|(k, n, w, r)| format!("{n} {k} ({w} warn, {r} reject)"))
+                    .map(|(k, n, w, r)| {
+                        let many = if *k == "bias" {
+                            "bias frames".to_string()
+                        } else {
+                            format!("{k}s")
+                        };
+                        let one = if *k == "bias" { "bias frame" } else { k };
+                        format!("{} ({w} warn, {r} reject)", plural(*n, one, &many))
+                    })
                     .collect::<Vec<_>>()
                     .join(", ")
             }
@@ -134,10 +154,10 @@ pub fn text(s: &Summary, all: bool) -> String {
         let _ = writeln!(t, "  {:<10} {pos}", a.kind.name());
         let _ = writeln!(
             t,
-            "             {}{mag}{}; {} frame(s){}",
+            "             {}{mag}{}; {}{}",
             single_line(&what(a)),
             single_line(&known),
-            a.detections.len(),
+            plural(a.detections.len(), "frame", "frames"),
             single_line(&first)
         );
     }
@@ -156,6 +176,22 @@ pub fn text(s: &Summary, all: bool) -> String {
     }
     if !s.cosmic_rays.is_empty() {
         let _ = writeln!(t, "Cosmic-ray hits: {}", s.cosmic_rays.len());
+    }
+
+    // The frames to stack, per group (warned ones marked).
+    if s.groups.iter().any(|g| !g.stack.is_empty()) {
+        let _ = writeln!(t, "\nFrames to stack");
+    }
+    for g in s.groups.iter().filter(|g| !g.stack.is_empty()) {
+        let _ = writeln!(t, "  {} ({})", single_line(&g.heading()), to_stack(g));
+        for e in &g.stack {
+            let _ = writeln!(
+                t,
+                "    {}{}",
+                single_line(&e.path),
+                if e.warned { "  (warned)" } else { "" }
+            );
+        }
     }
 
     if all {

@@ -89,6 +89,18 @@ impl Metric {
         }
     }
 
+    /// The unit a value of the metric is written with ("" for a pure number).
+    pub fn unit(self) -> &'static str {
+        match self {
+            Metric::FwhmPx | Metric::HfrPx => " px",
+            Metric::FwhmArcsec => "″",
+            Metric::BackgroundAdu | Metric::NoiseAdu => " ADU",
+            Metric::StarCount => " stars",
+            Metric::TransparencyLossMag | Metric::LimitMag | Metric::ZeroPointMag => " mag",
+            Metric::Eccentricity | Metric::SnrMedian => "",
+        }
+    }
+
     fn of(self, f: &FrameFacts) -> Option<f64> {
         match self {
             Metric::FwhmPx => f.fwhm_px,
@@ -404,19 +416,24 @@ fn fires(
     let f = upto.last()?;
     let v = r.metric.of(f)?;
     let name = r.metric.as_str();
+    let unit = r.metric.unit();
     let limit = r.value;
-    match r.test {
-        Test::Above => (v > limit).then(|| format!("{name} {v:.3} is above {limit}")),
-        Test::Below => (v < limit).then(|| format!("{name} {v:.3} is below {limit}")),
+    // Which configured rule fired, by its reason code, then the values with their units.
+    let said = |words: String| format!("rule {} ([[rules]]): {words}", r.reason);
+    let text = match r.test {
+        Test::Above => (v > limit).then(|| format!("{name} {v:.3}{unit} is above {limit}{unit}")),
+        Test::Below => (v < limit).then(|| format!("{name} {v:.3}{unit} is below {limit}{unit}")),
         Test::AboveMedianRatio => {
             let m = median?;
-            (v > limit * m)
-                .then(|| format!("{name} {v:.3} is above {limit} × the night's median {m:.3}"))
+            (v > limit * m).then(|| {
+                format!("{name} {v:.3}{unit} is above {limit} × the night's median {m:.3}{unit}")
+            })
         }
         Test::BelowMedianRatio => {
             let m = median?;
-            (v < limit * m)
-                .then(|| format!("{name} {v:.3} is below {limit} × the night's median {m:.3}"))
+            (v < limit * m).then(|| {
+                format!("{name} {v:.3}{unit} is below {limit} × the night's median {m:.3}{unit}")
+            })
         }
         Test::SigmasAbove | Test::SigmasBelow => {
             let (m, s) = (median?, sigma?);
@@ -429,7 +446,7 @@ fn fires(
             } else {
                 -z > limit
             };
-            hit.then(|| format!("{name} {v:.3} is {z:+.1} robust σ from the night's median {m:.3} (limit {limit})"))
+            hit.then(|| format!("{name} {v:.3}{unit} is {z:+.1} robust σ from the night's median {m:.3}{unit} (limit {limit} σ)"))
         }
         Test::Rising => {
             let n = r.frames.unwrap_or(3);
@@ -455,10 +472,13 @@ fn fires(
             let den: f64 = (0..n).map(|k| (k as f64 - mx).powi(2)).sum();
             let rise = num / den * (n as f64 - 1.0);
             (rise > limit).then(|| {
-                format!("{name} rose by {rise:.3} over the last {n} frames (limit {limit})")
+                format!(
+                    "{name} rose by {rise:.3}{unit} over the last {n} frames (limit {limit}{unit})"
+                )
             })
         }
-    }
+    };
+    text.map(said)
 }
 
 /// The verdict a value earns against (warn, reject) limits, crossed upwards or downwards.
@@ -500,7 +520,12 @@ fn judge(f: &FrameFacts, c: &GroupStats, replaced: &[&str]) -> Judgement {
     if let (Some(v), Some(m)) = (f.fwhm_px, c.fwhm) {
         if let Some(verdict) = level(v, (FWHM_RATIO.0 * m, FWHM_RATIO.1 * m), true) {
             let (w, r) = FWHM_RATIO;
-            fire(verdict, "fwhm_high", format!("FWHM {v:.2} px is {:.2} × the night's median {m:.2} px (warn above {w} ×, reject above {r} ×)", v / m));
+            // In arcseconds where the plate scale is known, the pixels beside.
+            let both = |px: f64| match f.fwhm_arcsec.filter(|a| a.is_finite() && v > 0.0) {
+                Some(a) => format!("{:.2}″ ({px:.2} px)", px * a / v),
+                None => format!("{px:.2} px"),
+            };
+            fire(verdict, "fwhm_high", format!("FWHM {} is {:.2} × the night's median {} (warn above {w} ×, reject above {r} ×)", both(v), v / m, both(m)));
         }
     }
     if let Some(v) = f.eccentricity {
@@ -562,7 +587,10 @@ fn judge(f: &FrameFacts, c: &GroupStats, replaced: &[&str]) -> Judgement {
         fire(
             Verdict::Warn,
             "trail",
-            format!("{} streak(s) cross the frame", f.trails),
+            match f.trails {
+                1 => "a streak crosses the frame".to_string(),
+                n => format!("{n} streaks cross the frame"),
+            },
         );
     }
     if f.registered == Some(false) {

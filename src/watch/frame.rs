@@ -49,13 +49,19 @@ fn frame_line(record: &FrameRecord) -> LogLine {
     };
     match (&record.status, &record.metrics) {
         (FrameStatus::Ok, Some(m)) => LogLine::Info(format!(
-            "{path} measured: night={} star_count={} fwhm_px={} eccentricity={} background_adu={:.1} noise_adu={:.2}{undated}",
+            "{path} measured: night={} star_count={} fwhm_px={} eccentricity={} background_adu={:.1} noise_adu={:.2}{undated}{}",
             record.night.as_deref().unwrap_or("-"),
             m.star_count,
             m.fwhm_px.map_or("-".into(), |v| format!("{v:.2}")),
             m.eccentricity.map_or("-".into(), |v| format!("{v:.2}")),
             m.background_adu,
-            m.noise_adu
+            m.noise_adu,
+            m.sky_fit_note
+                .as_ref()
+                .map_or(String::new(), |n| format!(
+                    "; not placed on the sky: {}",
+                    crate::logging::one_line(n)
+                ))
         )),
         (FrameStatus::Skipped, _) => LogLine::Info(format!("{path} skipped: {}", reason())),
         _ => LogLine::Warn(format!("{path} unreadable: {}", reason())),

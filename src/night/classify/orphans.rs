@@ -107,8 +107,10 @@ pub(super) fn moving_and_transients(night: &Night) -> Vec<Anomaly> {
                 y: p.y,
             })
             .collect();
-        // Sky rate from the WCS of the first and last detections.
+        // Sky rate from the WCS of the first and last detections; without one, from the
+        // plate scale (no direction on the sky then).
         let (first, last) = (dets[0], dets[dets.len() - 1]);
+        let rate_px_per_min = vx.hypot(vy) * 60.0;
         let rate = match (super::sky_of(frames, &first), super::sky_of(frames, &last)) {
             (Some(a), Some(b)) if times[last.frame] > times[first.frame] => {
                 let dra = ((b.0 - a.0 + 540.0).rem_euclid(360.0) - 180.0) * a.1.to_radians().cos();
@@ -116,10 +118,12 @@ pub(super) fn moving_and_transients(night: &Night) -> Vec<Anomaly> {
                 let minutes = (times[last.frame] - times[first.frame]) / 60.0;
                 Some((
                     dra.hypot(ddec) * 3600.0 / minutes,
-                    dra.atan2(ddec).to_degrees().rem_euclid(360.0),
+                    Some(dra.atan2(ddec).to_degrees().rem_euclid(360.0)),
                 ))
             }
-            _ => None,
+            _ => frames[first.frame]
+                .plate_scale_arcsec
+                .map(|scale| (rate_px_per_min * scale, None)),
         };
         anomalies.push(anomaly(
             frames,
@@ -127,8 +131,8 @@ pub(super) fn moving_and_transients(night: &Night) -> Vec<Anomaly> {
             dets,
             Detail::Moving(MovingDetail {
                 rate_arcsec_per_min: rate.map(|r| r.0),
-                position_angle_deg: rate.map(|r| r.1),
-                rate_px_per_min: vx.hypot(vy) * 60.0,
+                position_angle_deg: rate.and_then(|r| r.1),
+                rate_px_per_min,
                 frames: pts.len(),
                 instrumental_mag: median_f64(
                     &pts.iter()
