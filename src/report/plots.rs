@@ -220,14 +220,14 @@ impl Scale {
         }
     }
 
-    fn to_axis(self, v: f64) -> f64 {
+    fn onto_axis(self, v: f64) -> f64 {
         match self {
             Scale::Linear => v,
             Scale::Log => v.log10(),
         }
     }
 
-    fn from_axis(self, y: f64) -> f64 {
+    fn off_axis(self, y: f64) -> f64 {
         match self {
             Scale::Linear => y,
             Scale::Log => 10f64.powf(y),
@@ -330,14 +330,14 @@ pub fn metric_plot(
     let scale = Scale::of(key, &values_of(&pts));
     if scale == Scale::Log {
         for p in &mut pts {
-            p.1 = scale.to_axis(p.1);
+            p.1 = scale.onto_axis(p.1);
         }
     }
     // Limits on the drawn scale (a limit at or below zero has no place on a log axis).
     let drawn: Vec<(Verdict, f64, bool)> = lines
         .iter()
         .filter(|l| scale == Scale::Linear || l.1 > 0.0)
-        .map(|l| (l.0, scale.to_axis(l.1), l.2))
+        .map(|l| (l.0, scale.onto_axis(l.1), l.2))
         .collect();
     let min_span = match scale {
         Scale::Linear => min_span,
@@ -362,7 +362,7 @@ pub fn metric_plot(
         let decimals = (-((y_hi - y_lo) / 6.0).log10().floor()).clamp(0.0, 4.0) as usize;
         let y_formatter = |y: &f64| match scale {
             Scale::Linear => format!("{y:.decimals$}"),
-            Scale::Log => significant(scale.from_axis(*y)),
+            Scale::Log => significant(scale.off_axis(*y)),
         };
         let mut chart = ChartBuilder::on(&chart_area)
             .margin(6)
@@ -429,7 +429,7 @@ pub fn metric_plot(
         let shown: Vec<(Verdict, f64, bool, bool)> = lines
             .iter()
             .map(|l| {
-                let y = scale.to_axis(l.1);
+                let y = scale.onto_axis(l.1);
                 (l.0, l.1, l.2, y.is_finite() && y >= y_lo && y <= y_hi)
             })
             .collect();
@@ -699,6 +699,6 @@ mod tests {
             Scale::Linear
         );
         assert_eq!(Scale::of("fwhm", &[1.0, 9.0]), Scale::Linear);
-        assert!((Scale::Log.from_axis(Scale::Log.to_axis(2500.0)) - 2500.0).abs() < 1e-9);
+        assert!((Scale::Log.off_axis(Scale::Log.onto_axis(2500.0)) - 2500.0).abs() < 1e-9);
     }
 }
