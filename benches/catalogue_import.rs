@@ -33,7 +33,9 @@ fn write_catalogue(path: &Path, rows: u64) -> u64 {
     std::fs::metadata(path).unwrap().len()
 }
 
+// The child is reaped by wait4, which clippy does not see.
 #[cfg(unix)]
+#[allow(clippy::zombie_processes)]
 fn run_import(config: &Path) -> (f64, u64) {
     let started = Instant::now();
     let child = std::process::Command::new(env!("CARGO_BIN_EXE_subwatch"))
