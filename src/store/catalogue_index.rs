@@ -7,7 +7,7 @@
 
 use std::path::{Path, PathBuf};
 
-use rusqlite::{params, Connection, OpenFlags, OptionalExtension};
+use rusqlite::{params, Connection, OpenFlags};
 
 use crate::catalogue::CatalogueStar;
 
@@ -22,7 +22,7 @@ pub struct SourceFile {
 }
 
 /// The index's layout; an index of another is built again.
-const FORMAT: &str = "2";
+const FORMAT: &str = "3";
 
 /// A star as the fit needs it, straight from the index's boxes (no row read, no parse).
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -99,8 +99,9 @@ impl IndexWriter {
                  dec REAL NOT NULL, pm_ra REAL, pm_dec REAL, epoch REAL NOT NULL, mags TEXT NOT NULL);
              CREATE VIRTUAL TABLE stars_xyz USING rtree(id, x0, x1, y0, y1, z0, z1,
                  +ra, +dec, +pm_ra, +pm_dec, +epoch, +mag);
-             CREATE TEMP TABLE named (file INTEGER NOT NULL, name TEXT NOT NULL,
-                 id INTEGER NOT NULL, PRIMARY KEY (file, name)) WITHOUT ROWID;
+             CREATE TEMP TABLE named (id INTEGER PRIMARY KEY, file INTEGER NOT NULL,
+                 name TEXT NOT NULL);
+             PRAGMA cache_size = -65536;
              BEGIN;",
         )
         .map_err(err)?;
@@ -129,10 +130,9 @@ impl IndexWriter {
         }
     }
 
-    /// Add stars. A star whose id an earlier row of the same file gave, within an
-    /// arcsecond of it, is that star in another band: its magnitudes join the earlier
-    /// row's (a band it has already keeps the first value). The lookup is the index
-    /// file's own table, so memory does not grow with the catalogue.
+    /// Add stars. Rows of one star in several bands are merged when the index is
+    /// finished (`merge_bands`); here each row is written as it comes, so memory does not
+    /// grow with the catalogue.
     pub fn add(&mut self, stars: &[CatalogueStar]) -> Result<(), StoreError> {
         let err = |source: rusqlite::Error| StoreError::Database {
             store: self.path.display().to_string(),
@@ -151,51 +151,11 @@ impl IndexWriter {
                 "INSERT INTO stars_xyz VALUES (?1, ?2, ?2, ?3, ?3, ?4, ?4, ?5, ?6, ?7, ?8, ?9, ?10)",
             )
             .map_err(err)?;
-        let mut earlier = self
-            .conn
-            .prepare_cached(
-                "SELECT s.id, s.ra, s.dec, s.mags FROM temp.named n JOIN stars s ON s.id = n.id
-                 WHERE n.file = ?1 AND n.name = ?2",
-            )
-            .map_err(err)?;
-        let mut joined = self
-            .conn
-            .prepare_cached("UPDATE stars SET mags = ?2 WHERE id = ?1")
-            .map_err(err)?;
         let mut name = self
             .conn
-            .prepare_cached(
-                "INSERT OR REPLACE INTO temp.named (file, name, id) VALUES (?1, ?2, ?3)",
-            )
+            .prepare_cached("INSERT INTO temp.named (id, file, name) VALUES (?1, ?2, ?3)")
             .map_err(err)?;
         for s in stars {
-            if self.merging {
-                let found = earlier
-                    .query_row(params![self.file, s.id], |r| {
-                        Ok((
-                            r.get::<_, i64>(0)?,
-                            r.get::<_, f64>(1)?,
-                            r.get::<_, f64>(2)?,
-                            r.get::<_, String>(3)?,
-                        ))
-                    })
-                    .optional()
-                    .map_err(err)?;
-                if let Some((id, ra, dec, mags)) = found {
-                    if crate::catalogue::same_star((ra, dec), (s.ra_deg, s.dec_deg)) {
-                        let mut all: Vec<(String, f64)> =
-                            serde_json::from_str(&mags).unwrap_or_default();
-                        for m in &s.mags {
-                            if !all.iter().any(|(b, _)| *b == m.0) {
-                                all.push(m.clone());
-                            }
-                        }
-                        let all = serde_json::to_string(&all).unwrap_or_else(|_| "[]".into());
-                        joined.execute(params![id, all]).map_err(err)?;
-                        continue;
-                    }
-                }
-            }
             let id = self.next_id;
             self.next_id += 1;
             let mags = serde_json::to_string(&s.mags).unwrap_or_else(|_| "[]".into());
@@ -226,9 +186,100 @@ impl IndexWriter {
                 ])
                 .map_err(err)?;
             if self.merging {
-                name.execute(params![self.file, s.id, id]).map_err(err)?;
+                name.execute(params![id, self.file, s.id]).map_err(err)?;
             }
         }
+        Ok(())
+    }
+
+    /// Rows of one file that name the same star (one row per band) become one star: a
+    /// row whose id an earlier row of the file gave, within an arcsecond of that row, is
+    /// that star in another band, and its magnitudes join the earlier row's (a band it
+    /// has already keeps the first value). The names are indexed once, after every row
+    /// is in (a sort, not ten million lookups), and only repeated names are read.
+    fn merge_bands(&self) -> Result<(), StoreError> {
+        let err = self.err();
+        self.conn
+            .execute_batch("CREATE INDEX temp.named_by_name ON named (file, name, id);")
+            .map_err(&err)?;
+        let mut repeated = self
+            .conn
+            .prepare(
+                "SELECT n.id, n.file, n.name, s.ra, s.dec, s.mags FROM temp.named n
+                 JOIN stars s ON s.id = n.id
+                 WHERE (n.file, n.name) IN
+                     (SELECT file, name FROM temp.named GROUP BY file, name HAVING COUNT(*) > 1)
+                 ORDER BY n.file, n.name, n.id",
+            )
+            .map_err(&err)?;
+        type Row = (i64, i64, String, f64, f64, String);
+        let rows = repeated
+            .query_map([], |r| {
+                Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?, r.get(4)?, r.get(5)?))
+            })
+            .map_err(&err)?;
+        // What changes goes into two tables of its own while the names are read (a
+        // table the query does not read may be written meanwhile), so nothing of it is
+        // held in memory.
+        self.conn
+            .execute_batch(
+                "CREATE TEMP TABLE joined (id INTEGER PRIMARY KEY, mags TEXT NOT NULL);
+                 CREATE TEMP TABLE gone (id INTEGER PRIMARY KEY);",
+            )
+            .map_err(&err)?;
+        let mut join = self
+            .conn
+            .prepare("INSERT OR REPLACE INTO temp.joined (id, mags) VALUES (?1, ?2)")
+            .map_err(&err)?;
+        let mut goes = self
+            .conn
+            .prepare("INSERT INTO temp.gone (id) VALUES (?1)")
+            .map_err(&err)?;
+        // The (file, name) being merged, and its star: id, position, magnitudes.
+        type Current = ((i64, String), i64, (f64, f64), Vec<(String, f64)>);
+        let mut current: Option<Current> = None;
+        let mut keep = |c: &Current| -> Result<(), StoreError> {
+            let mags = serde_json::to_string(&c.3).unwrap_or_else(|_| "[]".into());
+            join.execute(params![c.1, mags]).map_err(&err)?;
+            Ok(())
+        };
+        let mut changed = false;
+        for row in rows {
+            let (id, file, name, ra, dec, mags): Row = row.map_err(&err)?;
+            let mags: Vec<(String, f64)> = serde_json::from_str(&mags).unwrap_or_default();
+            if let Some(c) = current.as_mut() {
+                if c.0 .0 == file && c.0 .1 == name && crate::catalogue::same_star(c.2, (ra, dec))
+                {
+                    for m in mags {
+                        if !c.3.iter().any(|(b, _)| *b == m.0) {
+                            c.3.push(m);
+                        }
+                    }
+                    goes.execute([id]).map_err(&err)?;
+                    changed = true;
+                    continue;
+                }
+            }
+            // A new name, or the same name too far away: a star of its own, which later
+            // rows of the name join.
+            if let (Some(c), true) = (&current, changed) {
+                keep(c)?;
+            }
+            changed = false;
+            current = Some(((file, name), id, (ra, dec), mags));
+        }
+        if let (Some(c), true) = (&current, changed) {
+            keep(c)?;
+        }
+        drop(repeated);
+        self.conn
+            .execute_batch(
+                "UPDATE stars SET mags = (SELECT j.mags FROM temp.joined j WHERE j.id = stars.id)
+                     WHERE id IN (SELECT id FROM temp.joined);
+                 DELETE FROM stars WHERE id IN (SELECT id FROM temp.gone);
+                 DELETE FROM stars_xyz WHERE id IN (SELECT id FROM temp.gone);",
+            )
+            .map_err(&err)?;
         Ok(())
     }
 
@@ -238,6 +289,7 @@ impl IndexWriter {
         sources: &[SourceFile],
         settings: &str,
     ) -> Result<CatalogueIndex, StoreError> {
+        self.merge_bands()?;
         let meta = serde_json::to_string(sources).unwrap_or_default();
         self.conn
             .execute(
