@@ -371,6 +371,9 @@ pub struct Config {
     pub calibration: CalibrationConfig,
     pub catalogue: CatalogueConfig,
     pub rules: Vec<RuleSpec>,
+    /// The line of every key the file gives ("section.key") and of its sections, for
+    /// the problems found after reading (`check_environment`, the store reached).
+    pub lines: std::collections::BTreeMap<String, usize>,
     /// The file this configuration was read from.
     pub source: Option<PathBuf>,
 }
@@ -445,5 +448,16 @@ impl Config {
     /// The verdict rules of the file.
     pub fn rule_specs(&self) -> Vec<RuleSpec> {
         self.rules.clone()
+    }
+
+    /// A problem found after reading, at the line of `key` ("section.key") where the file
+    /// gives it, else at its section's line where the file has that section.
+    pub fn located(&self, key: &str, message: String) -> ConfigProblem {
+        let section = key.split('.').next().unwrap_or(key);
+        ConfigProblem {
+            key: key.to_string(),
+            line: self.lines.get(key).or(self.lines.get(section)).copied(),
+            message,
+        }
     }
 }
