@@ -1,6 +1,7 @@
 //! The user's catalogue files into the index, once: each configured file is read, parsed
 //! (`catalogue`) and indexed (`store::catalogue_index`); an index built from the same
 //! files (path, size, modification time) and the same column settings is reused.
+//! `check` reads and parses the files the same way and writes nothing (`check-config`).
 
 use std::path::{Path, PathBuf};
 
@@ -15,11 +16,11 @@ pub const MAX_FILE_BYTES: u64 = 1 << 30;
 
 #[derive(Debug, thiserror::Error)]
 pub enum ImportError {
-    #[error("catalogue file {path}: {source}")]
+    /// The system's reason in words, once (not chained as a source too).
+    #[error("catalogue file {path}: {}", crate::text::io_reason(.reason))]
     Read {
         path: PathBuf,
-        #[source]
-        source: std::io::Error,
+        reason: std::io::Error,
     },
     #[error("catalogue file {path}: {size} bytes, more than the {MAX_FILE_BYTES} this program reads; split it")]
     TooLarge { path: PathBuf, size: u64 },
@@ -75,9 +76,9 @@ pub fn index_path(cfg: &CatalogueConfig) -> Option<PathBuf> {
 }
 
 fn source_of(path: &Path) -> Result<SourceFile, ImportError> {
-    let meta = std::fs::metadata(path).map_err(|source| ImportError::Read {
+    let meta = std::fs::metadata(path).map_err(|reason| ImportError::Read {
         path: path.to_path_buf(),
-        source,
+        reason,
     })?;
     let mtime_ns = meta
         .modified()
@@ -89,6 +90,95 @@ fn source_of(path: &Path) -> Result<SourceFile, ImportError> {
         size: meta.len(),
         mtime_ns,
     })
+}
+
+/// One catalogue file's stars, read (no more than `MAX_FILE_BYTES`) and parsed.
+fn read_stars(
+    path: &Path,
+    source: &SourceFile,
+    cfg: &CatalogueConfig,
+) -> Result<Vec<crate::catalogue::CatalogueStar>, ImportError> {
+    if source.size > MAX_FILE_BYTES {
+        return Err(ImportError::TooLarge {
+            path: path.to_path_buf(),
+            size: source.size,
+        });
+    }
+    // Read no more than the limit whatever the file grew to since it was measured.
+    let mut bytes = Vec::new();
+    std::fs::File::open(path)
+        .and_then(|f| {
+            std::io::Read::read_to_end(&mut std::io::Read::take(f, MAX_FILE_BYTES + 1), &mut bytes)
+        })
+        .map_err(|reason| ImportError::Read {
+            path: path.to_path_buf(),
+            reason,
+        })?;
+    if bytes.len() as u64 > MAX_FILE_BYTES {
+        return Err(ImportError::TooLarge {
+            path: path.to_path_buf(),
+            size: bytes.len() as u64,
+        });
+    }
+    let name = path.display().to_string();
+    let stars = if is_fits(&bytes) {
+        parse_fits_table(&name, &bytes, &cfg.columns)?
+    } else {
+        let text = String::from_utf8(bytes).map_err(|_| CatalogueError::Format {
+            file: name.clone(),
+            reason: "neither a FITS file nor UTF-8 text (CSV)".into(),
+        })?;
+        parse_csv(&name, &text, &cfg.columns)?
+    };
+    Ok(crate::catalogue::merge_bands(stars))
+}
+
+/// What `check` found, having written nothing.
+#[derive(Debug, Clone)]
+pub struct Checked {
+    /// Where the index is (or would be built).
+    pub index: PathBuf,
+    /// Stars the files hold, read now.
+    pub stars: u64,
+    /// Whether the index there was built from these very files and settings (else the
+    /// first command that needs it builds it).
+    pub current: bool,
+}
+
+/// Every configured file read and parsed as an import would, and the index looked at,
+/// without writing anything: every file's problem, not only the first. `Ok(None)` when
+/// no catalogue is configured.
+pub fn check(cfg: &CatalogueConfig) -> Result<Option<Checked>, Vec<ImportError>> {
+    let Some(index) = index_path(cfg) else {
+        return Ok(None);
+    };
+    let mut problems = Vec::new();
+    let mut sources = Vec::new();
+    let mut stars = 0u64;
+    for path in &cfg.files {
+        let read = source_of(path).and_then(|source| {
+            let n = read_stars(path, &source, cfg)?.len() as u64;
+            Ok((source, n))
+        });
+        match read {
+            Ok((source, n)) => {
+                sources.push(source);
+                stars += n;
+            }
+            Err(e) => problems.push(e),
+        }
+    }
+    if !problems.is_empty() {
+        return Err(problems);
+    }
+    // Opened to read only: a look leaves the index as it was.
+    let current = index.exists()
+        && CatalogueIndex::open(&index).is_ok_and(|i| i.is_current(&sources, &settings_key(cfg)));
+    Ok(Some(Checked {
+        index,
+        stars,
+        current,
+    }))
 }
 
 /// Build the index if it is missing or stale (or `force`), and say what it holds.
@@ -115,49 +205,14 @@ pub fn ensure(cfg: &CatalogueConfig, force: bool) -> Result<Option<Imported>, Im
         }
     }
     if let Some(parent) = index.parent() {
-        std::fs::create_dir_all(parent).map_err(|source| ImportError::Read {
+        std::fs::create_dir_all(parent).map_err(|reason| ImportError::Read {
             path: parent.to_path_buf(),
-            source,
+            reason,
         })?;
     }
     let mut writer = IndexWriter::create(&index)?;
     for (path, source) in cfg.files.iter().zip(&sources) {
-        if source.size > MAX_FILE_BYTES {
-            return Err(ImportError::TooLarge {
-                path: path.clone(),
-                size: source.size,
-            });
-        }
-        // Read no more than the limit whatever the file grew to since it was measured.
-        let mut bytes = Vec::new();
-        std::fs::File::open(path)
-            .and_then(|f| {
-                std::io::Read::read_to_end(
-                    &mut std::io::Read::take(f, MAX_FILE_BYTES + 1),
-                    &mut bytes,
-                )
-            })
-            .map_err(|source| ImportError::Read {
-                path: path.clone(),
-                source,
-            })?;
-        if bytes.len() as u64 > MAX_FILE_BYTES {
-            return Err(ImportError::TooLarge {
-                path: path.clone(),
-                size: bytes.len() as u64,
-            });
-        }
-        let name = path.display().to_string();
-        let stars = if is_fits(&bytes) {
-            parse_fits_table(&name, &bytes, &cfg.columns)?
-        } else {
-            let text = String::from_utf8(bytes).map_err(|_| CatalogueError::Format {
-                file: name.clone(),
-                reason: "neither a FITS file nor UTF-8 text (CSV)".into(),
-            })?;
-            parse_csv(&name, &text, &cfg.columns)?
-        };
-        writer.add(&crate::catalogue::merge_bands(stars))?;
+        writer.add(&read_stars(path, source, cfg)?)?;
     }
     let built = writer.finish(&sources, &key)?;
     Ok(Some(Imported {
