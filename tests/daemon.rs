@@ -729,3 +729,93 @@ fn a_store_reached_unencrypted_is_said_loudly_unless_it_is_on_this_machine() {
         "{said}"
     );
 }
+
+/// The store's password changed mid-night (PostgreSQL, a role that logs in with a
+/// password): the daemon names the refused login (SQLSTATE 28P01, PostgreSQL's
+/// invalid_password) rather than a broken connection, keeps the frames, and records them
+/// once the password file holds the new password.
+#[test]
+fn a_store_password_changed_mid_night_is_named_and_taken_up_from_the_file() {
+    let role = common::postgres::PasswordRole::new("first-pass-7Q");
+    let s = site("");
+    let pw = s.root.join("db-password");
+    std::fs::write(&pw, "first-pass-7Q\n").unwrap();
+    use std::os::unix::fs::PermissionsExt;
+    std::fs::set_permissions(&pw, std::fs::Permissions::from_mode(0o600)).unwrap();
+    let base = std::fs::read_to_string(&s.config)
+        .unwrap()
+        .replace(&format!("[store]\npath = \"{}\"\n", s.db.display()), "");
+    let cfg = s.root.join("shared.toml");
+    std::fs::write(
+        &cfg,
+        format!(
+            "{base}[store]\nurl = \"{}\"\npassword_file = \"{}\"\n",
+            role.url,
+            pw.display()
+        ),
+    )
+    .unwrap();
+    let (ok, said) = check_config(&cfg, &[]);
+    assert!(ok, "{said}");
+    // A wrong password is named at check-config, at the password file's line.
+    std::fs::write(&pw, "wrong\n").unwrap();
+    let (ok, said) = check_config(&cfg, &[]);
+    let line = base.lines().count() + 3;
+    assert!(!ok, "{said}");
+    assert!(
+        said.contains(&format!("error: line {line}: store.password_file: store {}: the server refused the login: password authentication failed for user \"{}\" (SQLSTATE 28P01 invalid_password)", role.url, role.role)),
+        "{said}"
+    );
+    std::fs::write(&pw, "first-pass-7Q\n").unwrap();
+
+    let d = common::daemon::Logged::start(&cfg);
+    let frames = |n: i64| {
+        let start = Instant::now();
+        while start.elapsed() < Duration::from_secs(60) {
+            if role.count("SELECT COUNT(*) FROM frames") >= n {
+                return true;
+            }
+            std::thread::sleep(Duration::from_millis(200));
+        }
+        false
+    };
+    std::fs::write(s.capture.join("k1.fits"), frame_bytes(1, &s.root, "Light")).unwrap();
+    assert!(frames(1), "{}", d.log());
+    role.set_password("second-pass-8R");
+    role.end_sessions();
+    std::fs::write(s.capture.join("k2.fits"), frame_bytes(2, &s.root, "Light")).unwrap();
+    assert!(
+        d.wait_log(
+            "the store refuses this daemon's login",
+            Duration::from_secs(60)
+        ),
+        "{}",
+        d.log()
+    );
+    assert_eq!(role.count("SELECT COUNT(*) FROM frames"), 1);
+    // The new password in the file: read at the next try, the kept frame recorded.
+    std::fs::write(&pw, "second-pass-8R\n").unwrap();
+    assert!(frames(2), "{}", d.log());
+    assert!(
+        d.wait_log("the store is back", Duration::from_secs(30)),
+        "{}",
+        d.log()
+    );
+    let log = d.stop();
+    let refused = log
+        .lines()
+        .find(|l| l.contains("the store refuses this daemon's login"))
+        .unwrap();
+    assert!(
+        refused.contains("ERROR")
+            && refused.contains("password authentication failed")
+            && refused.contains("SQLSTATE 28P01")
+            && refused.contains("[store] password_file"),
+        "{refused}"
+    );
+    assert_eq!(
+        log.matches("the store refuses this daemon's login").count(),
+        1,
+        "{log}"
+    );
+}

@@ -69,7 +69,12 @@ pub fn check_config(config: &Path, send_test: bool) -> Result<ExitCode> {
             }
             Ok(v) => println!("store: reached {location} (schema version {v})"),
             Err(e) => {
-                println!("error: {}", cfg.located("store.url", e.to_string()));
+                let key = if e.is_login_refused() && cfg.store.password_file.is_some() {
+                    "store.password_file"
+                } else {
+                    "store.url"
+                };
+                println!("error: {}", cfg.located(key, e.to_string()));
                 return Ok(ExitCode::from(1));
             }
         }
