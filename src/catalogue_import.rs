@@ -3,7 +3,8 @@
 //! so memory stays bounded whatever the catalogue's size; an index built from the same
 //! files (path, size, modification time) and the same column settings is reused. The
 //! index is built beside its place and renamed into it only when every file was read:
-//! a file that fails leaves the last good index where it was.
+//! a file that fails leaves the last good index where it was. `check` reads the files
+//! the same way and writes nothing (`check-config`).
 
 use std::path::{Path, PathBuf};
 
@@ -14,11 +15,11 @@ use crate::store::StoreError;
 
 #[derive(Debug, thiserror::Error)]
 pub enum ImportError {
-    #[error("catalogue file {path}: {source}")]
+    /// The system's reason in words, once (not chained as a source too).
+    #[error("catalogue file {path}: {}", crate::text::io_reason(.reason))]
     Read {
         path: PathBuf,
-        #[source]
-        source: std::io::Error,
+        reason: std::io::Error,
     },
     #[error(transparent)]
     Parse(#[from] CatalogueError),
@@ -72,9 +73,9 @@ pub fn index_path(cfg: &CatalogueConfig) -> Option<PathBuf> {
 }
 
 fn source_of(path: &Path) -> Result<SourceFile, ImportError> {
-    let meta = std::fs::metadata(path).map_err(|source| ImportError::Read {
+    let meta = std::fs::metadata(path).map_err(|reason| ImportError::Read {
         path: path.to_path_buf(),
-        source,
+        reason,
     })?;
     let mtime_ns = meta
         .modified()
@@ -88,26 +89,68 @@ fn source_of(path: &Path) -> Result<SourceFile, ImportError> {
     })
 }
 
-/// Read every configured file through as an import would, writing nothing: the stars
-/// they hold, or the first problem with its file, row and column (`check-config`).
-pub fn check(cfg: &CatalogueConfig) -> Result<u64, ImportError> {
+/// Stars one catalogue file holds, read through a batch at a time as an import reads
+/// it, writing nothing.
+fn count_stars(path: &Path, cfg: &CatalogueConfig) -> Result<u64, ImportError> {
+    let file = std::fs::File::open(path).map_err(|reason| ImportError::Read {
+        path: path.to_path_buf(),
+        reason,
+    })?;
+    let name = path.display().to_string();
+    let mut reader = crate::catalogue::Reader::open(&name, file, &cfg.columns)?;
+    let mut stars = 0u64;
+    loop {
+        let batch = reader.next_batch(BATCH_ROWS)?;
+        if batch.is_empty() {
+            return Ok(stars);
+        }
+        stars += batch.len() as u64;
+    }
+}
+
+/// What `check` found, having written nothing.
+#[derive(Debug, Clone)]
+pub struct Checked {
+    /// Where the index is (or would be built).
+    pub index: PathBuf,
+    /// Rows the files hold, read now (rows of one star in several bands count each).
+    pub stars: u64,
+    /// Whether the index there was built from these very files and settings (else the
+    /// first command that needs it builds it).
+    pub current: bool,
+}
+
+/// Every configured file read through as an import would, and the index looked at,
+/// without writing anything: every file's problem, not only the first. `Ok(None)` when
+/// no catalogue is configured.
+pub fn check(cfg: &CatalogueConfig) -> Result<Option<Checked>, Vec<ImportError>> {
+    let Some(index) = index_path(cfg) else {
+        return Ok(None);
+    };
+    let mut problems = Vec::new();
+    let mut sources = Vec::new();
     let mut stars = 0u64;
     for path in &cfg.files {
-        let file = std::fs::File::open(path).map_err(|source| ImportError::Read {
-            path: path.clone(),
-            source,
-        })?;
-        let name = path.display().to_string();
-        let mut reader = crate::catalogue::Reader::open(&name, file, &cfg.columns)?;
-        loop {
-            let batch = reader.next_batch(BATCH_ROWS)?;
-            if batch.is_empty() {
-                break;
+        let read = source_of(path).and_then(|source| Ok((source, count_stars(path, cfg)?)));
+        match read {
+            Ok((source, n)) => {
+                sources.push(source);
+                stars += n;
             }
-            stars += batch.len() as u64;
+            Err(e) => problems.push(e),
         }
     }
-    Ok(stars)
+    if !problems.is_empty() {
+        return Err(problems);
+    }
+    // Opened to read only: a look leaves the index as it was.
+    let current = index.exists()
+        && CatalogueIndex::open(&index).is_ok_and(|i| i.is_current(&sources, &settings_key(cfg)));
+    Ok(Some(Checked {
+        index,
+        stars,
+        current,
+    }))
 }
 
 /// Build the index if it is missing or stale (or `force`), and say what it holds.
@@ -134,16 +177,16 @@ pub fn ensure(cfg: &CatalogueConfig, force: bool) -> Result<Option<Imported>, Im
         }
     }
     if let Some(parent) = index.parent() {
-        std::fs::create_dir_all(parent).map_err(|source| ImportError::Read {
+        std::fs::create_dir_all(parent).map_err(|reason| ImportError::Read {
             path: parent.to_path_buf(),
-            source,
+            reason,
         })?;
     }
     let mut writer = IndexWriter::create(&index)?;
     for path in &cfg.files {
-        let file = std::fs::File::open(path).map_err(|source| ImportError::Read {
+        let file = std::fs::File::open(path).map_err(|reason| ImportError::Read {
             path: path.clone(),
-            source,
+            reason,
         })?;
         let name = path.display().to_string();
         let mut reader = crate::catalogue::Reader::open(&name, file, &cfg.columns)?;

@@ -37,13 +37,7 @@ pub struct Prepared {
 
 /// Where the report files go: `[report] folder`, else beside the store.
 pub fn report_folder(c: &Config) -> PathBuf {
-    c.report.folder.clone().unwrap_or_else(|| {
-        c.store
-            .path
-            .parent()
-            .unwrap_or(Path::new("."))
-            .join("reports")
-    })
+    c.report_folder()
 }
 
 /// The summary's settings from the configuration: the site's clock, and whether warned

@@ -476,3 +476,346 @@ fn a_moving_object_raises_its_alert_on_its_own_night() {
         "{message}"
     );
 }
+
+/// `check-config` on `config`: (success, stdout and stderr together).
+fn check_config(config: &Path, env: &[(&str, &Path)]) -> (bool, String) {
+    let out = Command::new(common::binary())
+        .args(["check-config", "--config"])
+        .arg(config)
+        .envs(env.iter().copied())
+        .output()
+        .unwrap();
+    (
+        out.status.success(),
+        format!(
+            "{}{}",
+            String::from_utf8_lossy(&out.stdout),
+            String::from_utf8_lossy(&out.stderr)
+        ),
+    )
+}
+
+/// What the machine lacks is said like every other problem: its key, its line, and the
+/// system's reason once, in words.
+#[test]
+fn check_config_names_what_the_machine_lacks_with_its_key_and_line() {
+    let s = site("");
+    let cfg = s.root.join("lacks.toml");
+    let r = s.root.display();
+    std::fs::write(
+        &cfg,
+        format!(
+            "[watch]\nfolders = [\"{r}/gone\"]\n[store]\npath = \"{r}/s.db\"\n[mail]\nto = [\"o@example.org\"]\npassword_file = \"{r}/no-password\"\n[catalogue]\nfiles = [\"{r}/stars.csv\"]\n"
+        ),
+    )
+    .unwrap();
+    let (ok, text) = check_config(&cfg, &[]);
+    assert!(!ok, "{text}");
+    for words in [
+        format!("error: line 2: watch.folders: {r}/gone does not exist"),
+        format!("error: line 7: mail.password_file: {r}/no-password: No such file or directory\n"),
+        format!("error: line 9: catalogue.files: catalogue file {r}/stars.csv: No such file or directory\n"),
+    ] {
+        assert!(text.contains(&words), "{words:?} not in: {text}");
+    }
+    assert!(!text.contains("os error"), "{text}");
+    assert_eq!(text.matches("No such file").count(), 2, "{text}");
+}
+
+/// The file's own mistakes, in words: a key given twice, a section given twice, a number
+/// too large for TOML, an unknown key with the nearest known one, an address.
+#[test]
+fn check_config_says_the_files_mistakes_in_words() {
+    let s = site("");
+    let cfg = s.root.join("mistakes.toml");
+    let said = |text: &str| {
+        std::fs::write(&cfg, text).unwrap();
+        let (ok, said) = check_config(&cfg, &[]);
+        assert!(!ok, "{said}");
+        said
+    };
+    let folders = format!("[watch]\nfolders = [\"{}\"]\n", s.capture.display());
+    let text = said(&format!("{folders}poll_seconds = 1\npoll_seconds = 2\n"));
+    assert!(
+        text.contains("line 4: watch.poll_seconds: given twice (first on line 3): keep one"),
+        "{text}"
+    );
+    let text = said(&format!(
+        "{folders}[site]\ntimezone = \"UTC\"\n[watch]\nsettle_seconds = 1\n"
+    ));
+    assert!(
+        text.contains("line 5: watch: [watch] is given twice (first on line 1)"),
+        "{text}"
+    );
+    let text = said(&format!(
+        "{folders}queue_limit = 99999999999999999999999\n[site]\ntimezone = \"Nowhere/Special\"\n"
+    ));
+    assert!(
+        text.contains("line 3: watch.queue_limit: 99999999999999999999999 is out of range: give a whole number from 1 to 1000000"),
+        "{text}"
+    );
+    assert!(text.contains("line 5: site.timezone:"), "{text}");
+    assert!(
+        !text.contains("i128") && !text.contains("(syntax)"),
+        "{text}"
+    );
+    let text = said(&format!(
+        "{folders}pol_seconds = 3\n[mail]\nto = [\"not-an-address\"]\n"
+    ));
+    assert!(
+        text.contains("line 3: watch.pol_seconds: unknown key; did you mean `poll_seconds`?"),
+        "{text}"
+    );
+    assert!(text.contains("line 5: mail.to:"), "{text}");
+    assert!(!text.contains("Invalid input"), "{text}");
+}
+
+/// Recipients without a server: the mail is written as .eml files, and check-config says
+/// where (the outbox writes it into the report folder).
+#[test]
+fn check_config_says_mail_without_a_server_is_written_to_files() {
+    let s = site("");
+    let cfg = s.root.join("files.toml");
+    let mut text = std::fs::read_to_string(&s.config).unwrap();
+    text.push_str(&format!(
+        "[mail]\nto = [\"observer@kestrel-ridge.example\"]\n[report]\nfolder = \"{}/reports\"\n",
+        s.root.display()
+    ));
+    std::fs::write(&cfg, &text).unwrap();
+    let (ok, said) = check_config(&cfg, &[]);
+    assert!(ok, "{said}");
+    let line = text.lines().position(|l| l.starts_with("to = ")).unwrap() + 1;
+    assert!(
+        said.contains(&format!(
+            "warning: line {line}: mail.to: no [mail] smtp_host: the morning summary and alerts are not sent but written as .eml files into {}/reports",
+            s.root.display()
+        )),
+        "{said}"
+    );
+}
+
+#[test]
+fn a_missing_configuration_names_the_example_to_start_from() {
+    let dir = tempfile::tempdir().unwrap();
+    let missing = dir.path().join("subwatch.toml");
+    let (ok, said) = check_config(&missing, &[]);
+    assert!(!ok);
+    assert!(said.contains("config/subwatch.toml"), "{said}");
+    assert_eq!(
+        said.matches(&*missing.to_string_lossy()).count(),
+        1,
+        "{said}"
+    );
+    assert!(!said.contains("os error"), "{said}");
+}
+
+/// check-config reads the catalogue as an import would, says what is wrong with its
+/// file, row and column, and writes no index (nor anything else).
+#[test]
+fn check_config_reads_the_catalogue_and_writes_nothing() {
+    let s = site("");
+    let home = s.root.join("home");
+    std::fs::create_dir_all(&home).unwrap();
+    let stars = s.root.join("stars.csv");
+    std::fs::write(
+        &stars,
+        "id,ra_deg,dec_deg,mag\nK1,10.0,20.0,11.2\nK2,10.1,20.1,12.5\n",
+    )
+    .unwrap();
+    let cfg = s.root.join("catalogue.toml");
+    let mut text = std::fs::read_to_string(&s.config).unwrap();
+    text.push_str(&format!("[catalogue]\nfiles = [\"{}\"]\n", stars.display()));
+    std::fs::write(&cfg, &text).unwrap();
+    let line = text.lines().count();
+    let env = [("HOME", home.as_path()), ("XDG_CACHE_HOME", home.as_path())];
+    let tree = || {
+        let mut all: Vec<String> = Vec::new();
+        let mut stack = vec![s.root.clone()];
+        while let Some(d) = stack.pop() {
+            for e in std::fs::read_dir(&d).unwrap() {
+                let p = e.unwrap().path();
+                if p.is_dir() {
+                    stack.push(p.clone());
+                }
+                all.push(p.display().to_string());
+            }
+        }
+        all.sort();
+        all
+    };
+    let before = tree();
+    let (ok, said) = check_config(&cfg, &env);
+    assert!(ok, "{said}");
+    assert!(said.contains("catalogue: 2 rows in 1 file(s) read without a problem; the first command that needs their index builds it in"), "{said}");
+    assert_eq!(tree(), before, "check-config wrote something");
+    // Built once, then said current.
+    let out = Command::new(common::binary())
+        .args(["catalogue", "import", "--config"])
+        .arg(&cfg)
+        .envs(env)
+        .output()
+        .unwrap();
+    assert!(out.status.success());
+    let (ok, said) = check_config(&cfg, &env);
+    assert!(ok && said.contains("is current"), "{said}");
+    // A bad row appended: said with its file, row and column, at the key's line.
+    let mut f = std::fs::OpenOptions::new()
+        .append(true)
+        .open(&stars)
+        .unwrap();
+    f.write_all(b"K3,BAD,NaN,1\n").unwrap();
+    let (ok, said) = check_config(&cfg, &env);
+    assert!(!ok, "{said}");
+    assert!(
+        said.contains(&format!(
+            "error: line {line}: catalogue.files: {}: row 3, column \"ra_deg\": \"BAD\" is not a number",
+            stars.display()
+        )),
+        "{said}"
+    );
+}
+
+/// A shared store reached without TLS is said loudly, at check-config and at the
+/// daemon's start, with the fix; a store on this machine (loopback) is not, since that
+/// traffic never leaves it.
+#[test]
+fn a_store_reached_unencrypted_is_said_loudly_unless_it_is_on_this_machine() {
+    let s = site("");
+    let base = std::fs::read_to_string(&s.config)
+        .unwrap()
+        .replace(&format!("[store]\npath = \"{}\"\n", s.db.display()), "");
+    let with_url = |name: &str, url: &str| {
+        let p = s.root.join(name);
+        std::fs::write(&p, format!("{base}[store]\nurl = \"{url}\"\n")).unwrap();
+        p
+    };
+    // A name that resolves nowhere (RFC 2606 reserves .invalid): the warning comes
+    // before the store is tried.
+    let remote = with_url(
+        "remote.toml",
+        "postgresql://subwatch@db.kestrel-ridge.invalid:5432/site",
+    );
+    let line = base.lines().count() + 2;
+    let (ok, said) = check_config(&remote, &[]);
+    assert!(!ok, "the store cannot be reached: {said}");
+    assert!(
+        said.contains(&format!("warning: line {line}: store.url: frames, verdicts and queued mail travel to db.kestrel-ridge.invalid UNENCRYPTED (no sslmode in the address)"))
+            && said.contains("Add ?sslmode=require to the address"),
+        "{said}"
+    );
+    let tls = with_url(
+        "tls.toml",
+        "postgresql://subwatch@db.kestrel-ridge.invalid:5432/site?sslmode=require",
+    );
+    assert!(!check_config(&tls, &[]).1.contains("UNENCRYPTED"));
+    let local = with_url("local.toml", "postgresql://subwatch@127.0.0.1:9/site");
+    let (_, said) = check_config(&local, &[]);
+    assert!(!said.contains("UNENCRYPTED"), "{said}");
+    assert!(
+        said.contains(&format!("error: line {line}: store.url:")),
+        "{said}"
+    );
+    // The daemon says it first thing, as a warning.
+    let d = common::daemon::Logged::start(&remote);
+    assert!(
+        d.wait_log("UNENCRYPTED", Duration::from_secs(20)),
+        "{}",
+        d.log()
+    );
+    let log = d.stop();
+    let said = log.lines().find(|l| l.contains("UNENCRYPTED")).unwrap();
+    assert!(
+        said.contains("WARN") && said.contains("store.url"),
+        "{said}"
+    );
+}
+
+/// The store's password changed mid-night (PostgreSQL, a role that logs in with a
+/// password): the daemon names the refused login (SQLSTATE 28P01, PostgreSQL's
+/// invalid_password) rather than a broken connection, keeps the frames, and records them
+/// once the password file holds the new password.
+#[test]
+fn a_store_password_changed_mid_night_is_named_and_taken_up_from_the_file() {
+    let role = common::postgres::PasswordRole::new("first-pass-7Q");
+    let s = site("");
+    let pw = s.root.join("db-password");
+    std::fs::write(&pw, "first-pass-7Q\n").unwrap();
+    use std::os::unix::fs::PermissionsExt;
+    std::fs::set_permissions(&pw, std::fs::Permissions::from_mode(0o600)).unwrap();
+    let base = std::fs::read_to_string(&s.config)
+        .unwrap()
+        .replace(&format!("[store]\npath = \"{}\"\n", s.db.display()), "");
+    let cfg = s.root.join("shared.toml");
+    std::fs::write(
+        &cfg,
+        format!(
+            "{base}[store]\nurl = \"{}\"\npassword_file = \"{}\"\n",
+            role.url,
+            pw.display()
+        ),
+    )
+    .unwrap();
+    let (ok, said) = check_config(&cfg, &[]);
+    assert!(ok, "{said}");
+    // A wrong password is named at check-config, at the password file's line.
+    std::fs::write(&pw, "wrong\n").unwrap();
+    let (ok, said) = check_config(&cfg, &[]);
+    let line = base.lines().count() + 3;
+    assert!(!ok, "{said}");
+    assert!(
+        said.contains(&format!("error: line {line}: store.password_file: store {}: the server refused the login: password authentication failed for user \"{}\" (SQLSTATE 28P01 invalid_password)", role.url, role.role)),
+        "{said}"
+    );
+    std::fs::write(&pw, "first-pass-7Q\n").unwrap();
+
+    let d = common::daemon::Logged::start(&cfg);
+    let frames = |n: i64| {
+        let start = Instant::now();
+        while start.elapsed() < Duration::from_secs(60) {
+            if role.count("SELECT COUNT(*) FROM frames") >= n {
+                return true;
+            }
+            std::thread::sleep(Duration::from_millis(200));
+        }
+        false
+    };
+    std::fs::write(s.capture.join("k1.fits"), frame_bytes(1, &s.root, "Light")).unwrap();
+    assert!(frames(1), "{}", d.log());
+    role.set_password("second-pass-8R");
+    role.end_sessions();
+    std::fs::write(s.capture.join("k2.fits"), frame_bytes(2, &s.root, "Light")).unwrap();
+    assert!(
+        d.wait_log(
+            "the store refuses this daemon's login",
+            Duration::from_secs(60)
+        ),
+        "{}",
+        d.log()
+    );
+    assert_eq!(role.count("SELECT COUNT(*) FROM frames"), 1);
+    // The new password in the file: read at the next try, the kept frame recorded.
+    std::fs::write(&pw, "second-pass-8R\n").unwrap();
+    assert!(frames(2), "{}", d.log());
+    assert!(
+        d.wait_log("the store is back", Duration::from_secs(30)),
+        "{}",
+        d.log()
+    );
+    let log = d.stop();
+    let refused = log
+        .lines()
+        .find(|l| l.contains("the store refuses this daemon's login"))
+        .unwrap();
+    assert!(
+        refused.contains("ERROR")
+            && refused.contains("password authentication failed")
+            && refused.contains("SQLSTATE 28P01")
+            && refused.contains("[store] password_file"),
+        "{refused}"
+    );
+    assert_eq!(
+        log.matches("the store refuses this daemon's login").count(),
+        1,
+        "{log}"
+    );
+}

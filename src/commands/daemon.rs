@@ -9,6 +9,8 @@ use anyhow::{Context, Result};
 pub fn watch(config: &Path) -> Result<ExitCode> {
     let cfg = subwatch::config::load(config)?;
     let (errors, warnings) = cfg.check_environment();
+    // Said before anything else, where the start's log begins (a store reached
+    // unencrypted, mail written to files).
     for w in &warnings {
         tracing::warn!("{w}");
     }
@@ -20,32 +22,43 @@ pub fn watch(config: &Path) -> Result<ExitCode> {
     Ok(ExitCode::SUCCESS)
 }
 
-/// `subwatch check-config`: every setting and the machine checked; a test mail on request.
+/// `subwatch check-config`: every setting and the machine checked, each problem with its
+/// key and line; the catalogue read and the shared store reached, nothing written; a test
+/// mail on request.
 pub fn check_config(config: &Path, send_test: bool) -> Result<ExitCode> {
     let cfg = subwatch::config::load(config)?;
-    let (errors, warnings) = cfg.check_environment();
+    let (mut errors, warnings) = cfg.environment_problems();
     for w in &warnings {
         outln!("warning: {w}")?;
+    }
+    // Read and parsed as an import would, and the index only looked at: building it is
+    // the first daemon's (or `catalogue import`'s) to do.
+    match subwatch::catalogue_import::check(&cfg.catalogue) {
+        Ok(None) => {}
+        Ok(Some(c)) => outln!(
+            "catalogue: {} rows in {} file(s) read without a problem; {}",
+            c.stars,
+            cfg.catalogue.files.len(),
+            if c.current {
+                format!("their index in {} is current", c.index.display())
+            } else {
+                format!(
+                    "the first command that needs their index builds it in {} (the daemon at its start, or `subwatch catalogue import` now)",
+                    c.index.display()
+                )
+            }
+        )?,
+        Err(problems) => errors.extend(
+            problems
+                .iter()
+                .map(|e| cfg.located("catalogue.files", e.to_string())),
+        ),
     }
     for e in &errors {
         outln!("error: {e}")?;
     }
     if !errors.is_empty() {
         return Ok(ExitCode::from(1));
-    }
-    // The catalogue read through, nothing written (the index is built by the daemon or
-    // `catalogue import`).
-    if !cfg.catalogue.files.is_empty() {
-        match subwatch::catalogue_import::check(&cfg.catalogue) {
-            Ok(rows) => outln!(
-                "catalogue: {rows} rows in {} file(s) read without a problem",
-                cfg.catalogue.files.len()
-            )?,
-            Err(e) => {
-                outln!("error: catalogue: {e}")?;
-                return Ok(ExitCode::from(1));
-            }
-        }
     }
     if cfg.store.url.is_some() {
         // A shared store is reached now (address, password, TLS), and left as it is.
@@ -56,7 +69,12 @@ pub fn check_config(config: &Path, send_test: bool) -> Result<ExitCode> {
             }
             Ok(v) => outln!("store: reached {location} (schema version {v})")?,
             Err(e) => {
-                outln!("error: {e}")?;
+                let key = if e.is_login_refused() && cfg.store.password_file.is_some() {
+                    "store.password_file"
+                } else {
+                    "store.url"
+                };
+                outln!("error: {}", cfg.located(key, e.to_string()))?;
                 return Ok(ExitCode::from(1));
             }
         }

@@ -371,6 +371,9 @@ pub struct Config {
     pub calibration: CalibrationConfig,
     pub catalogue: CatalogueConfig,
     pub rules: Vec<RuleSpec>,
+    /// The line of every key the file gives ("section.key") and of its sections, for
+    /// the problems found after reading (`check_environment`, the store reached).
+    pub lines: std::collections::BTreeMap<String, usize>,
     /// The file this configuration was read from.
     pub source: Option<PathBuf>,
 }
@@ -394,10 +397,11 @@ impl std::fmt::Display for ConfigProblem {
 
 #[derive(Debug, thiserror::Error)]
 pub enum ConfigError {
-    #[error("cannot read the configuration file {path}: {source}")]
+    /// The system's reason is said in words, once (it is not chained as a source too).
+    #[error("cannot read the configuration file {path}: {}{}", crate::text::io_reason(.reason), if .reason.kind() == std::io::ErrorKind::NotFound { EXAMPLE_HINT } else { "" })]
     Read {
         path: PathBuf,
-        source: std::io::Error,
+        reason: std::io::Error,
     },
     #[error("{path}: {} problem(s):\n  {}", .problems.len(), .problems.iter().map(|p| p.to_string()).collect::<Vec<_>>().join("\n  "))]
     Invalid {
@@ -406,12 +410,15 @@ pub enum ConfigError {
     },
 }
 
+/// Where a new user finds a configuration to start from.
+const EXAMPLE_HINT: &str = ". Start from the example, config/subwatch.toml in subwatch's source (it documents every key): copy it there and edit it";
+
 /// Read, parse and validate a configuration file. Checks that need the file system
 /// (folders exist, store writable) are in [`Config::check_environment`].
 pub fn load(path: &Path) -> Result<Config, ConfigError> {
-    let text = std::fs::read_to_string(path).map_err(|source| ConfigError::Read {
+    let text = std::fs::read_to_string(path).map_err(|reason| ConfigError::Read {
         path: path.to_path_buf(),
-        source,
+        reason,
     })?;
     // Relative paths in the file are relative to the file's own folder.
     let folder = path
@@ -445,5 +452,28 @@ impl Config {
     /// The verdict rules of the file.
     pub fn rule_specs(&self) -> Vec<RuleSpec> {
         self.rules.clone()
+    }
+
+    /// A problem found after reading, at the line of `key` ("section.key") where the file
+    /// gives it, else at its section's line where the file has that section.
+    pub fn located(&self, key: &str, message: String) -> ConfigProblem {
+        let section = key.split('.').next().unwrap_or(key);
+        ConfigProblem {
+            key: key.to_string(),
+            line: self.lines.get(key).or(self.lines.get(section)).copied(),
+            message,
+        }
+    }
+
+    /// Where the summary's files go, and mail without a server (as .eml files):
+    /// `[report] folder`, else a `reports` folder beside the store.
+    pub fn report_folder(&self) -> PathBuf {
+        self.report.folder.clone().unwrap_or_else(|| {
+            self.store
+                .path
+                .parent()
+                .unwrap_or(Path::new("."))
+                .join("reports")
+        })
     }
 }

@@ -1,15 +1,19 @@
-//! Reading the configuration text: every known key into its type, with its line and
-//! what was expected in words; unknown keys; the `[[rules]]` tables; and the checks that
-//! involve more than one key. Longer than most modules because `parse` is the table of
-//! every key the file may hold, one entry each, in the order of `config/subwatch.toml`.
+//! Reading the configuration text: the TOML itself (`syntax`: a number too large for it
+//! read on as its key's problem, a duplicate or any other mistake named with its key and
+//! line), every known key into its type with its line and what was expected in words
+//! (`sections`, one function per section; `rules`, the `[[rules]]` tables), unknown keys
+//! with the known key nearest to them, and the checks that involve more than one key.
+//! Longer than most modules for its tests, one for each kind of mistake a user makes.
 
+mod rules;
+mod sections;
+mod syntax;
+
+use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
-
-use lettre::message::Mailbox;
 
 use super::*;
 use crate::night::AnomalyKind;
-use crate::rules::RuleSpec;
 
 /// Walks the parsed TOML, reading each known key into its type and noting every problem
 /// with its key and line; what it was never asked for is an unknown key.
@@ -20,6 +24,12 @@ struct Reader<'a> {
     problems: Vec<ConfigProblem>,
     /// Keys read, as "section.key" (or "section" for a whole section).
     known: Vec<String>,
+    /// The line of every key the file gives, as "section.key", and of every known
+    /// section it has.
+    lines: BTreeMap<String, usize>,
+    /// Numbers too large for TOML, standing in as dates until their key says what it
+    /// takes (see `syntax`).
+    oversized: Vec<syntax::Oversized>,
 }
 
 impl<'a> Reader<'a> {
@@ -37,7 +47,27 @@ impl<'a> Reader<'a> {
 
     fn value(&mut self, section: &str, key: &str) -> Option<&'a toml::Value> {
         self.known.push(format!("{section}.{key}"));
-        self.root.get(section)?.as_table()?.get(key)
+        let table = self.root.get(section)?.as_table()?;
+        if !self.lines.contains_key(section) {
+            if let Some(line) = find_line(self.text, None, section) {
+                self.lines.insert(section.to_string(), line);
+            }
+        }
+        let v = table.get(key)?;
+        if let Some(line) = find_line(self.text, Some(section), key) {
+            self.lines.insert(format!("{section}.{key}"), line);
+        }
+        Some(v)
+    }
+
+    /// The number too large for TOML that the file gives `key`, once.
+    fn take_oversized(&mut self, key: &str) -> Option<String> {
+        let o = self
+            .oversized
+            .iter_mut()
+            .find(|o| !o.used && o.key.as_deref() == Some(key))?;
+        o.used = true;
+        Some(o.literal.clone())
     }
 
     /// A value read by `convert` (which says what it expected when it fails), or the
@@ -54,8 +84,11 @@ impl<'a> Reader<'a> {
             Some(v) => match convert(v) {
                 Ok(t) => t,
                 Err(expected) => {
-                    let found = shown_value(v);
-                    self.problem(section, key, format!("{found} is not {expected}"));
+                    let message = match self.take_oversized(&format!("{section}.{key}")) {
+                        Some(literal) => format!("{literal} is out of range: give {expected}"),
+                        None => format!("{} is not {expected}", shown_value(v)),
+                    };
+                    self.problem(section, key, message);
                     default
                 }
             },
@@ -141,6 +174,27 @@ impl<'a> Reader<'a> {
         })
     }
 
+    /// A list of anomaly kinds, each by its name.
+    fn kinds(&mut self, section: &str, key: &str, default: Vec<AnomalyKind>) -> Vec<AnomalyKind> {
+        self.read(section, key, default, |v| {
+            let expected = || {
+                format!(
+                    "a list of anomaly kinds from {}",
+                    AnomalyKind::NAMES.join(", ")
+                )
+            };
+            v.as_array()
+                .ok_or_else(expected)?
+                .iter()
+                .map(|k| {
+                    k.as_str().and_then(AnomalyKind::from_name).ok_or_else(|| {
+                        format!("{}: {} is not one of them", expected(), shown_value(k))
+                    })
+                })
+                .collect()
+        })
+    }
+
     fn absolute(&self, p: &str) -> PathBuf {
         let p = PathBuf::from(p);
         if p.is_absolute() {
@@ -156,18 +210,44 @@ impl<'a> Reader<'a> {
     }
 
     /// Every section the file has that nothing read, and every key in a known section
-    /// that nothing read.
+    /// that nothing read, each with the known name it is nearest to.
     fn unknown(&mut self) {
-        let sections: Vec<&str> = SECTIONS.to_vec();
+        // Every known key, as (section, key).
+        let everywhere: Vec<(String, String)> = self
+            .known
+            .iter()
+            .filter_map(|k| k.split_once('.'))
+            .map(|(s, k)| (s.to_string(), k.to_string()))
+            .collect();
+        let home_of = |key: &str| -> Vec<&str> {
+            everywhere
+                .iter()
+                .filter(|(_, k)| k == key)
+                .map(|(s, _)| s.as_str())
+                .collect()
+        };
         for (section, value) in self.root {
             if section == "rules" {
                 continue;
             }
-            if !sections.contains(&section.as_str()) {
+            if !SECTIONS.contains(&section.as_str()) {
+                let line = find_line(self.text, None, section);
+                let homes = home_of(section);
+                let message = if !value.is_table() && !homes.is_empty() {
+                    format!(
+                        "a key outside any section: `{section}` belongs in [{}] (move it below that line)",
+                        homes.join("] or [")
+                    )
+                } else {
+                    let hint = crate::text::nearest(section, &SECTIONS)
+                        .map(|s| format!("; did you mean [{s}]?"))
+                        .unwrap_or_default();
+                    format!("unknown section{hint} (known: {})", SECTIONS.join(", "))
+                };
                 self.problems.push(ConfigProblem {
                     key: section.clone(),
-                    line: find_line(self.text, None, section),
-                    message: format!("unknown section (known: {})", sections.join(", ")),
+                    line,
+                    message,
                 });
                 continue;
             }
@@ -179,23 +259,61 @@ impl<'a> Reader<'a> {
                 });
                 continue;
             };
-            let known: Vec<String> = self
-                .known
+            let known: Vec<&str> = everywhere
                 .iter()
-                .filter_map(|k| k.strip_prefix(&format!("{section}.")).map(String::from))
+                .filter(|(s, _)| s == section)
+                .map(|(_, k)| k.as_str())
                 .collect();
             for key in inner.keys() {
-                if !known.contains(key) {
-                    self.problems.push(ConfigProblem {
-                        key: format!("{section}.{key}"),
-                        line: find_line(self.text, Some(section), key),
-                        message: format!(
-                            "unknown key (known in [{section}]: {})",
-                            known.join(", ")
-                        ),
-                    });
+                if known.contains(&key.as_str()) {
+                    continue;
                 }
+                let elsewhere = home_of(key);
+                let hint = match crate::text::nearest(key, &known) {
+                    Some(k) => format!("; did you mean `{k}`?"),
+                    None if !elsewhere.is_empty() => {
+                        format!("; `{key}` belongs in [{}]", elsewhere.join("] or ["))
+                    }
+                    None => String::new(),
+                };
+                self.problems.push(ConfigProblem {
+                    key: format!("{section}.{key}"),
+                    line: find_line(self.text, Some(section), key),
+                    message: format!(
+                        "unknown key{hint} (known in [{section}]: {})",
+                        known.join(", ")
+                    ),
+                });
             }
+        }
+    }
+
+    /// Numbers too large for TOML that no key's reading took (an unknown key's, or one
+    /// deep in a list): said with the range a number in the file can have.
+    fn oversized_left(&mut self) {
+        for o in std::mem::take(&mut self.oversized) {
+            if o.used {
+                continue;
+            }
+            let key = o.key.unwrap_or_else(|| "(syntax)".into());
+            let prefix = format!("{key}.");
+            if self
+                .problems
+                .iter()
+                .any(|p| p.key == key || p.key.starts_with(&prefix))
+            {
+                continue;
+            }
+            let range = if o.whole {
+                "whole numbers in the file run from -9223372036854775808 to 9223372036854775807"
+            } else {
+                "numbers in the file run up to about ±1.8e308"
+            };
+            self.problems.push(ConfigProblem {
+                key,
+                line: Some(o.line),
+                message: format!("{} is out of range: {range}", o.literal),
+            });
         }
     }
 }
@@ -217,18 +335,6 @@ const SECTIONS: [&str; 14] = [
     "catalogue",
 ];
 
-/// A rig's name goes into every record and the site's summary: plain characters only,
-/// so it reads the same in a mail subject, a file name and a database.
-/// A PostgreSQL address the client can read, with no password in it.
-fn postgres_url_ok(url: &str) -> bool {
-    (url.starts_with("postgresql://") || url.starts_with("postgres://"))
-        && url
-            .replace("sslmode=verify-full", "sslmode=require")
-            .replace("sslmode=verify-ca", "sslmode=require")
-            .parse::<postgres::Config>()
-            .is_ok_and(|c| c.get_password().is_none())
-}
-
 /// A rig name: 1 to 64 letters, digits, spaces, dots, dashes or underscores.
 pub fn rig_name_ok(s: &str) -> bool {
     let t = s.trim();
@@ -237,72 +343,6 @@ pub fn rig_name_ok(s: &str) -> bool {
         && s.chars().count() <= 64
         && s.chars()
             .all(|c| c.is_alphanumeric() || matches!(c, ' ' | '.' | '-' | '_'))
-}
-
-/// `[catalogue]`: the files, the index, and which columns hold what.
-fn read_catalogue(r: &mut Reader<'_>) -> CatalogueConfig {
-    let d = crate::catalogue::Columns::default();
-    let files: Vec<PathBuf> = r
-        .texts("catalogue", "files", Vec::new(), "a list of file paths")
-        .iter()
-        .map(|p| r.absolute(p))
-        .collect();
-    let column = |r: &mut Reader<'_>, key: &str, default: &str| {
-        r.text("catalogue", key, "a column name (text)")
-            .unwrap_or_else(|| default.to_string())
-    };
-    let names = |v: &toml::Value| -> Result<Vec<(String, String)>, String> {
-        let expected = "a table of names, such as { V = \"vmag\", R = \"rmag\" }";
-        v.as_table()
-            .ok_or_else(|| expected.to_string())?
-            .iter()
-            .map(|(k, v)| {
-                v.as_str()
-                    .filter(|s| !s.trim().is_empty())
-                    .map(|s| (k.clone(), s.to_string()))
-                    .ok_or_else(|| expected.to_string())
-            })
-            .collect()
-    };
-    let magnitudes = r.read("catalogue", "magnitudes", Vec::new(), names);
-    let mags = if magnitudes.is_empty() {
-        vec![(column(r, "mag_column", "mag"), None)]
-    } else {
-        magnitudes
-            .into_iter()
-            .map(|(band, col)| (col, Some(band)))
-            .collect()
-    };
-    let columns = crate::catalogue::Columns {
-        ra: column(r, "ra_column", &d.ra),
-        dec: column(r, "dec_column", &d.dec),
-        mags,
-        id: column(r, "id_column", &d.id),
-        band: column(r, "band_column", &d.band),
-        pm_ra: column(r, "pm_ra_column", &d.pm_ra),
-        pm_dec: column(r, "pm_dec_column", &d.pm_dec),
-        epoch: r.number(
-            "catalogue",
-            "epoch",
-            d.epoch,
-            (1800.0, 2200.0),
-            "a Julian year such as 2000.0 or 2016.0",
-        ),
-        file_band: r.text("catalogue", "band", "a band name (text), such as \"V\""),
-    };
-    CatalogueConfig {
-        files,
-        index: r.path("catalogue", "index"),
-        columns,
-        filter_bands: r.read("catalogue", "filter_bands", Vec::new(), names),
-        search_deg: r.number(
-            "catalogue",
-            "search_deg",
-            1.0,
-            (0.0, 10.0),
-            "degrees from 0 to 10",
-        ),
-    }
 }
 
 /// A number from an integer or a float.
@@ -341,450 +381,34 @@ pub fn parse_summary_time(s: &str) -> Option<SummaryTime> {
 
 /// Parse configuration text; relative paths are taken from `base` (the file's folder).
 pub fn parse(text: &str, base: &Path) -> Result<Config, Vec<ConfigProblem>> {
-    let root: toml::Table = text.parse().map_err(|e: toml::de::Error| {
-        vec![ConfigProblem {
-            key: "(syntax)".into(),
-            line: e.span().map(|s| line_of(text, s.start)),
-            message: e.message().to_string(),
-        }]
-    })?;
+    let (root, oversized) = syntax::table(text).map_err(|p| vec![p])?;
     let mut r = Reader {
         root: &root,
         text,
         base,
         problems: Vec::new(),
         known: Vec::new(),
+        lines: BTreeMap::new(),
+        oversized,
     };
-    let d = Config::default();
-    let secs = |range: &str| format!("a number of seconds {range}");
-
-    let watch = WatchConfig {
-        folders: r
-            .texts(
-                "watch",
-                "folders",
-                Vec::new(),
-                "a list of folders (such as [\"/srv/capture\"])",
-            )
-            .iter()
-            .map(|f| r.absolute(f))
-            .collect(),
-        poll_seconds: r.number(
-            "watch",
-            "poll_seconds",
-            d.watch.poll_seconds,
-            (0.0, 86_400.0),
-            &secs("from 0 (file events) to 86400"),
-        ),
-        settle_seconds: r.number(
-            "watch",
-            "settle_seconds",
-            d.watch.settle_seconds,
-            (0.0, 3600.0),
-            &secs("from 0 to 3600"),
-        ),
-        include: r.texts(
-            "watch",
-            "include",
-            d.watch.include.clone(),
-            "a list of file-name patterns (such as [\"*.fits\"])",
-        ),
-        exclude: r.texts(
-            "watch",
-            "exclude",
-            d.watch.exclude.clone(),
-            "a list of file-name patterns (such as [\"*_preview*\"])",
-        ),
-        calibration_folders: r.texts(
-            "watch",
-            "calibration_folders",
-            d.watch.calibration_folders.clone(),
-            "a list of folder names (such as [\"darks\", \"flats\"])",
-        ),
-        workers: r.whole(
-            "watch",
-            "workers",
-            0,
-            (0, 256),
-            "a whole number of workers from 0 (one per core) to 256",
-        ) as usize,
-        rescan_seconds: r.number(
-            "watch",
-            "rescan_seconds",
-            d.watch.rescan_seconds,
-            (1.0, 86_400.0),
-            &secs("from 1 to 86400"),
-        ),
-        queue_limit: r.whole(
-            "watch",
-            "queue_limit",
-            d.watch.queue_limit as u64,
-            (1, 1_000_000),
-            "a whole number from 1 to 1000000",
-        ) as usize,
-        checks_seconds: r.number(
-            "watch",
-            "checks_seconds",
-            d.watch.checks_seconds,
-            (1.0, 3600.0),
-            &secs("from 1 to 3600"),
-        ),
-    };
-    let path = r.path("store", "path");
-    let url: Option<String> = r.read("store", "url", None, |v| {
-        v.as_str()
-            .filter(|s| postgres_url_ok(s))
-            .map(|s| Some(s.to_string()))
-            .ok_or_else(|| {
-                "a PostgreSQL address \"postgresql://USER@HOST:PORT/DATABASE\", without a password (that goes in password_file)"
-                    .to_string()
-            })
-    });
-    if url.is_some() && path.is_some() {
-        r.problem(
-            "store",
-            "url",
-            "give path (an SQLite file on this PC) or url (a PostgreSQL database), not both".into(),
-        );
-    }
-    let password_file = r.path("store", "password_file");
-    if password_file.is_some() && url.is_none() {
-        r.problem(
-            "store",
-            "password_file",
-            "only a PostgreSQL store (url) takes a password".into(),
-        );
-    }
-    let ca_file = r.path("store", "ca_file");
-    if ca_file.is_some() && url.is_none() {
-        r.problem(
-            "store",
-            "ca_file",
-            "only a PostgreSQL store (url) is reached over TLS".into(),
-        );
-    }
-    let store = StoreConfig {
-        path: path.unwrap_or_else(|| r.absolute("subwatch.db")),
-        url,
-        password_file,
-        ca_file,
-    };
-    let rig = RigConfig {
-        name: r.read("rig", "name", String::new(), |v| {
-            v.as_str()
-                .filter(|s| rig_name_ok(s))
-                .map(str::to_string)
-                .ok_or_else(|| {
-                    "a name of 1 to 64 letters, digits, spaces, dots, dashes or underscores, unique at the site"
-                        .to_string()
-                })
-        }),
-    };
-    let site = SiteConfig {
-        latitude: r.optional_number(
-            "site",
-            "latitude",
-            (-90.0, 90.0),
-            "a latitude in degrees from -90 to 90 (north positive)",
-        ),
-        longitude: r.optional_number(
-            "site",
-            "longitude",
-            (-180.0, 360.0),
-            "a longitude in degrees from -180 to 360 (east positive)",
-        ),
-        elevation_m: r.number(
-            "site",
-            "elevation_m",
-            0.0,
-            (-500.0, 9000.0),
-            "an elevation in metres from -500 to 9000",
-        ),
-        timezone: r.read("site", "timezone", chrono_tz::UTC, |v| {
-            v.as_str()
-                .and_then(|s| s.parse().ok())
-                .ok_or_else(|| "an IANA time-zone name (such as \"Europe/Madrid\")".to_string())
-        }),
-    };
-    let positive = "a positive number";
-    let optics = OpticsConfig {
-        focal_length_mm: r.optional_number(
-            "optics",
-            "focal_length_mm",
-            (1e-3, 1e6),
-            "a focal length in mm (a positive number)",
-        ),
-        pixel_size_um: r.optional_number(
-            "optics",
-            "pixel_size_um",
-            (1e-3, 1e4),
-            "a pixel size in micrometres (a positive number)",
-        ),
-        gain_e_per_adu: r.optional_number("optics", "gain_e_per_adu", (1e-6, 1e6), positive),
-        saturation_adu: r.optional_number("optics", "saturation_adu", (1e-6, 1e20), positive),
-    };
-    let measure = MeasureConfig {
-        max_pixels: r.whole(
-            "measure",
-            "max_pixels",
-            d.measure.max_pixels,
-            (1, 1 << 40),
-            "a whole number of pixels of 1 or more",
-        ),
-        detect_sigma: r.number(
-            "measure",
-            "detect_sigma",
-            d.measure.detect_sigma,
-            (2.0, 100.0),
-            "a number from 2 to 100",
-        ),
-        reader_memory_mb: r.whole(
-            "measure",
-            "reader_memory_mb",
-            0,
-            (0, 1 << 30),
-            "a whole number of MiB (0 = automatic)",
-        ),
-        reader_timeout_seconds: r.number(
-            "measure",
-            "reader_timeout_seconds",
-            d.measure.reader_timeout_seconds,
-            (1.0, 86_400.0),
-            &secs("from 1 to 86400"),
-        ),
-    };
-    let actions = ActionsConfig {
-        accepted_lists: r.flag("actions", "accepted_lists", false),
-        lists_folder: r.path("actions", "lists_folder"),
-        stack_warned: r.flag("actions", "stack_warned", true),
-        move_rejected: r.flag("actions", "move_rejected", false),
-        rejected_folder: r.read(
-            "actions",
-            "rejected_folder",
-            d.actions.rejected_folder.clone(),
-            |v| {
-                v.as_str()
-                    .filter(|s| !s.is_empty() && !s.contains(['/', '\\']) && !s.starts_with('.'))
-                    .map(String::from)
-                    .ok_or_else(|| {
-                        "a plain folder name (no slashes, not hidden), such as \"rejected\""
-                            .to_string()
-                    })
-            },
-        ),
-    };
-    let address =
-        "an e-mail address such as \"observer@example.org\" or \"Observer <observer@example.org>\"";
-    let mail = MailConfig {
-        smtp_host: r.text(
-            "mail",
-            "smtp_host",
-            "a server name (such as \"mail.example.org\")",
-        ),
-        smtp_port: r.read("mail", "smtp_port", None, |v| {
-            v.as_integer()
-                .and_then(|p| u16::try_from(p).ok())
-                .filter(|p| *p > 0)
-                .map(Some)
-                .ok_or_else(|| "a port number from 1 to 65535 (such as 587)".to_string())
-        }),
-        security: r.read("mail", "security", Security::default(), |v| {
-            match v.as_str() {
-                Some("starttls") => Ok(Security::StartTls),
-                Some("tls") => Ok(Security::Tls),
-                Some("none") => Ok(Security::None),
-                _ => Err("one of \"starttls\", \"tls\", \"none\"".to_string()),
-            }
-        }),
-        username: r.text("mail", "username", "a login name (text)"),
-        password_file: r.path("mail", "password_file"),
-        ca_file: r.path("mail", "ca_file"),
-        from: r.read("mail", "from", None, |v| {
-            v.as_str()
-                .and_then(|s| s.parse::<Mailbox>().ok())
-                .map(Some)
-                .ok_or_else(|| address.to_string())
-        }),
-        to: r.read("mail", "to", Vec::new(), |v| {
-            let list = v
-                .as_array()
-                .ok_or_else(|| format!("a list of addresses ({address})"))?;
-            list.iter()
-                .map(|a| {
-                    let s = a
-                        .as_str()
-                        .ok_or_else(|| format!("a list of addresses ({address})"))?;
-                    s.parse::<Mailbox>()
-                        .map_err(|e| format!("a list of addresses: {s:?} is not {address} ({e})"))
-                })
-                .collect()
-        }),
-        summary_time: r.read("mail", "summary_time", None, |v| {
-            v.as_str()
-                .and_then(parse_summary_time)
-                .map(Some)
-                .ok_or_else(|| {
-                    "a time of day before noon such as \"06:30\" (24-hour clock), or \"dawn\""
-                        .to_string()
-                })
-        }),
-        send_password_unencrypted: r.flag("mail", "send_password_unencrypted", false),
-        summary_of_site: r.read("mail", "summary_of", false, |v| match v.as_str() {
-            Some("rig") => Ok(false),
-            Some("site") => Ok(true),
-            _ => Err("\"rig\" (this rig's frames) or \"site\" (every rig sharing the store; one daemon sends it)".to_string()),
-        }),
-    };
-    let alerts = AlertsConfig {
-        enabled: r.flag("alerts", "enabled", true),
-        stopped_minutes: r.number(
-            "alerts",
-            "stopped_minutes",
-            d.alerts.stopped_minutes,
-            (1.0, 1440.0),
-            "a number of minutes from 1 to 1440",
-        ),
-        reject_streak: r.whole(
-            "alerts",
-            "reject_streak",
-            d.alerts.reject_streak as u64,
-            (1, 10_000),
-            "a whole number of frames of 1 or more",
-        ) as usize,
-        min_free_gb: r.number(
-            "alerts",
-            "min_free_gb",
-            d.alerts.min_free_gb,
-            (0.0, 1e6),
-            "a number of GB of 0 or more",
-        ),
-        repeat_minutes: r.number(
-            "alerts",
-            "repeat_minutes",
-            d.alerts.repeat_minutes,
-            (0.0, 10_080.0),
-            "a number of minutes from 0 to 10080",
-        ),
-        max_per_night: r.whole(
-            "alerts",
-            "max_per_night",
-            d.alerts.max_per_night as u64,
-            (0, 10_000),
-            "a whole number of alerts",
-        ) as usize,
-        anomaly_kinds: r.read(
-            "alerts",
-            "anomaly_kinds",
-            d.alerts.anomaly_kinds.clone(),
-            |v| {
-                let expected = || {
-                    format!(
-                        "a list of anomaly kinds from {}",
-                        AnomalyKind::NAMES.join(", ")
-                    )
-                };
-                v.as_array()
-                    .ok_or_else(expected)?
-                    .iter()
-                    .map(|k| {
-                        k.as_str().and_then(AnomalyKind::from_name).ok_or_else(|| {
-                            format!("{}: {} is not one of them", expected(), shown_value(k))
-                        })
-                    })
-                    .collect()
-            },
-        ),
-    };
-    let report = ReportConfig {
-        folder: r.path("report", "folder"),
-    };
-    let web = WebConfig {
-        listen: r.read("web", "listen", None, |v| {
-            v.as_str()
-                .and_then(|s| s.parse::<std::net::SocketAddr>().ok())
-                .map(Some)
-                .ok_or_else(|| {
-                    "an address and port such as \"127.0.0.1:8480\" (an IPv6 address in brackets: \"[::1]:8480\")"
-                        .to_string()
-                })
-        }),
-        token_file: r.path("web", "token_file"),
-        open_without_token: r.flag("web", "open_without_token", false),
-    };
-    let kinds_expected = || {
-        format!(
-            "a list of anomaly kinds from {}",
-            AnomalyKind::NAMES.join(", ")
-        )
-    };
-    let voevent = VoEventConfig {
-        folder: r.path("voevent", "folder"),
-        kinds: r.read(
-            "voevent",
-            "kinds",
-            VoEventConfig::default().kinds,
-            |v| {
-                v.as_array()
-                    .ok_or_else(kinds_expected)?
-                    .iter()
-                    .map(|k| {
-                        k.as_str().and_then(AnomalyKind::from_name).ok_or_else(|| {
-                            format!("{}: {} is not one of them", kinds_expected(), shown_value(k))
-                        })
-                    })
-                    .collect()
-            },
-        ),
-        authority: r.read("voevent", "authority", None, |v| {
-            v.as_str()
-                .filter(|a| crate::voevent::valid_authority(a))
-                .map(|a| Some(a.to_string()))
-                .ok_or_else(|| {
-                    "your observatory's own authority identifier, such as \"ivo://kestrel-ridge.example/subwatch\" (ivo:// and a name, no spaces or #)".to_string()
-                })
-        }),
-        author: r.text("voevent", "author", "the observatory's name (text)"),
-        attach: r.flag("voevent", "attach", false),
-    };
-    let cal_default = crate::night::calibration::CalibrationSettings::default();
-    let band = |v: &toml::Value| -> Result<(f64, f64), String> {
-        let expected = "two fractions of full scale, low then high, such as [0.25, 0.65]";
-        let list = v.as_array().ok_or_else(|| expected.to_string())?;
-        match list.as_slice() {
-            [a, b] => match (number_of(a), number_of(b)) {
-                (Some(a), Some(b)) if 0.0 <= a && a < b && b <= 1.0 => Ok((a, b)),
-                _ => Err(expected.to_string()),
-            },
-            _ => Err(expected.to_string()),
-        }
-    };
-    let calibration = CalibrationConfig {
-        library: r.path("calibration", "library"),
-        settings: crate::night::calibration::CalibrationSettings {
-            library_days: r.whole(
-                "calibration",
-                "library_days",
-                cal_default.library_days as u64,
-                (0, 3650),
-                "a whole number of nights from 0 to 3650",
-            ) as u32,
-            flat_level_warn: r.read(
-                "calibration",
-                "flat_level_warn",
-                cal_default.flat_level_warn,
-                band,
-            ),
-            flat_level_reject: r.read(
-                "calibration",
-                "flat_level_reject",
-                cal_default.flat_level_reject,
-                band,
-            ),
-        },
-    };
-    let catalogue = read_catalogue(&mut r);
-    let rules = read_rules(&mut r);
+    // In the order of config/subwatch.toml: the order problems are reported in.
+    let watch = sections::watch(&mut r);
+    let store = sections::store(&mut r);
+    let rig = sections::rig(&mut r);
+    let site = sections::site(&mut r);
+    let optics = sections::optics(&mut r);
+    let measure = sections::measure(&mut r);
+    let actions = sections::actions(&mut r);
+    let mail = sections::mail(&mut r);
+    let alerts = sections::alerts(&mut r);
+    let report = sections::report(&mut r);
+    let web = sections::web(&mut r);
+    let voevent = sections::voevent(&mut r);
+    let calibration = sections::calibration(&mut r);
+    let catalogue = sections::catalogue(&mut r);
+    let rules = rules::read(&mut r);
     r.unknown();
+    r.oversized_left();
     let mut problems = std::mem::take(&mut r.problems);
     let config = Config {
         watch,
@@ -802,6 +426,7 @@ pub fn parse(text: &str, base: &Path) -> Result<Config, Vec<ConfigProblem>> {
         calibration,
         catalogue,
         rules,
+        lines: std::mem::take(&mut r.lines),
         source: None,
     };
     let reported: Vec<String> = problems.iter().map(|p| p.key.clone()).collect();
@@ -819,63 +444,94 @@ pub fn parse(text: &str, base: &Path) -> Result<Config, Vec<ConfigProblem>> {
     }
 }
 
-/// The `[[rules]]` tables, each read into a rule and checked.
-fn read_rules(r: &mut Reader<'_>) -> Vec<RuleSpec> {
-    let Some(value) = r.root.get("rules") else {
-        return Vec::new();
-    };
-    let Some(tables) = value.as_array() else {
-        r.problems.push(ConfigProblem {
-            key: "rules".into(),
-            line: find_line(r.text, None, "rules"),
-            message: "must be [[rules]] tables".into(),
-        });
-        return Vec::new();
-    };
-    let mut rules = Vec::new();
-    for (k, t) in tables.iter().enumerate() {
-        let key = format!("rules[{}]", k + 1);
-        let line = nth_rules_line(r.text, k);
-        match RuleSpec::deserialize_value(t) {
-            Ok(rule) => {
-                let problems = rule.problems();
-                for message in &problems {
-                    r.problems.push(ConfigProblem {
-                        key: key.clone(),
-                        line,
-                        message: message.clone(),
-                    });
-                }
-                if problems.is_empty() {
-                    rules.push(rule);
-                }
-            }
-            Err(message) => r.problems.push(ConfigProblem { key, line, message }),
-        }
-    }
-    rules
-}
-
 fn line_of(text: &str, offset: usize) -> usize {
     text[..offset.min(text.len())].matches('\n').count() + 1
 }
 
-/// The line of the `k`-th (0-based) `[[rules]]` header.
-fn nth_rules_line(text: &str, k: usize) -> Option<usize> {
-    text.lines()
+/// The name a table header line gives (`[site]` → "site", `[[rules]]` → "rules"), with
+/// any comment after it left out; `None` for a line that is no header.
+fn header_name(line: &str) -> Option<String> {
+    let t = line.trim();
+    let inner = if let Some(rest) = t.strip_prefix("[[") {
+        rest.split("]]").next()?
+    } else {
+        t.strip_prefix('[')?.split(']').next()?
+    };
+    Some(inner.trim().to_string())
+}
+
+/// The key a line assigns (`poll_seconds = 3` → "poll_seconds"; a dotted key whole),
+/// unquoted; `None` for a line that assigns nothing.
+fn assigned_key(line: &str) -> Option<String> {
+    let t = line.trim();
+    if t.starts_with('[') || t.starts_with('#') {
+        return None;
+    }
+    let (k, _) = t.split_once('=')?;
+    let k = k.trim();
+    // Bare keys are letters, digits, `_` and `-`; quoted ones anything.
+    let plain = |c: char| c.is_ascii_alphanumeric() || matches!(c, '_' | '-' | '.' | ' ');
+    let quoted = k.starts_with(['"', '\'']);
+    (!k.is_empty() && (quoted || k.chars().all(plain))).then(|| {
+        k.split('.')
+            .map(|part| part.trim().trim_matches(['"', '\'']))
+            .collect::<Vec<_>>()
+            .join(".")
+    })
+}
+
+/// The `k`-th (0-based) `[[rules]]` header's line, and the line of the next header (or
+/// past the end): where that rule's keys are.
+fn nth_rules_span(text: &str, k: usize) -> Option<(usize, usize)> {
+    let headers: Vec<usize> = text
+        .lines()
         .enumerate()
-        .filter(|(_, l)| l.trim().replace(' ', "") == "[[rules]]")
-        .nth(k)
+        .filter(|(_, l)| header_name(l).is_some())
         .map(|(i, _)| i + 1)
+        .collect();
+    let start = text
+        .lines()
+        .enumerate()
+        .filter(|(_, l)| l.trim().replace(' ', "").starts_with("[[rules]]"))
+        .nth(k)
+        .map(|(i, _)| i + 1)?;
+    let end = headers
+        .iter()
+        .copied()
+        .find(|h| *h > start)
+        .unwrap_or(usize::MAX);
+    Some((start, end))
+}
+
+/// The key a line of the file belongs to, as "section.key": the key it assigns, or the
+/// one whose value (a list over several lines) it continues; the section for a header.
+fn key_at(text: &str, line: usize) -> Option<String> {
+    let mut section: Option<String> = None;
+    let mut key: Option<String> = None;
+    for (i, l) in text.lines().enumerate().take(line) {
+        if let Some(name) = header_name(l) {
+            section = Some(name);
+            key = None;
+        } else if let Some(k) = assigned_key(l) {
+            key = Some(k);
+        }
+        if i + 1 == line && header_name(l).is_some() {
+            return section;
+        }
+    }
+    match (section, key) {
+        (Some(s), Some(k)) => Some(format!("{s}.{k}")),
+        (None, Some(k)) => Some(k),
+        (Some(s), None) => Some(s),
+        (None, None) => None,
+    }
 }
 
 /// The line where `key` is assigned inside `[section]` (best effort, for messages).
 fn find_line(text: &str, section: Option<&str>, key: &str) -> Option<usize> {
     let mut current: Option<String> = None;
     for (i, line) in text.lines().enumerate() {
-        let t = line.trim();
-        if t.starts_with('[') {
-            let name = t.trim_matches(|c| c == '[' || c == ']').trim().to_string();
+        if let Some(name) = header_name(line) {
             if section.is_none() && name == key {
                 return Some(i + 1);
             }
@@ -887,8 +543,9 @@ fn find_line(text: &str, section: Option<&str>, key: &str) -> Option<usize> {
             None => current.is_none(),
         };
         if in_section {
-            if let Some((k, _)) = t.split_once('=') {
-                if k.trim().trim_matches('"') == key {
+            // A dotted key (`a.b = 1`) is found by its first part.
+            if let Some(k) = assigned_key(line) {
+                if k == key || k.split('.').next() == Some(key) {
                     return Some(i + 1);
                 }
             }
@@ -1216,5 +873,300 @@ mod tests {
         assert_eq!(parse_summary_time("6:30"), None);
         assert_eq!(parse_summary_time("24:00"), None);
         assert_eq!(parse_summary_time("13:00"), None);
+    }
+
+    /// Every problem of a file with many kinds of mistake.
+    fn problems_of(text: &str) -> Vec<ConfigProblem> {
+        parse(text, Path::new("/")).unwrap_err()
+    }
+
+    fn problem<'p>(problems: &'p [ConfigProblem], key: &str) -> &'p ConfigProblem {
+        problems
+            .iter()
+            .find(|p| p.key == key)
+            .unwrap_or_else(|| panic!("no problem for {key}: {problems:?}"))
+    }
+
+    /// TOML holds whole numbers in 64 bits (TOML 1.0, "Integer"); one beyond them is its
+    /// key's problem, said with the range that key takes, and the rest is still read.
+    #[test]
+    fn a_number_too_large_for_toml_is_said_with_its_keys_range() {
+        let text = "[watch]\nfolders = [\"/tmp\"]\nqueue_limit = 99999999999999999999999\nworkers = 1e400\nrescan_seconds = -99999999999999999999\n[site]\ntimezone = \"Mars/Olympus\"\n[[rules]]\nreason = \"soft\"\nmetric = \"fwhm_px\"\ntest = \"above\"\nvalue = 1_000_000_000_000_000_000_000\nverdict = \"warn\"\n[web]\nport = 123456789012345678901\n";
+        let problems = problems_of(text);
+        let q = problem(&problems, "watch.queue_limit");
+        assert_eq!(q.line, Some(3));
+        assert_eq!(
+            q.message,
+            "99999999999999999999999 is out of range: give a whole number from 1 to 1000000"
+        );
+        let w = problem(&problems, "watch.workers");
+        assert_eq!(w.line, Some(4));
+        assert!(
+            w.message
+                .starts_with("1e400 is out of range: give a whole number of workers from 0"),
+            "{w:?}"
+        );
+        assert_eq!(problem(&problems, "watch.rescan_seconds").line, Some(5));
+        // Read on past them: the time zone three lines later is found too.
+        assert_eq!(problem(&problems, "site.timezone").line, Some(7));
+        let rule = problem(&problems, "rules[1]");
+        assert_eq!(rule.line, Some(8));
+        assert_eq!(
+            rule.message,
+            "value: 1_000_000_000_000_000_000_000 is out of range: give a number"
+        );
+        // An unknown key is said as unknown, once.
+        let port: Vec<_> = problems.iter().filter(|p| p.key == "web.port").collect();
+        assert_eq!(port.len(), 1, "{problems:?}");
+        assert!(port[0].message.starts_with("unknown key"), "{port:?}");
+        for p in &problems {
+            assert!(
+                !p.message.contains("i128") && !p.message.contains("invalid type"),
+                "{p:?}"
+            );
+        }
+        // Alone in a list, the range of the file's numbers is said.
+        let problems = problems_of("[watch]\nfolders = [\"/tmp\"]\n[alerts]\nenabled = true\n[catalogue]\nmagnitudes = { V = 99999999999999999999 }\n");
+        assert_eq!(
+            problem(&problems, "catalogue.magnitudes").message,
+            "99999999999999999999 is out of range: give a table of names, such as { V = \"vmag\", R = \"rmag\" }"
+        );
+    }
+
+    #[test]
+    fn a_key_or_section_given_twice_is_named_with_both_lines() {
+        let problems =
+            problems_of("[watch]\nfolders = [\"/tmp\"]\npoll_seconds = 1\n\npoll_seconds = 2\n");
+        assert_eq!(
+            problems,
+            [ConfigProblem {
+                key: "watch.poll_seconds".into(),
+                line: Some(5),
+                message: "given twice (first on line 3): keep one".into(),
+            }]
+        );
+        let problems = problems_of("[watch]\nfolders = [\"/tmp\"]\n[site]\ntimezone = \"UTC\"\n[watch]\nsettle_seconds = 1\n");
+        assert_eq!(
+            problems,
+            [ConfigProblem {
+                key: "watch".into(),
+                line: Some(5),
+                message:
+                    "[watch] is given twice (first on line 1): put its keys under one [watch] line"
+                        .into(),
+            }]
+        );
+        // Quoted the second time, still the same key.
+        let problems = problems_of("[mail]\nto = []\n\"to\" = []\n");
+        assert_eq!(
+            (problems[0].key.as_str(), problems[0].line),
+            ("mail.to", Some(3))
+        );
+        assert!(
+            problems[0].message.contains("first on line 2"),
+            "{problems:?}"
+        );
+    }
+
+    #[test]
+    fn toml_mistakes_are_said_in_words_with_their_key_and_line() {
+        let cases = [
+            (
+                "folders = [/srv/capture]",
+                "watch.folders",
+                "text goes in quotes",
+            ),
+            (
+                "folders = [\"/srv/capture\"",
+                "watch.folders",
+                "not closed with ]",
+            ),
+            (
+                "settle_seconds =",
+                "watch.settle_seconds",
+                "no value after =",
+            ),
+            (
+                "include = \"a\\q\"",
+                "watch.include",
+                "write \\\\ for a backslash",
+            ),
+            (
+                "poll_seconds = 007",
+                "watch.poll_seconds",
+                "does not start with 0",
+            ),
+            ("poll_seconds = True", "watch.poll_seconds", "small letters"),
+            (
+                "poll_seconds = 1 2",
+                "watch.poll_seconds",
+                "text goes in quotes",
+            ),
+            (
+                "include = [\"*.fits\"] x",
+                "watch.include",
+                "one key = value per line",
+            ),
+        ];
+        for (line, key, words) in cases {
+            let text = format!("[site]\ntimezone = \"UTC\"\n[watch]\n{line}\n");
+            let problems = problems_of(&text);
+            assert_eq!(problems.len(), 1, "{line}: {problems:?}");
+            let p = &problems[0];
+            assert_eq!((p.key.as_str(), p.line), (key, Some(4)), "{line}: {p:?}");
+            assert!(p.message.contains(words), "{line}: {p:?}");
+            assert!(!p.message.contains('`'), "{line}: {p:?}");
+        }
+        // An unclosed section header names the section as far as it goes.
+        let p = &problems_of("[watch]\nfolders = []\n[site\n")[0];
+        assert_eq!(p.line, Some(3));
+        assert!(p.message.contains("section name opened with ["), "{p:?}");
+    }
+
+    #[test]
+    fn an_unknown_key_gets_the_known_key_nearest_to_it() {
+        let text = "poll_seconds = 1\n[watch]\nfolders = [\"/tmp\"]\npol_seconds = 3\nsettle = 2\ntimezone = \"UTC\"\ncolour = 1\n[mial]\nto = []\n[[rules]]\nreason = \"soft\"\nmetrc = \"fwhm_px\"\nmetric = \"fwhm_px\"\ntest = \"above\"\nvalue = 3\nverdict = \"warn\"\n";
+        let problems = problems_of(text);
+        let said = |key: &str| problem(&problems, key).message.clone();
+        assert!(said("watch.pol_seconds").starts_with("unknown key; did you mean `poll_seconds`? (known in [watch]: folders, poll_seconds,"), "{problems:?}");
+        assert!(
+            said("watch.settle").starts_with("unknown key; did you mean `settle_seconds`?"),
+            "{problems:?}"
+        );
+        assert!(
+            said("watch.timezone").starts_with("unknown key; `timezone` belongs in [site]"),
+            "{problems:?}"
+        );
+        // Nothing near it: no guess.
+        assert!(
+            said("watch.colour").starts_with("unknown key (known in [watch]:"),
+            "{problems:?}"
+        );
+        assert!(
+            said("mial").starts_with("unknown section; did you mean [mail]?"),
+            "{problems:?}"
+        );
+        assert_eq!(
+            said("poll_seconds"),
+            "a key outside any section: `poll_seconds` belongs in [watch] (move it below that line)"
+        );
+        assert_eq!(problem(&problems, "poll_seconds").line, Some(1));
+        assert!(
+            said("rules[1]").starts_with("metrc: unknown key; did you mean `metric`?"),
+            "{problems:?}"
+        );
+    }
+
+    #[test]
+    fn a_rules_keys_are_said_one_by_one_in_words() {
+        let rule = |body: &str| {
+            problems_of(&format!("[watch]\nfolders = [\"/tmp\"]\n[[rules]]\n{body}"))
+                .into_iter()
+                .map(|p| {
+                    assert_eq!((p.key.as_str(), p.line), ("rules[1]", Some(3)), "{p:?}");
+                    p.message
+                })
+                .collect::<Vec<_>>()
+        };
+        let base = "reason = \"soft\"\nmetric = \"fwhm_px\"\ntest = \"above\"\n";
+        assert_eq!(
+            rule(&format!("{base}value = \"x\"\nverdict = \"warn\"\n")),
+            ["value: \"x\" is not a number"]
+        );
+        assert_eq!(
+            rule(&format!(
+                "{base}value = 3\nverdict = \"warn\"\nframes = -1\n"
+            )),
+            ["frames: -1 is not a whole number of frames"]
+        );
+        assert_eq!(
+            rule(&format!("{base}value = 3\nverdict = \"maybe\"\n")),
+            ["verdict: \"maybe\" is not \"warn\" or \"reject\""]
+        );
+        assert_eq!(
+            rule(&format!("{base}verdict = \"warn\"\n")),
+            ["value: missing: give a number"]
+        );
+        let said = rule("reason = \"soft\"\nmetric = \"fwhm_px\"\ntest = \"abov\"\nvalue = 3\nverdict = \"warn\"\n");
+        assert!(
+            said[0].starts_with("test: \"abov\" is not a test: one of above, below,"),
+            "{said:?}"
+        );
+        assert!(
+            !said[0].contains("variant") && !said[0].contains("expected"),
+            "{said:?}"
+        );
+        // A good rule as before.
+        let c = parse(
+            &format!(
+                "[watch]\nfolders = [\"/tmp\"]\n[[rules]]\n{base}value = 3\nverdict = \"reject\"\n"
+            ),
+            Path::new("/"),
+        )
+        .unwrap();
+        let r = &c.rules[0];
+        assert_eq!(
+            (
+                r.reason.as_str(),
+                r.metric,
+                r.test,
+                r.value,
+                r.verdict,
+                r.frames
+            ),
+            (
+                "soft",
+                crate::rules::Metric::FwhmPx,
+                crate::rules::Test::Above,
+                3.0,
+                crate::rules::Verdict::Reject,
+                None
+            )
+        );
+    }
+
+    #[test]
+    fn magnitudes_and_mag_column_together_are_said_as_such() {
+        let problems = problems_of("[watch]\nfolders = [\"/tmp\"]\n[catalogue]\nmagnitudes = { V = \"vmag\" }\nmag_column = \"m\"\n");
+        assert_eq!(
+            problems,
+            [ConfigProblem {
+                key: "catalogue.mag_column".into(),
+                line: Some(5),
+                message: "give magnitudes (a column per band) or mag_column (one column), not both"
+                    .into(),
+            }]
+        );
+    }
+
+    /// A mail address the parser refuses is said without the parser's own words.
+    #[test]
+    fn a_bad_address_is_said_without_the_parsers_words() {
+        let problems =
+            problems_of("[watch]\nfolders = [\"/tmp\"]\n[mail]\nto = [\"not-an-address\"]\n");
+        let p = problem(&problems, "mail.to");
+        assert!(
+            !p.message.contains("Invalid input") && !p.message.contains("("),
+            "{p:?}"
+        );
+        assert!(p.message.ends_with("\"not-an-address\" is not an e-mail address such as \"observer@example.org\" or \"Observer <observer@example.org>\""), "{p:?}");
+    }
+
+    /// The lines of the keys given are kept for the checks made after reading.
+    #[test]
+    fn a_later_problem_is_placed_at_its_keys_line_or_its_sections() {
+        let c = parse(
+            "[watch]\nfolders = [\"/tmp\"]\n\n[mail]\nsmtp_host = \"m.example.org\"\n",
+            Path::new("/"),
+        )
+        .unwrap();
+        assert_eq!(c.located("watch.folders", "x".into()).line, Some(2));
+        assert_eq!(c.located("mail.to", "x".into()).line, Some(4));
+        assert_eq!(c.located("store.url", "x".into()).line, None);
+        assert_eq!(
+            c.located("watch.folders", "/srv/x does not exist".into())
+                .to_string(),
+            "line 2: watch.folders: /srv/x does not exist"
+        );
     }
 }

@@ -138,7 +138,8 @@ pub fn read_exact_at(file: &File, buf: &mut [u8], offset: u64) -> io::Result<()>
 }
 
 pub fn check_private_file(path: &Path) -> Result<(), String> {
-    let m = std::fs::metadata(path).map_err(|e| format!("{}: {e}", path.display()))?;
+    let m = std::fs::metadata(path)
+        .map_err(|e| format!("{}: {}", path.display(), crate::text::io_reason(&e)))?;
     let me = rustix::process::geteuid().as_raw();
     if m.uid() != me {
         return Err(format!(

@@ -375,7 +375,8 @@ fn sid_text(sid: PSID) -> String {
 }
 
 pub fn check_private_file(path: &Path) -> Result<(), String> {
-    std::fs::metadata(path).map_err(|e| format!("{}: {e}", path.display()))?;
+    std::fs::metadata(path)
+        .map_err(|e| format!("{}: {}", path.display(), crate::text::io_reason(&e)))?;
     let name = wide(path.as_os_str());
     let mut owner: PSID = std::ptr::null_mut();
     let mut dacl: *mut ACL = std::ptr::null_mut();

@@ -72,6 +72,26 @@ pub enum Metric {
 }
 
 impl Metric {
+    /// Every metric a rule can test, for the configuration's messages (a test keeps it in
+    /// step with the names the rules are read by).
+    pub const ALL: [Metric; 11] = [
+        Metric::FwhmPx,
+        Metric::FwhmArcsec,
+        Metric::Eccentricity,
+        Metric::BackgroundAdu,
+        Metric::NoiseAdu,
+        Metric::StarCount,
+        Metric::SnrMedian,
+        Metric::HfrPx,
+        Metric::TransparencyLossMag,
+        Metric::LimitMag,
+        Metric::ZeroPointMag,
+    ];
+
+    pub fn from_name(name: &str) -> Option<Self> {
+        Self::ALL.into_iter().find(|m| m.as_str() == name)
+    }
+
     /// The metric's name in the configuration and the contract.
     pub fn as_str(self) -> &'static str {
         match self {
@@ -139,6 +159,35 @@ pub enum Test {
     Rising,
 }
 
+impl Test {
+    /// Every test a rule can make, for the configuration's messages.
+    pub const ALL: [Test; 7] = [
+        Test::Above,
+        Test::Below,
+        Test::AboveMedianRatio,
+        Test::BelowMedianRatio,
+        Test::SigmasAbove,
+        Test::SigmasBelow,
+        Test::Rising,
+    ];
+
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Test::Above => "above",
+            Test::Below => "below",
+            Test::AboveMedianRatio => "above_median_ratio",
+            Test::BelowMedianRatio => "below_median_ratio",
+            Test::SigmasAbove => "sigmas_above",
+            Test::SigmasBelow => "sigmas_below",
+            Test::Rising => "rising",
+        }
+    }
+
+    pub fn from_name(name: &str) -> Option<Self> {
+        Self::ALL.into_iter().find(|t| t.as_str() == name)
+    }
+}
+
 /// One `[[rules]]` table of the configuration.
 #[derive(Debug, Clone, PartialEq, Deserialize, Serialize)]
 #[serde(deny_unknown_fields)]
@@ -156,12 +205,6 @@ pub struct RuleSpec {
 }
 
 impl RuleSpec {
-    /// A rule from one `[[rules]]` table; unknown keys and values are refused with the
-    /// names that are allowed.
-    pub fn deserialize_value(table: &toml::Value) -> Result<Self, String> {
-        RuleSpec::deserialize(table.clone()).map_err(|e| e.message().trim().replace('`', "\""))
-    }
-
     /// Problems with the rule's values (its keys were checked when it was read).
     pub fn problems(&self) -> Vec<String> {
         let mut p = Vec::new();
@@ -764,5 +807,22 @@ mod tests {
             assert_eq!(j[i].verdict, verdict, "frame {i}");
         }
         assert_eq!(j[8].verdict, Verdict::Ok);
+    }
+
+    /// The names the configuration's messages list are the names rules are read by.
+    #[test]
+    fn metric_and_test_names_are_the_rules_own() {
+        for m in Metric::ALL {
+            let read: Metric = serde_json::from_value(serde_json::json!(m.as_str())).unwrap();
+            assert_eq!(read, m);
+            assert_eq!(Metric::from_name(m.as_str()), Some(m));
+        }
+        for t in Test::ALL {
+            let read: Test = serde_json::from_value(serde_json::json!(t.as_str())).unwrap();
+            assert_eq!(read, t);
+            assert_eq!(Test::from_name(t.as_str()), Some(t));
+        }
+        assert_eq!(Metric::from_name("seeing"), None);
+        assert_eq!(Test::from_name("abov"), None);
     }
 }

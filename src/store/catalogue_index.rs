@@ -215,7 +215,14 @@ impl IndexWriter {
         type Row = (i64, i64, String, f64, f64, String);
         let rows = repeated
             .query_map([], |r| {
-                Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?, r.get(4)?, r.get(5)?))
+                Ok((
+                    r.get(0)?,
+                    r.get(1)?,
+                    r.get(2)?,
+                    r.get(3)?,
+                    r.get(4)?,
+                    r.get(5)?,
+                ))
             })
             .map_err(&err)?;
         // What changes goes into two tables of its own while the names are read (a
@@ -248,8 +255,7 @@ impl IndexWriter {
             let (id, file, name, ra, dec, mags): Row = row.map_err(&err)?;
             let mags: Vec<(String, f64)> = serde_json::from_str(&mags).unwrap_or_default();
             if let Some(c) = current.as_mut() {
-                if c.0 .0 == file && c.0 .1 == name && crate::catalogue::same_star(c.2, (ra, dec))
-                {
+                if c.0 .0 == file && c.0 .1 == name && crate::catalogue::same_star(c.2, (ra, dec)) {
                     for m in mags {
                         if !c.3.iter().any(|(b, _)| *b == m.0) {
                             c.3.push(m);

@@ -137,7 +137,11 @@ pub(super) fn open(location: &Location) -> Result<Conn, StoreError> {
                 }
                 _ => None,
             };
-            Conn::postgres(config, tls).map_err(err)
+            // Each later connect reads the password file again.
+            let (url, password_file) = (url.clone(), password_file.clone());
+            let again: super::db::Settings =
+                Box::new(move || postgres_config(&url, password_file.as_deref()));
+            Conn::postgres(config, again, tls).map_err(err)
         }
     }
 }

@@ -38,6 +38,10 @@ pub enum DbError {
     NoRow,
     #[error("the connection to the database server is broken (tried again within seconds)")]
     Broken,
+    /// A connect failed moments ago: calls until the pause ends fail with its reason
+    /// rather than asking the server again.
+    #[error("{} (tried again within seconds)", .0.reason)]
+    Waiting(Failure),
     #[error("{0}")]
     Other(String),
 }
@@ -48,9 +52,40 @@ impl From<postgres::Error> for DbError {
     }
 }
 
+/// Why a connect failed, kept for the calls that wait out the pause after it.
+#[derive(Debug, Clone)]
+pub struct Failure {
+    reason: String,
+    connection: bool,
+    login_refused: bool,
+}
+
+/// Whether the server refused the login itself (PostgreSQL's SQLSTATE class 28,
+/// "Invalid Authorization Specification": 28P01 invalid_password, 28000 for a role or
+/// host pg_hba.conf does not let in; the PostgreSQL documentation's appendix A): a
+/// setting to mend, not a server away.
+fn login_refused(e: &postgres::Error) -> bool {
+    use postgres::error::SqlState;
+    e.code().is_some_and(|c| {
+        *c == SqlState::INVALID_PASSWORD || *c == SqlState::INVALID_AUTHORIZATION_SPECIFICATION
+    })
+}
+
 /// PostgreSQL's own words where the server sent them (the client's Display says only "db error").
 fn postgres_message(e: &postgres::Error) -> String {
     match e.as_db_error() {
+        Some(db) if login_refused(e) => {
+            let name = if db.code().code() == "28P01" {
+                "invalid_password"
+            } else {
+                "invalid_authorization_specification"
+            };
+            format!(
+                "the server refused the login: {} (SQLSTATE {} {name})",
+                db.message(),
+                db.code().code()
+            )
+        }
         Some(db) => format!("{}: {}", db.severity(), db.message()),
         None => {
             // The client's own failures say why in their sources (a refused connection,
@@ -58,7 +93,12 @@ fn postgres_message(e: &postgres::Error) -> String {
             let mut text = e.to_string();
             let mut source = std::error::Error::source(e);
             while let Some(s) = source {
-                text.push_str(&format!(": {s}"));
+                // The system's reason in words, without the number it appends.
+                let said = match s.downcast_ref::<std::io::Error>() {
+                    Some(io) => crate::text::io_reason(io),
+                    None => s.to_string(),
+                };
+                text.push_str(&format!(": {said}"));
                 source = s.source();
             }
             text
@@ -97,6 +137,17 @@ impl DbError {
                 }
             },
             DbError::Broken => true,
+            DbError::Waiting(f) => f.connection,
+            _ => false,
+        }
+    }
+
+    /// Whether the server refused the login (a password that stopped working, a role
+    /// or host it does not let in), now or at the connect the calls wait after.
+    pub fn is_login_refused(&self) -> bool {
+        match self {
+            DbError::Postgres(e) => login_refused(e),
+            DbError::Waiting(f) => f.login_refused,
             _ => false,
         }
     }
@@ -369,19 +420,23 @@ fn postgres_placeholders(sql: &str) -> String {
     out
 }
 
+/// How each connect's settings are made: afresh every time, so that a password file
+/// rewritten mid-night (the role's password changed) is read at the next try.
+pub type Settings = Box<dyn Fn() -> Result<postgres::Config, String> + Send>;
+
 /// A PostgreSQL connection that comes back after the server went away: a broken
 /// connection is opened again at the next call, though never inside a transaction (its
 /// first statements went with the old connection).
 pub struct PgConn {
-    config: postgres::Config,
+    settings: Settings,
     /// TLS to the server, where the address asks for it.
     tls: Option<tokio_postgres_rustls::MakeRustlsConnect>,
     client: Option<postgres::Client>,
     statements: HashMap<String, postgres::Statement>,
     in_transaction: bool,
-    /// After a failed connect, calls fail at once until then (a server away is not
-    /// asked again by every call: each could wait out the connect timeout).
-    quiet_until: Option<std::time::Instant>,
+    /// After a failed connect, calls fail at once until then, with its reason (a server
+    /// away is not asked again by every call: each could wait out the connect timeout).
+    paused: Option<(std::time::Instant, Failure)>,
 }
 
 /// How long a failed connect keeps the next calls from trying again.
@@ -394,22 +449,29 @@ impl PgConn {
             if self.in_transaction {
                 return Err(DbError::Broken);
             }
-            if self
-                .quiet_until
-                .is_some_and(|t| std::time::Instant::now() < t)
-            {
-                return Err(DbError::Broken);
+            if let Some((until, failure)) = &self.paused {
+                if std::time::Instant::now() < *until {
+                    return Err(DbError::Waiting(failure.clone()));
+                }
             }
             self.statements.clear();
             self.client = None;
-            match connect(&self.config, &self.tls) {
+            let connected = (self.settings)()
+                .map_err(DbError::Other)
+                .and_then(|config| connect(&config, &self.tls).map_err(DbError::from));
+            match connected {
                 Ok(c) => {
-                    self.quiet_until = None;
+                    self.paused = None;
                     self.client = Some(c);
                 }
                 Err(e) => {
-                    self.quiet_until = Some(std::time::Instant::now() + RECONNECT_PAUSE);
-                    return Err(e.into());
+                    let failure = Failure {
+                        reason: e.to_string(),
+                        connection: e.is_connection(),
+                        login_refused: e.is_login_refused(),
+                    };
+                    self.paused = Some((std::time::Instant::now() + RECONNECT_PAUSE, failure));
+                    return Err(e);
                 }
             }
         }
@@ -474,19 +536,21 @@ pub enum Conn {
 }
 
 impl Conn {
-    /// Connect to PostgreSQL (the first connection; later ones follow a broken one).
+    /// Connect to PostgreSQL with `config` (the first connection; later ones, after a
+    /// broken one, with the settings `again` makes).
     pub fn postgres(
         config: postgres::Config,
+        again: Settings,
         tls: Option<tokio_postgres_rustls::MakeRustlsConnect>,
     ) -> Result<Self, DbError> {
         let client = off_runtime(|| connect(&config, &tls))?;
         Ok(Conn::Postgres(Box::new(RefCell::new(PgConn {
-            config,
+            settings: again,
             tls,
             client: Some(client),
             statements: HashMap::new(),
             in_transaction: false,
-            quiet_until: None,
+            paused: None,
         }))))
     }
 

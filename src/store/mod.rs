@@ -75,6 +75,12 @@ impl StoreError {
     pub fn is_unreachable(&self) -> bool {
         matches!(self, StoreError::Database { source, .. } if source.is_connection())
     }
+
+    /// Whether the store's server refused this daemon's login (the password in
+    /// `password_file` no longer the role's, or a role or host it does not let in).
+    pub fn is_login_refused(&self) -> bool {
+        matches!(self, StoreError::Database { source, .. } if source.is_login_refused())
+    }
 }
 
 pub struct Store {
