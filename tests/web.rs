@@ -651,3 +651,53 @@ fn bearer_in_any_case_signs_in_and_repeated_failures_are_slowed_and_said_once() 
     assert_eq!(said.len(), 1, "said once per client per window: {log}");
     assert!(said[0].contains("5 failed sign-ins"), "{}", said[0]);
 }
+
+#[test]
+fn the_json_view_names_files_and_clocks_not_the_pcs_folders() {
+    let s = site("");
+    add_web(&s.config, "listen = \"127.0.0.1:0\"");
+    let d = Logged::start(&s.config);
+    let addr = address(&d);
+    let root = s.root.display().to_string();
+    // A file that is no FITS (undated: tonight's by this PC's clock).
+    std::fs::write(s.capture.join("broken.fits"), b"not a FITS file at all").unwrap();
+    let json = wait_page(addr, "/api/night", "broken.fits", "");
+    let v: serde_json::Value = serde_json::from_str(&json).unwrap();
+    // Where the files are on the PC is not the viewer's business.
+    assert!(!json.contains(&root), "{root} in {json}");
+    let broken = &v["frames"][0];
+    assert_eq!(
+        (&broken["file"], &broken["status"]),
+        (&"broken.fits".into(), &"error".into()),
+        "{broken}"
+    );
+    assert!(
+        broken["error"]
+            .as_str()
+            .unwrap()
+            .contains("not a FITS file"),
+        "{broken}"
+    );
+    let health = &v["health"];
+    assert_eq!(health["daemon_running"], true, "{health}");
+    for gone in ["daemon_pid", "disks", "outbox_last_error"] {
+        assert!(health.get(gone).is_none(), "{gone}: {health}");
+    }
+    assert!(health["low_disk"].is_boolean(), "{health}");
+
+    // A frame of March 2026 (the renderer's DATE-OBS) recorded now: a replay.
+    light(&s.capture.join("old.fits"), 6, "Kestrel Field A");
+    let json = wait_page(addr, "/api/night", "old.fits", "");
+    let v: serde_json::Value = serde_json::from_str(&json).unwrap();
+    assert!(!json.contains(&root), "{root} in {json}");
+    // Which clock each time is on.
+    assert_eq!(v["clocks"]["fields"]["frames[].time_unix"], "frame");
+    assert_eq!(v["clocks"]["fields"]["health.last_frame_unix"], "pc");
+    let behind = v["frame_time_behind_s"].as_f64().unwrap();
+    assert!(behind > 86_400.0, "{behind}");
+    let page = wait_page(addr, "/", "clocks-apart", "");
+    assert!(page.contains("behind this PC"), "{page}");
+    assert!(page.contains("<time data-clock=\"frame\">"), "{page}");
+    assert!(!page.contains(&root), "{page}");
+    drop(d);
+}

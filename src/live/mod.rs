@@ -2,11 +2,15 @@
 //! `LiveView` is the night so far (per group counts and usable time, every frame with
 //! its verdict and reasons, the latest frame, anomalies, alerts, the sky now, the
 //! daemon's health); it is the JSON view for scripts as it stands, and `html` renders
-//! the page from it. Every value that came from a file or a header is escaped. The page
-//! loads its own script and style sheet (no inline code, so a strict
-//! Content-Security-Policy holds) and fetches its own content again when the view's
-//! version changes. Pure.
+//! the page from it. It tells a viewer what a viewer needs: file names, not where they
+//! are on the PC; whether the daemon is running, not its process; low disk space as a
+//! warning, not which disk holds how much. Every time it shows names its clock: the
+//! frame's own (DATE-OBS) or this PC's, which part when frames are replayed. Every value
+//! that came from a file or a header is escaped. The page loads its own script and
+//! style sheet (no inline code, so a strict Content-Security-Policy holds) and fetches
+//! its own content again when the view's version changes. Pure.
 
+use std::collections::BTreeMap;
 use std::fmt::Write as _;
 
 use serde::Serialize;
@@ -41,6 +45,63 @@ pub struct LiveView {
     pub health: Health,
     /// Every rig with frames tonight, where several share the store (empty otherwise).
     pub rigs: Vec<LiveRig>,
+    /// How far the latest frame's time (its DATE-OBS plus its exposure) is behind this
+    /// PC's clock when the last frame was recorded: a minute or so while frames come
+    /// from the camera, hours or days when they are replayed or copied in (negative:
+    /// the frame's clock is ahead).
+    pub frame_time_behind_s: Option<f64>,
+    /// Which clock each time of this view is on.
+    pub clocks: Clocks,
+}
+
+/// The frame's clock: the time its header gives.
+pub const FRAME_CLOCK: &str = "frame";
+/// This PC's clock: when the daemon saw, recorded or worked something out.
+pub const PC_CLOCK: &str = "pc";
+/// How each clock is labelled on the page.
+pub const FRAME_CLOCK_LABEL: &str = "frame time (DATE-OBS)";
+pub const PC_CLOCK_LABEL: &str = "this PC's clock";
+/// Beyond this many seconds between the two clocks, the page says they do not line up.
+pub const CLOCKS_APART_S: f64 = 600.0;
+
+/// Which clock each time of the view is on, for scripts.
+#[derive(Debug, Clone, Serialize)]
+pub struct Clocks {
+    /// What "frame" means.
+    pub frame: &'static str,
+    /// What "pc" means.
+    pub pc: &'static str,
+    /// Every time of the view, by its place (`frames[].time_unix`), and its clock.
+    pub fields: BTreeMap<&'static str, &'static str>,
+}
+
+impl Default for Clocks {
+    fn default() -> Self {
+        let (f, p) = (FRAME_CLOCK, PC_CLOCK);
+        Clocks {
+            frame: "the frame's own time: DATE-OBS in its header (when its exposure began), shown on the site's time zone",
+            pc: "this PC's clock: when the daemon saw, recorded or worked it out",
+            fields: BTreeMap::from([
+                ("now_unix", p),
+                ("analysed_unix", p),
+                ("frame_time_behind_s", p),
+                ("frames[].time_unix", f),
+                ("frames[].time_local", f),
+                ("latest.time_local", f),
+                ("alerts[].time_unix", p),
+                ("alerts[].time_local", p),
+                ("sky.astronomical_dawn_unix", p),
+                ("sky.astronomical_dawn_local", p),
+                ("sky.minutes_to_astronomical_dawn", p),
+                ("health.daemon_heard_s_ago", p),
+                ("health.last_frame_unix", p),
+                ("health.last_frame_local", p),
+                ("health.seconds_since_last_frame", p),
+                ("rigs[].last_recorded_local", p),
+                ("rigs[].heard_s_ago", p),
+            ]),
+        }
+    }
 }
 
 /// One rig of a site sharing the store, as the page lists it.
@@ -75,10 +136,11 @@ pub struct LiveGroup {
 pub struct LiveFrame {
     /// The store's id: the only way a URL names a frame.
     pub id: i64,
+    /// The file's name (where it is on the PC is not the viewer's business).
     pub file: String,
-    pub path: String,
+    /// DATE-OBS.
     pub time_unix: Option<f64>,
-    /// The site's clock, "HH:MM:SS".
+    /// DATE-OBS on the site's time zone, "HH:MM:SS".
     pub time_local: Option<String>,
     pub target: Option<String>,
     pub filter: Option<String>,
@@ -164,24 +226,28 @@ pub struct SkyNow {
 
 #[derive(Debug, Clone, Default, Serialize)]
 pub struct Health {
-    pub daemon_pid: u32,
+    /// The daemon's watching loop said it was alive within the last half minute (it says
+    /// so every 2 s).
+    pub daemon_running: bool,
+    /// Seconds since it last said so, if it ever did.
+    pub daemon_heard_s_ago: Option<f64>,
     /// Frames noticed and not yet read.
     pub waiting: Option<u64>,
     pub being_read: Option<u64>,
     /// Records the store has not taken yet (a full disk).
     pub not_stored: Option<u64>,
+    /// When the last frame was recorded.
     pub last_frame_unix: Option<f64>,
     pub last_frame_local: Option<String>,
     pub seconds_since_last_frame: Option<f64>,
-    pub disks: Vec<Disk>,
+    /// A file system the daemon writes to (frames, the store, reports, lists) has less
+    /// free space than `[alerts] min_free_gb`.
+    pub low_disk: bool,
+    pub min_free_gb: f64,
     pub outbox_waiting: usize,
-    pub outbox_last_error: Option<String>,
-}
-
-#[derive(Debug, Clone, Default, Serialize)]
-pub struct Disk {
-    pub folder: String,
-    pub free_gb: f64,
+    /// The last attempt at the waiting mail failed (`subwatch outbox` on the PC says
+    /// why).
+    pub outbox_failing: bool,
 }
 
 /// The page's script: polls the view's version and fetches the page's content again
@@ -269,6 +335,23 @@ fn num(x: Option<f64>, digits: usize) -> String {
         .map_or("-".into(), |v| format!("{v:.digits$}"))
 }
 
+/// A time shown on the page, marked with the clock it is on (`FRAME_CLOCK`, `PC_CLOCK`).
+fn time(t: &str, clock: &str) -> String {
+    format!("<time data-clock=\"{clock}\">{}</time>", escape_html(t))
+}
+
+/// A long stretch in words: "3 days 4 h", "5 h 12 min", "25 min".
+fn stretch(seconds: f64) -> String {
+    let m = (seconds.abs() / 60.0).round() as i64;
+    let (d, h, m) = (m / 1440, m / 60 % 24, m % 60);
+    match (d, h) {
+        (0, 0) => format!("{m} min"),
+        (0, _) => format!("{h} h {m:02} min"),
+        (1, _) => format!("1 day {h} h"),
+        _ => format!("{d} days {h} h"),
+    }
+}
+
 fn minutes(seconds: f64) -> String {
     let m = (seconds / 60.0).round() as i64;
     if m >= 60 {
@@ -285,12 +368,35 @@ pub fn part(v: &LiveView) -> String {
     let night = v.night.as_deref().unwrap_or("(no frame yet)");
     let _ = write!(
         h,
-        "<h1>Night {}</h1><p class=\"quiet\">{}. Clock times are {}. \
-         <span id=\"updated\">updates by itself</span></p>",
+        "<h1>Night {}</h1><p class=\"quiet\">{}. Times are on {}: a frame's is the DATE-OBS \
+         in its header ({FRAME_CLOCK_LABEL}); alerts, the sky and the daemon's are on \
+         {PC_CLOCK_LABEL}. <span id=\"updated\">updates by itself</span></p>",
         e(night),
         e(&v.night_placed_by),
         e(&v.timezone)
     );
+    match v.frame_time_behind_s {
+        Some(b) if b > CLOCKS_APART_S => {
+            let _ = write!(
+                h,
+                "<p class=\"notice\" id=\"clocks-apart\">Frame times are {} behind {PC_CLOCK_LABEL}: \
+                 these frames were taken long before they reached the daemon (replayed or \
+                 copied in), so frame times (DATE-OBS) and times on {PC_CLOCK_LABEL} below \
+                 do not line up.</p>",
+                stretch(b)
+            );
+        }
+        Some(b) if b < -CLOCKS_APART_S => {
+            let _ = write!(
+                h,
+                "<p class=\"notice\" id=\"clocks-apart\">Frame times are {} ahead of {PC_CLOCK_LABEL}: \
+                 the camera's clock or this PC's is wrong, so frame times (DATE-OBS) and \
+                 times on {PC_CLOCK_LABEL} below do not line up.</p>",
+                stretch(b)
+            );
+        }
+        _ => {}
+    }
 
     h.push_str("<div class=\"grid\"><section id=\"groups\"><h2>Frames so far</h2>");
     if v.groups.is_empty() {
@@ -314,7 +420,7 @@ pub fn part(v: &LiveView) -> String {
     h.push_str("</section>");
 
     if v.rigs.len() > 1 {
-        h.push_str("<section id=\"rigs\"><h2>Rigs of the site</h2><div class=\"scroll\"><table><tr><th>rig</th><th>frames</th><th>warn</th><th>reject</th><th>last frame</th><th>daemon</th></tr>");
+        let _ = write!(h, "<section id=\"rigs\"><h2>Rigs of the site</h2><div class=\"scroll\"><table><tr><th>rig</th><th>frames</th><th>warn</th><th>reject</th><th>last recorded ({PC_CLOCK_LABEL})</th><th>daemon</th></tr>");
         for r in &v.rigs {
             let heard = match r.heard_s_ago {
                 Some(s) if s <= 60.0 => format!("heard {s:.0} s ago"),
@@ -328,7 +434,9 @@ pub fn part(v: &LiveView) -> String {
                 r.frames,
                 r.warned,
                 r.rejected,
-                e(r.last_recorded_local.as_deref().unwrap_or("-")),
+                r.last_recorded_local
+                    .as_deref()
+                    .map_or("-".into(), |t| time(t, PC_CLOCK)),
                 e(&heard)
             );
         }
@@ -340,9 +448,12 @@ pub fn part(v: &LiveView) -> String {
         Some(l) => {
             let _ = write!(
                 h,
-                "<p><span class=\"file\">{}</span> {}</p>",
+                "<p><span class=\"file\">{}</span>{}</p>",
                 e(&l.file),
-                e(l.time_local.as_deref().unwrap_or(""))
+                l.time_local.as_deref().map_or(String::new(), |t| format!(
+                    " {} <small>{FRAME_CLOCK_LABEL}</small>",
+                    time(t, FRAME_CLOCK)
+                ))
             );
             match &l.preview_url {
                 Some(url) if l.width > 0 && l.height > 0 => {
@@ -438,19 +549,25 @@ pub fn part(v: &LiveView) -> String {
     if v.alerts.is_empty() {
         h.push_str("<p>None.</p>");
     } else {
-        h.push_str("<ul>");
+        let _ = write!(h, "<p class=\"quiet\">Times on {PC_CLOCK_LABEL}.</p><ul>");
         for a in &v.alerts {
             let _ = write!(
                 h,
                 "<li>{} <b>{}</b>: {}</li>",
-                e(a.time_local.as_deref().unwrap_or("")),
+                a.time_local
+                    .as_deref()
+                    .map_or(String::new(), |t| time(t, PC_CLOCK)),
                 e(&a.kind),
                 e(&a.message)
             );
         }
         h.push_str("</ul>");
     }
-    h.push_str("</section><section id=\"sky\"><h2>Sky and daemon</h2><dl class=\"facts\">");
+    let _ = write!(
+        h,
+        "</section><section id=\"sky\"><h2>Sky and daemon</h2>\
+         <p class=\"quiet\">Now, and times on {PC_CLOCK_LABEL}.</p><dl class=\"facts\">"
+    );
     if let Some(s) = &v.sky {
         let _ = write!(
             h,
@@ -464,7 +581,7 @@ pub fn part(v: &LiveView) -> String {
             let _ = write!(
                 h,
                 "<dt>astronomical dawn</dt><dd>{} (in {})</dd>",
-                e(at),
+                time(at, PC_CLOCK),
                 minutes(m * 60.0)
             );
         }
@@ -474,10 +591,17 @@ pub fn part(v: &LiveView) -> String {
         );
     }
     let d = &v.health;
+    let heard = match d.daemon_heard_s_ago {
+        Some(s) if d.daemon_running => format!("watching (heard {s:.0} s ago)"),
+        Some(s) => format!(
+            "<span class=\"reject\">not heard from for {}</span>",
+            minutes(s)
+        ),
+        None => "<span class=\"reject\">not heard from yet</span>".into(),
+    };
     let _ = write!(
         h,
-        "<dt>daemon</dt><dd>process {}: {} waiting, {} being read{}</dd>",
-        d.daemon_pid,
+        "<dt>daemon</dt><dd>{heard}: {} waiting, {} being read{}</dd>",
         d.waiting.unwrap_or(0),
         d.being_read.unwrap_or(0),
         match d.not_stored {
@@ -488,26 +612,35 @@ pub fn part(v: &LiveView) -> String {
     if let (Some(t), Some(ago)) = (&d.last_frame_local, d.seconds_since_last_frame) {
         let _ = write!(
             h,
-            "<dt>last frame</dt><dd>{} ({} ago)</dd>",
-            e(t),
+            "<dt>last frame recorded</dt><dd>{} ({} ago)</dd>",
+            time(t, PC_CLOCK),
             minutes(ago)
-        );
-    }
-    for disk in &d.disks {
-        let _ = write!(
-            h,
-            "<dt>free space</dt><dd>{:.1} GB at <span class=\"file\">{}</span></dd>",
-            disk.free_gb,
-            e(&disk.folder)
         );
     }
     let _ = write!(
         h,
+        "<dt>disk space</dt><dd>{}</dd>",
+        if d.low_disk {
+            format!(
+                "<span class=\"reject\">low: under {} GB free where frames, the store or reports are written</span>",
+                d.min_free_gb
+            )
+        } else {
+            format!(
+                "enough (over {} GB free where the daemon writes)",
+                d.min_free_gb
+            )
+        }
+    );
+    let _ = write!(
+        h,
         "<dt>outbox</dt><dd>{} message(s) waiting{}</dd></dl></section></div>",
         d.outbox_waiting,
-        d.outbox_last_error
-            .as_deref()
-            .map_or(String::new(), |err| format!(": {}", e(err)))
+        if d.outbox_failing {
+            "; <span class=\"reject\">the last attempt failed</span> (<code>subwatch outbox</code> on the PC says why)"
+        } else {
+            ""
+        }
     );
     h.push_str("<section id=\"plots\"><h2>The night's plots</h2>");
     if v.plots.is_empty() {
@@ -539,7 +672,7 @@ pub fn part(v: &LiveView) -> String {
     if v.frames.is_empty() {
         h.push_str("<p>None yet.</p>");
     } else {
-        h.push_str("<div class=\"scroll\"><table><tr><th>time</th><th>verdict</th><th>file, and why</th><th>FWHM</th><th>ecc.</th><th>sky ADU</th><th>stars</th></tr>");
+        let _ = write!(h, "<div class=\"scroll\"><table><tr><th>{FRAME_CLOCK_LABEL}</th><th>verdict</th><th>file, and why</th><th>FWHM</th><th>ecc.</th><th>sky ADU</th><th>stars</th></tr>");
         for f in &v.frames {
             let verdict = f.verdict.as_deref().unwrap_or(match f.status.as_str() {
                 "error" => "unreadable",
@@ -560,7 +693,9 @@ pub fn part(v: &LiveView) -> String {
             let _ = write!(
                 h,
                 "<tr><td>{}</td><td class=\"{class}\">{}</td><td><span class=\"file\">{}</span>",
-                e(f.time_local.as_deref().unwrap_or("-")),
+                f.time_local
+                    .as_deref()
+                    .map_or("-".into(), |t| time(t, FRAME_CLOCK)),
                 e(verdict),
                 e(&f.file)
             );
@@ -665,6 +800,171 @@ mod tests {
             !page.contains(" style="),
             "no inline style: the CSP forbids it"
         );
+    }
+
+    /// A view with every part filled, so that every field is in its JSON.
+    fn full_view() -> LiveView {
+        LiveView {
+            night: Some("2026-12-04".into()),
+            now_unix: 1.8e9,
+            timezone: "UTC".into(),
+            frames: vec![LiveFrame {
+                file: "a.fits".into(),
+                time_unix: Some(1.7e9),
+                time_local: Some("01:02:03".into()),
+                verdict: Some("ok".into()),
+                ..Default::default()
+            }],
+            latest: Some(LatestFrame {
+                file: "a.fits".into(),
+                time_local: Some("01:02:03".into()),
+                ..Default::default()
+            }),
+            alerts: vec![LiveAlert {
+                time_unix: 1.8e9,
+                time_local: Some("03:04:05".into()),
+                kind: "frames_stopped".into(),
+                message: "no new frame for 20 minutes".into(),
+            }],
+            analysed_unix: Some(1.8e9),
+            sky: Some(SkyNow {
+                astronomical_dawn_unix: Some(1.8e9 + 3600.0),
+                astronomical_dawn_local: Some("04:04:05".into()),
+                minutes_to_astronomical_dawn: Some(60.0),
+                ..Default::default()
+            }),
+            health: Health {
+                daemon_running: true,
+                daemon_heard_s_ago: Some(1.0),
+                last_frame_unix: Some(1.8e9 - 60.0),
+                last_frame_local: Some("03:03:05".into()),
+                seconds_since_last_frame: Some(60.0),
+                ..Default::default()
+            },
+            rigs: vec![
+                LiveRig {
+                    rig: "north".into(),
+                    last_recorded_local: Some("03:03:05".into()),
+                    heard_s_ago: Some(2.0),
+                    ..Default::default()
+                },
+                LiveRig {
+                    rig: "south".into(),
+                    ..Default::default()
+                },
+            ],
+            frame_time_behind_s: Some(1e8),
+            ..Default::default()
+        }
+    }
+
+    /// Every key of a JSON value, as `a.b[].c`.
+    fn keys(v: &serde_json::Value, at: &str, out: &mut Vec<String>) {
+        match v {
+            serde_json::Value::Object(m) => {
+                for (k, x) in m {
+                    let here = if at.is_empty() {
+                        k.clone()
+                    } else {
+                        format!("{at}.{k}")
+                    };
+                    out.push(here.clone());
+                    keys(x, &here, out);
+                }
+            }
+            serde_json::Value::Array(a) => {
+                for x in a {
+                    keys(x, &format!("{at}[]"), out);
+                }
+            }
+            _ => {}
+        }
+    }
+
+    #[test]
+    fn every_time_in_the_json_names_its_clock() {
+        let v = full_view();
+        let json = serde_json::to_value(&v).unwrap();
+        let mut all = Vec::new();
+        keys(&json, "", &mut all);
+        let times: Vec<&String> = all
+            .iter()
+            .filter(|k| !k.starts_with("clocks."))
+            .filter(|k| {
+                k.ends_with("_unix")
+                    || k.ends_with("_local")
+                    || k.ends_with("_ago")
+                    || k.ends_with("behind_s")
+                    || k.ends_with("since_last_frame")
+                    || k.ends_with("to_astronomical_dawn")
+            })
+            .collect();
+        assert!(times.len() >= 15, "{times:?}");
+        for k in times {
+            let clock = v.clocks.fields.get(k.as_str());
+            assert!(
+                matches!(clock, Some(&FRAME_CLOCK) | Some(&PC_CLOCK)),
+                "{k} has no clock"
+            );
+        }
+        // And nothing is named that the JSON does not hold.
+        for k in v.clocks.fields.keys() {
+            assert!(all.iter().any(|a| a == k), "{k} is not in the view");
+        }
+        assert_eq!(json["clocks"]["fields"]["frames[].time_unix"], "frame");
+        assert_eq!(json["clocks"]["fields"]["alerts[].time_unix"], "pc");
+    }
+
+    #[test]
+    fn every_time_on_the_page_names_its_clock() {
+        let mut v = full_view();
+        let page = part(&v);
+        let shown = page.matches("<time ").count();
+        // The frame's time in the list and under the picture; the alert, dawn, the last
+        // frame recorded and the rig's last record on this PC's clock.
+        assert_eq!(
+            page.matches("<time data-clock=\"frame\">").count(),
+            2,
+            "{page}"
+        );
+        assert_eq!(
+            page.matches("<time data-clock=\"pc\">").count(),
+            4,
+            "{page}"
+        );
+        assert_eq!(shown, 6);
+        assert!(page.contains(FRAME_CLOCK_LABEL) && page.contains(PC_CLOCK_LABEL));
+        // Frames taken 1e8 s before they were recorded: said, in words.
+        assert!(
+            page.contains("id=\"clocks-apart\">Frame times are 1157 days 9 h behind"),
+            "{page}"
+        );
+        v.frame_time_behind_s = Some(90.0);
+        assert!(!part(&v).contains("clocks-apart"));
+        v.frame_time_behind_s = Some(-7200.0);
+        assert!(part(&v).contains("Frame times are 2 h 00 min ahead"));
+    }
+
+    #[test]
+    fn the_view_tells_a_viewer_no_path_process_or_free_bytes() {
+        let json = serde_json::to_string(&full_view()).unwrap();
+        for gone in [
+            "\"path\"",
+            "daemon_pid",
+            "\"disks\"",
+            "\"free_gb\"",
+            "outbox_last_error",
+        ] {
+            assert!(!json.contains(gone), "{gone} in {json}");
+        }
+        let mut v = full_view();
+        v.health.low_disk = true;
+        v.health.min_free_gb = 5.0;
+        v.health.outbox_failing = true;
+        let page = part(&v);
+        assert!(page.contains("low: under 5 GB free"), "{page}");
+        assert!(page.contains("the last attempt failed"), "{page}");
+        assert!(page.contains("watching (heard 1 s ago)"), "{page}");
     }
 
     #[test]
