@@ -14,7 +14,9 @@ requests per second, and the daemon's resident memory over time and at its peak
 
 The load runs in separate processes at a low CPU priority (--client-nice, default 19),
 so that on a small machine the load generator takes as little as it can from the daemon
-it measures: the clients stand in for browsers on other machines. Keep-alive
+it measures: the clients stand in for browsers on other machines, each from a loopback
+address of its own (127.0.1.K: the server holds at most 8 connections per client
+address). Keep-alive
 connections are used as browsers do; a request that fails on a reused connection before
 any byte of an answer is retried once on a new connection (what browsers do with
 idempotent requests); those retries are counted and shown, and a failure after that is
@@ -200,7 +202,7 @@ PAGES = ["/api/version", "/", "/api/night", "/part"]
 RETRYABLE = (http.client.RemoteDisconnected, ConnectionResetError, BrokenPipeError, ConnectionAbortedError)
 
 
-def client_thread(address, stop, stats, lock):
+def client_thread(address, source, stop, stats, lock):
     host, port = address.split(":")
     conn = None
     used = False
@@ -220,7 +222,7 @@ def client_thread(address, stop, stats, lock):
         kind = "image" if path.endswith(".png") else path
         for attempt in (0, 1):
             if conn is None:
-                conn = http.client.HTTPConnection(host, int(port), timeout=10)
+                conn = http.client.HTTPConnection(host, int(port), timeout=10, source_address=(source, 0))
                 used = False
             t = time.monotonic()
             try:
@@ -280,13 +282,16 @@ def client_thread(address, stop, stats, lock):
         stats.append(mine)
 
 
-def client_process(address, threads, nice, stop, out):
+def client_process(address, first, threads, nice, stop, out):
     try:
         os.nice(nice)
     except OSError:
         pass
     stats, lock = [], threading.Lock()
-    ts = [threading.Thread(target=client_thread, args=(address, stop, stats, lock)) for _ in range(threads)]
+    # Client K connects from 127.0.0.0/8's 127.0.1.K (Linux answers on all of it).
+    ts = [threading.Thread(target=client_thread,
+                           args=(address, f"127.0.{1 + (first + i) // 250}.{1 + (first + i) % 250}", stop, stats, lock))
+          for i in range(threads)]
     t0 = time.process_time()
     for t in ts:
         t.start()
@@ -384,8 +389,9 @@ def main():
             out = mp.Queue()
             share = [args.clients // args.procs + (1 if i < args.clients % args.procs else 0)
                      for i in range(args.procs)]
-            procs = [mp.Process(target=client_process, args=(daemon.address, k, args.client_nice, stop, out))
-                     for k in share if k > 0]
+            procs = [mp.Process(target=client_process,
+                                args=(daemon.address, sum(share[:i]), k, args.client_nice, stop, out))
+                     for i, k in enumerate(share) if k > 0]
             cpu_b0 = sampler.cpu()
             tb0 = time.monotonic()
             for p in procs:

@@ -337,3 +337,367 @@ fn a_port_already_taken_costs_the_page_not_the_watching() {
     assert_eq!(wait_for(&s.db, 1, Duration::from_secs(30)).len(), 1);
     drop(taken);
 }
+
+/// A connection from `from` (a loopback address of this machine other than 127.0.0.1 is
+/// another client to the server).
+fn connect_from(from: &str, to: SocketAddr) -> TcpStream {
+    let s = socket2::Socket::new(socket2::Domain::IPV4, socket2::Type::STREAM, None).unwrap();
+    let from: SocketAddr = format!("{from}:0").parse().unwrap();
+    s.bind(&from.into()).unwrap();
+    s.connect_timeout(&to.into(), Duration::from_secs(5))
+        .unwrap();
+    s.into()
+}
+
+/// Seconds until the server closes `s` (end of stream or a reset), reading whatever it
+/// sends; `None` when it is still open after `limit`.
+fn closed_after(mut s: TcpStream, start: Instant, limit: Duration) -> Option<f64> {
+    s.set_read_timeout(Some(Duration::from_millis(100)))
+        .unwrap();
+    let mut buf = [0u8; 4096];
+    while start.elapsed() < limit {
+        match s.read(&mut buf) {
+            Ok(0) => return Some(start.elapsed().as_secs_f64()),
+            Ok(_) => {}
+            Err(e)
+                if matches!(
+                    e.kind(),
+                    std::io::ErrorKind::WouldBlock | std::io::ErrorKind::TimedOut
+                ) => {}
+            Err(_) => return Some(start.elapsed().as_secs_f64()),
+        }
+    }
+    None
+}
+
+/// Whether the server has closed `s` already (without waiting).
+fn is_closed(s: &mut TcpStream) -> bool {
+    s.set_nonblocking(true).unwrap();
+    let mut buf = [0u8; 1];
+    let closed = match s.read(&mut buf) {
+        Ok(0) => true,
+        Ok(_) => false,
+        Err(e) => e.kind() != std::io::ErrorKind::WouldBlock,
+    };
+    s.set_nonblocking(false).unwrap();
+    closed
+}
+
+#[test]
+fn one_client_holding_many_sockets_cannot_keep_another_out() {
+    let s = site("");
+    add_web(&s.config, "listen = \"127.0.0.1:0\"");
+    let d = Logged::start(&s.config);
+    let addr = address(&d);
+    light(&s.capture.join("one.fits"), 5, "Kestrel Field A");
+    wait_page(addr, "/", "one.fits", "");
+
+    // The first client opens 64 sockets, as many as the server takes at once, and says
+    // nothing on any of them.
+    let mut hog: Vec<TcpStream> = (0..64).map(|_| connect_from("127.0.0.1", addr)).collect();
+    std::thread::sleep(Duration::from_millis(800));
+    let open = hog
+        .iter_mut()
+        .map(is_closed)
+        .filter(|closed| !closed)
+        .count();
+    assert_eq!(
+        open, 8,
+        "one client keeps 8 connections (PER_CLIENT); the rest are closed at once"
+    );
+    // A second client is answered while the first still holds its share, well before
+    // the silent ones time out (5 s).
+    let start = Instant::now();
+    let mut other = connect_from("127.0.0.2", addr);
+    other
+        .set_read_timeout(Some(Duration::from_secs(10)))
+        .unwrap();
+    other
+        .write_all(b"GET /api/version HTTP/1.1\r\nHost: x\r\nConnection: close\r\n\r\n")
+        .unwrap();
+    let mut answer = Vec::new();
+    let _ = other.read_to_end(&mut answer);
+    let took = start.elapsed().as_secs_f64();
+    let head = String::from_utf8_lossy(&answer);
+    assert!(head.starts_with("HTTP/1.1 200"), "{head}");
+    assert!(took < 2.0, "the second client waited {took:.2} s");
+    assert!(
+        hog.iter_mut()
+            .map(is_closed)
+            .filter(|closed| !closed)
+            .count()
+            == 8,
+        "the first client's share was still held while the second was answered"
+    );
+    eprintln!("second client answered in {took:.3} s while the first held 8 connections");
+
+    let log = d.stop();
+    assert_eq!(
+        log.matches("127.0.0.1 holds 8 connections").count(),
+        1,
+        "said once: {log}"
+    );
+    drop(hog);
+}
+
+#[test]
+fn a_silent_connection_is_closed_within_seconds() {
+    let s = site("");
+    add_web(&s.config, "listen = \"127.0.0.1:0\"");
+    let d = Logged::start(&s.config);
+    let addr = address(&d);
+    let limit = Duration::from_secs(30);
+    // Three ways of saying nothing, side by side: a new connection that sends nothing,
+    // one kept alive after its answer (RFC 9112 §9.3: persistent by default), and a
+    // request's head sent a byte every half second.
+    let silent = std::thread::spawn(move || {
+        let c = TcpStream::connect(addr).unwrap();
+        closed_after(c, Instant::now(), limit)
+    });
+    let kept = std::thread::spawn(move || {
+        let mut c = TcpStream::connect(addr).unwrap();
+        c.write_all(b"GET /icon.svg HTTP/1.1\r\nHost: x\r\n\r\n")
+            .unwrap();
+        c.set_read_timeout(Some(Duration::from_secs(10))).unwrap();
+        let mut got = Vec::new();
+        let mut buf = [0u8; 4096];
+        // The answer is complete when its Content-Length of body has come.
+        loop {
+            let n = c.read(&mut buf).unwrap();
+            assert!(n > 0, "closed before answering");
+            got.extend_from_slice(&buf[..n]);
+            let text = String::from_utf8_lossy(&got).to_lowercase();
+            if let Some(end) = text.find("\r\n\r\n") {
+                let length: usize = text
+                    .split("content-length:")
+                    .nth(1)
+                    .and_then(|v| v.split("\r\n").next())
+                    .and_then(|v| v.trim().parse().ok())
+                    .unwrap();
+                if got.len() >= end + 4 + length {
+                    break;
+                }
+            }
+        }
+        assert!(String::from_utf8_lossy(&got).starts_with("HTTP/1.1 200"));
+        closed_after(c, Instant::now(), limit)
+    });
+    let slow = std::thread::spawn(move || {
+        let mut c = TcpStream::connect(addr).unwrap();
+        let start = Instant::now();
+        let head = b"GET / HTTP/1.1\r\nHost: x\r\nX-Slow: aaaaaaaaaaaaaaaaaaaaaaaaaaaaaa\r\n\r\n";
+        for b in head {
+            if c.write_all(&[*b]).is_err() {
+                break;
+            }
+            if is_closed(&mut c) {
+                return Some(start.elapsed().as_secs_f64());
+            }
+            std::thread::sleep(Duration::from_millis(500));
+        }
+        closed_after(c, start, limit)
+    });
+    let (silent, kept, slow) = (
+        silent.join().unwrap(),
+        kept.join().unwrap(),
+        slow.join().unwrap(),
+    );
+    eprintln!("closed after: silent {silent:?} s, kept alive {kept:?} s, slow head {slow:?} s");
+    // SILENT is 5 s; a second more for timers and a loaded machine.
+    for (what, t) in [
+        ("silent", silent),
+        ("kept alive", kept),
+        ("slow head", slow),
+    ] {
+        let t = t.unwrap_or_else(|| panic!("{what}: still open after {limit:?}"));
+        assert!((4.5..=7.0).contains(&t), "{what}: closed after {t:.2} s");
+    }
+    drop(d);
+}
+
+/// A token file of `token`, this user's alone, and a config naming it.
+fn with_token(s: &common::daemon::Site, token: &[u8]) {
+    let token_file = s.root.join("page-token");
+    std::fs::write(&token_file, token).unwrap();
+    use std::os::unix::fs::PermissionsExt;
+    std::fs::set_permissions(&token_file, std::fs::Permissions::from_mode(0o600)).unwrap();
+    add_web(
+        &s.config,
+        &format!(
+            "listen = \"127.0.0.1:0\"\ntoken_file = \"{}\"",
+            token_file.display()
+        ),
+    );
+}
+
+#[test]
+fn a_token_that_could_never_sign_in_is_refused_by_check_config() {
+    let check = |s: &common::daemon::Site| {
+        let out = Command::new(common::binary())
+            .args(["check-config", "--config"])
+            .arg(&s.config)
+            .output()
+            .unwrap();
+        (
+            out.status.code(),
+            format!(
+                "{}{}",
+                String::from_utf8_lossy(&out.stdout),
+                String::from_utf8_lossy(&out.stderr)
+            ),
+        )
+    };
+    // Control: a good token passes.
+    let s = site("");
+    with_token(&s, b"kestrel-ridge.0123456789~abc_DEF\n");
+    let (code, said) = check(&s);
+    assert_eq!(code, Some(0), "{said}");
+
+    // Each of these is cut or changed by an address's query (RFC 3986 §2.2: reserved
+    // characters), a header or a cookie (RFC 6265 §4.1.1: cookie-octet excludes space,
+    // '"', ',', ';' and '\'), or is not ASCII.
+    for (bad, shown) in [
+        (";", "';'"),
+        ("&", "'&'"),
+        ("#", "'#'"),
+        ("\"", "'\"'"),
+        (" ", "a space"),
+        ("é", "'é' (U+00E9, not ASCII)"),
+    ] {
+        let s = site("");
+        with_token(&s, format!("kestrel-ridge{bad}0123456789\n").as_bytes());
+        let (code, said) = check(&s);
+        assert_eq!(code, Some(1), "{bad:?}: {said}");
+        let line = said
+            .lines()
+            .find(|l| l.contains("web.token_file"))
+            .unwrap_or_else(|| panic!("{bad:?}: no line names web.token_file: {said}"));
+        assert!(
+            line.contains(&format!("line 1: character 14 is {shown}"))
+                && line.contains("A-Z a-z 0-9 - . _ ~"),
+            "{bad:?}: {line}"
+        );
+    }
+    // Too short to be a random token of 64 bits.
+    let s = site("");
+    with_token(&s, b"kestrel-ridge\n");
+    let (code, said) = check(&s);
+    assert_eq!(code, Some(1), "{said}");
+    assert!(
+        said.contains("web.token_file") && said.contains("13 characters; it needs at least 16"),
+        "{said}"
+    );
+    // The daemon refuses it the same way.
+    let out = Command::new(common::binary())
+        .args(["watch", "--config"])
+        .arg(&s.config)
+        .output()
+        .unwrap();
+    assert!(!out.status.success());
+    assert!(String::from_utf8_lossy(&out.stderr).contains("web.token_file"));
+}
+
+#[test]
+fn bearer_in_any_case_signs_in_and_repeated_failures_are_slowed_and_said_once() {
+    let s = site("");
+    let token = "kestrel-ridge-0123456789abcdef";
+    with_token(&s, format!("{token}\n").as_bytes());
+    let d = Logged::start(&s.config);
+    let addr = address(&d);
+    // RFC 7235 §2.1: the auth-scheme is case-insensitive.
+    for scheme in ["bearer", "BEARER", "Bearer"] {
+        let (status, _, _) = get(
+            addr,
+            "/icon.svg",
+            &format!("Authorization: {scheme} {token}\r\n"),
+        );
+        assert_eq!(status, 200, "{scheme}");
+    }
+    // Seven wrong tokens: five answered at once, then each waits longer (1 s, 2 s).
+    let mut took = Vec::new();
+    for k in 0..7 {
+        let start = Instant::now();
+        let (status, _, _) = get(
+            addr,
+            "/icon.svg",
+            &format!("Authorization: Bearer wrong-guess-{k:02}-0123456789\r\n"),
+        );
+        assert_eq!(status, 401);
+        took.push(start.elapsed().as_secs_f64());
+    }
+    eprintln!("wrong tokens answered after {took:.2?} s");
+    assert!(took[..5].iter().all(|t| *t < 0.9), "{took:?}");
+    assert!(took[5] >= 0.95 && took[6] >= 1.95, "{took:?}");
+    // The right token from that client waits too (a wait that only wrong guesses got
+    // would tell a right one), and then is let in.
+    let start = Instant::now();
+    let (status, _, _) = get(
+        addr,
+        "/icon.svg",
+        &format!("Authorization: Bearer {token}\r\n"),
+    );
+    assert_eq!(status, 200);
+    assert!(start.elapsed().as_secs_f64() >= 3.9);
+    // A request offering no token is not a guess and is not slowed.
+    let start = Instant::now();
+    let (status, _, _) = get(addr, "/icon.svg", "");
+    assert_eq!(status, 401);
+    assert!(start.elapsed().as_secs_f64() < 0.9);
+    let log = d.stop();
+    let said: Vec<&str> = log
+        .lines()
+        .filter(|l| l.contains("failed sign-ins from 127.0.0.1"))
+        .collect();
+    assert_eq!(said.len(), 1, "said once per client per window: {log}");
+    assert!(said[0].contains("5 failed sign-ins"), "{}", said[0]);
+}
+
+#[test]
+fn the_json_view_names_files_and_clocks_not_the_pcs_folders() {
+    let s = site("");
+    add_web(&s.config, "listen = \"127.0.0.1:0\"");
+    let d = Logged::start(&s.config);
+    let addr = address(&d);
+    let root = s.root.display().to_string();
+    // A file that is no FITS (undated: tonight's by this PC's clock).
+    std::fs::write(s.capture.join("broken.fits"), b"not a FITS file at all").unwrap();
+    let json = wait_page(addr, "/api/night", "broken.fits", "");
+    let v: serde_json::Value = serde_json::from_str(&json).unwrap();
+    // Where the files are on the PC is not the viewer's business.
+    assert!(!json.contains(&root), "{root} in {json}");
+    let broken = &v["frames"][0];
+    assert_eq!(
+        (&broken["file"], &broken["status"]),
+        (&"broken.fits".into(), &"error".into()),
+        "{broken}"
+    );
+    assert!(
+        broken["error"]
+            .as_str()
+            .unwrap()
+            .contains("not a FITS file"),
+        "{broken}"
+    );
+    let health = &v["health"];
+    assert_eq!(health["daemon_running"], true, "{health}");
+    for gone in ["daemon_pid", "disks", "outbox_last_error"] {
+        assert!(health.get(gone).is_none(), "{gone}: {health}");
+    }
+    assert!(health["low_disk"].is_boolean(), "{health}");
+
+    // A frame of March 2026 (the renderer's DATE-OBS) recorded now: a replay.
+    light(&s.capture.join("old.fits"), 6, "Kestrel Field A");
+    let json = wait_page(addr, "/api/night", "old.fits", "");
+    let v: serde_json::Value = serde_json::from_str(&json).unwrap();
+    assert!(!json.contains(&root), "{root} in {json}");
+    // Which clock each time is on.
+    assert_eq!(v["clocks"]["fields"]["frames[].time_unix"], "frame");
+    assert_eq!(v["clocks"]["fields"]["health.last_frame_unix"], "pc");
+    let behind = v["frame_time_behind_s"].as_f64().unwrap();
+    assert!(behind > 86_400.0, "{behind}");
+    let page = wait_page(addr, "/", "clocks-apart", "");
+    assert!(page.contains("behind this PC"), "{page}");
+    assert!(page.contains("<time data-clock=\"frame\">"), "{page}");
+    assert!(!page.contains(&root), "{page}");
+    drop(d);
+}

@@ -78,7 +78,7 @@ impl Config {
             if let Err(e) = crate::os::check_private_file(token) {
                 error("web.token_file", e);
             } else if let Err(e) = self.web.token() {
-                error("web.token_file", e);
+                error("web.token_file", e.to_string());
             }
         }
         let mut warn = |key: &str, message: String| warnings.push(self.located(key, message));

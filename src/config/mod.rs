@@ -330,26 +330,138 @@ pub struct WebConfig {
     pub open_without_token: bool,
 }
 
+/// The characters an access token may hold, as a user reads them: RFC 3986's unreserved
+/// characters, which pass unchanged in an address's query, in an `Authorization: Bearer`
+/// header (RFC 6750 §2.1, b64token) and in a cookie's value (RFC 6265 §4.1.1,
+/// cookie-octet). Anything else (`;`, `&`, `#`, `"`, a space, a letter outside ASCII)
+/// is cut, split or escaped by one of the three on its way, and the token never matches.
+pub const TOKEN_CHARACTERS: &str = "A-Z a-z 0-9 - . _ ~";
+/// 16 characters carry at least 64 bits when each is a random hex digit (the smallest
+/// alphabet token generators print), the least OWASP's Session Management Cheat Sheet
+/// asks of a session identifier; from the whole set above they carry 96.
+pub const TOKEN_MIN_CHARS: usize = 16;
+/// Enough for any generator, and small beside the 16 KiB a request's head may take.
+pub const TOKEN_MAX_CHARS: usize = 512;
+/// Fewer different characters than this is a placeholder ("aaaa...", "abab..."), not a
+/// random token: 16 random hex digits use fewer with a probability of about 1e-9.
+pub const TOKEN_MIN_DISTINCT: usize = 4;
+/// The token file is read this far; a token file is one short line.
+const TOKEN_FILE_MAX_BYTES: u64 = 4096;
+
+/// Why a token file cannot open the status page.
+#[derive(Debug, thiserror::Error)]
+pub enum TokenError {
+    #[error("cannot read {}: {}", .path.display(), crate::text::io_reason(.reason))]
+    Read {
+        path: PathBuf,
+        reason: std::io::Error,
+    },
+    #[error("{}, line {line}: {problem}", .path.display())]
+    Invalid {
+        path: PathBuf,
+        line: usize,
+        problem: TokenProblem,
+    },
+}
+
+/// What is wrong with a token file's text.
+#[derive(Debug, Clone, PartialEq, Eq, thiserror::Error)]
+pub enum TokenProblem {
+    #[error("no token: write it on the file's first line")]
+    Empty,
+    #[error("character {column} is {shown}, which a token cannot hold: use only {TOKEN_CHARACTERS} (they pass unchanged in an address, a header and a cookie)")]
+    Character { column: usize, shown: String },
+    #[error("the token has {chars} characters; it needs at least {TOKEN_MIN_CHARS} (16 random hex digits carry 64 bits), for example from `openssl rand -hex 16`")]
+    Short { chars: usize },
+    #[error("the token has {chars} characters; at most {TOKEN_MAX_CHARS}")]
+    Long { chars: usize },
+    #[error("the token uses only {distinct} different characters, which no random token does; make one with `openssl rand -hex 16`")]
+    Repetitive { distinct: usize },
+    #[error("the file goes on after the token: only its first line is read, so it must hold the token alone")]
+    MoreLines,
+    #[error("the file is longer than {TOKEN_FILE_MAX_BYTES} bytes: it must hold the token alone")]
+    TooLarge,
+}
+
+/// A character as an error message names it.
+fn shown_character(c: char) -> String {
+    match c {
+        ' ' => "a space".into(),
+        '\t' => "a tab".into(),
+        char::REPLACEMENT_CHARACTER => "a byte that is not UTF-8".into(),
+        c if c.is_control() => format!("the control character U+{:04X}", c as u32),
+        c if !c.is_ascii() => format!("'{c}' (U+{:04X}, not ASCII)", c as u32),
+        c => format!("'{c}'"),
+    }
+}
+
+/// The token a token file's bytes hold, or the line and what is wrong there. Blanks
+/// around the token (an editor's final newline, a stray space) are not part of it.
+pub fn parse_token(bytes: &[u8]) -> Result<String, (usize, TokenProblem)> {
+    if bytes.len() as u64 > TOKEN_FILE_MAX_BYTES {
+        return Err((1, TokenProblem::TooLarge));
+    }
+    let text = String::from_utf8_lossy(bytes);
+    let mut lines = text.lines();
+    let first = lines.next().unwrap_or("");
+    let lead = first.len() - first.trim_start().len();
+    let token = first.trim();
+    if token.is_empty() {
+        return Err((1, TokenProblem::Empty));
+    }
+    if let Some(extra) = lines.position(|l| !l.trim().is_empty()) {
+        return Err((extra + 2, TokenProblem::MoreLines));
+    }
+    let allowed = |c: char| c.is_ascii_alphanumeric() || "-._~".contains(c);
+    if let Some((k, c)) = token.chars().enumerate().find(|(_, c)| !allowed(*c)) {
+        let column = first[..lead].chars().count() + k + 1;
+        return Err((
+            1,
+            TokenProblem::Character {
+                column,
+                shown: shown_character(c),
+            },
+        ));
+    }
+    let chars = token.len();
+    if chars < TOKEN_MIN_CHARS {
+        return Err((1, TokenProblem::Short { chars }));
+    }
+    if chars > TOKEN_MAX_CHARS {
+        return Err((1, TokenProblem::Long { chars }));
+    }
+    let distinct = token
+        .bytes()
+        .collect::<std::collections::BTreeSet<u8>>()
+        .len();
+    if distinct < TOKEN_MIN_DISTINCT {
+        return Err((1, TokenProblem::Repetitive { distinct }));
+    }
+    Ok(token.to_string())
+}
+
 impl WebConfig {
-    /// The access token: the token file's first line, at least 16 characters. `Ok(None)`
-    /// without a token file.
-    pub fn token(&self) -> Result<Option<String>, String> {
+    /// The access token: the token file's one line, checked by [`parse_token`].
+    /// `Ok(None)` without a token file.
+    pub fn token(&self) -> Result<Option<String>, TokenError> {
         let Some(path) = &self.token_file else {
             return Ok(None);
         };
         use std::io::Read;
-        let mut text = String::new();
+        let mut bytes = Vec::new();
         std::fs::File::open(path)
-            .and_then(|f| f.take(4096).read_to_string(&mut text))
-            .map_err(|e| format!("{}: {e}", path.display()))?;
-        let token = text.lines().next().unwrap_or("").trim().to_string();
-        if token.chars().count() < 16 || token.chars().any(|c| c.is_control() || c == ' ') {
-            return Err(format!(
-                "{}: the token must be one line of at least 16 characters without spaces",
-                path.display()
-            ));
-        }
-        Ok(Some(token))
+            .and_then(|f| f.take(TOKEN_FILE_MAX_BYTES + 1).read_to_end(&mut bytes))
+            .map_err(|reason| TokenError::Read {
+                path: path.clone(),
+                reason,
+            })?;
+        parse_token(&bytes)
+            .map(Some)
+            .map_err(|(line, problem)| TokenError::Invalid {
+                path: path.clone(),
+                line,
+                problem,
+            })
     }
 }
 
@@ -475,5 +587,107 @@ impl Config {
                 .unwrap_or(Path::new("."))
                 .join("reports")
         })
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn a_token_holds_only_characters_that_pass_unchanged_everywhere_it_travels() {
+        let good = "kestrel-ridge_0123.456~789";
+        assert_eq!(parse_token(format!("{good}\n").as_bytes()).unwrap(), good);
+        assert_eq!(
+            parse_token(format!("  {good} \r\n\n").as_bytes()).unwrap(),
+            good
+        );
+        // Each of these is cut, split or escaped by a query string, a header or a cookie
+        // (RFC 3986 §2.2 reserved characters, RFC 6265 §4.1.1 cookie-octet).
+        for (bad, shown) in [
+            (";", "';'"),
+            ("&", "'&'"),
+            ("#", "'#'"),
+            ("\"", "'\"'"),
+            (" ", "a space"),
+            ("=", "'='"),
+            ("+", "'+'"),
+            ("%", "'%'"),
+            ("é", "'é' (U+00E9, not ASCII)"),
+            ("\u{7f}", "the control character U+007F"),
+        ] {
+            let text = format!(" kestrel-ridge{bad}0123456789");
+            assert_eq!(
+                parse_token(text.as_bytes()),
+                Err((
+                    1,
+                    TokenProblem::Character {
+                        column: 15,
+                        shown: shown.into()
+                    }
+                )),
+                "{bad:?}"
+            );
+        }
+        let mut bytes = b"kestrel-ridge-0123456789".to_vec();
+        bytes[3] = 0xff;
+        assert!(matches!(
+            parse_token(&bytes),
+            Err((1, TokenProblem::Character { column: 4, ref shown })) if shown.contains("not UTF-8")
+        ));
+    }
+
+    #[test]
+    fn a_token_is_long_and_varied_enough_and_alone_in_its_file() {
+        assert_eq!(parse_token(b""), Err((1, TokenProblem::Empty)));
+        assert_eq!(
+            parse_token(b"\nkestrel-ridge-0123456789"),
+            Err((1, TokenProblem::Empty))
+        );
+        // 15 hex digits are 60 bits; 16 are 64 (common practice: random hex tokens).
+        assert_eq!(
+            parse_token(b"0123456789abcde"),
+            Err((1, TokenProblem::Short { chars: 15 }))
+        );
+        assert!(parse_token(b"0123456789abcdef").is_ok());
+        assert_eq!(
+            parse_token("a".repeat(40).as_bytes()),
+            Err((1, TokenProblem::Repetitive { distinct: 1 }))
+        );
+        assert_eq!(
+            parse_token("abc".repeat(8).as_bytes()),
+            Err((1, TokenProblem::Repetitive { distinct: 3 }))
+        );
+        assert_eq!(
+            parse_token("0123456789abcdef".repeat(33).as_bytes()),
+            Err((1, TokenProblem::Long { chars: 528 }))
+        );
+        assert_eq!(
+            parse_token(b"0123456789abcdef\n\nsecond line\n"),
+            Err((3, TokenProblem::MoreLines))
+        );
+        assert_eq!(parse_token(&[b'a'; 5000]), Err((1, TokenProblem::TooLarge)));
+    }
+
+    #[test]
+    fn a_token_file_problem_names_the_file_and_line() {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("token");
+        std::fs::write(&path, "kestrel;ridge-0123456789\n").unwrap();
+        let web = WebConfig {
+            token_file: Some(path.clone()),
+            ..Default::default()
+        };
+        let said = web.token().unwrap_err().to_string();
+        assert!(
+            said.contains(&format!("{}, line 1: character 8 is ';'", path.display())),
+            "{said}"
+        );
+        let missing = WebConfig {
+            token_file: Some(dir.path().join("nothing")),
+            ..Default::default()
+        };
+        let said = missing.token().unwrap_err().to_string();
+        assert_eq!(said.matches("os error").count(), 1, "{said}");
     }
 }

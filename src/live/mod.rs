@@ -2,11 +2,15 @@
 //! `LiveView` is the night so far (per group counts and usable time, every frame with
 //! its verdict and reasons, the latest frame, anomalies, alerts, the sky now, the
 //! daemon's health); it is the JSON view for scripts as it stands, and `html` renders
-//! the page from it. Every value that came from a file or a header is escaped. The page
-//! loads its own script and style sheet (no inline code, so a strict
-//! Content-Security-Policy holds) and fetches its own content again when the view's
-//! version changes. Pure.
+//! the page from it. It tells a viewer what a viewer needs: file names, not where they
+//! are on the PC; whether the daemon is running, not its process; low disk space as a
+//! warning, not which disk holds how much. Every time it shows names its clock: the
+//! frame's own (DATE-OBS) or this PC's, which part when frames are replayed. Every value
+//! that came from a file or a header is escaped. The page loads its own script and
+//! style sheet (no inline code, so a strict Content-Security-Policy holds) and fetches
+//! its own content again when the view's version changes. Pure.
 
+use std::collections::BTreeMap;
 use std::fmt::Write as _;
 
 use serde::Serialize;
@@ -41,6 +45,63 @@ pub struct LiveView {
     pub health: Health,
     /// Every rig with frames tonight, where several share the store (empty otherwise).
     pub rigs: Vec<LiveRig>,
+    /// How far the latest frame's time (its DATE-OBS plus its exposure) is behind this
+    /// PC's clock when the last frame was recorded: a minute or so while frames come
+    /// from the camera, hours or days when they are replayed or copied in (negative:
+    /// the frame's clock is ahead).
+    pub frame_time_behind_s: Option<f64>,
+    /// Which clock each time of this view is on.
+    pub clocks: Clocks,
+}
+
+/// The frame's clock: the time its header gives.
+pub const FRAME_CLOCK: &str = "frame";
+/// This PC's clock: when the daemon saw, recorded or worked something out.
+pub const PC_CLOCK: &str = "pc";
+/// How each clock is labelled on the page.
+pub const FRAME_CLOCK_LABEL: &str = "frame time (DATE-OBS)";
+pub const PC_CLOCK_LABEL: &str = "this PC's clock";
+/// Beyond this many seconds between the two clocks, the page says they do not line up.
+pub const CLOCKS_APART_S: f64 = 600.0;
+
+/// Which clock each time of the view is on, for scripts.
+#[derive(Debug, Clone, Serialize)]
+pub struct Clocks {
+    /// What "frame" means.
+    pub frame: &'static str,
+    /// What "pc" means.
+    pub pc: &'static str,
+    /// Every time of the view, by its place (`frames[].time_unix`), and its clock.
+    pub fields: BTreeMap<&'static str, &'static str>,
+}
+
+impl Default for Clocks {
+    fn default() -> Self {
+        let (f, p) = (FRAME_CLOCK, PC_CLOCK);
+        Clocks {
+            frame: "the frame's own time: DATE-OBS in its header (when its exposure began), shown on the site's time zone",
+            pc: "this PC's clock: when the daemon saw, recorded or worked it out",
+            fields: BTreeMap::from([
+                ("now_unix", p),
+                ("analysed_unix", p),
+                ("frame_time_behind_s", p),
+                ("frames[].time_unix", f),
+                ("frames[].time_local", f),
+                ("latest.time_local", f),
+                ("alerts[].time_unix", p),
+                ("alerts[].time_local", p),
+                ("sky.astronomical_dawn_unix", p),
+                ("sky.astronomical_dawn_local", p),
+                ("sky.minutes_to_astronomical_dawn", p),
+                ("health.daemon_heard_s_ago", p),
+                ("health.last_frame_unix", p),
+                ("health.last_frame_local", p),
+                ("health.seconds_since_last_frame", p),
+                ("rigs[].last_recorded_local", p),
+                ("rigs[].heard_s_ago", p),
+            ]),
+        }
+    }
 }
 
 /// One rig of a site sharing the store, as the page lists it.
@@ -75,10 +136,11 @@ pub struct LiveGroup {
 pub struct LiveFrame {
     /// The store's id: the only way a URL names a frame.
     pub id: i64,
+    /// The file's name (where it is on the PC is not the viewer's business).
     pub file: String,
-    pub path: String,
+    /// DATE-OBS.
     pub time_unix: Option<f64>,
-    /// The site's clock, "HH:MM:SS".
+    /// DATE-OBS on the site's time zone, "HH:MM:SS".
     pub time_local: Option<String>,
     pub target: Option<String>,
     pub filter: Option<String>,
@@ -164,81 +226,166 @@ pub struct SkyNow {
 
 #[derive(Debug, Clone, Default, Serialize)]
 pub struct Health {
-    pub daemon_pid: u32,
+    /// The daemon's watching loop said it was alive within the last half minute (it says
+    /// so every 2 s).
+    pub daemon_running: bool,
+    /// Seconds since it last said so, if it ever did.
+    pub daemon_heard_s_ago: Option<f64>,
     /// Frames noticed and not yet read.
     pub waiting: Option<u64>,
     pub being_read: Option<u64>,
     /// Records the store has not taken yet (a full disk).
     pub not_stored: Option<u64>,
+    /// When the last frame was recorded.
     pub last_frame_unix: Option<f64>,
     pub last_frame_local: Option<String>,
     pub seconds_since_last_frame: Option<f64>,
-    pub disks: Vec<Disk>,
+    /// A file system the daemon writes to (frames, the store, reports, lists) has less
+    /// free space than `[alerts] min_free_gb`.
+    pub low_disk: bool,
+    pub min_free_gb: f64,
     pub outbox_waiting: usize,
-    pub outbox_last_error: Option<String>,
+    /// The last attempt at the waiting mail failed (`subwatch outbox` on the PC says
+    /// why).
+    pub outbox_failing: bool,
 }
 
-#[derive(Debug, Clone, Default, Serialize)]
-pub struct Disk {
-    pub folder: String,
-    pub free_gb: f64,
-}
-
-/// The page's script: polls the view's version and fetches the page's content again
-/// when it changed. No library, nothing from outside.
-pub const SCRIPT: &str = r#""use strict";
+/// The page's script: sets the chosen colours before the page is drawn (so a page
+/// opened in the dome is never white for a moment: it loads in the head, undeferred),
+/// offers the choice and remembers it; polls the view's version and fetches the page's
+/// content again when it changed. No library, nothing from outside.
+pub const SCRIPT: &str = r##""use strict";
 (function () {
-  var main = document.getElementById("live");
-  var seen = main ? main.getAttribute("data-version") : null;
-  var note = document.getElementById("updated");
-  function tick() {
-    fetch("api/version", { cache: "no-store", credentials: "same-origin" })
-      .then(function (r) { return r.ok ? r.json() : null; })
-      .then(function (v) {
-        if (!v) { return; }
-        if (String(v.version) === seen) {
-          if (note) { note.textContent = "up to date"; }
-          return;
-        }
-        return fetch("part", { cache: "no-store", credentials: "same-origin" })
-          .then(function (r) { return r.ok ? r.text() : null; })
-          .then(function (html) {
-            if (html === null) { return; }
-            main.innerHTML = html;
-            seen = String(v.version);
-            main.setAttribute("data-version", seen);
-          });
-      })
-      .catch(function () { if (note) { note.textContent = "daemon not answering"; } });
+  var KEY = "subwatch-page-mode";
+  var MODES = ["light", "dark", "red"];
+  var root = document.documentElement;
+  function saved() {
+    try {
+      var m = window.localStorage.getItem(KEY);
+      return MODES.indexOf(m) >= 0 ? m : null;
+    } catch (e) { return null; }
   }
-  window.setInterval(tick, 3000);
+  function preferred() {
+    return window.matchMedia && window.matchMedia("(prefers-color-scheme: dark)").matches ? "dark" : "light";
+  }
+  function show(mode) {
+    root.setAttribute("data-mode", mode);
+    var buttons = document.querySelectorAll("#modes button[data-mode]");
+    for (var i = 0; i < buttons.length; i++) {
+      buttons[i].setAttribute("aria-pressed", String(buttons[i].getAttribute("data-mode") === mode));
+    }
+  }
+  show(saved() || preferred());
+  // Another tab of the page chose: follow it.
+  window.addEventListener("storage", function (e) {
+    if (e.key === KEY) { show(saved() || preferred()); }
+  });
+
+  function start() {
+    var modes = document.getElementById("modes");
+    if (modes) {
+      modes.hidden = false;
+      modes.addEventListener("click", function (e) {
+        var b = e.target && e.target.closest ? e.target.closest("button[data-mode]") : null;
+        if (!b) { return; }
+        var mode = b.getAttribute("data-mode");
+        // Without storage (a private window) the choice lasts as long as the page.
+        try { window.localStorage.setItem(KEY, mode); } catch (err) { }
+        show(mode);
+      });
+    }
+    show(root.getAttribute("data-mode") || "light");
+
+    var main = document.getElementById("live");
+    var seen = main ? main.getAttribute("data-version") : null;
+    function tick() {
+      var note = document.getElementById("updated");
+      fetch("api/version", { cache: "no-store", credentials: "same-origin" })
+        .then(function (r) { return r.ok ? r.json() : null; })
+        .then(function (v) {
+          if (!v) { return; }
+          if (String(v.version) === seen) {
+            if (note) { note.textContent = "up to date"; }
+            return;
+          }
+          return fetch("part", { cache: "no-store", credentials: "same-origin" })
+            .then(function (r) { return r.ok ? r.text() : null; })
+            .then(function (html) {
+              if (html === null) { return; }
+              main.innerHTML = html;
+              seen = String(v.version);
+              main.setAttribute("data-version", seen);
+            });
+        })
+        .catch(function () { if (note) { note.textContent = "daemon not answering"; } });
+    }
+    if (main) { window.setInterval(tick, 3000); }
+  }
+  if (document.readyState === "loading") {
+    document.addEventListener("DOMContentLoaded", start);
+  } else {
+    start();
+  }
 })();
+"##;
+
+/// The page's style sheet: one column on a phone, two on a wide screen; three sets of
+/// colours, chosen by `data-mode` on the root element. Light; dark; and red, for the
+/// dome, where only red light keeps the eyes dark-adapted (common practice at the
+/// telescope): every colour there has no green or blue, and every picture is drawn in
+/// red through the `red-only` filter (`RED_ONLY_FILTER`). Each text colour stands at
+/// least 4.5:1 against its background (WCAG 2.1, success criterion 1.4.3).
+pub const STYLE: &str = r#":root{--bg:#fafaf7;--fg:#222;--quiet:#555;--line:#ccc;--head:#ecece6;--ok:#275;--warn:#960;--bad:#a00;--star:#3c3;--mark:#f33;--note-bg:#fdf2d0;--note-line:#c90;--focus:#05a;color-scheme:light}
+:root[data-mode=dark]{--bg:#111315;--fg:#ddd;--quiet:#a8a8a8;--line:#3a3d42;--head:#202327;--ok:#6c9;--warn:#e0b050;--bad:#ff7b72;--star:#4c4;--mark:#f55;--note-bg:#2a2410;--note-line:#a80;--focus:#6af;color-scheme:dark}
+:root[data-mode=red]{--bg:#000;--fg:#f00;--quiet:#e00;--line:#500;--head:#100;--ok:#f00;--warn:#f00;--bad:#f00;--star:#c00;--mark:#f00;--note-bg:#200;--note-line:#a00;--focus:#f00;color-scheme:dark}
+html{color:var(--fg);background:var(--bg);scrollbar-color:var(--line) var(--bg)}
+body{font-family:sans-serif;margin:0 auto;max-width:1200px;padding:0 10px;line-height:1.35;color:var(--fg);background:var(--bg)}
+h1{font-size:1.4em;margin:10px 0 2px}h2{font-size:1.15em;margin:16px 0 6px;border-bottom:1px solid var(--line)}
+table{border-collapse:collapse;margin:4px 0 10px;max-width:100%}
+td,th{border:1px solid var(--line);padding:2px 6px;text-align:left;vertical-align:top}
+th{background:var(--head)}td.n{text-align:right;white-space:nowrap}
+.reject{color:var(--bad)}.warn{color:var(--warn)}.ok{color:var(--ok)}
+:root[data-mode=red] .reject{font-weight:bold}
+.file{word-break:break-all;font-family:monospace;font-size:92%}
+ul.why{margin:2px 0;padding-left:18px}
+.grid{display:grid;grid-template-columns:1fr;gap:0 24px}
+.plots{display:grid;grid-template-columns:1fr;gap:0 16px}h3{font-size:1em;margin:10px 0 2px}
+@media (min-width:900px){.grid,.plots{grid-template-columns:1fr 1fr}}
+.grid>section{min-width:0}
+.scroll{overflow-x:auto}
+.pic{position:relative;max-width:100%}
+.pic img{display:block;width:100%;height:auto;background:#000}
+.pic svg{position:absolute;left:0;top:0;width:100%;height:100%}
+.star{fill:none;stroke:var(--star);stroke-width:1.2}
+.mark{fill:none;stroke:var(--mark);stroke-width:2}
+img.plot{display:block;max-width:100%;height:auto;margin:6px 0}
+:root[data-mode=dark] img.plot{filter:invert(.9) hue-rotate(180deg)}
+:root[data-mode=red] img{filter:url(#red-only)}
+:root[data-mode=red] img.plot{filter:invert(1) url(#red-only)}
+.anomaly{overflow:hidden;border-top:1px solid var(--line);padding:6px 0}
+.anomaly img{float:left;margin:0 10px 4px 0;max-width:40%}
+.kind{font-weight:bold}small,.quiet{color:var(--quiet)}
+.notice{background:var(--note-bg);border-left:4px solid var(--note-line);padding:4px 8px}
+dl.facts{display:grid;grid-template-columns:auto 1fr;gap:2px 10px;margin:4px 0}dl.facts dt{color:var(--quiet)}dl.facts dd{margin:0}
+.modes{display:flex;flex-wrap:wrap;gap:6px;align-items:center;justify-content:flex-end;margin:8px 0 0;font-size:.9em;color:var(--quiet)}
+.modes[hidden]{display:none}
+.modes button{font:inherit;color:var(--fg);background:var(--head);border:1px solid var(--line);border-radius:4px;padding:2px 10px;cursor:pointer}
+.modes button[aria-pressed=true]{border-color:var(--fg);font-weight:bold}
+:focus-visible{outline:2px solid var(--focus);outline-offset:2px}
+::selection{background:var(--fg);color:var(--bg)}
+.defs{position:absolute;width:0;height:0;overflow:hidden}
 "#;
 
-/// The page's style sheet: one column on a phone, two on a wide screen.
-pub const STYLE: &str = "body{font-family:sans-serif;margin:0 auto;max-width:1200px;padding:0 10px;line-height:1.35;color:#222;background:#fafaf7}\
-h1{font-size:1.4em;margin:10px 0 2px}h2{font-size:1.15em;margin:16px 0 6px;border-bottom:1px solid #ccc}\
-table{border-collapse:collapse;margin:4px 0 10px;max-width:100%}\
-td,th{border:1px solid #ccc;padding:2px 6px;text-align:left;vertical-align:top}\
-th{background:#ecece6}td.n{text-align:right;white-space:nowrap}\
-.reject{color:#a00}.warn{color:#a60}.ok{color:#275}\
-.file{word-break:break-all;font-family:monospace;font-size:92%}\
-ul.why{margin:2px 0;padding-left:18px}\
-.grid{display:grid;grid-template-columns:1fr;gap:0 24px}\
-.plots{display:grid;grid-template-columns:1fr;gap:0 16px}h3{font-size:1em;margin:10px 0 2px}\
-@media (min-width:900px){.grid,.plots{grid-template-columns:1fr 1fr}}\
-.grid>section{min-width:0}\
-.scroll{overflow-x:auto}\
-.pic{position:relative;max-width:100%}\
-.pic img{display:block;width:100%;height:auto;background:#000}\
-.pic svg{position:absolute;left:0;top:0;width:100%;height:100%}\
-.star{fill:none;stroke:#3c3;stroke-width:1.2}\
-.mark{fill:none;stroke:#f33;stroke-width:2}\
-img.plot{display:block;max-width:100%;height:auto;margin:6px 0}\
-.anomaly{overflow:hidden;border-top:1px solid #ddd;padding:6px 0}\
-.anomaly img{float:left;margin:0 10px 4px 0;max-width:40%}\
-.kind{font-weight:bold}small,.quiet{color:#555}\
-dl.facts{display:grid;grid-template-columns:auto 1fr;gap:2px 10px;margin:4px 0}dl.facts dt{color:#555}dl.facts dd{margin:0}";
+/// The filter the red mode draws pictures through: each pixel's luminance (Rec. 709
+/// weights, as sRGB's) into red, green and blue set to 0.
+pub const RED_ONLY_FILTER: &str = "<svg class=\"defs\" aria-hidden=\"true\" focusable=\"false\"><filter id=\"red-only\" color-interpolation-filters=\"sRGB\"><feColorMatrix type=\"matrix\" values=\"0.2126 0.7152 0.0722 0 0 0 0 0 0 0 0 0 0 0 0 0 0 0 1 0\"/></filter></svg>";
+
+/// The choice of colours, shown once the script runs (without it there is no choice).
+const MODES: &str =
+    "<nav id=\"modes\" class=\"modes\" hidden aria-label=\"colours of the page\">colours: \
+<button type=\"button\" data-mode=\"light\" aria-pressed=\"false\">light</button>\
+<button type=\"button\" data-mode=\"dark\" aria-pressed=\"false\">dark</button>\
+<button type=\"button\" data-mode=\"red\" aria-pressed=\"false\">red (night)</button></nav>";
 
 /// The page's icon: a ring round a dot, in the page's own colours.
 pub const ICON: &str = "<svg xmlns=\"http://www.w3.org/2000/svg\" viewBox=\"0 0 16 16\"><circle cx=\"8\" cy=\"8\" r=\"6\" fill=\"none\" stroke=\"#275\" stroke-width=\"2\"/><circle cx=\"8\" cy=\"8\" r=\"2\" fill=\"#222\"/></svg>";
@@ -255,7 +402,7 @@ pub fn html(v: &LiveView) -> String {
         "<!DOCTYPE html><html lang=\"en\"><head><meta charset=\"utf-8\">\
          <meta name=\"viewport\" content=\"width=device-width, initial-scale=1\">\
          <title>subwatch: night {}</title><link rel=\"stylesheet\" href=\"style.css\"><link rel=\"icon\" href=\"icon.svg\">\
-         <script src=\"app.js\" defer></script></head><body>\
+         <script src=\"app.js\"></script></head><body>{MODES}{RED_ONLY_FILTER}\
          <main id=\"live\" data-version=\"{}\">{}</main></body></html>",
         escape_html(v.night.as_deref().unwrap_or("")),
         v.version,
@@ -267,6 +414,23 @@ pub fn html(v: &LiveView) -> String {
 fn num(x: Option<f64>, digits: usize) -> String {
     x.filter(|v| v.is_finite())
         .map_or("-".into(), |v| format!("{v:.digits$}"))
+}
+
+/// A time shown on the page, marked with the clock it is on (`FRAME_CLOCK`, `PC_CLOCK`).
+fn time(t: &str, clock: &str) -> String {
+    format!("<time data-clock=\"{clock}\">{}</time>", escape_html(t))
+}
+
+/// A long stretch in words: "3 days 4 h", "5 h 12 min", "25 min".
+fn stretch(seconds: f64) -> String {
+    let m = (seconds.abs() / 60.0).round() as i64;
+    let (d, h, m) = (m / 1440, m / 60 % 24, m % 60);
+    match (d, h) {
+        (0, 0) => format!("{m} min"),
+        (0, _) => format!("{h} h {m:02} min"),
+        (1, _) => format!("1 day {h} h"),
+        _ => format!("{d} days {h} h"),
+    }
 }
 
 fn minutes(seconds: f64) -> String {
@@ -285,12 +449,35 @@ pub fn part(v: &LiveView) -> String {
     let night = v.night.as_deref().unwrap_or("(no frame yet)");
     let _ = write!(
         h,
-        "<h1>Night {}</h1><p class=\"quiet\">{}. Clock times are {}. \
-         <span id=\"updated\">updates by itself</span></p>",
+        "<h1>Night {}</h1><p class=\"quiet\">{}. Times are on {}. Frame times are the \
+         DATE-OBS in each frame's header; alerts, the sky and the daemon's times are on \
+         {PC_CLOCK_LABEL}. <span id=\"updated\">updates by itself</span></p>",
         e(night),
         e(&v.night_placed_by),
         e(&v.timezone)
     );
+    match v.frame_time_behind_s {
+        Some(b) if b > CLOCKS_APART_S => {
+            let _ = write!(
+                h,
+                "<p class=\"notice\" id=\"clocks-apart\">Frame times are {} behind {PC_CLOCK_LABEL}: \
+                 these frames were taken long before they reached the daemon (replayed or \
+                 copied in), so frame times (DATE-OBS) and times on {PC_CLOCK_LABEL} below \
+                 do not line up.</p>",
+                stretch(b)
+            );
+        }
+        Some(b) if b < -CLOCKS_APART_S => {
+            let _ = write!(
+                h,
+                "<p class=\"notice\" id=\"clocks-apart\">Frame times are {} ahead of {PC_CLOCK_LABEL}: \
+                 the camera's clock or this PC's is wrong, so frame times (DATE-OBS) and \
+                 times on {PC_CLOCK_LABEL} below do not line up.</p>",
+                stretch(b)
+            );
+        }
+        _ => {}
+    }
 
     h.push_str("<div class=\"grid\"><section id=\"groups\"><h2>Frames so far</h2>");
     if v.groups.is_empty() {
@@ -314,7 +501,7 @@ pub fn part(v: &LiveView) -> String {
     h.push_str("</section>");
 
     if v.rigs.len() > 1 {
-        h.push_str("<section id=\"rigs\"><h2>Rigs of the site</h2><div class=\"scroll\"><table><tr><th>rig</th><th>frames</th><th>warn</th><th>reject</th><th>last frame</th><th>daemon</th></tr>");
+        let _ = write!(h, "<section id=\"rigs\"><h2>Rigs of the site</h2><div class=\"scroll\"><table><tr><th>rig</th><th>frames</th><th>warn</th><th>reject</th><th>last recorded ({PC_CLOCK_LABEL})</th><th>daemon</th></tr>");
         for r in &v.rigs {
             let heard = match r.heard_s_ago {
                 Some(s) if s <= 60.0 => format!("heard {s:.0} s ago"),
@@ -328,7 +515,9 @@ pub fn part(v: &LiveView) -> String {
                 r.frames,
                 r.warned,
                 r.rejected,
-                e(r.last_recorded_local.as_deref().unwrap_or("-")),
+                r.last_recorded_local
+                    .as_deref()
+                    .map_or("-".into(), |t| time(t, PC_CLOCK)),
                 e(&heard)
             );
         }
@@ -340,9 +529,12 @@ pub fn part(v: &LiveView) -> String {
         Some(l) => {
             let _ = write!(
                 h,
-                "<p><span class=\"file\">{}</span> {}</p>",
+                "<p><span class=\"file\">{}</span>{}</p>",
                 e(&l.file),
-                e(l.time_local.as_deref().unwrap_or(""))
+                l.time_local.as_deref().map_or(String::new(), |t| format!(
+                    " {} <small>{FRAME_CLOCK_LABEL}</small>",
+                    time(t, FRAME_CLOCK)
+                ))
             );
             match &l.preview_url {
                 Some(url) if l.width > 0 && l.height > 0 => {
@@ -376,12 +568,13 @@ pub fn part(v: &LiveView) -> String {
                     }
                     let _ = write!(
                         h,
-                        "</svg></div><p class=\"quiet\">{} stars ringed in green{}.</p>",
+                        // Shapes, not colours: the red mode draws both in red.
+                        "</svg></div><p class=\"quiet\">{} stars ringed{}.</p>",
                         l.stars.len(),
                         if l.marks.is_empty() {
                             String::new()
                         } else {
-                            format!("; {} anomalies boxed in red", l.marks.len())
+                            format!(", {} anomalies boxed", l.marks.len())
                         }
                     );
                 }
@@ -438,19 +631,25 @@ pub fn part(v: &LiveView) -> String {
     if v.alerts.is_empty() {
         h.push_str("<p>None.</p>");
     } else {
-        h.push_str("<ul>");
+        let _ = write!(h, "<p class=\"quiet\">Times on {PC_CLOCK_LABEL}.</p><ul>");
         for a in &v.alerts {
             let _ = write!(
                 h,
                 "<li>{} <b>{}</b>: {}</li>",
-                e(a.time_local.as_deref().unwrap_or("")),
+                a.time_local
+                    .as_deref()
+                    .map_or(String::new(), |t| time(t, PC_CLOCK)),
                 e(&a.kind),
                 e(&a.message)
             );
         }
         h.push_str("</ul>");
     }
-    h.push_str("</section><section id=\"sky\"><h2>Sky and daemon</h2><dl class=\"facts\">");
+    let _ = write!(
+        h,
+        "</section><section id=\"sky\"><h2>Sky and daemon</h2>\
+         <p class=\"quiet\">Now, and times on {PC_CLOCK_LABEL}.</p><dl class=\"facts\">"
+    );
     if let Some(s) = &v.sky {
         let _ = write!(
             h,
@@ -464,7 +663,7 @@ pub fn part(v: &LiveView) -> String {
             let _ = write!(
                 h,
                 "<dt>astronomical dawn</dt><dd>{} (in {})</dd>",
-                e(at),
+                time(at, PC_CLOCK),
                 minutes(m * 60.0)
             );
         }
@@ -474,10 +673,17 @@ pub fn part(v: &LiveView) -> String {
         );
     }
     let d = &v.health;
+    let heard = match d.daemon_heard_s_ago {
+        Some(s) if d.daemon_running => format!("watching (heard {s:.0} s ago)"),
+        Some(s) => format!(
+            "<span class=\"reject\">not heard from for {}</span>",
+            minutes(s)
+        ),
+        None => "<span class=\"reject\">not heard from yet</span>".into(),
+    };
     let _ = write!(
         h,
-        "<dt>daemon</dt><dd>process {}: {} waiting, {} being read{}</dd>",
-        d.daemon_pid,
+        "<dt>daemon</dt><dd>{heard}: {} waiting, {} being read{}</dd>",
         d.waiting.unwrap_or(0),
         d.being_read.unwrap_or(0),
         match d.not_stored {
@@ -488,30 +694,44 @@ pub fn part(v: &LiveView) -> String {
     if let (Some(t), Some(ago)) = (&d.last_frame_local, d.seconds_since_last_frame) {
         let _ = write!(
             h,
-            "<dt>last frame</dt><dd>{} ({} ago)</dd>",
-            e(t),
+            "<dt>last frame recorded</dt><dd>{} ({} ago)</dd>",
+            time(t, PC_CLOCK),
             minutes(ago)
-        );
-    }
-    for disk in &d.disks {
-        let _ = write!(
-            h,
-            "<dt>free space</dt><dd>{:.1} GB at <span class=\"file\">{}</span></dd>",
-            disk.free_gb,
-            e(&disk.folder)
         );
     }
     let _ = write!(
         h,
+        "<dt>disk space</dt><dd>{}</dd>",
+        if d.low_disk {
+            format!(
+                "<span class=\"reject\">low: under {} GB free where frames, the store or reports are written</span>",
+                d.min_free_gb
+            )
+        } else {
+            format!(
+                "enough (over {} GB free where the daemon writes)",
+                d.min_free_gb
+            )
+        }
+    );
+    let _ = write!(
+        h,
         "<dt>outbox</dt><dd>{} message(s) waiting{}</dd></dl></section></div>",
         d.outbox_waiting,
-        d.outbox_last_error
-            .as_deref()
-            .map_or(String::new(), |err| format!(": {}", e(err)))
+        if d.outbox_failing {
+            "; <span class=\"reject\">the last attempt failed</span> (<code>subwatch outbox</code> on the PC says why)"
+        } else {
+            ""
+        }
     );
     h.push_str("<section id=\"plots\"><h2>The night's plots</h2>");
     if v.plots.is_empty() {
         h.push_str("<p class=\"quiet\">Drawn once a few frames are in.</p>");
+    } else {
+        let _ = write!(
+            h,
+            "<p class=\"quiet\">Plotted against {FRAME_CLOCK_LABEL}.</p>"
+        );
     }
     let mut group: Option<&str> = None;
     for p in &v.plots {
@@ -539,7 +759,7 @@ pub fn part(v: &LiveView) -> String {
     if v.frames.is_empty() {
         h.push_str("<p>None yet.</p>");
     } else {
-        h.push_str("<div class=\"scroll\"><table><tr><th>time</th><th>verdict</th><th>file, and why</th><th>FWHM</th><th>ecc.</th><th>sky ADU</th><th>stars</th></tr>");
+        let _ = write!(h, "<div class=\"scroll\"><table><tr><th>{FRAME_CLOCK_LABEL}</th><th>verdict</th><th>file, and why</th><th>FWHM</th><th>ecc.</th><th>sky ADU</th><th>stars</th></tr>");
         for f in &v.frames {
             let verdict = f.verdict.as_deref().unwrap_or(match f.status.as_str() {
                 "error" => "unreadable",
@@ -560,7 +780,9 @@ pub fn part(v: &LiveView) -> String {
             let _ = write!(
                 h,
                 "<tr><td>{}</td><td class=\"{class}\">{}</td><td><span class=\"file\">{}</span>",
-                e(f.time_local.as_deref().unwrap_or("-")),
+                f.time_local
+                    .as_deref()
+                    .map_or("-".into(), |t| time(t, FRAME_CLOCK)),
                 e(verdict),
                 e(&f.file)
             );
@@ -665,6 +887,294 @@ mod tests {
             !page.contains(" style="),
             "no inline style: the CSP forbids it"
         );
+    }
+
+    /// A view with every part filled, so that every field is in its JSON.
+    fn full_view() -> LiveView {
+        LiveView {
+            night: Some("2026-12-04".into()),
+            now_unix: 1.8e9,
+            timezone: "UTC".into(),
+            frames: vec![LiveFrame {
+                file: "a.fits".into(),
+                time_unix: Some(1.7e9),
+                time_local: Some("01:02:03".into()),
+                verdict: Some("ok".into()),
+                ..Default::default()
+            }],
+            latest: Some(LatestFrame {
+                file: "a.fits".into(),
+                time_local: Some("01:02:03".into()),
+                ..Default::default()
+            }),
+            alerts: vec![LiveAlert {
+                time_unix: 1.8e9,
+                time_local: Some("03:04:05".into()),
+                kind: "frames_stopped".into(),
+                message: "no new frame for 20 minutes".into(),
+            }],
+            analysed_unix: Some(1.8e9),
+            sky: Some(SkyNow {
+                astronomical_dawn_unix: Some(1.8e9 + 3600.0),
+                astronomical_dawn_local: Some("04:04:05".into()),
+                minutes_to_astronomical_dawn: Some(60.0),
+                ..Default::default()
+            }),
+            health: Health {
+                daemon_running: true,
+                daemon_heard_s_ago: Some(1.0),
+                last_frame_unix: Some(1.8e9 - 60.0),
+                last_frame_local: Some("03:03:05".into()),
+                seconds_since_last_frame: Some(60.0),
+                ..Default::default()
+            },
+            rigs: vec![
+                LiveRig {
+                    rig: "north".into(),
+                    last_recorded_local: Some("03:03:05".into()),
+                    heard_s_ago: Some(2.0),
+                    ..Default::default()
+                },
+                LiveRig {
+                    rig: "south".into(),
+                    ..Default::default()
+                },
+            ],
+            frame_time_behind_s: Some(1e8),
+            ..Default::default()
+        }
+    }
+
+    /// Every key of a JSON value, as `a.b[].c`.
+    fn keys(v: &serde_json::Value, at: &str, out: &mut Vec<String>) {
+        match v {
+            serde_json::Value::Object(m) => {
+                for (k, x) in m {
+                    let here = if at.is_empty() {
+                        k.clone()
+                    } else {
+                        format!("{at}.{k}")
+                    };
+                    out.push(here.clone());
+                    keys(x, &here, out);
+                }
+            }
+            serde_json::Value::Array(a) => {
+                for x in a {
+                    keys(x, &format!("{at}[]"), out);
+                }
+            }
+            _ => {}
+        }
+    }
+
+    #[test]
+    fn every_time_in_the_json_names_its_clock() {
+        let v = full_view();
+        let json = serde_json::to_value(&v).unwrap();
+        let mut all = Vec::new();
+        keys(&json, "", &mut all);
+        let times: Vec<&String> = all
+            .iter()
+            .filter(|k| !k.starts_with("clocks."))
+            .filter(|k| {
+                k.ends_with("_unix")
+                    || k.ends_with("_local")
+                    || k.ends_with("_ago")
+                    || k.ends_with("behind_s")
+                    || k.ends_with("since_last_frame")
+                    || k.ends_with("to_astronomical_dawn")
+            })
+            .collect();
+        assert!(times.len() >= 15, "{times:?}");
+        for k in times {
+            let clock = v.clocks.fields.get(k.as_str());
+            assert!(
+                matches!(clock, Some(&FRAME_CLOCK) | Some(&PC_CLOCK)),
+                "{k} has no clock"
+            );
+        }
+        // And nothing is named that the JSON does not hold.
+        for k in v.clocks.fields.keys() {
+            assert!(all.iter().any(|a| a == k), "{k} is not in the view");
+        }
+        assert_eq!(json["clocks"]["fields"]["frames[].time_unix"], "frame");
+        assert_eq!(json["clocks"]["fields"]["alerts[].time_unix"], "pc");
+    }
+
+    #[test]
+    fn every_time_on_the_page_names_its_clock() {
+        let mut v = full_view();
+        let page = part(&v);
+        let shown = page.matches("<time ").count();
+        // The frame's time in the list and under the picture; the alert, dawn, the last
+        // frame recorded and the rig's last record on this PC's clock.
+        assert_eq!(
+            page.matches("<time data-clock=\"frame\">").count(),
+            2,
+            "{page}"
+        );
+        assert_eq!(
+            page.matches("<time data-clock=\"pc\">").count(),
+            4,
+            "{page}"
+        );
+        assert_eq!(shown, 6);
+        assert!(page.contains(FRAME_CLOCK_LABEL) && page.contains(PC_CLOCK_LABEL));
+        // Frames taken 1e8 s before they were recorded: said, in words.
+        assert!(
+            page.contains("id=\"clocks-apart\">Frame times are 1157 days 9 h behind"),
+            "{page}"
+        );
+        v.frame_time_behind_s = Some(90.0);
+        assert!(!part(&v).contains("clocks-apart"));
+        v.frame_time_behind_s = Some(-7200.0);
+        assert!(part(&v).contains("Frame times are 2 h 00 min ahead"));
+    }
+
+    #[test]
+    fn the_view_tells_a_viewer_no_path_process_or_free_bytes() {
+        let json = serde_json::to_string(&full_view()).unwrap();
+        for gone in [
+            "\"path\"",
+            "daemon_pid",
+            "\"disks\"",
+            "\"free_gb\"",
+            "outbox_last_error",
+        ] {
+            assert!(!json.contains(gone), "{gone} in {json}");
+        }
+        let mut v = full_view();
+        v.health.low_disk = true;
+        v.health.min_free_gb = 5.0;
+        v.health.outbox_failing = true;
+        let page = part(&v);
+        assert!(page.contains("low: under 5 GB free"), "{page}");
+        assert!(page.contains("the last attempt failed"), "{page}");
+        assert!(page.contains("watching (heard 1 s ago)"), "{page}");
+    }
+
+    /// The custom properties a `:root...{}` rule of the style sheet sets.
+    fn palette(selector: &str) -> BTreeMap<String, String> {
+        let at = STYLE.find(&format!("{selector}{{")).expect(selector) + selector.len() + 1;
+        let body = &STYLE[at..at + STYLE[at..].find('}').unwrap()];
+        body.split(';')
+            .filter_map(|d| d.split_once(':'))
+            .filter(|(k, _)| k.starts_with("--"))
+            .map(|(k, v)| (k.to_string(), v.to_string()))
+            .collect()
+    }
+
+    /// A `#rgb` or `#rrggbb` colour as 0..=255 channels.
+    fn rgb(hex: &str) -> [u8; 3] {
+        let h = hex.trim_start_matches('#');
+        let wide: String = if h.len() == 3 {
+            h.chars().flat_map(|c| [c, c]).collect()
+        } else {
+            h.to_string()
+        };
+        let c = |i: usize| u8::from_str_radix(&wide[i..i + 2], 16).unwrap();
+        [c(0), c(2), c(4)]
+    }
+
+    /// Relative luminance and contrast ratio as WCAG 2.1 defines them (its glossary:
+    /// "relative luminance", "contrast ratio"), from sRGB channels.
+    fn contrast(a: [u8; 3], b: [u8; 3]) -> f64 {
+        let lum = |c: [u8; 3]| {
+            let lin = |v: u8| {
+                let s = f64::from(v) / 255.0;
+                if s <= 0.04045 {
+                    s / 12.92
+                } else {
+                    ((s + 0.055) / 1.055).powf(2.4)
+                }
+            };
+            0.2126 * lin(c[0]) + 0.7152 * lin(c[1]) + 0.0722 * lin(c[2])
+        };
+        let (x, y) = (lum(a), lum(b));
+        (x.max(y) + 0.05) / (x.min(y) + 0.05)
+    }
+
+    #[test]
+    fn the_red_mode_has_no_green_or_blue_anywhere() {
+        let light = palette(":root");
+        let red = palette(":root[data-mode=red]");
+        let dark = palette(":root[data-mode=dark]");
+        // Every colour the page uses is set by each mode: none leaks from the light one.
+        let names = |p: &BTreeMap<String, String>| p.keys().cloned().collect::<Vec<_>>();
+        assert_eq!(names(&red), names(&light));
+        assert_eq!(names(&dark), names(&light));
+        for (k, v) in &red {
+            let [_, g, b] = rgb(v);
+            assert_eq!((g, b), (0, 0), "{k}: {v}");
+        }
+        // Colours written outright (not through the properties) are black or red too.
+        let outside: String = STYLE
+            .lines()
+            .filter(|l| !l.starts_with(":root{") && !l.starts_with(":root[data-mode=dark]{"))
+            .collect();
+        let mut rest = outside.as_str();
+        while let Some(at) = rest.find('#') {
+            let hex: String = rest[at + 1..]
+                .chars()
+                .take_while(|c| c.is_ascii_hexdigit())
+                .collect();
+            if hex.len() == 3 || hex.len() == 6 {
+                let [_, g, b] = rgb(&hex);
+                assert_eq!((g, b), (0, 0), "#{hex}");
+            }
+            rest = &rest[at + 1..];
+        }
+        // Pictures go through a matrix whose green and blue rows are zero.
+        let values = RED_ONLY_FILTER.split("values=\"").nth(1).unwrap();
+        let m: Vec<f64> = values
+            .split('"')
+            .next()
+            .unwrap()
+            .split_whitespace()
+            .map(|x| x.parse().unwrap())
+            .collect();
+        assert_eq!(m.len(), 20);
+        assert!(m[5..15].iter().all(|x| *x == 0.0), "{m:?}");
+        assert!(STYLE.contains(":root[data-mode=red] img{filter:url(#red-only)}"));
+    }
+
+    #[test]
+    fn every_text_colour_stands_out_from_its_background_in_every_mode() {
+        // WCAG 2.1 success criterion 1.4.3 (contrast, minimum): 4.5:1 for text.
+        for mode in [":root", ":root[data-mode=dark]", ":root[data-mode=red]"] {
+            let p = palette(mode);
+            let c = |k: &str| rgb(&p[k]);
+            for (text, ground) in [
+                ("--fg", "--bg"),
+                ("--quiet", "--bg"),
+                ("--ok", "--bg"),
+                ("--warn", "--bg"),
+                ("--bad", "--bg"),
+                ("--fg", "--head"),
+                ("--fg", "--note-bg"),
+                ("--quiet", "--head"),
+            ] {
+                let r = contrast(c(text), c(ground));
+                assert!(r >= 4.5, "{mode}: {text} on {ground} is {r:.2}:1");
+            }
+        }
+        // The computation against WCAG's own extremes: black on white is 21:1.
+        assert!((contrast([0, 0, 0], [255, 255, 255]) - 21.0).abs() < 1e-9);
+    }
+
+    #[test]
+    fn the_page_offers_its_modes_and_loads_its_script_before_drawing() {
+        let page = html(&LiveView::default());
+        for mode in ["light", "dark", "red"] {
+            assert!(page.contains(&format!("data-mode=\"{mode}\"")), "{mode}");
+            assert!(SCRIPT.contains(&format!("\"{mode}\"")), "{mode}");
+        }
+        assert!(page.contains("<filter id=\"red-only\""));
+        // In the head and not deferred: the mode is set before the body is drawn.
+        let head = &page[..page.find("</head>").unwrap()];
+        assert!(head.contains("<script src=\"app.js\"></script>"), "{head}");
+        assert!(SCRIPT.contains("localStorage"));
     }
 
     #[test]

@@ -4,10 +4,12 @@
 //! `ANALYSIS_EVERY` and the latest frame's picture once per frame. Every request is then
 //! answered from the last [`Snapshot`], so a flood of requests costs copies of bytes
 //! already made, never a query or a frame read; and this thread runs at a lower CPU
-//! priority than the daemon's ingestion.
+//! priority than the daemon's ingestion. What it shows is for anyone who can open the
+//! page: a message that names a frame's path or a folder of the PC shows file and folder
+//! names only ([`Viewer`]).
 
 use std::collections::HashMap;
-use std::path::Path;
+use std::path::{Path, PathBuf};
 use std::sync::atomic::{AtomicBool, AtomicU64, Ordering};
 use std::sync::{Arc, RwLock};
 use std::time::{Duration, Instant};
@@ -32,6 +34,73 @@ const PAGE_CUTOUTS: usize = 8;
 const PREVIEW_SIDE: usize = 640;
 /// Stars drawn over the picture, brightest first.
 const PREVIEW_STARS: usize = 300;
+/// The daemon counts as running while its watching loop said so this recently (it says
+/// so every 2 s; a busy store can hold it up a while).
+const DAEMON_HEARD_WITHIN_S: f64 = 30.0;
+
+/// Messages as a viewer sees them: the folders the daemon works in (watched, written,
+/// the calibration library) named by their last part, and whatever lies under them by
+/// its path from there.
+struct Viewer {
+    /// (folder as a message writes it, its last part), longest first.
+    folders: Vec<(String, String)>,
+}
+
+impl Viewer {
+    fn from_config(config: &Config) -> Viewer {
+        let mut all: Vec<PathBuf> = super::checks::written_folders(config);
+        all.extend(config.calibration.library.clone());
+        let mut folders: Vec<(String, String)> = all
+            .iter()
+            .filter(|f| f.parent().is_some())
+            .map(|f| {
+                let name = f
+                    .file_name()
+                    .map_or(String::new(), |n| n.to_string_lossy().into_owned());
+                (crate::logging::shown(f), name)
+            })
+            .filter(|(full, name)| !full.is_empty() && !name.is_empty())
+            .collect();
+        folders.sort_by(|a, b| b.0.len().cmp(&a.0.len()).then(a.0.cmp(&b.0)));
+        folders.dedup();
+        Viewer { folders }
+    }
+
+    /// `text` with each folder's path shortened, only where the whole folder is named
+    /// (`/data/capture2` is not `/data/capture`).
+    fn text(&self, text: &str) -> String {
+        let mut out = text.to_string();
+        for (full, name) in &self.folders {
+            let mut shown = String::with_capacity(out.len());
+            let mut rest = out.as_str();
+            while let Some(at) = rest.find(full.as_str()) {
+                let after = &rest[at + full.len()..];
+                shown.push_str(&rest[..at]);
+                match after.chars().next() {
+                    Some(c) if std::path::is_separator(c) => {
+                        rest = &after[c.len_utf8()..];
+                    }
+                    Some(c) if c.is_alphanumeric() || "-_.".contains(c) => {
+                        shown.push_str(full);
+                        rest = after;
+                    }
+                    _ => {
+                        shown.push_str(name);
+                        rest = after;
+                    }
+                }
+            }
+            shown.push_str(rest);
+            out = shown;
+        }
+        out
+    }
+
+    /// A frame's message: its own path made its file name, then the folders shortened.
+    fn frame_text(&self, path: &str, text: &str) -> String {
+        self.text(&text.replace(path, &report::file_name(path)))
+    }
+}
 
 /// Everything the server answers with, made once per change.
 #[derive(Debug, Default)]
@@ -193,6 +262,7 @@ fn build(
 ) -> Result<Built, crate::store::StoreError> {
     let tz = config.timezone();
     let clock_of = |t: f64| report::local_clock(t, tz);
+    let viewer = Viewer::from_config(config);
     let (night, placed_by) = match store.latest_dated_night()? {
         Some(n) => (
             Some(n),
@@ -284,15 +354,21 @@ fn build(
             live::LiveFrame {
                 id: f.id,
                 file: report::file_name(&r.identity.path),
-                path: r.identity.path.clone(),
                 time_unix: r.time_unix,
                 time_local: r.time_unix.and_then(clock_of),
                 target: r.target.clone(),
                 filter: r.filter.clone(),
                 verdict: f.verdict.map(|v| v.as_str().to_string()),
                 status: r.status.as_str().to_string(),
-                error: r.error.clone(),
-                explanations: f.explanations.clone(),
+                error: r
+                    .error
+                    .as_deref()
+                    .map(|e| viewer.frame_text(&r.identity.path, e)),
+                explanations: f
+                    .explanations
+                    .iter()
+                    .map(|x| viewer.frame_text(&r.identity.path, x))
+                    .collect(),
                 exposure_s: r.header.as_ref().and_then(|h| h.exposure_s),
                 star_count: m.map(|m| m.star_count),
                 fwhm_px: m.and_then(|m| m.fwhm_px),
@@ -312,7 +388,7 @@ fn build(
             time_unix: t,
             time_local: clock_of(t),
             kind,
-            message,
+            message: viewer.text(&message),
         })
         .collect();
 
@@ -403,25 +479,43 @@ fn build(
         .meta("daemon")?
         .and_then(|s| serde_json::from_str(&s).ok());
     let field = |k: &str| daemon.as_ref().and_then(|d| d[k].as_u64());
+    let heard = daemon
+        .as_ref()
+        .and_then(|d| d["updated_unix"].as_f64())
+        .map(|t| (now - t).max(0.0));
     let (outbox_waiting, outbox_last_error) = store.outbox_state()?;
+    let min_free_gb = config.alerts.min_free_gb;
     view.health = live::Health {
-        daemon_pid: std::process::id(),
+        daemon_running: heard.is_some_and(|s| s <= DAEMON_HEARD_WITHIN_S),
+        daemon_heard_s_ago: heard,
         waiting: field("waiting"),
         being_read: field("in_flight"),
         not_stored: field("not_stored"),
         last_frame_unix: counts.last_recorded_unix,
         last_frame_local: counts.last_recorded_unix.and_then(clock_of),
         seconds_since_last_frame: counts.last_recorded_unix.map(|t| (now - t).max(0.0)),
-        disks: super::checks::free_space(&super::checks::written_folders(config))
-            .into_iter()
-            .map(|(folder, free)| live::Disk {
-                folder: crate::logging::shown(&folder),
-                free_gb: free as f64 / 1e9,
-            })
-            .collect(),
+        low_disk: super::checks::free_space(&super::checks::written_folders(config))
+            .iter()
+            .any(|(_, free)| (*free as f64 / 1e9) < min_free_gb),
+        min_free_gb,
         outbox_waiting,
-        outbox_last_error,
+        outbox_failing: outbox_last_error.is_some(),
     };
+    // The latest frame's time against this PC's when the last one was recorded: far
+    // apart when frames are replayed.
+    let latest_end = frames
+        .iter()
+        .filter_map(|f| {
+            let r = &f.record;
+            let exposure = r.header.as_ref().and_then(|h| h.exposure_s).unwrap_or(0.0);
+            r.time_unix.map(|t| t + exposure.max(0.0))
+        })
+        .filter(|t| t.is_finite())
+        .max_by(f64::total_cmp);
+    view.frame_time_behind_s = counts
+        .last_recorded_unix
+        .zip(latest_end)
+        .map(|(recorded, taken)| recorded - taken);
     Ok((view, images))
 }
 
@@ -436,6 +530,7 @@ fn analyse(
     limits: crate::frame::DecodeLimits,
     a: &mut Analysis,
 ) -> Result<(), crate::store::StoreError> {
+    let viewer = Viewer::from_config(config);
     let records = store.night_records(night)?;
     let doc = crate::batch::analyse_records(
         &records,
@@ -487,7 +582,7 @@ fn analyse(
         a.anomalies.push(live::LiveAnomaly {
             kind: an.kind.name().to_string(),
             group: report::group_heading(an.target.as_deref(), an.filter.as_deref()),
-            what: report::what(an),
+            what: viewer.text(&report::what(an)),
             frames: an.detections.len(),
             file: first.map(|d| report::file_name(&d.path)),
             x: first.map(|d| d.x),
@@ -513,4 +608,38 @@ fn analyse(
     a.cosmic_rays = summary.cosmic_rays.len();
     a.analysed_unix = Some(now);
     Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn a_viewer_sees_names_where_messages_name_the_pcs_folders() {
+        let mut config = Config::default();
+        config.watch.folders = vec![PathBuf::from("/srv/kestrel/capture")];
+        config.store.path = PathBuf::from("/var/lib/subwatch/subwatch.db");
+        config.report.folder = Some(PathBuf::from("/srv/kestrel/reports"));
+        let v = Viewer::from_config(&config);
+        assert_eq!(
+            v.text("only 3.1 GB free where /srv/kestrel/capture is; only 1.0 GB free where /var/lib/subwatch is"),
+            "only 3.1 GB free where capture is; only 1.0 GB free where subwatch is"
+        );
+        assert_eq!(
+            v.text("/srv/kestrel/capture/2026-12-04/a.fits: not FITS"),
+            "2026-12-04/a.fits: not FITS"
+        );
+        // Another folder that starts alike is left whole.
+        assert_eq!(
+            v.text("/srv/kestrel/capture2/a.fits"),
+            "/srv/kestrel/capture2/a.fits"
+        );
+        assert_eq!(
+            v.frame_text(
+                "/srv/kestrel/capture/2026-12-04/a.fits",
+                "/srv/kestrel/capture/2026-12-04/a.fits: truncated"
+            ),
+            "a.fits: truncated"
+        );
+    }
 }

@@ -9,6 +9,14 @@ recorded listed by file name; every image decoded; nothing past the window's rig
 (tables scroll inside their own `.scroll` boxes). Then the page follows a new frame
 without reloading, and a frame whose OBJECT header is markup shows it as text.
 
+The page's three sets of colours, chosen with its own buttons at both widths, once the
+night's plots are drawn: each is remembered (localStorage, kept across a reload and a
+new tab, and through a live update); every text colour stands at least 4.5:1 against its
+background (WCAG 2.1, success criterion 1.4.3); the dark mode's background is dark; and
+the red mode, for the dome, shows no green or blue light, checked on every computed
+colour, every picture's filter and every pixel of a full-page screenshot, with the light
+mode as the control that the pixel check can fail. Every time shown names its clock.
+
 From outside, with raw HTTP: an access token is required when one is configured (and is
 enough); traversal, NUL and oversized requests, and a POST, are refused with 4xx; and a
 daemon told to listen on every interface without a token refuses to start.
@@ -34,8 +42,11 @@ import threading
 import time
 import urllib.error
 import urllib.request
+from io import BytesIO
 
+import numpy as np
 from astropy.io import fits
+from PIL import Image
 
 from common import Checks
 
@@ -425,6 +436,230 @@ def load(page, url, width, height, mobile):
     return since
 
 
+# --------------------------------------------------------------------------
+# the page's colours
+# --------------------------------------------------------------------------
+MODES = ["light", "dark", "red"]
+MODE_KEY = "subwatch-page-mode"
+# Red mode: a pixel may have green and blue up to RED_FLOOR + RED_SHARE * red (levels of
+# 255). The page asks for exactly 0 (colours without green or blue, pictures through a
+# matrix that writes 0 into both); the floor allows a compositor's rounding of a level
+# or two, and 3 % of red is far below any light that reads as other than red: white and
+# grey have G = B = R, and the page's least red colour elsewhere (#960, its light mode's
+# warning) has G = 0.67 R. Rod vision, which the dark-adapted eye uses, is all but blind
+# beyond 620 nm and most sensitive near 500 nm (green-blue), which is why only red is
+# kept (common practice at the telescope).
+RED_FLOOR = 2
+RED_SHARE = 0.03
+# WCAG 2.1 success criterion 1.4.3 (contrast, minimum): 4.5:1 for text.
+WCAG_TEXT = 4.5
+
+STYLES = r"""(() => {
+  const parse = s => {
+    const m = /rgba?\(([^)]*)\)/.exec(s || '');
+    if (!m) return null;
+    const p = m[1].split(/[\s,\/]+/).filter(Boolean).map(Number);
+    return {r: p[0], g: p[1], b: p[2], a: p.length > 3 ? p[3] : 1};
+  };
+  const desc = el => el.tagName.toLowerCase() + (el.id ? '#' + el.id : '') +
+    (typeof el.className === 'string' && el.className ? '.' + el.className.split(' ').join('.') : '');
+  const props = ['color', 'background-color', 'border-top-color', 'border-right-color', 'border-bottom-color',
+                 'border-left-color', 'outline-color', 'fill', 'stroke', 'text-decoration-color',
+                 'column-rule-color', 'caret-color'];
+  const colours = [];
+  for (const el of [document.documentElement, ...document.querySelectorAll('*')]) {
+    if (el !== document.documentElement && el.getClientRects().length === 0) continue;
+    const cs = getComputedStyle(el);
+    for (const p of props) {
+      const c = parse(cs.getPropertyValue(p));
+      if (c && c.a > 0) colours.push({el: desc(el), p, r: c.r, g: c.g, b: c.b});
+    }
+  }
+  const rootBg = parse(getComputedStyle(document.documentElement).backgroundColor);
+  const texts = [];
+  for (const el of document.body.querySelectorAll('*')) {
+    if (el.getClientRects().length === 0) continue;
+    if (![...el.childNodes].some(n => n.nodeType === 3 && n.textContent.trim())) continue;
+    let bg = null;
+    for (let a = el; a; a = a.parentElement) {
+      const c = parse(getComputedStyle(a).backgroundColor);
+      if (c && c.a > 0) { bg = c; break; }
+    }
+    texts.push({el: desc(el), fg: parse(getComputedStyle(el).color), bg: bg || rootBg});
+  }
+  const imgs = Array.from(document.images).map(i => ({
+    src: i.getAttribute('src'), cls: i.className, where: i.closest('section') ? i.closest('section').id : '',
+    filter: getComputedStyle(i).filter, ok: i.complete && i.naturalWidth > 0}));
+  const pressed = Array.from(document.querySelectorAll('#modes button[aria-pressed="true"]'))
+    .map(b => b.getAttribute('data-mode'));
+  const times = Array.from(document.querySelectorAll('time')).map(t => ({
+    clock: t.getAttribute('data-clock'), text: t.textContent,
+    label: (t.closest('tr') && t.closest('table').querySelector('th') ? t.closest('table').innerText.split('\n')[0] : '') +
+           ' ' + (t.parentElement ? t.parentElement.innerText : '') + ' ' +
+           (t.closest('section') ? (t.closest('section').querySelector('p.quiet') || {innerText: ''}).innerText : '')}));
+  let stored = null;
+  try { stored = localStorage.getItem('""" + MODE_KEY + r"""'); } catch (e) { stored = 'unreadable: ' + e; }
+  return {mode: document.documentElement.getAttribute('data-mode'), stored, pressed,
+          shown: !!document.getElementById('modes') && !document.getElementById('modes').hidden,
+          colours, texts, imgs, times, rootBg};
+})()"""
+
+
+def relative_luminance(c):
+    """WCAG 2.1's relative luminance of an sRGB colour (its glossary's formula)."""
+    def lin(v):
+        v = v / 255.0
+        return v / 12.92 if v <= 0.04045 else ((v + 0.055) / 1.055) ** 2.4
+    return 0.2126 * lin(c["r"]) + 0.7152 * lin(c["g"]) + 0.0722 * lin(c["b"])
+
+
+def contrast_ratio(a, b):
+    la, lb = relative_luminance(a), relative_luminance(b)
+    return (max(la, lb) + 0.05) / (min(la, lb) + 0.05)
+
+
+def red_excess(r, g, b):
+    """How far green or blue is above the red mode's bound (<= 0: within it)."""
+    bound = RED_FLOOR + RED_SHARE * r
+    return max(g - bound, b - bound)
+
+
+def screenshot(page, width, path):
+    height = min(max(int(page.js("document.documentElement.scrollHeight")), 200), 16000)
+    data = page.call("Page.captureScreenshot", {"format": "png", "captureBeyondViewport": True,
+                                                "clip": {"x": 0, "y": 0, "width": width, "height": height,
+                                                         "scale": 1}})["data"]
+    raw = base64.b64decode(data)
+    with open(path, "wb") as f:
+        f.write(raw)
+    return np.asarray(Image.open(BytesIO(raw)).convert("RGB")).astype(np.int32)
+
+
+def pixels_beyond_red(rgb):
+    """(pixels whose green or blue is above the bound, largest G, largest B, pixels with any G or B)."""
+    r, g, b = rgb[..., 0], rgb[..., 1], rgb[..., 2]
+    bound = RED_FLOOR + RED_SHARE * r
+    beyond = int(np.count_nonzero((g > bound) | (b > bound)))
+    return beyond, int(g.max()), int(b.max()), int(np.count_nonzero((g > 0) | (b > 0)))
+
+
+def choose_mode(page, mode):
+    """Press the page's own button for `mode`; its state afterwards."""
+    clicked = page.js(f"(() => {{ const b = document.querySelector('#modes button[data-mode=\"{mode}\"]');"
+                      f" if (!b) return false; b.click(); return true; }})()")
+    # Two frames drawn after the click, so that what is measured is what is shown.
+    page.js("new Promise(r => requestAnimationFrame(() => requestAnimationFrame(() => r(true))))")
+    return clicked
+
+
+def check_modes(checks, page, url, shots, daemon):
+    """The three sets of colours at both widths, once the night's plots are in."""
+    for label, width, mobile in (("desktop", 1280, False), ("phone", 400, True)):
+        since = load(page, url, width, 900, mobile)
+        t0 = time.monotonic()
+        # The analysis (plots, cutouts) runs while the page is looked at, at most every 30 s.
+        ready = page.wait_js(IMAGES_READY + " && document.querySelectorAll('img.plot').length > 0", 75, every=0.5)
+        kinds = page.js("Array.from(document.images).map(i => i.closest('section') ? i.closest('section').id : '?')")
+        checks.record(f"{label}: the picture and the night's plots are on the page before the colours are checked",
+                      bool(ready), f"after {time.monotonic() - t0:.1f} s: images in {sorted(set(kinds or []))}, "
+                                   f"{(kinds or []).count('plots')} plot(s), {(kinds or []).count('anomalies')} cutout(s)")
+        for mode in MODES:
+            clicked = choose_mode(page, mode)
+            if mode == "red":
+                # A cutout as the page shows one (none of these frames may have an anomaly),
+                # made of the brightest picture there is: a plot, white with coloured lines.
+                page.js("(async () => { const a = document.createElement('div'); a.className = 'anomaly';"
+                        " a.id = 'control-cutout'; const i = document.createElement('img');"
+                        " i.src = document.querySelector('img.plot').getAttribute('src'); a.appendChild(i);"
+                        " document.getElementById('anomalies').appendChild(a); await i.decode(); return true; })()")
+            time.sleep(0.3)
+            st = page.js(STYLES)
+            checks.record(f"{label} ({width} px), {mode}: chosen with the page's own button and remembered",
+                          clicked and st["shown"] and st["mode"] == mode and st["stored"] == mode
+                          and st["pressed"] == [mode],
+                          f"button {'pressed' if clicked else 'missing'}; data-mode {st['mode']!r}, "
+                          f"stored {st['stored']!r}, pressed {st['pressed']}")
+            worst = min(((contrast_ratio(t["fg"], t["bg"]), t["el"]) for t in st["texts"] if t["fg"] and t["bg"]),
+                        default=(None, "-"))
+            checks.record(f"{label}, {mode}: every text stands at least {WCAG_TEXT}:1 against its background "
+                          f"(WCAG 2.1, 1.4.3)", worst[0] is not None and worst[0] >= WCAG_TEXT,
+                          f"{len(st['texts'])} text elements; lowest {worst[0]:.2f}:1 ({worst[1]})"
+                          if worst[0] is not None else "no text measured")
+            broken = [i["src"] for i in st["imgs"] if not i["ok"]]
+            checks.record(f"{label}, {mode}: every image still decodes", not broken and len(st["imgs"]) > 0,
+                          f"{len(st['imgs'])} images; broken {broken[:3]}")
+            shot = os.path.join(shots, f"status-{label}-{width}px-{mode}.png")
+            rgb = screenshot(page, width, shot)
+            beyond, gmax, bmax, tinted = pixels_beyond_red(rgb)
+            if mode == "light":
+                # The control: the same pixel check finds the light mode's green, blue and white.
+                checks.record(f"{label}, light (control): the red check finds green or blue in the light mode",
+                              beyond > 1000, f"{beyond} of {rgb.shape[0] * rgb.shape[1]} pixels beyond the bound; {shot}")
+            elif mode == "dark":
+                bg = st["rootBg"]
+                lum = relative_luminance(bg) if bg else 1.0
+                median = float(np.median(rgb.mean(axis=2)))
+                plots_inverted = all("invert" in i["filter"] for i in st["imgs"] if "plot" in i["cls"])
+                checks.record(f"{label}, dark: the page is dark (background luminance under 0.02, median pixel "
+                              f"under 40 of 255) and the white plots are drawn inverted",
+                              lum < 0.02 and median < 40 and plots_inverted,
+                              f"background {bg}, luminance {lum:.4f}; median pixel {median:.0f}; "
+                              f"plots inverted {plots_inverted}; {shot}")
+            else:
+                bad = [f"{c['el']} {c['p']} rgb({c['r']}, {c['g']}, {c['b']})" for c in st["colours"]
+                       if red_excess(c["r"], c["g"], c["b"]) > 0]
+                checks.record(f"{label}, red: no computed colour has green or blue above {RED_FLOOR} + "
+                              f"{RED_SHARE:.0%} of its red", not bad,
+                              f"{len(st['colours'])} colours of {len(set(c['el'] for c in st['colours']))} elements; "
+                              f"beyond: {bad[:3]}")
+                unfiltered = [i["src"] for i in st["imgs"] if "red-only" not in i["filter"]]
+                checks.record(f"{label}, red: every picture (the frame, plots, cutouts) is drawn through the "
+                              f"red-only filter", not unfiltered and len(st["imgs"]) > 0,
+                              f"{len(st['imgs'])} images, filters {sorted(set(i['filter'] for i in st['imgs']))}; "
+                              f"unfiltered {unfiltered[:3]}")
+                cutouts = [i for i in st["imgs"] if i["where"] == "anomalies"]
+                checks.record(f"{label}, red: no pixel of the full-page screenshot has green or blue above "
+                              f"{RED_FLOOR} + {RED_SHARE:.0%} of its red",
+                              beyond == 0 and rgb.shape[1] == width and len(cutouts) > 0,
+                              f"{rgb.shape[1]}x{rgb.shape[0]} px with {len(st['imgs'])} pictures "
+                              f"({len(cutouts)} cutout(s), one a control made of a plot): {beyond} beyond; "
+                              f"largest G {gmax}, largest B {bmax}; {tinted} pixels with any G or B; {shot}")
+                page.js("(() => { const c = document.getElementById('control-cutout'); if (c) c.remove(); return true; })()")
+        errors = errors_in(page, since)
+        checks.record(f"{label}: no console error or CSP violation while the colours changed", not errors,
+                      f"{len(errors)}: {errors[:3]}")
+    # The last choice (red) outlives a reload and holds in a new tab of the same browser.
+    page.call("Page.reload", {})
+    time.sleep(2)
+    st = page.js(STYLES)
+    checks.record("red is kept across a reload (localStorage), its button pressed",
+                  st["mode"] == "red" and st["pressed"] == ["red"], f"data-mode {st['mode']!r}, pressed {st['pressed']}")
+    # Times name their clock: frame time (DATE-OBS) or this PC's.
+    unlabelled = [t for t in st["times"]
+                  if not ((t["clock"] == "frame" and "DATE-OBS" in t["label"])
+                          or (t["clock"] == "pc" and "this PC" in t["label"]))]
+    clocks = sorted(set(t["clock"] or "none" for t in st["times"]))
+    checks.record("every time shown is marked with its clock and labelled beside it (DATE-OBS or this PC's clock)",
+                  len(st["times"]) >= 3 and not unlabelled and "frame" in clocks and "pc" in clocks,
+                  f"{len(st['times'])} times on clocks {clocks}; unlabelled {[(t['clock'], t['text']) for t in unlabelled][:3]}")
+    apart = page.js("(document.getElementById('clocks-apart') || {innerText: ''}).innerText")
+    checks.record("the sample frames (DATE-OBS in the past) are said to be far behind this PC's clock",
+                  "behind this PC" in apart, apart[:160] or "no notice")
+
+
+def new_tab_mode(browser, url):
+    """The mode a fresh tab of the same browser opens the page in."""
+    other = browser.new_page()
+    try:
+        other.call("Page.enable")
+        since = other.mark()
+        other.call("Page.navigate", {"url": url})
+        other.wait_event("Page.loadEventFired", since, 30)
+        return other.js("document.documentElement.getAttribute('data-mode')")
+    finally:
+        other.close()
+
+
 def check_width(checks, page, url, label, width, mobile, names, shots):
     since = load(page, url, width, 900, mobile)
     # The latest frame's picture is made a moment after the first request; the page
@@ -687,6 +922,11 @@ def check_browser(checks, binary, chromium, tmp, shots):
         errors = errors_in(page, since)
         checks.record("... and with no console error while it updated", not errors, f"{len(errors)}: {errors[:3]}")
 
+        check_modes(checks, page, url, shots, daemon)
+        mode = new_tab_mode(browser, url)
+        checks.record("a new tab of the same browser opens the page in red, as chosen", mode == "red",
+                      f"data-mode {mode!r}")
+
         # A header made of markup.
         since = page.mark()
         hostile_src = os.path.join(tmp, HOSTILE_FILE)
@@ -719,6 +959,12 @@ def check_browser(checks, binary, chromium, tmp, shots):
         made = page.js("document.querySelectorAll('img[src=\"x\"], [onerror]').length")
         checks.record("... also when the whole page is loaded afresh", made == 0 and page.js(
             f"document.body.innerText.includes({json.dumps(HOSTILE_OBJECT)})"), f"{made} element(s)")
+        st = page.js(STYLES)
+        bad = [f"{c['el']} {c['p']} rgb({c['r']}, {c['g']}, {c['b']})" for c in st["colours"]
+               if red_excess(c["r"], c["g"], c["b"]) > 0]
+        checks.record("... and the page stays red through a live update and a reload (no green or blue colour)",
+                      st["mode"] == "red" and not bad and HOSTILE_FILE in page.js("document.body.innerText"),
+                      f"data-mode {st['mode']!r}; {len(st['colours'])} colours, beyond: {bad[:3]}")
         dialogs = page.events_of("Page.javascriptDialogOpening")
         checks.record("no dialog opened (Page.javascriptDialogOpening never fired)", not dialogs,
                       f"{len(dialogs)}: {[d['params'].get('message') for d in dialogs][:3]}")

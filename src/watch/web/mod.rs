@@ -1,16 +1,23 @@
 //! The status page's HTTP server: read-only (GET and HEAD), on a thread and runtime of
 //! its own at a lower CPU priority than ingestion, answering every request from the
 //! last snapshot `page` made. Bounded everywhere: at most `MAX_CONNECTIONS` at once
-//! (more wait in the kernel's queue), a request's head at most 16 KiB and read within
-//! 10 s, a connection at most 60 s, a URL at most 2 KiB, no request body. A URL's path
-//! never reaches the file system: it names a snapshot entry or nothing. With a token,
-//! every request needs it (`Authorization: Bearer`, or the cookie a browser gets from
-//! `/?token=` once), compared in constant time.
+//! (more wait in the kernel's queue) and `clients::PER_CLIENT` from one client (more
+//! are closed at once, so one client cannot take the page from the others); a
+//! connection silent for `SILENT` (a new one that sends nothing, one kept alive after
+//! an answer, or a request's head that takes longer) is closed; a request's head at
+//! most 16 KiB, a connection at most 60 s, a URL at most 2 KiB, no request body. A URL's
+//! path never reaches the file system: it names a snapshot entry or nothing. With a
+//! token, every request needs it (`Authorization: Bearer`, the scheme in any case, or
+//! the cookie a browser gets from `/?token=` once), compared in constant time; a client
+//! that keeps failing waits longer before each attempt is looked at, and is named in the
+//! log once per window.
+
+mod clients;
 
 use std::convert::Infallible;
 use std::net::SocketAddr;
 use std::sync::atomic::Ordering;
-use std::sync::Arc;
+use std::sync::{Arc, Mutex};
 use std::time::Duration;
 
 use bytes::Bytes;
@@ -18,11 +25,16 @@ use http_body_util::Full;
 use hyper::body::Incoming;
 use hyper::{Request, Response, StatusCode};
 
+use self::clients::{Client, Clients};
 use super::page::{PageState, Snapshot};
 use crate::clock::Clock;
 use crate::live;
 
 const MAX_CONNECTIONS: usize = 64;
+/// A connection that sends no complete request head for this long is closed: long
+/// enough for a slow phone link to send a head of a few hundred bytes, and longer than
+/// the page's own 3 s polling, so a browser's kept-alive connection is reused.
+pub const SILENT: Duration = Duration::from_secs(5);
 const MAX_TARGET: usize = 2048;
 const COOKIE: &str = "subwatch_token";
 
@@ -88,6 +100,48 @@ fn query_value<'a>(query: &'a str, name: &str) -> Option<&'a str> {
     })
 }
 
+/// The token of an `Authorization` header's Bearer credentials. The scheme is
+/// case-insensitive and followed by one or more spaces (RFC 7235 §2.1).
+fn bearer(authorization: &str) -> Option<&str> {
+    let (scheme, rest) = authorization.trim().split_once(' ')?;
+    scheme
+        .eq_ignore_ascii_case("bearer")
+        .then(|| rest.trim_start_matches(' '))
+}
+
+/// What a request carries towards the token.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Credentials {
+    /// Nothing: a browser's first visit, or a script that forgot it.
+    None,
+    /// A header or a cookie holding the token.
+    Held,
+    /// `/?token=` holding the token: a browser signing in.
+    InAddress,
+    /// Something offered as the token, and not it: a failed sign-in.
+    Wrong,
+}
+
+/// Whether a request holds the token, by header, cookie or (on `/` only) the address.
+pub fn credentials(asked: &Asked<'_>, token: &str) -> Credentials {
+    let (path, query) = asked.target.split_once('?').unwrap_or((asked.target, ""));
+    let offered = [
+        asked.authorization.map(|h| bearer(h).unwrap_or("")),
+        asked.cookie.and_then(|c| cookie_value(c, COOKIE)),
+    ];
+    let by_address = query_value(query, "token").filter(|_| path == "/");
+    let matches = |t: &str| same_secret(t.as_bytes(), token.as_bytes());
+    if offered.iter().flatten().any(|t| matches(t)) {
+        Credentials::Held
+    } else if by_address.is_some_and(matches) {
+        Credentials::InAddress
+    } else if offered.iter().flatten().next().is_some() || by_address.is_some() {
+        Credentials::Wrong
+    } else {
+        Credentials::None
+    }
+}
+
 /// The answer to one request, from a snapshot. Pure: no I/O.
 pub fn answer(asked: &Asked<'_>, snap: &Snapshot, token: Option<&str>) -> Answer {
     if asked.target.len() > MAX_TARGET {
@@ -104,7 +158,10 @@ pub fn answer(asked: &Asked<'_>, snap: &Snapshot, token: Option<&str>) -> Answer
     if asked.has_body {
         return Answer::text(StatusCode::PAYLOAD_TOO_LARGE, "no request body is accepted");
     }
-    let (path, query) = asked.target.split_once('?').unwrap_or((asked.target, ""));
+    let path = asked
+        .target
+        .split_once('?')
+        .map_or(asked.target, |(p, _)| p);
     // The paths served are plain: letters, digits, '/', '.', '-', '_'. Anything else
     // (percent-encoding, "..", a backslash, a NUL) is refused before anything else.
     let plain = path.starts_with('/')
@@ -116,34 +173,27 @@ pub fn answer(asked: &Asked<'_>, snap: &Snapshot, token: Option<&str>) -> Answer
         return Answer::text(StatusCode::BAD_REQUEST, "no such address");
     }
     if let Some(token) = token {
-        let by_header = asked
-            .authorization
-            .and_then(|h| h.strip_prefix("Bearer "))
-            .is_some_and(|t| same_secret(t.trim().as_bytes(), token.as_bytes()));
-        let by_cookie = asked
-            .cookie
-            .and_then(|c| cookie_value(c, COOKIE))
-            .is_some_and(|t| same_secret(t.as_bytes(), token.as_bytes()));
-        if !by_header && !by_cookie {
-            // A browser shows the page after opening /?token=... once.
-            if let Some(t) = query_value(query, "token").filter(|_| path == "/") {
-                if same_secret(t.as_bytes(), token.as_bytes()) {
-                    let mut a = Answer::text(StatusCode::SEE_OTHER, "signed in");
-                    a.headers.push(("location", "/".into()));
-                    a.headers.push((
-                        "set-cookie",
-                        format!("{COOKIE}={token}; HttpOnly; SameSite=Strict; Path=/"),
-                    ));
-                    return a;
-                }
+        match credentials(asked, token) {
+            Credentials::Held => {}
+            Credentials::InAddress => {
+                // A browser shows the page after opening /?token=... once.
+                let mut a = Answer::text(StatusCode::SEE_OTHER, "signed in");
+                a.headers.push(("location", "/".into()));
+                a.headers.push((
+                    "set-cookie",
+                    format!("{COOKIE}={token}; HttpOnly; SameSite=Strict; Path=/"),
+                ));
+                return a;
             }
-            let mut a = Answer::text(
-                StatusCode::UNAUTHORIZED,
-                "this page needs its access token: send \"Authorization: Bearer TOKEN\", or open /?token=TOKEN once in this browser",
-            );
-            a.headers
-                .push(("www-authenticate", "Bearer realm=\"subwatch\"".into()));
-            return a;
+            Credentials::None | Credentials::Wrong => {
+                let mut a = Answer::text(
+                    StatusCode::UNAUTHORIZED,
+                    "this page needs its access token: send \"Authorization: Bearer TOKEN\", or open /?token=TOKEN once in this browser",
+                );
+                a.headers
+                    .push(("www-authenticate", "Bearer realm=\"subwatch\"".into()));
+                return a;
+            }
         }
     }
     if snap.page.is_empty() && !matches!(path, "/app.js" | "/style.css" | "/icon.svg") {
@@ -198,11 +248,24 @@ fn to_response(a: Answer) -> Response<Full<Bytes>> {
     r
 }
 
-fn respond(
-    req: &Request<Incoming>,
-    state: &PageState,
-    token: Option<&str>,
-    clock: &dyn Clock,
+/// What every connection's requests are answered with.
+struct Served {
+    state: Arc<PageState>,
+    token: Option<String>,
+    clock: Arc<dyn Clock>,
+    clients: Mutex<Clients>,
+}
+
+impl Served {
+    fn clients(&self) -> std::sync::MutexGuard<'_, Clients> {
+        self.clients.lock().unwrap_or_else(|p| p.into_inner())
+    }
+}
+
+async fn respond(
+    req: Request<Incoming>,
+    served: Arc<Served>,
+    client: Client,
 ) -> Response<Full<Bytes>> {
     let header = |name| req.headers().get(name).and_then(|v| v.to_str().ok());
     let has_body = header("transfer-encoding").is_some()
@@ -219,14 +282,47 @@ fn respond(
         cookie: header("cookie"),
         has_body,
     };
-    state.asked(clock.now_unix());
-    let snap = state.current();
+    let token = served.token.as_deref();
+    let offered = token.map_or(Credentials::None, |t| credentials(&asked, t));
+    if offered != Credentials::None {
+        // A client that kept failing waits before any attempt of its is looked at, the
+        // right token included: the wait cannot tell a guess that is right.
+        let wait = served.clients().wait(client, served.clock.now_unix());
+        if !wait.is_zero() {
+            tokio::time::sleep(wait).await;
+        }
+    }
+    let now = served.clock.now_unix();
+    served.state.asked(now);
+    let snap = served.state.current();
     // A bug in answering costs that request, not the server.
     let answered = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
         answer(&asked, &snap, token)
     }))
     .unwrap_or_else(|_| Answer::text(StatusCode::INTERNAL_SERVER_ERROR, "internal error"));
+    if offered == Credentials::Wrong {
+        if let Some(n) = served.clients().failed(client, now) {
+            tracing::warn!(
+                "status page: {n} failed sign-ins from {client} within {} minutes; each further attempt of it now waits up to {} s (said once per client per {} minutes)",
+                clients::WINDOW_S / 60.0,
+                clients::MAX_WAIT_S,
+                clients::WINDOW_S / 60.0
+            );
+        }
+    }
     to_response(answered)
+}
+
+/// A connection let in, counted against its client until it ends.
+struct Held {
+    served: Arc<Served>,
+    client: Client,
+}
+
+impl Drop for Held {
+    fn drop(&mut self) {
+        self.served.clients().close(self.client);
+    }
 }
 
 /// The server and its page builder; both stop when this is dropped.
@@ -250,7 +346,10 @@ pub fn start(
     let Some(listen) = config.web.listen else {
         return Ok(None);
     };
-    let token = config.web.token()?;
+    let token = config
+        .web
+        .token()
+        .map_err(|e| format!("web.token_file: {e}"))?;
     let listener = std::net::TcpListener::bind(listen)
         .map_err(|e| format!("cannot listen on {listen}: {e}"))?;
     let address = listener
@@ -306,7 +405,12 @@ async fn serve(
         }
     };
     let slots = Arc::new(tokio::sync::Semaphore::new(MAX_CONNECTIONS));
-    let token: Arc<Option<String>> = Arc::new(token);
+    let served = Arc::new(Served {
+        state,
+        token,
+        clock,
+        clients: Mutex::new(Clients::default()),
+    });
     let mut stop_check = tokio::time::interval(Duration::from_millis(250));
     loop {
         let Ok(slot) = slots.clone().acquire_owned().await else {
@@ -315,14 +419,14 @@ async fn serve(
         let accepted = tokio::select! {
             a = listener.accept() => a,
             _ = stop_check.tick() => {
-                if state.stop.load(Ordering::Relaxed) {
+                if served.state.stop.load(Ordering::Relaxed) {
                     return;
                 }
                 continue;
             }
         };
-        let stream = match accepted {
-            Ok((s, _)) => s,
+        let (stream, peer) = match accepted {
+            Ok(a) => a,
             Err(e) => {
                 // Out of file descriptors, most likely: wait rather than spin.
                 tracing::debug!("status page: accept: {e}");
@@ -330,16 +434,37 @@ async fn serve(
                 continue;
             }
         };
-        let (state, token, clock) = (state.clone(), token.clone(), clock.clone());
+        let client = Client::of(peer.ip());
+        let admitted = served.clients().open(client, served.clock.now_unix());
+        if let Err(say) = admitted {
+            // Closed at once: its slot goes back to everyone else.
+            if say {
+                tracing::warn!(
+                    "status page: {client} holds {} connections, the most one client may; more from it are closed (said once per client per {} minutes)",
+                    clients::PER_CLIENT,
+                    clients::WINDOW_S / 60.0
+                );
+            }
+            drop(stream);
+            continue;
+        }
+        let held = Held {
+            served: served.clone(),
+            client,
+        };
+        let served = served.clone();
         tokio::spawn(async move {
             let _slot = slot;
+            let _held = held;
             let service = hyper::service::service_fn(move |req: Request<Incoming>| {
-                let response = respond(&req, &state, token.as_deref(), clock.as_ref());
-                async move { Ok::<_, Infallible>(response) }
+                let served = served.clone();
+                async move { Ok::<_, Infallible>(respond(req, served, client).await) }
             });
             let connection = hyper::server::conn::http1::Builder::new()
                 .timer(hyper_util::rt::TokioTimer::new())
-                .header_read_timeout(Duration::from_secs(10))
+                // Runs from the moment a request's head is awaited (a new connection,
+                // or one kept alive after an answer) until the whole head is in.
+                .header_read_timeout(SILENT)
                 .max_buf_size(16 * 1024)
                 .max_headers(64)
                 .serve_connection(hyper_util::rt::TokioIo::new(stream), service);
@@ -477,6 +602,87 @@ mod tests {
         assert_eq!(
             answer(&get("/?token=wrong"), &s, token).status,
             StatusCode::UNAUTHORIZED
+        );
+    }
+
+    #[test]
+    fn the_bearer_scheme_is_read_in_any_case() {
+        // RFC 7235 §2.1: "It uses a case-insensitive token as a means to identify the
+        // authentication scheme", followed by 1*SP.
+        let s = snap();
+        let token = Some("0123456789abcdef-secret");
+        for header in [
+            "Bearer 0123456789abcdef-secret",
+            "bearer 0123456789abcdef-secret",
+            "BEARER 0123456789abcdef-secret",
+            "bEaReR   0123456789abcdef-secret",
+        ] {
+            let asked = Asked {
+                authorization: Some(header),
+                ..get("/")
+            };
+            assert_eq!(answer(&asked, &s, token).status, StatusCode::OK, "{header}");
+        }
+        for header in [
+            "Basic 0123456789abcdef-secret",
+            "Bearer0123456789abcdef-secret",
+            "0123456789abcdef-secret",
+        ] {
+            let asked = Asked {
+                authorization: Some(header),
+                ..get("/")
+            };
+            assert_eq!(
+                answer(&asked, &s, token).status,
+                StatusCode::UNAUTHORIZED,
+                "{header}"
+            );
+        }
+    }
+
+    #[test]
+    fn only_something_offered_as_the_token_is_a_failed_sign_in() {
+        let token = "0123456789abcdef-secret";
+        let c = |asked: Asked<'_>| credentials(&asked, token);
+        assert_eq!(c(get("/")), Credentials::None);
+        assert_eq!(
+            c(Asked {
+                cookie: Some("theme=red"),
+                ..get("/")
+            }),
+            Credentials::None
+        );
+        assert_eq!(
+            c(Asked {
+                cookie: Some("subwatch_token=guess"),
+                ..get("/api/night")
+            }),
+            Credentials::Wrong
+        );
+        assert_eq!(
+            c(Asked {
+                authorization: Some("Basic Z3Vlc3M="),
+                ..get("/")
+            }),
+            Credentials::Wrong
+        );
+        assert_eq!(c(get("/?token=guess")), Credentials::Wrong);
+        assert_eq!(
+            c(get("/?token=0123456789abcdef-secret")),
+            Credentials::InAddress
+        );
+        // The address signs in on the page itself only.
+        assert_eq!(
+            c(get("/api/night?token=0123456789abcdef-secret")),
+            Credentials::None
+        );
+        assert_eq!(
+            c(Asked {
+                authorization: Some("bearer 0123456789abcdef-secret"),
+                cookie: Some("subwatch_token=old"),
+                ..get("/")
+            }),
+            Credentials::Held
         );
     }
 
