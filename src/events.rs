@@ -58,31 +58,14 @@ pub fn write_voevents(
             continue;
         }
         let frame = doc.frames.iter().find(|f| f.path == first.path);
-        // The cutout beside the document, when its frame can still be read.
-        let cutout_name = format!("{night}_{local_id}.png");
-        let cutout = reader
-            .cutout(
-                std::path::Path::new(&first.path),
-                first.x,
-                first.y,
-                16,
-                limits,
-            )
-            .and_then(|png| {
-                std::fs::create_dir_all(folder).ok()?;
-                let p = folder.join(&cutout_name);
-                let part = p.with_extension("png.part");
-                std::fs::write(&part, png).ok()?;
-                std::fs::rename(&part, &p).ok()?;
-                Some(cutout_name.clone())
-            });
         // A position from a header WCS is good to about a pixel (common practice); 2″
         // when the plate scale is unknown.
         let scale = frame
             .and_then(|f| f.metrics.as_ref())
             .and_then(|m| m.plate_scale_arcsec)
             .unwrap_or(2.0);
-        let ctx = EventContext {
+        let cutout_name = format!("{night}_{local_id}.png");
+        let base = EventContext {
             authority,
             author: c.voevent.author.as_deref(),
             written_utc: &now,
@@ -90,9 +73,33 @@ pub fn write_voevents(
             error_deg: scale / 3600.0,
             instrument: frame.and_then(|f| f.instrument.as_deref()),
             telescope: None,
-            cutout: cutout.as_deref(),
+            cutout: None,
             night,
             local_id: &local_id,
+        };
+        // No document (no sky position): no cutout either.
+        if voevent_xml(a, &base).is_none() {
+            continue;
+        }
+        // The cutout beside the document, made once, when its frame can still be read.
+        let cutout_path = folder.join(&cutout_name);
+        let cutout = if cutout_path.exists() {
+            Some(cutout_name.as_str())
+        } else {
+            reader
+                .cutout(std::path::Path::new(&first.path), first.x, first.y, 16, limits)
+                .and_then(|png| {
+                    std::fs::create_dir_all(folder).ok()?;
+                    let part = cutout_path.with_extension("png.part");
+                    std::fs::write(&part, png).ok()?;
+                    let placed = crate::os::rename_no_replace(&part, &cutout_path).ok();
+                    let _ = std::fs::remove_file(&part);
+                    placed.map(|_| cutout_name.as_str())
+                })
+        };
+        let ctx = EventContext {
+            cutout,
+            ..base.clone()
         };
         let Some(xml) = voevent_xml(a, &ctx) else {
             continue;
@@ -104,12 +111,11 @@ pub fn write_voevents(
         std::fs::create_dir_all(folder).map_err(err)?;
         let part = path.with_extension("xml.part");
         std::fs::write(&part, xml).map_err(err)?;
-        if path.exists() {
-            let _ = std::fs::remove_file(&part);
-            continue;
+        let placed = crate::os::rename_no_replace(&part, &path);
+        let _ = std::fs::remove_file(&part);
+        if placed.map_err(err)? {
+            written.push(path);
         }
-        std::fs::rename(&part, &path).map_err(err)?;
-        written.push(path);
     }
     Ok(written)
 }

@@ -9,7 +9,24 @@
 use std::fmt::Write as _;
 
 use crate::contract::AnomalyRecord;
-use crate::text::escape_html as escape;
+
+/// Text for an XML 1.0 document: markup characters escaped, and every character XML
+/// forbids (controls other than tab and line ends, U+FFFE, U+FFFF; XML 1.0, section 2.2,
+/// production `Char`) replaced by U+FFFD, so a file name holding one cannot make the
+/// document unreadable.
+fn escape(s: &str) -> String {
+    let allowed = |c: char| {
+        matches!(c, '\u{9}' | '\u{A}' | '\u{D}')
+            || ('\u{20}'..='\u{D7FF}').contains(&c)
+            || ('\u{E000}'..='\u{FFFD}').contains(&c)
+            || ('\u{10000}'..='\u{10FFFF}').contains(&c)
+    };
+    let clean: String = s
+        .chars()
+        .map(|c| if allowed(c) { c } else { '\u{FFFD}' })
+        .collect();
+    crate::text::escape_html(&clean)
+}
 
 /// What the document needs beyond the anomaly.
 #[derive(Debug, Clone)]
@@ -220,5 +237,13 @@ mod tests {
         assert!(!valid_authority("ivo://"));
         assert!(!valid_authority("ivo://a b"));
         assert!(!valid_authority("ivo://a#b"));
+    }
+
+    #[test]
+    fn characters_xml_forbids_never_reach_the_document() {
+        // XML 1.0 (Fifth Edition), section 2.2: Char excludes U+FFFE, U+FFFF and the C0
+        // controls but tab, LF and CR.
+        let e = escape("kfa\u{FFFE}_0\u{FFFF}1\u{1}.fits <&>");
+        assert_eq!(e, "kfa\u{FFFD}_0\u{FFFD}1\u{FFFD}.fits &lt;&amp;&gt;");
     }
 }

@@ -668,7 +668,7 @@ fn check_config_reads_the_catalogue_and_writes_nothing() {
     assert!(!ok, "{said}");
     assert!(
         said.contains(&format!(
-            "error: line {line}: catalogue.files: {}: row 3, column \"ra_deg\": \"BAD\" is not a number",
+            "error: line {line}: catalogue.files: {}: row 3 (line 4), column \"ra_deg\": \"BAD\" is not a number",
             stars.display()
         )),
         "{said}"

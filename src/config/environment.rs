@@ -96,7 +96,7 @@ impl Config {
         if self.mail.to.is_empty() {
             warn(
                 "mail.to",
-                "no recipient: no morning summary or alert is mailed (report --send writes the summary's files only)".into(),
+                "no recipient: no morning summary or alert is mailed (`subwatch report` writes the summary's files: HTML, CSV, JSON)".into(),
             );
         } else if self.mail.smtp_host.is_none() {
             warn(
