@@ -285,6 +285,7 @@ pub fn run(
             rules: Vec::new(),
             site: config.site_position(),
             lists: None,
+            calibration: config.calibration.settings.clone(),
         };
         let mut label = None;
         for f in &previous {

@@ -87,7 +87,13 @@ pub fn write_voevents(
             Some(cutout_name.as_str())
         } else {
             reader
-                .cutout(std::path::Path::new(&first.path), first.x, first.y, 16, limits)
+                .cutout(
+                    std::path::Path::new(&first.path),
+                    first.x,
+                    first.y,
+                    16,
+                    limits,
+                )
                 .and_then(|png| {
                     std::fs::create_dir_all(folder).ok()?;
                     let part = cutout_path.with_extension("png.part");

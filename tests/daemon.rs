@@ -819,3 +819,69 @@ fn a_store_password_changed_mid_night_is_named_and_taken_up_from_the_file() {
         "{log}"
     );
 }
+
+/// Calibration frames are judged as they land, as the morning judges them: a flat too
+/// faint at dusk is said while it can still be taken again, with its reason, in the
+/// store's live verdict and on the status page's JSON.
+#[test]
+fn a_flat_too_faint_is_judged_as_it_lands() {
+    use subwatch::frame::cards::OutValue;
+    use subwatch::sim::calibration::{flat, Fault};
+    let s = site("");
+    let d = Daemon::start(&s.config);
+    std::thread::sleep(Duration::from_millis(500));
+    for (k, level) in [0.45, 0.46, 0.02].into_iter().enumerate() {
+        let keys = vec![
+            ("IMAGETYP".to_string(), OutValue::Text("Flat Field".into())),
+            ("EXPTIME".into(), OutValue::Real(2.0)),
+            ("FILTER".into(), OutValue::Text("L".into())),
+            ("XBINNING".into(), OutValue::Int(1)),
+            (
+                "DATE-OBS".into(),
+                OutValue::Text(format!("2026-03-14T18:5{k}:00")),
+            ),
+        ];
+        let pixels = flat(256, level, Fault::None, 40 + k as u64);
+        write_frame(
+            &s.capture.join(format!("flat_L_{k:03}.fits")),
+            &pixels,
+            Encoding::Unsigned16,
+            &keys,
+        )
+        .unwrap();
+    }
+    let conn = rusqlite::Connection::open(&s.db).ok();
+    let judged = || -> Vec<(String, Option<String>, Option<String>)> {
+        let Some(c) = conn.as_ref() else {
+            return Vec::new();
+        };
+        c.prepare("SELECT path, live_verdict, live_explanations_json FROM frames ORDER BY path")
+            .and_then(|mut st| {
+                st.query_map([], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)))
+                    .map(|rows| rows.filter_map(Result::ok).collect())
+            })
+            .unwrap_or_default()
+    };
+    let start = Instant::now();
+    let mut rows = judged();
+    while start.elapsed() < Duration::from_secs(30)
+        && !(rows.len() == 3 && rows.iter().all(|r| r.1.is_some()))
+    {
+        std::thread::sleep(Duration::from_millis(200));
+        rows = judged();
+    }
+    d.terminate();
+    assert_eq!(rows.len(), 3, "{rows:?}");
+    let faint = rows
+        .iter()
+        .find(|r| r.0.ends_with("flat_L_002.fits"))
+        .unwrap();
+    assert_eq!(faint.1.as_deref(), Some("reject"), "{rows:?}");
+    assert!(
+        faint.2.as_deref().unwrap_or("").contains("full scale"),
+        "the reason names the flat's level: {faint:?}"
+    );
+    for good in rows.iter().filter(|r| !r.0.ends_with("flat_L_002.fits")) {
+        assert_eq!(good.1.as_deref(), Some("ok"), "{rows:?}");
+    }
+}

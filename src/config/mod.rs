@@ -689,7 +689,11 @@ mod tests {
         };
         let said = missing.token().unwrap_err().to_string();
         // The system's reason said once, in words (no "(os error 2)" after it).
-        assert_eq!(said.matches("No such file or directory").count(), 1, "{said}");
+        assert_eq!(
+            said.matches("No such file or directory").count(),
+            1,
+            "{said}"
+        );
         assert!(!said.contains("os error"), "{said}");
     }
 }

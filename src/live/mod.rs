@@ -148,6 +148,9 @@ pub struct LiveFrame {
     pub verdict: Option<String>,
     /// "ok", "error" or "skipped": whether the frame could be measured.
     pub status: String,
+    /// "light", or the calibration frame's kind ("dark", "flat", "bias"), judged live as
+    /// calibration.
+    pub kind: String,
     pub error: Option<String>,
     pub explanations: Vec<String>,
     pub exposure_s: Option<f64>,
@@ -779,12 +782,17 @@ pub fn part(v: &LiveView) -> String {
             };
             let _ = write!(
                 h,
-                "<tr><td>{}</td><td class=\"{class}\">{}</td><td><span class=\"file\">{}</span>",
+                "<tr><td>{}</td><td class=\"{class}\">{}</td><td><span class=\"file\">{}</span>{}",
                 f.time_local
                     .as_deref()
                     .map_or("-".into(), |t| time(t, FRAME_CLOCK)),
                 e(verdict),
-                e(&f.file)
+                e(&f.file),
+                if f.kind == "light" || f.kind.is_empty() {
+                    String::new()
+                } else {
+                    format!(" <small>({})</small>", e(&f.kind))
+                }
             );
             let why: Vec<&String> = f.explanations.iter().chain(f.error.iter()).collect();
             if !why.is_empty() && verdict != "ok" {

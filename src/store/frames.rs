@@ -408,6 +408,18 @@ impl Store {
         Ok(out)
     }
 
+    /// Every frame of one night (lights and calibration frames), without stars, in time
+    /// order: (id, record, placement).
+    pub fn night_frames(
+        &self,
+        night: &str,
+    ) -> Result<Vec<(i64, FrameRecord, Option<Placement>)>, StoreError> {
+        self.frame_rows(
+            "WHERE night = ?1 AND (rig = ?2 OR ?2 IS NULL)",
+            values![night, self.scope()],
+        )
+    }
+
     /// Every frame of one night with its live verdict and explanations, in time order,
     /// without stars.
     pub fn night_live_frames(&self, night: &str) -> Result<Vec<LiveFrame>, StoreError> {

@@ -16,6 +16,8 @@ pub struct Judging {
     pub site: Option<Site>,
     /// The lists of frames to stack, when that action is on.
     pub lists: Option<crate::lists::Lists>,
+    /// How darks, flats and bias frames are judged (and how far back the library goes).
+    pub calibration: crate::night::calibration::CalibrationSettings,
 }
 
 /// A live verdict with its reasons.
@@ -37,8 +39,10 @@ impl std::fmt::Display for Judged {
 }
 
 /// Judge a just-recorded frame against the night so far, store the verdict, and refresh
-/// the group's list when asked to. `None` for a frame that is not judged (a calibration
-/// frame, or one without a night).
+/// the group's list when asked to. A calibration frame is judged as the morning judges
+/// it (`night::calibration`), over the night's calibration frames and lights so far:
+/// a flat set too faint at dusk can still be taken again. `None` for a frame that is
+/// not judged (one without a night, or a calibration frame that could not be measured).
 pub fn judge_in_store(
     store: &Store,
     record: &FrameRecord,
@@ -65,6 +69,35 @@ pub fn judge_missing(store: &Store, judging: &Judging) -> Result<usize, StoreErr
     Ok(missing.len())
 }
 
+/// The live verdict of a calibration frame: the night model's calibration judgement of
+/// the night so far (records without their stars). Every calibration frame of the night
+/// gets its judgement again, as its set grew.
+fn judge_calibration_frame(
+    store: &Store,
+    night: &str,
+    id: i64,
+    judging: &Judging,
+) -> Result<Option<Judged>, StoreError> {
+    let rows = store.night_frames(night)?;
+    let records: Vec<&FrameRecord> = rows.iter().map(|r| &r.1).collect();
+    let earlier = store.earlier_calibration(night, judging.calibration.library_days)?;
+    let earlier: Vec<&FrameRecord> = earlier.iter().collect();
+    let judged =
+        crate::night::calibration::judge_calibration(&records, &earlier, &judging.calibration);
+    let mut mine = None;
+    for c in &judged.frames {
+        let frame_id = rows[c.index].0;
+        store.set_live_verdict(frame_id, &c.judgement, None)?;
+        if frame_id == id {
+            mine = Some(Judged {
+                verdict: c.judgement.verdict,
+                reasons: c.judgement.reasons.clone(),
+            });
+        }
+    }
+    Ok(mine)
+}
+
 fn judge_frame(
     store: &Store,
     key: &GroupKey,
@@ -75,7 +108,7 @@ fn judge_frame(
         return Ok(None);
     };
     if key.skipped {
-        return Ok(None);
+        return judge_calibration_frame(store, night, id, judging);
     }
     let group = store.group_records(night, key.target.as_deref(), key.filter.as_deref())?;
     let records: Vec<&FrameRecord> = group.iter().map(|g| &g.1).collect();

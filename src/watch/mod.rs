@@ -214,6 +214,7 @@ async fn daemon(
             rules: config.rule_specs(),
             site: config.site_position(),
             lists,
+            calibration: config.calibration.settings.clone(),
         },
         config: config.clone(),
     });

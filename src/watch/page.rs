@@ -360,6 +360,9 @@ fn build(
                 filter: r.filter.clone(),
                 verdict: f.verdict.map(|v| v.as_str().to_string()),
                 status: r.status.as_str().to_string(),
+                kind: crate::night::calibration::kind_of(r)
+                    .unwrap_or("light")
+                    .to_string(),
                 error: r
                     .error
                     .as_deref()
