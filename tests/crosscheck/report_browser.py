@@ -20,6 +20,7 @@ usage: python report_browser.py path/to/subwatch
 
 import email
 import html as htmllib
+import glob
 import json
 import os
 import re
@@ -222,7 +223,30 @@ def main():
             blue, red = color_samples(shot)
             checks.record(f"{label}: the plots are drawn on screen", blue > 200 and red > 50,
                           f"{blue} blue and {red} red sample pixels")
+            if width == 1280:
+                # README's picture of the report is this run's: the top of the desktop page.
+                top = Image.open(shot)
+                top.crop((0, 0, width, min(1600, top.size[1]))).save(os.path.join(root, "docs", "report.png"))
+        check_readme_figures(checks, root, out, doc)
     return checks.finish()
+
+
+def check_readme_figures(checks, root, out, doc):
+    """README's statements about the demo night hold for this run: the frames and groups
+    the report shows, and the size of the mail (a range, as measured on this machine)."""
+    with open(os.path.join(root, "README.md")) as f:
+        readme = f.read()
+    m = re.search(r"demo night's mail is ([0-9]+)[–-]([0-9]+) kB", readme)
+    eml = sorted(glob.glob(os.path.join(out, "**", "*.eml"), recursive=True))
+    size = os.path.getsize(eml[0]) / 1000 if eml else None
+    checks.record("README: the demo mail's size is in the range it states",
+                  m is not None and size is not None and int(m.group(1)) <= size <= int(m.group(2)),
+                  f"{size:.0f} kB; README says {m.group(0) if m else 'nothing'}" if size else "no .eml written")
+    groups = {(f.get("target"), f.get("filter")) for f in doc["frames"]}
+    m = re.search(r"demo night holds ([0-9]+) light frames in ([0-9]+) groups", readme)
+    checks.record("README: the demo's frames and groups are the ones it states",
+                  m is not None and int(m.group(1)) == len(doc["frames"]) and int(m.group(2)) == len(groups),
+                  f"{len(doc['frames'])} frames in {len(groups)} groups; README: {m.group(0) if m else 'nothing'}")
 
 
 if __name__ == "__main__":
