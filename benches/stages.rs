@@ -5,7 +5,8 @@
 use std::time::Instant;
 
 use subwatch::measure::background::{BackgroundMap, BackgroundParams};
-use subwatch::measure::detect::{convolve_separable, detect, gaussian_kernel, DetectParams};
+use subwatch::measure::convolve::convolve_separable;
+use subwatch::measure::detect::{detect, gaussian_kernel, DetectParams};
 use subwatch::measure::{measure_image, MeasureParams};
 use subwatch::sim::{render, PsfShape, SimParams};
 

@@ -9,6 +9,7 @@ use ndarray::Array2;
 use rayon::prelude::*;
 
 use super::background::BackgroundMap;
+use super::convolve::convolve_visit;
 
 #[derive(Debug, Clone, Copy, serde::Serialize, serde::Deserialize)]
 pub struct DetectParams {
@@ -131,181 +132,6 @@ pub fn gaussian_kernel(fwhm: f64) -> Vec<f32> {
         .collect();
     let sum: f64 = k.iter().sum();
     k.iter().map(|v| (v / sum) as f32).collect()
-}
-
-/// Rows per band of the convolution.
-const BAND: usize = 32;
-
-/// Separable convolution with `kernel` along both axes; NaN pixels count as zero.
-/// Rows are processed in parallel bands so the only full-size allocation is the output,
-/// which is written once (never zeroed first).
-pub fn convolve_separable(image: &Array2<f32>, kernel: &[f32]) -> Array2<f32> {
-    let (h, w) = image.dim();
-    let mut out: Vec<f32> = Vec::with_capacity(h * w);
-    out.spare_capacity_mut()[..h * w]
-        .par_chunks_mut(BAND * w)
-        .enumerate()
-        .for_each_init(Scratch::default, |scratch, (band, rows)| {
-            convolve_band(image, kernel, band * BAND, rows, scratch);
-        });
-    // SAFETY: the bands cover all h·w elements and `convolve_band` writes every one.
-    unsafe { out.set_len(h * w) };
-    Array2::from_shape_vec((h, w), out).expect("shape matches")
-}
-
-/// The convolution band by band without keeping it: each band of output rows (its
-/// first row index and its values) goes to `visit` while still in cache, and the
-/// visits' results come back in band order. Memory: one band per worker.
-fn convolve_visit<T: Send>(
-    image: &Array2<f32>,
-    kernel: &[f32],
-    visit: impl Fn(usize, &[f32]) -> T + Sync,
-) -> Vec<T> {
-    let (h, w) = image.dim();
-    (0..h.div_ceil(BAND))
-        .into_par_iter()
-        .map_init(
-            || (Scratch::default(), Vec::new()),
-            |(scratch, band_out), band| {
-                let y0 = band * BAND;
-                let rows = BAND.min(h - y0);
-                band_out.clear();
-                band_out.reserve(rows * w);
-                convolve_band(
-                    image,
-                    kernel,
-                    y0,
-                    &mut band_out.spare_capacity_mut()[..rows * w],
-                    scratch,
-                );
-                // SAFETY: `convolve_band` wrote all rows·w elements.
-                unsafe { band_out.set_len(rows * w) };
-                visit(y0, band_out)
-            },
-        )
-        .collect()
-}
-
-/// Scratch rows a worker keeps from band to band.
-#[derive(Default)]
-struct Scratch {
-    horiz: Vec<f32>,
-    padded: Vec<f32>,
-}
-
-/// Filtered rows `y0 .. y0 + out.len()/w` into `out`, every element written.
-///
-/// On x86-64 processors with AVX2 the same loops run compiled for 8-lane vectors
-/// (chosen at run time, so the binary still runs anywhere). Only AVX2 is enabled, not
-/// FMA: each multiply and add is rounded as in the portable build, so the filtered
-/// values, and with them every detection, are the same on every machine.
-fn convolve_band(
-    image: &Array2<f32>,
-    kernel: &[f32],
-    y0: usize,
-    out: &mut [std::mem::MaybeUninit<f32>],
-    scratch: &mut Scratch,
-) {
-    #[cfg(target_arch = "x86_64")]
-    if std::arch::is_x86_feature_detected!("avx2") {
-        // SAFETY: the processor was just found to support AVX2.
-        unsafe { convolve_band_avx2(image, kernel, y0, out, scratch) };
-        return;
-    }
-    convolve_band_portable(image, kernel, y0, out, scratch);
-}
-
-#[cfg(target_arch = "x86_64")]
-#[target_feature(enable = "avx2")]
-unsafe fn convolve_band_avx2(
-    image: &Array2<f32>,
-    kernel: &[f32],
-    y0: usize,
-    out: &mut [std::mem::MaybeUninit<f32>],
-    scratch: &mut Scratch,
-) {
-    convolve_band_portable(image, kernel, y0, out, scratch);
-}
-
-#[inline(always)]
-fn convolve_band_portable(
-    image: &Array2<f32>,
-    kernel: &[f32],
-    y0: usize,
-    out: &mut [std::mem::MaybeUninit<f32>],
-    scratch: &mut Scratch,
-) {
-    let (h, w) = image.dim();
-    let r = kernel.len() / 2;
-    let src = image.as_slice().expect("standard layout");
-    let rows = out.len() / w;
-    let lo = y0.saturating_sub(r);
-    let hi = (y0 + rows + r).min(h);
-    let Scratch { horiz, padded } = scratch;
-    // Each output value is summed over all taps in registers, LANES columns at a time,
-    // and stored once; the taps are added in kernel order from zero, so every value is
-    // rounded exactly as a tap-by-tap pass over whole rows would round it.
-    const LANES: usize = 16;
-    // Horizontal pass for the rows this band needs, on a zero-padded copy of each row
-    // (NaN counts as zero) so the inner loop is a plain dot product.
-    horiz.clear();
-    horiz.resize((hi - lo) * w, 0.0);
-    padded.clear();
-    padded.resize(w + 2 * r, 0.0);
-    for y in lo..hi {
-        for (p, &v) in padded[r..r + w].iter_mut().zip(&src[y * w..(y + 1) * w]) {
-            *p = if v.is_finite() { v } else { 0.0 };
-        }
-        let d = &mut horiz[(y - lo) * w..(y - lo + 1) * w];
-        let whole = w / LANES * LANES;
-        for (c, chunk) in d[..whole].chunks_exact_mut(LANES).enumerate() {
-            let x = c * LANES;
-            let mut acc = [0.0f32; LANES];
-            for (k, &kv) in kernel.iter().enumerate() {
-                let p = &padded[x + k..x + k + LANES];
-                for (a, &v) in acc.iter_mut().zip(p) {
-                    *a += kv * v;
-                }
-            }
-            chunk.copy_from_slice(&acc);
-        }
-        for (x, o) in d.iter_mut().enumerate().skip(whole) {
-            let mut acc = 0.0f32;
-            for (k, &kv) in kernel.iter().enumerate() {
-                acc += kv * padded[x + k];
-            }
-            *o = acc;
-        }
-    }
-    // Vertical pass, over the rows of the kernel's reach that exist.
-    for dy in 0..rows {
-        let y = y0 + dy;
-        let o = &mut out[dy * w..(dy + 1) * w];
-        let k0 = y.saturating_sub(r);
-        let k1 = (y + r).min(h - 1);
-        let taps = (k0..=k1).map(|yy| (kernel[yy + r - y], (yy - lo) * w));
-        let whole = w / LANES * LANES;
-        for (c, chunk) in o[..whole].chunks_exact_mut(LANES).enumerate() {
-            let x = c * LANES;
-            let mut acc = [0.0f32; LANES];
-            for (kv, row) in taps.clone() {
-                let hv = &horiz[row + x..row + x + LANES];
-                for (a, &v) in acc.iter_mut().zip(hv) {
-                    *a += kv * v;
-                }
-            }
-            for (o, a) in chunk.iter_mut().zip(acc) {
-                o.write(a);
-            }
-        }
-        for (x, o) in o.iter_mut().enumerate().skip(whole) {
-            let mut acc = 0.0f32;
-            for (kv, row) in taps.clone() {
-                acc += kv * horiz[row + x];
-            }
-            o.write(acc);
-        }
-    }
 }
 
 /// A horizontal run of pixels above the detection threshold: row `y`, columns
@@ -749,17 +575,5 @@ mod tests {
         });
         assert_eq!(found.trails.len(), 1, "{:?}", found.candidates);
         assert!(found.candidates.is_empty(), "{:?}", found.candidates);
-    }
-
-    #[test]
-    fn convolution_of_a_delta_is_the_kernel_product() {
-        let mut img = Array2::<f32>::zeros((40, 40));
-        img[(20, 20)] = 1.0;
-        let k = gaussian_kernel(2.5);
-        let out = convolve_separable(&img, &k);
-        let r = k.len() / 2;
-        assert!((out[(20, 20)] - k[r] * k[r]).abs() < 1e-7);
-        assert!((out[(21, 18)] - k[r + 1] * k[r - 2]).abs() < 1e-7);
-        assert!((out.sum() - 1.0).abs() < 1e-5);
     }
 }

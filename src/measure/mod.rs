@@ -11,6 +11,7 @@
 pub mod background;
 pub mod calibration;
 mod candidate;
+pub mod convolve;
 pub mod detect;
 mod mosaic;
 mod noise;

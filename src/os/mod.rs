@@ -138,6 +138,29 @@ pub fn prepare_daemon_process() {
     imp::prepare_daemon_process()
 }
 
+/// Tell the service manager how the daemon stands ("READY=1", "STOPPING=1"): systemd's
+/// notify socket on Linux (`Type=notify` units); nothing elsewhere (a Windows service
+/// reports its state through the service control manager, in `service`).
+pub fn notify_service_manager(state: &str) {
+    imp::notify_service_manager(state)
+}
+
+/// The requests to stop a running daemon that the system delivers: SIGTERM and SIGINT on
+/// Unix, Ctrl-C, Ctrl-Break and the console closing on Windows.
+pub struct StopRequests(imp::StopRequests);
+
+impl StopRequests {
+    /// Listen for them (inside a tokio runtime).
+    pub fn listen() -> io::Result<Self> {
+        imp::StopRequests::listen().map(StopRequests)
+    }
+
+    /// The next request, named ("SIGTERM", "Ctrl-C").
+    pub async fn next(&mut self) -> &'static str {
+        self.0.next().await
+    }
+}
+
 /// The folder where a system-wide install keeps its configuration, store, reports and
 /// logs: `/etc/subwatch` and `/var/lib/subwatch` on Linux, `%ProgramData%\subwatch` on
 /// Windows. `kind` is "config", "data" or "logs".

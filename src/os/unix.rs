@@ -177,6 +177,48 @@ pub fn prepare_daemon_process() {
     unsafe { libc::signal(libc::SIGXFSZ, libc::SIG_IGN) };
 }
 
+pub fn notify_service_manager(state: &str) {
+    let Some(socket) = std::env::var_os("NOTIFY_SOCKET") else {
+        return;
+    };
+    let Ok(sock) = std::os::unix::net::UnixDatagram::unbound() else {
+        return;
+    };
+    let name = socket.to_string_lossy().into_owned();
+    let sent = if let Some(abstract_name) = name.strip_prefix('@') {
+        use std::os::linux::net::SocketAddrExt;
+        std::os::unix::net::SocketAddr::from_abstract_name(abstract_name.as_bytes())
+            .and_then(|addr| sock.send_to_addr(state.as_bytes(), &addr))
+    } else {
+        sock.send_to(state.as_bytes(), &name)
+    };
+    if let Err(e) = sent {
+        tracing::debug!("sd_notify {state}: {e}");
+    }
+}
+
+pub struct StopRequests {
+    term: tokio::signal::unix::Signal,
+    int: tokio::signal::unix::Signal,
+}
+
+impl StopRequests {
+    pub fn listen() -> io::Result<Self> {
+        use tokio::signal::unix::{signal, SignalKind};
+        Ok(StopRequests {
+            term: signal(SignalKind::terminate())?,
+            int: signal(SignalKind::interrupt())?,
+        })
+    }
+
+    pub async fn next(&mut self) -> &'static str {
+        tokio::select! {
+            _ = self.term.recv() => "SIGTERM",
+            _ = self.int.recv() => "SIGINT",
+        }
+    }
+}
+
 pub fn system_folder(kind: &str) -> PathBuf {
     PathBuf::from(match kind {
         "config" => "/etc/subwatch",

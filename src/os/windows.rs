@@ -513,6 +513,34 @@ pub fn prepare_daemon_process() {
     quiet_errors();
 }
 
+pub fn notify_service_manager(_state: &str) {
+    // A Windows service reports its state to the service control manager (`service`).
+}
+
+pub struct StopRequests {
+    ctrl_c: tokio::signal::windows::CtrlC,
+    ctrl_break: tokio::signal::windows::CtrlBreak,
+    close: tokio::signal::windows::CtrlClose,
+}
+
+impl StopRequests {
+    pub fn listen() -> io::Result<Self> {
+        Ok(StopRequests {
+            ctrl_c: tokio::signal::windows::ctrl_c()?,
+            ctrl_break: tokio::signal::windows::ctrl_break()?,
+            close: tokio::signal::windows::ctrl_close()?,
+        })
+    }
+
+    pub async fn next(&mut self) -> &'static str {
+        tokio::select! {
+            _ = self.ctrl_c.recv() => "Ctrl-C",
+            _ = self.ctrl_break.recv() => "Ctrl-Break",
+            _ = self.close.recv() => "the console closing",
+        }
+    }
+}
+
 pub fn system_folder(kind: &str) -> PathBuf {
     let base = std::env::var_os("ProgramData")
         .map(PathBuf::from)

@@ -12,6 +12,13 @@
 //! of that mark are one transaction; its verdict follows in a second one, and frames left
 //! without one are judged at start and once a minute; lists are rewritten whole.
 //!
+//! The daemon is a value, [`Daemon`], whose methods are its hand-offs: [`Daemon::start`]
+//! (claim, catch-up), a file event ([`Daemon::file_event`]), a rescan, a tick of the
+//! settle tracker ([`Daemon::tick`]), a finished job ([`Daemon::job_done`]), the periodic
+//! checks and heartbeat, and [`Daemon::shutdown`]. [`run_with_clock`] drives it from
+//! tokio's timers and the system's stop requests; a Windows service drives the same
+//! value, its stop control raising the same `stop` flag.
+//!
 //! This module reads the wall clock and the file system; reading, recording and judging
 //! live in `reader`, `store` and `judge`.
 
@@ -23,7 +30,6 @@ mod outage;
 pub mod page;
 pub mod schedule;
 pub mod settle;
-mod systemd;
 pub mod web;
 
 use std::collections::{HashMap, HashSet, VecDeque};
@@ -32,7 +38,7 @@ use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant};
 
-use notify::Watcher;
+use notify::{RecommendedWatcher, Watcher};
 use tokio::sync::mpsc;
 use tokio::task::JoinSet;
 
@@ -45,7 +51,6 @@ use crate::store::{Store, StoreError};
 use frame::{process, settle_interrupted, store_record, LogLine, Outcome};
 pub use judge::{judge_in_store, Judging};
 use settle::{Observation, SettleTracker};
-use systemd::sd_notify;
 
 #[derive(Debug, thiserror::Error)]
 pub enum WatchError {
@@ -136,50 +141,466 @@ fn mail_state(c: &Config) -> String {
     }
 }
 
-async fn daemon(
-    mut config: Config,
+/// Each job's answer: whether it stored kept records again, and what became of its files.
+type JobResult = (bool, Vec<Outcome>);
+
+/// The running daemon between hand-offs: what it watches, what waits, what is being
+/// read, and what the store has not taken yet.
+struct Daemon {
+    config: Config,
     workers: usize,
-    stop: Arc<AtomicBool>,
     wall: Arc<dyn Clock>,
-) -> Result<(), WatchError> {
-    // The calibration library is watched as a capture folder: its frames are recorded
-    // under the nights their DATE-OBS gives, for later nights to fall back on.
+    shared: Arc<Shared>,
+    claim: Arc<Mutex<crate::store::Claim>>,
+    filter: crate::walk::FrameFilter,
+    /// The version (size, modification time) of each path the store holds.
+    recorded: HashMap<String, (u64, i64)>,
+    tracker: SettleTracker,
+    ready: VecDeque<PathBuf>,
+    in_flight: HashSet<PathBuf>,
+    /// Records the store refused, oldest first, and their paths.
+    pending: VecDeque<Box<FrameRecord>>,
+    pending_paths: HashSet<PathBuf>,
+    retrying: bool,
+    stored_this_run: usize,
+    /// File events were dropped (the channel was full): the next tick rescans.
+    overflow: Arc<AtomicBool>,
+    started: Instant,
+    _web: Option<web::WebServer>,
+    _watcher: Option<RecommendedWatcher>,
+}
+
+/// Why the daemon stopped, in words for the log.
+type StopReason = &'static str;
+
+impl Daemon {
+    /// Start: claim the store (waiting for a shared one's server), judge what was left
+    /// without a verdict, serve the page, watch the folders, and find what landed while
+    /// the daemon was down. The file events come on the channel returned.
+    async fn start(
+        mut config: Config,
+        workers: usize,
+        stop: &AtomicBool,
+        stop_requests: &mut crate::os::StopRequests,
+        wall: Arc<dyn Clock>,
+    ) -> Result<Option<(Daemon, mpsc::Receiver<PathBuf>)>, WatchError> {
+        prepare_folders(&mut config)?;
+        let Some((claim, mut store)) = claim_store(&config, stop, stop_requests).await? else {
+            return Ok(None);
+        };
+        settle_interrupted(&mut store, wall.now_unix())?;
+        let web = start_page(&config, &wall);
+        let recorded = store.recorded_versions()?;
+        let shared = Arc::new(Shared {
+            clock: wall.clone(),
+            outage: outage::Outage::default(),
+            store: Mutex::new(store),
+            options: RecordOptions::from_config(&config),
+            reader: crate::reader::Reader::from_config(&config.measure),
+            judging: Judging {
+                rules: config.rule_specs(),
+                site: config.site_position(),
+                lists: crate::lists::Lists::from_config(&config),
+                calibration: config.calibration.settings.clone(),
+            },
+            config: config.clone(),
+        });
+        let overflow = Arc::new(AtomicBool::new(false));
+        let (watcher, events) = watch_folders(&config, overflow.clone())?;
+        let mut d = Daemon {
+            filter: crate::walk::FrameFilter::from_config(&config),
+            config,
+            workers,
+            wall,
+            shared,
+            claim: Arc::new(Mutex::new(claim)),
+            recorded,
+            tracker: SettleTracker::default(),
+            ready: VecDeque::new(),
+            in_flight: HashSet::new(),
+            pending: VecDeque::new(),
+            pending_paths: HashSet::new(),
+            retrying: false,
+            stored_this_run: 0,
+            overflow,
+            started: Instant::now(),
+            _web: web,
+            _watcher: watcher,
+        };
+        {
+            let store = d.shared.store.lock().unwrap_or_else(|p| p.into_inner());
+            let judged = judge::judge_missing(&store, &d.shared.judging)?;
+            if judged > 0 {
+                tracing::info!(
+                    "judged {judged} frame(s) recorded before the last stop without a verdict"
+                );
+            }
+        }
+        // Catch up: everything in the folders whose present version is not recorded.
+        let mut initial = d.filter.walk(&d.config.watch.folders);
+        initial.sort_by_key(|p| observe(p).map_or(0, |id| id.mtime_ns));
+        for p in initial {
+            d.consider(p);
+        }
+        tracing::info!(
+            "subwatch {} started: config {}; watching {}; store {}; {}; {} frame(s) to catch up on; {} worker(s)",
+            env!("CARGO_PKG_VERSION"),
+            d.config
+                .source
+                .as_deref()
+                .map_or("(built in)".into(), shown),
+            d.config
+                .watch
+                .folders
+                .iter()
+                .map(|f| shown(f))
+                .collect::<Vec<_>>()
+                .join(", "),
+            crate::store::Location::from_config(&d.config.store),
+            mail_state(&d.config),
+            d.tracker.len(),
+            d.workers
+        );
+        crate::os::notify_service_manager("READY=1");
+        Ok(Some((d, events)))
+    }
+
+    /// Seconds since the start, the settle tracker's clock.
+    fn elapsed(&self) -> f64 {
+        self.started.elapsed().as_secs_f64()
+    }
+
+    /// Whether a path is already on its way (read, queued, or waiting for the store).
+    fn busy(&self, p: &PathBuf) -> bool {
+        self.in_flight.contains(p) || self.ready.contains(p) || self.pending_paths.contains(p)
+    }
+
+    /// A path that may be a new frame, or a new version of one: tracked until it
+    /// settles, unless it is on its way already, left out, or recorded as it is.
+    fn consider(&mut self, path: PathBuf) {
+        if self.busy(&path)
+            || self.tracker.contains(&path)
+            || !self.filter.wants(&self.config.watch.folders, &path)
+        {
+            return;
+        }
+        let Some(id) = observe(&path) else {
+            return;
+        };
+        if self.recorded.get(&id.path) == Some(&(id.size, id.mtime_ns)) {
+            return;
+        }
+        let age = (self.wall.now_unix() - id.mtime_unix()).max(0.0);
+        let now = self.elapsed();
+        self.tracker.track(path, observation(&id), now, age);
+    }
+
+    /// A file event (durable only in memory: the rescan is what makes sure).
+    fn file_event(&mut self, path: PathBuf) {
+        self.consider(path);
+    }
+
+    /// Every frame in the folders against what is recorded.
+    fn rescan(&mut self) {
+        for p in self.filter.walk(&self.config.watch.folders) {
+            self.consider(p);
+        }
+    }
+
+    /// A tick of the settle tracker: files that stopped changing (and are complete, or
+    /// were given up on) become ready; a dropped file event makes a rescan.
+    fn tick(&mut self) {
+        if self.overflow.swap(false, Ordering::Relaxed) {
+            self.rescan();
+        }
+        let now = self.elapsed();
+        let settle = self.config.watch.settle_seconds;
+        for path in self.tracker.paths() {
+            if self.ready.len() >= self.config.watch.queue_limit {
+                break;
+            }
+            let obs = observe(&path).map(|id| observation(&id));
+            if self.tracker.observe(&path, obs, now, settle) {
+                // Complete by the header's own account (plain FITS, padding included), or
+                // not checkable (compressed): the settle time alone decides. A file that
+                // stays short for a long time was cut off (a crash mid-write): it is
+                // read, and recorded with its error.
+                let given_up = self.tracker.stable_for(&path, now) > (10.0 * settle).max(60.0);
+                if given_up || crate::frame::fits::looks_complete(&path) != Some(false) {
+                    self.tracker.forget(&path);
+                    self.ready.push_back(path);
+                }
+            }
+        }
+    }
+
+    /// Hand ready files to the workers, up to their number: each is marked as being read
+    /// in the store before its reader starts (`frame::process`).
+    fn dispatch(&mut self, jobs: &mut JoinSet<JobResult>) {
+        while self.in_flight.len() < self.workers {
+            let Some(path) = self.ready.pop_front() else {
+                break;
+            };
+            self.in_flight.insert(path.clone());
+            let shared = self.shared.clone();
+            jobs.spawn_blocking(move || (false, vec![process(&shared, &path)]));
+        }
+    }
+
+    /// Store again what the store refused, as one job.
+    fn retry_pending(&mut self, jobs: &mut JoinSet<JobResult>) {
+        if self.pending.is_empty() || self.retrying {
+            return;
+        }
+        self.retrying = true;
+        let batch: Vec<Box<FrameRecord>> = self.pending.drain(..).collect();
+        let shared = self.shared.clone();
+        jobs.spawn_blocking(move || {
+            (
+                true,
+                batch
+                    .into_iter()
+                    .map(|r| store_record(&shared, *r))
+                    .collect(),
+            )
+        });
+    }
+
+    /// A finished job: what it stored is recorded as recorded, what the store refused is
+    /// kept (at most `PENDING_LIMIT`), and each frame's line is logged.
+    fn job_done(&mut self, done: Result<JobResult, tokio::task::JoinError>) {
+        let (was_retry, outcomes) = match done {
+            Ok(o) => o,
+            Err(e) => {
+                tracing::error!("worker failed: {e}");
+                (false, Vec::new())
+            }
+        };
+        if was_retry {
+            self.retrying = false;
+        }
+        let mut retry_failed: Option<String> = None;
+        for outcome in outcomes {
+            match outcome {
+                Outcome::Stored { path, version, log } => {
+                    self.shared
+                        .outage
+                        .answered(self.wall.now_unix(), self.pending.len());
+                    self.in_flight.remove(&path);
+                    self.pending_paths.remove(&path);
+                    self.recorded
+                        .insert(path.to_string_lossy().into_owned(), version);
+                    self.log_stored(log);
+                }
+                Outcome::NotStored { record, error } => {
+                    let path = PathBuf::from(&record.identity.path);
+                    self.in_flight.remove(&path);
+                    if !was_retry && !self.shared.outage.away() {
+                        tracing::error!(
+                            "{} not recorded: {error}; kept, and stored again every 15 s until the store takes it",
+                            shown(&path)
+                        );
+                    } else {
+                        retry_failed = Some(error);
+                    }
+                    self.keep_pending(path, record);
+                }
+                Outcome::Gone(path) => {
+                    self.in_flight.remove(&path);
+                }
+            }
+        }
+        if let (Some(error), false) = (retry_failed, self.shared.outage.away()) {
+            tracing::error!(
+                "the store still fails ({} frame(s) waiting to be stored): {error}",
+                self.pending.len()
+            );
+        }
+    }
+
+    fn log_stored(&mut self, log: Option<LogLine>) {
+        match log {
+            Some(LogLine::Info(l)) => {
+                self.stored_this_run += 1;
+                tracing::info!("{l}");
+            }
+            Some(LogLine::Warn(l)) => {
+                self.stored_this_run += 1;
+                tracing::warn!("{l}");
+            }
+            None => {}
+        }
+    }
+
+    fn keep_pending(&mut self, path: PathBuf, record: Box<FrameRecord>) {
+        self.pending_paths.insert(path);
+        self.pending.push_back(record);
+        if self.pending.len() > PENDING_LIMIT {
+            if let Some(dropped) = self.pending.pop_front() {
+                let p = PathBuf::from(&dropped.identity.path);
+                self.pending_paths.remove(&p);
+                tracing::warn!(
+                    "{} let go while the store fails; it is read again from its file once the store works",
+                    shown(&p)
+                );
+            }
+        }
+    }
+
+    /// The periodic checks (stopped frames, disk, alerts, the summary, the outbox).
+    async fn checks(&self) {
+        let shared = self.shared.clone();
+        let _ = tokio::task::spawn_blocking(move || checks::minute_checks(&shared)).await;
+    }
+
+    /// The heartbeat: the daemon's state in the store, and its claim on the rig kept.
+    /// `Err` with the reason when another daemon took the rig meanwhile (this one stops).
+    async fn heartbeat(&self) -> Result<(), StopReason> {
+        let state = serde_json::json!({
+            "pid": std::process::id(),
+            "waiting": self.tracker.len() + self.ready.len(),
+            "in_flight": self.in_flight.len(),
+            "not_stored": self.pending.len(),
+            "updated_unix": self.wall.now_unix(),
+        });
+        let shared = self.shared.clone();
+        let claim = self.claim.clone();
+        let kept = tokio::task::spawn_blocking(move || {
+            if !shared.outage.away() {
+                let store = shared.store.lock().unwrap_or_else(|p| p.into_inner());
+                if let Err(e) = store.set_meta("daemon", &state.to_string()) {
+                    tracing::debug!("heartbeat: {e}");
+                }
+            }
+            // A shared store's server that restarted took the rig's claim with it: taken
+            // again, unless another daemon of this rig took it first.
+            claim.lock().unwrap_or_else(|p| p.into_inner()).keep()
+        })
+        .await;
+        match kept {
+            Ok(Ok(false)) => {
+                tracing::error!(
+                    "another daemon took rig '{}' while the store's server was away; this one stops (give each daemon its own rig name)",
+                    self.config.rig.name
+                );
+                Err("another daemon holds this rig")
+            }
+            Ok(Err(e)) => {
+                tracing::debug!("claim: {e}");
+                Ok(())
+            }
+            _ => Ok(()),
+        }
+    }
+
+    /// Stop: finish the frames being read (two minutes at most), say what the store did
+    /// not take (read again at the next start), and let the claim go.
+    async fn shutdown(mut self, mut jobs: JoinSet<JobResult>, why: StopReason) {
+        tracing::info!(
+            "stopping ({why}): finishing {} frame(s) being read",
+            self.in_flight.len()
+        );
+        crate::os::notify_service_manager("STOPPING=1");
+        let deadline = tokio::time::sleep(Duration::from_secs(120));
+        tokio::pin!(deadline);
+        while !jobs.is_empty() {
+            tokio::select! {
+                _ = &mut deadline => {
+                    tracing::warn!("gave up waiting for {} frame(s); they are read at the next start", jobs.len());
+                    break;
+                }
+                Some(done) = jobs.join_next() => {
+                    for outcome in done.map(|d| d.1).unwrap_or_default() {
+                        match outcome {
+                            Outcome::Stored { log, .. } => self.log_stored(log),
+                            Outcome::NotStored { record, error } => tracing::error!(
+                                "{} not recorded: {error}; it is read again at the next start",
+                                shown(Path::new(&record.identity.path))
+                            ),
+                            Outcome::Gone(_) => {}
+                        }
+                    }
+                }
+            }
+        }
+        if !self.pending.is_empty() {
+            tracing::error!(
+                "{} frame(s) the store did not take are read again at the next start",
+                self.pending.len()
+            );
+        }
+        tracing::info!(
+            "subwatch stopped: {} frame(s) recorded in this run",
+            self.stored_this_run
+        );
+    }
+}
+
+/// The watched folders as the daemon uses them: the calibration library among them (its
+/// frames recorded under the nights their DATE-OBS gives, for later nights to fall back
+/// on), each spelt canonically so events, scans and the store see one path per file.
+fn prepare_folders(config: &mut Config) -> Result<(), WatchError> {
     if let Some(library) = config.calibration.library.clone() {
         if !config.watch.folders.contains(&library) {
             config.watch.folders.push(library);
         }
     }
-    // One spelling per file: events, scans and the store all see canonical paths.
     for folder in config.watch.folders.iter_mut() {
         *folder = std::fs::canonicalize(&*folder).map_err(|e| WatchError::Notify {
             path: folder.clone(),
             source: notify::Error::io(e),
         })?;
     }
-    // One daemon per store: a second one is refused, naming the first.
-    // A shared database not reachable yet (the server starting with the PC) is waited
-    // for, said once; anything else wrong with the store stops the start.
+    Ok(())
+}
+
+/// One daemon per store: a second one is refused, naming the first. A shared database
+/// not reachable yet (the server starting with the PC) is waited for, said once;
+/// anything else wrong with the store stops the start. A stop asked for while waiting
+/// ends the wait (`None`): nothing was claimed, so nothing is left to finish.
+async fn claim_store(
+    config: &Config,
+    stop: &AtomicBool,
+    stop_requests: &mut crate::os::StopRequests,
+) -> Result<Option<(crate::store::Claim, Store)>, WatchError> {
     let mut said = false;
-    let (claim, mut store) = loop {
-        let opened = crate::store::claim_configured(&config)
-            .and_then(|claim| Ok((claim, Store::open_configured(&config)?)));
+    loop {
+        let opened = crate::store::claim_configured(config)
+            .and_then(|claim| Ok((claim, Store::open_configured(config)?)));
         match opened {
-            Ok(pair) => break pair,
-            Err(e) if e.is_unreachable() && !stop.load(Ordering::Relaxed) => {
+            Ok(pair) => return Ok(Some(pair)),
+            Err(e) if e.is_unreachable() => {
                 if !said {
                     tracing::error!(
                         "the store cannot be reached: {e}; trying again every 15 s (said once)"
                     );
                     said = true;
                 }
-                tokio::time::sleep(Duration::from_secs(15)).await;
+                let retry = tokio::time::sleep(Duration::from_secs(15));
+                tokio::pin!(retry);
+                loop {
+                    tokio::select! {
+                        why = stop_requests.next() => {
+                            tracing::info!("subwatch stopped ({why}) before the store could be reached: nothing recorded");
+                            return Ok(None);
+                        }
+                        _ = &mut retry => break,
+                        _ = tokio::time::sleep(Duration::from_millis(200)) => {
+                            if stop.load(Ordering::Relaxed) {
+                                return Ok(None);
+                            }
+                        }
+                    }
+                }
             }
             Err(e) => return Err(e.into()),
         }
-    };
-    settle_interrupted(&mut store, wall.now_unix())?;
-    // The status page: a failure to serve it costs the page, never the watching.
-    let _web = match web::start(&config, wall.clone()) {
+    }
+}
+
+/// The status page: a failure to serve it costs the page, never the watching.
+fn start_page(config: &Config, wall: &Arc<dyn Clock>) -> Option<web::WebServer> {
+    match web::start(config, wall.clone()) {
         Ok(Some(w)) => {
             tracing::info!(
                 "status page at http://{}/ ({})",
@@ -199,351 +620,98 @@ async fn daemon(
             tracing::error!("status page off: {e}");
             None
         }
-    };
-    let claim = Arc::new(Mutex::new(claim));
-    let mut recorded: HashMap<String, (u64, i64)> = store.recorded_versions()?;
-    let lists = crate::lists::Lists::from_config(&config);
-    let filter = crate::walk::FrameFilter::from_config(&config);
-    let shared = Arc::new(Shared {
-        clock: wall.clone(),
-        outage: outage::Outage::default(),
-        store: Mutex::new(store),
-        options: RecordOptions::from_config(&config),
-        reader: crate::reader::Reader::from_config(&config.measure),
-        judging: Judging {
-            rules: config.rule_specs(),
-            site: config.site_position(),
-            lists,
-            calibration: config.calibration.settings.clone(),
-        },
-        config: config.clone(),
-    });
+    }
+}
 
-    // File events: notify runs its own thread and only forwards paths.
-    let (tx, mut rx) = mpsc::channel::<PathBuf>(8192);
-    let overflow = Arc::new(AtomicBool::new(false));
-    let _watcher = if config.watch.poll_seconds == 0.0 {
-        let overflow = overflow.clone();
-        let mut w =
-            notify::recommended_watcher(move |res: notify::Result<notify::Event>| match res {
-                Ok(ev) => {
-                    for p in ev.paths {
-                        if tx.try_send(p).is_err() {
-                            overflow.store(true, Ordering::Relaxed);
-                        }
-                    }
+/// File events: notify runs its own thread and only forwards paths into a bounded
+/// channel; a full channel raises `overflow` (a rescan follows). Polling mode watches
+/// nothing (the channel stays empty).
+fn watch_folders(
+    config: &Config,
+    overflow: Arc<AtomicBool>,
+) -> Result<(Option<RecommendedWatcher>, mpsc::Receiver<PathBuf>), WatchError> {
+    let (tx, rx) = mpsc::channel::<PathBuf>(8192);
+    if config.watch.poll_seconds != 0.0 {
+        return Ok((None, rx));
+    }
+    let mut w = notify::recommended_watcher(move |res: notify::Result<notify::Event>| match res {
+        Ok(ev) => {
+            for p in ev.paths {
+                if tx.try_send(p).is_err() {
+                    overflow.store(true, Ordering::Relaxed);
                 }
-                Err(_) => overflow.store(true, Ordering::Relaxed),
-            })
+            }
+        }
+        Err(_) => overflow.store(true, Ordering::Relaxed),
+    })
+    .map_err(|source| WatchError::Notify {
+        path: PathBuf::new(),
+        source,
+    })?;
+    for folder in &config.watch.folders {
+        w.watch(folder, notify::RecursiveMode::Recursive)
             .map_err(|source| WatchError::Notify {
-                path: PathBuf::new(),
+                path: folder.clone(),
                 source,
             })?;
-        for folder in &config.watch.folders {
-            w.watch(folder, notify::RecursiveMode::Recursive)
-                .map_err(|source| WatchError::Notify {
-                    path: folder.clone(),
-                    source,
-                })?;
-        }
-        Some(w)
-    } else {
-        drop(tx);
-        None
-    };
-
-    let settle = config.watch.settle_seconds;
-    let start = Instant::now();
-    let clock = || start.elapsed().as_secs_f64();
-    let mut tracker = SettleTracker::default();
-    let mut ready: VecDeque<PathBuf> = VecDeque::new();
-    let mut in_flight: HashSet<PathBuf> = HashSet::new();
-    // Records the store refused, oldest first, and their paths.
-    let mut pending: VecDeque<Box<FrameRecord>> = VecDeque::new();
-    let mut pending_paths: HashSet<PathBuf> = HashSet::new();
-    let mut retrying = false;
-    let mut stored_this_run = 0usize;
-    // Each job: whether it stores kept records again, and what became of its files.
-    let mut jobs: JoinSet<(bool, Vec<Outcome>)> = JoinSet::new();
-
-    let consider = |path: PathBuf,
-                    tracker: &mut SettleTracker,
-                    recorded: &HashMap<String, (u64, i64)>,
-                    busy: &dyn Fn(&PathBuf) -> bool,
-                    now: f64| {
-        if busy(&path) || tracker.contains(&path) || !filter.wants(&config.watch.folders, &path) {
-            return;
-        }
-        let Some(id) = observe(&path) else {
-            return;
-        };
-        if recorded.get(&id.path) == Some(&(id.size, id.mtime_ns)) {
-            return;
-        }
-        let age = (wall.now_unix() - id.mtime_unix()).max(0.0);
-        tracker.track(path, observation(&id), now, age);
-    };
-
-    {
-        let store = shared.store.lock().unwrap_or_else(|p| p.into_inner());
-        let judged = judge::judge_missing(&store, &shared.judging)?;
-        if judged > 0 {
-            tracing::info!(
-                "judged {judged} frame(s) recorded before the last stop without a verdict"
-            );
-        }
     }
-    // Catch up: everything in the folders whose present version is not recorded.
-    let mut initial = filter.walk(&config.watch.folders);
-    initial.sort_by_key(|p| observe(p).map_or(0, |id| id.mtime_ns));
-    for p in initial {
-        let busy = |_: &PathBuf| false;
-        consider(p, &mut tracker, &recorded, &busy, clock());
-    }
-    tracing::info!(
-        "subwatch {} started: config {}; watching {}; store {}; {}; {} frame(s) to catch up on; {} worker(s)",
-        env!("CARGO_PKG_VERSION"),
-        config
-            .source
-            .as_deref()
-            .map_or("(built in)".into(), shown),
-        config
-            .watch
-            .folders
-            .iter()
-            .map(|f| shown(f))
-            .collect::<Vec<_>>()
-            .join(", "),
-        crate::store::Location::from_config(&config.store),
-        mail_state(&config),
-        tracker.len(),
-        workers
-    );
-    sd_notify("READY=1");
+    Ok((Some(w), rx))
+}
 
-    let tick = Duration::from_secs_f64((settle / 4.0).clamp(0.05, 1.0));
-    let mut ticker = tokio::time::interval(tick);
-    let rescan_every = if config.watch.poll_seconds > 0.0 {
-        config.watch.poll_seconds
+/// Drive a daemon from tokio's timers, its file events and the system's stop requests,
+/// until one of them, or `stop`, says to stop.
+async fn daemon(
+    config: Config,
+    workers: usize,
+    stop: Arc<AtomicBool>,
+    wall: Arc<dyn Clock>,
+) -> Result<(), WatchError> {
+    let mut stop_requests = crate::os::StopRequests::listen().map_err(WatchError::Runtime)?;
+    let Some((mut d, mut events)) =
+        Daemon::start(config, workers, &stop, &mut stop_requests, wall).await?
+    else {
+        return Ok(());
+    };
+    let settle = d.config.watch.settle_seconds;
+    let mut ticker =
+        tokio::time::interval(Duration::from_secs_f64((settle / 4.0).clamp(0.05, 1.0)));
+    let rescan_every = if d.config.watch.poll_seconds > 0.0 {
+        d.config.watch.poll_seconds
     } else {
-        config.watch.rescan_seconds
+        d.config.watch.rescan_seconds
     };
     let mut rescan = tokio::time::interval(Duration::from_secs_f64(rescan_every));
     rescan.tick().await;
     let mut heartbeat = tokio::time::interval(Duration::from_secs(2));
-    let mut minute = tokio::time::interval(Duration::from_secs_f64(config.watch.checks_seconds));
+    let mut checks = tokio::time::interval(Duration::from_secs_f64(d.config.watch.checks_seconds));
     let mut retry = tokio::time::interval(Duration::from_secs(15));
     retry.tick().await;
-    let mut sigterm = tokio::signal::unix::signal(tokio::signal::unix::SignalKind::terminate())
-        .map_err(WatchError::Runtime)?;
-    let mut sigint = tokio::signal::unix::signal(tokio::signal::unix::SignalKind::interrupt())
-        .map_err(WatchError::Runtime)?;
-
-    let why_stopped = loop {
-        let busy =
-            |p: &PathBuf| in_flight.contains(p) || ready.contains(p) || pending_paths.contains(p);
+    let mut jobs: JoinSet<JobResult> = JoinSet::new();
+    let why = loop {
         tokio::select! {
-            _ = sigterm.recv() => break "SIGTERM",
-            _ = sigint.recv() => break "SIGINT",
-            Some(path) = rx.recv() => {
-                consider(path, &mut tracker, &recorded, &busy, clock());
-            }
+            why = stop_requests.next() => break why,
+            Some(path) = events.recv() => d.file_event(path),
             _ = rescan.tick() => {
-                overflow.store(false, Ordering::Relaxed);
-                for p in filter.walk(&config.watch.folders) {
-                    consider(p, &mut tracker, &recorded, &busy, clock());
-                }
+                d.overflow.store(false, Ordering::Relaxed);
+                d.rescan();
             }
-            _ = minute.tick() => {
-                let shared = shared.clone();
-                let _ = tokio::task::spawn_blocking(move || checks::minute_checks(&shared)).await;
-            }
-            _ = retry.tick(), if !pending.is_empty() && !retrying => {
-                retrying = true;
-                let batch: Vec<Box<FrameRecord>> = pending.drain(..).collect();
-                let shared = shared.clone();
-                jobs.spawn_blocking(move || {
-                    (true, batch.into_iter().map(|r| store_record(&shared, *r)).collect())
-                });
-            }
+            _ = checks.tick() => d.checks().await,
+            _ = retry.tick() => d.retry_pending(&mut jobs),
             _ = heartbeat.tick() => {
-                let state = serde_json::json!({
-                    "pid": std::process::id(),
-                    "waiting": tracker.len() + ready.len(),
-                    "in_flight": in_flight.len(),
-                    "not_stored": pending.len(),
-                    "updated_unix": wall.now_unix(),
-                });
-                let shared = shared.clone();
-                let claim = claim.clone();
-                let kept = tokio::task::spawn_blocking(move || {
-                    if !shared.outage.away() {
-                        let store = shared.store.lock().unwrap_or_else(|p| p.into_inner());
-                        if let Err(e) = store.set_meta("daemon", &state.to_string()) {
-                            tracing::debug!("heartbeat: {e}");
-                        }
-                    }
-                    // A shared store's server that restarted took the rig's claim with
-                    // it: taken again, unless another daemon of this rig took it first.
-                    claim.lock().unwrap_or_else(|p| p.into_inner()).keep()
-                }).await;
-                match kept {
-                    Ok(Ok(false)) => {
-                        tracing::error!(
-                            "another daemon took rig '{}' while the store's server was away; this one stops (give each daemon its own rig name)",
-                            config.rig.name
-                        );
-                        break "another daemon holds this rig";
-                    }
-                    Ok(Err(e)) => tracing::debug!("claim: {e}"),
-                    _ => {}
+                if let Err(why) = d.heartbeat().await {
+                    break why;
                 }
             }
-            Some(done) = jobs.join_next() => {
-                let (was_retry, outcomes) = match done {
-                    Ok(o) => o,
-                    Err(e) => {
-                        tracing::error!("worker failed: {e}");
-                        (false, Vec::new())
-                    }
-                };
-                if was_retry {
-                    retrying = false;
-                }
-                let mut retry_failed: Option<String> = None;
-                for outcome in outcomes {
-                    match outcome {
-                        Outcome::Stored { path, version, log } => {
-                            shared.outage.answered(wall.now_unix(), pending.len());
-                            in_flight.remove(&path);
-                            pending_paths.remove(&path);
-                            recorded.insert(path.to_string_lossy().into_owned(), version);
-                            match log {
-                                Some(LogLine::Info(l)) => {
-                                    stored_this_run += 1;
-                                    tracing::info!("{l}");
-                                }
-                                Some(LogLine::Warn(l)) => {
-                                    stored_this_run += 1;
-                                    tracing::warn!("{l}");
-                                }
-                                None => {}
-                            }
-                        }
-                        Outcome::NotStored { record, error } => {
-                            let path = PathBuf::from(&record.identity.path);
-                            in_flight.remove(&path);
-                            if !was_retry && !shared.outage.away() {
-                                tracing::error!(
-                                    "{} not recorded: {error}; kept, and stored again every 15 s until the store takes it",
-                                    shown(&path)
-                                );
-                            } else {
-                                retry_failed = Some(error);
-                            }
-                            pending_paths.insert(path);
-                            pending.push_back(record);
-                            if pending.len() > PENDING_LIMIT {
-                                if let Some(dropped) = pending.pop_front() {
-                                    let p = PathBuf::from(&dropped.identity.path);
-                                    pending_paths.remove(&p);
-                                    tracing::warn!(
-                                        "{} let go while the store fails; it is read again from its file once the store works",
-                                        shown(&p)
-                                    );
-                                }
-                            }
-                        }
-                        Outcome::Gone(path) => {
-                            in_flight.remove(&path);
-                        }
-                    }
-                }
-                if let (Some(error), false) = (retry_failed, shared.outage.away()) {
-                    tracing::error!(
-                        "the store still fails ({} frame(s) waiting to be stored): {error}",
-                        pending.len()
-                    );
-                }
-            }
+            Some(done) = jobs.join_next() => d.job_done(done),
             _ = ticker.tick() => {
                 if stop.load(Ordering::Relaxed) {
-                    break "the demo's end";
+                    break "asked to stop";
                 }
-                if overflow.swap(false, Ordering::Relaxed) {
-                    // Events were dropped: the folders themselves are the truth.
-                    for p in filter.walk(&config.watch.folders) {
-                        consider(p, &mut tracker, &recorded, &busy, clock());
-                    }
-                }
-                let now = clock();
-                for path in tracker.paths() {
-                    if ready.len() >= config.watch.queue_limit {
-                        break;
-                    }
-                    let obs = observe(&path).map(|id| observation(&id));
-                    if tracker.observe(&path, obs, now, settle) {
-                        // Complete by the header's own account (plain FITS, padding
-                        // included), or not checkable (compressed): the settle time
-                        // alone decides. A file that stays short for a long time was cut
-                        // off (a crash mid-write): it is read, and recorded with its error.
-                        let given_up = tracker.stable_for(&path, now) > (10.0 * settle).max(60.0);
-                        if given_up || crate::frame::fits::looks_complete(&path) != Some(false) {
-                            tracker.forget(&path);
-                            ready.push_back(path);
-                        }
-                    }
-                }
+                d.tick();
             }
         }
-        while in_flight.len() < workers {
-            let Some(path) = ready.pop_front() else { break };
-            in_flight.insert(path.clone());
-            let shared = shared.clone();
-            jobs.spawn_blocking(move || (false, vec![process(&shared, &path)]));
-        }
+        d.dispatch(&mut jobs);
     };
-
-    tracing::info!(
-        "stopping ({why_stopped}): finishing {} frame(s) being read",
-        in_flight.len()
-    );
-    sd_notify("STOPPING=1");
-    let deadline = tokio::time::sleep(Duration::from_secs(120));
-    tokio::pin!(deadline);
-    while !jobs.is_empty() {
-        tokio::select! {
-            _ = &mut deadline => {
-                tracing::warn!("gave up waiting for {} frame(s); they are read at the next start", jobs.len());
-                break;
-            }
-            Some(done) = jobs.join_next() => {
-                for outcome in done.map(|d| d.1).unwrap_or_default() {
-                    match outcome {
-                        Outcome::Stored { log: Some(LogLine::Info(l)), .. } => {
-                            stored_this_run += 1;
-                            tracing::info!("{l}");
-                        }
-                        Outcome::Stored { log: Some(LogLine::Warn(l)), .. } => {
-                            stored_this_run += 1;
-                            tracing::warn!("{l}");
-                        }
-                        Outcome::NotStored { record, error } => tracing::error!(
-                            "{} not recorded: {error}; it is read again at the next start",
-                            shown(Path::new(&record.identity.path))
-                        ),
-                        _ => {}
-                    }
-                }
-            }
-        }
-    }
-    if !pending.is_empty() {
-        tracing::error!(
-            "{} frame(s) the store did not take are read again at the next start",
-            pending.len()
-        );
-    }
-    tracing::info!("subwatch stopped: {stored_this_run} frame(s) recorded in this run");
+    d.shutdown(jobs, why).await;
     Ok(())
 }
