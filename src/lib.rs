@@ -31,6 +31,7 @@ pub mod reader;
 pub mod record;
 pub mod report;
 pub mod rules;
+pub mod season;
 pub mod sim;
 pub mod sky;
 pub mod sky_fit;
