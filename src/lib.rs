@@ -5,6 +5,7 @@
 //! See ARCHITECTURE.md for the map and the invariants.
 
 pub mod actions;
+pub mod archive;
 pub mod astrometry;
 pub mod batch;
 pub mod buffer;
@@ -36,6 +37,7 @@ pub mod sim;
 pub mod sky;
 pub mod sky_fit;
 pub mod store;
+pub mod targets;
 pub mod text;
 pub mod voevent;
 pub mod walk;

@@ -11,6 +11,7 @@ mod csv;
 mod html;
 pub mod plots;
 pub mod preview;
+pub mod season;
 mod text;
 mod words;
 
