@@ -71,6 +71,16 @@ pub struct TargetFrame {
     pub quality: Option<FrameQuality>,
 }
 
+/// A target the store holds light frames of (`report --list-targets`).
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct TargetNights {
+    pub target: String,
+    pub nights: i64,
+    pub frames: i64,
+    pub first_night: Option<String>,
+    pub last_night: Option<String>,
+}
+
 /// Which of the frames to stack make the best list.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub enum Best {

@@ -34,7 +34,6 @@ pub use frames::{
 pub use lock::{claim, daemon_pid, DaemonLock};
 pub use outbox::OutboxMessage;
 pub use schema::SCHEMA_VERSION;
-pub use targets::TargetNights;
 
 use db::{values, Conn};
 

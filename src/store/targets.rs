@@ -4,23 +4,13 @@
 
 use std::collections::BTreeMap;
 
-use serde::{Deserialize, Serialize};
+use serde::Deserialize;
 
 use super::db::{values, DbError, Row};
 use super::{Store, StoreError};
 use crate::rules::Verdict;
 use crate::season::plan::NightUsable;
-use crate::season::{FrameQuality, TargetFrame};
-
-/// A target the store holds light frames of.
-#[derive(Debug, Clone, PartialEq, Serialize)]
-pub struct TargetNights {
-    pub target: String,
-    pub nights: i64,
-    pub frames: i64,
-    pub first_night: Option<String>,
-    pub last_night: Option<String>,
-}
+use crate::season::{FrameQuality, TargetFrame, TargetNights};
 
 /// The one header fact a target's summary reads.
 #[derive(Deserialize)]
