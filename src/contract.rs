@@ -7,6 +7,10 @@ use serde::Serialize;
 use crate::finite::{finite, finite_num};
 use crate::record::{HeaderFacts, Metrics, StarRecord};
 
+/// `report --target --json` and `report --list-targets --json`: built by `season`, whose
+/// types are the shapes.
+pub use crate::season::{TargetDocument, TargetNights};
+
 /// One line of `subwatch measure --json`.
 #[derive(Debug, Clone, Serialize)]
 pub struct MeasureRecord {

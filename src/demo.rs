@@ -49,6 +49,8 @@ pub struct DemoOutcome {
     pub json: PathBuf,
     pub mails: Vec<PathBuf>,
     pub seconds: f64,
+    /// The morning's line for each planned target imaged tonight.
+    pub plans: Vec<String>,
 }
 
 const MARKER: &str = ".subwatch-demo";
@@ -95,8 +97,16 @@ pub fn demo_config(out: &Path, page: Option<std::net::SocketAddr>) -> Config {
     ];
     c.catalogue.filter_bands = vec![("L".into(), "V".into())];
     c.catalogue.search_deg = 1.0;
+    // Field A is a project of several nights: the night before tonight is in the store.
+    c.targets = vec![crate::season::plan::TargetPlan {
+        name: "Kestrel Field A".into(),
+        hours: vec![("L".into(), PLAN_HOURS)],
+    }];
     c
 }
+
+/// The hours of L the demo's observer plans for Kestrel Field A.
+pub const PLAN_HOURS: f64 = 4.0;
 
 /// The plans of Kestrel Field C, imaged through V then I, with one star far brighter in
 /// I than its color says.
@@ -409,6 +419,7 @@ pub fn run(
         csv: prepared.csv_path,
         json,
         mails,
+        plans: prepared.summary.plans.clone(),
         doc: prepared.doc,
         seconds: started.elapsed().as_secs_f64(),
     })

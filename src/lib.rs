@@ -5,6 +5,7 @@
 //! See ARCHITECTURE.md for the map and the invariants.
 
 pub mod actions;
+pub mod archive;
 pub mod astrometry;
 pub mod batch;
 pub mod buffer;
@@ -31,10 +32,12 @@ pub mod reader;
 pub mod record;
 pub mod report;
 pub mod rules;
+pub mod season;
 pub mod sim;
 pub mod sky;
 pub mod sky_fit;
 pub mod store;
+pub mod targets;
 pub mod text;
 pub mod voevent;
 pub mod walk;

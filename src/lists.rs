@@ -37,7 +37,7 @@ impl Lists {
 }
 
 /// A name made safe for a file name: letters, digits, `-` and `_`; anything else `_`.
-fn file_part(s: &str) -> String {
+pub fn file_part(s: &str) -> String {
     s.chars()
         .map(|c| {
             if c.is_ascii_alphanumeric() || c == '-' || c == '_' {
@@ -75,20 +75,26 @@ pub fn rewrite(
     let paths = store
         .accepted_paths(night, target, filter, lists.stack_warned)
         .map_err(|e| e.to_string())?;
-    let dir = file.parent().expect("a list has a folder");
+    write_list(&file, &paths)?;
+    Ok(file)
+}
+
+/// Write a list of paths, one per line, as every list is written: beside, synced, then
+/// renamed over the old one, and the folder synced.
+pub fn write_list(file: &Path, paths: &[String]) -> Result<(), String> {
+    let dir = file.parent().unwrap_or(Path::new("."));
     let write = || -> std::io::Result<()> {
         std::fs::create_dir_all(dir)?;
         let tmp = file.with_extension("txt.tmp");
         let mut f = std::fs::File::create(&tmp)?;
-        for p in &paths {
+        for p in paths {
             writeln!(f, "{p}")?;
         }
         f.sync_all()?;
-        std::fs::rename(&tmp, &file)?;
+        std::fs::rename(&tmp, file)?;
         std::fs::File::open(dir)?.sync_all()
     };
-    write().map_err(|e| format!("cannot write {}: {e}", file.display()))?;
-    Ok(file)
+    write().map_err(|e| format!("cannot write {}: {e}", file.display()))
 }
 
 /// Rewrite the lists of every group of a night (after its verdicts were judged again).

@@ -143,6 +143,25 @@ enum Command {
         /// names its rig, and the summary has a group per rig, target and filter.
         #[arg(long)]
         site: bool,
+        /// A target across all its nights (as its frames name it): per filter the nights,
+        /// verdicts, usable time, quality night by night, and the frames to stack.
+        #[arg(long, value_name = "NAME", conflicts_with_all = ["night", "send", "all"])]
+        target: Option<String>,
+        /// List the targets the store holds, with their nights and frames.
+        #[arg(long, conflicts_with_all = ["night", "send", "all", "target"])]
+        list_targets: bool,
+        /// With --target: list the best fraction (0 to 1] of the frames to stack, by
+        /// weight.
+        #[arg(long, value_name = "FRACTION", requires = "target")]
+        best_fraction: Option<f64>,
+        /// With --target: list the best frames up to this many hours, by weight.
+        #[arg(
+            long,
+            value_name = "HOURS",
+            requires = "target",
+            conflicts_with = "best_fraction"
+        )]
+        best_hours: Option<f64>,
     },
     /// Deliver the mail waiting in the outbox (it is retried with growing waits).
     Outbox {
@@ -199,6 +218,19 @@ enum Command {
         /// Number of frames (default: 40, or 10 for color).
         #[arg(long)]
         frames: Option<usize>,
+        /// The first frame's DATE-OBS, UTC (default: the scenario's, 2026-03-14T20:40:00).
+        #[arg(long, value_name = "YYYY-MM-DDTHH:MM:SS")]
+        start: Option<String>,
+        /// Frames of this many pixels a side (default 768).
+        #[arg(long, value_name = "PIXELS")]
+        size: Option<usize>,
+        /// Stars in the field (default 260).
+        #[arg(long)]
+        stars: Option<usize>,
+        /// A night without events (clouds, gusts, trails, focus drift, meridian flip,
+        /// moving object, flash).
+        #[arg(long)]
+        quiet: bool,
     },
     /// The star catalogue: `import` checks the configured files and indexes them once.
     Catalogue {
@@ -210,6 +242,10 @@ enum Command {
         #[command(subcommand)]
         action: StoreAction,
     },
+    /// Record the past nights under a folder tree into the store, as the daemon would
+    /// have, and judge each night (safe to stop and run again; `--shard K/N` for a
+    /// scheduler's array of tasks).
+    Archive(commands::archive::ArchiveArgs),
     /// Read one file for another subwatch process (request on stdin, record on stdout).
     #[command(name = "read-worker", hide = true)]
     ReadWorker,
@@ -221,7 +257,7 @@ fn main() -> ExitCode {
     let cli = Cli::parse();
     // The daemon says what it is doing by default; one-shot commands only warn.
     subwatch::logging::init(match cli.command {
-        Command::Watch { .. } => "info",
+        Command::Watch { .. } | Command::Archive(_) => "info",
         _ => "warn",
     });
     // A panic anywhere is reported as one line.
@@ -289,12 +325,34 @@ fn run(cli: Cli) -> Result<ExitCode> {
         } => night::night(&dir, json, all, config.as_deref(), report.as_deref()),
         Command::Report {
             config,
+            json,
+            site,
+            out,
+            target,
+            list_targets,
+            best_fraction,
+            best_hours,
+            ..
+        } if target.is_some() || list_targets => target::run(
+            &config.path,
+            target::TargetOptions {
+                target,
+                json,
+                site,
+                out,
+                best_fraction,
+                best_hours,
+            },
+        ),
+        Command::Report {
+            config,
             night,
             json,
             all,
             send,
             site,
             out,
+            ..
         } => night::report(
             &config.path,
             night,
@@ -333,8 +391,25 @@ fn run(cli: Cli) -> Result<ExitCode> {
             second_night,
             color,
             frames,
-        } => render::night(&out, seed, second_night, color, frames),
+            start,
+            size,
+            stars,
+            quiet,
+        } => render::night(
+            &out,
+            seed,
+            second_night,
+            color,
+            render::NightChanges {
+                frames,
+                start,
+                size,
+                stars,
+                quiet,
+            },
+        ),
         Command::Measure(args) => measure::run(args),
+        Command::Archive(args) => archive::run(args),
         Command::Catalogue {
             action: CatalogueAction::Import { config, force },
         } => commands::catalogue::import(&config.path, force),

@@ -56,13 +56,21 @@ pub fn prepare(store: &mut Store, c: &Config, night: &str) -> Result<Prepared, M
     } else {
         judge_night(store, c, night)?
     };
-    write_files(
+    let plans = plan_lines(store, c, night)?;
+    write_files_with_plans(
         judged.doc,
         night,
         &report_folder(c),
         &c.measure,
         settings(c),
+        plans,
     )
+}
+
+/// The morning's line for each planned target imaged on `night` (`[[targets]]`): how
+/// far its plan is, at that night's usable rate.
+pub fn plan_lines(store: &Store, c: &Config, night: &str) -> Result<Vec<String>, MorningError> {
+    Ok(crate::targets::plan_lines(store, c, night, "last night's")?)
 }
 
 /// A recorded night judged again: the document, and the frames whose stored verdict
@@ -161,11 +169,25 @@ pub fn write_files(
     measure: &crate::config::MeasureConfig,
     settings: report::Settings,
 ) -> Result<Prepared, MorningError> {
+    write_files_with_plans(doc, night, folder, measure, settings, Vec::new())
+}
+
+/// [`write_files`] with the lines of the planned targets imaged that night
+/// ([`plan_lines`]) in the summary.
+pub fn write_files_with_plans(
+    doc: NightDocument,
+    night: &str,
+    folder: &Path,
+    measure: &crate::config::MeasureConfig,
+    settings: report::Settings,
+    plans: Vec<String>,
+) -> Result<Prepared, MorningError> {
     let reader = crate::reader::Reader::from_config(measure);
     let limits = crate::frame::DecodeLimits {
         max_pixels: measure.max_pixels,
     };
-    let summary = report::summarise(night, &doc, settings);
+    let mut summary = report::summarise(night, &doc, settings);
+    summary.plans = plans;
     let mut images: Vec<(String, Vec<u8>)> = plots::night_plots(&doc, &summary, settings.tz)
         .into_iter()
         .map(|p| (plots::plot_name(p.group, p.plotted.key), p.png))

@@ -266,6 +266,10 @@ pub struct Metrics {
     /// Magnitude of a point source at SNR 5 (CCD equation).
     #[serde(default, serialize_with = "finite")]
     pub limit_mag: Option<f64>,
+    /// The SNR of the brightest unsaturated stars, brightest first (at most
+    /// `season::weight::KEPT`): what weighs the frame against a target's other nights.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub bright_snr: Vec<f64>,
 }
 
 impl Metrics {
@@ -293,6 +297,7 @@ impl Metrics {
             zero_point_stars: 0,
             zero_point_band: None,
             limit_mag: None,
+            bright_snr: crate::season::weight::bright_snr(m.stars.iter().map(|s| (s.flux, s.snr))),
         }
     }
 }

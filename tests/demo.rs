@@ -152,6 +152,45 @@ fn the_demo_night_finds_everything_it_holds() {
         "plots inside the HTML"
     );
     assert!(html.contains("new_source"));
+    // Field A is planned (4 h of L) and the store holds an earlier night of it: the
+    // morning gives its progress, from the usable exposure the nights' stored verdicts
+    // keep (read here from the store itself), at tonight's rate.
+    let store = rusqlite::Connection::open_with_flags(
+        out.join("state/subwatch.db"),
+        rusqlite::OpenFlags::SQLITE_OPEN_READ_ONLY,
+    )
+    .unwrap();
+    let mut usable: std::collections::BTreeMap<String, f64> = Default::default();
+    let mut rows = store
+        .prepare(
+            "SELECT night, header_json FROM frames WHERE target = 'Kestrel Field A'
+               AND filter = 'L' AND status = 'ok' AND verdict IN ('ok', 'warn')",
+        )
+        .unwrap();
+    for row in rows
+        .query_map([], |r| Ok((r.get::<_, String>(0)?, r.get::<_, String>(1)?)))
+        .unwrap()
+    {
+        let (night, header) = row.unwrap();
+        let header: serde_json::Value = serde_json::from_str(&header).unwrap();
+        *usable.entry(night).or_default() += header["exposure_s"].as_f64().unwrap();
+    }
+    assert_eq!(usable.len(), 2, "two nights of Field A: {usable:?}");
+    let done: f64 = usable.values().sum();
+    let tonight = usable["2026-03-14"];
+    let expected = format!(
+        "Kestrel Field A: L {:.1} of 4 h; at last night's usable rate about {} more nights",
+        done / 3600.0,
+        ((4.0 * 3600.0 - done) / tonight).ceil()
+    );
+    assert!(
+        stdout.contains(&format!("plan: {expected}")),
+        "{expected}\n{stdout}"
+    );
+    assert!(
+        html.contains(&expected) || html.contains(&expected.replace('\'', "&#39;")),
+        "{expected}"
+    );
     let mails: Vec<_> = std::fs::read_dir(out.join("reports"))
         .unwrap()
         .flatten()

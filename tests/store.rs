@@ -564,3 +564,141 @@ fn a_claim_lost_with_the_servers_sessions_is_taken_again_unless_another_daemon_h
     assert!(!settled(&north), "another daemon took the rig first");
     drop(usurper);
 }
+
+/// A measured light frame of `target` on `night`, `exposure_s` long, with the metrics a
+/// target's summary reads.
+fn measured(path: &str, night: &str, target: &str, t: f64, exposure_s: f64) -> FrameRecord {
+    let mut r = record(path, 10);
+    r.night = Some(night.into());
+    r.target = Some(target.into());
+    r.time_unix = Some(t);
+    r.header = Some(subwatch::record::HeaderFacts {
+        exposure_s: Some(exposure_s),
+        ..Default::default()
+    });
+    r.metrics = Some(
+        serde_json::from_value(serde_json::json!({
+            "width": 100, "height": 100, "star_count": 120, "fwhm_px": 3.1,
+            "fwhm_arcsec": null, "eccentricity": 0.1, "background_adu": 1000.0,
+            "noise_adu": 10.0, "snr_median": 40.0, "hfr_px": 1.6, "saturated_count": 2,
+            "sharp_count": 0, "background_range_adu": 3.0, "plate_scale_arcsec": null,
+            "bright_snr": [300.0, 200.0, 150.0, 120.0, 100.0]
+        }))
+        .unwrap(),
+    );
+    r
+}
+
+#[test]
+fn a_targets_frames_across_nights_and_an_archives_folder_leases() {
+    use subwatch::rules::Verdict;
+    on_both(|at| {
+        let mut s = Store::connect(at).unwrap();
+        let frames = [
+            measured("/n2/b.fits", "2026-03-11", "Kestrel Field A", 200.0, 300.0),
+            measured("/n1/a.fits", "2026-03-10", "Kestrel Field A", 100.0, 300.0),
+            measured("/n1/c.fits", "2026-03-10", "Kestrel Field A", 110.0, 120.0),
+            measured("/n1/z.fits", "2026-03-10", "Kestrel Field C", 120.0, 60.0),
+        ];
+        let mut ids = Vec::new();
+        for f in &frames {
+            ids.push(s.record_frame(f, 1.0).unwrap().id().unwrap());
+        }
+        let mut dark = record("/n1/dark.fits", 10);
+        dark.status = subwatch::record::FrameStatus::Skipped;
+        dark.night = Some("2026-03-10".into());
+        dark.target = Some("Kestrel Field A".into());
+        s.record_frame(&dark, 1.0).unwrap();
+        s.set_verdict(ids[0], Verdict::Warn, &["fwhm_high".into()])
+            .unwrap();
+        s.set_verdict(ids[1], Verdict::Ok, &[]).unwrap();
+        s.set_verdict(ids[2], Verdict::Reject, &["trail".into()])
+            .unwrap();
+
+        // A target's light frames in time order, with their night's verdict, exposure
+        // and metrics (the dark is not one of them; nor is another target's frame).
+        let got = s.target_frames("Kestrel Field A").unwrap();
+        let paths: Vec<&str> = got.iter().map(|f| f.path.as_str()).collect();
+        assert_eq!(paths, ["/n1/a.fits", "/n1/c.fits", "/n2/b.fits"], "{at}");
+        assert_eq!(got[0].verdict, Some(Verdict::Ok));
+        assert_eq!(got[2].verdict, Some(Verdict::Warn));
+        assert_eq!(got[1].exposure_s, Some(120.0));
+        assert!(got.iter().all(|f| f.readable));
+        let q = got[0].quality.as_ref().unwrap();
+        assert_eq!((q.fwhm_px, q.saturated_count), (Some(3.1), 2));
+        assert_eq!(q.bright_snr.as_ref().unwrap().len(), 5);
+        let targets = s.targets().unwrap();
+        assert_eq!(targets.len(), 2);
+        assert_eq!(
+            (targets[0].nights, targets[0].frames),
+            (2, 3),
+            "{:?}",
+            targets[0]
+        );
+        assert_eq!(targets[0].first_night.as_deref(), Some("2026-03-10"));
+        // Usable exposure per night and filter: the frames the nights keep.
+        let usable = s.target_usable("Kestrel Field A", true).unwrap();
+        let of = |u: &[subwatch::season::plan::NightUsable], n: &str| {
+            u.iter().find(|x| x.night == n).map(|x| x.usable_s)
+        };
+        assert_eq!(of(&usable, "2026-03-10"), Some(300.0));
+        assert_eq!(of(&usable, "2026-03-11"), Some(300.0));
+        let without_warned = s.target_usable("Kestrel Field A", false).unwrap();
+        assert_eq!(of(&without_warned, "2026-03-11"), None);
+
+        // What an archive reads: every frame held, a night's fingerprint.
+        let held = s.archived_frames().unwrap();
+        assert_eq!(held.len(), 5);
+        assert!(!held["/n1/dark.fits"].light);
+        assert_eq!(held["/n1/c.fits"].verdict, Some(Verdict::Reject));
+        assert_eq!(held["/n1/z.fits"].verdict, None);
+        assert_eq!(s.recorded_version("/n1/a.fits").unwrap(), Some((10, 7)));
+        assert_eq!(s.recorded_version("/n9/none.fits").unwrap(), None);
+        let before = s.night_fingerprint("2026-03-10").unwrap();
+        assert_eq!(before.0, 4);
+        s.record_frame(
+            &measured("/n1/d.fits", "2026-03-10", "Kestrel Field A", 130.0, 300.0),
+            2.0,
+        )
+        .unwrap();
+        assert_ne!(s.night_fingerprint("2026-03-10").unwrap(), before);
+
+        // A folder's lease: one holder at a time, renewed while held, taken over once it
+        // ran out, and let go.
+        let unit = "2026-03-10/L";
+        let lease = s
+            .take_archive_unit(unit, "pc1 process 1", 100.0, 30.0)
+            .unwrap()
+            .expect("a free folder is leased");
+        assert_eq!(
+            s.take_archive_unit(unit, "pc2 process 2", 110.0, 30.0)
+                .unwrap(),
+            None
+        );
+        let renewed = s
+            .renew_archive_unit(unit, &lease, "pc1 process 1", 120.0, 30.0)
+            .unwrap()
+            .expect("its holder renews it");
+        assert_eq!(
+            s.take_archive_unit(unit, "pc2 process 2", 140.0, 30.0)
+                .unwrap(),
+            None,
+            "renewed until 150"
+        );
+        let taken = s
+            .take_archive_unit(unit, "pc2 process 2", 151.0, 30.0)
+            .unwrap()
+            .expect("a lease that ran out is taken over");
+        assert_eq!(
+            s.renew_archive_unit(unit, &renewed, "pc1 process 1", 152.0, 30.0)
+                .unwrap(),
+            None,
+            "the first holder lost it"
+        );
+        s.release_archive_unit(unit, &taken).unwrap();
+        assert!(s
+            .take_archive_unit(unit, "pc3 process 3", 153.0, 30.0)
+            .unwrap()
+            .is_some());
+    });
+}

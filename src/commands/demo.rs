@@ -112,6 +112,9 @@ pub fn run(out: &std::path::Path, page_port: u16, keep_page: bool) -> Result<Exi
     for note in &doc.calibration_notes {
         outln!("    {note}")?;
     }
+    for plan in &outcome.plans {
+        outln!("  plan: {plan}")?;
+    }
     outln!("Open:")?;
     outln!("  report  {}", outcome.html.display())?;
     outln!("  frames  {}", outcome.csv.display())?;

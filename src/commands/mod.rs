@@ -18,6 +18,7 @@ macro_rules! out {
     }};
 }
 
+pub mod archive;
 pub mod catalogue;
 pub mod daemon;
 pub mod demo;
@@ -26,3 +27,4 @@ pub mod night;
 pub mod render;
 pub mod sky;
 pub mod store;
+pub mod target;

@@ -84,7 +84,7 @@ pub fn night(
         eprintln!("report: {}", prepared.html_path.display());
         eprintln!("frames: {}", prepared.csv_path.display());
     }
-    print_night(&doc, &night, subwatch::morning::settings(c), json, all)
+    print_night(&doc, &night, subwatch::morning::settings(c), json, all, &[])
 }
 
 /// A night label as the contract writes it: a real date, YYYY-MM-DD.
@@ -193,12 +193,19 @@ pub fn report(
     let settings = subwatch::morning::settings(&cfg);
     if json && !send {
         // The document for scripts; nothing written.
-        return print_night(&rejudged.doc, &night, settings, true, false);
+        return print_night(&rejudged.doc, &night, settings, true, false, &[]);
     }
     let folder = out.unwrap_or_else(|| subwatch::morning::report_folder(&cfg));
-    let prepared =
-        subwatch::morning::write_files(rejudged.doc, &night, &folder, &cfg.measure, settings)?;
-    print_night(&prepared.doc, &night, settings, json, all)?;
+    let plans = subwatch::morning::plan_lines(&store, &cfg, &night)?;
+    let prepared = subwatch::morning::write_files_with_plans(
+        rejudged.doc,
+        &night,
+        &folder,
+        &cfg.measure,
+        settings,
+        plans.clone(),
+    )?;
+    print_night(&prepared.doc, &night, settings, json, all, &plans)?;
     eprintln!(
         "night {night}: the summary is written in {}: {}, {}, {}",
         folder.display(),
@@ -259,18 +266,20 @@ fn tell_changes(changed: &[subwatch::store::VerdictChange]) {
 }
 
 /// Print a night: the JSON document, or the summary's text (`all` adds every frame and
-/// every cosmic-ray hit).
+/// every cosmic-ray hit; `plans`, the lines of the planned targets imaged that night).
 pub fn print_night(
     doc: &subwatch::contract::NightDocument,
     night: &str,
     settings: subwatch::report::Settings,
     json: bool,
     all: bool,
+    plans: &[String],
 ) -> Result<ExitCode> {
     if json {
         outln!("{}", serde_json::to_string(doc)?)?;
     } else {
-        let summary = subwatch::report::summarise(night, doc, settings);
+        let mut summary = subwatch::report::summarise(night, doc, settings);
+        summary.plans = plans.to_vec();
         out!("{}", subwatch::report::text(&summary, all))?;
         if !all {
             outln!("(--all lists every frame and every cosmic-ray hit)")?;

@@ -143,12 +143,24 @@ pub fn frame(args: RenderArgs) -> Result<ExitCode> {
 }
 
 /// `subwatch render-night`: a night of frames with known events.
+/// What `render-night` is asked to change in the scenario's night.
+pub struct NightChanges {
+    pub frames: Option<usize>,
+    /// The first frame's DATE-OBS (UTC, ISO 8601).
+    pub start: Option<String>,
+    /// Width and height, pixels.
+    pub size: Option<usize>,
+    pub stars: Option<usize>,
+    /// No events: no clouds, gusts, trails, drift, flip, moving object or flash.
+    pub quiet: bool,
+}
+
 pub fn night(
     out: &Path,
     seed: u64,
     second_night: bool,
     color: bool,
-    frames: Option<usize>,
+    changes: NightChanges,
 ) -> Result<ExitCode> {
     use subwatch::sim::night::{render_night, NightPlan};
     let mut plan = if color {
@@ -158,8 +170,27 @@ pub fn night(
     } else {
         NightPlan::full(seed)
     };
-    if let Some(n) = frames {
+    if changes.quiet {
+        plan = plan.quiet();
+    }
+    if let Some(n) = changes.frames {
         plan.frames = n;
+    }
+    if let Some(start) = changes.start {
+        if subwatch::frame::header::parse_iso_time(&start).is_none() {
+            anyhow::bail!("--start {start:?} is not a time: give UTC as 2026-03-14T20:40:00");
+        }
+        plan.start = start;
+    }
+    if let Some(size) = changes.size {
+        if size < 64 {
+            anyhow::bail!("--size {size} is too small: give at least 64 pixels");
+        }
+        plan.width = size;
+        plan.height = size;
+    }
+    if let Some(n) = changes.stars {
+        plan.star_count = n;
     }
     std::fs::create_dir_all(out).with_context(|| format!("creating {}", out.display()))?;
     let (frames, truth) = render_night(&plan);

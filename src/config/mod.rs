@@ -483,6 +483,8 @@ pub struct Config {
     pub calibration: CalibrationConfig,
     pub catalogue: CatalogueConfig,
     pub rules: Vec<RuleSpec>,
+    /// Plans of targets (`[[targets]]`): hours of usable exposure per filter.
+    pub targets: Vec<crate::season::plan::TargetPlan>,
     /// The line of every key the file gives ("section.key") and of its sections, for
     /// the problems found after reading (`check_environment`, the store reached).
     pub lines: std::collections::BTreeMap<String, usize>,
@@ -547,6 +549,11 @@ pub fn load(path: &Path) -> Result<Config, ConfigError> {
 }
 
 impl Config {
+    /// The plan of a target (`[[targets]]`), by the name its frames give it.
+    pub fn plan_for(&self, target: &str) -> Option<&crate::season::plan::TargetPlan> {
+        self.targets.iter().find(|p| p.name == target)
+    }
+
     /// The site's position (latitude, east longitude, elevation), when configured.
     pub fn site_position(&self) -> Option<(f64, f64, f64)> {
         Some((

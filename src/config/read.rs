@@ -8,6 +8,7 @@
 mod rules;
 mod sections;
 mod syntax;
+mod targets;
 
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
@@ -227,7 +228,7 @@ impl<'a> Reader<'a> {
                 .collect()
         };
         for (section, value) in self.root {
-            if section == "rules" {
+            if section == "rules" || section == "targets" {
                 continue;
             }
             if !SECTIONS.contains(&section.as_str()) {
@@ -407,6 +408,7 @@ pub fn parse(text: &str, base: &Path) -> Result<Config, Vec<ConfigProblem>> {
     let calibration = sections::calibration(&mut r);
     let catalogue = sections::catalogue(&mut r);
     let rules = rules::read(&mut r);
+    let targets = targets::read(&mut r);
     r.unknown();
     r.oversized_left();
     let mut problems = std::mem::take(&mut r.problems);
@@ -426,6 +428,7 @@ pub fn parse(text: &str, base: &Path) -> Result<Config, Vec<ConfigProblem>> {
         calibration,
         catalogue,
         rules,
+        targets,
         lines: std::mem::take(&mut r.lines),
         source: None,
     };

@@ -17,6 +17,8 @@ use serde::Serialize;
 
 use crate::text::escape_html;
 
+pub mod plans;
+
 /// The night so far, as the page and the JSON view show it.
 #[derive(Debug, Clone, Default, Serialize)]
 pub struct LiveView {
@@ -52,6 +54,9 @@ pub struct LiveView {
     pub frame_time_behind_s: Option<f64>,
     /// Which clock each time of this view is on.
     pub clocks: Clocks,
+    /// One line per planned target imaged tonight: how far its plan is, at tonight's
+    /// usable rate (`[[targets]]`).
+    pub plans: Vec<String>,
 }
 
 /// The frame's clock: the time its header gives.
@@ -501,6 +506,7 @@ pub fn part(v: &LiveView) -> String {
         }
         h.push_str("</table></div>");
     }
+    h.push_str(&plans::section(&v.plans));
     h.push_str("</section>");
 
     if v.rigs.len() > 1 {

@@ -341,6 +341,7 @@ mod tests {
             zero_point_stars: 0,
             zero_point_band: None,
             limit_mag: None,
+            bright_snr: Vec::new(),
         });
         r
     }

@@ -79,6 +79,9 @@ fn counts(s: &Summary) -> Markup {
                     }
                 }
             }
+            @if !s.plans.is_empty() {
+                ul id="plans" { @for l in &s.plans { li { (l) } } }
+            }
             p {
                 "Anomalies: "
                 @if kinds.is_empty() { "none" } @else {

@@ -11,6 +11,7 @@ mod csv;
 mod html;
 pub mod plots;
 pub mod preview;
+pub mod season;
 mod text;
 mod words;
 
@@ -238,6 +239,9 @@ pub struct Summary {
     pub warned: usize,
     pub rejected: usize,
     pub calibration: CalibrationSummary,
+    /// One line per planned target (`[[targets]]`) imaged this night: how far its plan
+    /// is (`season::plan`); filled by the shell that reads the store.
+    pub plans: Vec<String>,
 }
 
 /// The night's calibration frames: how many of each kind and how they fared, the ones
@@ -392,6 +396,7 @@ pub fn summarise(night: &str, doc: &NightDocument, settings: Settings) -> Summar
         hot_pixels,
         cosmic_rays,
         calibration: calibration_summary(doc, settings.tz),
+        plans: Vec::new(),
     }
 }
 

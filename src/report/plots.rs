@@ -87,7 +87,7 @@ const LEGEND_HEIGHT: u32 = 40;
 
 static FONT: Once = Once::new();
 
-fn register_font() {
+pub(super) fn register_font() {
     FONT.call_once(|| {
         let bytes: &'static [u8] = include_bytes!("../../assets/fonts/DejaVuSans.ttf");
         let _ = plotters::style::register_font("sans-serif", FontStyle::Normal, bytes);

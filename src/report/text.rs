@@ -70,6 +70,9 @@ pub fn text(s: &Summary, all: bool) -> String {
             );
         }
     }
+    for p in &s.plans {
+        let _ = writeln!(t, "  Plan: {}", single_line(p));
+    }
     let counts = s.kind_counts();
     let _ = writeln!(
         t,

@@ -18,10 +18,6 @@ impl Store {
         let c = &self.conn;
         c.transaction(|| {
             c.execute(
-                "DELETE FROM catalog WHERE target = ?1 AND filter = ?2 AND night = ?3 AND rig = ?4",
-                values![target, filter, night, self.rig],
-            )?;
-            c.execute(
                 "INSERT INTO catalog_nights (target, filter, night, limit_mag, footprint_json, rig)
                  VALUES (?1, ?2, ?3, ?4, ?5, ?6)
                  ON CONFLICT (target, filter, night, rig) DO UPDATE
@@ -34,6 +30,13 @@ impl Store {
                     serde_json::to_string(footprint).ok(),
                     self.rig
                 ],
+            )?;
+            // After the night's row is this transaction's: two processes judging one night
+            // at once (an archive's shares) write its catalogue one after the other, the
+            // second deleting what the first wrote, so no source is kept twice.
+            c.execute(
+                "DELETE FROM catalog WHERE target = ?1 AND filter = ?2 AND night = ?3 AND rig = ?4",
+                values![target, filter, night, self.rig],
             )?;
             let rows: Vec<Vec<super::db::Value>> = sources
                 .iter()

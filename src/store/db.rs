@@ -691,7 +691,16 @@ impl Conn {
         &self,
         f: impl FnOnce() -> Result<T, E>,
     ) -> Result<T, E> {
-        self.batch("BEGIN")?;
+        // SQLite takes the write lock at the start (waiting up to the busy timeout for
+        // another writer: an archive beside the daemon), instead of failing at once
+        // when a read inside turns into a write after another process wrote.
+        let begin = match self {
+            Conn::Sqlite(c) if !c.is_readonly(rusqlite::MAIN_DB).unwrap_or(true) => {
+                "BEGIN IMMEDIATE"
+            }
+            _ => "BEGIN",
+        };
+        self.batch(begin)?;
         match f() {
             Ok(v) => {
                 if let Err(e) = self.batch("COMMIT") {

@@ -10,6 +10,7 @@
 use std::path::{Path, PathBuf};
 
 mod alerts;
+mod archive;
 mod catalog;
 pub mod catalogue_index;
 mod connect;
@@ -19,7 +20,9 @@ mod frames;
 mod lock;
 mod outbox;
 mod schema;
+mod targets;
 
+pub use archive::ArchivedFrame;
 pub use connect::{
     claim_configured, claim_rig, configured_daemon_pid, probe, rig_daemon, Claim, Location, PgClaim,
 };

@@ -334,6 +334,13 @@ fn migrate_sqlite(conn: &Conn, too_new: impl Fn(i64) -> StoreError) -> Result<()
             conn.batch("PRAGMA foreign_keys = OFF")?;
         }
         let migrated = conn.transaction(|| {
+            // Another process opening the same new store (two archives started at once)
+            // may have run it since the version was read: the transaction holds the
+            // write lock, so what it reads now stays true until it commits.
+            let now: i64 = conn.query_one("PRAGMA user_version", &[])?.get(0)?;
+            if now >= n as i64 {
+                return Ok(());
+            }
             conn.batch(&migration_text(Kind::Sqlite, n))?;
             let broken: i64 = conn
                 .query_one("SELECT COUNT(*) FROM pragma_foreign_key_check", &[])?

@@ -344,6 +344,7 @@ fn build(
     }
     groups.sort_by(|a, b| (&a.target, &a.filter).cmp(&(&b.target, &b.filter)));
     view.groups = groups;
+    view.plans = crate::targets::plan_lines(store, config, &night, "tonight's")?;
 
     view.frames = frames
         .iter()
