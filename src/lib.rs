@@ -17,6 +17,7 @@ pub mod demo;
 pub mod events;
 pub mod finite;
 pub mod frame;
+pub mod linalg;
 pub mod lists;
 pub mod live;
 pub mod logging;
