@@ -175,15 +175,13 @@ impl PsfFit {
 
     /// Eccentricity of this star alone, with the fit noise's upward bias removed.
     ///
-    /// The shape components e1 = (qa − qc)/(qa + qc), e2 = 2qb/(qa + qc) carry noise, and
-    /// |e| = sqrt(e1² + e2²) is biased upwards like a polarisation amplitude; the
-    /// estimator of Wardle & Kronberg (1974, ApJ 194, 249), |e|² − σ², is applied with the
-    /// variances of e1 and e2 propagated from the fit covariance. A frame's stars share
-    /// its PSF, and `shape::shrink` uses that to do better for each star of a frame.
+    /// The shape components e1 = (qa − qc)/(qa + qc), e2 = 2qb/(qa + qc) carry noise, so
+    /// `shape::debiased_eccentricity` takes their bias away, with the variances of e1 and
+    /// e2 propagated from the fit covariance. A frame's stars share its PSF, and
+    /// `shape::shrink` uses that to do better for each star of a frame.
     pub fn eccentricity(&self) -> f64 {
         let (e1, e2) = self.shape_components();
-        let debiased = (e1 * e1 + e2 * e2 - 2.0 * self.shape_variance()).max(0.0);
-        super::shape::eccentricity_of(debiased.sqrt())
+        super::shape::debiased_eccentricity(e1, e2, self.shape_variance())
     }
 
     /// Variance of each of the sampled shape components (e1, e2), propagated from the fit
