@@ -5,6 +5,7 @@
 //! of lights whether matching darks, flats and bias frames were taken. Every threshold is
 //! a constant here with where it comes from; every reason comes with its values. Pure.
 
+use crate::measure::stats::{median_f64, robust_sigma_f64};
 use crate::record::{FrameRecord, FrameStatus};
 use crate::rules::{Judgement, Verdict};
 
@@ -82,26 +83,6 @@ pub fn kind_of(r: &FrameRecord) -> Option<&'static str> {
     ["dark", "flat", "bias"]
         .into_iter()
         .find(|k| said.contains(k))
-}
-
-fn median(mut v: Vec<f64>) -> Option<f64> {
-    v.retain(|x| x.is_finite());
-    if v.is_empty() {
-        return None;
-    }
-    v.sort_by(f64::total_cmp);
-    let n = v.len();
-    Some(if n % 2 == 1 {
-        v[n / 2]
-    } else {
-        0.5 * (v[n / 2 - 1] + v[n / 2])
-    })
-}
-
-/// 1.4826 × the median absolute deviation (common practice).
-fn robust_sigma(v: &[f64]) -> Option<f64> {
-    let m = median(v.to_vec())?;
-    median(v.iter().map(|x| (x - m).abs()).collect()).map(|d| 1.4826 * d)
 }
 
 struct Verdicts {
@@ -265,12 +246,12 @@ pub fn judge_calibration(
         let levels = stats(|c| c.median_adu);
         let noises = stats(|c| c.noise_adu);
         let hots = stats(|c| c.hot_pixel_count as f64);
-        let level_mid = median(levels.clone());
-        let noise_mid = median(noises.clone());
-        let hot_mid = median(hots);
+        let level_mid = median_f64(&levels);
+        let noise_mid = median_f64(&noises);
+        let hot_mid = median_f64(&hots);
         // The spread of levels, with a floor of a tenth of the noise so a set of
         // identical frames does not make every tiny difference significant.
-        let spread = robust_sigma(&levels)
+        let spread = robust_sigma_f64(&levels)
             .unwrap_or(0.0)
             .max(0.1 * noise_mid.unwrap_or(0.0))
             .max(1e-6);
@@ -378,7 +359,7 @@ fn dark_against_earlier(dark: &FrameRecord, earlier: &[&FrameRecord], v: &mut Ve
         .filter_map(|e| e.calibration.as_ref().map(|c| c.hot_pixel_count as f64))
         .collect();
     let n = counts.len();
-    let Some(h) = median(counts) else {
+    let Some(h) = median_f64(&counts) else {
         return;
     };
     let count = c.hot_pixel_count as f64;
@@ -430,7 +411,7 @@ fn dark_against_lights(dark: &FrameRecord, lights: &[&FrameRecord], v: &mut Verd
     }
     let (Some(t), Some(lt)) = (
         temp(dark),
-        median(matching.iter().filter_map(|l| temp(l)).collect()),
+        median_f64(&matching.iter().filter_map(|l| temp(l)).collect::<Vec<_>>()),
     ) else {
         return;
     };
@@ -519,7 +500,7 @@ fn missing(
             filter.as_deref().unwrap_or(crate::text::NO_FILTER)
         );
         let first = frames[0];
-        let t = median(frames.iter().filter_map(|l| temp(l)).collect());
+        let t = median_f64(&frames.iter().filter_map(|l| temp(l)).collect::<Vec<_>>());
         if let Some(e) = e {
             let ok = darks.iter().any(|d| {
                 exposure(d).is_some_and(|x| (x - e).abs() <= DARK_EXPOSURE_TOLERANCE * x.max(*e))
