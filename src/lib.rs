@@ -27,6 +27,7 @@ pub mod morning;
 pub mod night;
 pub mod os;
 pub mod outbox;
+pub mod pairs;
 pub mod pipeline;
 pub mod reader;
 pub mod record;
