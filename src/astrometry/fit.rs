@@ -4,6 +4,7 @@
 
 use super::projection::{plane, standard};
 use crate::frame::wcs::{Sip, Wcs};
+use crate::linalg::CholeskyDyn;
 
 /// Polynomial terms (p, q) with p + q ≤ order, the linear ones first.
 fn terms(order: u32) -> Vec<(u32, u32)> {
@@ -14,38 +15,6 @@ fn terms(order: u32) -> Vec<(u32, u32)> {
         }
     }
     t
-}
-
-/// Solve the normal equations M·c = b (symmetric positive definite) by Gaussian
-/// elimination with partial pivoting; `None` when singular.
-fn solve_linear(mut m: Vec<Vec<f64>>, mut b: Vec<f64>) -> Option<Vec<f64>> {
-    let n = b.len();
-    for col in 0..n {
-        let piv = (col..n).max_by(|&a, &c| m[a][col].abs().total_cmp(&m[c][col].abs()))?;
-        if m[piv][col].abs() < 1e-300 {
-            return None;
-        }
-        m.swap(col, piv);
-        b.swap(col, piv);
-        for r in col + 1..n {
-            let f = m[r][col] / m[col][col];
-            if f != 0.0 {
-                for c in col..n {
-                    m[r][c] -= f * m[col][c];
-                }
-                b[r] -= f * b[col];
-            }
-        }
-    }
-    let mut x = vec![0.0; n];
-    for r in (0..n).rev() {
-        let s: f64 = (r + 1..n).map(|c| m[r][c] * x[c]).sum();
-        x[r] = (b[r] - s) / m[r][r];
-        if !x[r].is_finite() {
-            return None;
-        }
-    }
-    Some(x)
 }
 
 /// One matched star for the fit: pixel offset from CRPIX, sky position, weight.
@@ -79,7 +48,9 @@ pub(super) fn fit_tan(
     let mut crval = start;
     let mut coef = None;
     for _ in 0..8 {
-        let mut m = vec![vec![0.0; t.len()]; t.len()];
+        let nt = t.len();
+        // The normal matrix, row by row.
+        let mut m = vec![0.0; nt * nt];
         let mut bx = vec![0.0; t.len()];
         let mut by = vec![0.0; t.len()];
         for p in points {
@@ -89,16 +60,19 @@ pub(super) fn fit_tan(
                 .iter()
                 .map(|&(a, b)| un.powi(a as i32) * vn.powi(b as i32))
                 .collect();
-            for i in 0..t.len() {
-                for j in 0..t.len() {
-                    m[i][j] += p.w * row[i] * row[j];
+            for i in 0..nt {
+                for j in 0..nt {
+                    m[i * nt + j] += p.w * row[i] * row[j];
                 }
                 bx[i] += p.w * row[i] * xi;
                 by[i] += p.w * row[i] * eta;
             }
         }
-        let cx = solve_linear(m.clone(), bx)?;
-        let cy = solve_linear(m, by)?;
+        let normal = CholeskyDyn::new(&m, nt)?;
+        let (cx, cy) = (normal.solve(&bx), normal.solve(&by));
+        if !cx.iter().chain(&cy).all(|c| c.is_finite()) {
+            return None;
+        }
         // Done when the constant terms vanish: the coefficients then belong to this
         // reference point. Otherwise move it onto their sky position and fit again.
         if cx[0].hypot(cy[0]) < 1e-10 {

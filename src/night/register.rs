@@ -5,6 +5,7 @@
 //! a meridian flip are all of this kind), and least squares on every matched star
 //! refines it to an affine transform with its residual RMS. Pure.
 
+use crate::linalg::Cholesky;
 use crate::pairs::nearest_pairs;
 
 /// A frame placed on its group's reference frame.
@@ -142,7 +143,6 @@ fn similarity(p1: (f64, f64), p2: (f64, f64), q1: (f64, f64), q2: (f64, f64)) ->
     })
 }
 
-/// Least-squares affine transform from matched pairs.
 /// A matched pair: (frame position, reference position, weight).
 type Pair = ((f64, f64), (f64, f64), f64);
 
@@ -165,28 +165,8 @@ fn fit_affine(pairs: &[Pair]) -> Option<Affine> {
             by[i] += w * r[i] * v;
         }
     }
-    let solve3 = |m: [[f64; 3]; 3], b: [f64; 3]| -> Option<[f64; 3]> {
-        let det = |m: &[[f64; 3]; 3]| {
-            m[0][0] * (m[1][1] * m[2][2] - m[1][2] * m[2][1])
-                - m[0][1] * (m[1][0] * m[2][2] - m[1][2] * m[2][0])
-                + m[0][2] * (m[1][0] * m[2][1] - m[1][1] * m[2][0])
-        };
-        let d = det(&m);
-        if d.abs() < 1e-12 {
-            return None;
-        }
-        let mut out = [0.0; 3];
-        for (c, o) in out.iter_mut().enumerate() {
-            let mut mc = m;
-            for r in 0..3 {
-                mc[r][c] = b[r];
-            }
-            *o = det(&mc) / d;
-        }
-        Some(out)
-    };
-    let sx = solve3(m, bx)?;
-    let sy = solve3(m, by)?;
+    let normal = Cholesky::new(&m)?;
+    let (sx, sy) = (normal.solve(&bx), normal.solve(&by));
     Some(Affine {
         a: [[sx[0], sx[1]], [sy[0], sy[1]]],
         t: [sx[2], sy[2]],
