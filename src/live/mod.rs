@@ -5,17 +5,16 @@
 //! the page from it. It tells a viewer what a viewer needs: file names, not where they
 //! are on the PC; whether the daemon is running, not its process; low disk space as a
 //! warning, not which disk holds how much. Every time it shows names its clock: the
-//! frame's own (DATE-OBS) or this PC's, which part when frames are replayed. Every value
-//! that came from a file or a header is escaped. The page loads its own script and
+//! frame's own (DATE-OBS) or this PC's, which part when frames are replayed. The page is
+//! written with maud's templates, which escape every value: a value from a file or a
+//! header cannot become markup. The page loads its own script and
 //! style sheet (no inline code, so a strict Content-Security-Policy holds) and fetches
 //! its own content again when the view's version changes. Pure.
 
 use std::collections::BTreeMap;
-use std::fmt::Write as _;
 
+use maud::{html, Markup, PreEscaped, DOCTYPE};
 use serde::Serialize;
-
-use crate::text::escape_html;
 
 /// The night so far, as the page and the JSON view show it.
 #[derive(Debug, Clone, Default, Serialize)]
@@ -384,11 +383,16 @@ dl.facts{display:grid;grid-template-columns:auto 1fr;gap:2px 10px;margin:4px 0}d
 pub const RED_ONLY_FILTER: &str = "<svg class=\"defs\" aria-hidden=\"true\" focusable=\"false\"><filter id=\"red-only\" color-interpolation-filters=\"sRGB\"><feColorMatrix type=\"matrix\" values=\"0.2126 0.7152 0.0722 0 0 0 0 0 0 0 0 0 0 0 0 0 0 0 1 0\"/></filter></svg>";
 
 /// The choice of colours, shown once the script runs (without it there is no choice).
-const MODES: &str =
-    "<nav id=\"modes\" class=\"modes\" hidden aria-label=\"colours of the page\">colours: \
-<button type=\"button\" data-mode=\"light\" aria-pressed=\"false\">light</button>\
-<button type=\"button\" data-mode=\"dark\" aria-pressed=\"false\">dark</button>\
-<button type=\"button\" data-mode=\"red\" aria-pressed=\"false\">red (night)</button></nav>";
+fn modes() -> Markup {
+    html! {
+        nav id="modes" class="modes" hidden aria-label="colours of the page" {
+            "colours: "
+            button type="button" data-mode="light" aria-pressed="false" { "light" }
+            button type="button" data-mode="dark" aria-pressed="false" { "dark" }
+            button type="button" data-mode="red" aria-pressed="false" { "red (night)" }
+        }
+    }
+}
 
 /// The page's icon: a ring round a dot, in the page's own colours.
 pub const ICON: &str = "<svg xmlns=\"http://www.w3.org/2000/svg\" viewBox=\"0 0 16 16\"><circle cx=\"8\" cy=\"8\" r=\"6\" fill=\"none\" stroke=\"#275\" stroke-width=\"2\"/><circle cx=\"8\" cy=\"8\" r=\"2\" fill=\"#222\"/></svg>";
@@ -399,19 +403,53 @@ pub const CONTENT_SECURITY_POLICY: &str = "default-src 'none'; script-src 'self'
 
 /// The whole page: head, and the content in `<main id="live">`.
 pub fn html(v: &LiveView) -> String {
-    let mut h = String::new();
-    let _ = write!(
-        h,
-        "<!DOCTYPE html><html lang=\"en\"><head><meta charset=\"utf-8\">\
-         <meta name=\"viewport\" content=\"width=device-width, initial-scale=1\">\
-         <title>subwatch: night {}</title><link rel=\"stylesheet\" href=\"style.css\"><link rel=\"icon\" href=\"icon.svg\">\
-         <script src=\"app.js\"></script></head><body>{MODES}{RED_ONLY_FILTER}\
-         <main id=\"live\" data-version=\"{}\">{}</main></body></html>",
-        escape_html(v.night.as_deref().unwrap_or("")),
-        v.version,
-        part(v)
-    );
-    h
+    html! {
+        (DOCTYPE)
+        html lang="en" {
+            head {
+                meta charset="utf-8";
+                meta name="viewport" content="width=device-width, initial-scale=1";
+                title { "subwatch: night " (v.night.as_deref().unwrap_or("")) }
+                link rel="stylesheet" href="style.css";
+                link rel="icon" href="icon.svg";
+                // In the head and not deferred: the chosen colours apply before the
+                // page is first drawn.
+                script src="app.js" {}
+            }
+            body {
+                (modes())
+                (PreEscaped(RED_ONLY_FILTER))
+                main id="live" data-version=(v.version) { (content(v)) }
+            }
+        }
+    }
+    .into_string()
+}
+
+/// The page's content: what `GET /part` answers and the script swaps in.
+pub fn part(v: &LiveView) -> String {
+    content(v).into_string()
+}
+
+fn content(v: &LiveView) -> Markup {
+    html! {
+        (heading(v))
+        div class="grid" {
+            (groups(v))
+            @if v.rigs.len() > 1 { (rigs(&v.rigs)) }
+            (latest(v.latest.as_ref()))
+        }
+        (anomalies(v))
+        div class="grid" {
+            (alerts(&v.alerts))
+            (sky_and_daemon(v.sky.as_ref(), &v.health))
+        }
+        (plots(&v.plots))
+        (frames(&v.frames))
+        p class="quiet" {
+            "JSON for scripts: " code { "api/night" } " (everything here), " code { "api/version" } "."
+        }
+    }
 }
 
 fn num(x: Option<f64>, digits: usize) -> String {
@@ -420,8 +458,8 @@ fn num(x: Option<f64>, digits: usize) -> String {
 }
 
 /// A time shown on the page, marked with the clock it is on (`FRAME_CLOCK`, `PC_CLOCK`).
-fn time(t: &str, clock: &str) -> String {
-    format!("<time data-clock=\"{clock}\">{}</time>", escape_html(t))
+fn time(t: &str, clock: &str) -> Markup {
+    html! { time data-clock=(clock) { (t) } }
 }
 
 /// A long stretch in words: "3 days 4 h", "5 h 12 min", "25 min".
@@ -445,378 +483,375 @@ fn minutes(seconds: f64) -> String {
     }
 }
 
-/// The page's content: what `GET /part` answers and the script swaps in.
-pub fn part(v: &LiveView) -> String {
-    let e = escape_html;
-    let mut h = String::new();
-    let night = v.night.as_deref().unwrap_or("(no frame yet)");
-    let _ = write!(
-        h,
-        "<h1>Night {}</h1><p class=\"quiet\">{}. Times are on {}. Frame times are the \
-         DATE-OBS in each frame's header; alerts, the sky and the daemon's times are on \
-         {PC_CLOCK_LABEL}. <span id=\"updated\">updates by itself</span></p>",
-        e(night),
-        e(&v.night_placed_by),
-        e(&v.timezone)
-    );
-    match v.frame_time_behind_s {
-        Some(b) if b > CLOCKS_APART_S => {
-            let _ = write!(
-                h,
-                "<p class=\"notice\" id=\"clocks-apart\">Frame times are {} behind {PC_CLOCK_LABEL}: \
-                 these frames were taken long before they reached the daemon (replayed or \
-                 copied in), so frame times (DATE-OBS) and times on {PC_CLOCK_LABEL} below \
-                 do not line up.</p>",
-                stretch(b)
-            );
+/// The night, its clocks, and a word when the frame clock and this PC's do not line up.
+fn heading(v: &LiveView) -> Markup {
+    html! {
+        h1 { "Night " (v.night.as_deref().unwrap_or("(no frame yet)")) }
+        p class="quiet" {
+            (v.night_placed_by) ". Times are on " (v.timezone) ". Frame times are the DATE-OBS \
+            in each frame's header; alerts, the sky and the daemon's times are on "
+            (PC_CLOCK_LABEL) ". "
+            span id="updated" { "updates by itself" }
         }
-        Some(b) if b < -CLOCKS_APART_S => {
-            let _ = write!(
-                h,
-                "<p class=\"notice\" id=\"clocks-apart\">Frame times are {} ahead of {PC_CLOCK_LABEL}: \
-                 the camera's clock or this PC's is wrong, so frame times (DATE-OBS) and \
-                 times on {PC_CLOCK_LABEL} below do not line up.</p>",
-                stretch(b)
-            );
+        @match v.frame_time_behind_s {
+            Some(b) if b > CLOCKS_APART_S => {
+                p class="notice" id="clocks-apart" {
+                    "Frame times are " (stretch(b)) " behind " (PC_CLOCK_LABEL) ": these frames \
+                    were taken long before they reached the daemon (replayed or copied in), so \
+                    frame times (DATE-OBS) and times on " (PC_CLOCK_LABEL) " below do not line up."
+                }
+            }
+            Some(b) if b < -CLOCKS_APART_S => {
+                p class="notice" id="clocks-apart" {
+                    "Frame times are " (stretch(b)) " ahead of " (PC_CLOCK_LABEL) ": the camera's \
+                    clock or this PC's is wrong, so frame times (DATE-OBS) and times on "
+                    (PC_CLOCK_LABEL) " below do not line up."
+                }
+            }
+            _ => {}
         }
-        _ => {}
     }
+}
 
-    h.push_str("<div class=\"grid\"><section id=\"groups\"><h2>Frames so far</h2>");
-    if v.groups.is_empty() {
-        h.push_str("<p>No frame recorded for this night yet.</p>");
-    } else {
-        h.push_str("<div class=\"scroll\"><table><tr><th>target / filter</th><th>ok</th><th>warn</th><th>reject</th><th>other</th><th>usable</th></tr>");
-        for g in &v.groups {
-            let _ = write!(
-                h,
-                "<tr><td>{}</td><td class=\"n ok\">{}</td><td class=\"n warn\">{}</td><td class=\"n reject\">{}</td><td class=\"n\">{}</td><td class=\"n\">{}</td></tr>",
-                e(&g.heading),
-                g.ok,
-                g.warn,
-                g.reject,
-                g.other,
-                minutes(g.usable_s)
-            );
-        }
-        h.push_str("</table></div>");
-    }
-    h.push_str("</section>");
-
-    if v.rigs.len() > 1 {
-        let _ = write!(h, "<section id=\"rigs\"><h2>Rigs of the site</h2><div class=\"scroll\"><table><tr><th>rig</th><th>frames</th><th>warn</th><th>reject</th><th>last recorded ({PC_CLOCK_LABEL})</th><th>daemon</th></tr>");
-        for r in &v.rigs {
-            let heard = match r.heard_s_ago {
-                Some(s) if s <= 60.0 => format!("heard {s:.0} s ago"),
-                Some(s) => format!("silent for {}", minutes(s)),
-                None => "never heard".into(),
-            };
-            let _ = write!(
-                h,
-                "<tr><td>{}</td><td class=\"n\">{}</td><td class=\"n warn\">{}</td><td class=\"n reject\">{}</td><td>{}</td><td>{}</td></tr>",
-                e(if r.rig.is_empty() { "(unnamed)" } else { &r.rig }),
-                r.frames,
-                r.warned,
-                r.rejected,
-                r.last_recorded_local
-                    .as_deref()
-                    .map_or("-".into(), |t| time(t, PC_CLOCK)),
-                e(&heard)
-            );
-        }
-        h.push_str("</table></div></section>");
-    }
-
-    h.push_str("<section id=\"latest\"><h2>Latest frame</h2>");
-    match &v.latest {
-        Some(l) => {
-            let _ = write!(
-                h,
-                "<p><span class=\"file\">{}</span>{}</p>",
-                e(&l.file),
-                l.time_local.as_deref().map_or(String::new(), |t| format!(
-                    " {} <small>{FRAME_CLOCK_LABEL}</small>",
-                    time(t, FRAME_CLOCK)
-                ))
-            );
-            match &l.preview_url {
-                Some(url) if l.width > 0 && l.height > 0 => {
-                    let _ = write!(
-                        h,
-                        "<div class=\"pic\"><img src=\"{}\" alt=\"the latest frame, stretched\">\
-                         <svg viewBox=\"0 0 {} {}\" preserveAspectRatio=\"none\" aria-hidden=\"true\">",
-                        e(url),
-                        l.width,
-                        l.height
-                    );
-                    // FITS pixel centres are whole numbers from 1, y up; the picture's
-                    // y runs down.
-                    for [x, y, r] in &l.stars {
-                        let _ = write!(
-                            h,
-                            "<circle class=\"star\" vector-effect=\"non-scaling-stroke\" cx=\"{:.1}\" cy=\"{:.1}\" r=\"{:.1}\"/>",
-                            x - 0.5,
-                            l.height as f64 - (y - 0.5),
-                            r
-                        );
-                    }
-                    let side = (l.width.max(l.height) as f64 / 40.0).max(8.0);
-                    for (x, y, _) in &l.marks {
-                        let _ = write!(
-                            h,
-                            "<rect class=\"mark\" vector-effect=\"non-scaling-stroke\" x=\"{:.1}\" y=\"{:.1}\" width=\"{side:.1}\" height=\"{side:.1}\"/>",
-                            x - 0.5 - side / 2.0,
-                            l.height as f64 - (y - 0.5) - side / 2.0
-                        );
-                    }
-                    let _ = write!(
-                        h,
-                        // Shapes, not colours: the red mode draws both in red.
-                        "</svg></div><p class=\"quiet\">{} stars ringed{}.</p>",
-                        l.stars.len(),
-                        if l.marks.is_empty() {
-                            String::new()
-                        } else {
-                            format!(", {} anomalies boxed", l.marks.len())
+/// Counts and usable time per target and filter.
+fn groups(v: &LiveView) -> Markup {
+    html! {
+        section id="groups" {
+            h2 { "Frames so far" }
+            @if v.groups.is_empty() {
+                p { "No frame recorded for this night yet." }
+            } @else {
+                div class="scroll" {
+                    table {
+                        tr { th { "target / filter" } th { "ok" } th { "warn" } th { "reject" } th { "other" } th { "usable" } }
+                        @for g in &v.groups {
+                            tr {
+                                td { (g.heading) }
+                                td class="n ok" { (g.ok) }
+                                td class="n warn" { (g.warn) }
+                                td class="n reject" { (g.reject) }
+                                td class="n" { (g.other) }
+                                td class="n" { (minutes(g.usable_s)) }
+                            }
                         }
-                    );
-                }
-                _ => h.push_str("<p class=\"quiet\">Its picture is being made.</p>"),
-            }
-        }
-        None => h.push_str("<p>No frame measured yet.</p>"),
-    }
-    h.push_str("</section></div>");
-
-    h.push_str("<section id=\"anomalies\"><h2>Worth a look</h2>");
-    match v.analysed_unix {
-        None => h.push_str("<p class=\"quiet\">The night's analysis has not run yet.</p>"),
-        Some(_) if v.anomalies.is_empty() => {
-            h.push_str("<p>Nothing unusual found so far.</p>");
-        }
-        Some(_) => {
-            for a in &v.anomalies {
-                h.push_str("<div class=\"anomaly\">");
-                if let Some(url) = &a.cutout_url {
-                    let _ = write!(
-                        h,
-                        "<img src=\"{}\" alt=\"cutout of the {}\">",
-                        e(url),
-                        e(&a.kind)
-                    );
-                }
-                let _ = write!(
-                    h,
-                    "<span class=\"kind\">{}</span> {} <small>{}</small><br>{}<br><small>{} frame(s){}</small></div>",
-                    e(&a.kind),
-                    e(a.position.as_deref().unwrap_or("")),
-                    e(&a.group),
-                    e(&a.what),
-                    a.frames,
-                    match (&a.file, a.x, a.y) {
-                        (Some(f), Some(x), Some(y)) => format!(", first in {} at x {x:.0}, y {y:.0}", e(f)),
-                        _ => String::new(),
                     }
-                );
+                }
             }
         }
     }
-    if v.hot_pixels + v.cosmic_rays > 0 {
-        let _ = write!(
-            h,
-            "<p class=\"quiet\">Also {} hot pixel(s) and {} cosmic-ray hit(s), counted, not listed.</p>",
-            v.hot_pixels, v.cosmic_rays
-        );
-    }
-    h.push_str("</section>");
+}
 
-    h.push_str("<div class=\"grid\"><section id=\"alerts\"><h2>Alerts tonight</h2>");
-    if v.alerts.is_empty() {
-        h.push_str("<p>None.</p>");
-    } else {
-        let _ = write!(h, "<p class=\"quiet\">Times on {PC_CLOCK_LABEL}.</p><ul>");
-        for a in &v.alerts {
-            let _ = write!(
-                h,
-                "<li>{} <b>{}</b>: {}</li>",
-                a.time_local
-                    .as_deref()
-                    .map_or(String::new(), |t| time(t, PC_CLOCK)),
-                e(&a.kind),
-                e(&a.message)
-            );
+/// The rigs sharing the store, with when each last recorded and was heard.
+fn rigs(rigs: &[LiveRig]) -> Markup {
+    html! {
+        section id="rigs" {
+            h2 { "Rigs of the site" }
+            div class="scroll" {
+                table {
+                    tr {
+                        th { "rig" } th { "frames" } th { "warn" } th { "reject" }
+                        th { "last recorded (" (PC_CLOCK_LABEL) ")" } th { "daemon" }
+                    }
+                    @for r in rigs {
+                        tr {
+                            td { (if r.rig.is_empty() { "(unnamed)" } else { &r.rig }) }
+                            td class="n" { (r.frames) }
+                            td class="n warn" { (r.warned) }
+                            td class="n reject" { (r.rejected) }
+                            td {
+                                @match &r.last_recorded_local {
+                                    Some(t) => { (time(t, PC_CLOCK)) }
+                                    None => { "-" }
+                                }
+                            }
+                            td {
+                                @match r.heard_s_ago {
+                                    Some(s) if s <= 60.0 => { "heard " (format!("{s:.0}")) " s ago" }
+                                    Some(s) => { "silent for " (minutes(s)) }
+                                    None => { "never heard" }
+                                }
+                            }
+                        }
+                    }
+                }
+            }
         }
-        h.push_str("</ul>");
     }
-    let _ = write!(
-        h,
-        "</section><section id=\"sky\"><h2>Sky and daemon</h2>\
-         <p class=\"quiet\">Now, and times on {PC_CLOCK_LABEL}.</p><dl class=\"facts\">"
-    );
-    if let Some(s) = &v.sky {
-        let _ = write!(
-            h,
-            "<dt>Sun</dt><dd>{:.1}° ({})</dd><dt>Moon</dt><dd>{:.1}°, {:.0} % lit</dd>",
-            s.sun_alt_deg,
-            e(&s.twilight),
-            s.moon_alt_deg,
-            100.0 * s.moon_illumination
-        );
-        if let (Some(at), Some(m)) = (&s.astronomical_dawn_local, s.minutes_to_astronomical_dawn) {
-            let _ = write!(
-                h,
-                "<dt>astronomical dawn</dt><dd>{} (in {})</dd>",
-                time(at, PC_CLOCK),
-                minutes(m * 60.0)
-            );
+}
+
+/// The latest measured frame: its picture with its stars ringed and its anomalies boxed.
+fn latest(latest: Option<&LatestFrame>) -> Markup {
+    html! {
+        section id="latest" {
+            h2 { "Latest frame" }
+            @match latest {
+                Some(l) => {
+                    p {
+                        span class="file" { (l.file) }
+                        @if let Some(t) = &l.time_local {
+                            " " (time(t, FRAME_CLOCK)) " " small { (FRAME_CLOCK_LABEL) }
+                        }
+                    }
+                    @match &l.preview_url {
+                        Some(url) if l.width > 0 && l.height > 0 => { (picture(l, url)) }
+                        _ => { p class="quiet" { "Its picture is being made." } }
+                    }
+                }
+                None => { p { "No frame measured yet." } }
+            }
         }
-    } else {
-        h.push_str(
-            "<dt>sky</dt><dd>set [site] latitude and longitude to see the Sun and Moon</dd>",
-        );
     }
-    let d = &v.health;
-    let heard = match d.daemon_heard_s_ago {
-        Some(s) if d.daemon_running => format!("watching (heard {s:.0} s ago)"),
-        Some(s) => format!(
-            "<span class=\"reject\">not heard from for {}</span>",
-            minutes(s)
-        ),
-        None => "<span class=\"reject\">not heard from yet</span>".into(),
+}
+
+/// The latest frame's picture with its marks. FITS pixel centres are whole numbers from
+/// 1, y up; the picture's y runs down. Shapes are closed by end tags: inside `<svg>` an
+/// element the HTML parser sees unclosed would hold the next one.
+fn picture(l: &LatestFrame, url: &str) -> Markup {
+    let side = (l.width.max(l.height) as f64 / 40.0).max(8.0);
+    let h = l.height as f64;
+    html! {
+        div class="pic" {
+            img src=(url) alt="the latest frame, stretched";
+            svg viewBox=(format!("0 0 {} {}", l.width, l.height)) preserveAspectRatio="none" aria-hidden="true" {
+                @for [x, y, r] in &l.stars {
+                    circle class="star" vector-effect="non-scaling-stroke"
+                        cx=(format!("{:.1}", x - 0.5)) cy=(format!("{:.1}", h - (y - 0.5)))
+                        r=(format!("{r:.1}")) {}
+                }
+                @for (x, y, _) in &l.marks {
+                    rect class="mark" vector-effect="non-scaling-stroke"
+                        x=(format!("{:.1}", x - 0.5 - side / 2.0))
+                        y=(format!("{:.1}", h - (y - 0.5) - side / 2.0))
+                        width=(format!("{side:.1}")) height=(format!("{side:.1}")) {}
+                }
+            }
+        }
+        // Shapes, not colours: the red mode draws both in red.
+        p class="quiet" {
+            (l.stars.len()) " stars ringed"
+            @if !l.marks.is_empty() { ", " (l.marks.len()) " anomalies boxed" }
+            "."
+        }
+    }
+}
+
+/// What the night's analysis found so far, and the hot pixels and cosmic rays counted.
+fn anomalies(v: &LiveView) -> Markup {
+    html! {
+        section id="anomalies" {
+            h2 { "Worth a look" }
+            @match v.analysed_unix {
+                None => { p class="quiet" { "The night's analysis has not run yet." } }
+                Some(_) if v.anomalies.is_empty() => { p { "Nothing unusual found so far." } }
+                Some(_) => {
+                    @for a in &v.anomalies {
+                        div class="anomaly" {
+                            @if let Some(url) = &a.cutout_url {
+                                img src=(url) alt=(format!("cutout of the {}", a.kind));
+                            }
+                            span class="kind" { (a.kind) } " " (a.position.as_deref().unwrap_or("")) " "
+                            small { (a.group) }
+                            br;
+                            (a.what)
+                            br;
+                            small {
+                                (a.frames) " frame(s)"
+                                @if let (Some(f), Some(x), Some(y)) = (&a.file, a.x, a.y) {
+                                    ", first in " (f) " at x " (format!("{x:.0}")) ", y " (format!("{y:.0}"))
+                                }
+                            }
+                        }
+                    }
+                }
+            }
+            @if v.hot_pixels + v.cosmic_rays > 0 {
+                p class="quiet" {
+                    "Also " (v.hot_pixels) " hot pixel(s) and " (v.cosmic_rays)
+                    " cosmic-ray hit(s), counted, not listed."
+                }
+            }
+        }
+    }
+}
+
+/// Tonight's alerts, on this PC's clock.
+fn alerts(alerts: &[LiveAlert]) -> Markup {
+    html! {
+        section id="alerts" {
+            h2 { "Alerts tonight" }
+            @if alerts.is_empty() {
+                p { "None." }
+            } @else {
+                p class="quiet" { "Times on " (PC_CLOCK_LABEL) "." }
+                ul {
+                    @for a in alerts {
+                        li {
+                            @if let Some(t) = &a.time_local { (time(t, PC_CLOCK)) }
+                            " " b { (a.kind) } ": " (a.message)
+                        }
+                    }
+                }
+            }
+        }
+    }
+}
+
+/// The Sun and Moon now, and the daemon's health as a viewer may know it.
+fn sky_and_daemon(sky: Option<&SkyNow>, d: &Health) -> Markup {
+    html! {
+        section id="sky" {
+            h2 { "Sky and daemon" }
+            p class="quiet" { "Now, and times on " (PC_CLOCK_LABEL) "." }
+            dl class="facts" {
+                @match sky {
+                    Some(s) => {
+                        dt { "Sun" } dd { (format!("{:.1}", s.sun_alt_deg)) "° (" (s.twilight) ")" }
+                        dt { "Moon" }
+                        dd { (format!("{:.1}°, {:.0} % lit", s.moon_alt_deg, 100.0 * s.moon_illumination)) }
+                        @if let (Some(at), Some(m)) = (&s.astronomical_dawn_local, s.minutes_to_astronomical_dawn) {
+                            dt { "astronomical dawn" }
+                            dd { (time(at, PC_CLOCK)) " (in " (minutes(m * 60.0)) ")" }
+                        }
+                    }
+                    None => {
+                        dt { "sky" } dd { "set [site] latitude and longitude to see the Sun and Moon" }
+                    }
+                }
+                dt { "daemon" }
+                dd {
+                    @match d.daemon_heard_s_ago {
+                        Some(s) if d.daemon_running => { "watching (heard " (format!("{s:.0}")) " s ago)" }
+                        Some(s) => { span class="reject" { "not heard from for " (minutes(s)) } }
+                        None => { span class="reject" { "not heard from yet" } }
+                    }
+                    ": " (d.waiting.unwrap_or(0)) " waiting, " (d.being_read.unwrap_or(0)) " being read"
+                    @if let Some(n) = d.not_stored.filter(|n| *n > 0) {
+                        ", " span class="reject" { (n) " not stored yet" }
+                    }
+                }
+                @if let (Some(t), Some(ago)) = (&d.last_frame_local, d.seconds_since_last_frame) {
+                    dt { "last frame recorded" } dd { (time(t, PC_CLOCK)) " (" (minutes(ago)) " ago)" }
+                }
+                dt { "disk space" }
+                dd {
+                    @if d.low_disk {
+                        span class="reject" {
+                            "low: under " (d.min_free_gb) " GB free where frames, the store or reports are written"
+                        }
+                    } @else {
+                        "enough (over " (d.min_free_gb) " GB free where the daemon writes)"
+                    }
+                }
+                dt { "outbox" }
+                dd {
+                    (d.outbox_waiting) " message(s) waiting"
+                    @if d.outbox_failing {
+                        "; " span class="reject" { "the last attempt failed" } " ("
+                        code { "subwatch outbox" } " on the PC says why)"
+                    }
+                }
+            }
+        }
+    }
+}
+
+/// The night's plots, under a heading per group.
+fn plots(plots: &[LivePlot]) -> Markup {
+    // Runs of plots of one group, in the order given.
+    let mut runs: Vec<(&str, Vec<&LivePlot>)> = Vec::new();
+    for p in plots {
+        match runs.last_mut() {
+            Some((group, run)) if *group == p.group => run.push(p),
+            _ => runs.push((&p.group, vec![p])),
+        }
+    }
+    html! {
+        section id="plots" {
+            h2 { "The night's plots" }
+            @if plots.is_empty() {
+                p class="quiet" { "Drawn once a few frames are in." }
+            } @else {
+                p class="quiet" { "Plotted against " (FRAME_CLOCK_LABEL) "." }
+            }
+            @for (group, run) in &runs {
+                h3 { (group) }
+                div class="plots" {
+                    @for p in run {
+                        img class="plot" src=(p.url) alt=(format!("{}: {}", p.group, p.title));
+                    }
+                }
+            }
+        }
+    }
+}
+
+/// Every frame of the night, newest first, with why where it was not simply ok.
+fn frames(frames: &[LiveFrame]) -> Markup {
+    html! {
+        section id="frames" {
+            h2 { "Tonight's frames, newest first" }
+            @if frames.is_empty() {
+                p { "None yet." }
+            } @else {
+                div class="scroll" {
+                    table {
+                        tr {
+                            th { (FRAME_CLOCK_LABEL) } th { "verdict" } th { "file, and why" }
+                            th { "FWHM" } th { "ecc." } th { "sky ADU" } th { "stars" }
+                        }
+                        @for f in frames { (frame_row(f)) }
+                    }
+                }
+            }
+        }
+    }
+}
+
+fn frame_row(f: &LiveFrame) -> Markup {
+    let verdict = f.verdict.as_deref().unwrap_or(match f.status.as_str() {
+        "error" => "unreadable",
+        "skipped" => "not a light",
+        _ => "waiting",
+    });
+    let class = match verdict {
+        "reject" | "unreadable" => "reject",
+        "warn" => "warn",
+        "ok" => "ok",
+        _ => "quiet",
     };
-    let _ = write!(
-        h,
-        "<dt>daemon</dt><dd>{heard}: {} waiting, {} being read{}</dd>",
-        d.waiting.unwrap_or(0),
-        d.being_read.unwrap_or(0),
-        match d.not_stored {
-            Some(n) if n > 0 => format!(", <span class=\"reject\">{n} not stored yet</span>"),
-            _ => String::new(),
-        }
-    );
-    if let (Some(t), Some(ago)) = (&d.last_frame_local, d.seconds_since_last_frame) {
-        let _ = write!(
-            h,
-            "<dt>last frame recorded</dt><dd>{} ({} ago)</dd>",
-            time(t, PC_CLOCK),
-            minutes(ago)
-        );
-    }
-    let _ = write!(
-        h,
-        "<dt>disk space</dt><dd>{}</dd>",
-        if d.low_disk {
-            format!(
-                "<span class=\"reject\">low: under {} GB free where frames, the store or reports are written</span>",
-                d.min_free_gb
-            )
-        } else {
-            format!(
-                "enough (over {} GB free where the daemon writes)",
-                d.min_free_gb
-            )
-        }
-    );
-    let _ = write!(
-        h,
-        "<dt>outbox</dt><dd>{} message(s) waiting{}</dd></dl></section></div>",
-        d.outbox_waiting,
-        if d.outbox_failing {
-            "; <span class=\"reject\">the last attempt failed</span> (<code>subwatch outbox</code> on the PC says why)"
-        } else {
-            ""
-        }
-    );
-    h.push_str("<section id=\"plots\"><h2>The night's plots</h2>");
-    if v.plots.is_empty() {
-        h.push_str("<p class=\"quiet\">Drawn once a few frames are in.</p>");
-    } else {
-        let _ = write!(
-            h,
-            "<p class=\"quiet\">Plotted against {FRAME_CLOCK_LABEL}.</p>"
-        );
-    }
-    let mut group: Option<&str> = None;
-    for p in &v.plots {
-        if group != Some(p.group.as_str()) {
-            if group.is_some() {
-                h.push_str("</div>");
-            }
-            let _ = write!(h, "<h3>{}</h3><div class=\"plots\">", e(&p.group));
-            group = Some(p.group.as_str());
-        }
-        let _ = write!(
-            h,
-            "<img class=\"plot\" src=\"{}\" alt=\"{}: {}\">",
-            e(&p.url),
-            e(&p.group),
-            e(&p.title)
-        );
-    }
-    if group.is_some() {
-        h.push_str("</div>");
-    }
-    h.push_str("</section>");
-
-    h.push_str("<section id=\"frames\"><h2>Tonight's frames, newest first</h2>");
-    if v.frames.is_empty() {
-        h.push_str("<p>None yet.</p>");
-    } else {
-        let _ = write!(h, "<div class=\"scroll\"><table><tr><th>{FRAME_CLOCK_LABEL}</th><th>verdict</th><th>file, and why</th><th>FWHM</th><th>ecc.</th><th>sky ADU</th><th>stars</th></tr>");
-        for f in &v.frames {
-            let verdict = f.verdict.as_deref().unwrap_or(match f.status.as_str() {
-                "error" => "unreadable",
-                "skipped" => "not a light",
-                _ => "waiting",
-            });
-            let class = match verdict {
-                "reject" | "unreadable" => "reject",
-                "warn" => "warn",
-                "ok" => "ok",
-                _ => "quiet",
-            };
-            let fwhm = match (f.fwhm_arcsec, f.fwhm_px) {
-                (Some(a), _) => format!("{a:.2}″"),
-                (None, Some(p)) => format!("{p:.2} px"),
-                _ => "-".into(),
-            };
-            let _ = write!(
-                h,
-                "<tr><td>{}</td><td class=\"{class}\">{}</td><td><span class=\"file\">{}</span>{}",
-                f.time_local
-                    .as_deref()
-                    .map_or("-".into(), |t| time(t, FRAME_CLOCK)),
-                e(verdict),
-                e(&f.file),
-                if f.kind == "light" || f.kind.is_empty() {
-                    String::new()
-                } else {
-                    format!(" <small>({})</small>", e(&f.kind))
+    let fwhm = match (f.fwhm_arcsec, f.fwhm_px) {
+        (Some(a), _) => format!("{a:.2}″"),
+        (None, Some(p)) => format!("{p:.2} px"),
+        _ => "-".into(),
+    };
+    let why: Vec<&String> = f.explanations.iter().chain(f.error.iter()).collect();
+    html! {
+        tr {
+            td {
+                @match &f.time_local {
+                    Some(t) => { (time(t, FRAME_CLOCK)) }
+                    None => { "-" }
                 }
-            );
-            let why: Vec<&String> = f.explanations.iter().chain(f.error.iter()).collect();
-            if !why.is_empty() && verdict != "ok" {
-                h.push_str("<ul class=\"why\">");
-                for w in why {
-                    let _ = write!(h, "<li>{}</li>", e(w));
-                }
-                h.push_str("</ul>");
             }
-            let _ = write!(
-                h,
-                "</td><td class=\"n\">{}</td><td class=\"n\">{}</td><td class=\"n\">{}</td><td class=\"n\">{}</td></tr>",
-                e(&fwhm),
-                num(f.eccentricity, 2),
-                num(f.background_adu, 0),
-                f.star_count.map_or("-".into(), |n| n.to_string())
-            );
+            td class=(class) { (verdict) }
+            td {
+                span class="file" { (f.file) }
+                @if f.kind != "light" && !f.kind.is_empty() { " " small { "(" (f.kind) ")" } }
+                @if !why.is_empty() && verdict != "ok" {
+                    ul class="why" { @for w in &why { li { (w) } } }
+                }
+            }
+            td class="n" { (fwhm) }
+            td class="n" { (num(f.eccentricity, 2)) }
+            td class="n" { (num(f.background_adu, 0)) }
+            td class="n" {
+                @match f.star_count {
+                    Some(n) => { (n) }
+                    None => { "-" }
+                }
+            }
         }
-        h.push_str("</table></div>");
     }
-    h.push_str("</section>");
-
-    h.push_str("<p class=\"quiet\">JSON for scripts: <code>api/night</code> (everything here), <code>api/version</code>.</p>");
-    h
 }
 
 #[cfg(test)]
