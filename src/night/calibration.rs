@@ -351,18 +351,37 @@ impl SetMedians {
             }
         }
         if let (Some(h), "dark") = (self.hot, kind) {
-            let count = c.hot_pixel_count as f64;
-            if count > HOT_PIXELS_RATIO * h && count - h >= HOT_PIXELS_MIN_EXTRA as f64 {
-                v.add(
-                    Verdict::Warn,
-                    "dark_hot_pixels",
-                    format!(
-                        "{} hot pixels against the set's median {h:.0} (warn above {HOT_PIXELS_RATIO} ×): cooling that failed?",
-                        c.hot_pixel_count
-                    ),
-                );
-            }
+            hot_pixels_against(
+                c,
+                h,
+                &format!("the set's median {h:.0}"),
+                "cooling that failed?",
+                v,
+            );
         }
+    }
+}
+
+/// A dark with many more hot pixels than `median` of other darks (more than
+/// `HOT_PIXELS_RATIO` times as many, and `HOT_PIXELS_MIN_EXTRA` more at least) is
+/// warned, saying what the median is of (`against`) and the likely `cause`.
+fn hot_pixels_against(
+    c: &CalibrationStats,
+    median: f64,
+    against: &str,
+    cause: &str,
+    v: &mut Verdicts,
+) {
+    let count = c.hot_pixel_count as f64;
+    if count > HOT_PIXELS_RATIO * median && count - median >= HOT_PIXELS_MIN_EXTRA as f64 {
+        v.add(
+            Verdict::Warn,
+            "dark_hot_pixels",
+            format!(
+                "{} hot pixels against {against} (warn above {HOT_PIXELS_RATIO} ×): {cause}",
+                c.hot_pixel_count
+            ),
+        );
     }
 }
 
@@ -400,17 +419,13 @@ fn dark_against_earlier(dark: &FrameRecord, earlier: &[&FrameRecord], v: &mut Ve
     let Some(h) = median_f64(&counts) else {
         return;
     };
-    let count = c.hot_pixel_count as f64;
-    if count > HOT_PIXELS_RATIO * h && count - h >= HOT_PIXELS_MIN_EXTRA as f64 {
-        v.add(
-            Verdict::Warn,
-            "dark_hot_pixels",
-            format!(
-                "{} hot pixels against the median {h:.0} of {n} earlier nights' darks of this exposure and temperature (warn above {HOT_PIXELS_RATIO} ×): a sensor ageing, or cooling that failed?",
-                c.hot_pixel_count
-            ),
-        );
-    }
+    hot_pixels_against(
+        c,
+        h,
+        &format!("the median {h:.0} of {n} earlier nights' darks of this exposure and temperature"),
+        "a sensor ageing, or cooling that failed?",
+        v,
+    );
 }
 
 /// A dark's exposure and temperature against the night's lights.

@@ -191,29 +191,24 @@ pub struct Point {
     pub snr: f64,
 }
 
-impl Placed for Point {
-    fn xy(&self) -> (f64, f64) {
-        (self.x, self.y)
-    }
-    fn flux(&self) -> f64 {
-        self.flux
-    }
-    fn snr(&self) -> f64 {
-        self.snr
-    }
+/// [`Placed`] for types that hold it in fields `x`, `y`, `flux` and `snr`.
+macro_rules! placed_by_fields {
+    ($($t:ty),*) => {$(
+        impl Placed for $t {
+            fn xy(&self) -> (f64, f64) {
+                (self.x, self.y)
+            }
+            fn flux(&self) -> f64 {
+                self.flux
+            }
+            fn snr(&self) -> f64 {
+                self.snr
+            }
+        }
+    )*};
 }
 
-impl Placed for crate::record::StarRecord {
-    fn xy(&self) -> (f64, f64) {
-        (self.x, self.y)
-    }
-    fn flux(&self) -> f64 {
-        self.flux
-    }
-    fn snr(&self) -> f64 {
-        self.snr
-    }
-}
+placed_by_fields!(Point, crate::record::StarRecord);
 
 /// Register `frame` stars onto `reference` stars. `None` when no consistent transform is
 /// found (clouds, another target).
