@@ -7,33 +7,21 @@
 //! the synthetic renderer (`src/sim/`), whose scenes are long lists of what to draw.
 //! Files are parsed with `syn` (line numbers from `proc-macro2`'s span locations).
 
-use std::path::{Path, PathBuf};
+#[path = "common/sources.rs"]
+mod sources;
 
+use std::path::Path;
+
+use sources::{is_cfg_test, rust_files};
 use syn::spanned::Spanned;
 use syn::visit::Visit;
 
 /// The longest a function may be, in lines.
 const MAX_LINES: usize = 150;
 
-fn rust_files(dir: &Path, out: &mut Vec<PathBuf>) {
-    for e in std::fs::read_dir(dir).unwrap() {
-        let p = e.unwrap().path();
-        if p.is_dir() {
-            rust_files(&p, out);
-        } else if p.extension().is_some_and(|x| x == "rs") {
-            out.push(p);
-        }
-    }
-}
-
 /// `#[cfg(test)]` or `#[test]`.
 fn is_test(attrs: &[syn::Attribute]) -> bool {
-    attrs.iter().any(|a| {
-        a.path().is_ident("test")
-            || (a.path().is_ident("cfg")
-                && a.parse_args::<syn::Meta>()
-                    .is_ok_and(|m| m.path().is_ident("test")))
-    })
+    is_cfg_test(attrs) || attrs.iter().any(|a| a.path().is_ident("test"))
 }
 
 /// Every function of one file outside test code: (name, first line, lines).
@@ -127,11 +115,7 @@ fn no_function_outside_tests_and_the_renderer_is_longer_than_150_lines() {
 fn the_checker_finds_a_planted_long_function_and_only_it() {
     let dir = tempfile::tempdir().unwrap();
     let src = dir.path();
-    let write = |rel: &str, text: &str| {
-        let p = src.join(rel);
-        std::fs::create_dir_all(p.parent().unwrap()).unwrap();
-        std::fs::write(p, text).unwrap();
-    };
+    let write = |rel: &str, text: &str| sources::plant(src, rel, text);
     // A body of `n` statement lines: the function is n + 2 lines with its braces.
     let body = |n: usize| "    let _x = 1;\n".repeat(n);
     let long = format!(
