@@ -8,7 +8,7 @@ use std::path::Path;
 use crate::contract::{
     AnomalyRecord, CatalogueMatch, DetectionRecord, GroupLimits, NightDocument, NightFrameRecord,
 };
-use crate::night::judge::{judge_night, Site};
+use crate::night::judge::{judge_night, FrameJudgement, NightJudgement, Site};
 use crate::record::{FrameRecord, FrameStatus, Identity};
 use crate::rules::RuleSpec;
 use crate::store::{Store, StoreError};
@@ -24,6 +24,17 @@ pub enum Catalogues<'a> {
     Keep(&'a mut Store),
 }
 
+impl Catalogues<'_> {
+    /// The store earlier nights are read from, if any.
+    fn store(&self) -> Option<&Store> {
+        match self {
+            Catalogues::None => None,
+            Catalogues::Read(s) => Some(s),
+            Catalogues::Keep(s) => Some(s),
+        }
+    }
+}
+
 /// Judge already-recorded frames as one night through the night model, group by group
 /// (target and filter; unreadable frames stay in their group).
 /// `calibration`: how many nights back earlier calibration frames (the library in the
@@ -32,10 +43,9 @@ pub fn analyse_records(
     records: &[FrameRecord],
     rules: &[RuleSpec],
     site: Option<Site>,
-    mut store: Catalogues<'_>,
+    store: Catalogues<'_>,
     calibration: &crate::night::calibration::CalibrationSettings,
 ) -> Result<NightDocument, StoreError> {
-    let mut doc = NightDocument::default();
     let mut groups: BTreeMap<(String, String), Vec<&FrameRecord>> = BTreeMap::new();
     for r in records.iter().filter(|r| r.status != FrameStatus::Skipped) {
         let key = (
@@ -44,110 +54,82 @@ pub fn analyse_records(
         );
         groups.entry(key).or_default().push(r);
     }
-    // Per target, tonight's label and each filter group's catalogue of the night with its
-    // reference frame, for the colors between filters.
-    let mut bands: BTreeMap<String, (Option<String>, Vec<BandEntry>)> = BTreeMap::new();
+    let mut analysis = Analysis {
+        doc: NightDocument::default(),
+        bands: BTreeMap::new(),
+        store,
+        rules,
+        site,
+    };
     for ((target, filter), frames) in groups {
+        analysis.group(&target, &filter, &frames)?;
+    }
+    analysis.colors_between_bands()?;
+    analysis.calibration(records, calibration)?;
+    let mut doc = analysis.doc;
+    doc.frames.sort_by(|a, b| {
+        a.time_unix
+            .unwrap_or(0.0)
+            .total_cmp(&b.time_unix.unwrap_or(0.0))
+            .then(a.path.cmp(&b.path))
+    });
+    Ok(doc)
+}
+
+/// A night's document as it is built, group by group.
+struct Analysis<'a, 's> {
+    doc: NightDocument,
+    /// Per target, tonight's label and each filter group's catalogue of the night with
+    /// its reference frame, for the colors between filters.
+    bands: BTreeMap<String, (Option<String>, Vec<BandEntry>)>,
+    store: Catalogues<'s>,
+    rules: &'a [RuleSpec],
+    site: Option<Site>,
+}
+
+impl Analysis<'_, '_> {
+    /// One target and filter judged by the night model: its frames, limits and anomalies
+    /// into the document, its catalogue kept (with `Catalogues::Keep`) and noted for the
+    /// colors between filters.
+    fn group(
+        &mut self,
+        target: &str,
+        filter: &str,
+        frames: &[&FrameRecord],
+    ) -> Result<(), StoreError> {
         let night_label = majority(
             frames
                 .iter()
                 .filter(|r| r.status == FrameStatus::Ok)
                 .filter_map(|r| r.night.clone()),
         );
-        let earlier = match (&store, &night_label) {
-            (Catalogues::Read(s), Some(n)) if !target.is_empty() => {
-                s.earlier_catalogs(&target, &filter, n)?
-            }
-            (Catalogues::Keep(s), Some(n)) if !target.is_empty() => {
-                s.earlier_catalogs(&target, &filter, n)?
-            }
+        let earlier = match (self.store.store(), &night_label) {
+            (Some(s), Some(n)) if !target.is_empty() => s.earlier_catalogs(target, filter, n)?,
             _ => Vec::new(),
         };
-        let judged = judge_night(&frames, &earlier, rules, site);
-        doc.limits.push(GroupLimits {
+        let judged = judge_night(frames, &earlier, self.rules, self.site);
+        self.doc.limits.push(GroupLimits {
             rig: None,
-            target: Some(target.clone()).filter(|t| !t.is_empty()),
-            filter: Some(filter.clone()).filter(|t| !t.is_empty()),
+            target: Some(target.to_string()).filter(|t| !t.is_empty()),
+            filter: Some(filter.to_string()).filter(|t| !t.is_empty()),
             limits: judged.limits.clone(),
         });
         let found = &judged.findings;
-        let reference = judged
-            .frames
-            .iter()
-            .find_map(|j| j.placement.as_ref().map(|p| p.reference.clone()))
-            .and_then(|path| frames.iter().find(|r| r.identity.path == path).copied());
-        if let (Some(r), false, false) = (reference, target.is_empty(), filter.is_empty()) {
-            if let (Some(wcs), false) = (r.wcs.clone(), found.catalog.is_empty()) {
-                let entries = bands.entry(target.clone()).or_default();
-                entries.0 = entries.0.take().or(night_label.clone());
-                entries.1.push(BandEntry {
-                    filter: filter.clone(),
-                    sources: found.catalog.clone(),
-                    limit_mag: found.limit_mag,
-                    seen: Some((r.identity.path.clone(), wcs.clone())),
-                    scale_arcsec: wcs.scale_arcsec(),
-                });
-            }
-        }
+        self.note_band(target, filter, &night_label, frames, &judged);
         if let (Catalogues::Keep(s), Some(n), Some(limit)) =
-            (&mut store, &night_label, found.limit_mag)
+            (&mut self.store, &night_label, found.limit_mag)
         {
             if !target.is_empty() && !found.catalog.is_empty() {
-                s.save_catalog(&target, &filter, n, limit, &found.footprint, &found.catalog)?;
+                s.save_catalog(target, filter, n, limit, &found.footprint, &found.catalog)?;
             }
         }
         let carried: Vec<Option<crate::astrometry::SkyFit>> = frames
             .iter()
             .zip(&judged.frames)
-            .map(|(r, j)| carried_fit(r, j.placement.as_ref(), &frames))
+            .map(|(r, j)| carried_fit(r, j.placement.as_ref(), frames))
             .collect();
         for ((r, j), carried) in frames.iter().zip(&judged.frames).zip(&carried) {
-            let p = j.placement.as_ref();
-            let metrics = r.metrics.clone().map(|mut m| {
-                if m.sky_fit.is_none() && carried.is_some() {
-                    m.sky_fit = carried.clone();
-                    m.sky_fit_note = None;
-                }
-                m
-            });
-            let mut explanations = j.judgement.explanations.clone();
-            // After the verdict's own explanations (one per reason), why the frame has
-            // no place on the sky, where a catalogue was there to give it one.
-            if let Some(note) = metrics.as_ref().and_then(|m| m.sky_fit_note.as_ref()) {
-                explanations.push(format!("not placed on the sky: {note}"));
-            }
-            doc.frames.push(NightFrameRecord {
-                path: r.identity.path.clone(),
-                rig: None,
-                kind: "light",
-                status: if r.status == FrameStatus::Ok {
-                    "ok"
-                } else {
-                    "error"
-                },
-                error: r.error.clone(),
-                metrics,
-                verdict: j.judgement.verdict,
-                reasons: j.judgement.reasons.clone(),
-                explanations,
-                night: r.night.clone(),
-                target: r.target.clone(),
-                filter: r.filter.clone(),
-                time_unix: r.time_unix,
-                exposure_s: r.header.as_ref().and_then(|h| h.exposure_s),
-                registered: p.is_some_and(|p| p.registered),
-                registration_rms_px: p.and_then(|p| p.rms_px),
-                registration_transform: p.and_then(|p| p.transform),
-                sky: j.sky,
-                transparency_loss_mag: j.transparency_loss_mag,
-                instrument: r.header.as_ref().and_then(|h| {
-                    let named: Vec<&str> = [h.telescope.as_deref(), h.instrument.as_deref()]
-                        .into_iter()
-                        .flatten()
-                        .collect();
-                    (!named.is_empty()).then(|| named.join(", "))
-                }),
-            });
+            self.doc.frames.push(light_record(r, j, carried));
         }
         for a in &found.anomalies {
             // A position through a fit carried from the reference, where the frame had none.
@@ -158,7 +140,7 @@ pub fn analyse_records(
                     .map_or((None, None), |(ra, dec)| (Some(ra), Some(dec))),
                 (ra, dec, _) => (ra, dec),
             };
-            doc.anomalies.push(AnomalyRecord {
+            self.doc.anomalies.push(AnomalyRecord {
                 kind: a.kind,
                 ra_deg,
                 dec_deg,
@@ -172,8 +154,8 @@ pub fn analyse_records(
                     })
                     .collect(),
                 detail: a.detail.clone(),
-                target: Some(target.clone()).filter(|t| !t.is_empty()),
-                filter: Some(filter.clone()).filter(|t| !t.is_empty()),
+                target: Some(target.to_string()).filter(|t| !t.is_empty()),
+                filter: Some(filter.to_string()).filter(|t| !t.is_empty()),
                 catalogue: None,
                 catalogue_depth_mag: None,
                 mag: None,
@@ -181,76 +163,176 @@ pub fn analyse_records(
                 mag_band: None,
             });
         }
+        Ok(())
     }
-    for (target, (tonight, entries)) in &mut bands {
-        // Filters not imaged tonight, from the newest earlier night the store holds.
-        let earlier = match (&store, tonight.as_deref()) {
-            (Catalogues::Read(s), Some(n)) => s.catalogs_before(target, n)?,
-            (Catalogues::Keep(s), Some(n)) => s.catalogs_before(target, n)?,
+
+    /// The group's catalogue of the night, seen in its reference frame, for the colors
+    /// between the target's filters.
+    fn note_band(
+        &mut self,
+        target: &str,
+        filter: &str,
+        night_label: &Option<String>,
+        frames: &[&FrameRecord],
+        judged: &NightJudgement,
+    ) {
+        let found = &judged.findings;
+        let reference = judged
+            .frames
+            .iter()
+            .find_map(|j| j.placement.as_ref().map(|p| p.reference.clone()))
+            .and_then(|path| frames.iter().find(|r| r.identity.path == path).copied());
+        if let (Some(r), false, false) = (reference, target.is_empty(), filter.is_empty()) {
+            if let (Some(wcs), false) = (r.wcs.clone(), found.catalog.is_empty()) {
+                let entries = self.bands.entry(target.to_string()).or_default();
+                entries.0 = entries.0.take().or(night_label.clone());
+                entries.1.push(BandEntry {
+                    filter: filter.to_string(),
+                    sources: found.catalog.clone(),
+                    limit_mag: found.limit_mag,
+                    seen: Some((r.identity.path.clone(), wcs.clone())),
+                    scale_arcsec: wcs.scale_arcsec(),
+                });
+            }
+        }
+    }
+
+    /// Sources far from the field's color between a target's filters, tonight's and,
+    /// for filters not imaged tonight, the newest earlier night's the store holds.
+    fn colors_between_bands(&mut self) -> Result<(), StoreError> {
+        for (target, (tonight, entries)) in &mut self.bands {
+            let earlier = match (self.store.store(), tonight.as_deref()) {
+                (Some(s), Some(n)) => s.catalogs_before(target, n)?,
+                _ => Vec::new(),
+            };
+            let scale = entries.first().map_or(1.0, |e| e.scale_arcsec);
+            for (filter, night) in earlier {
+                if filter.is_empty() || entries.iter().any(|e| e.filter == filter) {
+                    continue;
+                }
+                entries.push(BandEntry {
+                    filter: format!("{filter} ({})", night.night),
+                    sources: night.sources,
+                    limit_mag: Some(night.limit_mag),
+                    seen: None,
+                    scale_arcsec: scale,
+                });
+            }
+            self.doc.anomalies.extend(band_colors(target, entries));
+        }
+        Ok(())
+    }
+
+    /// Darks, flats and bias frames, judged as calibration for these lights (with the
+    /// store's earlier calibration frames as the library).
+    fn calibration(
+        &mut self,
+        records: &[FrameRecord],
+        calibration: &crate::night::calibration::CalibrationSettings,
+    ) -> Result<(), StoreError> {
+        let all: Vec<&FrameRecord> = records.iter().collect();
+        let tonight = majority(records.iter().filter_map(|r| r.night.clone()));
+        let earlier = match (self.store.store(), &tonight) {
+            (Some(s), Some(n)) => s.earlier_calibration(n, calibration.library_days)?,
             _ => Vec::new(),
         };
-        let scale = entries.first().map_or(1.0, |e| e.scale_arcsec);
-        for (filter, night) in earlier {
-            if filter.is_empty() || entries.iter().any(|e| e.filter == filter) {
-                continue;
-            }
-            entries.push(BandEntry {
-                filter: format!("{filter} ({})", night.night),
-                sources: night.sources,
-                limit_mag: Some(night.limit_mag),
-                seen: None,
-                scale_arcsec: scale,
+        let earlier: Vec<&FrameRecord> = earlier.iter().collect();
+        let judged = crate::night::calibration::judge_calibration(&all, &earlier, calibration);
+        for c in &judged.frames {
+            let r = all[c.index];
+            self.doc.calibration.push(NightFrameRecord {
+                kind: c.kind,
+                status: if r.calibration.is_some() {
+                    "ok"
+                } else {
+                    "error"
+                },
+                error: r.calibration.is_none().then(|| r.error.clone()).flatten(),
+                verdict: c.judgement.verdict,
+                reasons: c.judgement.reasons.clone(),
+                explanations: c.judgement.explanations.clone(),
+                ..frame_facts(r)
             });
         }
-        doc.anomalies.extend(band_colors(target, entries));
+        self.doc.calibration_notes = judged.notes;
+        Ok(())
     }
-    // Darks, flats and bias frames, judged as calibration for these lights.
-    let all: Vec<&FrameRecord> = records.iter().collect();
-    let tonight = majority(records.iter().filter_map(|r| r.night.clone()));
-    let earlier = match (&store, &tonight) {
-        (Catalogues::Read(s), Some(n)) => s.earlier_calibration(n, calibration.library_days)?,
-        (Catalogues::Keep(s), Some(n)) => s.earlier_calibration(n, calibration.library_days)?,
-        _ => Vec::new(),
-    };
-    let earlier: Vec<&FrameRecord> = earlier.iter().collect();
-    let judged = crate::night::calibration::judge_calibration(&all, &earlier, calibration);
-    for c in &judged.frames {
-        let r = all[c.index];
-        doc.calibration.push(NightFrameRecord {
-            path: r.identity.path.clone(),
-            rig: None,
-            kind: c.kind,
-            status: if r.calibration.is_some() {
-                "ok"
-            } else {
-                "error"
-            },
-            error: r.calibration.is_none().then(|| r.error.clone()).flatten(),
-            metrics: None,
-            verdict: c.judgement.verdict,
-            reasons: c.judgement.reasons.clone(),
-            explanations: c.judgement.explanations.clone(),
-            night: r.night.clone(),
-            target: r.target.clone(),
-            filter: r.filter.clone(),
-            time_unix: r.time_unix,
-            exposure_s: r.header.as_ref().and_then(|h| h.exposure_s),
-            registered: false,
-            registration_rms_px: None,
-            registration_transform: None,
-            sky: None,
-            transparency_loss_mag: None,
-            instrument: None,
-        });
-    }
-    doc.calibration_notes = judged.notes;
-    doc.frames.sort_by(|a, b| {
-        a.time_unix
-            .unwrap_or(0.0)
-            .total_cmp(&b.time_unix.unwrap_or(0.0))
-            .then(a.path.cmp(&b.path))
+}
+
+/// A light frame's entry in the document: its record, its judgement, and a fit carried
+/// from the reference where it had none.
+fn light_record(
+    r: &FrameRecord,
+    j: &FrameJudgement,
+    carried: &Option<crate::astrometry::SkyFit>,
+) -> NightFrameRecord {
+    let p = j.placement.as_ref();
+    let metrics = r.metrics.clone().map(|mut m| {
+        if m.sky_fit.is_none() && carried.is_some() {
+            m.sky_fit = carried.clone();
+            m.sky_fit_note = None;
+        }
+        m
     });
-    Ok(doc)
+    let mut explanations = j.judgement.explanations.clone();
+    // After the verdict's own explanations (one per reason), why the frame has no place
+    // on the sky, where a catalogue was there to give it one.
+    if let Some(note) = metrics.as_ref().and_then(|m| m.sky_fit_note.as_ref()) {
+        explanations.push(format!("not placed on the sky: {note}"));
+    }
+    NightFrameRecord {
+        kind: "light",
+        status: if r.status == FrameStatus::Ok {
+            "ok"
+        } else {
+            "error"
+        },
+        error: r.error.clone(),
+        metrics,
+        verdict: j.judgement.verdict,
+        reasons: j.judgement.reasons.clone(),
+        explanations,
+        registered: p.is_some_and(|p| p.registered),
+        registration_rms_px: p.and_then(|p| p.rms_px),
+        registration_transform: p.and_then(|p| p.transform),
+        sky: j.sky,
+        transparency_loss_mag: j.transparency_loss_mag,
+        instrument: r.header.as_ref().and_then(|h| {
+            let named: Vec<&str> = [h.telescope.as_deref(), h.instrument.as_deref()]
+                .into_iter()
+                .flatten()
+                .collect();
+            (!named.is_empty()).then(|| named.join(", "))
+        }),
+        ..frame_facts(r)
+    }
+}
+
+/// What the document says of any frame from its record alone (path, night, group, time,
+/// exposure); what its kind and judgement say is left empty, unmeasured and unplaced.
+fn frame_facts(r: &FrameRecord) -> NightFrameRecord {
+    NightFrameRecord {
+        path: r.identity.path.clone(),
+        rig: None,
+        kind: "",
+        status: "",
+        error: None,
+        metrics: None,
+        verdict: crate::rules::Verdict::Ok,
+        reasons: Vec::new(),
+        explanations: Vec::new(),
+        night: r.night.clone(),
+        target: r.target.clone(),
+        filter: r.filter.clone(),
+        time_unix: r.time_unix,
+        exposure_s: r.header.as_ref().and_then(|h| h.exposure_s),
+        registered: false,
+        registration_rms_px: None,
+        registration_transform: None,
+        sky: None,
+        transparency_loss_mag: None,
+        instrument: None,
+    }
 }
 
 /// One filter group of a target, for the colors between filters: tonight's, with the

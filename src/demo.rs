@@ -252,6 +252,63 @@ pub fn run(
     progress: &mut dyn FnMut(&str, usize, usize),
 ) -> Result<DemoOutcome, DemoError> {
     let started = Instant::now();
+    let out = prepare_folder(out)?;
+    let config = demo_config(&out, page);
+
+    let (previous, tonight, catalogue) = render_all(progress);
+    let catalogue_path = &config.catalogue.files[0];
+    std::fs::write(catalogue_path, catalogue).map_err(io(catalogue_path))?;
+    crate::catalogue_import::ensure(&config.catalogue, false)
+        .map_err(|e| DemoError::Folder(format!("the demo's catalogue: {e}")))?;
+    record_previous(&config, &out, &previous)?;
+    capture_tonight(&config, &out, &tonight, progress)?;
+
+    // The morning.
+    progress("writing the morning summary", 0, 1);
+    let mut store = Store::open_for_rig(&config.store.path, &config.rig.name)?;
+    let prepared = crate::morning::prepare(&mut store, &config, NIGHT)?;
+    let now = prepared
+        .doc
+        .frames
+        .iter()
+        .filter_map(|f| f.time_unix)
+        .fold(0.0, f64::max)
+        + 3600.0;
+    crate::morning::queue_mail(&store, &config, &prepared, now)?;
+    let flushed = crate::morning::flush(&store, &config, now)?;
+    let json = crate::morning::report_folder(&config).join(format!("night-{NIGHT}.json"));
+    std::fs::write(
+        &json,
+        serde_json::to_vec_pretty(&prepared.doc).unwrap_or_default(),
+    )
+    .map_err(io(&json))?;
+    let _ = std::fs::remove_dir(out.join("scratch"));
+    progress("done", 1, 1);
+    let mut mails = flushed.written;
+    if let Ok(dir) = std::fs::read_dir(crate::morning::report_folder(&config)) {
+        for e in dir.flatten() {
+            if e.path().extension().is_some_and(|x| x == "eml") && !mails.contains(&e.path()) {
+                mails.push(e.path());
+            }
+        }
+    }
+    mails.sort();
+    Ok(DemoOutcome {
+        out,
+        night: NIGHT.into(),
+        html: prepared.html_path,
+        csv: prepared.csv_path,
+        json,
+        mails,
+        plans: prepared.summary.plans.clone(),
+        doc: prepared.doc,
+        seconds: started.elapsed().as_secs_f64(),
+    })
+}
+
+/// The demo's folder, emptied if an earlier demo left it, with its parts made; its
+/// canonical path.
+fn prepare_folder(out: &Path) -> Result<PathBuf, DemoError> {
     if out.exists() {
         let empty = std::fs::read_dir(out).map_err(io(out))?.next().is_none();
         if !empty && !out.join(MARKER).exists() {
@@ -277,50 +334,54 @@ pub fn run(
         std::fs::create_dir_all(out.join(sub)).map_err(io(out))?;
     }
     std::fs::write(out.join(MARKER), b"made by subwatch demo\n").map_err(io(out))?;
-    let out = std::fs::canonicalize(out).map_err(io(out))?;
-    let config = demo_config(&out, page);
+    std::fs::canonicalize(out).map_err(io(out))
+}
 
-    let (previous, tonight, catalogue) = render_all(progress);
-    let catalogue_path = &config.catalogue.files[0];
-    std::fs::write(catalogue_path, catalogue).map_err(io(catalogue_path))?;
-    crate::catalogue_import::ensure(&config.catalogue, false)
-        .map_err(|e| DemoError::Folder(format!("the demo's catalogue: {e}")))?;
-
-    // The previous night goes straight into the store, as the daemon would have left it.
-    {
-        let mut store = Store::open_for_rig(&config.store.path, &config.rig.name)?;
-        let options = crate::pipeline::RecordOptions::from_config(&config);
-        let reader = crate::reader::Reader::from_config(&config.measure);
-        let judging = crate::watch::Judging {
-            rules: Vec::new(),
-            site: config.site_position(),
-            lists: None,
-            calibration: config.calibration.settings.clone(),
-        };
-        let mut label = None;
-        for f in &previous {
-            let path = out.join("previous").join(&f.name);
-            write_frame(&path, &f.pixels, Encoding::Unsigned16, &f.keys)?;
-            let identity = Identity::of(&path).map_err(io(&path))?;
-            let rec = reader.record(&path, identity, f.time_unix, &options);
-            label = rec.night.clone();
-            if let Some(id) = store.record_frame(&rec, f.time_unix)?.id() {
-                crate::watch::judge_in_store(&store, &rec, id, &judging)?;
-            }
-        }
-        if let Some(n) = label {
-            let records = store.night_records(&n)?;
-            crate::batch::analyse_records(
-                &records,
-                &[],
-                config.site_position(),
-                crate::batch::Catalogues::Keep(&mut store),
-                &config.calibration.settings,
-            )?;
+/// The previous night straight into the store, as the daemon would have left it: each
+/// frame recorded and judged, the night's catalogue kept.
+fn record_previous(config: &Config, out: &Path, previous: &[NightFrame]) -> Result<(), DemoError> {
+    let mut store = Store::open_for_rig(&config.store.path, &config.rig.name)?;
+    let options = crate::pipeline::RecordOptions::from_config(config);
+    let reader = crate::reader::Reader::from_config(&config.measure);
+    let judging = crate::watch::Judging {
+        rules: Vec::new(),
+        site: config.site_position(),
+        lists: None,
+        calibration: config.calibration.settings.clone(),
+    };
+    let mut label = None;
+    for f in previous {
+        let path = out.join("previous").join(&f.name);
+        write_frame(&path, &f.pixels, Encoding::Unsigned16, &f.keys)?;
+        let identity = Identity::of(&path).map_err(io(&path))?;
+        let rec = reader.record(&path, identity, f.time_unix, &options);
+        label = rec.night.clone();
+        if let Some(id) = store.record_frame(&rec, f.time_unix)?.id() {
+            crate::watch::judge_in_store(&store, &rec, id, &judging)?;
         }
     }
+    if let Some(n) = label {
+        let records = store.night_records(&n)?;
+        crate::batch::analyse_records(
+            &records,
+            &[],
+            config.site_position(),
+            crate::batch::Catalogues::Keep(&mut store),
+            &config.calibration.settings,
+        )?;
+    }
+    Ok(())
+}
 
-    // Tonight, through the daemon.
+/// Tonight through the real daemon in a thread: the evening's calibration set, then
+/// every frame written into its watched folder as a capture program would; until every
+/// frame is recorded and judged.
+fn capture_tonight(
+    config: &Config,
+    out: &Path,
+    tonight: &[(NightFrame, &'static str)],
+    progress: &mut dyn FnMut(&str, usize, usize),
+) -> Result<(), DemoError> {
     let stop = Arc::new(AtomicBool::new(false));
     let daemon = {
         let (config, stop) = (config.clone(), stop.clone());
@@ -381,46 +442,5 @@ pub fn run(
     if done < total {
         return Err(DemoError::Timeout { done, total });
     }
-
-    // The morning.
-    progress("writing the morning summary", 0, 1);
-    let mut store = Store::open_for_rig(&config.store.path, &config.rig.name)?;
-    let prepared = crate::morning::prepare(&mut store, &config, NIGHT)?;
-    let now = prepared
-        .doc
-        .frames
-        .iter()
-        .filter_map(|f| f.time_unix)
-        .fold(0.0, f64::max)
-        + 3600.0;
-    crate::morning::queue_mail(&store, &config, &prepared, now)?;
-    let flushed = crate::morning::flush(&store, &config, now)?;
-    let json = crate::morning::report_folder(&config).join(format!("night-{NIGHT}.json"));
-    std::fs::write(
-        &json,
-        serde_json::to_vec_pretty(&prepared.doc).unwrap_or_default(),
-    )
-    .map_err(io(&json))?;
-    let _ = std::fs::remove_dir(out.join("scratch"));
-    progress("done", 1, 1);
-    let mut mails = flushed.written;
-    if let Ok(dir) = std::fs::read_dir(crate::morning::report_folder(&config)) {
-        for e in dir.flatten() {
-            if e.path().extension().is_some_and(|x| x == "eml") && !mails.contains(&e.path()) {
-                mails.push(e.path());
-            }
-        }
-    }
-    mails.sort();
-    Ok(DemoOutcome {
-        out,
-        night: NIGHT.into(),
-        html: prepared.html_path,
-        csv: prepared.csv_path,
-        json,
-        mails,
-        plans: prepared.summary.plans.clone(),
-        doc: prepared.doc,
-        seconds: started.elapsed().as_secs_f64(),
-    })
+    Ok(())
 }

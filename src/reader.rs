@@ -204,7 +204,7 @@ fn failure_reason(status: std::process::ExitStatus, stderr: &str, iso: &Isolatio
             format!("the FITS reader crashed on this file ({code}, {what}{said})")
         }
         crate::os::Ending::Exited(101) => {
-            "internal error while measuring (a bug; please report it)".into()
+            format!("internal error while measuring (a bug; please report it){said}")
         }
         crate::os::Ending::Exited(code) => {
             format!("the FITS reader stopped on this file (exit {code}){said}")
@@ -291,12 +291,49 @@ pub fn run_isolated(iso: &Isolation, request: &Request) -> Result<Reply, String>
 
 /// The worker's side: one request from stdin, its reply on stdout.
 pub fn serve(input: impl Read, output: impl Write) -> std::io::Result<()> {
+    start_worker_threads();
     let request: Request = serde_json::from_reader(input)
         .map_err(|e| std::io::Error::new(std::io::ErrorKind::InvalidData, e))?;
     let reply = answer(request);
     let mut output = std::io::BufWriter::new(output);
     serde_json::to_writer(&mut output, &reply).map_err(std::io::Error::other)?;
     output.flush()
+}
+
+/// The worker's threads for the parallel parts of measuring, started before anything
+/// large is allocated: under a tight address-space limit a thread started later (rayon
+/// starts its pool on first use) finds no room for its stack and rayon panics, where the
+/// frame's own allocation should have been what failed, as "out of memory". As many
+/// threads as the limit leaves room for, down to none beside this one.
+fn start_worker_threads() {
+    let wanted = std::thread::available_parallelism().map_or(1, |n| n.get());
+    // Probe: the threads rayon would start, held until all are up, then let go.
+    let (release, hold) = std::sync::mpsc::channel::<()>();
+    let hold = std::sync::Arc::new(std::sync::Mutex::new(hold));
+    let probes: Vec<_> = (0..wanted)
+        .map_while(|_| {
+            let hold = hold.clone();
+            std::thread::Builder::new()
+                .spawn(move || {
+                    let _ = hold.lock().map(|h| h.recv());
+                })
+                .ok()
+        })
+        .collect();
+    let room = probes.len();
+    drop(release);
+    for p in probes {
+        let _ = p.join();
+    }
+    let builder = rayon::ThreadPoolBuilder::new();
+    let built = if room >= 1 {
+        builder.num_threads(room).build_global()
+    } else {
+        builder.num_threads(1).use_current_thread().build_global()
+    };
+    if let Err(e) = built {
+        tracing::debug!("the reader's threads: {e}");
+    }
 }
 
 /// What a request asks, done in this process.

@@ -78,7 +78,6 @@ pub fn voevent_xml(a: &AnomalyRecord, ctx: &EventContext<'_>) -> Option<String> 
     if !(ra.is_finite() && dec.is_finite()) {
         return None;
     }
-    let kind = a.kind.name();
     let mut x = String::new();
     let _ = write!(
         x,
@@ -89,6 +88,17 @@ pub fn voevent_xml(a: &AnomalyRecord, ctx: &EventContext<'_>) -> Option<String> 
          version=\"2.0\" role=\"observation\" ivorn=\"{}\">\n",
         escape(&ivorn(ctx))
     );
+    who(&mut x, ctx);
+    what(&mut x, a, ctx);
+    where_when(&mut x, ctx, ra, dec);
+    how(&mut x, ctx);
+    why(&mut x, a.kind);
+    x.push_str("</voe:VOEvent>\n");
+    Some(x)
+}
+
+/// `<Who>`: the authority, when the document was written, and the author.
+fn who(x: &mut String, ctx: &EventContext<'_>) {
     let _ = write!(
         x,
         "  <Who>\n    <AuthorIVORN>{}</AuthorIVORN>\n    <Date>{}</Date>\n",
@@ -102,29 +112,36 @@ pub fn voevent_xml(a: &AnomalyRecord, ctx: &EventContext<'_>) -> Option<String> 
             escape(author)
         );
     }
-    x.push_str("  </Who>\n  <What>\n");
-    let param = |x: &mut String, name: &str, value: &str, kind: &str, unit: &str, ucd: &str| {
-        let _ = writeln!(
-            x,
-            "    <Param name=\"{name}\" value=\"{}\" dataType=\"{kind}\"{}{}/>",
-            escape(value),
-            if unit.is_empty() {
-                String::new()
-            } else {
-                format!(" unit=\"{unit}\"")
-            },
-            if ucd.is_empty() {
-                String::new()
-            } else {
-                format!(" ucd=\"{ucd}\"")
-            }
-        );
-    };
-    param(&mut x, "kind", kind, "string", "", "meta.code.class");
+    x.push_str("  </Who>\n");
+}
+
+/// One `<Param>` of `<What>`, with its unit and UCD where it has them.
+fn param(x: &mut String, name: &str, value: &str, kind: &str, unit: &str, ucd: &str) {
+    let _ = writeln!(
+        x,
+        "    <Param name=\"{name}\" value=\"{}\" dataType=\"{kind}\"{}{}/>",
+        escape(value),
+        if unit.is_empty() {
+            String::new()
+        } else {
+            format!(" unit=\"{unit}\"")
+        },
+        if ucd.is_empty() {
+            String::new()
+        } else {
+            format!(" ucd=\"{ucd}\"")
+        }
+    );
+}
+
+/// `<What>`: the kind, the measured values, where it was first seen, and in words.
+fn what(x: &mut String, a: &AnomalyRecord, ctx: &EventContext<'_>) {
+    x.push_str("  <What>\n");
+    param(x, "kind", a.kind.name(), "string", "", "meta.code.class");
     if let Some(m) = a.detail.instrumental_mag() {
         // Instrumental: −2.5 log10 of the flux in ADU, with no zero point.
         param(
-            &mut x,
+            x,
             "instrumental_mag",
             &format!("{m:.3}"),
             "float",
@@ -134,11 +151,11 @@ pub fn voevent_xml(a: &AnomalyRecord, ctx: &EventContext<'_>) -> Option<String> 
     }
     if let crate::night::Detail::Transient(t) = &a.detail {
         if let Some(snr) = t.snr {
-            param(&mut x, "snr", &format!("{snr:.1}"), "float", "", "stat.snr");
+            param(x, "snr", &format!("{snr:.1}"), "float", "", "stat.snr");
         }
     }
     param(
-        &mut x,
+        x,
         "frames",
         &a.detections.len().to_string(),
         "int",
@@ -147,9 +164,9 @@ pub fn voevent_xml(a: &AnomalyRecord, ctx: &EventContext<'_>) -> Option<String> 
     );
     if let Some(first) = a.detections.first() {
         let file = crate::report::file_name(&first.path);
-        param(&mut x, "first_frame", &file, "string", "", "meta.file");
+        param(x, "first_frame", &file, "string", "", "meta.file");
         param(
-            &mut x,
+            x,
             "first_pixel",
             &format!("{:.2} {:.2}", first.x, first.y),
             "string",
@@ -158,11 +175,11 @@ pub fn voevent_xml(a: &AnomalyRecord, ctx: &EventContext<'_>) -> Option<String> 
         );
     }
     if let Some(c) = ctx.cutout {
-        param(&mut x, "cutout", c, "string", "", "meta.file");
+        param(x, "cutout", c, "string", "", "meta.file");
     }
     for (name, v) in [("target", &a.target), ("filter", &a.filter)] {
         if let Some(v) = v {
-            param(&mut x, name, v, "string", "", "meta.id");
+            param(x, name, v, "string", "", "meta.id");
         }
     }
     let _ = write!(
@@ -170,6 +187,10 @@ pub fn voevent_xml(a: &AnomalyRecord, ctx: &EventContext<'_>) -> Option<String> 
         "    <Description>{}</Description>\n  </What>\n",
         escape(&crate::report::what(a))
     );
+}
+
+/// `<WhereWhen>`: the first detection's time and the position, with its error.
+fn where_when(x: &mut String, ctx: &EventContext<'_>, ra: f64, dec: f64) {
     let _ = write!(
         x,
         "  <WhereWhen>\n    <ObsDataLocation>\n      <ObservatoryLocation id=\"TOPOCENTER\"/>\n      \
@@ -191,6 +212,10 @@ pub fn voevent_xml(a: &AnomalyRecord, ctx: &EventContext<'_>) -> Option<String> 
          </ObservationLocation>\n    </ObsDataLocation>\n  </WhereWhen>\n",
         ctx.error_deg
     );
+}
+
+/// `<How>`: what found it, with the telescope and instrument where the frames name them.
+fn how(x: &mut String, ctx: &EventContext<'_>) {
     let instrument = [ctx.telescope, ctx.instrument]
         .into_iter()
         .flatten()
@@ -209,7 +234,11 @@ pub fn voevent_xml(a: &AnomalyRecord, ctx: &EventContext<'_>) -> Option<String> 
             }
         ))
     );
-    let concept = match a.kind {
+}
+
+/// `<Why>`: what kind of thing it is, in words.
+fn why(x: &mut String, kind: crate::night::AnomalyKind) {
+    let concept = match kind {
         crate::night::AnomalyKind::NewSource => "a source not seen on earlier nights",
         crate::night::AnomalyKind::Moving => "a source moving across the frames",
         crate::night::AnomalyKind::Variable => "a source whose brightness changed",
@@ -220,10 +249,9 @@ pub fn voevent_xml(a: &AnomalyRecord, ctx: &EventContext<'_>) -> Option<String> 
     };
     let _ = write!(
         x,
-        "  <Why>\n    <Concept>{}</Concept>\n  </Why>\n</voe:VOEvent>\n",
+        "  <Why>\n    <Concept>{}</Concept>\n  </Why>\n",
         escape(concept)
     );
-    Some(x)
 }
 
 #[cfg(test)]

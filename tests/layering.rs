@@ -13,9 +13,13 @@
 //! starts with `crate::`, `super::` or `self::`, resolved to the module holding the
 //! item; code under `#[cfg(test)]` is left out. Files are parsed with `syn`.
 
-use std::collections::{BTreeMap, BTreeSet};
-use std::path::{Path, PathBuf};
+#[path = "common/sources.rs"]
+mod sources;
 
+use std::collections::{BTreeMap, BTreeSet};
+use std::path::Path;
+
+use sources::{is_cfg_test, rust_files};
 use syn::visit::Visit;
 
 type Graph = BTreeMap<String, BTreeSet<String>>;
@@ -29,25 +33,6 @@ fn module_of(rel: &Path) -> String {
         .filter(|p| p != "mod")
         .collect::<Vec<_>>()
         .join("::")
-}
-
-fn rust_files(dir: &Path, out: &mut Vec<PathBuf>) {
-    for e in std::fs::read_dir(dir).unwrap() {
-        let p = e.unwrap().path();
-        if p.is_dir() {
-            rust_files(&p, out);
-        } else if p.extension().is_some_and(|x| x == "rs") {
-            out.push(p);
-        }
-    }
-}
-
-fn is_test_only(attrs: &[syn::Attribute]) -> bool {
-    attrs.iter().any(|a| {
-        a.path().is_ident("cfg")
-            && a.parse_args::<syn::Meta>()
-                .is_ok_and(|m| m.path().is_ident("test"))
-    })
 }
 
 /// Every path a file names from its own crate, as segments (`super`, `self` and
@@ -107,7 +92,7 @@ impl<'ast> Visit<'ast> for Paths {
             syn::Item::Static(s) => &s.attrs,
             _ => &[],
         };
-        if is_test_only(attrs) {
+        if is_cfg_test(attrs) {
             return;
         }
         if let syn::Item::Use(u) = item {
@@ -117,7 +102,7 @@ impl<'ast> Visit<'ast> for Paths {
     }
 
     fn visit_impl_item_fn(&mut self, f: &'ast syn::ImplItemFn) {
-        if !is_test_only(&f.attrs) {
+        if !is_cfg_test(&f.attrs) {
             syn::visit::visit_impl_item_fn(self, f);
         }
     }
@@ -338,11 +323,7 @@ fn imports_run_down_the_documented_layers_and_never_in_a_loop() {
 fn the_checker_finds_a_planted_loop_between_submodules_and_an_upward_import() {
     let dir = tempfile::tempdir().unwrap();
     let src = dir.path();
-    let write = |rel: &str, text: &str| {
-        let p = src.join(rel);
-        std::fs::create_dir_all(p.parent().unwrap()).unwrap();
-        std::fs::write(p, text).unwrap();
-    };
+    let write = |rel: &str, text: &str| sources::plant(src, rel, text);
     write("lib.rs", "pub mod night; pub mod store;");
     // night::judge and night::classify::orphans import each other: a loop between the
     // siblings judge and classify, which the top level (one unit `night`) cannot see.

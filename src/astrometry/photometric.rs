@@ -8,7 +8,7 @@
 
 use serde::{Deserialize, Serialize};
 
-use crate::measure::stats::median_f64;
+use crate::measure::stats::median_and_sigma_f64;
 
 /// Stars with an SNR below this do not vote for the zero point: a star found near the
 /// detection limit is found more often when the noise adds to it than when it takes
@@ -40,9 +40,8 @@ pub fn zero_point(pairs: &[(f64, f64, f64)], exposure_s: Option<f64>) -> Option<
         if d.len() < 3 {
             return None;
         }
-        let med = median_f64(&d)?;
-        let mad = median_f64(&d.iter().map(|v| (v - med).abs()).collect::<Vec<_>>())?;
-        let sigma = (1.4826 * mad).max(0.005);
+        let (med, sigma) = median_and_sigma_f64(&d)?;
+        let sigma = sigma.max(0.005);
         let before = d.len();
         d.retain(|v| (v - med).abs() <= 3.0 * sigma);
         if d.len() == before {

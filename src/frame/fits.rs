@@ -319,12 +319,20 @@ fn convert_plain(bytes: &[u8], image: &PlainImage) -> Result<Vec<f32>, String> {
     use rayon::prelude::*;
     let count = image.pixels() as usize;
     let width = (image.bitpix.unsigned_abs() / 8) as usize;
+    // What makes `set_len` below sound, checked here rather than trusted to the caller:
+    // with fewer bytes the zip would stop early and leave elements unwritten.
+    assert!(
+        count.checked_mul(width).is_some_and(|n| bytes.len() >= n),
+        "{} bytes for {count} pixels of {width} bytes",
+        bytes.len()
+    );
     let mut data = uninit(count)?;
     data.spare_capacity_mut()[..count]
         .par_chunks_mut(CHUNK)
         .zip(bytes.par_chunks(CHUNK * width))
         .for_each(|(dst, src)| convert(dst, src, image));
-    // SAFETY: the chunks cover all `count` elements (`bytes` holds count × width bytes).
+    // SAFETY: the chunks cover all `count` elements: `bytes` holds at least count × width
+    // bytes (asserted above), so every chunk of `data` has a full chunk of bytes.
     unsafe { data.set_len(count) };
     Ok(data)
 }
@@ -392,4 +400,39 @@ pub fn looks_complete(path: &Path) -> Option<bool> {
         return None;
     }
     layout::is_complete(&mut FileBlocks { file, len }, len)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn image(width: u64, height: u64) -> PlainImage {
+        PlainImage {
+            hdu: 0,
+            data_start: 0,
+            bitpix: 16,
+            width,
+            height,
+            zero: 32768.0,
+            scale: 1.0,
+            blank: None,
+        }
+    }
+
+    #[test]
+    fn a_plain_image_converts_every_pixel_it_holds() {
+        // BITPIX 16 with BZERO 32768: stored -32768 and 32767 are 0 and 65535 (FITS
+        // Standard 4.0, section 5.3).
+        let bytes = [0x80, 0x00, 0x7f, 0xff, 0x00, 0x01];
+        assert_eq!(
+            convert_plain(&bytes, &image(3, 1)).unwrap(),
+            [0.0, 65535.0, 32769.0]
+        );
+    }
+
+    #[test]
+    #[should_panic(expected = "5 bytes for 3 pixels of 2 bytes")]
+    fn fewer_bytes_than_the_pixels_need_stop_before_any_is_exposed() {
+        let _ = convert_plain(&[0u8; 5], &image(3, 1));
+    }
 }

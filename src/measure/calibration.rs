@@ -8,6 +8,7 @@ use ndarray::Array2;
 use serde::{Deserialize, Serialize};
 
 use crate::finite::{finite, finite_num, nan_if_null};
+use crate::measure::stats::{median_in_place, MAD_TO_SIGMA};
 
 /// The grid's side, in blocks.
 pub const GRID: usize = 24;
@@ -50,21 +51,12 @@ pub struct CalibrationStats {
     pub gradient_sigmas: f64,
 }
 
-fn median(v: &mut [f32]) -> f64 {
-    if v.is_empty() {
-        return f64::NAN;
-    }
-    let k = v.len() / 2;
-    let (_, m, _) = v.select_nth_unstable_by(k, f32::total_cmp);
-    f64::from(*m)
-}
-
 /// The statistics of one calibration frame. `full_scale` as the caller knows it.
 pub fn calibration_stats(pixels: &Array2<f32>, full_scale: Option<f64>) -> CalibrationStats {
     let (h, w) = pixels.dim();
     let mut values: Vec<f32> = pixels.iter().copied().filter(|v| v.is_finite()).collect();
     let n = values.len();
-    let med = median(&mut values);
+    let med = median_in_place(&mut values).unwrap_or(f64::NAN);
     // The noise from differences of pixels two apart in a row (1.4826 × their median absolute
     // value / √2; common practice), which a gradient or vignetting does not inflate.
     let mut diffs: Vec<f32> = pixels
@@ -79,7 +71,8 @@ pub fn calibration_stats(pixels: &Array2<f32>, full_scale: Option<f64>) -> Calib
                 .collect::<Vec<f32>>()
         })
         .collect();
-    let noise = 1.4826 * median(&mut diffs) / std::f64::consts::SQRT_2;
+    let noise =
+        MAD_TO_SIGMA * median_in_place(&mut diffs).unwrap_or(f64::NAN) / std::f64::consts::SQRT_2;
     drop(diffs);
     let clip = full_scale.map(|f| 0.999 * f);
     let clipped = clip.map_or(0, |c| values.iter().filter(|v| f64::from(**v) >= c).count());
@@ -103,7 +96,7 @@ pub fn calibration_stats(pixels: &Array2<f32>, full_scale: Option<f64>) -> Calib
                 .collect();
             block_sizes.push(block.len());
             grid.push(if med.abs() > 0.0 {
-                (median(&mut block) / med) as f32
+                (median_in_place(&mut block).unwrap_or(f64::NAN) / med) as f32
             } else {
                 f32::NAN
             });
@@ -221,7 +214,7 @@ pub fn median_grid(grids: &[&[f32]]) -> Vec<f32> {
                 .filter_map(|g| g.get(k).copied())
                 .filter(|x| x.is_finite())
                 .collect();
-            median(&mut v) as f32
+            median_in_place(&mut v).unwrap_or(f64::NAN) as f32
         })
         .collect()
 }

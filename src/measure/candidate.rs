@@ -83,16 +83,13 @@ impl Fitting<'_> {
         let Fitting {
             residual,
             all,
-            grid,
-            half,
             edge_margin,
             noise,
             fwhm_guess,
-            subsample,
-            report_pixel,
             moffat_min_snr,
+            ..
         } = self;
-        let (half, edge_margin, noise, fwhm_guess) = (*half, *edge_margin, *noise, *fwhm_guess);
+        let (edge_margin, noise, fwhm_guess) = (*edge_margin, *noise, *fwhm_guess);
         let c = &all[index];
         let (h, w) = residual.dim();
         // Brightest pixel near the filtered peak.
@@ -155,48 +152,7 @@ impl Fitting<'_> {
         {
             return reject(RejectKind::EdgeClipped, fx, fy);
         }
-
-        // The stamp, leaving out pixels nearer to another detection than to this one.
-        let others: Vec<(f64, f64)> = grid
-            .near(px, py, 2 * half)
-            .filter(|&j| j != index)
-            .map(|j| (all[j].x as f64, all[j].y as f64))
-            .collect();
-        let (x0, x1) = (px.saturating_sub(half), (px + half).min(w - 1));
-        let (y0, y1) = (py.saturating_sub(half), (py + half).min(h - 1));
-        let mut stamp = Stamp {
-            x_range: (x0 as f64, x1 as f64),
-            y_range: (y0 as f64, y1 as f64),
-            subsample: *subsample,
-            report_pixel: *report_pixel,
-            core_radius: 1.5 * fwhm_guess,
-            ..Default::default()
-        };
-        let reach2 = (half as f64 + 0.5).powi(2);
-        for y in y0..=y1 {
-            for x in x0..=x1 {
-                let v = residual[(y, x)];
-                if !v.is_finite() {
-                    continue;
-                }
-                let (xf, yf) = (x as f64, y as f64);
-                let d_self = (xf - fx).powi(2) + (yf - fy).powi(2);
-                // A round stamp: the square's corners are sky a little farther out, which
-                // adds fitting time (a fifth of the pixels) and little else.
-                if d_self > reach2 {
-                    continue;
-                }
-                if others
-                    .iter()
-                    .any(|&(ox, oy)| (xf - ox).powi(2) + (yf - oy).powi(2) < d_self)
-                {
-                    continue;
-                }
-                stamp.x.push(xf);
-                stamp.y.push(yf);
-                stamp.v.push(f64::from(v));
-            }
-        }
+        let (stamp, others) = self.stamp(index, px, py);
         let guess = Guess {
             sky: 0.0,
             amplitude: peak.max(noise),
@@ -230,6 +186,57 @@ impl Fitting<'_> {
                 .iter()
                 .any(|&(ox, oy)| (ox - fx).hypot(oy - fy) <= 2.5 * fwhm_guess + 2.0),
         })
+    }
+
+    /// The stamp of candidate `index` around its brightest pixel (`px`, `py`): a round
+    /// patch of the residual, leaving out pixels nearer to another detection than to this
+    /// one; and the other detections near it (for the blend test).
+    fn stamp(&self, index: usize, px: usize, py: usize) -> (Stamp, Vec<(f64, f64)>) {
+        let (half, residual, all) = (self.half, self.residual, self.all);
+        let (h, w) = residual.dim();
+        let (fx, fy) = (px as f64, py as f64);
+        let others: Vec<(f64, f64)> = self
+            .grid
+            .near(px, py, 2 * half)
+            .filter(|&j| j != index)
+            .map(|j| (all[j].x as f64, all[j].y as f64))
+            .collect();
+        let (x0, x1) = (px.saturating_sub(half), (px + half).min(w - 1));
+        let (y0, y1) = (py.saturating_sub(half), (py + half).min(h - 1));
+        let mut stamp = Stamp {
+            x_range: (x0 as f64, x1 as f64),
+            y_range: (y0 as f64, y1 as f64),
+            subsample: self.subsample,
+            report_pixel: self.report_pixel,
+            core_radius: 1.5 * self.fwhm_guess,
+            ..Default::default()
+        };
+        let reach2 = (half as f64 + 0.5).powi(2);
+        for y in y0..=y1 {
+            for x in x0..=x1 {
+                let v = residual[(y, x)];
+                if !v.is_finite() {
+                    continue;
+                }
+                let (xf, yf) = (x as f64, y as f64);
+                let d_self = (xf - fx).powi(2) + (yf - fy).powi(2);
+                // A round stamp: the square's corners are sky a little farther out, which
+                // adds fitting time (a fifth of the pixels) and little else.
+                if d_self > reach2 {
+                    continue;
+                }
+                if others
+                    .iter()
+                    .any(|&(ox, oy)| (xf - ox).powi(2) + (yf - oy).powi(2) < d_self)
+                {
+                    continue;
+                }
+                stamp.x.push(xf);
+                stamp.y.push(yf);
+                stamp.v.push(f64::from(v));
+            }
+        }
+        (stamp, others)
     }
 }
 

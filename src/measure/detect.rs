@@ -206,6 +206,61 @@ enum Found {
     Peaks(Vec<((usize, usize), f32)>, usize),
 }
 
+/// One component of above-threshold runs (`members`, indices into `runs`; `offsets`:
+/// where each run's filtered values start in `values`): too small, a streak, or its
+/// peaks, deblended where the filtered image dips deeply enough between them.
+fn component(
+    members: &[usize],
+    runs: &[Run],
+    offsets: &[usize],
+    values: &[f32],
+    w: usize,
+    params: &DetectParams,
+    noise_at: &(impl Fn(usize, usize) -> f64 + Sync),
+) -> Found {
+    let area: usize = members
+        .iter()
+        .map(|&i| (runs[i].x1 - runs[i].x0) as usize)
+        .sum();
+    if area < params.min_area {
+        return Found::Nothing;
+    }
+    let pixels: Vec<u32> = members
+        .iter()
+        .flat_map(|&i| {
+            let r = runs[i];
+            (r.x0..r.x1).map(move |x| r.y * w as u32 + x)
+        })
+        .collect();
+    // A streak is reported whole; its peaks are not stars.
+    if let Some(t) = as_trail(&pixels, w, 10.0 * params.kernel_fwhm.max(2.0)) {
+        return Found::Trail(t);
+    }
+    let patch = Patch::of(members, runs, offsets, values);
+    // Local maxima of the filtered image inside the component.
+    let mut peaks: Vec<((usize, usize), f32)> = patch.local_maxima();
+    peaks.sort_by(|a, b| b.1.total_cmp(&a.1));
+    peaks.truncate(500);
+    let (px, py) = peaks[0].0;
+    let sigma_here = noise_at(px, py).max(1e-30);
+    // Along a segment that leaves the component the filtered image is below the
+    // threshold there; the threshold stands in for it (a lower bound on the dip).
+    let outside = (params.sigma * sigma_here) as f32;
+    let mut kept: Vec<((usize, usize), f32)> = Vec::new();
+    for &(p, v) in &peaks {
+        let isolated = kept.iter().all(|&(q, _)| {
+            let saddle = patch.min_along_segment(p, q, outside);
+            let depth = f64::from(v - saddle);
+            depth >= params.deblend_contrast * f64::from(v)
+                && depth >= params.deblend_sigma * sigma_here
+        });
+        if isolated {
+            kept.push((p, v));
+        }
+    }
+    Found::Peaks(kept, area)
+}
+
 /// Detect candidates in `residual` (image minus background).
 pub fn detect(
     residual: &Array2<f32>,
@@ -292,49 +347,7 @@ pub fn detect(
 
     let found: Vec<Found> = connected_runs(&runs)
         .par_iter()
-        .map(|members| {
-            let area: usize = members
-                .iter()
-                .map(|&i| (runs[i].x1 - runs[i].x0) as usize)
-                .sum();
-            if area < params.min_area {
-                return Found::Nothing;
-            }
-            let pixels: Vec<u32> = members
-                .iter()
-                .flat_map(|&i| {
-                    let r = runs[i];
-                    (r.x0..r.x1).map(move |x| r.y * w as u32 + x)
-                })
-                .collect();
-            // A streak is reported whole; its peaks are not stars.
-            if let Some(t) = as_trail(&pixels, w, 10.0 * params.kernel_fwhm.max(2.0)) {
-                return Found::Trail(t);
-            }
-            let patch = Patch::of(members, &runs, &offsets, &values);
-            // Local maxima of the filtered image inside the component.
-            let mut peaks: Vec<((usize, usize), f32)> = patch.local_maxima();
-            peaks.sort_by(|a, b| b.1.total_cmp(&a.1));
-            peaks.truncate(500);
-            let (px, py) = peaks[0].0;
-            let sigma_here = noise_at(px, py).max(1e-30);
-            // Along a segment that leaves the component the filtered image is below the
-            // threshold there; the threshold stands in for it (a lower bound on the dip).
-            let outside = (params.sigma * sigma_here) as f32;
-            let mut kept: Vec<((usize, usize), f32)> = Vec::new();
-            for &(p, v) in &peaks {
-                let isolated = kept.iter().all(|&(q, _)| {
-                    let saddle = patch.min_along_segment(p, q, outside);
-                    let depth = f64::from(v - saddle);
-                    depth >= params.deblend_contrast * f64::from(v)
-                        && depth >= params.deblend_sigma * sigma_here
-                });
-                if isolated {
-                    kept.push((p, v));
-                }
-            }
-            Found::Peaks(kept, area)
-        })
+        .map(|members| component(members, &runs, &offsets, &values, w, params, &noise_at))
         .collect();
 
     let mut candidates = Vec::new();

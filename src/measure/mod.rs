@@ -28,7 +28,7 @@ use rayon::prelude::*;
 use serde::Serialize;
 
 use background::{BackgroundMap, BackgroundParams};
-use candidate::{sort_outcomes, CandidateGrid, Fitting, Outcome};
+use candidate::{sort_outcomes, CandidateGrid, FittedStar, Fitting, Outcome};
 use detect::{detect, DetectParams};
 pub use mosaic::measure_mosaic;
 use noise::{raw_grid, robust_noise, source_mask};
@@ -232,7 +232,7 @@ pub fn measure_image(
         .or_else(|| plateau_saturation(&pixels, max));
     let mut background_params = params.background;
     background_params.grid = background_params.grid.or_else(|| raw_grid(&pixels));
-    let mut bkg = BackgroundMap::estimate(&pixels, None, background_params).ok_or_else(|| {
+    let bkg = BackgroundMap::estimate(&pixels, None, background_params).ok_or_else(|| {
         // Every mesh box is less than 30 % valid: a few scattered values, no sky.
         MeasureError::TooFewValidPixels {
             valid: pixels.iter().filter(|v| v.is_finite()).count(),
@@ -248,32 +248,97 @@ pub fn measure_image(
     // Hot pixels and cosmic-ray hits are taken out before detection, so their filtered
     // wings cannot swallow a star nearby; they are reported as sharp detections.
     let cleaned = clean_sharp_pixels(&mut pixels, &bkg, &bright);
+    let sources = detect_matched(&pixels, &bkg, &bright, saturation, params.detect);
+    let (bkg, noise) = sky_without_sources(&mut pixels, bkg, &sources, background_params);
+    let sky = Sky {
+        bkg: &bkg,
+        noise,
+        grid: background_params.grid,
+        saturation,
+    };
+    let (fitted, rejected) = fit_sources(&pixels, &sky, &sources, cleaned, params);
+    let mut stars = photometry_of(&fitted, &pixels, &sky, sources.fwhm_guess, params);
+    let shape = frame_shape(&mut stars, params.min_shape_snr);
+    let snr_median = median_f64(&stars.iter().map(|s| s.snr).collect::<Vec<_>>());
+    let saturated_count = rejected
+        .iter()
+        .filter(|r| r.kind == RejectKind::Saturated)
+        .count();
+    let sharp_count = rejected
+        .iter()
+        .filter(|r| r.kind == RejectKind::Sharp)
+        .count();
+    Ok(FrameMeasurement {
+        width: w,
+        height: h,
+        star_count: stars.len(),
+        fwhm_px: shape.fwhm_px,
+        eccentricity: shape.eccentricity,
+        background_adu: bkg.median_level(),
+        noise_adu: noise,
+        snr_median,
+        hfr_px: shape.hfr_px,
+        saturated_count,
+        sharp_count,
+        background_range_adu: bkg.level_range(),
+        shape_star_count: shape.voters,
+        trails: sources.trails,
+        stars,
+        rejected,
+    })
+}
 
-    // Detection with a kernel matched to the stars: the configured one, unless the
-    // brightest peaks of the cleaned frame show a PSF much wider or narrower; and once
-    // more with a matched kernel if the detected stars still disagree with it.
-    let mut dparams = params.detect;
-    let peaks = bright_peaks(&pixels, &bright);
-    if let Some(seen) = estimate_fwhm(&pixels, &peaks, &bkg, saturation, dparams.kernel_fwhm) {
+/// What detection found, and the stars' width (FWHM, px) as the frame shows it.
+struct Sources {
+    candidates: Vec<detect::Candidate>,
+    trails: Vec<detect::Trail>,
+    fwhm_guess: f64,
+}
+
+/// Detection with a kernel matched to the stars: the configured one, unless the
+/// brightest peaks of the cleaned frame show a PSF much wider or narrower; and once more
+/// with a matched kernel if the detected stars still disagree with it.
+fn detect_matched(
+    pixels: &Array2<f32>,
+    bkg: &BackgroundMap,
+    bright: &[(usize, usize, f32)],
+    saturation: Option<f64>,
+    mut dparams: DetectParams,
+) -> Sources {
+    let peaks = bright_peaks(pixels, bright);
+    if let Some(seen) = estimate_fwhm(pixels, &peaks, bkg, saturation, dparams.kernel_fwhm) {
         if (seen / dparams.kernel_fwhm - 1.0).abs() > 0.35 {
             dparams.kernel_fwhm = seen.clamp(1.5, 15.0);
         }
     }
-    let mut found = detect(&pixels, &bkg, &dparams);
+    let mut found = detect(pixels, bkg, &dparams);
     let mut candidates = std::mem::take(&mut found.candidates);
-    let mut fwhm_guess = estimate_fwhm(&pixels, &candidates, &bkg, saturation, dparams.kernel_fwhm)
+    let mut fwhm_guess = estimate_fwhm(pixels, &candidates, bkg, saturation, dparams.kernel_fwhm)
         .unwrap_or(dparams.kernel_fwhm);
     if (fwhm_guess / dparams.kernel_fwhm - 1.0).abs() > 0.35 {
         let start = fwhm_guess;
         dparams.kernel_fwhm = fwhm_guess.clamp(1.5, 15.0);
-        found = detect(&pixels, &bkg, &dparams);
+        found = detect(pixels, bkg, &dparams);
         candidates = std::mem::take(&mut found.candidates);
-        fwhm_guess = estimate_fwhm(&pixels, &candidates, &bkg, saturation, start).unwrap_or(start);
+        fwhm_guess = estimate_fwhm(pixels, &candidates, bkg, saturation, start).unwrap_or(start);
     }
+    Sources {
+        candidates,
+        trails: found.trails,
+        fwhm_guess,
+    }
+}
 
-    // Mask the sources and re-estimate the sky without them (crowded fields), then the
-    // noise as the robust scatter of the unmasked pixels about the local background.
-    let mask = source_mask(w, h, &candidates, fwhm_guess);
+/// The sky again with the sources masked (crowded fields), taken out of `pixels`, then
+/// the noise as the robust scatter of the unmasked pixels about the local background.
+fn sky_without_sources(
+    pixels: &mut Array2<f32>,
+    bkg: BackgroundMap,
+    sources: &Sources,
+    background_params: BackgroundParams,
+) -> (BackgroundMap, f64) {
+    let (h, w) = pixels.dim();
+    let mask = source_mask(w, h, &sources.candidates, sources.fwhm_guess);
     // Clipping alone copes with a sparse field; the masked second estimate is worth its
     // cost only when sources cover a noticeable part of the sky.
     let masked: usize = mask
@@ -283,22 +348,49 @@ pub fn measure_image(
     let masked_fraction = masked as f64 / mask.len() as f64;
     let raw_free = (masked_fraction > 0.03)
         .then(|| {
-            BackgroundMap::estimate_with_offset(&pixels, Some(&mask), Some(&bkg), background_params)
+            BackgroundMap::estimate_with_offset(pixels, Some(&mask), Some(&bkg), background_params)
         })
         .flatten();
-    if let Some(better) = raw_free {
-        // Both maps share their mesh, and the spline is linear in the mesh values, so
-        // the change is one spline of the differences.
-        subtract_rows(&mut pixels, &better.minus(&bkg));
-        bkg = better;
-    }
+    let bkg = match raw_free {
+        Some(better) => {
+            // Both maps share their mesh, and the spline is linear in the mesh values, so
+            // the change is one spline of the differences.
+            subtract_rows(pixels, &better.minus(&bkg));
+            better
+        }
+        None => bkg,
+    };
     let noise =
-        robust_noise(&pixels, &mask, background_params.grid).unwrap_or_else(|| bkg.median_rms());
-    let background_adu = bkg.median_level();
+        robust_noise(pixels, &mask, background_params.grid).unwrap_or_else(|| bkg.median_rms());
+    (bkg, noise)
+}
 
-    let sat_residual =
-        |x: usize, y: usize| saturation.map(|s| s - bkg.level_at(x as f64, y as f64));
-    let grid = CandidateGrid::new(&candidates, w, h, 32);
+/// The sky under the sources, as fitting and photometry use it.
+struct Sky<'a> {
+    bkg: &'a BackgroundMap,
+    noise: f64,
+    /// The grid the raw values sit on, if any.
+    grid: Option<stats::Grid>,
+    /// The sensor's saturation level, when known.
+    saturation: Option<f64>,
+}
+
+/// Every candidate worth it fitted (in parallel), then sorted over the frame into stars
+/// and what is not a star (`cleaned` holds the sharp pixels already taken out).
+fn fit_sources(
+    pixels: &Array2<f32>,
+    sky: &Sky<'_>,
+    sources: &Sources,
+    cleaned: Vec<Rejected>,
+    params: &MeasureParams,
+) -> (Vec<FittedStar>, Vec<Rejected>) {
+    let (h, w) = pixels.dim();
+    let (candidates, fwhm_guess) = (&sources.candidates, sources.fwhm_guess);
+    let sat_residual = |x: usize, y: usize| {
+        sky.saturation
+            .map(|s| s - sky.bkg.level_at(x as f64, y as f64))
+    };
+    let grid = CandidateGrid::new(candidates, w, h, 32);
     let half = ((1.6 * fwhm_guess + 2.0).ceil() as usize).clamp(4, 30);
     // A star whose centre lies half a FWHM inside the frame still shows its core.
     let edge_margin = (0.5 * fwhm_guess).max(1.0);
@@ -316,12 +408,12 @@ pub fn measure_image(
     // stay in the neighbour grid so their light is still masked out of other stamps.
     let fit_floor = 0.9 * params.min_snr;
     let fitting = Fitting {
-        residual: &pixels,
-        all: &candidates,
+        residual: pixels,
+        all: candidates,
         grid,
         half,
         edge_margin,
-        noise,
+        noise: sky.noise,
         fwhm_guess,
         subsample,
         report_pixel: params.report_pixel,
@@ -333,10 +425,19 @@ pub fn measure_image(
         .filter(|(_, c)| c.significance >= fit_floor)
         .map(|(i, c)| fitting.candidate(i, sat_residual(c.x, c.y)))
         .collect();
-    let (fitted, rejected) = sort_outcomes(outcomes, cleaned, fwhm_guess, subsample);
+    sort_outcomes(outcomes, cleaned, fwhm_guess, subsample)
+}
 
-    // The frame's FWHM from the stars fit well enough to vote; then photometry with an
-    // aperture scaled to it.
+/// Each fitted star's photometry with an aperture scaled to the frame's FWHM (from the
+/// stars fit well enough to vote), brightest first; stars below the reporting SNR are
+/// left out.
+fn photometry_of(
+    fitted: &[FittedStar],
+    pixels: &Array2<f32>,
+    sky: &Sky<'_>,
+    fwhm_guess: f64,
+    params: &MeasureParams,
+) -> Vec<Star> {
     let frame_fwhm = median_f64(
         &fitted
             .iter()
@@ -345,13 +446,14 @@ pub fn measure_image(
             .collect::<Vec<_>>(),
     )
     .unwrap_or(fwhm_guess);
+    let (bkg, noise) = (sky.bkg, sky.noise);
     let r_ap = (2.5 * frame_fwhm).max(3.0);
     let r_snr = frame_fwhm.max(1.5);
     let r_in = r_ap + 2.0;
     let r_out = r_in + (1.5 * frame_fwhm).max(6.0);
     let gain = params.gain_e_per_adu;
     // A grid a twentieth of the noise or finer does not bias a median noticeably.
-    let coarse_grid = background_params.grid.filter(|g| g.step > 0.05 * noise);
+    let coarse_grid = sky.grid.filter(|g| g.step > 0.05 * noise);
     let mut stars: Vec<Star> = fitted
         .par_iter()
         .filter_map(|f| {
@@ -363,14 +465,14 @@ pub fn measure_image(
                 r_out,
                 grid: coarse_grid.map(|g| (g, bkg.level_at(cx, cy))),
             };
-            let [ap, core] = photometry::apertures(&pixels, cx, cy, [r_ap, r_snr], sky)?;
+            let [ap, core] = photometry::apertures(pixels, cx, cy, [r_ap, r_snr], sky)?;
             let snr = photometry::ccd_snr(core.flux, core.n_pix, core.n_sky, noise, gain);
             if snr < params.min_snr {
                 return None;
             }
             // Out to 3.5 FWHM: heavy Moffat wings (β ≈ 2.5) still hold 1 % of the light
             // beyond 2.5 FWHM, which would pull the half-flux radius in.
-            let hfr = photometry::half_flux_radius(&pixels, cx, cy, 3.5 * frame_fwhm, ap.local_sky);
+            let hfr = photometry::half_flux_radius(pixels, cx, cy, 3.5 * frame_fwhm, ap.local_sky);
             let (major, minor) = f.fit.fwhm_axes();
             Some(Star {
                 x: cx + 1.0,
@@ -402,10 +504,25 @@ pub fn measure_image(
         })
         .collect();
     stars.sort_by(|a, b| b.flux.total_cmp(&a.flux));
+    stars
+}
 
+/// The frame's shape from its stars.
+struct FrameShape {
+    fwhm_px: Option<f64>,
+    eccentricity: Option<f64>,
+    hfr_px: Option<f64>,
+    /// Stars that voted.
+    voters: usize,
+}
+
+/// Each star's eccentricity helped by the frame's shape (see `shape`), then the frame's
+/// FWHM, eccentricity and half-flux radius from the stars that vote: unblended, at least
+/// `min_shape_snr` (every unblended star when fewer than five are).
+fn frame_shape(stars: &mut [Star], min_shape_snr: f64) -> FrameShape {
     let mut voters: Vec<bool> = stars
         .iter()
-        .map(|s| !s.blended && s.snr >= params.min_shape_snr)
+        .map(|s| !s.blended && s.snr >= min_shape_snr)
         .collect();
     if voters.iter().filter(|&&v| v).count() < 5 {
         voters = stars.iter().map(|s| !s.blended).collect();
@@ -423,44 +540,21 @@ pub fn measure_image(
     let med = |f: &dyn Fn(&Star) -> Option<f64>| {
         median_f64(&shape.iter().filter_map(|s| f(s)).collect::<Vec<_>>())
     };
-    let fwhm_px = med(&|s| Some(s.fwhm_px));
     // Near round, one star's eccentricity is dominated by noise (it grows as the
     // square root of the noise in its shape, so a round star at SNR 100 reads about
-    // 0.2 before correction). Each star's value is helped by the frame's shape (see
-    // `shape`), and the median is weighted by SNR (capped at 300), so the
-    // better-measured stars count for more without a few bright ones deciding.
+    // 0.2 before correction). Each star's value is helped by the frame's shape, and the
+    // median is weighted by SNR (capped at 300), so the better-measured stars count for
+    // more without a few bright ones deciding.
     let eccentricity = weighted_median(
         &shape
             .iter()
             .map(|s| (s.eccentricity, s.snr.min(300.0)))
             .collect::<Vec<_>>(),
     );
-    let hfr_px = med(&|s| s.hfr_px);
-    let snr_median = median_f64(&stars.iter().map(|s| s.snr).collect::<Vec<_>>());
-    let saturated_count = rejected
-        .iter()
-        .filter(|r| r.kind == RejectKind::Saturated)
-        .count();
-    let sharp_count = rejected
-        .iter()
-        .filter(|r| r.kind == RejectKind::Sharp)
-        .count();
-    Ok(FrameMeasurement {
-        width: w,
-        height: h,
-        star_count: stars.len(),
-        fwhm_px,
+    FrameShape {
+        fwhm_px: med(&|s| Some(s.fwhm_px)),
         eccentricity,
-        background_adu,
-        noise_adu: noise,
-        snr_median,
-        hfr_px,
-        saturated_count,
-        sharp_count,
-        background_range_adu: bkg.level_range(),
-        shape_star_count: shape.len(),
-        trails: found.trails,
-        stars,
-        rejected,
-    })
+        hfr_px: med(&|s| s.hfr_px),
+        voters: shape.len(),
+    }
 }

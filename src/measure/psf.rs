@@ -12,7 +12,10 @@
 //! (the second is Moffat's 2α·sqrt(2^(1/β) − 1) with α = 1/sqrt(λ)).
 //!
 //! Longer than most modules: the two models share the stamp, the fit, the covariance and
-//! the sampled widths, which only make sense together.
+//! the sampled widths, which only make sense together. The linear algebra under the fit
+//! is `linalg`'s.
+
+use crate::linalg::{self, Cholesky};
 
 /// Pixels to fit: 0-based centre coordinates and values; masked pixels are left out.
 #[derive(Debug, Clone, Default)]
@@ -172,15 +175,13 @@ impl PsfFit {
 
     /// Eccentricity of this star alone, with the fit noise's upward bias removed.
     ///
-    /// The shape components e1 = (qa − qc)/(qa + qc), e2 = 2qb/(qa + qc) carry noise, and
-    /// |e| = sqrt(e1² + e2²) is biased upwards like a polarisation amplitude; the
-    /// estimator of Wardle & Kronberg (1974, ApJ 194, 249), |e|² − σ², is applied with the
-    /// variances of e1 and e2 propagated from the fit covariance. A frame's stars share
-    /// its PSF, and `shape::shrink` uses that to do better for each star of a frame.
+    /// The shape components e1 = (qa − qc)/(qa + qc), e2 = 2qb/(qa + qc) carry noise, so
+    /// `shape::debiased_eccentricity` takes their bias away, with the variances of e1 and
+    /// e2 propagated from the fit covariance. A frame's stars share its PSF, and
+    /// `shape::shrink` uses that to do better for each star of a frame.
     pub fn eccentricity(&self) -> f64 {
         let (e1, e2) = self.shape_components();
-        let debiased = (e1 * e1 + e2 * e2 - 2.0 * self.shape_variance()).max(0.0);
-        super::shape::eccentricity_of(debiased.sqrt())
+        super::shape::debiased_eccentricity(e1, e2, self.shape_variance())
     }
 
     /// Variance of each of the sampled shape components (e1, e2), propagated from the fit
@@ -490,7 +491,7 @@ fn fit<const NP: usize>(
         for i in 0..NP {
             a[i][i] += lambda * jtj[i][i].max(1e-12);
         }
-        let step = solve(&a, &jtr);
+        let step = linalg::solve(&a, &jtr);
         let mut trial = p;
         if let Some(step) = step {
             for i in 0..NP {
@@ -534,17 +535,49 @@ fn fit<const NP: usize>(
     if !ssr.is_finite() {
         return None;
     }
-    // Covariance by the heteroscedasticity-consistent "sandwich" estimator of White
-    // (1980, Econometrica 48, 817): (JᵀJ)⁻¹ (Σ rᵢ² jᵢ jᵢᵀ) (JᵀJ)⁻¹.
-    // Pixel noise grows with the star's own light (Poisson), so one variance for all
-    // pixels would understate the errors that matter most, those of the core.
-    let inv = invert(&jtj)?;
+    let (q_cov, pos_err) = covariance(stamp, &p, at, averaged, core2, &jtj)?;
+    let mut fit = PsfFit {
+        model,
+        sky: p[0],
+        amplitude: p[1],
+        x0: p[2],
+        y0: p[3],
+        q: [p[4], p[5], p[6]],
+        beta: if model == PsfModel::Moffat {
+            1.0 / p[7]
+        } else {
+            f64::INFINITY
+        },
+        ssr,
+        n,
+        q_cov,
+        pos_err,
+        sampled_axes: (0.0, 0.0),
+    };
+    fit.sampled_axes = fit.model_axes();
+    Some(fit)
+}
+
+/// The fit's covariance of the shape form (qa, qb, qc) and the position errors (x, y),
+/// by the heteroscedasticity-consistent "sandwich" estimator of White (1980,
+/// Econometrica 48, 817): (JᵀJ)⁻¹ (Σ rᵢ² jᵢ jᵢᵀ) (JᵀJ)⁻¹. Pixel noise grows with the
+/// star's own light (Poisson), so one variance for all pixels would understate the
+/// errors that matter most, those of the core.
+fn covariance<const NP: usize>(
+    stamp: &Stamp,
+    p: &[f64; NP],
+    at: impl Fn(&[f64; NP], f64, f64, &mut [f64; NP]) -> f64 + Copy,
+    averaged: bool,
+    core2: f64,
+    jtj: &[[f64; NP]; NP],
+) -> Option<([[f64; 3]; 3], (f64, f64))> {
+    let inv = Cholesky::new(jtj)?.inverse();
     let mut meat = [[0.0; NP]; NP];
     let mut grad = [0.0; NP];
     for ((&x, &y), &v) in stamp.x.iter().zip(&stamp.y).zip(&stamp.v) {
         // The same model as the fit: averaged over the pixel in the core only.
         let inner = averaged && (x - p[2]).powi(2) + (y - p[3]).powi(2) <= core2;
-        let m = pixel_model(at, &p, x, y, inner, &mut grad);
+        let m = pixel_model(at, p, x, y, inner, &mut grad);
         // Leverage h = jᵀ(JᵀJ)⁻¹j: the core pixels that pin the shape down have high
         // leverage and small residuals; the HC3 form of MacKinnon & White (1985, J.
         // Econometrics 29, 305) divides their squared residuals by (1 − h)².
@@ -583,77 +616,10 @@ fn fit<const NP: usize>(
             q_cov[i][j] = cov(4 + i, 4 + j);
         }
     }
-    let mut fit = PsfFit {
-        model,
-        sky: p[0],
-        amplitude: p[1],
-        x0: p[2],
-        y0: p[3],
-        q: [p[4], p[5], p[6]],
-        beta: if model == PsfModel::Moffat {
-            1.0 / p[7]
-        } else {
-            f64::INFINITY
-        },
-        ssr,
-        n,
+    Some((
         q_cov,
-        pos_err: (cov(2, 2).max(0.0).sqrt(), cov(3, 3).max(0.0).sqrt()),
-        sampled_axes: (0.0, 0.0),
-    };
-    fit.sampled_axes = fit.model_axes();
-    Some(fit)
-}
-
-/// Solve A·x = b for a small symmetric positive-definite A by Cholesky decomposition.
-fn solve<const N: usize>(a: &[[f64; N]; N], b: &[f64; N]) -> Option<[f64; N]> {
-    let mut l = [[0.0; N]; N];
-    for i in 0..N {
-        for j in 0..=i {
-            let mut s = a[i][j];
-            for k in 0..j {
-                s -= l[i][k] * l[j][k];
-            }
-            if i == j {
-                if s <= 0.0 || !s.is_finite() {
-                    return None;
-                }
-                l[i][i] = s.sqrt();
-            } else {
-                l[i][j] = s / l[j][j];
-            }
-        }
-    }
-    let mut y = [0.0; N];
-    for i in 0..N {
-        let mut s = b[i];
-        for k in 0..i {
-            s -= l[i][k] * y[k];
-        }
-        y[i] = s / l[i][i];
-    }
-    let mut x = [0.0; N];
-    for i in (0..N).rev() {
-        let mut s = y[i];
-        for k in i + 1..N {
-            s -= l[k][i] * x[k];
-        }
-        x[i] = s / l[i][i];
-    }
-    Some(x)
-}
-
-fn invert<const N: usize>(a: &[[f64; N]; N]) -> Option<[[f64; N]; N]> {
-    let mut inv = [[0.0; N]; N];
-    for col in 0..N {
-        let mut e = [0.0; N];
-        e[col] = 1.0;
-        let x = solve(a, &e)?;
-        for row in 0..N {
-            inv[row][col] = x[row];
-        }
-    }
-    Some(inv)
+        (cov(2, 2).max(0.0).sqrt(), cov(3, 3).max(0.0).sqrt()),
+    ))
 }
 
 #[cfg(test)]

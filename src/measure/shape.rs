@@ -28,17 +28,19 @@ pub fn eccentricity_of(modulus: f64) -> f64 {
     (2.0 * e / (1.0 + e)).sqrt()
 }
 
+/// Eccentricity of shape components (e1, e2) that carry noise of `variance` per
+/// component, with the noise's upward bias removed: |ε| is biased upwards like a
+/// polarisation amplitude, and the estimator of Wardle & Kronberg (1974, ApJ 194, 249),
+/// |ε|² − 2σ² (σ² per component), takes it away.
+pub fn debiased_eccentricity(e1: f64, e2: f64, variance: f64) -> f64 {
+    eccentricity_of((e1 * e1 + e2 * e2 - 2.0 * variance).max(0.0).sqrt())
+}
+
 /// Each star's eccentricity with the frame's shape as the prior. `voters` marks the
 /// stars that estimate the frame's shape and spread (isolated, bright enough); every
 /// star gets an estimate. Fewer than five voters: each star on its own.
 pub fn shrink(shapes: &[Shape], voters: &[bool]) -> Vec<f64> {
-    let alone = |s: &Shape| {
-        eccentricity_of(
-            (s.e1 * s.e1 + s.e2 * s.e2 - 2.0 * s.variance)
-                .max(0.0)
-                .sqrt(),
-        )
-    };
+    let alone = |s: &Shape| debiased_eccentricity(s.e1, s.e2, s.variance);
     let voting: Vec<&Shape> = shapes
         .iter()
         .zip(voters)
@@ -58,9 +60,9 @@ pub fn shrink(shapes: &[Shape], voters: &[bool]) -> Vec<f64> {
             let e1 = frame.e1 + k * (s.e1 - frame.e1);
             let e2 = frame.e2 + k * (s.e2 - frame.e2);
             // What noise is left in the estimate, per component, biases |ε| upwards as
-            // for one star (Wardle & Kronberg 1974): removed the same way.
+            // for one star: removed the same way.
             let noise = (1.0 - k).powi(2) * frame.mean_variance + k * k * s.variance;
-            eccentricity_of((e1 * e1 + e2 * e2 - 2.0 * noise).max(0.0).sqrt())
+            debiased_eccentricity(e1, e2, noise)
         })
         .collect()
 }

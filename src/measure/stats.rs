@@ -43,6 +43,19 @@ pub fn median_f64(values: &[f64]) -> Option<f64> {
     })
 }
 
+/// Median and robust standard deviation (1.4826 × the median absolute deviation about
+/// that median) of f64 values, the non-finite ones left out. `None` when none is finite.
+pub fn median_and_sigma_f64(values: &[f64]) -> Option<(f64, f64)> {
+    let m = median_f64(values)?;
+    let dev: Vec<f64> = values.iter().map(|x| (x - m).abs()).collect();
+    median_f64(&dev).map(|d| (m, d * MAD_TO_SIGMA))
+}
+
+/// Robust standard deviation (1.4826 × MAD) of f64 values: [`median_and_sigma_f64`]'s σ.
+pub fn robust_sigma_f64(values: &[f64]) -> Option<f64> {
+    median_and_sigma_f64(values).map(|(_, sigma)| sigma)
+}
+
 /// Robust standard deviation 1.4826 × MAD about `center`, reordering `scratch`.
 pub fn mad_sigma(values: &[f32], center: f64, scratch: &mut Vec<f32>) -> Option<f64> {
     scratch.clear();

@@ -9,7 +9,7 @@
 //! which the stars tested, all pairs of filters counted, would give a false alarm with
 //! probability [`FALSE_ALARM`] under Gaussian tails.
 
-use crate::measure::stats::median_f64;
+use crate::measure::stats::median_and_sigma_f64;
 use crate::night::CatalogSource;
 
 /// The night's chance of one false color anomaly per target, Gaussian tails assumed.
@@ -139,11 +139,10 @@ pub fn band_outliers(groups: &[BandGroup<'_>], radius_deg: f64) -> Vec<BandOutli
     let mut out = Vec::new();
     for ((a, b), colors) in loci {
         let c: Vec<f64> = colors.iter().map(|x| x.2).collect();
-        let Some(median) = median_f64(&c) else {
+        let Some((median, sigma)) = median_and_sigma_f64(&c) else {
             continue;
         };
-        let dev: Vec<f64> = c.iter().map(|x| (x - median).abs()).collect();
-        let sigma = (median_f64(&dev).unwrap_or(0.0) * 1.482_602_218_505_602).max(0.02);
+        let sigma = sigma.max(0.02);
         for &(i, j, color) in &colors {
             let z = (color - median) / sigma;
             if z.abs() > z_min {

@@ -5,6 +5,8 @@
 //! of lights whether matching darks, flats and bias frames were taken. Every threshold is
 //! a constant here with where it comes from; every reason comes with its values. Pure.
 
+use crate::measure::calibration::CalibrationStats;
+use crate::measure::stats::{median_f64, robust_sigma_f64};
 use crate::record::{FrameRecord, FrameStatus};
 use crate::rules::{Judgement, Verdict};
 
@@ -84,26 +86,6 @@ pub fn kind_of(r: &FrameRecord) -> Option<&'static str> {
         .find(|k| said.contains(k))
 }
 
-fn median(mut v: Vec<f64>) -> Option<f64> {
-    v.retain(|x| x.is_finite());
-    if v.is_empty() {
-        return None;
-    }
-    v.sort_by(f64::total_cmp);
-    let n = v.len();
-    Some(if n % 2 == 1 {
-        v[n / 2]
-    } else {
-        0.5 * (v[n / 2 - 1] + v[n / 2])
-    })
-}
-
-/// 1.4826 × the median absolute deviation (common practice).
-fn robust_sigma(v: &[f64]) -> Option<f64> {
-    let m = median(v.to_vec())?;
-    median(v.iter().map(|x| (x - m).abs()).collect()).map(|d| 1.4826 * d)
-}
-
 struct Verdicts {
     verdict: Verdict,
     reasons: Vec<String>,
@@ -160,7 +142,6 @@ pub fn judge_calibration(
     earlier: &[&FrameRecord],
     settings: &CalibrationSettings,
 ) -> CalibrationReport {
-    let (level_warn, level_reject) = (settings.flat_level_warn, settings.flat_level_reject);
     let lights: Vec<&FrameRecord> = records
         .iter()
         .copied()
@@ -174,9 +155,8 @@ pub fn judge_calibration(
     };
 
     // Flats, per filter and binning.
-    let flats = of_kind("flat");
     let mut sets: Vec<Vec<usize>> = Vec::new();
-    for &i in &flats {
+    for i in of_kind("flat") {
         match sets.iter_mut().find(|s| {
             let a = records[s[0]];
             a.filter == records[i].filter && same_settings(a, records[i])
@@ -195,56 +175,12 @@ pub fn judge_calibration(
         for &i in set {
             let mut v = Verdicts::new();
             if let Some(c) = &records[i].calibration {
-                if let Some(level) = c.level_fraction {
-                    let pct = 100.0 * level;
-                    let band = format!(
-                        "(warn outside {:.0}–{:.0} %, reject below {:.0} % or above {:.0} %)",
-                        100.0 * level_warn.0,
-                        100.0 * level_warn.1,
-                        100.0 * level_reject.0,
-                        100.0 * level_reject.1
-                    );
-                    let words = format!(
-                        "level {:.0} ADU is {pct:.0} % of full scale {:.0} ADU {band}",
-                        c.median_adu,
-                        c.full_scale_adu.unwrap_or(f64::NAN)
-                    );
-                    if level < level_reject.0 {
-                        v.add(Verdict::Reject, "flat_level_low", words);
-                    } else if level > level_reject.1 {
-                        v.add(Verdict::Reject, "flat_level_high", words);
-                    } else if level < level_warn.0 {
-                        v.add(Verdict::Warn, "flat_level_low", words);
-                    } else if level > level_warn.1 {
-                        v.add(Verdict::Warn, "flat_level_high", words);
-                    }
-                }
-                if c.clipped_fraction > FLAT_CLIPPED_REJECT {
-                    v.add(
-                        Verdict::Reject,
-                        "flat_clipped",
-                        format!(
-                            "{:.2} % of pixels at full scale (reject above {:.1} %)",
-                            100.0 * c.clipped_fraction,
-                            100.0 * FLAT_CLIPPED_REJECT
-                        ),
-                    );
-                }
-                if set.len() >= 3 {
-                    if let Some(d) = crate::measure::calibration::grid_departure(&c.grid, &shape) {
-                        let words = format!(
-                            "its shape departs {:.1} % from the set's median flat somewhere (warn above {:.1} %, reject above {:.1} %): dust that moved, a flickering panel or a light leak",
-                            100.0 * d,
-                            100.0 * FLAT_DEPARTURE.0,
-                            100.0 * FLAT_DEPARTURE.1
-                        );
-                        if d > FLAT_DEPARTURE.1 {
-                            v.add(Verdict::Reject, "flat_departs", words);
-                        } else if d > FLAT_DEPARTURE.0 {
-                            v.add(Verdict::Warn, "flat_departs", words);
-                        }
-                    }
-                }
+                judge_flat(
+                    c,
+                    (set.len() >= 3).then_some(shape.as_slice()),
+                    settings,
+                    &mut v,
+                );
             }
             out.frames.push(CalibrationJudged {
                 index: i,
@@ -257,23 +193,7 @@ pub fn judge_calibration(
     // Darks and bias frames against their own set.
     for kind in ["dark", "bias"] {
         let set = of_kind(kind);
-        let stats = |f: fn(&crate::measure::calibration::CalibrationStats) -> f64| -> Vec<f64> {
-            set.iter()
-                .filter_map(|&i| records[i].calibration.as_ref().map(f))
-                .collect()
-        };
-        let levels = stats(|c| c.median_adu);
-        let noises = stats(|c| c.noise_adu);
-        let hots = stats(|c| c.hot_pixel_count as f64);
-        let level_mid = median(levels.clone());
-        let noise_mid = median(noises.clone());
-        let hot_mid = median(hots);
-        // The spread of levels, with a floor of a tenth of the noise so a set of
-        // identical frames does not make every tiny difference significant.
-        let spread = robust_sigma(&levels)
-            .unwrap_or(0.0)
-            .max(0.1 * noise_mid.unwrap_or(0.0))
-            .max(1e-6);
+        let medians = SetMedians::of(records, &set);
         for &i in &set {
             let r = records[i];
             let mut v = Verdicts::new();
@@ -289,46 +209,7 @@ pub fn judge_calibration(
                     );
                 }
                 if set.len() >= 3 {
-                    if let Some(m) = level_mid {
-                        let z = (c.median_adu - m) / spread;
-                        if z.abs() > SET_LEVEL_SIGMAS {
-                            v.add(
-                                Verdict::Warn,
-                                &format!("{kind}_level_off"),
-                                format!(
-                                    "level {:.1} ADU is {z:+.0} σ from the set's median {m:.1} ADU (warn beyond {SET_LEVEL_SIGMAS:.0} σ)",
-                                    c.median_adu
-                                ),
-                            );
-                        }
-                    }
-                    if let Some(n) = noise_mid.filter(|n| *n > 0.0) {
-                        if c.noise_adu > SET_NOISE_RATIO * n {
-                            v.add(
-                                Verdict::Warn,
-                                &format!("{kind}_noise_high"),
-                                format!(
-                                    "noise {:.2} ADU is {:.2} × the set's median {n:.2} ADU (warn above {SET_NOISE_RATIO} ×)",
-                                    c.noise_adu,
-                                    c.noise_adu / n
-                                ),
-                            );
-                        }
-                    }
-                    if let (Some(h), "dark") = (hot_mid, kind) {
-                        let count = c.hot_pixel_count as f64;
-                        if count > HOT_PIXELS_RATIO * h && count - h >= HOT_PIXELS_MIN_EXTRA as f64
-                        {
-                            v.add(
-                                Verdict::Warn,
-                                "dark_hot_pixels",
-                                format!(
-                                    "{} hot pixels against the set's median {h:.0} (warn above {HOT_PIXELS_RATIO} ×): cooling that failed?",
-                                    c.hot_pixel_count
-                                ),
-                            );
-                        }
-                    }
+                    medians.judge(kind, c, &mut v);
                 }
             }
             if kind == "dark" {
@@ -345,6 +226,163 @@ pub fn judge_calibration(
     out.frames.sort_by_key(|f| f.index);
     out.notes = missing(records, &lights, &out.frames, earlier);
     out
+}
+
+/// One flat's level against the band of `settings`, its clipped pixels, and (`shape`:
+/// the set's median flat, in a set of three or more) its departure from its set.
+fn judge_flat(
+    c: &CalibrationStats,
+    shape: Option<&[f32]>,
+    settings: &CalibrationSettings,
+    v: &mut Verdicts,
+) {
+    let (level_warn, level_reject) = (settings.flat_level_warn, settings.flat_level_reject);
+    if let Some(level) = c.level_fraction {
+        let pct = 100.0 * level;
+        let band = format!(
+            "(warn outside {:.0}–{:.0} %, reject below {:.0} % or above {:.0} %)",
+            100.0 * level_warn.0,
+            100.0 * level_warn.1,
+            100.0 * level_reject.0,
+            100.0 * level_reject.1
+        );
+        let words = format!(
+            "level {:.0} ADU is {pct:.0} % of full scale {:.0} ADU {band}",
+            c.median_adu,
+            c.full_scale_adu.unwrap_or(f64::NAN)
+        );
+        if level < level_reject.0 {
+            v.add(Verdict::Reject, "flat_level_low", words);
+        } else if level > level_reject.1 {
+            v.add(Verdict::Reject, "flat_level_high", words);
+        } else if level < level_warn.0 {
+            v.add(Verdict::Warn, "flat_level_low", words);
+        } else if level > level_warn.1 {
+            v.add(Verdict::Warn, "flat_level_high", words);
+        }
+    }
+    if c.clipped_fraction > FLAT_CLIPPED_REJECT {
+        v.add(
+            Verdict::Reject,
+            "flat_clipped",
+            format!(
+                "{:.2} % of pixels at full scale (reject above {:.1} %)",
+                100.0 * c.clipped_fraction,
+                100.0 * FLAT_CLIPPED_REJECT
+            ),
+        );
+    }
+    let Some(d) = shape.and_then(|s| crate::measure::calibration::grid_departure(&c.grid, s))
+    else {
+        return;
+    };
+    let words = format!(
+        "its shape departs {:.1} % from the set's median flat somewhere (warn above {:.1} %, reject above {:.1} %): dust that moved, a flickering panel or a light leak",
+        100.0 * d,
+        100.0 * FLAT_DEPARTURE.0,
+        100.0 * FLAT_DEPARTURE.1
+    );
+    if d > FLAT_DEPARTURE.1 {
+        v.add(Verdict::Reject, "flat_departs", words);
+    } else if d > FLAT_DEPARTURE.0 {
+        v.add(Verdict::Warn, "flat_departs", words);
+    }
+}
+
+/// A set of darks or bias frames as a whole: the medians of its levels, noises and hot
+/// pixel counts, and the spread of its levels.
+struct SetMedians {
+    level: Option<f64>,
+    noise: Option<f64>,
+    hot: Option<f64>,
+    spread: f64,
+}
+
+impl SetMedians {
+    fn of(records: &[&FrameRecord], set: &[usize]) -> Self {
+        let stats = |f: fn(&CalibrationStats) -> f64| -> Vec<f64> {
+            set.iter()
+                .filter_map(|&i| records[i].calibration.as_ref().map(f))
+                .collect()
+        };
+        let levels = stats(|c| c.median_adu);
+        let noise = median_f64(&stats(|c| c.noise_adu));
+        // The spread of levels, with a floor of a tenth of the noise so a set of
+        // identical frames does not make every tiny difference significant.
+        let spread = robust_sigma_f64(&levels)
+            .unwrap_or(0.0)
+            .max(0.1 * noise.unwrap_or(0.0))
+            .max(1e-6);
+        SetMedians {
+            level: median_f64(&levels),
+            noise,
+            hot: median_f64(&stats(|c| c.hot_pixel_count as f64)),
+            spread,
+        }
+    }
+
+    /// One frame of the set (`kind` "dark" or "bias") against the set: its level, its
+    /// noise, and a dark's hot pixels.
+    fn judge(&self, kind: &str, c: &CalibrationStats, v: &mut Verdicts) {
+        if let Some(m) = self.level {
+            let z = (c.median_adu - m) / self.spread;
+            if z.abs() > SET_LEVEL_SIGMAS {
+                v.add(
+                    Verdict::Warn,
+                    &format!("{kind}_level_off"),
+                    format!(
+                        "level {:.1} ADU is {z:+.0} σ from the set's median {m:.1} ADU (warn beyond {SET_LEVEL_SIGMAS:.0} σ)",
+                        c.median_adu
+                    ),
+                );
+            }
+        }
+        if let Some(n) = self.noise.filter(|n| *n > 0.0) {
+            if c.noise_adu > SET_NOISE_RATIO * n {
+                v.add(
+                    Verdict::Warn,
+                    &format!("{kind}_noise_high"),
+                    format!(
+                        "noise {:.2} ADU is {:.2} × the set's median {n:.2} ADU (warn above {SET_NOISE_RATIO} ×)",
+                        c.noise_adu,
+                        c.noise_adu / n
+                    ),
+                );
+            }
+        }
+        if let (Some(h), "dark") = (self.hot, kind) {
+            hot_pixels_against(
+                c,
+                h,
+                &format!("the set's median {h:.0}"),
+                "cooling that failed?",
+                v,
+            );
+        }
+    }
+}
+
+/// A dark with many more hot pixels than `median` of other darks (more than
+/// `HOT_PIXELS_RATIO` times as many, and `HOT_PIXELS_MIN_EXTRA` more at least) is
+/// warned, saying what the median is of (`against`) and the likely `cause`.
+fn hot_pixels_against(
+    c: &CalibrationStats,
+    median: f64,
+    against: &str,
+    cause: &str,
+    v: &mut Verdicts,
+) {
+    let count = c.hot_pixel_count as f64;
+    if count > HOT_PIXELS_RATIO * median && count - median >= HOT_PIXELS_MIN_EXTRA as f64 {
+        v.add(
+            Verdict::Warn,
+            "dark_hot_pixels",
+            format!(
+                "{} hot pixels against {against} (warn above {HOT_PIXELS_RATIO} ×): {cause}",
+                c.hot_pixel_count
+            ),
+        );
+    }
 }
 
 /// Nights between two night labels ("YYYY-MM-DD").
@@ -378,20 +416,16 @@ fn dark_against_earlier(dark: &FrameRecord, earlier: &[&FrameRecord], v: &mut Ve
         .filter_map(|e| e.calibration.as_ref().map(|c| c.hot_pixel_count as f64))
         .collect();
     let n = counts.len();
-    let Some(h) = median(counts) else {
+    let Some(h) = median_f64(&counts) else {
         return;
     };
-    let count = c.hot_pixel_count as f64;
-    if count > HOT_PIXELS_RATIO * h && count - h >= HOT_PIXELS_MIN_EXTRA as f64 {
-        v.add(
-            Verdict::Warn,
-            "dark_hot_pixels",
-            format!(
-                "{} hot pixels against the median {h:.0} of {n} earlier nights' darks of this exposure and temperature (warn above {HOT_PIXELS_RATIO} ×): a sensor ageing, or cooling that failed?",
-                c.hot_pixel_count
-            ),
-        );
-    }
+    hot_pixels_against(
+        c,
+        h,
+        &format!("the median {h:.0} of {n} earlier nights' darks of this exposure and temperature"),
+        "a sensor ageing, or cooling that failed?",
+        v,
+    );
 }
 
 /// A dark's exposure and temperature against the night's lights.
@@ -430,7 +464,7 @@ fn dark_against_lights(dark: &FrameRecord, lights: &[&FrameRecord], v: &mut Verd
     }
     let (Some(t), Some(lt)) = (
         temp(dark),
-        median(matching.iter().filter_map(|l| temp(l)).collect()),
+        median_f64(&matching.iter().filter_map(|l| temp(l)).collect::<Vec<_>>()),
     ) else {
         return;
     };
@@ -519,7 +553,7 @@ fn missing(
             filter.as_deref().unwrap_or(crate::text::NO_FILTER)
         );
         let first = frames[0];
-        let t = median(frames.iter().filter_map(|l| temp(l)).collect());
+        let t = median_f64(&frames.iter().filter_map(|l| temp(l)).collect::<Vec<_>>());
         if let Some(e) = e {
             let ok = darks.iter().any(|d| {
                 exposure(d).is_some_and(|x| (x - e).abs() <= DARK_EXPOSURE_TOLERANCE * x.max(*e))

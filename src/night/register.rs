@@ -5,6 +5,9 @@
 //! a meridian flip are all of this kind), and least squares on every matched star
 //! refines it to an affine transform with its residual RMS. Pure.
 
+use crate::linalg::Cholesky;
+use crate::pairs::nearest_pairs;
+
 /// A frame placed on its group's reference frame.
 #[derive(Debug, Clone, Default, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct Placement {
@@ -140,7 +143,6 @@ fn similarity(p1: (f64, f64), p2: (f64, f64), q1: (f64, f64), q2: (f64, f64)) ->
     })
 }
 
-/// Least-squares affine transform from matched pairs.
 /// A matched pair: (frame position, reference position, weight).
 type Pair = ((f64, f64), (f64, f64), f64);
 
@@ -163,77 +165,12 @@ fn fit_affine(pairs: &[Pair]) -> Option<Affine> {
             by[i] += w * r[i] * v;
         }
     }
-    let solve3 = |m: [[f64; 3]; 3], b: [f64; 3]| -> Option<[f64; 3]> {
-        let det = |m: &[[f64; 3]; 3]| {
-            m[0][0] * (m[1][1] * m[2][2] - m[1][2] * m[2][1])
-                - m[0][1] * (m[1][0] * m[2][2] - m[1][2] * m[2][0])
-                + m[0][2] * (m[1][0] * m[2][1] - m[1][1] * m[2][0])
-        };
-        let d = det(&m);
-        if d.abs() < 1e-12 {
-            return None;
-        }
-        let mut out = [0.0; 3];
-        for (c, o) in out.iter_mut().enumerate() {
-            let mut mc = m;
-            for r in 0..3 {
-                mc[r][c] = b[r];
-            }
-            *o = det(&mc) / d;
-        }
-        Some(out)
-    };
-    let sx = solve3(m, bx)?;
-    let sy = solve3(m, by)?;
+    let normal = Cholesky::new(&m)?;
+    let (sx, sy) = (normal.solve(&bx), normal.solve(&by));
     Some(Affine {
         a: [[sx[0], sx[1]], [sy[0], sy[1]]],
         t: [sx[2], sy[2]],
     })
-}
-
-/// Pairs (frame star, reference star) within `tol` px after `t`, each star used once.
-fn match_all(
-    frame: &[(f64, f64)],
-    reference: &[(f64, f64)],
-    t: &Affine,
-    tol: f64,
-) -> Vec<(usize, usize, f64)> {
-    let cell = tol.max(1.0) * 2.0;
-    let mut grid: std::collections::HashMap<(i64, i64), Vec<usize>> =
-        std::collections::HashMap::new();
-    for (j, q) in reference.iter().enumerate() {
-        grid.entry(((q.0 / cell).floor() as i64, (q.1 / cell).floor() as i64))
-            .or_default()
-            .push(j);
-    }
-    let mut cand = Vec::new();
-    for (i, p) in frame.iter().enumerate() {
-        let q = t.apply(*p);
-        let (cx, cy) = ((q.0 / cell).floor() as i64, (q.1 / cell).floor() as i64);
-        for gx in cx - 1..=cx + 1 {
-            for gy in cy - 1..=cy + 1 {
-                for &j in grid.get(&(gx, gy)).into_iter().flatten() {
-                    let d = (reference[j].0 - q.0).hypot(reference[j].1 - q.1);
-                    if d <= tol {
-                        cand.push((i, j, d));
-                    }
-                }
-            }
-        }
-    }
-    cand.sort_by(|a, b| a.2.total_cmp(&b.2));
-    let mut used_f = vec![false; frame.len()];
-    let mut used_r = vec![false; reference.len()];
-    cand.into_iter()
-        .filter(|&(i, j, _)| {
-            if used_f[i] || used_r[j] {
-                return false;
-            }
-            used_f[i] = true;
-            used_r[j] = true;
-            true
-        })
-        .collect()
 }
 
 /// What registration needs of a star: its FITS position, its flux (for choosing the
@@ -245,17 +182,33 @@ pub trait Placed {
     fn snr(&self) -> f64;
 }
 
-impl Placed for crate::record::StarRecord {
-    fn xy(&self) -> (f64, f64) {
-        (self.x, self.y)
-    }
-    fn flux(&self) -> f64 {
-        self.flux
-    }
-    fn snr(&self) -> f64 {
-        self.snr
-    }
+/// A bare point with what registration needs (catalogue stars, tests).
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Point {
+    pub x: f64,
+    pub y: f64,
+    pub flux: f64,
+    pub snr: f64,
 }
+
+/// [`Placed`] for types that hold it in fields `x`, `y`, `flux` and `snr`.
+macro_rules! placed_by_fields {
+    ($($t:ty),*) => {$(
+        impl Placed for $t {
+            fn xy(&self) -> (f64, f64) {
+                (self.x, self.y)
+            }
+            fn flux(&self) -> f64 {
+                self.flux
+            }
+            fn snr(&self) -> f64 {
+                self.snr
+            }
+        }
+    )*};
+}
+
+placed_by_fields!(Point, crate::record::StarRecord);
 
 /// Register `frame` stars onto `reference` stars. `None` when no consistent transform is
 /// found (clouds, another target).
@@ -342,13 +295,15 @@ pub fn register_brightest<S: Placed>(
     // Refine on all stars: match, fit affine, repeat with a tighter tolerance.
     let fp: Vec<(f64, f64)> = frame.iter().map(|p| p.xy()).collect();
     let rp: Vec<(f64, f64)> = reference.iter().map(|p| p.xy()).collect();
+    let rp_all: Vec<Option<(f64, f64)>> = rp.iter().copied().map(Some).collect();
     let weight = |i: usize, j: usize| {
         let (a, b) = (frame[i].snr().max(1.0), reference[j].snr().max(1.0));
         1.0 / (1.0 / (a * a) + 1.0 / (b * b))
     };
     let mut matched = Vec::new();
     for tol in [3.0, 1.5, 1.0] {
-        matched = match_all(&fp, &rp, &t, tol);
+        let moved: Vec<(f64, f64)> = fp.iter().map(|&p| t.apply(p)).collect();
+        matched = nearest_pairs(&moved, &rp_all, tol);
         if matched.len() < 6 {
             return None;
         }
@@ -376,29 +331,8 @@ pub fn register_brightest<S: Placed>(
 mod tests {
     use super::*;
 
-    /// A bare star for these tests.
-    #[derive(Debug, Clone, Copy)]
-    struct RegStar {
-        x: f64,
-        y: f64,
-        flux: f64,
-        snr: f64,
-    }
-
-    impl Placed for RegStar {
-        fn xy(&self) -> (f64, f64) {
-            (self.x, self.y)
-        }
-        fn flux(&self) -> f64 {
-            self.flux
-        }
-        fn snr(&self) -> f64 {
-            self.snr
-        }
-    }
-
-    fn star(x: f64, y: f64, flux: f64) -> RegStar {
-        RegStar {
+    fn star(x: f64, y: f64, flux: f64) -> Point {
+        Point {
             x,
             y,
             flux,
@@ -406,7 +340,7 @@ mod tests {
         }
     }
 
-    fn field() -> Vec<RegStar> {
+    fn field() -> Vec<Point> {
         // A deterministic scatter of 60 stars.
         (0..60)
             .map(|i| {
@@ -437,7 +371,7 @@ mod tests {
             };
             let inv = truth.inverse().unwrap();
             // The frame sees reference stars through the inverse; drop a few, add a few.
-            let mut frame: Vec<RegStar> = reference
+            let mut frame: Vec<Point> = reference
                 .iter()
                 .skip(3)
                 .map(|s| {
@@ -461,7 +395,7 @@ mod tests {
     #[test]
     fn unrelated_fields_do_not_register() {
         let reference = field();
-        let other: Vec<RegStar> = (0..60)
+        let other: Vec<Point> = (0..60)
             .map(|i| {
                 let f = i as f64;
                 star(

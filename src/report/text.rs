@@ -30,6 +30,20 @@ fn flagged_lines<'a>(t: &mut String, frames: impl IntoIterator<Item = &'a FrameL
 /// The plain-text summary; `all` adds every frame and every cosmic-ray hit.
 pub fn text(s: &Summary, all: bool) -> String {
     let mut t = String::new();
+    counts(&mut t, s);
+    calibration(&mut t, s);
+    flagged(&mut t, s);
+    notable(&mut t, s);
+    to_stack_lines(&mut t, s);
+    if all {
+        every_frame(&mut t, s);
+    }
+    t
+}
+
+/// The night's and each group's counts, episodes and frames not placed, and the
+/// anomalies by kind.
+fn counts(t: &mut String, s: &Summary) {
     let _ = writeln!(
         t,
         "Night {}: {}: {} ok, {} warn, {} reject. Clock times are {}.",
@@ -87,7 +101,10 @@ pub fn text(s: &Summary, all: bool) -> String {
                 .join(", ")
         }
     );
+}
 
+/// The calibration frames by kind, the flagged ones with why, and what is missing.
+fn calibration(t: &mut String, s: &Summary) {
     let cal = &s.calibration;
     if !cal.is_empty() {
         let _ = writeln!(
@@ -111,18 +128,21 @@ pub fn text(s: &Summary, all: bool) -> String {
                     .join(", ")
             }
         );
-        flagged_lines(&mut t, &cal.flagged);
+        flagged_lines(t, &cal.flagged);
         for n in &cal.notes {
             let _ = writeln!(t, "    {}", single_line(n));
         }
     }
+}
 
+/// The warned and rejected light frames per group, each reason on its line.
+fn flagged(t: &mut String, s: &Summary) {
     if s.groups.iter().any(|g| g.flagged().next().is_some()) {
         let _ = writeln!(t, "\nWarned and rejected frames");
     }
     for g in s.groups.iter().filter(|g| g.flagged().next().is_some()) {
         let _ = writeln!(t, "  {}", single_line(&g.heading()));
-        flagged_lines(&mut t, g.flagged());
+        flagged_lines(t, g.flagged());
         if g.warned_left_out > 0 {
             let _ = writeln!(
                 t,
@@ -131,7 +151,11 @@ pub fn text(s: &Summary, all: bool) -> String {
             );
         }
     }
+}
 
+/// What deserves a look, with position, brightness and where first seen; hot pixels as
+/// positions and cosmic-ray hits as a count.
+fn notable(t: &mut String, s: &Summary) {
     if !s.notable.is_empty() {
         let _ = writeln!(t, "\nWorth a look ({})", s.notable.len());
     }
@@ -180,8 +204,10 @@ pub fn text(s: &Summary, all: bool) -> String {
     if !s.cosmic_rays.is_empty() {
         let _ = writeln!(t, "Cosmic-ray hits: {}", s.cosmic_rays.len());
     }
+}
 
-    // The frames to stack, per group (warned ones marked).
+/// The frames to stack, per group (warned ones marked).
+fn to_stack_lines(t: &mut String, s: &Summary) {
     if s.groups.iter().any(|g| !g.stack.is_empty()) {
         let _ = writeln!(t, "\nFrames to stack");
     }
@@ -196,30 +222,30 @@ pub fn text(s: &Summary, all: bool) -> String {
             );
         }
     }
+}
 
-    if all {
-        let _ = writeln!(t, "\nEvery frame");
-        for g in &s.groups {
-            let _ = writeln!(t, "  {}", single_line(&g.heading()));
-            for f in &g.lines {
-                let stacked = g.stack.iter().any(|e| e.path == f.path);
-                let _ = writeln!(
-                    t,
-                    "    {}  {:<6} {:<5}  {}  {}",
-                    f.local_time.as_deref().unwrap_or("--:--:--"),
-                    f.verdict.as_str(),
-                    if stacked { "stack" } else { "" },
-                    single_line(&f.path),
-                    f.reasons.join(",")
-                );
-            }
-        }
-        if !s.cosmic_rays.is_empty() {
-            let _ = writeln!(t, "\nCosmic-ray hits (file, x, y)");
-            for (file, x, y) in &s.cosmic_rays {
-                let _ = writeln!(t, "  {}  {x:.1}  {y:.1}", single_line(file));
-            }
+/// Every frame with its verdict and whether it is stacked, and every cosmic-ray hit.
+fn every_frame(t: &mut String, s: &Summary) {
+    let _ = writeln!(t, "\nEvery frame");
+    for g in &s.groups {
+        let _ = writeln!(t, "  {}", single_line(&g.heading()));
+        for f in &g.lines {
+            let stacked = g.stack.iter().any(|e| e.path == f.path);
+            let _ = writeln!(
+                t,
+                "    {}  {:<6} {:<5}  {}  {}",
+                f.local_time.as_deref().unwrap_or("--:--:--"),
+                f.verdict.as_str(),
+                if stacked { "stack" } else { "" },
+                single_line(&f.path),
+                f.reasons.join(",")
+            );
         }
     }
-    t
+    if !s.cosmic_rays.is_empty() {
+        let _ = writeln!(t, "\nCosmic-ray hits (file, x, y)");
+        for (file, x, y) in &s.cosmic_rays {
+            let _ = writeln!(t, "  {}  {x:.1}  {y:.1}", single_line(file));
+        }
+    }
 }

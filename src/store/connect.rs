@@ -102,6 +102,29 @@ pub(super) fn postgres_config(
     Ok(config)
 }
 
+/// WAL mode and the connection's settings. Turning a new store to WAL needs the file's
+/// exclusive lock, and SQLite answers "locked" at once, without its busy handler, when
+/// another process holds it (two archives started on one new store): waited for here, as
+/// long as the busy timeout would.
+fn set_up_sqlite(conn: &rusqlite::Connection) -> rusqlite::Result<()> {
+    let started = std::time::Instant::now();
+    loop {
+        match conn.execute_batch(
+            "PRAGMA journal_mode = WAL; PRAGMA synchronous = NORMAL; PRAGMA foreign_keys = ON;",
+        ) {
+            Err(rusqlite::Error::SqliteFailure(e, _))
+                if matches!(
+                    e.code,
+                    rusqlite::ErrorCode::DatabaseBusy | rusqlite::ErrorCode::DatabaseLocked
+                ) && started.elapsed() < std::time::Duration::from_secs(10) =>
+            {
+                std::thread::sleep(std::time::Duration::from_millis(20));
+            }
+            other => return other,
+        }
+    }
+}
+
 pub(super) fn open(location: &Location) -> Result<Conn, StoreError> {
     let place = location.to_string();
     let err = |source| StoreError::Database {
@@ -113,10 +136,7 @@ pub(super) fn open(location: &Location) -> Result<Conn, StoreError> {
             let conn = rusqlite::Connection::open(path).map_err(|e| err(e.into()))?;
             conn.busy_timeout(std::time::Duration::from_secs(10))
                 .map_err(|e| err(e.into()))?;
-            conn.execute_batch(
-                "PRAGMA journal_mode = WAL; PRAGMA synchronous = NORMAL; PRAGMA foreign_keys = ON;",
-            )
-            .map_err(|e| err(e.into()))?;
+            set_up_sqlite(&conn).map_err(|e| err(e.into()))?;
             Ok(Conn::Sqlite(conn))
         }
         Location::Server {

@@ -124,53 +124,13 @@ pub fn copy(
 ) -> Result<Copied, StoreError> {
     let dest = Store::connect(to)?;
     let source = Store::open_read_only(from, "")?;
-    let version = super::schema::version_of(&source.conn).map_err(|e| source.err(e))?;
-    if version != super::SCHEMA_VERSION {
-        return Err(StoreError::Settings {
-            store: source.place.clone(),
-            message: format!(
-                "is at schema version {version}, this program's is {}; run this version's daemon or `subwatch status` on it once so it is brought up to date, then copy it",
-                super::SCHEMA_VERSION
-            ),
-        });
-    }
-    let naming = Naming { rig };
-    let rigs: Vec<String> = naming
-        .rows(
-            &source,
-            &format!(
-                "SELECT DISTINCT {} FROM frames{} ORDER BY 1",
-                naming.select(&["rig".to_string()]),
-                naming.filter("frames")
-            ),
-        )?
-        .iter()
-        .map(|r| r.get(0))
-        .collect::<Result<_, _>>()
-        .map_err(|e| source.err(e))?;
-    if rigs.iter().any(String::is_empty) {
-        return Err(StoreError::Settings {
-            store: source.place.clone(),
-            message: "holds frames of a rig without a name; name it (store copy --rig NAME) so the site can tell its frames from another rig's".into(),
-        });
-    }
-    for rig in &rigs {
-        let there = count(
-            &dest.conn,
-            "SELECT COUNT(*) FROM frames WHERE rig = ?1",
-            values![rig],
-        )
-        .map_err(|e| dest.err(e))?;
-        if there > 0 {
-            return Err(StoreError::Settings {
-                store: dest.place.clone(),
-                message: format!(
-                    "already holds {there} frame(s) of rig '{rig}'; copy a store into a database that does not have its rigs yet"
-                ),
-            });
-        }
-    }
-    let mut copied = Vec::new();
+    let job = Job {
+        source: &source,
+        dest: &dest,
+        naming: Naming { rig },
+    };
+    job.source_is_current()?;
+    job.rigs_are_new()?;
     let dc = &dest.conn;
     // One snapshot for the counts before and after: rigs still recording meanwhile
     // change nothing this transaction sees but its own rows.
@@ -179,26 +139,127 @@ pub fn copy(
         super::Kind::Sqlite => "BEGIN",
     })
     .map_err(|e| dest.err(e))?;
-    let mut before: HashMap<&str, i64> = HashMap::new();
-    for table in ["frames"]
-        .iter()
-        .chain(FRAME_TABLES)
-        .chain(PLAIN_TABLES)
-        .chain(ID_TABLES)
-    {
-        match count(dc, &format!("SELECT COUNT(*) FROM {table}"), &[]) {
-            Ok(n) => before.insert(table, n),
-            Err(e) => {
-                let _ = dc.batch("ROLLBACK");
-                return Err(dest.err(e));
-            }
-        };
+    let result = job.counts(dc).and_then(|before| {
+        let copied = job.rows()?;
+        job.verify(&copied, &before)?;
+        Ok(copied)
+    });
+    match result {
+        Ok(copied) => {
+            dc.batch("COMMIT").map_err(|e| dest.err(e))?;
+            Ok(Copied { tables: copied })
+        }
+        Err(e) => {
+            let _ = dc.batch("ROLLBACK");
+            Err(e)
+        }
     }
-    let result = (|| -> Result<(), StoreError> {
-        let at_dest = |e| dest.err(e);
-        let at_source = |e| source.err(e);
-        // Frames, each with a new id.
-        let frame_columns: Vec<String> = columns(&source, "frames")?
+}
+
+/// One copy: its two stores and how rows are named on the way.
+struct Job<'a> {
+    source: &'a Store,
+    dest: &'a Store,
+    naming: Naming<'a>,
+}
+
+impl Job<'_> {
+    /// The source's schema must be this program's: columns are copied by name.
+    fn source_is_current(&self) -> Result<(), StoreError> {
+        let source = self.source;
+        let version = super::schema::version_of(&source.conn).map_err(|e| source.err(e))?;
+        if version != super::SCHEMA_VERSION {
+            return Err(StoreError::Settings {
+                store: source.place.clone(),
+                message: format!(
+                    "is at schema version {version}, this program's is {}; run this version's daemon or `subwatch status` on it once so it is brought up to date, then copy it",
+                    super::SCHEMA_VERSION
+                ),
+            });
+        }
+        Ok(())
+    }
+
+    /// Every rig of the source has a name, and the destination holds none of them.
+    fn rigs_are_new(&self) -> Result<(), StoreError> {
+        let (source, dest, naming) = (self.source, self.dest, &self.naming);
+        let rigs: Vec<String> = naming
+            .rows(
+                source,
+                &format!(
+                    "SELECT DISTINCT {} FROM frames{} ORDER BY 1",
+                    naming.select(&["rig".to_string()]),
+                    naming.filter("frames")
+                ),
+            )?
+            .iter()
+            .map(|r| r.get(0))
+            .collect::<Result<_, _>>()
+            .map_err(|e| source.err(e))?;
+        if rigs.iter().any(String::is_empty) {
+            return Err(StoreError::Settings {
+                store: source.place.clone(),
+                message: "holds frames of a rig without a name; name it (store copy --rig NAME) so the site can tell its frames from another rig's".into(),
+            });
+        }
+        for rig in &rigs {
+            let there = count(
+                &dest.conn,
+                "SELECT COUNT(*) FROM frames WHERE rig = ?1",
+                values![rig],
+            )
+            .map_err(|e| dest.err(e))?;
+            if there > 0 {
+                return Err(StoreError::Settings {
+                    store: dest.place.clone(),
+                    message: format!(
+                        "already holds {there} frame(s) of rig '{rig}'; copy a store into a database that does not have its rigs yet"
+                    ),
+                });
+            }
+        }
+        Ok(())
+    }
+
+    /// Each copied table's rows in the destination before the copy.
+    fn counts(&self, dc: &Conn) -> Result<HashMap<&'static str, i64>, StoreError> {
+        let mut before = HashMap::new();
+        for table in ["frames"]
+            .iter()
+            .chain(FRAME_TABLES)
+            .chain(PLAIN_TABLES)
+            .chain(ID_TABLES)
+        {
+            let n = count(dc, &format!("SELECT COUNT(*) FROM {table}"), &[])
+                .map_err(|e| self.dest.err(e))?;
+            before.insert(*table, n);
+        }
+        Ok(before)
+    }
+
+    /// Every row, in the destination's open transaction: frames with new ids, the rows
+    /// hanging from them, the other tables, and the small facts the destination lacks.
+    fn rows(&self) -> Result<Vec<(String, i64)>, StoreError> {
+        let new_id = self.frames()?;
+        let mut copied = vec![("frames".to_string(), new_id.len() as i64)];
+        for table in FRAME_TABLES {
+            copied.push((table.to_string(), self.frame_table(table, &new_id)?));
+        }
+        for (table, keep_id) in PLAIN_TABLES
+            .iter()
+            .map(|t| (t, true))
+            .chain(ID_TABLES.iter().map(|t| (t, false)))
+        {
+            copied.push((table.to_string(), self.plain_table(table, keep_id)?));
+        }
+        self.meta()?;
+        Ok(copied)
+    }
+
+    /// The frames, each with a new id: the source's id to the destination's.
+    fn frames(&self) -> Result<HashMap<i64, i64>, StoreError> {
+        let (source, naming, dc) = (self.source, &self.naming, &self.dest.conn);
+        let frame_columns: Vec<String> = columns(source, "frames")?
             .into_iter()
             .filter(|c| c != "id")
             .collect();
@@ -209,93 +270,114 @@ pub fn copy(
         );
         let mut new_id: HashMap<i64, i64> = HashMap::new();
         for row in naming.rows(
-            &source,
+            source,
             &format!(
                 "SELECT id, {} FROM frames{} ORDER BY id",
                 naming.select(&frame_columns),
                 naming.filter("frames")
             ),
         )? {
-            let old: i64 = row.get(0).map_err(at_source)?;
+            let old: i64 = row.get(0).map_err(|e| source.err(e))?;
             let id: i64 = dc
                 .query_one(&insert_frame, &row.0[1..])
                 .and_then(|r| r.get(0))
-                .map_err(at_dest)?;
+                .map_err(|e| self.dest.err(e))?;
             new_id.insert(old, id);
         }
-        copied.push(("frames".to_string(), new_id.len() as i64));
-        for table in FRAME_TABLES {
-            let cols: Vec<String> = columns(&source, table)?
-                .into_iter()
-                .filter(|c| c != "frame_id")
-                .collect();
-            let mut rows = Vec::new();
-            for row in naming.rows(
-                &source,
-                &format!(
-                    "SELECT frame_id, {} FROM {table}{}",
-                    cols.join(", "),
-                    naming.filter(table)
-                ),
-            )? {
-                let old: i64 = row.get(0).map_err(at_source)?;
-                let Some(id) = new_id.get(&old) else { continue };
-                let mut values = vec![Value::Int(*id)];
-                values.extend_from_slice(&row.0[1..]);
-                rows.push(values);
-            }
-            let mut names = vec!["frame_id"];
-            names.extend(cols.iter().map(String::as_str));
-            dc.insert_rows(table, &names, &rows).map_err(at_dest)?;
-            copied.push((table.to_string(), rows.len() as i64));
-        }
-        for (table, keep_id) in PLAIN_TABLES
-            .iter()
-            .map(|t| (t, true))
-            .chain(ID_TABLES.iter().map(|t| (t, false)))
-        {
-            let cols: Vec<String> = columns(&source, table)?
-                .into_iter()
-                .filter(|c| keep_id || c != "id")
-                .collect();
-            let insert = format!(
-                "INSERT INTO {table} ({}) VALUES ({})",
+        Ok(new_id)
+    }
+
+    /// A table of rows hanging from frames, pointed at the frames' new ids.
+    fn frame_table(&self, table: &str, new_id: &HashMap<i64, i64>) -> Result<i64, StoreError> {
+        let source = self.source;
+        let cols: Vec<String> = columns(source, table)?
+            .into_iter()
+            .filter(|c| c != "frame_id")
+            .collect();
+        let mut rows = Vec::new();
+        for row in self.naming.rows(
+            source,
+            &format!(
+                "SELECT frame_id, {} FROM {table}{}",
                 cols.join(", "),
-                placeholders(cols.len(), 1)
-            );
-            let rows = naming.rows(
-                &source,
-                &format!(
-                    "SELECT {} FROM {table}{}",
-                    naming.select(&cols),
-                    naming.filter(table)
-                ),
-            )?;
-            for row in &rows {
-                dc.execute(&insert, &row.0).map_err(at_dest)?;
-            }
-            copied.push((table.to_string(), rows.len() as i64));
+                self.naming.filter(table)
+            ),
+        )? {
+            let old: i64 = row.get(0).map_err(|e| source.err(e))?;
+            let Some(id) = new_id.get(&old) else { continue };
+            let mut values = vec![Value::Int(*id)];
+            values.extend_from_slice(&row.0[1..]);
+            rows.push(values);
         }
-        // The small facts, where the destination does not have them already.
-        let rows = naming.rows(
-            &source,
-            &format!("SELECT {}, value FROM meta", naming.meta_key()),
+        let mut names = vec!["frame_id"];
+        names.extend(cols.iter().map(String::as_str));
+        self.dest
+            .conn
+            .insert_rows(table, &names, &rows)
+            .map_err(|e| self.dest.err(e))?;
+        Ok(rows.len() as i64)
+    }
+
+    /// A table of its own, its ids kept (`keep_id`) or given anew.
+    fn plain_table(&self, table: &str, keep_id: bool) -> Result<i64, StoreError> {
+        let cols: Vec<String> = columns(self.source, table)?
+            .into_iter()
+            .filter(|c| keep_id || c != "id")
+            .collect();
+        let insert = format!(
+            "INSERT INTO {table} ({}) VALUES ({})",
+            cols.join(", "),
+            placeholders(cols.len(), 1)
+        );
+        let rows = self.naming.rows(
+            self.source,
+            &format!(
+                "SELECT {} FROM {table}{}",
+                self.naming.select(&cols),
+                self.naming.filter(table)
+            ),
         )?;
         for row in &rows {
-            dc.execute(
-                "INSERT INTO meta (key, value) VALUES (?1, ?2) ON CONFLICT (key) DO NOTHING",
-                &row.0,
-            )
-            .map_err(at_dest)?;
+            self.dest
+                .conn
+                .execute(&insert, &row.0)
+                .map_err(|e| self.dest.err(e))?;
         }
-        // Verified by counting: each table's source rows, and what the destination
-        // gained.
-        for (table, n) in &copied {
+        Ok(rows.len() as i64)
+    }
+
+    /// The small facts, where the destination does not have them already.
+    fn meta(&self) -> Result<(), StoreError> {
+        let rows = self.naming.rows(
+            self.source,
+            &format!("SELECT {}, value FROM meta", self.naming.meta_key()),
+        )?;
+        for row in &rows {
+            self.dest
+                .conn
+                .execute(
+                    "INSERT INTO meta (key, value) VALUES (?1, ?2) ON CONFLICT (key) DO NOTHING",
+                    &row.0,
+                )
+                .map_err(|e| self.dest.err(e))?;
+        }
+        Ok(())
+    }
+
+    /// Verified by counting: each table's source rows, and what the destination gained.
+    fn verify(
+        &self,
+        copied: &[(String, i64)],
+        before: &HashMap<&'static str, i64>,
+    ) -> Result<(), StoreError> {
+        let (source, dest, naming) = (self.source, self.dest, &self.naming);
+        for (table, n) in copied {
             let sql = format!("SELECT COUNT(*) FROM {table}");
             let filtered = format!("{sql}{}", naming.filter(table));
-            let in_source =
-                count(&source.conn, &filtered, &naming.params(&filtered)).map_err(at_source)?;
-            let gained = count(dc, &sql, &[]).map_err(at_dest)? - before[table.as_str()];
+            let in_source = count(&source.conn, &filtered, &naming.params(&filtered))
+                .map_err(|e| source.err(e))?;
+            let gained =
+                count(&dest.conn, &sql, &[]).map_err(|e| dest.err(e))? - before[table.as_str()];
             if in_source != *n || gained != *n {
                 return Err(StoreError::Settings {
                     store: dest.place.clone(),
@@ -306,15 +388,5 @@ pub fn copy(
             }
         }
         Ok(())
-    })();
-    match result {
-        Ok(()) => {
-            dc.batch("COMMIT").map_err(|e| dest.err(e))?;
-            Ok(Copied { tables: copied })
-        }
-        Err(e) => {
-            let _ = dc.batch("ROLLBACK");
-            Err(e)
-        }
     }
 }

@@ -162,16 +162,15 @@ struct Analysis {
 
 /// Build snapshots until `state.stop`, every `every` (sooner while someone looks).
 pub fn run(config: Config, clock: Arc<dyn Clock>, state: Arc<PageState>) {
-    let reader = crate::reader::Reader::from_config(&config.measure);
-    let limits = crate::frame::DecodeLimits {
-        max_pixels: config.measure.max_pixels,
+    let reading = FrameReading {
+        reader: crate::reader::Reader::from_config(&config.measure),
+        limits: crate::frame::DecodeLimits {
+            max_pixels: config.measure.max_pixels,
+        },
     };
     let mut store: Option<Store> = None;
     let mut analysis = Analysis::default();
-    let mut preview: Option<(i64, Bytes, usize, usize)> = None;
-    // The picture before the latest stays served a while: a page fetched just before a
-    // new frame still shows its own.
-    let mut previous: Option<(i64, Bytes, usize, usize)> = None;
+    let mut pictures = Pictures::default();
     let mut last_part = String::new();
     let mut version = 0u64;
     // A store that fails (a shared server away) is said once, not at every refresh.
@@ -200,11 +199,9 @@ pub fn run(config: Config, clock: Arc<dyn Clock>, state: Arc<PageState>) {
                 &config,
                 now,
                 looked_at,
-                &reader,
-                limits,
+                &reading,
                 &mut analysis,
-                &mut preview,
-                &mut previous,
+                &mut pictures,
             ) {
                 Ok((mut view, images)) => {
                     said = false;
@@ -248,17 +245,68 @@ pub fn run(config: Config, clock: Arc<dyn Clock>, state: Arc<PageState>) {
 
 type Built = (LiveView, HashMap<String, Bytes>);
 
-#[allow(clippy::too_many_arguments)]
+/// What reads frames for the page (the latest picture, the cutouts).
+struct FrameReading {
+    reader: crate::reader::Reader,
+    limits: crate::frame::DecodeLimits,
+}
+
+/// A frame's picture: (record id, PNG, width, height).
+type Picture = (i64, Bytes, usize, usize);
+
+/// The latest frame's picture, made once per frame, and the one before it, which stays
+/// served a while: a page fetched just before a new frame still shows its own.
+#[derive(Default)]
+struct Pictures {
+    latest: Option<Picture>,
+    previous: Option<Picture>,
+}
+
+impl Pictures {
+    /// Frame `f`'s picture made, unless it is the latest already; a picture that cannot
+    /// be made leaves the latest as it was.
+    fn make(&mut self, f: &crate::store::LiveFrame, reading: &FrameReading) {
+        if self.latest.as_ref().map(|p| p.0) == Some(f.id) {
+            return;
+        }
+        let Some(m) = f.record.metrics.as_ref() else {
+            return;
+        };
+        let made = reading
+            .reader
+            .preview(
+                Path::new(&f.record.identity.path),
+                PREVIEW_SIDE,
+                reading.limits,
+            )
+            .map(|p| (f.id, Bytes::from(p.png), m.width, m.height));
+        if made.is_some() {
+            self.previous = std::mem::replace(&mut self.latest, made);
+        }
+    }
+
+    /// Both pictures into `images`; the address of frame `id`'s, when it is the latest.
+    fn serve(&self, id: i64, images: &mut HashMap<String, Bytes>) -> Option<String> {
+        if let Some((id, png, _, _)) = self.previous.as_ref() {
+            images.insert(format!("preview/{id}.png"), png.clone());
+        }
+        let latest = self.latest.as_ref().filter(|p| p.0 == id)?;
+        let url = format!("preview/{}.png", latest.0);
+        images.insert(url.clone(), latest.1.clone());
+        Some(url)
+    }
+}
+
+/// One snapshot of the page: the night so far from the store, the analysis when it is
+/// due, the latest frame with its picture, the sky now and the daemon's health.
 fn build(
     store: &Store,
     config: &Config,
     now: f64,
     looked_at: bool,
-    reader: &crate::reader::Reader,
-    limits: crate::frame::DecodeLimits,
+    reading: &FrameReading,
     analysis: &mut Analysis,
-    preview: &mut Option<(i64, Bytes, usize, usize)>,
-    previous: &mut Option<(i64, Bytes, usize, usize)>,
+    pictures: &mut Pictures,
 ) -> Result<Built, crate::store::StoreError> {
     let tz = config.timezone();
     let clock_of = |t: f64| report::local_clock(t, tz);
@@ -283,29 +331,93 @@ fn build(
     let night = night.unwrap_or_default();
     let frames = store.night_live_frames(&night)?;
     let counts = store.night_counts(&night)?;
-    // Where rigs share the store, every rig of the night, with when its daemon last said
-    // it was alive (its heartbeat).
+    // Where rigs share the store, every rig of the night.
     if config.store.url.is_some() {
-        for (rig, c) in store.night_counts_by_rig(&night)? {
-            let heard = store
-                .rig_meta(&rig, "daemon")?
-                .and_then(|d| serde_json::from_str::<serde_json::Value>(&d).ok())
-                .and_then(|d| d["updated_unix"].as_f64())
-                .map(|t| (now - t).max(0.0));
-            view.rigs.push(live::LiveRig {
-                rig,
-                frames: c.frames,
-                warned: c.warned,
-                rejected: c.rejected,
-                last_recorded_local: c.last_recorded_unix.and_then(clock_of),
-                heard_s_ago: heard,
-            });
-        }
+        view.rigs = rigs(store, &night, now, tz)?;
     }
+    view.groups = groups(&frames, config.actions.stack_warned);
+    view.plans = crate::targets::plan_lines(store, config, &night, "tonight's")?;
+    view.frames = frames
+        .iter()
+        .rev()
+        .map(|f| live_frame(f, &viewer, tz))
+        .collect();
+    view.alerts = store
+        .night_alerts(&night)?
+        .into_iter()
+        .map(|(t, kind, message)| live::LiveAlert {
+            time_unix: t,
+            time_local: clock_of(t),
+            kind,
+            message: viewer.text(&message),
+        })
+        .collect();
 
-    // Per group, in the summary's order (target, then filter).
+    // The night's analysis, while someone looks and when frames came since.
+    let stamp = (counts.frames, counts.last_recorded_unix);
+    let due =
+        analysis.stamp != Some(stamp) && analysis.at.is_none_or(|t| t.elapsed() >= ANALYSIS_EVERY);
+    if looked_at && due && frames.len() >= 3 {
+        analyse(store, config, &night, now, reading, analysis)?;
+        analysis.stamp = Some(stamp);
+        analysis.at = Some(Instant::now());
+    }
+    view.analysed_unix = analysis.analysed_unix;
+    view.anomalies = analysis.anomalies.clone();
+    view.hot_pixels = analysis.hot_pixels;
+    view.cosmic_rays = analysis.cosmic_rays;
+    view.plots = analysis.plots.clone();
+    let mut images = analysis.images.clone();
+
+    // The latest measured frame and its picture.
+    if let Some(f) = frames.iter().rev().find(|f| f.record.metrics.is_some()) {
+        if looked_at {
+            pictures.make(f, reading);
+        }
+        let preview_url = pictures.serve(f.id, &mut images);
+        view.latest = Some(latest_frame(store, f, preview_url, &analysis.marks, tz)?);
+    }
+    view.sky = config
+        .site_position()
+        .map(|(lat, lon, _)| sky_now(now, lat, lon, tz));
+    view.health = health(store, config, &counts, now)?;
+    view.frame_time_behind_s = frame_time_behind(&frames, &counts);
+    Ok((view, images))
+}
+
+/// Every rig with frames tonight, with when its daemon last said it was alive (its
+/// heartbeat).
+fn rigs(
+    store: &Store,
+    night: &str,
+    now: f64,
+    tz: chrono_tz::Tz,
+) -> Result<Vec<live::LiveRig>, crate::store::StoreError> {
+    let mut rigs = Vec::new();
+    for (rig, c) in store.night_counts_by_rig(night)? {
+        let heard = store
+            .rig_meta(&rig, "daemon")?
+            .and_then(|d| serde_json::from_str::<serde_json::Value>(&d).ok())
+            .and_then(|d| d["updated_unix"].as_f64())
+            .map(|t| (now - t).max(0.0));
+        rigs.push(live::LiveRig {
+            rig,
+            frames: c.frames,
+            warned: c.warned,
+            rejected: c.rejected,
+            last_recorded_local: c
+                .last_recorded_unix
+                .and_then(|t| report::local_clock(t, tz)),
+            heard_s_ago: heard,
+        });
+    }
+    Ok(rigs)
+}
+
+/// Counts and usable time per group, in the summary's order (target, then filter).
+fn groups(frames: &[crate::store::LiveFrame], stack_warned: bool) -> Vec<live::LiveGroup> {
     let mut groups: Vec<live::LiveGroup> = Vec::new();
-    for f in &frames {
+    for f in frames {
         let r = &f.record;
         if r.status == crate::record::FrameStatus::Skipped {
             continue;
@@ -334,7 +446,7 @@ fn build(
             }
             Some(Verdict::Warn) => {
                 g.warn += 1;
-                if config.actions.stack_warned {
+                if stack_warned {
                     g.usable_s += exposure;
                 }
             }
@@ -343,142 +455,112 @@ fn build(
         }
     }
     groups.sort_by(|a, b| (&a.target, &a.filter).cmp(&(&b.target, &b.filter)));
-    view.groups = groups;
-    view.plans = crate::targets::plan_lines(store, config, &night, "tonight's")?;
+    groups
+}
 
-    view.frames = frames
-        .iter()
-        .rev()
-        .map(|f| {
-            let r = &f.record;
-            let m = r.metrics.as_ref();
-            live::LiveFrame {
-                id: f.id,
-                file: report::file_name(&r.identity.path),
-                time_unix: r.time_unix,
-                time_local: r.time_unix.and_then(clock_of),
-                target: r.target.clone(),
-                filter: r.filter.clone(),
-                verdict: f.verdict.map(|v| v.as_str().to_string()),
-                status: r.status.as_str().to_string(),
-                kind: crate::night::calibration::kind_of(r)
-                    .unwrap_or("light")
-                    .to_string(),
-                error: r
-                    .error
-                    .as_deref()
-                    .map(|e| viewer.frame_text(&r.identity.path, e)),
-                explanations: f
-                    .explanations
-                    .iter()
-                    .map(|x| viewer.frame_text(&r.identity.path, x))
-                    .collect(),
-                exposure_s: r.header.as_ref().and_then(|h| h.exposure_s),
-                star_count: m.map(|m| m.star_count),
-                fwhm_px: m.and_then(|m| m.fwhm_px),
-                fwhm_arcsec: m.and_then(|m| m.fwhm_arcsec),
-                eccentricity: m.and_then(|m| m.eccentricity),
-                background_adu: m.map(|m| m.background_adu).filter(|v| v.is_finite()),
-                noise_adu: m.map(|m| m.noise_adu).filter(|v| v.is_finite()),
-                snr_median: m.and_then(|m| m.snr_median),
-            }
-        })
-        .collect();
-
-    view.alerts = store
-        .night_alerts(&night)?
-        .into_iter()
-        .map(|(t, kind, message)| live::LiveAlert {
-            time_unix: t,
-            time_local: clock_of(t),
-            kind,
-            message: viewer.text(&message),
-        })
-        .collect();
-
-    // The night's analysis, while someone looks and when frames came since.
-    let stamp = (counts.frames, counts.last_recorded_unix);
-    let due =
-        analysis.stamp != Some(stamp) && analysis.at.is_none_or(|t| t.elapsed() >= ANALYSIS_EVERY);
-    if looked_at && due && frames.len() >= 3 {
-        analyse(store, config, &night, now, reader, limits, analysis)?;
-        analysis.stamp = Some(stamp);
-        analysis.at = Some(Instant::now());
+/// One frame as a viewer sees it.
+fn live_frame(f: &crate::store::LiveFrame, viewer: &Viewer, tz: chrono_tz::Tz) -> live::LiveFrame {
+    let r = &f.record;
+    let m = r.metrics.as_ref();
+    live::LiveFrame {
+        id: f.id,
+        file: report::file_name(&r.identity.path),
+        time_unix: r.time_unix,
+        time_local: r.time_unix.and_then(|t| report::local_clock(t, tz)),
+        target: r.target.clone(),
+        filter: r.filter.clone(),
+        verdict: f.verdict.map(|v| v.as_str().to_string()),
+        status: r.status.as_str().to_string(),
+        kind: crate::night::calibration::kind_of(r)
+            .unwrap_or("light")
+            .to_string(),
+        error: r
+            .error
+            .as_deref()
+            .map(|e| viewer.frame_text(&r.identity.path, e)),
+        explanations: f
+            .explanations
+            .iter()
+            .map(|x| viewer.frame_text(&r.identity.path, x))
+            .collect(),
+        exposure_s: r.header.as_ref().and_then(|h| h.exposure_s),
+        star_count: m.map(|m| m.star_count),
+        fwhm_px: m.and_then(|m| m.fwhm_px),
+        fwhm_arcsec: m.and_then(|m| m.fwhm_arcsec),
+        eccentricity: m.and_then(|m| m.eccentricity),
+        background_adu: m.map(|m| m.background_adu).filter(|v| v.is_finite()),
+        noise_adu: m.map(|m| m.noise_adu).filter(|v| v.is_finite()),
+        snr_median: m.and_then(|m| m.snr_median),
     }
-    view.analysed_unix = analysis.analysed_unix;
-    view.anomalies = analysis.anomalies.clone();
-    view.hot_pixels = analysis.hot_pixels;
-    view.cosmic_rays = analysis.cosmic_rays;
-    view.plots = analysis.plots.clone();
-    let mut images = analysis.images.clone();
+}
 
-    // The latest measured frame and its picture, made once per frame.
-    if let Some(f) = frames.iter().rev().find(|f| f.record.metrics.is_some()) {
-        let m = f.record.metrics.as_ref().expect("found with metrics");
-        if looked_at && preview.as_ref().map(|p| p.0) != Some(f.id) {
-            let made = reader
-                .preview(Path::new(&f.record.identity.path), PREVIEW_SIDE, limits)
-                .map(|p| (f.id, Bytes::from(p.png), m.width, m.height));
-            if made.is_some() {
-                *previous = std::mem::replace(preview, made);
-            }
-        }
-        if let Some((id, png, _, _)) = previous.as_ref() {
-            images.insert(format!("preview/{id}.png"), png.clone());
-        }
-        let mut stars = store.frame_star_records(f.id)?;
-        stars.sort_by(|a, b| b.flux.total_cmp(&a.flux));
-        let latest_preview = preview.as_ref().filter(|p| p.0 == f.id);
-        if let Some((id, png, _, _)) = latest_preview {
-            images.insert(format!("preview/{id}.png"), png.clone());
-        }
-        view.latest = Some(live::LatestFrame {
-            id: f.id,
-            file: report::file_name(&f.record.identity.path),
-            time_local: f.record.time_unix.and_then(clock_of),
-            width: m.width,
-            height: m.height,
-            preview_url: latest_preview.map(|p| format!("preview/{}.png", p.0)),
-            stars: stars
-                .iter()
-                .filter(|s| s.x.is_finite() && s.y.is_finite())
-                .take(PREVIEW_STARS)
-                .map(|s| {
-                    let r = if s.fwhm_px.is_finite() {
-                        (2.0 * s.fwhm_px).clamp(4.0, 40.0)
-                    } else {
-                        6.0
-                    };
-                    [s.x, s.y, r]
-                })
-                .collect(),
-            marks: analysis
-                .marks
-                .iter()
-                .filter(|(p, ..)| *p == f.record.identity.path)
-                .map(|(_, x, y, k)| (*x, *y, k.clone()))
-                .collect(),
-        });
+/// The latest measured frame `f` with its brightest stars (circles of twice their
+/// FWHM) and the marks of the anomalies on it.
+fn latest_frame(
+    store: &Store,
+    f: &crate::store::LiveFrame,
+    preview_url: Option<String>,
+    marks: &[(String, f64, f64, String)],
+    tz: chrono_tz::Tz,
+) -> Result<live::LatestFrame, crate::store::StoreError> {
+    let m = f.record.metrics.as_ref().expect("found with metrics");
+    let mut stars = store.frame_star_records(f.id)?;
+    stars.sort_by(|a, b| b.flux.total_cmp(&a.flux));
+    Ok(live::LatestFrame {
+        id: f.id,
+        file: report::file_name(&f.record.identity.path),
+        time_local: f.record.time_unix.and_then(|t| report::local_clock(t, tz)),
+        width: m.width,
+        height: m.height,
+        preview_url,
+        stars: stars
+            .iter()
+            .filter(|s| s.x.is_finite() && s.y.is_finite())
+            .take(PREVIEW_STARS)
+            .map(|s| {
+                let r = if s.fwhm_px.is_finite() {
+                    (2.0 * s.fwhm_px).clamp(4.0, 40.0)
+                } else {
+                    6.0
+                };
+                [s.x, s.y, r]
+            })
+            .collect(),
+        marks: marks
+            .iter()
+            .filter(|(p, ..)| *p == f.record.identity.path)
+            .map(|(_, x, y, k)| (*x, *y, k.clone()))
+            .collect(),
+    })
+}
+
+/// The Sun, the Moon and the next astronomical dawn at the site, now.
+fn sky_now(now: f64, lat: f64, lon: f64, tz: chrono_tz::Tz) -> live::SkyNow {
+    let jd = crate::sky::julian_date(now);
+    let sun = crate::sky::sun_altitude(jd, lat, lon);
+    let dawn = crate::sky::night_around(now, -18.0, lat, lon).1;
+    live::SkyNow {
+        sun_alt_deg: sun,
+        moon_alt_deg: crate::sky::moon_altitude(jd, lat, lon),
+        moon_illumination: crate::sky::moon_illumination(jd),
+        twilight: serde_json::to_value(crate::sky::twilight(sun))
+            .ok()
+            .and_then(|v| v.as_str().map(str::to_string))
+            .unwrap_or_default(),
+        astronomical_dawn_unix: dawn,
+        astronomical_dawn_local: dawn.and_then(|d| report::local_clock(d, tz)),
+        minutes_to_astronomical_dawn: dawn.map(|d| (d - now) / 60.0),
     }
+}
 
-    if let Some((lat, lon, _)) = config.site_position() {
-        let jd = crate::sky::julian_date(now);
-        let sun = crate::sky::sun_altitude(jd, lat, lon);
-        let dawn = crate::sky::night_around(now, -18.0, lat, lon).1;
-        view.sky = Some(live::SkyNow {
-            sun_alt_deg: sun,
-            moon_alt_deg: crate::sky::moon_altitude(jd, lat, lon),
-            moon_illumination: crate::sky::moon_illumination(jd),
-            twilight: serde_json::to_value(crate::sky::twilight(sun))
-                .ok()
-                .and_then(|v| v.as_str().map(str::to_string))
-                .unwrap_or_default(),
-            astronomical_dawn_unix: dawn,
-            astronomical_dawn_local: dawn.and_then(clock_of),
-            minutes_to_astronomical_dawn: dawn.map(|d| (d - now) / 60.0),
-        });
-    }
-
+/// The daemon's health as a viewer may know it: whether it runs, what waits, low disk
+/// and a failing outbox, without paths or numbers of the PC.
+fn health(
+    store: &Store,
+    config: &Config,
+    counts: &crate::store::NightCounts,
+    now: f64,
+) -> Result<live::Health, crate::store::StoreError> {
     let daemon: Option<serde_json::Value> = store
         .meta("daemon")?
         .and_then(|s| serde_json::from_str(&s).ok());
@@ -489,14 +571,16 @@ fn build(
         .map(|t| (now - t).max(0.0));
     let (outbox_waiting, outbox_last_error) = store.outbox_state()?;
     let min_free_gb = config.alerts.min_free_gb;
-    view.health = live::Health {
+    Ok(live::Health {
         daemon_running: heard.is_some_and(|s| s <= DAEMON_HEARD_WITHIN_S),
         daemon_heard_s_ago: heard,
         waiting: field("waiting"),
         being_read: field("in_flight"),
         not_stored: field("not_stored"),
         last_frame_unix: counts.last_recorded_unix,
-        last_frame_local: counts.last_recorded_unix.and_then(clock_of),
+        last_frame_local: counts
+            .last_recorded_unix
+            .and_then(|t| report::local_clock(t, config.timezone())),
         seconds_since_last_frame: counts.last_recorded_unix.map(|t| (now - t).max(0.0)),
         low_disk: super::checks::free_space(&super::checks::written_folders(config))
             .iter()
@@ -504,9 +588,15 @@ fn build(
         min_free_gb,
         outbox_waiting,
         outbox_failing: outbox_last_error.is_some(),
-    };
-    // The latest frame's time against this PC's when the last one was recorded: far
-    // apart when frames are replayed.
+    })
+}
+
+/// The latest frame's end of exposure against this PC's clock when the last frame was
+/// recorded: far apart when frames are replayed.
+fn frame_time_behind(
+    frames: &[crate::store::LiveFrame],
+    counts: &crate::store::NightCounts,
+) -> Option<f64> {
     let latest_end = frames
         .iter()
         .filter_map(|f| {
@@ -516,11 +606,10 @@ fn build(
         })
         .filter(|t| t.is_finite())
         .max_by(f64::total_cmp);
-    view.frame_time_behind_s = counts
+    counts
         .last_recorded_unix
         .zip(latest_end)
-        .map(|(recorded, taken)| recorded - taken);
-    Ok((view, images))
+        .map(|(recorded, taken)| recorded - taken)
 }
 
 /// The night so far through the night model (as the anomaly alerts see it): anomalies
@@ -530,8 +619,7 @@ fn analyse(
     config: &Config,
     night: &str,
     now: f64,
-    reader: &crate::reader::Reader,
-    limits: crate::frame::DecodeLimits,
+    reading: &FrameReading,
     a: &mut Analysis,
 ) -> Result<(), crate::store::StoreError> {
     let viewer = Viewer::from_config(config);
@@ -572,7 +660,11 @@ fn analyse(
         if let (true, Some(d)) = (k < PAGE_CUTOUTS, first) {
             let key = format!("{}@{:.0},{:.0}", d.path, d.x, d.y);
             if !a.cutouts.contains_key(&key) {
-                if let Some(png) = reader.cutout(Path::new(&d.path), d.x, d.y, 16, limits) {
+                if let Some(png) =
+                    reading
+                        .reader
+                        .cutout(Path::new(&d.path), d.x, d.y, 16, reading.limits)
+                {
                     a.cutouts.insert(key.clone(), Bytes::from(png));
                 }
             }

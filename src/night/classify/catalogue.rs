@@ -9,6 +9,7 @@ use super::{anomaly, detections_of, Findings, Night};
 use crate::measure::stats::median_f64;
 use crate::night::detail::{Detail, NewSourceDetail};
 use crate::night::tracks::{TrackPoint, Tracks};
+use crate::night::FrameInput;
 use crate::night::{Anomaly, AnomalyKind, CatalogSource, Detection, EarlierNight};
 
 /// The catalogue and the reference's limit and footprint, and the new sources.
@@ -17,54 +18,53 @@ pub(super) fn catalogue(
     ensemble: &Ensemble,
     earlier: &[EarlierNight],
 ) -> (Findings, Vec<Anomaly>) {
-    let Night {
-        frames,
-        order,
-        transforms,
-        sources,
-        persistent,
-        limits,
-        ..
-    } = night;
-    let (reference, fwhm, radius) = (night.reference, night.fwhm, night.radius);
-    let zp = &ensemble.zp;
-    let mut anomalies = Vec::new();
+    let reference = night.reference;
     // Tonight's catalogue (sky positions need a WCS) and new sources against earlier nights.
-    let ref_wcs = frames[reference].wcs.as_ref();
-    let ref_limit = limits[reference].map(|l| -2.5 * l.log10());
+    let catalog = persistent_sources(night, &ensemble.zp);
+    let anomalies = new_sources(night, &catalog, earlier);
     let mut result = Findings {
-        limit_mag: ref_limit,
+        limit_mag: night.limits[reference].map(|l| -2.5 * l.log10()),
+        footprint: footprint(night),
+        catalog: catalog.into_iter().map(|(_, c)| c).collect(),
         ..Default::default()
     };
-    // Median sky position of a source's detections (frame, x, y), from the WCS of each
-    // frame; RA unwrapped around the first detection.
-    let sky_median = |pts: &[(usize, f64, f64)]| -> Option<(f64, f64)> {
-        let sky: Vec<(f64, f64)> = pts
-            .iter()
-            .filter_map(|&(i, x, y)| frames[i].wcs.as_ref().map(|w| w.pixel_to_sky(x, y)))
-            .collect();
-        let &(ra0, _) = sky.first()?;
-        let ra = median_f64(
-            &sky.iter()
-                .map(|p| ra0 + ((p.0 - ra0 + 540.0).rem_euclid(360.0) - 180.0))
-                .collect::<Vec<_>>(),
-        )?;
-        Some((
-            ra.rem_euclid(360.0),
-            median_f64(&sky.iter().map(|p| p.1).collect::<Vec<_>>())?,
-        ))
-    };
-    // Every persistent source with a sky position (from the WCS of each frame it was
-    // seen in) and its magnitude on the reference frame's scale.
-    let catalog: Vec<(usize, CatalogSource)> = (0..sources.len())
-        .filter(|&s| persistent[s])
+    result.catalog.extend(seen_not_measured(night));
+    (result, anomalies)
+}
+
+/// Median sky position of a source's detections (frame, x, y), from the WCS of each
+/// frame; RA unwrapped around the first detection.
+fn sky_median(frames: &[FrameInput], pts: &[(usize, f64, f64)]) -> Option<(f64, f64)> {
+    let sky: Vec<(f64, f64)> = pts
+        .iter()
+        .filter_map(|&(i, x, y)| frames[i].wcs.as_ref().map(|w| w.pixel_to_sky(x, y)))
+        .collect();
+    let &(ra0, _) = sky.first()?;
+    let ra = median_f64(
+        &sky.iter()
+            .map(|p| ra0 + ((p.0 - ra0 + 540.0).rem_euclid(360.0) - 180.0))
+            .collect::<Vec<_>>(),
+    )?;
+    Some((
+        ra.rem_euclid(360.0),
+        median_f64(&sky.iter().map(|p| p.1).collect::<Vec<_>>())?,
+    ))
+}
+
+/// Every persistent source (with its index) with a sky position (from the WCS of each
+/// frame it was seen in) and its magnitude on the reference frame's scale (`zp`: each
+/// frame's zero-point offset).
+fn persistent_sources(night: &Night, zp: &[f64]) -> Vec<(usize, CatalogSource)> {
+    let (sources, reference) = (&night.sources, night.reference);
+    (0..sources.len())
+        .filter(|&s| night.persistent[s])
         .filter_map(|s| {
             let pts: Vec<(usize, f64, f64)> = sources[s]
                 .points
                 .iter()
                 .map(|p| (p.frame, p.x, p.y))
                 .collect();
-            let (ra, dec) = sky_median(&pts)?;
+            let (ra, dec) = sky_median(night.frames, &pts)?;
             let m = median_f64(
                 &sources[s]
                     .points
@@ -81,27 +81,46 @@ pub(super) fn catalogue(
                 },
             ))
         })
-        .collect();
-    if let Some(w) = ref_wcs {
-        let f = &frames[reference];
-        let (wf, hf) = (f.width as f64, f.height as f64);
-        result.footprint = [
-            (0.5, 0.5),
-            (wf + 0.5, 0.5),
-            (wf + 0.5, hf + 0.5),
-            (0.5, hf + 0.5),
-        ]
-        .iter()
-        .map(|&(x, y)| w.pixel_to_sky(x, y))
-        .collect();
-    }
-    let scale = ref_wcs.map_or(1.0, |w| w.scale_arcsec());
+        .collect()
+}
+
+/// The reference frame's corners on the sky, when it has a WCS: what tonight could see.
+fn footprint(night: &Night) -> Vec<(f64, f64)> {
+    let f = &night.frames[night.reference];
+    let Some(w) = f.wcs.as_ref() else {
+        return Vec::new();
+    };
+    let (wf, hf) = (f.width as f64, f.height as f64);
+    [
+        (0.5, 0.5),
+        (wf + 0.5, 0.5),
+        (wf + 0.5, hf + 0.5),
+        (0.5, hf + 0.5),
+    ]
+    .iter()
+    .map(|&(x, y)| w.pixel_to_sky(x, y))
+    .collect()
+}
+
+/// Tonight's persistent sources that an earlier night, deep enough and looking there,
+/// did not see.
+fn new_sources(
+    night: &Night,
+    catalog: &[(usize, CatalogSource)],
+    earlier: &[EarlierNight],
+) -> Vec<Anomaly> {
+    let (frames, sources, fwhm) = (night.frames, &night.sources, night.fwhm);
+    let scale = frames[night.reference]
+        .wcs
+        .as_ref()
+        .map_or(1.0, |w| w.scale_arcsec());
     let match_arcsec = (1.5 * fwhm * scale).max(2.0);
     let sep = |a: &CatalogSource, b: &CatalogSource| {
         let dra = ((a.ra_deg - b.ra_deg + 540.0).rem_euclid(360.0) - 180.0)
             * a.dec_deg.to_radians().cos();
         dra.hypot(a.dec_deg - b.dec_deg) * 3600.0
     };
+    let mut anomalies = Vec::new();
     for e in earlier {
         // The zero-point offset between the nights from matched sources.
         let offsets: Vec<f64> = catalog
@@ -117,7 +136,7 @@ pub(super) fn catalogue(
             continue;
         }
         let offset = median_f64(&offsets).unwrap_or(0.0);
-        for (s, c) in &catalog {
+        for (s, c) in catalog {
             if e.sources.iter().any(|o| sep(c, o) < match_arcsec) {
                 continue;
             }
@@ -156,24 +175,22 @@ pub(super) fn catalogue(
             }
         }
     }
-    result.catalog = catalog.into_iter().map(|(_, c)| c).collect();
-    // Also keep what was seen but not measured as a persistent star: sources found in
-    // two or more frames, and extended objects seen twice or more. A later night must
-    // not call these new.
-    for (s, p) in sources.iter().zip(persistent.iter()) {
-        if !*p && s.points.len() >= 2 {
-            let pts: Vec<(usize, f64, f64)> =
-                s.points.iter().map(|p| (p.frame, p.x, p.y)).collect();
-            if let Some((ra, dec)) = sky_median(&pts) {
-                result.catalog.push(CatalogSource {
-                    ra_deg: ra,
-                    dec_deg: dec,
-                    mag: None,
-                });
-            }
-        }
-    }
-    let mut extended = Tracks::new(radius.max(2.0));
+    anomalies
+}
+
+/// What was seen but not measured as a persistent star, without a magnitude: sources
+/// found in two or more frames, and extended objects seen twice or more. A later night
+/// must not call these new.
+fn seen_not_measured(night: &Night) -> Vec<CatalogSource> {
+    let Night {
+        frames,
+        order,
+        transforms,
+        sources,
+        persistent,
+        ..
+    } = night;
+    let mut extended = Tracks::new(night.radius.max(2.0));
     for &i in order.iter() {
         let Some(t) = transforms[i] else { continue };
         let pts: Vec<TrackPoint> = frames[i]
@@ -198,15 +215,23 @@ pub(super) fn catalogue(
             .collect();
         extended.add_frame(&pts);
     }
-    for s in extended.sources.iter().filter(|s| s.points.len() >= 2) {
-        let pts: Vec<(usize, f64, f64)> = s.points.iter().map(|p| (p.frame, p.x, p.y)).collect();
-        if let Some((ra, dec)) = sky_median(&pts) {
-            result.catalog.push(CatalogSource {
+    let unmeasured = sources
+        .iter()
+        .zip(persistent.iter())
+        .filter(|(s, p)| !**p && s.points.len() >= 2)
+        .map(|(s, _)| s);
+    let extended = extended.sources.iter().filter(|s| s.points.len() >= 2);
+    unmeasured
+        .chain(extended)
+        .filter_map(|s| {
+            let pts: Vec<(usize, f64, f64)> =
+                s.points.iter().map(|p| (p.frame, p.x, p.y)).collect();
+            let (ra, dec) = sky_median(frames, &pts)?;
+            Some(CatalogSource {
                 ra_deg: ra,
                 dec_deg: dec,
                 mag: None,
-            });
-        }
-    }
-    (result, anomalies)
+            })
+        })
+        .collect()
 }

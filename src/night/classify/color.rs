@@ -2,8 +2,8 @@
 //! (−2.5 log10 R/G and B/G) lie more than 5 robust σ from the field's.
 
 use super::ensemble::{mag, Ensemble};
-use super::{anomaly, detections_of, robust_sigma, Night};
-use crate::measure::stats::median_f64;
+use super::{anomaly, detections_of, Night};
+use crate::measure::stats::{median_f64, robust_sigma_f64};
 use crate::night::detail::{ColorDetail, Detail};
 use crate::night::{Anomaly, AnomalyKind, Detection};
 
@@ -37,8 +37,8 @@ pub(super) fn color_outliers(night: &Night, ensemble: &Ensemble) -> Vec<Anomaly>
             median_f64(&c2).unwrap_or(0.0),
         );
         let (s1, s2) = (
-            robust_sigma(&c1).unwrap_or(1.0).max(0.02),
-            robust_sigma(&c2).unwrap_or(1.0).max(0.02),
+            robust_sigma_f64(&c1).unwrap_or(1.0).max(0.02),
+            robust_sigma_f64(&c2).unwrap_or(1.0).max(0.02),
         );
         for &(s, a, b) in &colors {
             let (z1, z2) = ((a - m1) / s1, (b - m2) / s2);

@@ -16,7 +16,7 @@ use super::register::Affine;
 use super::register::Placement;
 use super::tracks::{covers, Source, TrackPoint, Tracks};
 use super::{Anomaly, AnomalyKind, CatalogSource, Detail, Detection, EarlierNight, FrameInput};
-use crate::measure::stats::{median_f64, MAD_TO_SIGMA};
+use crate::measure::stats::median_f64;
 
 /// What a night holds besides its verdicts.
 #[derive(Debug, Clone, Default)]
@@ -66,12 +66,6 @@ pub(super) fn limiting_flux(f: &FrameInput) -> Option<f64> {
         .map(|s| s.flux / s.snr)
         .collect();
     median_f64(&ratios).map(|r| 7.0 * r)
-}
-
-pub(super) fn robust_sigma(v: &[f64]) -> Option<f64> {
-    let m = median_f64(v)?;
-    let dev: Vec<f64> = v.iter().map(|x| (x - m).abs()).collect();
-    median_f64(&dev).map(|d| d * MAD_TO_SIGMA)
 }
 
 /// Upper-tail probability of χ² with k degrees of freedom, by the cube-root normal

@@ -3,8 +3,8 @@
 //! false-alarm probability (counting every star tested), robust to a few bad frames.
 
 use super::ensemble::{mag, mag_err, Ensemble};
-use super::{anomaly, chi2_tail, detections_of, robust_sigma, Night};
-use crate::measure::stats::median_f64;
+use super::{anomaly, chi2_tail, detections_of, Night};
+use crate::measure::stats::{median_f64, robust_sigma_f64};
 use crate::night::detail::{Detail, LightCurvePoint, VariableDetail};
 use crate::night::tracks::TrackPoint;
 use crate::night::{Anomaly, AnomalyKind, Detection};
@@ -35,7 +35,7 @@ pub(super) fn variables(night: &Night, ensemble: &Ensemble) -> Vec<Anomaly> {
                         .map(|p| (mag(p) - zp[i] - m, mag_err(p)))
                 })
                 .unzip();
-            match (robust_sigma(&res), median_f64(&phot)) {
+            match (robust_sigma_f64(&res), median_f64(&phot)) {
                 (Some(r), Some(ph)) if res.len() >= 5 => (r * r - ph * ph).max(0.0),
                 _ => 0.01,
             }
