@@ -558,6 +558,9 @@ fn fit<const NP: usize>(
     Some(fit)
 }
 
+/// The covariance of the shape form (qa, qb, qc).
+type ShapeCovariance = [[f64; 3]; 3];
+
 /// The fit's covariance of the shape form (qa, qb, qc) and the position errors (x, y),
 /// by the heteroscedasticity-consistent "sandwich" estimator of White (1980,
 /// Econometrica 48, 817): (JᵀJ)⁻¹ (Σ rᵢ² jᵢ jᵢᵀ) (JᵀJ)⁻¹. Pixel noise grows with the
@@ -570,7 +573,7 @@ fn covariance<const NP: usize>(
     averaged: bool,
     core2: f64,
     jtj: &[[f64; NP]; NP],
-) -> Option<([[f64; 3]; 3], (f64, f64))> {
+) -> Option<(ShapeCovariance, (f64, f64))> {
     let inv = Cholesky::new(jtj)?.inverse();
     let mut meat = [[0.0; NP]; NP];
     let mut grad = [0.0; NP];
