@@ -9,7 +9,7 @@ use std::path::{Path, PathBuf};
 
 /// Sync a folder, so a rename or a new name in it survives a power cut.
 fn sync_dir(dir: &Path) -> std::io::Result<()> {
-    std::fs::File::open(dir)?.sync_all()
+    crate::os::sync_folder(dir)
 }
 
 /// Candidate names in `folder` for a file called `name`: `name`, `name.1`, `name.2`, ...

@@ -334,7 +334,7 @@ fn prepare_folder(out: &Path) -> Result<PathBuf, DemoError> {
         std::fs::create_dir_all(out.join(sub)).map_err(io(out))?;
     }
     std::fs::write(out.join(MARKER), b"made by subwatch demo\n").map_err(io(out))?;
-    std::fs::canonicalize(out).map_err(io(out))
+    crate::os::canonical(out).map_err(io(out))
 }
 
 /// The previous night straight into the store, as the daemon would have left it: each

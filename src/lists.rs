@@ -92,7 +92,7 @@ pub fn write_list(file: &Path, paths: &[String]) -> Result<(), String> {
         }
         f.sync_all()?;
         std::fs::rename(&tmp, file)?;
-        std::fs::File::open(dir)?.sync_all()
+        crate::os::sync_folder(dir)
     };
     write().map_err(|e| format!("cannot write {}: {e}", file.display()))
 }

@@ -537,7 +537,7 @@ fn gzip_bombs_are_stopped_at_the_size_the_header_promises() {
 #[test]
 fn a_live_daemon_survives_the_corpus_and_records_every_good_frame() {
     let dir = tempfile::tempdir().unwrap();
-    let root = dir.path().canonicalize().unwrap();
+    let root = subwatch::os::canonical(dir.path()).unwrap();
     let capture = root.join("capture");
     let hostile = capture.join("hostile");
     std::fs::create_dir_all(&hostile).unwrap();

@@ -388,7 +388,7 @@ fn a_second_night_shows_its_new_source() {
     let config = store.join("subwatch.toml");
     std::fs::write(
         &config,
-        format!("[watch]\nfolders = [\"{}\"]\n[store]\npath = \"subwatch.db\"\n[site]\ntimezone = \"Europe/Madrid\"\n", store.display()),
+        format!("[watch]\nfolders = ['{}']\n[store]\npath = \"subwatch.db\"\n[site]\ntimezone = \"Europe/Madrid\"\n", store.display()),
     )
     .unwrap();
     let mut first = NightPlan::full(7).quiet();
@@ -422,13 +422,13 @@ fn a_second_night_shows_its_new_source() {
 #[test]
 fn the_daemon_store_gives_the_same_night_as_the_batch_command() {
     let dir = tempfile::tempdir().unwrap();
-    let root = dir.path().canonicalize().unwrap();
+    let root = subwatch::os::canonical(dir.path()).unwrap();
     let capture = root.join("capture");
     let config = root.join("subwatch.toml");
     std::fs::write(
         &config,
         format!(
-            "[watch]\nfolders = [\"{}\"]\nsettle_seconds = 0.2\n[store]\npath = \"{}\"\n[site]\ntimezone = \"Europe/Madrid\"\n",
+            "[watch]\nfolders = ['{}']\nsettle_seconds = 0.2\n[store]\npath = '{}'\n[site]\ntimezone = \"Europe/Madrid\"\n",
             capture.display(),
             root.join("s.db").display()
         ),
@@ -521,7 +521,7 @@ fn a_star_bright_in_one_band_only_is_found_between_filters() {
     let config = store.join("subwatch.toml");
     std::fs::write(
         &config,
-        format!("[watch]\nfolders = [\"{}\"]\n[store]\npath = \"subwatch.db\"\n[site]\ntimezone = \"Europe/Madrid\"\n", store.display()),
+        format!("[watch]\nfolders = ['{}']\n[store]\npath = \"subwatch.db\"\n[site]\ntimezone = \"Europe/Madrid\"\n", store.display()),
     )
     .unwrap();
     let base = NightPlan {

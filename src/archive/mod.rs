@@ -217,7 +217,7 @@ pub fn share(
     root: &Path,
     shard: Shard,
 ) -> Result<BTreeMap<String, Vec<PathBuf>>, ArchiveError> {
-    let root = std::fs::canonicalize(root).map_err(|e| ArchiveError::Root {
+    let root = crate::os::canonical(root).map_err(|e| ArchiveError::Root {
         path: root.to_path_buf(),
         reason: crate::text::io_reason(&e),
     })?;

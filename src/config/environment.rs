@@ -143,7 +143,10 @@ fn unencrypted_store(url: &str) -> Option<String> {
         .iter()
         .filter_map(|h| match h {
             postgres::config::Host::Tcp(name) => {
-                let local = name.eq_ignore_ascii_case("localhost")
+                // A socket's folder (a name starting with '/') is a Unix socket, which
+                // the client has only on Unix; it never leaves the machine either way.
+                let local = name.starts_with('/')
+                    || name.eq_ignore_ascii_case("localhost")
                     || name
                         .trim_matches(['[', ']'])
                         .parse::<std::net::IpAddr>()
@@ -230,7 +233,8 @@ mod tests {
         let file = dir.path().join("a-file");
         std::fs::write(&file, "x").unwrap();
         let text = format!(
-            "[watch]\nfolders = [\"{0}/gone\", \"{1}\"]\n[mail]\nto = [\"o@example.org\"]\nca_file = \"{0}/ca.pem\"\n",
+            // Literal strings: a Windows path's backslashes are not escapes.
+            "[watch]\nfolders = ['{0}/gone', '{1}']\n[mail]\nto = [\"o@example.org\"]\nca_file = '{0}/ca.pem'\n",
             dir.path().display(),
             file.display()
         );
@@ -244,7 +248,10 @@ mod tests {
             errors,
             [
                 format!("line 2: watch.folders: {d}/gone does not exist"),
-                format!("line 2: watch.folders: {d}/a-file is a file, not a folder"),
+                format!(
+                    "line 2: watch.folders: {} is a file, not a folder",
+                    file.display()
+                ),
                 format!("line 5: mail.ca_file: {d}/ca.pem: {missing}"),
             ]
         );
@@ -252,7 +259,8 @@ mod tests {
         assert_eq!(
             warnings,
             [format!(
-                "line 4: mail.to: no [mail] smtp_host: the morning summary and alerts are not sent but written as .eml files into {d}/reports; set smtp_host to send them"
+                "line 4: mail.to: no [mail] smtp_host: the morning summary and alerts are not sent but written as .eml files into {}; set smtp_host to send them",
+                dir.path().join("reports").display()
             )]
         );
     }

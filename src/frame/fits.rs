@@ -165,10 +165,12 @@ fn open(path: &Path, limits: &DecodeLimits) -> Result<Source, FrameError> {
     if meta.len() == 0 {
         return Err(fail("empty file (0 bytes)"));
     }
-    let file = std::fs::File::open(path).map_err(io)?;
+    let mut file = std::fs::File::open(path).map_err(io)?;
     let mut head = [0u8; 6];
     let got = crate::os::read_at(&file, &mut head, 0).map_err(io)?;
     if head[..got].starts_with(&[0x1f, 0x8b]) {
+        // The decoder reads in order from the start; a positioned read may have moved it.
+        std::io::Seek::seek(&mut file, std::io::SeekFrom::Start(0)).map_err(io)?;
         let mut inflated = Inflated {
             decoder: flate2::read::MultiGzDecoder::new(std::io::BufReader::new(file)),
             bytes: Vec::new(),

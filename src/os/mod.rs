@@ -67,6 +67,18 @@ pub fn rename_no_replace(from: &Path, to: &Path) -> io::Result<bool> {
     imp::rename_no_replace(from, to)
 }
 
+/// The absolute path of an existing file or folder, links resolved, as a user writes it:
+/// on Windows without the `\\?\` prefix the system's own form carries (`C:\frames`,
+/// `\\server\share\frames`), so messages, documents and the store name it so.
+pub fn canonical(path: &Path) -> io::Result<std::path::PathBuf> {
+    imp::canonical(path)
+}
+
+/// Make the names in `folder` (a file renamed into it, one created) survive a power cut.
+pub fn sync_folder(folder: &Path) -> io::Result<()> {
+    imp::sync_folder(folder)
+}
+
 /// Whether a rename failed because its two names are on different file systems.
 pub fn is_cross_device(e: &io::Error) -> bool {
     imp::is_cross_device(e)
@@ -101,12 +113,15 @@ pub fn free_bytes(folder: &Path) -> Option<u64> {
     imp::free_bytes(folder)
 }
 
-/// Read into `buf` from byte `offset` of `file`.
+/// Read into `buf` from byte `offset` of `file`. Whether the file's own position moves
+/// differs by system (it stays on Unix, it moves on Windows): a caller that then reads
+/// the file in order seeks first.
 pub fn read_at(file: &File, buf: &mut [u8], offset: u64) -> io::Result<usize> {
     imp::read_at(file, buf, offset)
 }
 
-/// Fill `buf` from byte `offset` of `file` (an error at the end of the file).
+/// Fill `buf` from byte `offset` of `file` (an error at the end of the file); the file's
+/// position as [`read_at`] leaves it.
 pub fn read_exact_at(file: &File, buf: &mut [u8], offset: u64) -> io::Result<()> {
     imp::read_exact_at(file, buf, offset)
 }

@@ -93,6 +93,15 @@ pub fn rename_no_replace(from: &Path, to: &Path) -> io::Result<bool> {
     }
 }
 
+pub fn canonical(path: &Path) -> io::Result<PathBuf> {
+    std::fs::canonicalize(path)
+}
+
+pub fn sync_folder(folder: &Path) -> io::Result<()> {
+    // A rename is durable once the folder holding the new name is synced (fsync(2)).
+    std::fs::File::open(folder)?.sync_all()
+}
+
 pub fn is_cross_device(e: &io::Error) -> bool {
     e.raw_os_error() == Some(libc::EXDEV)
 }

@@ -218,6 +218,40 @@ pub fn rename_no_replace(from: &Path, to: &Path) -> io::Result<bool> {
     }
 }
 
+pub fn canonical(path: &Path) -> io::Result<PathBuf> {
+    let full = std::fs::canonicalize(path)?;
+    // A name that is not valid Unicode is left in the system's form, never altered.
+    Ok(match full.to_str() {
+        Some(s) => PathBuf::from(without_verbatim_prefix(s)),
+        None => full,
+    })
+}
+
+/// `\\?\C:\x` as `C:\x` and `\\?\UNC\server\share` as `\\server\share`; any other
+/// verbatim path (a device, a name too long without it) as it is.
+fn without_verbatim_prefix(p: &str) -> String {
+    if let Some(rest) = p.strip_prefix(r"\\?\UNC\") {
+        return format!(r"\\{rest}");
+    }
+    match p.strip_prefix(r"\\?\") {
+        Some(rest)
+            if rest.len() < 248
+                && rest.as_bytes().get(1) == Some(&b':')
+                && rest.as_bytes()[0].is_ascii_alphabetic() =>
+        {
+            rest.to_string()
+        }
+        _ => p.to_string(),
+    }
+}
+
+pub fn sync_folder(_folder: &Path) -> io::Result<()> {
+    // Nothing to do: a folder cannot be opened as a file here, NTFS journals its names,
+    // and the moves that must last are made with MOVEFILE_WRITE_THROUGH, which returns
+    // only once the move is on disk.
+    Ok(())
+}
+
 pub fn is_cross_device(e: &io::Error) -> bool {
     e.raw_os_error().map(|c| c as u32) == Some(ERROR_NOT_SAME_DEVICE)
 }
@@ -569,6 +603,26 @@ mod tests {
             }
         );
         assert_eq!(ending(&ExitStatus::from_raw(3)), Ending::Exited(3));
+    }
+
+    #[test]
+    fn a_canonical_path_is_written_as_a_user_writes_it() {
+        // The verbatim forms of Microsoft's "Naming Files, Paths, and Namespaces".
+        assert_eq!(
+            without_verbatim_prefix(r"\\?\C:\frames\a.fits"),
+            r"C:\frames\a.fits"
+        );
+        assert_eq!(
+            without_verbatim_prefix(r"\\?\UNC\pier\capture\a.fits"),
+            r"\\pier\capture\a.fits"
+        );
+        assert_eq!(without_verbatim_prefix(r"\\.\COM1"), r"\\.\COM1");
+        let dir = tempfile::tempdir().unwrap();
+        let named = dir.path().join("Nébuleuse ü");
+        std::fs::create_dir(&named).unwrap();
+        let c = canonical(&named).unwrap();
+        assert!(!c.to_string_lossy().starts_with(r"\\?\"), "{}", c.display());
+        assert!(c.ends_with("Nébuleuse ü"));
     }
 
     #[test]

@@ -546,7 +546,7 @@ fn prepare_folders(config: &mut Config) -> Result<(), WatchError> {
         }
     }
     for folder in config.watch.folders.iter_mut() {
-        *folder = std::fs::canonicalize(&*folder).map_err(|e| WatchError::Notify {
+        *folder = crate::os::canonical(&*folder).map_err(|e| WatchError::Notify {
             path: folder.clone(),
             source: notify::Error::io(e),
         })?;

@@ -39,9 +39,7 @@ impl Daemon {
 
     /// SIGTERM, then the exit status.
     pub fn terminate(mut self) -> std::process::ExitStatus {
-        unsafe {
-            libc::kill(self.child.id() as i32, libc::SIGTERM);
-        }
+        ask_to_stop(&mut self.child);
         self.child.wait().expect("wait")
     }
 }
@@ -103,8 +101,7 @@ impl Logged {
 
     /// SIGTERM, then the whole log.
     pub fn stop(mut self) -> String {
-        // SAFETY: signalling our own child.
-        unsafe { libc::kill(self.child.id() as i32, libc::SIGTERM) };
+        ask_to_stop(&mut self.child);
         let _ = self.child.wait();
         std::thread::sleep(Duration::from_millis(200));
         self.log()
@@ -128,15 +125,16 @@ pub struct Site {
 
 pub fn site(extra_watch: &str) -> Site {
     let dir = tempfile::tempdir().unwrap();
-    let root = dir.path().canonicalize().unwrap();
+    let root = subwatch::os::canonical(dir.path()).unwrap();
     let capture = root.join("capture");
     std::fs::create_dir_all(&capture).unwrap();
     let config = root.join("subwatch.toml");
     let db = root.join("subwatch.db");
+    // Literal strings: a Windows path's backslashes are not escapes.
     std::fs::write(
         &config,
         format!(
-            "[watch]\nfolders = [\"{}\"]\nsettle_seconds = 0.5\nrescan_seconds = 2\n{extra_watch}\n[store]\npath = \"{}\"\n[site]\ntimezone = \"UTC\"\n",
+            "[watch]\nfolders = ['{}']\nsettle_seconds = 0.5\nrescan_seconds = 2\n{extra_watch}\n[store]\npath = '{}'\n[site]\ntimezone = \"UTC\"\n",
             capture.display(),
             db.display()
         ),
@@ -230,4 +228,17 @@ pub fn feed_one_by_one(
             std::thread::sleep(Duration::from_millis(50));
         }
     }
+}
+
+/// SIGTERM on Unix. A console program on Windows has no signal a test can send to it
+/// alone (Ctrl-Break goes to a whole console group), so there the test ends it outright:
+/// every record is its own transaction, so what it recorded stays.
+pub fn ask_to_stop(child: &mut std::process::Child) {
+    #[cfg(unix)]
+    // SAFETY: signalling our own child.
+    unsafe {
+        libc::kill(child.id() as i32, libc::SIGTERM);
+    }
+    #[cfg(windows)]
+    let _ = child.kill();
 }
