@@ -77,10 +77,23 @@ pub fn is_disk_full(e: &io::Error) -> bool {
     imp::is_disk_full(e)
 }
 
-/// Whether opening a file failed because another program holds it open without sharing
-/// (a capture program still writing it on Windows): the file is still being written.
-pub fn is_held_by_writer(e: &io::Error) -> bool {
-    imp::is_held_by_writer(e)
+/// Whether opening or reading a file failed because another program holds it open
+/// without sharing, or has locked the bytes read (a capture program still writing it, on
+/// Windows): the file is still being written, not unreadable. Always false on Unix, where
+/// a file being written is read as it grows.
+pub fn is_still_being_written(e: &io::Error) -> bool {
+    imp::is_still_being_written(e)
+}
+
+/// Windows' system error codes for a file another process holds: ERROR_SHARING_VIOLATION
+/// (32, "The process cannot access the file because it is being used by another process")
+/// and ERROR_LOCK_VIOLATION (33, "another process has locked a portion of the file").
+/// Kept apart from the Windows half so the table is checked on every system.
+#[cfg_attr(not(windows), allow(dead_code))]
+fn is_sharing_refusal(code: i32) -> bool {
+    const ERROR_SHARING_VIOLATION: i32 = 32;
+    const ERROR_LOCK_VIOLATION: i32 = 33;
+    matches!(code, ERROR_SHARING_VIOLATION | ERROR_LOCK_VIOLATION)
 }
 
 /// Take a lock on `file` without waiting: exclusive, or shared with other shared
@@ -228,6 +241,49 @@ mod tests {
         assert_eq!(std::fs::read_to_string(&p).unwrap(), "4242\n");
         drop(holder);
         assert!(try_lock(&other, false).unwrap());
+    }
+
+    #[test]
+    fn only_the_two_sharing_codes_mean_still_being_written() {
+        // Microsoft, "System Error Codes (0-499)" (learn.microsoft.com, winerror.h):
+        // 32 ERROR_SHARING_VIOLATION, 33 ERROR_LOCK_VIOLATION; their neighbours 5
+        // ERROR_ACCESS_DENIED, 2 ERROR_FILE_NOT_FOUND, 31 ERROR_GEN_FAILURE and 34
+        // ERROR_WRONG_DISK are other failures.
+        assert!(is_sharing_refusal(32));
+        assert!(is_sharing_refusal(33));
+        for other in [0, 2, 5, 31, 34, 112] {
+            assert!(!is_sharing_refusal(other), "{other}");
+        }
+    }
+
+    #[cfg(unix)]
+    #[test]
+    fn on_unix_no_error_means_still_being_written() {
+        // On Linux 32 is EPIPE and 33 EDOM (errno(3), asm-generic/errno-base.h): the
+        // Windows codes must not be read into them.
+        for code in [32, 33, libc::EACCES, libc::EAGAIN, libc::EBUSY] {
+            assert!(!is_still_being_written(&io::Error::from_raw_os_error(code)));
+        }
+    }
+
+    #[cfg(windows)]
+    #[test]
+    fn a_file_held_open_without_sharing_is_still_being_written() {
+        use std::os::windows::fs::OpenOptionsExt;
+        // CreateFileW with dwShareMode 0: "Prevents other processes from opening a file
+        // ... if they request delete, read, or write access" (Microsoft, CreateFileW).
+        let dir = tempfile::tempdir().unwrap();
+        let p = dir.path().join("writing.fits");
+        let _writer = File::options()
+            .write(true)
+            .create_new(true)
+            .share_mode(0)
+            .open(&p)
+            .unwrap();
+        let e = File::open(&p).unwrap_err();
+        assert_eq!(e.raw_os_error(), Some(32));
+        assert!(is_still_being_written(&e));
+        assert!(!is_still_being_written(&io::Error::from_raw_os_error(5)));
     }
 
     #[test]

@@ -101,7 +101,7 @@ pub fn is_disk_full(e: &io::Error) -> bool {
     matches!(e.raw_os_error(), Some(libc::ENOSPC) | Some(libc::EDQUOT))
 }
 
-pub fn is_held_by_writer(_e: &io::Error) -> bool {
+pub fn is_still_being_written(_e: &io::Error) -> bool {
     // Unix has no opens that refuse sharing: a file being written is read as it grows.
     false
 }
