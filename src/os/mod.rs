@@ -6,6 +6,8 @@ use std::fs::File;
 use std::io;
 use std::path::Path;
 use std::process::{Child, Command, ExitStatus};
+use std::sync::atomic::AtomicBool;
+use std::sync::Arc;
 
 #[cfg(unix)]
 #[path = "unix.rs"]
@@ -172,6 +174,86 @@ impl StopRequests {
     pub async fn next(&mut self) -> &'static str {
         self.0.next().await
     }
+}
+
+/// The name the service is registered under with the system's service manager.
+pub const SERVICE_NAME: &str = "subwatch";
+
+/// The daemon a service runs: given the flag the service's stop control raises, it runs
+/// until that flag (or anything else) ends it; the reason in words when it failed.
+pub type Daemon = Box<dyn FnOnce(Arc<AtomicBool>) -> Result<(), String> + Send>;
+
+/// What went wrong with the service.
+#[derive(Debug, thiserror::Error)]
+pub enum ServiceError {
+    #[error("`subwatch service` is for Windows; on Linux run the daemon under systemd with the unit in systemd/ (systemd/README.md says how)")]
+    NotWindows,
+    #[error("`subwatch service run` is started by the Windows service control manager, not from a prompt; use `subwatch service start`, or `subwatch watch` to run in this console")]
+    NotUnderManager,
+    #[error("{action}: {source}{}", manager_hint(.source))]
+    Manager {
+        action: &'static str,
+        #[source]
+        source: io::Error,
+    },
+}
+
+/// What to do about the service control manager's commonest refusals, by their system
+/// error codes (Microsoft, "System Error Codes": 5 ERROR_ACCESS_DENIED, 1060
+/// ERROR_SERVICE_DOES_NOT_EXIST, 1062 ERROR_SERVICE_NOT_ACTIVE, 1056
+/// ERROR_SERVICE_ALREADY_RUNNING, 1073 ERROR_SERVICE_EXISTS, 1072
+/// ERROR_SERVICE_MARKED_FOR_DELETE).
+fn manager_hint(e: &io::Error) -> &'static str {
+    match e.raw_os_error() {
+        Some(5) => " (run it from a prompt opened as administrator)",
+        Some(1060) => " (it is not installed: subwatch service install --config FILE)",
+        Some(1062) => " (it is not running)",
+        Some(1056) => " (it is running already)",
+        Some(1073) => " (it is installed already: subwatch service uninstall first to change it)",
+        Some(1072) => " (it is being removed: close the Services window and try again)",
+        _ => "",
+    }
+}
+
+/// `Ok` where the `service` commands apply (Windows); `NotWindows` elsewhere, said
+/// before anything else is looked at.
+pub fn service_manager_here() -> Result<(), ServiceError> {
+    imp::service_log_folder()
+        .map(|_| ())
+        .ok_or(ServiceError::NotWindows)
+}
+
+/// Register the daemon as a service of the system, started at boot, that runs this
+/// program as `service run --config CONFIG` (an absolute path). Writes nothing else.
+pub fn service_install(config: &Path) -> Result<(), ServiceError> {
+    imp::service_install(config)
+}
+
+/// Stop the service if it runs, and remove it.
+pub fn service_uninstall() -> Result<(), ServiceError> {
+    imp::service_uninstall()
+}
+
+/// Ask the service manager to start the service.
+pub fn service_start() -> Result<(), ServiceError> {
+    imp::service_start()
+}
+
+/// Ask the service manager to stop the service (it finishes the frames in hand first).
+pub fn service_stop() -> Result<(), ServiceError> {
+    imp::service_stop()
+}
+
+/// Run `daemon` as the service, reporting its state to the service manager until it ends;
+/// the manager's Stop and Shutdown controls raise its stop flag.
+pub fn run_service(daemon: Daemon) -> Result<(), ServiceError> {
+    imp::run_service(daemon)
+}
+
+/// Where the service writes its daily log files (`%ProgramData%\subwatch\logs`), where
+/// it does; `None` where the service manager keeps the log (systemd's journal).
+pub fn service_log_folder() -> Option<std::path::PathBuf> {
+    imp::service_log_folder()
 }
 
 /// The folder where a system-wide install keeps its configuration, store, reports and

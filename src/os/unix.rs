@@ -219,6 +219,33 @@ impl StopRequests {
     }
 }
 
+// The service commands are Windows'; under systemd the unit runs `subwatch watch`.
+
+pub fn service_install(_config: &Path) -> Result<(), super::ServiceError> {
+    Err(super::ServiceError::NotWindows)
+}
+
+pub fn service_uninstall() -> Result<(), super::ServiceError> {
+    Err(super::ServiceError::NotWindows)
+}
+
+pub fn service_start() -> Result<(), super::ServiceError> {
+    Err(super::ServiceError::NotWindows)
+}
+
+pub fn service_stop() -> Result<(), super::ServiceError> {
+    Err(super::ServiceError::NotWindows)
+}
+
+pub fn run_service(_daemon: super::Daemon) -> Result<(), super::ServiceError> {
+    Err(super::ServiceError::NotWindows)
+}
+
+pub fn service_log_folder() -> Option<PathBuf> {
+    // systemd's journal keeps the daemon's stderr.
+    None
+}
+
 pub fn system_folder(kind: &str) -> PathBuf {
     PathBuf::from(match kind {
         "config" => "/etc/subwatch",

@@ -538,8 +538,22 @@ impl StopRequests {
     }
 }
 
+#[path = "windows/service.rs"]
+mod service;
+
+pub use service::{
+    install as service_install, run as run_service, start as service_start, stop as service_stop,
+    uninstall as service_uninstall,
+};
+
+pub fn service_log_folder() -> Option<PathBuf> {
+    Some(system_folder("logs"))
+}
+
 pub fn system_folder(kind: &str) -> PathBuf {
-    let base = std::env::var_os("ProgramData")
+    // Environment names are case-insensitive on Windows; an unset or relative value (a
+    // service started with a stripped environment) falls back to the usual place.
+    let base = std::env::var_os("PROGRAMDATA")
         .map(PathBuf::from)
         .filter(|p| p.is_absolute())
         .unwrap_or_else(|| PathBuf::from(r"C:\ProgramData"));
