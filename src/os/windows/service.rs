@@ -196,7 +196,10 @@ fn service_main(_arguments: Vec<OsString>) {
     let worker = {
         let stop = stop.clone();
         std::thread::spawn(move || {
-            let _ = tx.send(Event::Ended(daemon(stop)));
+            // A panic is an end too: the manager must hear the service stopped.
+            let ended = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| daemon(stop)))
+                .unwrap_or_else(|_| Err("internal error (a bug; please report it)".into()));
+            let _ = tx.send(Event::Ended(ended));
         })
     };
     let mut checkpoint = 0;
