@@ -162,10 +162,12 @@ fn open(path: &Path, limits: &DecodeLimits) -> Result<Source, FrameError> {
     if !meta.is_file() {
         return Err(fail("not a regular file"));
     }
+    // Opened before its size is judged: a file its writer still holds (Windows) is said
+    // as such, not as empty.
+    let file = std::fs::File::open(path).map_err(io)?;
     if meta.len() == 0 {
         return Err(fail("empty file (0 bytes)"));
     }
-    let file = std::fs::File::open(path).map_err(io)?;
     let mut head = [0u8; 6];
     let got = crate::os::read_at(&file, &mut head, 0).map_err(io)?;
     if head[..got].starts_with(&[0x1f, 0x8b]) {
