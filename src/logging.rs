@@ -1,9 +1,12 @@
-//! Log output: tracing to stderr, one event per line, whatever text an event carries.
+//! Log output: tracing to stderr (or, for the Windows service, to a file a day:
+//! `daily`), one event per line, whatever text an event carries.
 //! File names and header values come from users' files and capture programs; a name
 //! with a newline or an escape sequence in it must not forge a log line or drive a
 //! terminal, so every control character in a formatted line is written escaped.
 
 use std::io::Write;
+
+pub mod daily;
 
 /// `s` with its control characters escaped (`\n`, `\t`, `\u{1b}`, ...), so it stays one
 /// line of plain text.
@@ -52,14 +55,18 @@ impl<W: Write> Write for Escaping<W> {
 /// daemon says what it does at "info"; one-shot commands only warn); `SUBWATCH_LOG`
 /// takes tracing's filter syntax ("debug", "subwatch=trace", ...).
 pub fn init(default: &str) {
-    let filter = tracing_subscriber::EnvFilter::try_from_env("SUBWATCH_LOG")
-        .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new(default));
     let _ = tracing_subscriber::fmt()
         .with_writer(|| Escaping(std::io::stderr()))
         // Color codes are control characters too; plain text everywhere.
         .with_ansi(false)
-        .with_env_filter(filter)
+        .with_env_filter(filter(default))
         .try_init();
+}
+
+/// `SUBWATCH_LOG`'s filter, or `default` when it is unset or unreadable.
+fn filter(default: &str) -> tracing_subscriber::EnvFilter {
+    tracing_subscriber::EnvFilter::try_from_env("SUBWATCH_LOG")
+        .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new(default))
 }
 
 #[cfg(test)]

@@ -27,9 +27,37 @@ struct ConfigFile {
     #[arg(
         long = "config",
         value_name = "FILE",
-        default_value = "/etc/subwatch/subwatch.toml"
+        default_value_os_t = default_config()
     )]
     path: PathBuf,
+}
+
+/// The system-wide install's configuration: /etc/subwatch/subwatch.toml on Linux,
+/// %ProgramData%\subwatch\subwatch.toml on Windows.
+fn default_config() -> PathBuf {
+    subwatch::os::system_folder("config").join("subwatch.toml")
+}
+
+#[derive(Subcommand)]
+enum ServiceAction {
+    /// Register subwatch as a Windows service started with Windows, running the daemon
+    /// on this configuration (run from a prompt opened as administrator).
+    Install {
+        #[command(flatten)]
+        config: ConfigFile,
+    },
+    /// Stop the service and remove it (its log, store and reports stay).
+    Uninstall,
+    /// Start the installed service now.
+    Start,
+    /// Stop the service; it finishes the frames being read first.
+    Stop,
+    /// The daemon under the service control manager (the manager starts this).
+    #[command(hide = true)]
+    Run {
+        #[command(flatten)]
+        config: ConfigFile,
+    },
 }
 
 #[derive(Subcommand)]
@@ -246,6 +274,12 @@ enum Command {
     /// have, and judge each night (safe to stop and run again; `--shard K/N` for a
     /// scheduler's array of tasks).
     Archive(commands::archive::ArchiveArgs),
+    /// The daemon as a Windows service: install, uninstall, start, stop (on Linux the
+    /// systemd unit in systemd/ runs it instead).
+    Service {
+        #[command(subcommand)]
+        action: ServiceAction,
+    },
     /// Read one file for another subwatch process (request on stdin, record on stdout).
     #[command(name = "read-worker", hide = true)]
     ReadWorker,
@@ -255,11 +289,15 @@ enum Command {
 
 fn main() -> ExitCode {
     let cli = Cli::parse();
-    // The daemon says what it is doing by default; one-shot commands only warn.
-    subwatch::logging::init(match cli.command {
-        Command::Watch { .. } | Command::Archive(_) => "info",
-        _ => "warn",
-    });
+    // The daemon says what it is doing by default; one-shot commands only warn. The
+    // service logs into its daily files, set up once its configuration is read.
+    match cli.command {
+        Command::Service {
+            action: ServiceAction::Run { .. },
+        } => {}
+        Command::Watch { .. } | Command::Archive(_) => subwatch::logging::init("info"),
+        _ => subwatch::logging::init("warn"),
+    }
     // A panic anywhere is reported as one line.
     std::panic::set_hook(Box::new(|info| {
         tracing::error!("internal error: {info}");
@@ -414,6 +452,13 @@ fn run(cli: Cli) -> Result<ExitCode> {
             action: CatalogueAction::Import { config, force },
         } => commands::catalogue::import(&config.path, force),
         Command::Render(args) => render::frame(args),
+        Command::Service { action } => match action {
+            ServiceAction::Install { config } => service::install(&config.path),
+            ServiceAction::Uninstall => service::uninstall(),
+            ServiceAction::Start => service::start(),
+            ServiceAction::Stop => service::stop(),
+            ServiceAction::Run { config } => service::run(config.path),
+        },
         Command::Store {
             action:
                 StoreAction::Copy {

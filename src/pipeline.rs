@@ -170,15 +170,46 @@ fn calibration_kind(
     })
 }
 
+/// A file its writer still holds open without sharing (Windows): not read, and not a
+/// problem of the file; the daemon reads it once it is let go.
+#[derive(
+    Debug, Clone, Copy, PartialEq, Eq, thiserror::Error, serde::Serialize, serde::Deserialize,
+)]
+#[error("still being written: another program holds it open without sharing")]
+pub struct StillBeingWritten;
+
 /// Decode, classify and measure one file into the record the store keeps. Never fails:
-/// a problem becomes a record with status "error" naming it.
+/// a problem, a file still being written included, becomes a record with status "error"
+/// naming it.
 pub fn record_file(
     path: &Path,
     identity: crate::record::Identity,
     mtime_unix: f64,
     opts: &RecordOptions,
 ) -> crate::record::FrameRecord {
+    try_record_file(path, identity.clone(), mtime_unix, opts).unwrap_or_else(|e| {
+        let mut rec = crate::record::FrameRecord::failed(identity, &e.to_string());
+        rec.night = crate::sky::night_label(mtime_unix, opts.timezone);
+        rec
+    })
+}
+
+/// As [`record_file`], except that a file its writer still holds is said as such
+/// (`Err`) rather than recorded as unreadable: it is not finished yet.
+pub fn try_record_file(
+    path: &Path,
+    identity: crate::record::Identity,
+    mtime_unix: f64,
+    opts: &RecordOptions,
+) -> Result<crate::record::FrameRecord, StillBeingWritten> {
     use crate::record::{FrameRecord, FrameStatus, HeaderFacts, Metrics, StarRecord};
+    let held = |e: &FrameError| {
+        if e.is_still_being_written() {
+            Err(StillBeingWritten)
+        } else {
+            Ok(())
+        }
+    };
     let mut rec = FrameRecord {
         error: None,
         night: crate::sky::night_label(mtime_unix, opts.timezone),
@@ -188,8 +219,9 @@ pub fn record_file(
     let cards = match crate::frame::fits::read_header(path, opts.measure.limits) {
         Ok(c) => c,
         Err(e) => {
+            held(&e)?;
             rec.error = Some(e.reason());
-            return rec;
+            return Ok(rec);
         }
     };
     let header = crate::frame::FrameHeader::from_cards(&cards);
@@ -225,9 +257,12 @@ pub fn record_file(
                 rec.calibration = Some(stats);
                 rec.error = Some(kind);
             }
-            Err(e) => rec.error = Some(format!("{kind}: {}", e.reason())),
+            Err(e) => {
+                held(&e)?;
+                rec.error = Some(format!("{kind}: {}", e.reason()));
+            }
         }
-        return rec;
+        return Ok(rec);
     }
     match measure_file(path, &opts.measure) {
         Ok(m) => {
@@ -256,9 +291,14 @@ pub fn record_file(
                 }
             }
         }
-        Err(e) => rec.error = Some(e.reason()),
+        Err(e) => {
+            if let PipelineError::Frame(f) = &e {
+                held(f)?;
+            }
+            rec.error = Some(e.reason());
+        }
     }
-    rec
+    Ok(rec)
 }
 
 fn folder_name(path: &Path) -> Option<String> {

@@ -19,7 +19,7 @@ use std::time::{Duration, Instant};
 
 use serde::{Deserialize, Serialize};
 
-use crate::pipeline::RecordOptions;
+use crate::pipeline::{RecordOptions, StillBeingWritten};
 use crate::record::{FrameRecord, Identity};
 
 /// The hidden subcommand the worker runs as.
@@ -55,6 +55,8 @@ pub enum Request {
 #[derive(Debug, Clone, Serialize, Deserialize)]
 pub enum Reply {
     Record(Box<FrameRecord>),
+    /// The file's writer still holds it open: nothing was read.
+    StillBeingWritten,
     Cutout(Option<Vec<u8>>),
     /// PNG, width, height and binning of a preview.
     Preview(Option<(Vec<u8>, u32, u32, usize)>),
@@ -344,9 +346,10 @@ fn answer(request: Request) -> Reply {
             identity,
             mtime_unix,
             options,
-        } => Reply::Record(Box::new(crate::pipeline::record_file(
-            &path, identity, mtime_unix, &options,
-        ))),
+        } => match crate::pipeline::try_record_file(&path, identity, mtime_unix, &options) {
+            Ok(r) => Reply::Record(Box::new(r)),
+            Err(StillBeingWritten) => Reply::StillBeingWritten,
+        },
         Request::Cutout {
             path,
             x,
@@ -373,7 +376,8 @@ fn answer(request: Request) -> Reply {
 
 impl Reader {
     /// Decode, classify and measure one file into its record. Never fails: a problem,
-    /// the worker's crash included, becomes a record with status "error" naming it.
+    /// the worker's crash and a file still being written included, becomes a record with
+    /// status "error" naming it.
     pub fn record(
         &self,
         path: &Path,
@@ -381,6 +385,23 @@ impl Reader {
         mtime_unix: f64,
         options: &RecordOptions,
     ) -> FrameRecord {
+        self.try_record(path, identity.clone(), mtime_unix, options)
+            .unwrap_or_else(|e| {
+                let mut r = FrameRecord::failed(identity, &e.to_string());
+                r.night = crate::sky::night_label(mtime_unix, options.timezone);
+                r
+            })
+    }
+
+    /// As [`Reader::record`], except that a file its writer still holds open is said as
+    /// such (`Err`), for the daemon to read it once it is let go.
+    pub fn try_record(
+        &self,
+        path: &Path,
+        identity: Identity,
+        mtime_unix: f64,
+        options: &RecordOptions,
+    ) -> Result<FrameRecord, StillBeingWritten> {
         let request = Request::Record {
             path: path.to_path_buf(),
             identity: identity.clone(),
@@ -401,10 +422,11 @@ impl Reader {
                         r.error = Some(format!("{}: {e}", out_of_memory(iso)));
                     }
                 }
-                *r
+                Ok(*r)
             }
-            Ok(_) => failed("the FITS reader answered another question".into()),
-            Err(reason) => failed(reason),
+            Ok(Reply::StillBeingWritten) => Err(StillBeingWritten),
+            Ok(_) => Ok(failed("the FITS reader answered another question".into())),
+            Err(reason) => Ok(failed(reason)),
         }
     }
 
@@ -562,5 +584,41 @@ mod tests {
         );
         assert_eq!(rec.status, crate::record::FrameStatus::Error);
         assert!(rec.night.is_some());
+    }
+}
+
+#[cfg(all(test, windows))]
+mod windows_tests {
+    use super::*;
+
+    #[test]
+    fn a_file_its_writer_holds_unshared_is_still_being_written_not_unreadable() {
+        use std::os::windows::fs::OpenOptionsExt;
+        let dir = tempfile::tempdir().unwrap();
+        let p = dir.path().join("kfa_001.fits");
+        // dwShareMode 0, as a capture program writing the frame holds it (Microsoft,
+        // CreateFileW: other opens fail with ERROR_SHARING_VIOLATION).
+        let writer = std::fs::File::options()
+            .write(true)
+            .create_new(true)
+            .share_mode(0)
+            .open(&p)
+            .unwrap();
+        let id = Identity {
+            path: p.to_string_lossy().into_owned(),
+            size: 0,
+            mtime_ns: 0,
+        };
+        let opts = RecordOptions::default();
+        assert_eq!(
+            Reader::InProcess
+                .try_record(&p, id.clone(), 0.0, &opts)
+                .err(),
+            Some(StillBeingWritten)
+        );
+        // Let go, the same file is read, and found wanting for a reason of its own.
+        drop(writer);
+        let rec = Reader::InProcess.try_record(&p, id, 0.0, &opts).unwrap();
+        assert_eq!(rec.status, crate::record::FrameStatus::Error);
     }
 }

@@ -740,8 +740,7 @@ fn a_store_password_changed_mid_night_is_named_and_taken_up_from_the_file() {
     let s = site("");
     let pw = s.root.join("db-password");
     std::fs::write(&pw, "first-pass-7Q\n").unwrap();
-    use std::os::unix::fs::PermissionsExt;
-    std::fs::set_permissions(&pw, std::fs::Permissions::from_mode(0o600)).unwrap();
+    subwatch::os::make_private(&pw).unwrap();
     let base = std::fs::read_to_string(&s.config)
         .unwrap()
         .replace(&format!("[store]\npath = \"{}\"\n", s.db.display()), "");

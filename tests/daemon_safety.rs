@@ -1,6 +1,9 @@
 //! The daemon left alone: one regression test per way it could stop, lose a frame,
 //! record one twice, keep silent, or take a bad setting. Each runs the real binary on
 //! real folders with a real SQLite file.
+// Unix only: the regressions are Unix's (file-size and address-space rlimits, modes,
+// nanosecond modification times, SIGTERM).
+#![cfg(unix)]
 
 mod common;
 

@@ -6,6 +6,9 @@
 //! for every file that cannot be measured, every good frame recorded, the daemon's
 //! process the same at the end. The corpus is made here, from a fixed seed, so a
 //! failure replays.
+// Unix only: a crash is told by the signal, peak memory by wait4's rusage, and the daemon
+// is stopped by SIGTERM.
+#![cfg(unix)]
 
 mod common;
 

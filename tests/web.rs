@@ -270,8 +270,7 @@ fn a_page_open_to_the_network_needs_a_token() {
     let token_file = s.root.join("page-token");
     let token = "kestrel-ridge-0123456789abcdef";
     std::fs::write(&token_file, format!("{token}\n")).unwrap();
-    use std::os::unix::fs::PermissionsExt;
-    std::fs::set_permissions(&token_file, std::fs::Permissions::from_mode(0o600)).unwrap();
+    subwatch::os::make_private(&token_file).unwrap();
     add_web(
         &s.config,
         &format!(
@@ -310,15 +309,20 @@ fn a_page_open_to_the_network_needs_a_token() {
     assert!(page.contains("one.fits"));
     drop(d);
 
-    // A token file others can read is refused (as the mail password file is).
-    std::fs::set_permissions(&token_file, std::fs::Permissions::from_mode(0o644)).unwrap();
-    let out = Command::new(common::binary())
-        .args(["watch", "--config"])
-        .arg(&s.config)
-        .output()
-        .unwrap();
-    assert!(!out.status.success());
-    assert!(String::from_utf8_lossy(&out.stderr).contains("web.token_file"));
+    // A token file others can read is refused (as the mail password file is); opened
+    // to others by its mode, on Unix.
+    #[cfg(unix)]
+    {
+        use std::os::unix::fs::PermissionsExt;
+        std::fs::set_permissions(&token_file, std::fs::Permissions::from_mode(0o644)).unwrap();
+        let out = Command::new(common::binary())
+            .args(["watch", "--config"])
+            .arg(&s.config)
+            .output()
+            .unwrap();
+        assert!(!out.status.success());
+        assert!(String::from_utf8_lossy(&out.stderr).contains("web.token_file"));
+    }
 }
 
 #[test]
@@ -519,8 +523,7 @@ fn a_silent_connection_is_closed_within_seconds() {
 fn with_token(s: &common::daemon::Site, token: &[u8]) {
     let token_file = s.root.join("page-token");
     std::fs::write(&token_file, token).unwrap();
-    use std::os::unix::fs::PermissionsExt;
-    std::fs::set_permissions(&token_file, std::fs::Permissions::from_mode(0o600)).unwrap();
+    subwatch::os::make_private(&token_file).unwrap();
     add_web(
         &s.config,
         &format!(

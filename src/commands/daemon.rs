@@ -79,6 +79,21 @@ pub fn check_config(config: &Path, send_test: bool) -> Result<ExitCode> {
             }
         }
     }
+    match subwatch::os::service_log_folder() {
+        Some(folder) => outln!(
+            "log: the service writes a file a day into {} and keeps {} day(s) of them",
+            folder.display(),
+            cfg.log.keep_days
+        )?,
+        None if cfg.lines.contains_key("log.keep_days") => outln!(
+            "note: {}",
+            cfg.located(
+                "log.keep_days",
+                "applies to the Windows service's daily files; here the log goes to stderr (the journal under systemd)".into()
+            )
+        )?,
+        None => {}
+    }
     outln!("{}: ok", config.display())?;
     if send_test {
         let settings = subwatch::mail::MailSettings::from_config(&cfg)?;

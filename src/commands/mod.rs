@@ -25,6 +25,7 @@ pub mod demo;
 pub mod measure;
 pub mod night;
 pub mod render;
+pub mod service;
 pub mod sky;
 pub mod store;
 pub mod target;

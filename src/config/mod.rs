@@ -264,6 +264,19 @@ pub struct ReportConfig {
     pub folder: Option<PathBuf>,
 }
 
+/// `[log]`: the Windows service's daily log files.
+#[derive(Debug, Clone)]
+pub struct LogConfig {
+    /// Days of files kept, today's included.
+    pub keep_days: u32,
+}
+
+impl Default for LogConfig {
+    fn default() -> Self {
+        Self { keep_days: 14 }
+    }
+}
+
 /// Calibration frames kept from earlier nights.
 #[derive(Debug, Clone, Default)]
 pub struct CalibrationConfig {
@@ -482,6 +495,7 @@ pub struct Config {
     pub voevent: VoEventConfig,
     pub calibration: CalibrationConfig,
     pub catalogue: CatalogueConfig,
+    pub log: LogConfig,
     pub rules: Vec<RuleSpec>,
     /// Plans of targets (`[[targets]]`): hours of usable exposure per filter.
     pub targets: Vec<crate::season::plan::TargetPlan>,

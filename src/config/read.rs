@@ -319,7 +319,7 @@ impl<'a> Reader<'a> {
     }
 }
 
-const SECTIONS: [&str; 14] = [
+const SECTIONS: [&str; 15] = [
     "watch",
     "store",
     "rig",
@@ -334,6 +334,7 @@ const SECTIONS: [&str; 14] = [
     "voevent",
     "calibration",
     "catalogue",
+    "log",
 ];
 
 /// A rig name: 1 to 64 letters, digits, spaces, dots, dashes or underscores.
@@ -407,6 +408,7 @@ pub fn parse(text: &str, base: &Path) -> Result<Config, Vec<ConfigProblem>> {
     let voevent = sections::voevent(&mut r);
     let calibration = sections::calibration(&mut r);
     let catalogue = sections::catalogue(&mut r);
+    let log = sections::log(&mut r);
     let rules = rules::read(&mut r);
     let targets = targets::read(&mut r);
     r.unknown();
@@ -427,6 +429,7 @@ pub fn parse(text: &str, base: &Path) -> Result<Config, Vec<ConfigProblem>> {
         voevent,
         calibration,
         catalogue,
+        log,
         rules,
         targets,
         lines: std::mem::take(&mut r.lines),
@@ -672,6 +675,27 @@ mod tests {
         let c = parse("[watch]\nfolders = [\"/tmp\"]\n", Path::new("/etc")).unwrap();
         assert_eq!(c.watch.settle_seconds, 5.0);
         assert_eq!(c.store.path, PathBuf::from("/etc/subwatch.db"));
+    }
+
+    #[test]
+    fn the_service_keeps_fourteen_days_of_logs_unless_told_otherwise() {
+        let watch = "[watch]\nfolders = [\"/tmp\"]\n";
+        let c = parse(watch, Path::new("/etc")).unwrap();
+        assert_eq!(c.log.keep_days, 14);
+        let c = parse(&format!("{watch}[log]\nkeep_days = 3\n"), Path::new("/etc")).unwrap();
+        assert_eq!(c.log.keep_days, 3);
+        for bad in ["0", "-2", "3651", "1.5", "\"14\""] {
+            let text = format!("{watch}[log]\nkeep_days = {bad}\n");
+            let problems = parse(&text, Path::new("/")).unwrap_err();
+            assert_eq!(problems.len(), 1, "{bad}: {problems:?}");
+            assert_eq!(problems[0].key, "log.keep_days", "{bad}");
+            assert_eq!(problems[0].line, Some(4), "{bad}");
+            assert!(
+                problems[0].message.contains("1 to 3650"),
+                "{bad}: {}",
+                problems[0].message
+            );
+        }
     }
 
     #[test]

@@ -162,10 +162,12 @@ fn open(path: &Path, limits: &DecodeLimits) -> Result<Source, FrameError> {
     if !meta.is_file() {
         return Err(fail("not a regular file"));
     }
+    // Opened before its size is judged: a file its writer still holds (Windows) is said
+    // as such, not as empty.
+    let mut file = std::fs::File::open(path).map_err(io)?;
     if meta.len() == 0 {
         return Err(fail("empty file (0 bytes)"));
     }
-    let mut file = std::fs::File::open(path).map_err(io)?;
     let mut head = [0u8; 6];
     let got = crate::os::read_at(&file, &mut head, 0).map_err(io)?;
     if head[..got].starts_with(&[0x1f, 0x8b]) {
@@ -391,17 +393,35 @@ fn fill<const W: usize>(
 }
 
 /// Whether a plain (not gzip-wrapped) FITS file holds all the bytes its headers promise,
-/// final padding included (see `layout::is_complete`). `None` when the file cannot be
-/// read or is not plain FITS (then only the settle time decides). Reads only headers.
-pub fn looks_complete(path: &Path) -> Option<bool> {
-    let file = std::fs::File::open(path).ok()?;
-    let len = file.metadata().ok()?.len();
+/// final padding included (see `layout::is_complete`). `Ok(None)` when the file is not
+/// plain FITS or cannot be read for a reason of its own (then only the settle time
+/// decides, and the reader says what is wrong). `Err` when its writer still holds it
+/// (`os::is_still_being_written`): not finished, whatever its size says. Reads only
+/// headers.
+pub fn looks_complete(path: &Path) -> std::io::Result<Option<bool>> {
+    let held = |e: std::io::Error| {
+        if crate::os::is_still_being_written(&e) {
+            Err(e)
+        } else {
+            Ok(None)
+        }
+    };
+    let file = match std::fs::File::open(path) {
+        Ok(f) => f,
+        Err(e) => return held(e),
+    };
+    let Ok(len) = file.metadata().map(|m| m.len()) else {
+        return Ok(None);
+    };
     let mut magic = [0u8; 6];
-    if crate::os::read_exact_at(&file, &mut magic, 0).is_err() || &magic != b"SIMPLE" {
-        // Not plain FITS (gzip, or not FITS at all): only the settle time can decide.
-        return None;
+    if let Err(e) = crate::os::read_exact_at(&file, &mut magic, 0) {
+        return held(e);
     }
-    layout::is_complete(&mut FileBlocks { file, len }, len)
+    if &magic != b"SIMPLE" {
+        // Not plain FITS (gzip, or not FITS at all): only the settle time can decide.
+        return Ok(None);
+    }
+    Ok(layout::is_complete(&mut FileBlocks { file, len }, len))
 }
 
 #[cfg(test)]

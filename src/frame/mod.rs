@@ -41,6 +41,12 @@ impl FrameError {
             FrameError::Decode { reason, .. } | FrameError::Write { reason, .. } => reason.clone(),
         }
     }
+
+    /// Whether the file could not be opened or read because its writer still holds it
+    /// (`os::is_still_being_written`): it is not finished, rather than unreadable.
+    pub fn is_still_being_written(&self) -> bool {
+        matches!(self, FrameError::Io { source, .. } if crate::os::is_still_being_written(source))
+    }
 }
 
 /// A decoded frame.

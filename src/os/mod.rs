@@ -6,6 +6,8 @@ use std::fs::File;
 use std::io;
 use std::path::Path;
 use std::process::{Child, Command, ExitStatus};
+use std::sync::atomic::AtomicBool;
+use std::sync::Arc;
 
 #[cfg(unix)]
 #[path = "unix.rs"]
@@ -89,10 +91,23 @@ pub fn is_disk_full(e: &io::Error) -> bool {
     imp::is_disk_full(e)
 }
 
-/// Whether opening a file failed because another program holds it open without sharing
-/// (a capture program still writing it on Windows): the file is still being written.
-pub fn is_held_by_writer(e: &io::Error) -> bool {
-    imp::is_held_by_writer(e)
+/// Whether opening or reading a file failed because another program holds it open
+/// without sharing, or has locked the bytes read (a capture program still writing it, on
+/// Windows): the file is still being written, not unreadable. Always false on Unix, where
+/// a file being written is read as it grows.
+pub fn is_still_being_written(e: &io::Error) -> bool {
+    imp::is_still_being_written(e)
+}
+
+/// Windows' system error codes for a file another process holds: ERROR_SHARING_VIOLATION
+/// (32, "The process cannot access the file because it is being used by another process")
+/// and ERROR_LOCK_VIOLATION (33, "another process has locked a portion of the file").
+/// Kept apart from the Windows half so the table is checked on every system.
+#[cfg_attr(not(windows), allow(dead_code))]
+fn is_sharing_refusal(code: i32) -> bool {
+    const ERROR_SHARING_VIOLATION: i32 = 32;
+    const ERROR_LOCK_VIOLATION: i32 = 33;
+    matches!(code, ERROR_SHARING_VIOLATION | ERROR_LOCK_VIOLATION)
 }
 
 /// Take a lock on `file` without waiting: exclusive, or shared with other shared
@@ -176,6 +191,86 @@ impl StopRequests {
     }
 }
 
+/// The name the service is registered under with the system's service manager.
+pub const SERVICE_NAME: &str = "subwatch";
+
+/// The daemon a service runs: given the flag the service's stop control raises, it runs
+/// until that flag (or anything else) ends it; the reason in words when it failed.
+pub type Daemon = Box<dyn FnOnce(Arc<AtomicBool>) -> Result<(), String> + Send>;
+
+/// What went wrong with the service.
+#[derive(Debug, thiserror::Error)]
+pub enum ServiceError {
+    #[error("`subwatch service` is for Windows; on Linux run the daemon under systemd with the unit in systemd/ (systemd/README.md says how)")]
+    NotWindows,
+    #[error("`subwatch service run` is started by the Windows service control manager, not from a prompt; use `subwatch service start`, or `subwatch watch` to run in this console")]
+    NotUnderManager,
+    #[error("{action}: {source}{}", manager_hint(.source))]
+    Manager {
+        action: &'static str,
+        #[source]
+        source: io::Error,
+    },
+}
+
+/// What to do about the service control manager's commonest refusals, by their system
+/// error codes (Microsoft, "System Error Codes": 5 ERROR_ACCESS_DENIED, 1060
+/// ERROR_SERVICE_DOES_NOT_EXIST, 1062 ERROR_SERVICE_NOT_ACTIVE, 1056
+/// ERROR_SERVICE_ALREADY_RUNNING, 1073 ERROR_SERVICE_EXISTS, 1072
+/// ERROR_SERVICE_MARKED_FOR_DELETE).
+fn manager_hint(e: &io::Error) -> &'static str {
+    match e.raw_os_error() {
+        Some(5) => " (run it from a prompt opened as administrator)",
+        Some(1060) => " (it is not installed: subwatch service install --config FILE)",
+        Some(1062) => " (it is not running)",
+        Some(1056) => " (it is running already)",
+        Some(1073) => " (it is installed already: subwatch service uninstall first to change it)",
+        Some(1072) => " (it is being removed: close the Services window and try again)",
+        _ => "",
+    }
+}
+
+/// `Ok` where the `service` commands apply (Windows); `NotWindows` elsewhere, said
+/// before anything else is looked at.
+pub fn service_manager_here() -> Result<(), ServiceError> {
+    imp::service_log_folder()
+        .map(|_| ())
+        .ok_or(ServiceError::NotWindows)
+}
+
+/// Register the daemon as a service of the system, started at boot, that runs this
+/// program as `service run --config CONFIG` (an absolute path). Writes nothing else.
+pub fn service_install(config: &Path) -> Result<(), ServiceError> {
+    imp::service_install(config)
+}
+
+/// Stop the service if it runs, and remove it.
+pub fn service_uninstall() -> Result<(), ServiceError> {
+    imp::service_uninstall()
+}
+
+/// Ask the service manager to start the service.
+pub fn service_start() -> Result<(), ServiceError> {
+    imp::service_start()
+}
+
+/// Ask the service manager to stop the service (it finishes the frames in hand first).
+pub fn service_stop() -> Result<(), ServiceError> {
+    imp::service_stop()
+}
+
+/// Run `daemon` as the service, reporting its state to the service manager until it ends;
+/// the manager's Stop and Shutdown controls raise its stop flag.
+pub fn run_service(daemon: Daemon) -> Result<(), ServiceError> {
+    imp::run_service(daemon)
+}
+
+/// Where the service writes its daily log files (`%ProgramData%\subwatch\logs`), where
+/// it does; `None` where the service manager keeps the log (systemd's journal).
+pub fn service_log_folder() -> Option<std::path::PathBuf> {
+    imp::service_log_folder()
+}
+
 /// The folder where a system-wide install keeps its configuration, store, reports and
 /// logs: `/etc/subwatch` and `/var/lib/subwatch` on Linux, `%ProgramData%\subwatch` on
 /// Windows. `kind` is "config", "data" or "logs".
@@ -243,6 +338,49 @@ mod tests {
         assert_eq!(std::fs::read_to_string(&p).unwrap(), "4242\n");
         drop(holder);
         assert!(try_lock(&other, false).unwrap());
+    }
+
+    #[test]
+    fn only_the_two_sharing_codes_mean_still_being_written() {
+        // Microsoft, "System Error Codes (0-499)" (learn.microsoft.com, winerror.h):
+        // 32 ERROR_SHARING_VIOLATION, 33 ERROR_LOCK_VIOLATION; their neighbours 5
+        // ERROR_ACCESS_DENIED, 2 ERROR_FILE_NOT_FOUND, 31 ERROR_GEN_FAILURE and 34
+        // ERROR_WRONG_DISK are other failures.
+        assert!(is_sharing_refusal(32));
+        assert!(is_sharing_refusal(33));
+        for other in [0, 2, 5, 31, 34, 112] {
+            assert!(!is_sharing_refusal(other), "{other}");
+        }
+    }
+
+    #[cfg(unix)]
+    #[test]
+    fn on_unix_no_error_means_still_being_written() {
+        // On Linux 32 is EPIPE and 33 EDOM (errno(3), asm-generic/errno-base.h): the
+        // Windows codes must not be read into them.
+        for code in [32, 33, libc::EACCES, libc::EAGAIN, libc::EBUSY] {
+            assert!(!is_still_being_written(&io::Error::from_raw_os_error(code)));
+        }
+    }
+
+    #[cfg(windows)]
+    #[test]
+    fn a_file_held_open_without_sharing_is_still_being_written() {
+        use std::os::windows::fs::OpenOptionsExt;
+        // CreateFileW with dwShareMode 0: "Prevents other processes from opening a file
+        // ... if they request delete, read, or write access" (Microsoft, CreateFileW).
+        let dir = tempfile::tempdir().unwrap();
+        let p = dir.path().join("writing.fits");
+        let _writer = File::options()
+            .write(true)
+            .create_new(true)
+            .share_mode(0)
+            .open(&p)
+            .unwrap();
+        let e = File::open(&p).unwrap_err();
+        assert_eq!(e.raw_os_error(), Some(32));
+        assert!(is_still_being_written(&e));
+        assert!(!is_still_being_written(&io::Error::from_raw_os_error(5)));
     }
 
     #[test]

@@ -110,7 +110,7 @@ pub fn is_disk_full(e: &io::Error) -> bool {
     matches!(e.raw_os_error(), Some(libc::ENOSPC) | Some(libc::EDQUOT))
 }
 
-pub fn is_held_by_writer(_e: &io::Error) -> bool {
+pub fn is_still_being_written(_e: &io::Error) -> bool {
     // Unix has no opens that refuse sharing: a file being written is read as it grows.
     false
 }
@@ -226,6 +226,33 @@ impl StopRequests {
             _ = self.int.recv() => "SIGINT",
         }
     }
+}
+
+// The service commands are Windows'; under systemd the unit runs `subwatch watch`.
+
+pub fn service_install(_config: &Path) -> Result<(), super::ServiceError> {
+    Err(super::ServiceError::NotWindows)
+}
+
+pub fn service_uninstall() -> Result<(), super::ServiceError> {
+    Err(super::ServiceError::NotWindows)
+}
+
+pub fn service_start() -> Result<(), super::ServiceError> {
+    Err(super::ServiceError::NotWindows)
+}
+
+pub fn service_stop() -> Result<(), super::ServiceError> {
+    Err(super::ServiceError::NotWindows)
+}
+
+pub fn run_service(_daemon: super::Daemon) -> Result<(), super::ServiceError> {
+    Err(super::ServiceError::NotWindows)
+}
+
+pub fn service_log_folder() -> Option<PathBuf> {
+    // systemd's journal keeps the daemon's stderr.
+    None
 }
 
 pub fn system_folder(kind: &str) -> PathBuf {

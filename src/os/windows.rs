@@ -16,8 +16,8 @@ use std::process::{Child, Command, ExitStatus};
 
 use windows_sys::Win32::Foundation::{
     CloseHandle, LocalFree, ERROR_ALREADY_EXISTS, ERROR_DISK_FULL, ERROR_FILE_EXISTS,
-    ERROR_HANDLE_DISK_FULL, ERROR_LOCK_VIOLATION, ERROR_NOT_SAME_DEVICE, ERROR_SHARING_VIOLATION,
-    GENERIC_ALL, GENERIC_READ, HANDLE,
+    ERROR_HANDLE_DISK_FULL, ERROR_LOCK_VIOLATION, ERROR_NOT_SAME_DEVICE, GENERIC_ALL, GENERIC_READ,
+    HANDLE,
 };
 use windows_sys::Win32::Security::Authorization::{
     GetNamedSecurityInfoW, SetNamedSecurityInfoW, SE_FILE_OBJECT,
@@ -263,11 +263,8 @@ pub fn is_disk_full(e: &io::Error) -> bool {
     )
 }
 
-pub fn is_held_by_writer(e: &io::Error) -> bool {
-    matches!(
-        e.raw_os_error().map(|c| c as u32),
-        Some(ERROR_SHARING_VIOLATION) | Some(ERROR_LOCK_VIOLATION)
-    )
+pub fn is_still_being_written(e: &io::Error) -> bool {
+    e.raw_os_error().is_some_and(super::is_sharing_refusal)
 }
 
 pub fn try_lock(file: &File, exclusive: bool) -> io::Result<bool> {
@@ -575,8 +572,22 @@ impl StopRequests {
     }
 }
 
+#[path = "windows/service.rs"]
+mod service;
+
+pub use service::{
+    install as service_install, run as run_service, start as service_start, stop as service_stop,
+    uninstall as service_uninstall,
+};
+
+pub fn service_log_folder() -> Option<PathBuf> {
+    Some(system_folder("logs"))
+}
+
 pub fn system_folder(kind: &str) -> PathBuf {
-    let base = std::env::var_os("ProgramData")
+    // Environment names are case-insensitive on Windows; an unset or relative value (a
+    // service started with a stripped environment) falls back to the usual place.
+    let base = std::env::var_os("PROGRAMDATA")
         .map(PathBuf::from)
         .filter(|p| p.is_absolute())
         .unwrap_or_else(|| PathBuf::from(r"C:\ProgramData"));
@@ -623,6 +634,30 @@ mod tests {
         let c = canonical(&named).unwrap();
         assert!(!c.to_string_lossy().starts_with(r"\\?\"), "{}", c.display());
         assert!(c.ends_with("Nébuleuse ü"));
+    }
+
+    #[test]
+    fn the_sharing_codes_are_windows_own() {
+        use windows_sys::Win32::Foundation::{ERROR_ACCESS_DENIED, ERROR_SHARING_VIOLATION};
+        // winerror.h, as windows-sys carries it.
+        for code in [ERROR_SHARING_VIOLATION, ERROR_LOCK_VIOLATION] {
+            assert!(is_still_being_written(&io::Error::from_raw_os_error(
+                code as i32
+            )));
+        }
+        assert!(!is_still_being_written(&io::Error::from_raw_os_error(
+            ERROR_ACCESS_DENIED as i32
+        )));
+    }
+
+    #[test]
+    fn system_folders_are_under_programdata() {
+        // %ProgramData% (Microsoft, "Recognized environment variables"): a machine's
+        // application data, the same for every user.
+        let root = PathBuf::from(std::env::var_os("PROGRAMDATA").unwrap()).join("subwatch");
+        assert_eq!(system_folder("config"), root);
+        assert_eq!(system_folder("logs"), root.join("logs"));
+        assert_eq!(system_folder("data"), root.join("data"));
     }
 
     #[test]

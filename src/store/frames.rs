@@ -346,6 +346,15 @@ impl Store {
         )
     }
 
+    /// Take a file's mark away without a record: its reader found it still being written,
+    /// so it was not read (and that is no interruption to count).
+    pub fn end_reading(&self, id: &Identity) -> Result<(), StoreError> {
+        self.run(
+            "DELETE FROM reading WHERE rig = ?2 AND path = ?1",
+            values![id.path, self.rig],
+        )
+    }
+
     /// Files marked as being read that no record cleared: the process reading them
     /// stopped. Each one's count of interruptions goes up by one here (call once, at
     /// start-up, before any file is read).

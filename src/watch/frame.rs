@@ -34,6 +34,8 @@ pub(super) enum Outcome {
     },
     /// The file went before it could be read.
     Gone(PathBuf),
+    /// Its writer still holds it open: not read, to be settled again.
+    StillBeingWritten(PathBuf),
 }
 
 /// One line per frame: its numbers under the night document's names, or why it was set
@@ -83,10 +85,20 @@ pub(super) fn process(shared: &Shared, path: &Path) -> Outcome {
         }
     }
     let mtime_unix = identity.mtime_unix();
-    let record = shared
+    match shared
         .reader
-        .record(path, identity, mtime_unix, &shared.options);
-    store_record(shared, record)
+        .try_record(path, identity.clone(), mtime_unix, &shared.options)
+    {
+        Ok(record) => store_record(shared, record),
+        Err(_) => {
+            // Taken back in hand between the settle and the read: not finished after all.
+            let store = shared.store.lock().unwrap_or_else(|p| p.into_inner());
+            if let Err(e) = store.end_reading(&identity) {
+                tracing::debug!("{e} (clearing the mark of {})", shown(path));
+            }
+            Outcome::StillBeingWritten(path.to_path_buf())
+        }
+    }
 }
 
 /// Store a record, judge it, and do what the configuration asks with it.

@@ -321,12 +321,22 @@ impl Daemon {
             }
             let obs = observe(&path).map(|id| observation(&id));
             if self.tracker.observe(&path, obs, now, settle) {
+                // A file its writer still holds open (Windows refuses to share it) is not
+                // finished, however long its size has not changed: it settles again
+                // once it is let go.
+                let complete = match crate::frame::fits::looks_complete(&path) {
+                    Ok(c) => c,
+                    Err(_) => {
+                        self.tracker.restart(&path, now);
+                        continue;
+                    }
+                };
                 // Complete by the header's own account (plain FITS, padding included), or
                 // not checkable (compressed): the settle time alone decides. A file that
                 // stays short for a long time was cut off (a crash mid-write): it is
                 // read, and recorded with its error.
                 let given_up = self.tracker.stable_for(&path, now) > (10.0 * settle).max(60.0);
-                if given_up || crate::frame::fits::looks_complete(&path) != Some(false) {
+                if given_up || complete != Some(false) {
                     self.tracker.forget(&path);
                     self.ready.push_back(path);
                 }
@@ -408,6 +418,10 @@ impl Daemon {
                 Outcome::Gone(path) => {
                     self.in_flight.remove(&path);
                 }
+                Outcome::StillBeingWritten(path) => {
+                    self.in_flight.remove(&path);
+                    self.settle_again(path);
+                }
             }
         }
         if let (Some(error), false) = (retry_failed, self.shared.outage.away()) {
@@ -416,6 +430,18 @@ impl Daemon {
                 self.pending.len()
             );
         }
+    }
+
+    /// A file its reader found still held by its writer: tracked again, its settle time
+    /// started anew (its age since the last change does not count).
+    fn settle_again(&mut self, path: PathBuf) {
+        tracing::debug!(
+            "{} is still being written; it is read once it is let go",
+            shown(&path)
+        );
+        self.consider(path.clone());
+        let now = self.elapsed();
+        self.tracker.restart(&path, now);
     }
 
     fn log_stored(&mut self, log: Option<LogLine>) {
@@ -517,7 +543,7 @@ impl Daemon {
                                 "{} not recorded: {error}; it is read again at the next start",
                                 shown(Path::new(&record.identity.path))
                             ),
-                            Outcome::Gone(_) => {}
+                            Outcome::Gone(_) | Outcome::StillBeingWritten(_) => {}
                         }
                     }
                 }

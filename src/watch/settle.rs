@@ -59,6 +59,16 @@ impl SettleTracker {
         self.files.get(path).map_or(0.0, |w| now - w.stable_since)
     }
 
+    /// A tracked file its writer still holds open (a sharing violation on Windows): not
+    /// settled, whatever its size and time say, as if it had just changed. Its settle time
+    /// starts again from `now`, so it is read `settle` seconds after the writer lets go,
+    /// and a file held for long is never taken for one cut off mid-write.
+    pub fn restart(&mut self, path: &PathBuf, now: f64) {
+        if let Some(w) = self.files.get_mut(path) {
+            w.stable_since = now;
+        }
+    }
+
     /// Record a new observation of a tracked file (None: it is gone). Returns true when
     /// the file has been unchanged for `settle` seconds.
     pub fn observe(
@@ -104,5 +114,23 @@ mod tests {
         // Deleted before it settled: forgotten.
         assert!(!t.observe(&p, None, 5.0, 2.0));
         assert!(t.is_empty());
+    }
+
+    #[test]
+    fn a_file_still_held_by_its_writer_settles_only_after_it_is_let_go() {
+        let mut t = SettleTracker::default();
+        let p = PathBuf::from("/f.fits");
+        let o = Observation {
+            size: 2880,
+            mtime_ns: 1,
+        };
+        // Found at start-up, unchanged for an hour: settled at once...
+        t.track(p.clone(), o, 0.0, 3600.0);
+        assert!(t.observe(&p, Some(o), 0.0, 2.0));
+        // ...but its writer holds it: the settle time starts again, as for a change.
+        t.restart(&p, 0.0);
+        assert!(t.stable_for(&p, 1.0) < 2.0);
+        assert!(!t.observe(&p, Some(o), 1.0, 2.0));
+        assert!(t.observe(&p, Some(o), 2.0, 2.0));
     }
 }

@@ -15,10 +15,39 @@ pub struct Daemon {
     pub child: Child,
 }
 
+/// `subwatch watch` started as its own process group on Windows, so that a Ctrl-Break
+/// sent to that group reaches it alone.
+fn daemon_command() -> Command {
+    let mut cmd = Command::new(super::binary());
+    #[cfg(windows)]
+    {
+        use std::os::windows::process::CommandExt;
+        // CREATE_NEW_PROCESS_GROUP (Microsoft, "Process Creation Flags").
+        cmd.creation_flags(0x0000_0200);
+    }
+    cmd.args(["watch", "--config"]);
+    cmd
+}
+
+/// Ask a daemon to stop as its system does: SIGTERM on Unix, Ctrl-Break to its process
+/// group on Windows (the requests the daemon listens for, `os::StopRequests`).
+fn ask_to_stop(child: &Child) {
+    // SAFETY: signalling our own child.
+    #[cfg(unix)]
+    unsafe {
+        libc::kill(child.id() as i32, libc::SIGTERM);
+    }
+    // SAFETY: a control event for the process group our child leads (its id).
+    #[cfg(windows)]
+    unsafe {
+        use windows_sys::Win32::System::Console::{GenerateConsoleCtrlEvent, CTRL_BREAK_EVENT};
+        GenerateConsoleCtrlEvent(CTRL_BREAK_EVENT, child.id());
+    }
+}
+
 impl Daemon {
     pub fn start(config: &Path) -> Daemon {
-        let child = Command::new(super::binary())
-            .args(["watch", "--config"])
+        let child = daemon_command()
             .arg(config)
             .env("SUBWATCH_LOG", "info")
             .stdout(Stdio::null())
@@ -37,9 +66,9 @@ impl Daemon {
         let _ = self.child.wait();
     }
 
-    /// SIGTERM, then the exit status.
+    /// SIGTERM (Ctrl-Break on Windows), then the exit status.
     pub fn terminate(mut self) -> std::process::ExitStatus {
-        ask_to_stop(&mut self.child);
+        ask_to_stop(&self.child);
         self.child.wait().expect("wait")
     }
 }
@@ -59,8 +88,7 @@ pub struct Logged {
 
 impl Logged {
     pub fn start(config: &Path) -> Logged {
-        let mut child = Command::new(super::binary())
-            .args(["watch", "--config"])
+        let mut child = daemon_command()
             .arg(config)
             .env_remove("SUBWATCH_LOG")
             .stdout(Stdio::null())
@@ -101,7 +129,7 @@ impl Logged {
 
     /// SIGTERM, then the whole log.
     pub fn stop(mut self) -> String {
-        ask_to_stop(&mut self.child);
+        ask_to_stop(&self.child);
         let _ = self.child.wait();
         std::thread::sleep(Duration::from_millis(200));
         self.log()
@@ -228,17 +256,4 @@ pub fn feed_one_by_one(
             std::thread::sleep(Duration::from_millis(50));
         }
     }
-}
-
-/// SIGTERM on Unix. A console program on Windows has no signal a test can send to it
-/// alone (Ctrl-Break goes to a whole console group), so there the test ends it outright:
-/// every record is its own transaction, so what it recorded stays.
-pub fn ask_to_stop(child: &mut std::process::Child) {
-    #[cfg(unix)]
-    // SAFETY: signalling our own child.
-    unsafe {
-        libc::kill(child.id() as i32, libc::SIGTERM);
-    }
-    #[cfg(windows)]
-    let _ = child.kill();
 }

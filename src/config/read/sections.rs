@@ -417,6 +417,19 @@ pub(super) fn voevent(r: &mut Reader<'_>) -> VoEventConfig {
     }
 }
 
+/// `[log]`: how many days of the Windows service's daily files are kept.
+pub(super) fn log(r: &mut Reader<'_>) -> LogConfig {
+    LogConfig {
+        keep_days: r.whole(
+            "log",
+            "keep_days",
+            u64::from(LogConfig::default().keep_days),
+            (1, 3650),
+            "a whole number of days from 1 to 3650",
+        ) as u32,
+    }
+}
+
 /// `[calibration]`: earlier nights' frames, and the flats' level band.
 pub(super) fn calibration(r: &mut Reader<'_>) -> CalibrationConfig {
     let d = crate::night::calibration::CalibrationSettings::default();
