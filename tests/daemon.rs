@@ -683,7 +683,7 @@ fn a_store_reached_unencrypted_is_said_loudly_unless_it_is_on_this_machine() {
     let s = site("");
     let base = std::fs::read_to_string(&s.config)
         .unwrap()
-        .replace(&format!("[store]\npath = \"{}\"\n", s.db.display()), "");
+        .replace(&format!("[store]\npath = '{}'\n", s.db.display()), "");
     let with_url = |name: &str, url: &str| {
         let p = s.root.join(name);
         std::fs::write(&p, format!("{base}[store]\nurl = \"{url}\"\n")).unwrap();
@@ -743,7 +743,7 @@ fn a_store_password_changed_mid_night_is_named_and_taken_up_from_the_file() {
     subwatch::os::make_private(&pw).unwrap();
     let base = std::fs::read_to_string(&s.config)
         .unwrap()
-        .replace(&format!("[store]\npath = \"{}\"\n", s.db.display()), "");
+        .replace(&format!("[store]\npath = '{}'\n", s.db.display()), "");
     let cfg = s.root.join("shared.toml");
     std::fs::write(
         &cfg,

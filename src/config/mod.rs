@@ -553,7 +553,8 @@ pub fn load(path: &Path) -> Result<Config, ConfigError> {
         .parent()
         .filter(|p| !p.as_os_str().is_empty())
         .unwrap_or(Path::new("."));
-    let base = crate::os::canonical(folder).unwrap_or_else(|_| folder.to_path_buf());
+    // Made absolute as written (no links resolved, and on Windows no `\\?\` prefix).
+    let base = std::path::absolute(folder).unwrap_or_else(|_| folder.to_path_buf());
     let mut config = parse(&text, &base).map_err(|problems| ConfigError::Invalid {
         path: path.to_path_buf(),
         problems,
