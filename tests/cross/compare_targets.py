@@ -38,7 +38,7 @@ def run(command, args, wine):
 
 def measure_docs(command, frames, wine):
     docs = [json.loads(line) for line in run(command, ["measure", "--json", *frames], wine).splitlines() if line.strip()]
-    return {os.path.basename(d["file"].replace("\\", "/")): d for d in docs}
+    return {os.path.basename((d.get("path") or d.get("file")).replace("\\", "/")): d for d in docs}
 
 
 def night_doc(command, night, wine):
