@@ -34,6 +34,24 @@ struct Reader<'a> {
 }
 
 impl<'a> Reader<'a> {
+    /// The `[[name]]` tables the file gives (none when it gives no `name`); a `name` that
+    /// is not an array of tables is a problem, said with `what` it must be.
+    fn array_of_tables(&mut self, name: &str, what: &str) -> &'a [toml::Value] {
+        let root: &'a toml::Table = self.root;
+        match root.get(name) {
+            None => &[],
+            Some(toml::Value::Array(tables)) => tables,
+            Some(_) => {
+                self.problems.push(ConfigProblem {
+                    key: name.into(),
+                    line: find_line(self.text, None, name),
+                    message: what.into(),
+                });
+                &[]
+            }
+        }
+    }
+
     fn problem(&mut self, section: &str, key: &str, message: String) {
         self.problems.push(ConfigProblem {
             key: if key.is_empty() {

@@ -10,17 +10,7 @@ const KEYS: [&str; 6] = ["reason", "metric", "test", "value", "verdict", "frames
 
 /// Every `[[rules]]` table read and checked; a rule with a problem is left out.
 pub(super) fn read(r: &mut Reader<'_>) -> Vec<RuleSpec> {
-    let Some(value) = r.root.get("rules") else {
-        return Vec::new();
-    };
-    let Some(tables) = value.as_array() else {
-        r.problems.push(ConfigProblem {
-            key: "rules".into(),
-            line: super::find_line(r.text, None, "rules"),
-            message: "must be [[rules]] tables".into(),
-        });
-        return Vec::new();
-    };
+    let tables = r.array_of_tables("rules", "must be [[rules]] tables");
     let mut rules = Vec::new();
     for (k, t) in tables.iter().enumerate() {
         let span = nth_rules_span(r.text, k);

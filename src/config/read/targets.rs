@@ -19,17 +19,10 @@ fn nth_header(text: &str, k: usize) -> Option<usize> {
 
 /// Every `[[targets]]` table read and checked; a target with a problem is left out.
 pub(super) fn read(r: &mut Reader<'_>) -> Vec<TargetPlan> {
-    let Some(value) = r.root.get("targets") else {
-        return Vec::new();
-    };
-    let Some(tables) = value.as_array() else {
-        r.problems.push(ConfigProblem {
-            key: "targets".into(),
-            line: super::find_line(r.text, None, "targets"),
-            message: "must be [[targets]] tables, each with a name and hours per filter".into(),
-        });
-        return Vec::new();
-    };
+    let tables = r.array_of_tables(
+        "targets",
+        "must be [[targets]] tables, each with a name and hours per filter",
+    );
     let mut plans: Vec<TargetPlan> = Vec::new();
     for (k, t) in tables.iter().enumerate() {
         let line = nth_header(r.text, k);
