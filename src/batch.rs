@@ -9,7 +9,8 @@ use crate::contract::{
     AnomalyRecord, CatalogueMatch, DetectionRecord, GroupLimits, NightDocument, NightFrameRecord,
 };
 use crate::night::judge::{judge_night, FrameJudgement, NightJudgement, Site};
-use crate::record::{FrameRecord, FrameStatus, Identity};
+use crate::reader::NotRecorded;
+use crate::record::{FrameRecord, FrameStatus};
 use crate::rules::RuleSpec;
 use crate::store::{Store, StoreError};
 
@@ -562,12 +563,12 @@ pub fn run_night(
     let total = files.len();
     let mut records = Vec::with_capacity(total);
     for (k, path) in files.iter().enumerate() {
-        // A file that went between the walk and now is left out.
-        let Ok(identity) = Identity::of(path) else {
-            continue;
-        };
-        let mtime_unix = identity.mtime_unix();
-        records.push(reader.record(path, identity, mtime_unix, &options));
+        match reader.record_once_let_go(path, &options, crate::reader::HELD_PATIENCE) {
+            Ok(record) => records.push(record),
+            // A file that went between the walk and now is left out.
+            Err(NotRecorded::Gone(_)) => {}
+            Err(held) => tracing::warn!("{}: {held}; left out of this night", path.display()),
+        }
         progress(k + 1, total);
     }
     let mut doc = analyse_records(

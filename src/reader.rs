@@ -374,6 +374,21 @@ fn answer(request: Request) -> Reply {
     }
 }
 
+/// Why a one-shot command did not record a file ([`Reader::record_once_let_go`]).
+#[derive(Debug, Clone, PartialEq, Eq, thiserror::Error)]
+pub enum NotRecorded {
+    /// It went, or cannot be looked at, between the listing and now.
+    #[error("{0}")]
+    Gone(String),
+    /// Another program still held it open without sharing when the patience ran out: left
+    /// for a later run, not recorded as unreadable.
+    #[error("another program still holds it open (still being written) after {} s; run again once it is let go", .0.as_secs())]
+    StillHeld(Duration),
+}
+
+/// How long `measure`, `night` and `archive` wait for a file another program holds open.
+pub const HELD_PATIENCE: Duration = Duration::from_secs(120);
+
 impl Reader {
     /// Decode, classify and measure one file into its record. Never fails: a problem,
     /// the worker's crash and a file still being written included, becomes a record with
@@ -391,6 +406,41 @@ impl Reader {
                 r.night = crate::sky::night_label(mtime_unix, options.timezone);
                 r
             })
+    }
+
+    /// A file recorded once its writer lets it go, for the one-shot commands (`measure`,
+    /// `night`, `archive`), which have no settle tracker to come back to it: while another
+    /// program holds it open without sharing (a capture program writing it, on Windows)
+    /// this asks again every second, for up to `patience`. Its identity is taken when it
+    /// is read, as the file it was being written into is another file.
+    pub fn record_once_let_go(
+        &self,
+        path: &Path,
+        options: &RecordOptions,
+        patience: Duration,
+    ) -> Result<FrameRecord, NotRecorded> {
+        let start = Instant::now();
+        let mut said = false;
+        loop {
+            let identity =
+                Identity::of(path).map_err(|e| NotRecorded::Gone(crate::text::io_reason(&e)))?;
+            let mtime = identity.mtime_unix();
+            match self.try_record(path, identity, mtime, options) {
+                Ok(record) => return Ok(record),
+                Err(StillBeingWritten) if start.elapsed() < patience => {
+                    if !said {
+                        tracing::info!(
+                            "{}: another program holds it open (still being written); waiting up to {} s",
+                            path.display(),
+                            patience.as_secs()
+                        );
+                        said = true;
+                    }
+                    std::thread::sleep(Duration::from_secs(1));
+                }
+                Err(StillBeingWritten) => return Err(NotRecorded::StillHeld(patience)),
+            }
+        }
     }
 
     /// As [`Reader::record`], except that a file its writer still holds open is said as

@@ -70,3 +70,31 @@ fn frames_copied_in_and_one_held_while_written_are_each_recorded_once() {
         assert_eq!(status, "ok", "{path}: {error:?}");
     }
 }
+
+/// A one-shot command meets a frame its writer still holds (`measure` here; `night` and
+/// `archive` read through the same `Reader::record_once_let_go`): it waits for the writer
+/// to let it go and measures the finished frame, rather than calling it unreadable.
+/// Windows only: elsewhere nothing tells a one-shot reader that a file is unfinished.
+#[cfg(windows)]
+#[test]
+fn a_one_shot_measure_waits_for_a_frame_its_writer_holds() {
+    let dir = tempfile::tempdir().unwrap();
+    let held = dir.path().join("kfa_held.fits");
+    let bytes = frame_bytes(42, dir.path(), "Light");
+    let mut f = open_as_capture(&held);
+    f.write_all(&bytes[..bytes.len() / 2]).unwrap();
+    f.flush().unwrap();
+    let measure = std::process::Command::new(common::binary())
+        .args(["measure", "--json"])
+        .arg(&held)
+        .stdout(std::process::Stdio::piped())
+        .spawn()
+        .unwrap();
+    std::thread::sleep(Duration::from_secs(3));
+    f.write_all(&bytes[bytes.len() / 2..]).unwrap();
+    drop(f);
+    let out = measure.wait_with_output().unwrap();
+    let doc: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    assert_eq!(doc["status"], "ok", "{doc}");
+    assert!(doc["star_count"].as_u64().unwrap() > 0, "{doc}");
+}

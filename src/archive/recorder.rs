@@ -10,6 +10,7 @@ use std::time::{Duration, Instant};
 
 use super::{ArchiveError, Progress, Stage, LEASE_S, RENEW_EVERY};
 use crate::config::Config;
+use crate::reader::NotRecorded;
 use crate::record::{FrameRecord, FrameStatus, Identity};
 use crate::store::{Recorded, Store};
 
@@ -98,11 +99,17 @@ impl<'s> Recorder<'s> {
                 s.spawn(move || loop {
                     let job = rx.lock().unwrap_or_else(|p| p.into_inner()).recv();
                     let Ok(job) = job else { break };
-                    // A file that went since the walk is left out.
-                    let record = Identity::of(&job.path).ok().map(|id| {
-                        let mtime = id.mtime_unix();
-                        reader.record(&job.path, id, mtime, options)
-                    });
+                    let patience = crate::reader::HELD_PATIENCE;
+                    let record = match reader.record_once_let_go(&job.path, options, patience) {
+                        Ok(record) => Some(record),
+                        // A file that went since the walk is left out.
+                        Err(NotRecorded::Gone(_)) => None,
+                        // Left for the next run, which records what is not in the store.
+                        Err(held) => {
+                            tracing::warn!("{}: {held}", job.path.display());
+                            None
+                        }
+                    };
                     if tx.send((job.unit, record)).is_err() {
                         break;
                     }

@@ -102,7 +102,9 @@ fn measure_command(
                 size: 0,
                 mtime_ns: 0,
             });
-        let rec = reader.record(path, identity, 0.0, opts);
+        let rec = reader
+            .record_once_let_go(path, opts, subwatch::reader::HELD_PATIENCE)
+            .unwrap_or_else(|e| subwatch::record::FrameRecord::failed(identity, &e.to_string()));
         let record = match (rec.status, rec.metrics) {
             (subwatch::record::FrameStatus::Ok, Some(metrics)) => MeasureRecord {
                 path: shown.clone(),
