@@ -261,3 +261,59 @@ fn frames_are_measured_under_the_callers_address_space_limit() {
         assert_eq!(out.status.code(), Some(0));
     }
 }
+
+/// A full-frame sensor's frame (9576 x 6388, 61 megapixels, 16-bit) on a 4 GB computer at
+/// the mount: the reader's automatic limit there is three quarters of the memory, 3 GiB
+/// (`reader::Isolation::new`), and the whole process has at most the 4 GiB address space
+/// such a computer can give. The frame is measured within both, and measured right: the
+/// background and noise the renderer put in (SimTruth), the FWHM it rendered.
+#[cfg(unix)]
+#[test]
+fn a_61_megapixel_frame_is_measured_within_a_4_gb_computers_limits() {
+    let dir = tempfile::tempdir().unwrap();
+    let params = SimParams {
+        width: 9576,
+        height: 6388,
+        star_count: 3000,
+        fwhm_px: 3.2,
+        seed: 61,
+        ..Default::default()
+    };
+    let (frame, truth) = render_to(dir.path(), "full-frame.fits", &params, Encoding::Unsigned16);
+    let config = dir.path().join("subwatch.toml");
+    std::fs::write(
+        &config,
+        "[watch]\nfolders = ['.']\n[store]\npath = 'subwatch.db'\n[measure]\nreader_memory_mb = 3072\n",
+    )
+    .unwrap();
+    let out = std::process::Command::new("sh")
+        .arg("-c")
+        .arg("ulimit -v 4194304 && exec \"$0\" measure --json --config \"$1\" \"$2\"")
+        .arg(common::binary())
+        .arg(&config)
+        .arg(&frame)
+        .output()
+        .unwrap();
+    let stdout = String::from_utf8_lossy(&out.stdout);
+    let doc: serde_json::Value = serde_json::from_str(stdout.trim())
+        .unwrap_or_else(|e| panic!("{e}: {stdout} {}", String::from_utf8_lossy(&out.stderr)));
+    assert_eq!(doc["status"], "ok", "{doc}");
+    assert_eq!(out.status.code(), Some(0));
+    assert_eq!(
+        (doc["width"].as_u64(), doc["height"].as_u64()),
+        (Some(9576), Some(6388))
+    );
+    let close = |key: &str, want: f64, tolerance: f64| {
+        let got = doc[key]
+            .as_f64()
+            .unwrap_or_else(|| panic!("no {key}: {doc}"));
+        assert!(
+            (got - want).abs() <= tolerance * want,
+            "{key}: measured {got}, rendered {want}"
+        );
+    };
+    close("background_adu", truth.background_adu, 0.01);
+    close("noise_adu", truth.noise_adu, 0.05);
+    close("fwhm_px", truth.fwhm_px, 0.03);
+    assert!(doc["star_count"].as_u64().unwrap() > 500, "{doc}");
+}
