@@ -126,7 +126,7 @@ impl Analysis<'_, '_> {
         let carried: Vec<Option<crate::astrometry::SkyFit>> = frames
             .iter()
             .zip(&judged.frames)
-            .map(|(r, j)| carried_fit(r, j.placement.as_ref(), frames))
+            .map(|(r, j)| carried_fit(r, j.placement.as_ref(), judged.reference.map(|i| frames[i])))
             .collect();
         for ((r, j), carried) in frames.iter().zip(&judged.frames).zip(&carried) {
             self.doc.frames.push(light_record(r, j, carried));
@@ -177,11 +177,7 @@ impl Analysis<'_, '_> {
         judged: &NightJudgement,
     ) {
         let found = &judged.findings;
-        let reference = judged
-            .frames
-            .iter()
-            .find_map(|j| j.placement.as_ref().map(|p| p.reference.clone()))
-            .and_then(|path| frames.iter().find(|r| r.identity.path == path).copied());
+        let reference = judged.reference.map(|r| frames[r]);
         if let (Some(r), false, false) = (reference, target.is_empty(), filter.is_empty()) {
             if let (Some(wcs), false) = (r.wcs.clone(), found.catalog.is_empty()) {
                 let entries = self.bands.entry(target.to_string()).or_default();
@@ -420,7 +416,7 @@ fn band_colors(target: &str, entries: &[BandEntry]) -> Vec<AnomalyRecord> {
 fn carried_fit(
     r: &FrameRecord,
     placement: Option<&crate::night::register::Placement>,
-    group: &[&FrameRecord],
+    reference: Option<&FrameRecord>,
 ) -> Option<crate::astrometry::SkyFit> {
     let m = r.metrics.as_ref()?;
     if m.sky_fit.is_some() {
@@ -428,7 +424,7 @@ fn carried_fit(
     }
     let p = placement.filter(|p| p.registered)?;
     let affine = p.affine()?;
-    let reference = group.iter().find(|g| g.identity.path == p.reference)?;
+    let reference = reference?;
     let fit = reference.metrics.as_ref()?.sky_fit.as_ref()?;
     let wcs = crate::astrometry::carry(&fit.wcs, affine.a, affine.t, m.width, m.height)?;
     Some(crate::astrometry::SkyFit {

@@ -81,7 +81,8 @@ impl Store {
         .map_err(|e| self.err(e))
     }
 
-    /// Record where a frame sits on its group's reference frame.
+    /// Record where a frame sits on its group's reference frame (the placement names the
+    /// reference's record id).
     pub fn set_placement(&self, id: i64, p: &Placement) -> Result<(), StoreError> {
         self.run(
             "UPDATE frames SET placement_json = ?2, registration_rms_px = ?3 WHERE id = ?1",

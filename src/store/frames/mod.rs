@@ -52,6 +52,14 @@ fn group_key(r: &Row, at: usize) -> Result<GroupKey, DbError> {
 const FRAME_COLUMNS: &str = "id, path, size, mtime_ns, status, error, night, target, filter,
     time_unix, metrics_json, wcs_json, header_json, placement_json, calibration_json";
 
+/// A placement as the store keeps it (`placement_json`): naming its reference by the
+/// reference's record id. One stored before placements did so names it by path; it
+/// reads as none, so the next live verdict of its group places the frame again on the
+/// reference's stars, as it would a frame never placed.
+pub(in crate::store) fn stored_placement(json: &str) -> Option<Placement> {
+    serde_json::from_str(json).ok()
+}
+
 fn frame_from_row(r: &Row) -> Result<(i64, FrameRecord, Option<Placement>), DbError> {
     let status: String = r.get(4)?;
     let json = |k: usize| -> Result<Option<String>, DbError> { r.get(k) };
@@ -76,7 +84,7 @@ fn frame_from_row(r: &Row) -> Result<(i64, FrameRecord, Option<Placement>), DbEr
             wcs: json(11)?.and_then(|w| serde_json::from_str(&w).ok()),
             calibration: json(14)?.and_then(|c| serde_json::from_str(&c).ok()),
         },
-        json(13)?.and_then(|p| serde_json::from_str(&p).ok()),
+        json(13)?.as_deref().and_then(stored_placement),
     ))
 }
 
@@ -160,5 +168,20 @@ impl Store {
         })
         .collect::<Result<_, DbError>>()
         .map_err(|e| self.err(e))
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::stored_placement;
+
+    #[test]
+    fn a_placement_stored_with_its_reference_s_path_reads_as_none_and_one_with_its_id_reads() {
+        let by_path = r#"{"reference":"/night/light_004.fits","registered":true,
+            "transform":[1,0,0,1,2.5,-1],"rms_px":0.1,"matched":40,"offset_mag":0.02}"#;
+        assert_eq!(stored_placement(by_path), None);
+        let by_id = by_path.replace(r#""/night/light_004.fits""#, "17");
+        let p = stored_placement(&by_id).unwrap();
+        assert_eq!((p.reference, p.matched), (17, 40));
     }
 }
