@@ -123,10 +123,11 @@ impl Analysis<'_, '_> {
                 s.save_catalog(target, filter, n, limit, &found.footprint, &found.catalog)?;
             }
         }
+        let reference = judged.reference.map(|i| frames[i]);
         let carried: Vec<Option<crate::astrometry::SkyFit>> = frames
             .iter()
             .zip(&judged.frames)
-            .map(|(r, j)| carried_fit(r, j.placement.as_ref(), judged.reference.map(|i| frames[i])))
+            .map(|(r, j)| carried_fit(r, j.placement.as_ref(), reference))
             .collect();
         for ((r, j), carried) in frames.iter().zip(&judged.frames).zip(&carried) {
             self.doc.frames.push(light_record(r, j, carried));
@@ -411,8 +412,9 @@ fn band_colors(target: &str, entries: &[BandEntry]) -> Vec<AnomalyRecord> {
         .collect()
 }
 
-/// A frame without a sky fit of its own that registered on a reference frame with one:
-/// the reference's fit carried through the registration (`astrometry::carry`).
+/// A frame without a sky fit of its own that registered on its group's reference frame,
+/// which has one: the reference's fit carried through the registration
+/// (`astrometry::carry`).
 fn carried_fit(
     r: &FrameRecord,
     placement: Option<&crate::night::register::Placement>,
