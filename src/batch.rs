@@ -124,10 +124,11 @@ impl Analysis<'_, '_> {
                 s.save_catalog(target, filter, n, limit, &found.footprint, &found.catalog)?;
             }
         }
+        let reference = judged.reference.map(|i| frames[i]);
         let carried: Vec<Option<crate::astrometry::SkyFit>> = frames
             .iter()
             .zip(&judged.frames)
-            .map(|(r, j)| carried_fit(r, j.placement.as_ref(), frames))
+            .map(|(r, j)| carried_fit(r, j.placement.as_ref(), reference))
             .collect();
         for ((r, j), carried) in frames.iter().zip(&judged.frames).zip(&carried) {
             self.doc.frames.push(light_record(r, j, carried));
@@ -178,11 +179,7 @@ impl Analysis<'_, '_> {
         judged: &NightJudgement,
     ) {
         let found = &judged.findings;
-        let reference = judged
-            .frames
-            .iter()
-            .find_map(|j| j.placement.as_ref().map(|p| p.reference.clone()))
-            .and_then(|path| frames.iter().find(|r| r.identity.path == path).copied());
+        let reference = judged.reference.map(|r| frames[r]);
         if let (Some(r), false, false) = (reference, target.is_empty(), filter.is_empty()) {
             if let (Some(wcs), false) = (r.wcs.clone(), found.catalog.is_empty()) {
                 let entries = self.bands.entry(target.to_string()).or_default();
@@ -416,12 +413,13 @@ fn band_colors(target: &str, entries: &[BandEntry]) -> Vec<AnomalyRecord> {
         .collect()
 }
 
-/// A frame without a sky fit of its own that registered on a reference frame with one:
-/// the reference's fit carried through the registration (`astrometry::carry`).
+/// A frame without a sky fit of its own that registered on its group's reference frame,
+/// which has one: the reference's fit carried through the registration
+/// (`astrometry::carry`).
 fn carried_fit(
     r: &FrameRecord,
     placement: Option<&crate::night::register::Placement>,
-    group: &[&FrameRecord],
+    reference: Option<&FrameRecord>,
 ) -> Option<crate::astrometry::SkyFit> {
     let m = r.metrics.as_ref()?;
     if m.sky_fit.is_some() {
@@ -429,7 +427,7 @@ fn carried_fit(
     }
     let p = placement.filter(|p| p.registered)?;
     let affine = p.affine()?;
-    let reference = group.iter().find(|g| g.identity.path == p.reference)?;
+    let reference = reference?;
     let fit = reference.metrics.as_ref()?.sky_fit.as_ref()?;
     let wcs = crate::astrometry::carry(&fit.wcs, affine.a, affine.t, m.width, m.height)?;
     Some(crate::astrometry::SkyFit {

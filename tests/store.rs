@@ -4,6 +4,7 @@
 mod common;
 
 use common::postgres::TestDatabase;
+use subwatch::night::register::Placement;
 use subwatch::record::{FrameRecord, FrameStatus, Identity, StarRecord};
 use subwatch::store::{Interrupted, Location, Recorded, Store};
 
@@ -435,6 +436,74 @@ fn an_sqlite_store_copied_into_postgresql_reads_the_same_and_is_copied_once() {
         "{again}"
     );
     assert_eq!(shared.night_counts("2026-03-14").unwrap().frames, 3);
+}
+
+/// Placements name their reference frame by its record id; a copy gives every frame a new
+/// id (here another rig's frame holds the first one), so each placement follows its
+/// reference to the new id, and one stored in the earlier form (naming a path) is left
+/// out, to be made again.
+#[test]
+fn a_copy_points_each_placement_at_its_reference_s_new_id() {
+    let dir = tempfile::tempdir().unwrap();
+    let db = dir.path().join("s.db");
+    let ids: Vec<i64> = {
+        let mut s = Store::open_for_rig(&db, "north").unwrap();
+        let ids: Vec<i64> = ["/a.fits", "/b.fits", "/c.fits"]
+            .iter()
+            .enumerate()
+            .map(|(i, path)| {
+                let mut r = record(path, 10 + i as u64);
+                r.stars = (0..5).map(|k| star(k as f64, i as f64)).collect();
+                s.record_frame(&r, 1.0).unwrap().id().unwrap()
+            })
+            .collect();
+        for &id in &ids[..2] {
+            let p = Placement {
+                reference: ids[0],
+                registered: true,
+                matched: 5,
+                ..Default::default()
+            };
+            s.set_placement(id, &p).unwrap();
+        }
+        ids
+    };
+    rusqlite::Connection::open(&db)
+        .unwrap()
+        .execute(
+            "UPDATE frames SET placement_json = ?2 WHERE id = ?1",
+            rusqlite::params![
+                ids[2],
+                r#"{"reference":"/a.fits","registered":true,"matched":5}"#
+            ],
+        )
+        .unwrap();
+    let pg = TestDatabase::new();
+    let mut south = Store::connect_for_rig(&pg.location(), "south").unwrap();
+    south.record_frame(&record("/z.fits", 1), 1.0).unwrap();
+    subwatch::store::copy(&db, &pg.location(), None).unwrap();
+    let shared = Store::connect_for_rig(&pg.location(), "north").unwrap();
+    let group = shared
+        .group_records("2026-03-14", Some("Kestrel Field A"), Some("L"))
+        .unwrap();
+    let id_of = |path: &str| group.iter().find(|g| g.1.identity.path == path).unwrap().0;
+    assert_ne!(id_of("/a.fits"), ids[0]);
+    let placement = |path: &str| {
+        group
+            .iter()
+            .find(|g| g.1.identity.path == path)
+            .unwrap()
+            .2
+            .clone()
+    };
+    for path in ["/a.fits", "/b.fits"] {
+        assert_eq!(
+            placement(path).unwrap().reference,
+            id_of("/a.fits"),
+            "{path}"
+        );
+    }
+    assert_eq!(placement("/c.fits"), None);
 }
 
 /// Every row of an SQLite store as text, table by table: what "unchanged" compares.

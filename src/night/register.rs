@@ -11,8 +11,10 @@ use crate::pairs::nearest_pairs;
 /// A frame placed on its group's reference frame.
 #[derive(Debug, Clone, Default, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct Placement {
-    /// The reference frame's path (the placement holds while it stays the reference).
-    pub reference: String,
+    /// The id of the reference frame's record it was made on (`night::judge::Held::id`):
+    /// the placement holds while that record is the group's reference. A rewritten
+    /// reference is a new record, so what was placed on its old stars names another id.
+    pub reference: i64,
     pub registered: bool,
     /// Frame → reference transform [a00, a01, a10, a11, t0, t1] in FITS pixels.
     pub transform: Option<[f64; 6]>,

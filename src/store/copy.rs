@@ -1,7 +1,8 @@
 //! Copying an SQLite store into a shared PostgreSQL database (`subwatch store copy`): every
 //! row of every table, in one transaction, frames given new ids (other rigs' frames may
-//! hold the old ones) and their stars and rejected detections following them; then each
-//! table's rows counted on both sides.
+//! hold the old ones) and their stars, rejected detections and placements (which name
+//! their reference frame's record) following them; then each table's rows counted on
+//! both sides.
 //!
 //! The source is opened read-only and never written, not even migrated: a daemon may be
 //! running on it, and a copy that fails must leave it as it was. Rows an unnamed rig
@@ -12,6 +13,7 @@ use std::collections::HashMap;
 
 use super::db::{values, Conn, DbError, Value};
 use super::{Location, Store, StoreError};
+use crate::night::register::Placement;
 
 /// Tables whose rows are copied as they are (every column), in this order.
 const PLAIN_TABLES: &[&str] = &["reading", "catalog_nights", "catalog"];
@@ -269,6 +271,8 @@ impl Job<'_> {
             placeholders(frame_columns.len(), 1)
         );
         let mut new_id: HashMap<i64, i64> = HashMap::new();
+        let placement_at = frame_columns.iter().position(|c| c == "placement_json");
+        let mut placed = Vec::new();
         for row in naming.rows(
             source,
             &format!(
@@ -283,8 +287,36 @@ impl Job<'_> {
                 .and_then(|r| r.get(0))
                 .map_err(|e| self.dest.err(e))?;
             new_id.insert(old, id);
+            if let Some(Value::Text(json)) = placement_at.map(|k| &row.0[1 + k]) {
+                placed.push((id, super::frames::stored_placement(json)));
+            }
         }
+        self.placements(placed, &new_id)?;
         Ok(new_id)
+    }
+
+    /// A placement names its reference by record id: each copied one is pointed at the
+    /// reference's new id. One whose reference was not copied, or stored in the form
+    /// before ids, is left out: the frame is placed again when its group is next judged.
+    fn placements(
+        &self,
+        placed: Vec<(i64, Option<Placement>)>,
+        new_id: &HashMap<i64, i64>,
+    ) -> Result<(), StoreError> {
+        for (id, placement) in placed {
+            let moved = placement.and_then(|mut p| {
+                p.reference = *new_id.get(&p.reference)?;
+                serde_json::to_string(&p).ok()
+            });
+            self.dest
+                .conn
+                .execute(
+                    "UPDATE frames SET placement_json = ?2 WHERE id = ?1",
+                    values![id, moved],
+                )
+                .map_err(|e| self.dest.err(e))?;
+        }
+        Ok(())
     }
 
     /// A table of rows hanging from frames, pointed at the frames' new ids.

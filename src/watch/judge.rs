@@ -1,10 +1,14 @@
-//! The live verdict: a frame just recorded is judged by the night model (`night::judge`)
-//! applied to its group's night so far, as that module's live rule says; its verdict is
-//! stored (and kept as its live verdict) and its group's list rewritten. Only the new
-//! frame is registered, unless the group's reference changed since the others were.
+//! The live verdict: a frame just recorded is judged by the night model
+//! (`night::judge::judge_group`) applied to its group's night so far, as that module's
+//! live rule says; its verdict is stored (and kept as its live verdict) and its group's
+//! list rewritten. This shell only reads and writes the store: it hands the model the
+//! group's records with the placements stored for them and reads the stars the model
+//! asks for (the frames it must place: the new one, or every one when the group's
+//! reference record changed), and stores the placements the model made.
 
-use crate::night::judge::{self, Site};
-use crate::night::register::Placement;
+use std::borrow::Cow;
+
+use crate::night::judge::{self, Held, Site};
 use crate::record::FrameRecord;
 use crate::rules::Verdict;
 use crate::store::{GroupKey, Store, StoreError};
@@ -111,29 +115,25 @@ fn judge_frame(
         return judge_calibration_frame(store, night, id, judging);
     }
     let group = store.group_records(night, key.target.as_deref(), key.filter.as_deref())?;
-    let records: Vec<&FrameRecord> = group.iter().map(|g| &g.1).collect();
-    let order = judge::time_order(&records);
-    let ids: Vec<i64> = order.iter().map(|&i| group[i].0).collect();
-    let frames: Vec<&FrameRecord> = order.iter().map(|&i| records[i]).collect();
-    let mut placements: Vec<Option<Placement>> =
-        order.iter().map(|&i| group[i].2.clone()).collect();
-    // Register what is not yet registered on the group's reference (the new frame, or
-    // every frame when the reference moved: only while the window is filling).
-    if let Some((r, stale)) = judge::to_place(&frames, &placements) {
-        let reference_stars = store.frame_star_records(ids[r])?;
-        let reference = (frames[r].identity.path.as_str(), reference_stars.as_slice());
-        for i in stale {
-            let stars = store.frame_star_records(ids[i])?;
-            let p = judge::place(reference, (&frames[i].identity.path, &stars));
-            store.set_placement(ids[i], &p)?;
-            placements[i] = Some(p);
+    let held: Vec<Held> = group
+        .iter()
+        .map(|(id, record, known)| Held {
+            record,
+            id: *id,
+            known: known.as_ref(),
+        })
+        .collect();
+    let stars = |i: usize| store.frame_star_records(group[i].0).map(Cow::Owned);
+    let judged = judge::judge_group(&held, stars, &judging.rules, judging.site)?;
+    for &i in &judged.placed {
+        if let Some(p) = &judged.frames[i].placement {
+            store.set_placement(group[i].0, p)?;
         }
     }
-    let judged = judge::judge_group(&frames, &placements, &judging.rules, judging.site);
-    let Some(k) = ids.iter().position(|&x| x == id) else {
+    let Some(k) = group.iter().position(|g| g.0 == id) else {
         return Ok(None);
     };
-    let j = &judged[k];
+    let j = &judged.frames[k];
     let verdict = j.judgement.verdict;
     store.set_live_verdict(id, &j.judgement, j.transparency_loss_mag)?;
     if let Some(lists) = judging.lists.as_ref() {
