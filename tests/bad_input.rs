@@ -244,22 +244,33 @@ fn pixel_limit_is_configurable() {
 fn frames_are_measured_under_the_callers_address_space_limit() {
     let frame = Path::new(env!("CARGO_MANIFEST_DIR")).join("sample-frames/kfa-001-good.fits");
     for limit_kib in [4_194_304u64, 1_048_576] {
-        let out = std::process::Command::new("sh")
-            .arg("-c")
-            .arg(format!(
-                "ulimit -v {limit_kib} && exec \"$0\" measure --json \"$1\""
-            ))
-            .arg(common::binary())
-            .arg(&frame)
-            .output()
-            .unwrap();
-        let stdout = String::from_utf8_lossy(&out.stdout);
-        let doc: serde_json::Value = serde_json::from_str(stdout.trim())
-            .unwrap_or_else(|e| panic!("{e}: {stdout} {}", String::from_utf8_lossy(&out.stderr)));
+        let (doc, code) = measure_in_address_space(limit_kib, &[frame.as_os_str()]);
         assert_eq!(doc["status"], "ok", "under {limit_kib} KiB: {doc}");
         assert!(doc["star_count"].as_u64().unwrap() > 10, "{doc}");
-        assert_eq!(out.status.code(), Some(0));
+        assert_eq!(code, Some(0));
     }
+}
+
+/// `subwatch measure --json ARGS` in a shell whose address space is `limit_kib` KiB (the
+/// hard limit a scheduler or a small computer sets): its one JSON line and exit code.
+#[cfg(unix)]
+fn measure_in_address_space(
+    limit_kib: u64,
+    args: &[&std::ffi::OsStr],
+) -> (serde_json::Value, Option<i32>) {
+    let out = std::process::Command::new("sh")
+        .arg("-c")
+        .arg(format!(
+            "ulimit -v {limit_kib} && exec \"$0\" measure --json \"$@\""
+        ))
+        .arg(common::binary())
+        .args(args)
+        .output()
+        .unwrap();
+    let stdout = String::from_utf8_lossy(&out.stdout);
+    let doc = serde_json::from_str(stdout.trim())
+        .unwrap_or_else(|e| panic!("{e}: {stdout} {}", String::from_utf8_lossy(&out.stderr)));
+    (doc, out.status.code())
 }
 
 /// A full-frame sensor's frame (9576 x 6388, 61 megapixels, 16-bit) on a 4 GB computer at
@@ -286,19 +297,10 @@ fn a_61_megapixel_frame_is_measured_within_a_4_gb_computers_limits() {
         "[watch]\nfolders = ['.']\n[store]\npath = 'subwatch.db'\n[measure]\nreader_memory_mb = 3072\n",
     )
     .unwrap();
-    let out = std::process::Command::new("sh")
-        .arg("-c")
-        .arg("ulimit -v 4194304 && exec \"$0\" measure --json --config \"$1\" \"$2\"")
-        .arg(common::binary())
-        .arg(&config)
-        .arg(&frame)
-        .output()
-        .unwrap();
-    let stdout = String::from_utf8_lossy(&out.stdout);
-    let doc: serde_json::Value = serde_json::from_str(stdout.trim())
-        .unwrap_or_else(|e| panic!("{e}: {stdout} {}", String::from_utf8_lossy(&out.stderr)));
+    let args = ["--config".as_ref(), config.as_os_str(), frame.as_os_str()];
+    let (doc, code) = measure_in_address_space(4_194_304, &args);
     assert_eq!(doc["status"], "ok", "{doc}");
-    assert_eq!(out.status.code(), Some(0));
+    assert_eq!(code, Some(0));
     assert_eq!(
         (doc["width"].as_u64(), doc["height"].as_u64()),
         (Some(9576), Some(6388))
