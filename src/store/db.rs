@@ -4,7 +4,6 @@
 //! `$N`. Values cross as one small type that adapts to the column it meets, since
 //! PostgreSQL, unlike SQLite, is strict about a parameter's type.
 
-use std::cell::RefCell;
 use std::collections::HashMap;
 
 use bytes::BytesMut;
@@ -426,7 +425,8 @@ pub type Settings = Box<dyn Fn() -> Result<postgres::Config, String> + Send>;
 
 /// A PostgreSQL connection that comes back after the server went away: a broken
 /// connection is opened again at the next call, though never inside a transaction (its
-/// first statements went with the old connection).
+/// first statements went with the old connection). It lives on its connection's thread
+/// (see [`PgThread`]).
 pub struct PgConn {
     settings: Settings,
     /// TLS to the server, where the address asks for it.
@@ -488,6 +488,45 @@ impl PgConn {
         self.statements.insert(sql.to_string(), st.clone());
         Ok(st)
     }
+
+    /// One statement; the number of rows it changed.
+    fn execute(&mut self, sql: &str, params: &[Value]) -> Result<u64, DbError> {
+        let st = self.statement(sql)?;
+        let refs: Vec<&(dyn ToSql + Sync)> =
+            params.iter().map(|v| v as &(dyn ToSql + Sync)).collect();
+        Ok(self.client()?.execute(&st, &refs)?)
+    }
+
+    /// Every row of a query.
+    fn query(&mut self, sql: &str, params: &[Value]) -> Result<Vec<Row>, DbError> {
+        let st = self.statement(sql)?;
+        let refs: Vec<&(dyn ToSql + Sync)> =
+            params.iter().map(|v| v as &(dyn ToSql + Sync)).collect();
+        let rows = self.client()?.query(&st, &refs)?;
+        let rows = rows
+            .iter()
+            .map(|r| {
+                (0..r.len())
+                    .map(|i| r.try_get::<_, Value>(i))
+                    .collect::<Result<Vec<_>, _>>()
+                    .map(Row)
+            })
+            .collect::<Result<Vec<_>, _>>()?;
+        Ok(rows)
+    }
+
+    /// Statements without parameters; a transaction's begin and end are noted, since
+    /// its statements stay on the connection that began it.
+    fn batch(&mut self, sql: &str) -> Result<(), DbError> {
+        let ends = matches!(sql, "COMMIT" | "ROLLBACK");
+        let result = self.client().and_then(|c| Ok(c.batch_execute(sql)?));
+        if sql.starts_with("BEGIN") && result.is_ok() {
+            self.in_transaction = true;
+        } else if ends {
+            self.in_transaction = false;
+        }
+        result
+    }
 }
 
 fn connect(
@@ -500,27 +539,97 @@ fn connect(
     }
 }
 
-impl Drop for PgConn {
-    /// The client says goodbye to the server as it goes, which blocks: off any runtime.
-    fn drop(&mut self) {
-        if let Some(client) = self.client.take() {
-            off_runtime(move || drop(client));
+/// Work for the connection's thread: run with the connection, answered on a channel of
+/// its own.
+type Job = Box<dyn FnOnce(&mut PgConn) + Send>;
+
+/// One PostgreSQL connection on a thread of its own, for the connection's life, which
+/// runs each call in turn. The `postgres` client blocks on a runtime it starts itself,
+/// which cannot run on a thread already inside one (the daemon's start-up on tokio's
+/// threads, its jobs in `spawn_blocking`): on its own thread it never is, from whichever
+/// thread the store is called, and no thread is started per statement.
+pub struct PgThread {
+    jobs: Option<std::sync::mpsc::Sender<Job>>,
+    thread: Option<std::thread::JoinHandle<()>>,
+}
+
+impl PgThread {
+    /// Connect on a new thread, which then serves the connection until this goes.
+    fn start(pg: PgConn, config: postgres::Config) -> Result<Self, DbError> {
+        let (jobs, inbox) = std::sync::mpsc::channel::<Job>();
+        let (said, connected) = std::sync::mpsc::sync_channel(1);
+        let thread = std::thread::Builder::new()
+            .name("subwatch-store".into())
+            .spawn(move || {
+                let mut pg = pg;
+                match connect(&config, &pg.tls) {
+                    Ok(client) => {
+                        pg.client = Some(client);
+                        let _ = said.send(Ok(()));
+                    }
+                    Err(e) => {
+                        let _ = said.send(Err(DbError::from(e)));
+                        return;
+                    }
+                }
+                // Until the handle goes; the client then says goodbye to the server here.
+                while let Ok(job) = inbox.recv() {
+                    job(&mut pg);
+                }
+            })
+            .map_err(|e| DbError::Other(format!("cannot start the connection's thread: {e}")))?;
+        let handle = PgThread {
+            jobs: Some(jobs),
+            thread: Some(thread),
+        };
+        match connected.recv() {
+            Ok(Ok(())) => Ok(handle),
+            Ok(Err(e)) => Err(e),
+            Err(_) => Err(DbError::Broken),
+        }
+    }
+
+    /// Run `f` on the connection's thread and wait for its answer. A connection the
+    /// server ended is not used again (its client may not know yet): the next call
+    /// opens a new one.
+    fn run<T: Send + 'static>(
+        &self,
+        f: impl FnOnce(&mut PgConn) -> Result<T, DbError> + Send + 'static,
+    ) -> Result<T, DbError> {
+        let (answer, answered) = std::sync::mpsc::sync_channel(1);
+        let job: Job = Box::new(move |pg| {
+            let result = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
+                let result = f(pg);
+                if result.as_ref().is_err_and(DbError::is_connection) {
+                    pg.client = None;
+                }
+                result
+            }));
+            let _ = answer.send(result);
+        });
+        let sent = self.jobs.as_ref().map(|j| j.send(job));
+        if !matches!(sent, Some(Ok(()))) {
+            return Err(DbError::Broken);
+        }
+        match answered.recv() {
+            Ok(Ok(result)) => result,
+            // A panic in the call is the caller's, as if it had run here.
+            Ok(Err(panic)) => std::panic::resume_unwind(panic),
+            Err(_) => Err(DbError::Broken),
         }
     }
 }
 
-/// Run `f` where the PostgreSQL client may block: its calls start a runtime of their own,
-/// which cannot happen on a thread already inside one (the daemon's start-up), so there
-/// the call runs on a thread of its own.
-fn off_runtime<T: Send>(f: impl FnOnce() -> T + Send) -> T {
-    if tokio::runtime::Handle::try_current().is_err() {
-        return f();
+impl Drop for PgThread {
+    /// The thread ends when its channel closes; waited for, so that the server has
+    /// heard the goodbye (and let go of the connection's advisory locks) when this
+    /// returns.
+    fn drop(&mut self) {
+        drop(self.jobs.take());
+        if let Some(t) = self.thread.take() {
+            let _ = t.join();
+        }
     }
-    std::thread::scope(|s| {
-        s.spawn(f)
-            .join()
-            .unwrap_or_else(|p| std::panic::resume_unwind(p))
-    })
 }
 
 /// Which kind of server a store is.
@@ -532,7 +641,7 @@ pub enum Kind {
 
 pub enum Conn {
     Sqlite(rusqlite::Connection),
-    Postgres(Box<RefCell<PgConn>>),
+    Postgres(PgThread),
 }
 
 impl Conn {
@@ -543,15 +652,15 @@ impl Conn {
         again: Settings,
         tls: Option<tokio_postgres_rustls::MakeRustlsConnect>,
     ) -> Result<Self, DbError> {
-        let client = off_runtime(|| connect(&config, &tls))?;
-        Ok(Conn::Postgres(Box::new(RefCell::new(PgConn {
+        let pg = PgConn {
             settings: again,
             tls,
-            client: Some(client),
+            client: None,
             statements: HashMap::new(),
             in_transaction: false,
             paused: None,
-        }))))
+        };
+        Ok(Conn::Postgres(PgThread::start(pg, config)?))
     }
 
     pub fn kind(&self) -> Kind {
@@ -561,23 +670,6 @@ impl Conn {
         }
     }
 
-    fn with_pg<T: Send>(
-        pg: &RefCell<PgConn>,
-        f: impl FnOnce(&mut PgConn) -> Result<T, DbError> + Send,
-    ) -> Result<T, DbError> {
-        let mut pg = pg.borrow_mut();
-        let pg: &mut PgConn = &mut pg;
-        off_runtime(move || {
-            let result = f(pg);
-            // A connection the server ended is not used again (its client may not know
-            // yet): the next call opens a new one.
-            if result.as_ref().is_err_and(DbError::is_connection) {
-                pg.client = None;
-            }
-            result
-        })
-    }
-
     /// Run one statement; the number of rows it changed.
     pub fn execute(&self, sql: &str, params: &[Value]) -> Result<u64, DbError> {
         match self {
@@ -585,12 +677,18 @@ impl Conn {
                 let mut st = c.prepare_cached(sql)?;
                 Ok(st.execute(rusqlite::params_from_iter(params))? as u64)
             }
-            Conn::Postgres(pg) => Self::with_pg(pg, |pg| {
-                let st = pg.statement(sql)?;
-                let refs: Vec<&(dyn ToSql + Sync)> =
-                    params.iter().map(|v| v as &(dyn ToSql + Sync)).collect();
-                Ok(pg.client()?.execute(&st, &refs)?)
-            }),
+            Conn::Postgres(pg) => {
+                let (sql, params) = (sql.to_string(), params.to_vec());
+                pg.run(move |pg| pg.execute(&sql, &params))
+            }
+        }
+    }
+
+    /// [`Conn::execute`] of a statement and values made for it, handed over as they are.
+    fn execute_owned(&self, sql: String, params: Vec<Value>) -> Result<u64, DbError> {
+        match self {
+            Conn::Sqlite(_) => self.execute(&sql, &params),
+            Conn::Postgres(pg) => pg.run(move |pg| pg.execute(&sql, &params)),
         }
     }
 
@@ -617,7 +715,7 @@ impl Conn {
                 tuples.join(", ")
             );
             let params: Vec<Value> = chunk.iter().flatten().cloned().collect();
-            self.execute(&sql, &params)?;
+            self.execute_owned(sql, params)?;
         }
         Ok(())
     }
@@ -639,22 +737,10 @@ impl Conn {
                 }
                 Ok(out)
             }
-            Conn::Postgres(pg) => Self::with_pg(pg, |pg| {
-                let st = pg.statement(sql)?;
-                let refs: Vec<&(dyn ToSql + Sync)> =
-                    params.iter().map(|v| v as &(dyn ToSql + Sync)).collect();
-                let rows = pg.client()?.query(&st, &refs)?;
-                let rows = rows
-                    .iter()
-                    .map(|r| {
-                        (0..r.len())
-                            .map(|i| r.try_get::<_, Value>(i))
-                            .collect::<Result<Vec<_>, _>>()
-                            .map(Row)
-                    })
-                    .collect::<Result<Vec<_>, _>>()?;
-                Ok(rows)
-            }),
+            Conn::Postgres(pg) => {
+                let (sql, params) = (sql.to_string(), params.to_vec());
+                pg.run(move |pg| pg.query(&sql, &params))
+            }
         }
     }
 
@@ -672,17 +758,10 @@ impl Conn {
     pub fn batch(&self, sql: &str) -> Result<(), DbError> {
         match self {
             Conn::Sqlite(c) => Ok(c.execute_batch(sql)?),
-            Conn::Postgres(pg) => Self::with_pg(pg, |pg| {
-                // A transaction's statements stay on the connection that began it.
-                let ends = matches!(sql, "COMMIT" | "ROLLBACK");
-                let result = pg.client().and_then(|c| Ok(c.batch_execute(sql)?));
-                if sql.starts_with("BEGIN") && result.is_ok() {
-                    pg.in_transaction = true;
-                } else if ends {
-                    pg.in_transaction = false;
-                }
-                result
-            }),
+            Conn::Postgres(pg) => {
+                let sql = sql.to_string();
+                pg.run(move |pg| pg.batch(&sql))
+            }
         }
     }
 
