@@ -242,7 +242,7 @@ pub struct Judgement {
 
 /// A line a metric must not cross in one group: drawn on the night's plots, and the
 /// same value the judgement tests against.
-#[derive(Debug, Clone, PartialEq, Serialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct Limit {
     /// The reason code that fires when it is crossed.
     pub reason: String,
