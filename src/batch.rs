@@ -9,7 +9,7 @@ use crate::contract::{
     AnomalyRecord, CatalogueMatch, DetectionRecord, GroupLimits, NightDocument, NightFrameRecord,
 };
 use crate::night::judge::{judge_night, FrameJudgement, NightJudgement, Site};
-use crate::record::{FrameRecord, FrameStatus, Identity};
+use crate::record::{FrameRecord, FrameStatus};
 use crate::rules::RuleSpec;
 use crate::store::{Store, StoreError};
 
@@ -564,7 +564,7 @@ pub fn run_night(
     let mut records = Vec::with_capacity(total);
     for (k, path) in files.iter().enumerate() {
         // A file that went between the walk and now is left out.
-        let Ok(identity) = Identity::of(path) else {
+        let Ok(identity) = crate::walk::identity(path) else {
             continue;
         };
         let mtime_unix = identity.mtime_unix();

@@ -10,7 +10,7 @@ use std::time::{Duration, Instant};
 
 use super::{ArchiveError, Progress, Stage, LEASE_S, RENEW_EVERY};
 use crate::config::Config;
-use crate::record::{FrameRecord, FrameStatus, Identity};
+use crate::record::{FrameRecord, FrameStatus};
 use crate::store::{Recorded, Store};
 
 /// A frame for a reader process: its folder and path.
@@ -99,7 +99,7 @@ impl<'s> Recorder<'s> {
                     let job = rx.lock().unwrap_or_else(|p| p.into_inner()).recv();
                     let Ok(job) = job else { break };
                     // A file that went since the walk is left out.
-                    let record = Identity::of(&job.path).ok().map(|id| {
+                    let record = crate::walk::identity(&job.path).ok().map(|id| {
                         let mtime = id.mtime_unix();
                         reader.record(&job.path, id, mtime, options)
                     });
@@ -205,7 +205,7 @@ impl<'s> Recorder<'s> {
         };
         let mut queued = VecDeque::new();
         for f in files {
-            let Ok(id) = Identity::of(&f) else {
+            let Ok(id) = crate::walk::identity(&f) else {
                 self.done += 1;
                 continue;
             };
