@@ -10,6 +10,10 @@
 //! and the caller goes on. A process per file rather than one per batch: a worker's
 //! start costs a few milliseconds against a frame's tenth of a second or more, and no
 //! state (cfitsio's globals, a heap a bad file fragmented) outlives the file that made it.
+//!
+//! Longer than most modules: the parent's side (start, feed, read back, the limits, how a
+//! worker ended in words) and the worker's side (`serve`) are one protocol, kept in one
+//! place; its last 130 lines are tests.
 
 use std::io::{Read, Write};
 use std::path::{Path, PathBuf};

@@ -3,6 +3,10 @@
 //! bands, the rules' warn and reject lines) so it reads without the page around it.
 //! Pure: data in, PNG bytes out. Text is drawn with a font kept in the repository
 //! (DejaVu Sans), so no system font is needed.
+//!
+//! Longer than most modules: a plot's scale, limits, twilight and Moon bands and legend
+//! make one picture and share its drawing; the cutouts (the last functions) share its PNG
+//! encoding and font; the rest is tests.
 
 use std::sync::Once;
 

@@ -2,6 +2,10 @@
 //! reasons for each frame out. Built-in defaults work with no rules configured; rules
 //! from the configuration (`[[rules]]` tables) add to them, or replace the default with
 //! the same reason code. Each reason says which test fired and with what values.
+//!
+//! Longer than most modules: the built-in thresholds, the group's statistics, the limits
+//! drawn and the judgement use the same numbers, and stay together so that a drawn limit
+//! is the value judged against; the rest is tests.
 
 use serde::{Deserialize, Serialize};
 
