@@ -9,7 +9,6 @@ use std::time::Instant;
 use subwatch::frame::cards::OutValue;
 use subwatch::frame::write::{write_frame, Encoding};
 use subwatch::pipeline::{record_file, RecordOptions};
-use subwatch::record::Identity;
 use subwatch::sim::night::{field_on_sky, render_night, NightPlan};
 
 /// A deterministic pseudo-random sequence in [0, 1) (SplitMix64).
@@ -123,7 +122,7 @@ fn main() {
         keys.push(("DEC".into(), OutValue::Real(plan.center_deg.1 - 0.2)));
         let path = dir.path().join(&f.name);
         write_frame(&path, &f.pixels, Encoding::Unsigned16, &keys).expect("write");
-        let id = Identity::of(&path).expect("identity");
+        let id = subwatch::walk::identity(&path).expect("identity");
         let t = Instant::now();
         let plain = record_file(&path, id.clone(), f.time_unix, &without_sky);
         t_without += t.elapsed().as_secs_f64();
@@ -158,7 +157,7 @@ fn main() {
     keys.push(("DEC".into(), OutValue::Real(plan.center_deg.1)));
     let path = dir.path().join("elsewhere.fits");
     write_frame(&path, &other[0].pixels, Encoding::Unsigned16, &keys).expect("write");
-    let id = Identity::of(&path).expect("identity");
+    let id = subwatch::walk::identity(&path).expect("identity");
     let t = Instant::now();
     let plain = record_file(&path, id.clone(), 0.0, &without_sky);
     let t_plain = t.elapsed().as_secs_f64();

@@ -8,7 +8,6 @@ use std::time::Instant;
 
 use subwatch::frame::write::{write_frame, Encoding};
 use subwatch::pipeline::record_file;
-use subwatch::record::Identity;
 use subwatch::sim::night::{render_night, NightPlan};
 use subwatch::store::Store;
 
@@ -39,7 +38,7 @@ fn main() {
     for (i, f) in frames.iter().enumerate() {
         let path = dir.path().join(&f.name);
         write_frame(&path, &f.pixels, Encoding::Unsigned16, &f.keys).expect("write");
-        let identity = Identity::of(&path).expect("identity");
+        let identity = subwatch::walk::identity(&path).expect("identity");
         let t = Instant::now();
         let record = record_file(&path, identity, f.time_unix, &options);
         measure_ms.push(t.elapsed().as_secs_f64() * 1e3);

@@ -114,6 +114,7 @@ impl Analysis<'_, '_> {
             target: Some(target.to_string()).filter(|t| !t.is_empty()),
             filter: Some(filter.to_string()).filter(|t| !t.is_empty()),
             limits: judged.limits.clone(),
+            missing: None,
         });
         let found = &judged.findings;
         self.note_band(target, filter, &night_label, frames, &judged);

@@ -194,4 +194,7 @@ pub struct GroupLimits {
     pub target: Option<String>,
     pub filter: Option<String>,
     pub limits: Vec<crate::rules::Limit>,
+    /// Why the group's limits are not known, where they are not (another rig's group its
+    /// daemon has judged no frame of): none are drawn, and the summary says so.
+    pub missing: Option<String>,
 }

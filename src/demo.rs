@@ -14,7 +14,6 @@ use std::time::{Duration, Instant};
 use crate::config::Config;
 use crate::contract::NightDocument;
 use crate::frame::write::{write_frame, Encoding};
-use crate::record::Identity;
 use crate::sim::night::{render_night, NightFrame, NightPlan};
 use crate::store::Store;
 
@@ -353,7 +352,7 @@ fn record_previous(config: &Config, out: &Path, previous: &[NightFrame]) -> Resu
     for f in previous {
         let path = out.join("previous").join(&f.name);
         write_frame(&path, &f.pixels, Encoding::Unsigned16, &f.keys)?;
-        let identity = Identity::of(&path).map_err(io(&path))?;
+        let identity = crate::walk::identity(&path).map_err(io(&path))?;
         let rec = reader.record(&path, identity, f.time_unix, &options);
         label = rec.night.clone();
         if let Some(id) = store.record_frame(&rec, f.time_unix)?.id() {

@@ -5,7 +5,7 @@
 use std::path::{Path, PathBuf};
 
 use crate::config::Config;
-use crate::contract::NightDocument;
+use crate::contract::{GroupLimits, NightDocument};
 use crate::mail::{compose, Inline, MailSettings};
 use crate::report::{self, plots};
 use crate::store::{Store, StoreError};
@@ -99,7 +99,8 @@ fn analyse(
 }
 
 /// Judge a recorded night with the configuration's rules, keep the verdicts in the store
-/// and, when lists are kept, rewrite the night's lists where a verdict changed.
+/// with the limits each group was judged against and, when lists are kept, rewrite the
+/// night's lists where a verdict changed.
 pub fn judge_night(store: &mut Store, c: &Config, night: &str) -> Result<Rejudged, MorningError> {
     let records = store.night_records(night)?;
     let mut doc = analyse(&records, c, crate::batch::Catalogues::Keep(store))?;
@@ -110,6 +111,7 @@ pub fn judge_night(store: &mut Store, c: &Config, night: &str) -> Result<Rejudge
         .map(|f| (f.path.clone(), f.verdict, f.reasons.clone()))
         .collect();
     let changed = store.update_verdicts(&verdicts)?;
+    store.set_night_limits(night, &doc.limits)?;
     if let (false, Some(lists)) = (changed.is_empty(), crate::lists::Lists::from_config(c)) {
         for written in crate::lists::rewrite_night(store, &lists, night) {
             if let Err(e) = written {
@@ -121,10 +123,11 @@ pub fn judge_night(store: &mut Store, c: &Config, night: &str) -> Result<Rejudge
 }
 
 /// Judge every rig's frames of a recorded night (a site's summary): this daemon's rig as
-/// [`judge_night`] does, its verdicts kept; every other rig's night analysed (anomalies,
-/// limits) without storing anything, its frames keeping the verdicts their own daemon
-/// gave them by that rig's rules (a frame it has not judged yet gets this daemon's). Each
-/// frame names its rig.
+/// [`judge_night`] does, its verdicts kept; every other rig's night analysed (anomalies)
+/// without storing anything, its frames keeping the verdicts their own daemon gave them
+/// by that rig's rules (a frame it has not judged yet gets this daemon's), and its groups
+/// the limits that rig's daemon stored with them ([`own_limits`]). Each frame names its
+/// rig.
 pub fn judge_site(store: &mut Store, c: &Config, night: &str) -> Result<Rejudged, MorningError> {
     let mut site = NightDocument::default();
     let mut changed = Vec::new();
@@ -147,6 +150,7 @@ pub fn judge_site(store: &mut Store, c: &Config, night: &str) -> Result<Rejudged
                         f.reasons = reasons.clone();
                     }
                 }
+                doc.limits = own_limits(&doc.limits, s.night_limits(night)?, &rig);
                 doc.set_rig(&rig);
                 Ok(doc)
             })?
@@ -154,6 +158,33 @@ pub fn judge_site(store: &mut Store, c: &Config, night: &str) -> Result<Rejudged
         site.append(doc);
     }
     Ok(Rejudged { doc: site, changed })
+}
+
+/// Another rig's groups (`analysed`: this daemon's analysis of its night, whose limits
+/// are not that rig's) with the limits that rig's daemon stored: a group it has judged
+/// no frame of has none, and says why.
+fn own_limits(analysed: &[GroupLimits], stored: Vec<GroupLimits>, rig: &str) -> Vec<GroupLimits> {
+    analysed
+        .iter()
+        .map(|g| {
+            match stored
+                .iter()
+                .find(|s| s.target == g.target && s.filter == g.filter)
+            {
+                Some(s) => GroupLimits {
+                    limits: s.limits.clone(),
+                    ..g.clone()
+                },
+                None => GroupLimits {
+                    limits: Vec::new(),
+                    missing: Some(format!(
+                        "no limits drawn: rig '{rig}' has stored none for this group (its daemon has judged none of its frames)"
+                    )),
+                    ..g.clone()
+                },
+            }
+        })
+        .collect()
 }
 
 /// How many cutouts the mail carries (the most interesting anomalies first); the report

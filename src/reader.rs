@@ -10,6 +10,10 @@
 //! and the caller goes on. A process per file rather than one per batch: a worker's
 //! start costs a few milliseconds against a frame's tenth of a second or more, and no
 //! state (cfitsio's globals, a heap a bad file fragmented) outlives the file that made it.
+//!
+//! Longer than most modules: the parent's side (start, feed, read back, the limits, how a
+//! worker ended in words) and the worker's side (`serve`) are one protocol, kept in one
+//! place; its last 130 lines are tests.
 
 use std::io::{Read, Write};
 use std::path::{Path, PathBuf};
@@ -422,8 +426,8 @@ impl Reader {
         let start = Instant::now();
         let mut said = false;
         loop {
-            let identity =
-                Identity::of(path).map_err(|e| NotRecorded::Gone(crate::text::io_reason(&e)))?;
+            let identity = crate::walk::identity(path)
+                .map_err(|e| NotRecorded::Gone(crate::text::io_reason(&e)))?;
             let mtime = identity.mtime_unix();
             match self.try_record(path, identity, mtime, options) {
                 Ok(record) => return Ok(record),

@@ -22,12 +22,8 @@ pub struct Identity {
 }
 
 impl Identity {
-    /// The identity of the file at `path` now (its symbolic links followed).
-    pub fn of(path: &Path) -> std::io::Result<Self> {
-        Ok(Self::from_metadata(path, &std::fs::metadata(path)?))
-    }
-
-    /// The identity from metadata already read; times before 1970 count negative.
+    /// The identity from metadata a shell read (`walk::identity`); times before 1970
+    /// count negative.
     pub fn from_metadata(path: &Path, m: &std::fs::Metadata) -> Self {
         let nanos = |d: std::time::Duration| i64::try_from(d.as_nanos()).unwrap_or(i64::MAX);
         let mtime_ns = match m.modified() {

@@ -6,6 +6,14 @@
 
 use std::path::{Path, PathBuf};
 
+use crate::record::Identity;
+
+/// The identity of the file at `path` now (its symbolic links followed): the file system
+/// read here, so that `record` stays data.
+pub fn identity(path: &Path) -> std::io::Result<Identity> {
+    Ok(Identity::from_metadata(path, &std::fs::metadata(path)?))
+}
+
 /// Whether `name` matches `pattern` (`*` any run, `?` one character), ignoring case.
 pub fn glob_match(pattern: &str, name: &str) -> bool {
     let p: Vec<char> = pattern.to_lowercase().chars().collect();

@@ -55,6 +55,23 @@ fn record(path: &str, size: u64) -> FrameRecord {
     }
 }
 
+/// The limits of the night's one group: a reject line on FWHM at `fwhm_px`.
+fn limits(fwhm_px: f64) -> subwatch::contract::GroupLimits {
+    subwatch::contract::GroupLimits {
+        rig: None,
+        target: Some("Kestrel Field A".into()),
+        filter: Some("L".into()),
+        limits: vec![subwatch::rules::Limit {
+            reason: "fwhm_high".into(),
+            metric: subwatch::rules::Metric::FwhmPx,
+            verdict: subwatch::rules::Verdict::Reject,
+            value: fwhm_px,
+            above: true,
+        }],
+        missing: None,
+    }
+}
+
 fn star(x: f64, y: f64) -> StarRecord {
     StarRecord {
         x,
@@ -157,9 +174,15 @@ fn each_rig_records_a_path_once_and_an_unnamed_store_becomes_the_rigs() {
             s.record_frame(&record("/a.fits", 10), 1.0).unwrap();
             s.begin_reading(&record("/b.fits", 10).identity, 1.0)
                 .unwrap();
+            s.set_night_limits("2026-03-14", &[limits(4.0)]).unwrap();
         }
         let mut north = Store::connect_for_rig(at, "north pier").unwrap();
         assert_eq!(north.rig(), "north pier");
+        assert_eq!(
+            north.night_limits("2026-03-14").unwrap()[0].limits,
+            limits(4.0).limits,
+            "{at}: the unnamed rig's limits became the named rig's"
+        );
         assert_eq!(
             north.record_frame(&record("/a.fits", 10), 2.0).unwrap(),
             Recorded::Already,
@@ -174,6 +197,7 @@ fn each_rig_records_a_path_once_and_an_unnamed_store_becomes_the_rigs() {
             Recorded::New(_)
         ));
         assert!(south.take_interrupted().unwrap().is_empty());
+        assert!(south.night_limits("2026-03-14").unwrap().is_empty());
         assert_eq!(
             south.record_frame(&record("/a.fits", 10), 4.0).unwrap(),
             Recorded::Already
@@ -405,13 +429,20 @@ fn an_sqlite_store_copied_into_postgresql_reads_the_same_and_is_copied_once() {
         s.set_meta("summary:2026-03-14", "sent").unwrap();
         s.save_catalog("T", "V", "2026-03-14", 19.0, &[], &[])
             .unwrap();
+        s.set_night_limits("2026-03-14", &[limits(4.0)]).unwrap();
     }
     let pg = TestDatabase::new();
     let copied = subwatch::store::copy(&db, &pg.location(), None).unwrap();
     let n = |t: &str| copied.tables.iter().find(|(name, _)| name == t).unwrap().1;
     assert_eq!(
-        (n("frames"), n("stars"), n("alerts"), n("catalog_nights")),
-        (3, 210, 1, 1)
+        (
+            n("frames"),
+            n("stars"),
+            n("alerts"),
+            n("catalog_nights"),
+            n("night_limits")
+        ),
+        (3, 210, 1, 1, 1)
     );
     let sqlite = Store::open_for_rig(&db, "north").unwrap();
     let shared = Store::connect_for_rig(&pg.location(), "north").unwrap();
@@ -423,6 +454,10 @@ fn an_sqlite_store_copied_into_postgresql_reads_the_same_and_is_copied_once() {
             .collect::<Vec<_>>()
     };
     assert_eq!(read(&sqlite), read(&shared));
+    assert_eq!(
+        shared.night_limits("2026-03-14").unwrap()[0].limits,
+        limits(4.0).limits
+    );
     assert_eq!(
         shared.meta("summary:2026-03-14").unwrap().as_deref(),
         Some("sent")
@@ -520,6 +555,7 @@ fn dump(db: &std::path::Path) -> String {
         "meta",
         "catalog_nights",
         "catalog",
+        "night_limits",
     ] {
         let mut stmt = conn
             .prepare(&format!("SELECT * FROM {table} ORDER BY 1, 2"))
@@ -554,6 +590,7 @@ fn unnamed_store(db: &std::path::Path) {
     s.set_meta("summary:2026-03-14", "sent").unwrap();
     s.save_catalog("T", "V", "2026-03-14", 19.0, &[], &[])
         .unwrap();
+    s.set_night_limits("2026-03-14", &[limits(4.0)]).unwrap();
 }
 
 #[test]
@@ -585,6 +622,7 @@ fn a_copy_never_writes_its_source_and_names_the_rig_only_in_the_destination() {
     );
     let pier = Store::connect_for_rig(&pg.location(), "pier").unwrap();
     assert_eq!(pier.night_counts("2026-03-14").unwrap().frames, 3);
+    assert_eq!(pier.night_limits("2026-03-14").unwrap().len(), 1);
     assert_eq!(
         pier.meta("summary:2026-03-14").unwrap().as_deref(),
         Some("sent")

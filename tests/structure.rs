@@ -5,6 +5,7 @@
 //! doc comments not counted), for free functions, methods and trait methods with a body,
 //! nested ones included. Left out: code under `#[cfg(test)]`, `#[test]` functions, and
 //! the synthetic renderer (`src/sim/`), whose scenes are long lists of what to draw.
+//! A file longer than [`LONG_FILE`] lines says why in its top comment.
 //! Files are parsed with `syn` (line numbers from `proc-macro2`'s span locations).
 
 #[path = "common/sources.rs"]
@@ -18,6 +19,35 @@ use syn::visit::Visit;
 
 /// The longest a function may be, in lines.
 const MAX_LINES: usize = 150;
+
+/// A file longer than this many lines says why at its top (ARCHITECTURE.md).
+const LONG_FILE: usize = 600;
+
+/// Files under `src` longer than `max` lines whose top comment (`//!`) does not say why
+/// ("Longer than most modules", or "length past 600 lines"), as `path (N lines)`.
+fn unexplained_long_files(src: &Path, max: usize) -> Vec<String> {
+    let mut files = Vec::new();
+    rust_files(src, &mut files);
+    let mut found = Vec::new();
+    for file in files {
+        let text = std::fs::read_to_string(&file).unwrap();
+        let n = text.lines().count();
+        let top: String = text
+            .lines()
+            .take_while(|l| l.starts_with("//!"))
+            .map(|l| l.trim_start_matches("//!").trim())
+            .collect::<Vec<_>>()
+            .join(" ");
+        let says_why = top.contains("Longer than most modules")
+            || top.contains(&format!("length past {LONG_FILE} lines"));
+        if n > max && !says_why {
+            let rel = file.strip_prefix(src).unwrap();
+            found.push(format!("{} ({n} lines)", rel.display()));
+        }
+    }
+    found.sort();
+    found
+}
 
 /// `#[cfg(test)]` or `#[test]`.
 fn is_test(attrs: &[syn::Attribute]) -> bool {
@@ -107,6 +137,39 @@ fn no_function_outside_tests_and_the_renderer_is_longer_than_150_lines() {
         found.is_empty(),
         "functions longer than {MAX_LINES} lines:\n{}",
         found.join("\n")
+    );
+}
+
+#[test]
+fn every_file_over_600_lines_says_why_at_its_top() {
+    let src = Path::new(env!("CARGO_MANIFEST_DIR")).join("src");
+    let found = unexplained_long_files(&src, LONG_FILE);
+    assert!(
+        found.is_empty(),
+        "files longer than {LONG_FILE} lines that do not say why at their top:\n{}",
+        found.join("\n")
+    );
+}
+
+#[test]
+fn the_long_file_checker_finds_a_planted_file_without_its_reason() {
+    let dir = tempfile::tempdir().unwrap();
+    let src = dir.path();
+    let body = "pub fn f() {}\n".repeat(600);
+    let plant = |rel: &str, top: &str| sources::plant(src, rel, &format!("{top}{body}"));
+    plant("silent.rs", "//! A module.\n");
+    plant(
+        "said.rs",
+        "//! A module.\n//! Longer than most modules: one idea.\n",
+    );
+    plant(
+        "tests.rs",
+        "//! A module. Its length past 600\n//! lines is tests.\n",
+    );
+    sources::plant(src, "short.rs", "//! Short, and silent about it.\n");
+    assert_eq!(
+        unexplained_long_files(src, LONG_FILE),
+        ["silent.rs (601 lines)"]
     );
 }
 

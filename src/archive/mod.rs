@@ -31,7 +31,6 @@ use std::time::{Duration, Instant};
 use serde::Serialize;
 
 use crate::config::Config;
-use crate::record::Identity;
 use crate::store::{Store, StoreError};
 
 mod recorder;
@@ -249,7 +248,7 @@ pub fn run(
     let mut store = Store::open_configured(config)?;
     let before = store.archived_frames()?;
     let is_recorded = |p: &Path| -> bool {
-        let Ok(id) = Identity::of(p) else {
+        let Ok(id) = crate::walk::identity(p) else {
             // Gone since the walk: nothing to read.
             return true;
         };

@@ -11,7 +11,7 @@ use std::time::{Duration, Instant};
 use super::{ArchiveError, Progress, Stage, LEASE_S, RENEW_EVERY};
 use crate::config::Config;
 use crate::reader::NotRecorded;
-use crate::record::{FrameRecord, FrameStatus, Identity};
+use crate::record::{FrameRecord, FrameStatus};
 use crate::store::{Recorded, Store};
 
 /// A frame for a reader process: its folder and path.
@@ -212,7 +212,7 @@ impl<'s> Recorder<'s> {
         };
         let mut queued = VecDeque::new();
         for f in files {
-            let Ok(id) = Identity::of(&f) else {
+            let Ok(id) = crate::walk::identity(&f) else {
                 self.done += 1;
                 continue;
             };

@@ -97,7 +97,7 @@ fn measure_command(
     for path in files {
         let shown = path.display().to_string();
         let identity =
-            subwatch::record::Identity::of(path).unwrap_or_else(|_| subwatch::record::Identity {
+            subwatch::walk::identity(path).unwrap_or_else(|_| subwatch::record::Identity {
                 path: shown.clone(),
                 size: 0,
                 mtime_ns: 0,

@@ -5,6 +5,9 @@
 //! a user fixes them all in one go and nothing wrong is found later, at dawn. Unknown
 //! keys are errors. Checks against the machine (folders exist, the store's folder is
 //! writable, the password file's owner and mode) are separate: `check_environment`.
+//!
+//! Longer than most modules: it declares the settings of every section in one place (the
+//! reading is `read`), with what each means; the rest is tests.
 
 mod environment;
 mod read;

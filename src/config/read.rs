@@ -684,6 +684,24 @@ impl Config {
     }
 }
 
+/// Each key of an array's table that is not among `known`, in words, with the nearest
+/// known key as a hint (`within`: "a rule", "a target").
+fn unknown_keys(table: &toml::Table, known: &[&str], within: &str) -> Vec<String> {
+    table
+        .keys()
+        .filter(|key| !known.contains(&key.as_str()))
+        .map(|key| {
+            let hint = crate::text::nearest(key, known)
+                .map(|k| format!("; did you mean `{k}`?"))
+                .unwrap_or_default();
+            format!(
+                "{key}: unknown key{hint} (known in {within}: {})",
+                known.join(", ")
+            )
+        })
+        .collect()
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;

@@ -2,7 +2,8 @@
 //! extended-filename syntax, or from bytes in memory), moving to an HDU, reading an image
 //! as `f32`, deleting a keyword, and cfitsio's error messages. Every unsafe block of the
 //! project that calls cfitsio is here, each with its reason. cfitsio keeps its message
-//! stack in global state, so every call happens under one lock.
+//! stack in global state, so every call happens under one lock, the `fitsio` crate's
+//! calls in `frame::write` too (`hold`).
 
 use std::ffi::{CStr, CString};
 use std::marker::PhantomData;
@@ -168,10 +169,21 @@ impl<'a> Fits<'a> {
     }
 }
 
-/// Delete a keyword from the current HDU of a file the `fitsio` crate opened for writing.
-pub fn delete_key(file: &mut fitsio::FitsFile, key: &str) -> Result<(), String> {
+/// cfitsio held for a writer that calls it through the `fitsio` crate (`frame::write`):
+/// while this lives, that crate's calls run under the same lock as every other call.
+pub struct Held {
+    _guard: MutexGuard<'static, ()>,
+}
+
+/// Take the lock for a run of `fitsio` calls; let go when the value drops.
+pub fn hold() -> Held {
+    Held { _guard: lock() }
+}
+
+/// Delete a keyword from the current HDU of a file the `fitsio` crate opened for writing,
+/// under the lock the writer holds.
+pub fn delete_key(_held: &Held, file: &mut fitsio::FitsFile, key: &str) -> Result<(), String> {
     let name = CString::new(key).map_err(|_| "keyword contains a NUL byte".to_string())?;
-    let _guard = lock();
     let mut status: c_int = 0;
     // SAFETY: the file is open (borrowed mutably for the call) and `name` lives through it.
     unsafe { sys::ffdkey(file.as_raw(), name.as_ptr(), &mut status) };

@@ -44,6 +44,9 @@ pub fn write_frame(
     if path.exists() {
         return Err(fail("file exists; refusing to overwrite".into()));
     }
+    // Every cfitsio call below, the file's closing included (`file` drops before
+    // `held`), under the one lock.
+    let held = super::cfitsio::hold();
     let dims = [pixels.nrows(), pixels.ncols()];
     let desc = ImageDescription {
         data_type: match encoding {
@@ -72,7 +75,7 @@ pub fn write_frame(
     let hdu = file.hdu(hdu_index).map_err(|e| fail(e.to_string()))?;
     // The writing library names the primary HDU "_PRIMARY"; a camera's file has no
     // EXTNAME there, so remove it.
-    super::cfitsio::delete_key(&mut file, "EXTNAME").map_err(fail)?;
+    super::cfitsio::delete_key(&held, &mut file, "EXTNAME").map_err(fail)?;
     let flat: Vec<f32> = pixels.iter().copied().collect();
     match encoding {
         Encoding::Unsigned16 | Encoding::Compressed(_) => {

@@ -53,7 +53,14 @@ fn today() -> NaiveDate {
     chrono::Local
         .timestamp_opt(now.floor() as i64, 0)
         .single()
-        .map_or_else(|| chrono::Utc::now().date_naive(), |t| t.date_naive())
+        // A local time the zone skips or repeats: the date of the same instant in UTC.
+        .map_or_else(
+            || {
+                chrono::DateTime::from_timestamp(now.floor() as i64, 0)
+                    .map_or(NaiveDate::MIN, |t| t.date_naive())
+            },
+            |t| t.date_naive(),
+        )
 }
 
 struct Current {

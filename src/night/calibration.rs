@@ -4,6 +4,10 @@
 //! a light leak), bias frames (level and read noise against the set), and for each group
 //! of lights whether matching darks, flats and bias frames were taken. Every threshold is
 //! a constant here with where it comes from; every reason comes with its values. Pure.
+//!
+//! Longer than most modules: darks, flats and bias frames are judged together (each
+//! against its set and the night's lights), and what each group of lights lacks needs all
+//! three; the rest is tests.
 
 use crate::measure::calibration::CalibrationStats;
 use crate::measure::stats::{median_f64, robust_sigma_f64};

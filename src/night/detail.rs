@@ -42,6 +42,20 @@ pub struct TransientDetail {
     pub instrumental_mag: Option<f64>,
 }
 
+impl TransientDetail {
+    /// A cosmic-ray hit: a detection sharper than the PSF, with no photometry of its own.
+    pub fn cosmic_ray() -> Self {
+        TransientDetail {
+            cosmic_ray: true,
+            reason: "sharper than the PSF",
+            snr: None,
+            flux_adu: None,
+            fwhm_px: None,
+            instrumental_mag: None,
+        }
+    }
+}
+
 /// A source moving steadily across three or more frames.
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct MovingDetail {

@@ -32,6 +32,9 @@
 //! from its morning verdict (a test below shows a frame soft against the night's first
 //! frames and not against the whole night); `tests/live_and_morning.rs` asserts it frame
 //! by frame, a rewritten reference frame included.
+//!
+//! Longer than most modules for its tests (nearly half of it): the one model every path
+//! judges through, with its cases kept beside it.
 
 use std::borrow::Cow;
 

@@ -3,6 +3,9 @@
 //! `LockFileEx` on a byte past the data, `GetDiskFreeSpaceExW`, and secret files checked
 //! by their access list. Every `unsafe` block calls one documented Win32 function with
 //! buffers this function owns.
+//!
+//! Longer than most modules: it is one half of `os`'s interface, a function for each of
+//! its functions, with their tests (the service is `windows::service`).
 
 use std::ffi::OsStr;
 use std::fs::File;

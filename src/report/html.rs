@@ -69,12 +69,15 @@ fn counts(s: &Summary) -> Markup {
             }
             @for g in &s.groups {
                 @let said = episodes_sentence(&g.episodes);
-                @if !said.is_empty() || !g.unplaced.is_empty() {
+                @if !said.is_empty() || !g.unplaced.is_empty() || g.limits_missing.is_some() {
                     p class="episodes" {
                         b { (g.heading()) ": " }
                         (said)
                         @for (note, n) in &g.unplaced {
                             " " (plural(*n, "frame", "frames")) " not placed on the sky: " (note) "."
+                        }
+                        @if let Some(missing) = &g.limits_missing {
+                            " " (missing) "."
                         }
                     }
                 }

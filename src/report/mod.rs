@@ -6,6 +6,8 @@
 //! What a reader needs first leads: the counts, then every warned and rejected frame with
 //! the plain-words explanation of each reason, then what in the sky deserves a look.
 //! Hot pixels are summarised as positions and cosmic-ray hits counted.
+//!
+//! Its length past 600 lines is tests; the wording is `words`, the CSV `csv`.
 
 mod csv;
 mod html;
@@ -100,6 +102,9 @@ pub struct GroupSummary {
     pub warned_left_out: usize,
     /// The limits the group was judged against (for the plots).
     pub limits: Vec<Limit>,
+    /// Why no limits are drawn, where the group's are not known (another rig's group
+    /// its daemon has judged no frame of).
+    pub limits_missing: Option<String>,
     /// Reasons that held over consecutive frames, as episodes, in time order.
     pub episodes: Vec<Episode>,
     /// With a catalogue: why frames were not placed on the sky, each with how many.
@@ -332,12 +337,12 @@ pub fn summarise(night: &str, doc: &NightDocument, settings: Settings) -> Summar
                     .total_cmp(&b.time_unix.unwrap_or(f64::MAX))
                     .then(a.path.cmp(&b.path))
             });
-            let limits = doc
+            let judged = doc
                 .limits
                 .iter()
-                .find(|l| l.rig == rig && l.target == target && l.filter == filter)
-                .map(|l| l.limits.clone())
-                .unwrap_or_default();
+                .find(|l| l.rig == rig && l.target == target && l.filter == filter);
+            let limits = judged.map(|l| l.limits.clone()).unwrap_or_default();
+            let limits_missing = judged.and_then(|l| l.missing.clone());
             let heading = match (&rig, several_rigs) {
                 (Some(r), true) => Some(format!(
                     "{r}: {}",
@@ -345,7 +350,10 @@ pub fn summarise(night: &str, doc: &NightDocument, settings: Settings) -> Summar
                 )),
                 _ => target,
             };
-            group(heading, filter, &frames, limits, settings)
+            GroupSummary {
+                limits_missing,
+                ..group(heading, filter, &frames, limits, settings)
+            }
         })
         .collect::<Vec<_>>();
     let mut notable: Vec<AnomalyRecord> = doc
@@ -539,6 +547,7 @@ fn group(
             count(Verdict::Warn)
         },
         limits,
+        limits_missing: None,
     }
 }
 
@@ -643,14 +652,7 @@ mod tests {
         };
         let cosmic = anomaly(
             AnomalyKind::Transient,
-            Detail::Transient(TransientDetail {
-                cosmic_ray: true,
-                reason: "sharper than the PSF",
-                snr: None,
-                flux_adu: None,
-                fwhm_px: None,
-                instrumental_mag: None,
-            }),
+            Detail::Transient(TransientDetail::cosmic_ray()),
         );
         NightDocument {
             frames: vec![

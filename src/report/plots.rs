@@ -3,6 +3,10 @@
 //! bands, the rules' warn and reject lines) so it reads without the page around it.
 //! Pure: data in, PNG bytes out. Text is drawn with a font kept in the repository
 //! (DejaVu Sans), so no system font is needed.
+//!
+//! Longer than most modules: a plot's scale, limits, twilight and Moon bands and legend
+//! make one picture and share its drawing; the cutouts (the last functions) share its PNG
+//! encoding and font; the rest is tests.
 
 use std::sync::Once;
 
@@ -279,7 +283,8 @@ pub fn night_plots(
             .filter(|f| g.is(f.target.as_deref(), f.filter.as_deref()))
             .collect();
         for p in &PLOTTED {
-            if let Some(png) = metric_plot(&frames, p, &g.limits, tz) {
+            let limits = g.limits_missing.is_none().then_some(g.limits.as_slice());
+            if let Some(png) = metric_plot(&frames, p, limits, tz) {
                 out.push(NightPlot {
                     group: k,
                     plotted: p,
@@ -292,11 +297,12 @@ pub fn night_plots(
 }
 
 /// One metric of one group against the site's clock time, with the group's limits drawn
-/// as dashed lines; `None` when there is nothing to plot.
+/// as dashed lines (`None`: they are not known, and the legend says so); `None` when
+/// there is nothing to plot.
 pub fn metric_plot(
     frames: &[&NightFrameRecord],
     plotted: &Plotted,
-    limits: &[Limit],
+    limits: Option<&[Limit]>,
     tz: Tz,
 ) -> Option<Vec<u8>> {
     register_font();
@@ -314,7 +320,7 @@ pub fn metric_plot(
         return None;
     }
     pts.sort_by(|a, b| a.0.total_cmp(&b.0));
-    let lines = limits_for(key, arcsec, limits, frames);
+    let lines = limits_for(key, arcsec, limits.unwrap_or_default(), frames);
     let min_span = if key == "background_adu" {
         let noise: Vec<f64> = frames
             .iter()
@@ -433,7 +439,7 @@ pub fn metric_plot(
                 (l.0, l.1, l.2, y.is_finite() && y >= y_lo && y <= y_hi)
             })
             .collect();
-        legend(&legend_area, &shown, key, arcsec)?;
+        legend(&legend_area, &shown, key, arcsec, limits.is_some())?;
         root.present().ok()?;
     }
     encode_png(&buf, w, h, image::ColorType::Rgb8)
@@ -497,12 +503,14 @@ fn bands(frames: &[&NightFrameRecord], pts: &[(f64, f64, Verdict)]) -> Vec<(f64,
 /// The legend strip under the chart: every color the chart can hold, then the limits
 /// with their values.
 /// Each limit is (verdict, value, crossed upwards, drawn): one outside the plotted range
-/// is listed as such rather than drawn off the chart.
+/// is listed as such rather than drawn off the chart. Without `known` limits (another
+/// rig's, not stored) the legend says so rather than that no rule limits the metric.
 fn legend(
     area: &DrawingArea<BitMapBackend, Shift>,
     lines: &[(Verdict, f64, bool, bool)],
     key: &str,
     arcsec: bool,
+    known: bool,
 ) -> Option<()> {
     let font = ("sans-serif", 12).into_font().color(&BLACK);
     let mut x = 64;
@@ -542,12 +550,12 @@ fn legend(
     shown.sort_by(|a, b| a.0.cmp(&b.0).then(a.1.total_cmp(&b.1)));
     shown.dedup_by(|a, b| a.0 == b.0 && (a.1 - b.1).abs() < 1e-9);
     if shown.is_empty() {
-        area.draw(&Text::new(
-            "no rule limits this metric",
-            (x, y - 7),
-            font.clone(),
-        ))
-        .ok()?;
+        let said = if known {
+            "no rule limits this metric"
+        } else {
+            "this rig's limits are not stored: none drawn"
+        };
+        area.draw(&Text::new(said, (x, y - 7), font.clone())).ok()?;
         return Some(());
     }
     for (verdict, v, above, drawn) in shown {

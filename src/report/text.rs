@@ -83,6 +83,9 @@ fn counts(t: &mut String, s: &Summary) {
                 single_line(note)
             );
         }
+        if let Some(missing) = &g.limits_missing {
+            let _ = writeln!(t, "    {}", single_line(missing));
+        }
     }
     for p in &s.plans {
         let _ = writeln!(t, "  Plan: {}", single_line(p));

@@ -2,6 +2,10 @@
 //! reasons for each frame out. Built-in defaults work with no rules configured; rules
 //! from the configuration (`[[rules]]` tables) add to them, or replace the default with
 //! the same reason code. Each reason says which test fired and with what values.
+//!
+//! Longer than most modules: the built-in thresholds, the group's statistics, the limits
+//! drawn and the judgement use the same numbers, and stay together so that a drawn limit
+//! is the value judged against; the rest is tests.
 
 use serde::{Deserialize, Serialize};
 
@@ -242,7 +246,7 @@ pub struct Judgement {
 
 /// A line a metric must not cross in one group: drawn on the night's plots, and the
 /// same value the judgement tests against.
-#[derive(Debug, Clone, PartialEq, Serialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct Limit {
     /// The reason code that fires when it is crossed.
     pub reason: String,

@@ -7,7 +7,8 @@
 //! The source is opened read-only and never written, not even migrated: a daemon may be
 //! running on it, and a copy that fails must leave it as it was. Rows an unnamed rig
 //! recorded are named in what is inserted (the same rules as `Store::adopt_unnamed`:
-//! a path or a catalogue night the rig has under its name already keeps that row).
+//! a path, a catalogue night or a night's limits the rig has under its name already keeps
+//! that row).
 
 use std::collections::HashMap;
 
@@ -16,7 +17,7 @@ use super::{Location, Store, StoreError};
 use crate::night::register::Placement;
 
 /// Tables whose rows are copied as they are (every column), in this order.
-const PLAIN_TABLES: &[&str] = &["reading", "catalog_nights", "catalog"];
+const PLAIN_TABLES: &[&str] = &["reading", "catalog_nights", "catalog", "night_limits"];
 /// Tables with an id of their own, which the destination gives anew.
 const ID_TABLES: &[&str] = &["alerts", "outbox"];
 /// Tables that belong to a frame (`frame_id`).
@@ -95,6 +96,9 @@ impl Naming<'_> {
                    AND n.target = {table}.target AND n.filter = {table}.filter
                    AND n.night = {table}.night))"
             ),
+            "night_limits" => " WHERE NOT (rig = '' AND night IN
+                   (SELECT night FROM night_limits WHERE rig = ?1))"
+                .to_string(),
             "stars" | "rejected" => format!(
                 " WHERE frame_id IN (SELECT id FROM frames{})",
                 self.filter("frames")

@@ -2,13 +2,12 @@
 //! calls. Statements are written once, in the SQL both understand (`?N` parameters,
 //! `IS NOT DISTINCT FROM`, `ON CONFLICT`, `RETURNING`, `NULLS FIRST`); PostgreSQL gets
 //! `$N`. Values cross as one small type that adapts to the column it meets, since
-//! PostgreSQL, unlike SQLite, is strict about a parameter's type.
+//! PostgreSQL, unlike SQLite, is strict about a parameter's type. PostgreSQL's side (the
+//! values in its types, its connection on a thread of its own) is `pg`.
 
-use std::cell::RefCell;
-use std::collections::HashMap;
+mod pg;
 
-use bytes::BytesMut;
-use postgres::types::{to_sql_checked, FromSql, IsNull, ToSql, Type};
+pub use pg::{PgThread, Settings};
 
 /// One value in or out of a statement.
 #[derive(Debug, Clone, PartialEq)]
@@ -327,202 +326,6 @@ fn from_sqlite(v: rusqlite::types::ValueRef<'_>) -> Value {
     }
 }
 
-type BoxError = Box<dyn std::error::Error + Sync + Send>;
-
-impl ToSql for Value {
-    /// Written as the type the server expects at this place: an integer where a number
-    /// goes is sent as one, a flag as a boolean, and so on.
-    fn to_sql(&self, ty: &Type, out: &mut BytesMut) -> Result<IsNull, BoxError> {
-        let mismatch = || -> BoxError { format!("{self:?} cannot be sent as {ty}").into() };
-        match (self, ty) {
-            (Value::Null, _) => Ok(IsNull::Yes),
-            (Value::Int(i), &Type::INT8) => i.to_sql(ty, out),
-            (Value::Int(i), &Type::INT4) => i32::try_from(*i)?.to_sql(ty, out),
-            (Value::Int(i), &Type::INT2) => i16::try_from(*i)?.to_sql(ty, out),
-            (Value::Int(i), &Type::FLOAT8) => (*i as f64).to_sql(ty, out),
-            (Value::Int(i), &Type::FLOAT4) => (*i as f32).to_sql(ty, out),
-            (Value::Int(i), &Type::BOOL) => (*i != 0).to_sql(ty, out),
-            (Value::Int(i), &Type::TEXT | &Type::VARCHAR) => i.to_string().to_sql(ty, out),
-            (Value::Real(f), &Type::FLOAT8) => f.to_sql(ty, out),
-            (Value::Real(f), &Type::FLOAT4) => (*f as f32).to_sql(ty, out),
-            (Value::Real(f), &Type::INT8) if f.fract() == 0.0 && f.abs() < 9.0e18 => {
-                (*f as i64).to_sql(ty, out)
-            }
-            (Value::Real(f), &Type::TEXT | &Type::VARCHAR) => f.to_string().to_sql(ty, out),
-            (Value::Text(s), &Type::TEXT | &Type::VARCHAR | &Type::BPCHAR | &Type::NAME) => {
-                s.as_str().to_sql(ty, out)
-            }
-            (Value::Text(s), &Type::UNKNOWN) => s.as_str().to_sql(&Type::TEXT, out),
-            (Value::Blob(b), &Type::BYTEA) => b.as_slice().to_sql(ty, out),
-            _ => Err(mismatch()),
-        }
-    }
-
-    fn accepts(_: &Type) -> bool {
-        true
-    }
-
-    to_sql_checked!();
-}
-
-impl<'a> FromSql<'a> for Value {
-    fn from_sql(ty: &Type, raw: &'a [u8]) -> Result<Self, BoxError> {
-        Ok(match *ty {
-            Type::INT8 => Value::Int(i64::from_sql(ty, raw)?),
-            Type::INT4 => Value::Int(i32::from_sql(ty, raw)?.into()),
-            Type::INT2 => Value::Int(i16::from_sql(ty, raw)?.into()),
-            Type::BOOL => Value::Int(bool::from_sql(ty, raw)?.into()),
-            Type::FLOAT8 => Value::Real(f64::from_sql(ty, raw)?),
-            Type::FLOAT4 => Value::Real(f32::from_sql(ty, raw)?.into()),
-            Type::BYTEA => Value::Blob(<&[u8]>::from_sql(ty, raw)?.to_vec()),
-            _ => Value::Text(String::from_sql(ty, raw)?),
-        })
-    }
-
-    fn from_sql_null(_: &Type) -> Result<Self, BoxError> {
-        Ok(Value::Null)
-    }
-
-    fn accepts(ty: &Type) -> bool {
-        matches!(
-            *ty,
-            Type::INT8
-                | Type::INT4
-                | Type::INT2
-                | Type::BOOL
-                | Type::FLOAT8
-                | Type::FLOAT4
-                | Type::BYTEA
-                | Type::TEXT
-                | Type::VARCHAR
-                | Type::BPCHAR
-                | Type::NAME
-        )
-    }
-}
-
-/// `?N` written as PostgreSQL's `$N` (quoted text left alone).
-fn postgres_placeholders(sql: &str) -> String {
-    let mut out = String::with_capacity(sql.len());
-    let mut quoted = false;
-    let mut chars = sql.chars().peekable();
-    while let Some(c) = chars.next() {
-        match c {
-            '\'' => quoted = !quoted,
-            '?' if !quoted && chars.peek().is_some_and(|d| d.is_ascii_digit()) => {
-                out.push('$');
-                continue;
-            }
-            _ => {}
-        }
-        out.push(c);
-    }
-    out
-}
-
-/// How each connect's settings are made: afresh every time, so that a password file
-/// rewritten mid-night (the role's password changed) is read at the next try.
-pub type Settings = Box<dyn Fn() -> Result<postgres::Config, String> + Send>;
-
-/// A PostgreSQL connection that comes back after the server went away: a broken
-/// connection is opened again at the next call, though never inside a transaction (its
-/// first statements went with the old connection).
-pub struct PgConn {
-    settings: Settings,
-    /// TLS to the server, where the address asks for it.
-    tls: Option<tokio_postgres_rustls::MakeRustlsConnect>,
-    client: Option<postgres::Client>,
-    statements: HashMap<String, postgres::Statement>,
-    in_transaction: bool,
-    /// After a failed connect, calls fail at once until then, with its reason (a server
-    /// away is not asked again by every call: each could wait out the connect timeout).
-    paused: Option<(std::time::Instant, Failure)>,
-}
-
-/// How long a failed connect keeps the next calls from trying again.
-const RECONNECT_PAUSE: std::time::Duration = std::time::Duration::from_secs(5);
-
-impl PgConn {
-    fn client(&mut self) -> Result<&mut postgres::Client, DbError> {
-        let broken = self.client.as_ref().is_none_or(|c| c.is_closed());
-        if broken {
-            if self.in_transaction {
-                return Err(DbError::Broken);
-            }
-            if let Some((until, failure)) = &self.paused {
-                if std::time::Instant::now() < *until {
-                    return Err(DbError::Waiting(failure.clone()));
-                }
-            }
-            self.statements.clear();
-            self.client = None;
-            let connected = (self.settings)()
-                .map_err(DbError::Other)
-                .and_then(|config| connect(&config, &self.tls).map_err(DbError::from));
-            match connected {
-                Ok(c) => {
-                    self.paused = None;
-                    self.client = Some(c);
-                }
-                Err(e) => {
-                    let failure = Failure {
-                        reason: e.to_string(),
-                        connection: e.is_connection(),
-                        login_refused: e.is_login_refused(),
-                    };
-                    self.paused = Some((std::time::Instant::now() + RECONNECT_PAUSE, failure));
-                    return Err(e);
-                }
-            }
-        }
-        self.client.as_mut().ok_or(DbError::Broken)
-    }
-
-    fn statement(&mut self, sql: &str) -> Result<postgres::Statement, DbError> {
-        // Connected first: a new connection has none of the old one's statements.
-        self.client()?;
-        if let Some(st) = self.statements.get(sql) {
-            return Ok(st.clone());
-        }
-        let st = self.client()?.prepare(&postgres_placeholders(sql))?;
-        self.statements.insert(sql.to_string(), st.clone());
-        Ok(st)
-    }
-}
-
-fn connect(
-    config: &postgres::Config,
-    tls: &Option<tokio_postgres_rustls::MakeRustlsConnect>,
-) -> Result<postgres::Client, postgres::Error> {
-    match tls {
-        Some(tls) => config.connect(tls.clone()),
-        None => config.connect(postgres::NoTls),
-    }
-}
-
-impl Drop for PgConn {
-    /// The client says goodbye to the server as it goes, which blocks: off any runtime.
-    fn drop(&mut self) {
-        if let Some(client) = self.client.take() {
-            off_runtime(move || drop(client));
-        }
-    }
-}
-
-/// Run `f` where the PostgreSQL client may block: its calls start a runtime of their own,
-/// which cannot happen on a thread already inside one (the daemon's start-up), so there
-/// the call runs on a thread of its own.
-fn off_runtime<T: Send>(f: impl FnOnce() -> T + Send) -> T {
-    if tokio::runtime::Handle::try_current().is_err() {
-        return f();
-    }
-    std::thread::scope(|s| {
-        s.spawn(f)
-            .join()
-            .unwrap_or_else(|p| std::panic::resume_unwind(p))
-    })
-}
-
 /// Which kind of server a store is.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum Kind {
@@ -532,7 +335,7 @@ pub enum Kind {
 
 pub enum Conn {
     Sqlite(rusqlite::Connection),
-    Postgres(Box<RefCell<PgConn>>),
+    Postgres(PgThread),
 }
 
 impl Conn {
@@ -543,15 +346,7 @@ impl Conn {
         again: Settings,
         tls: Option<tokio_postgres_rustls::MakeRustlsConnect>,
     ) -> Result<Self, DbError> {
-        let client = off_runtime(|| connect(&config, &tls))?;
-        Ok(Conn::Postgres(Box::new(RefCell::new(PgConn {
-            settings: again,
-            tls,
-            client: Some(client),
-            statements: HashMap::new(),
-            in_transaction: false,
-            paused: None,
-        }))))
+        Ok(Conn::Postgres(PgThread::open(config, again, tls)?))
     }
 
     pub fn kind(&self) -> Kind {
@@ -561,23 +356,6 @@ impl Conn {
         }
     }
 
-    fn with_pg<T: Send>(
-        pg: &RefCell<PgConn>,
-        f: impl FnOnce(&mut PgConn) -> Result<T, DbError> + Send,
-    ) -> Result<T, DbError> {
-        let mut pg = pg.borrow_mut();
-        let pg: &mut PgConn = &mut pg;
-        off_runtime(move || {
-            let result = f(pg);
-            // A connection the server ended is not used again (its client may not know
-            // yet): the next call opens a new one.
-            if result.as_ref().is_err_and(DbError::is_connection) {
-                pg.client = None;
-            }
-            result
-        })
-    }
-
     /// Run one statement; the number of rows it changed.
     pub fn execute(&self, sql: &str, params: &[Value]) -> Result<u64, DbError> {
         match self {
@@ -585,12 +363,18 @@ impl Conn {
                 let mut st = c.prepare_cached(sql)?;
                 Ok(st.execute(rusqlite::params_from_iter(params))? as u64)
             }
-            Conn::Postgres(pg) => Self::with_pg(pg, |pg| {
-                let st = pg.statement(sql)?;
-                let refs: Vec<&(dyn ToSql + Sync)> =
-                    params.iter().map(|v| v as &(dyn ToSql + Sync)).collect();
-                Ok(pg.client()?.execute(&st, &refs)?)
-            }),
+            Conn::Postgres(pg) => {
+                let (sql, params) = (sql.to_string(), params.to_vec());
+                pg.run(move |pg| pg.execute(&sql, &params))
+            }
+        }
+    }
+
+    /// [`Conn::execute`] of a statement and values made for it, handed over as they are.
+    fn execute_owned(&self, sql: String, params: Vec<Value>) -> Result<u64, DbError> {
+        match self {
+            Conn::Sqlite(_) => self.execute(&sql, &params),
+            Conn::Postgres(pg) => pg.run(move |pg| pg.execute(&sql, &params)),
         }
     }
 
@@ -617,7 +401,7 @@ impl Conn {
                 tuples.join(", ")
             );
             let params: Vec<Value> = chunk.iter().flatten().cloned().collect();
-            self.execute(&sql, &params)?;
+            self.execute_owned(sql, params)?;
         }
         Ok(())
     }
@@ -639,22 +423,10 @@ impl Conn {
                 }
                 Ok(out)
             }
-            Conn::Postgres(pg) => Self::with_pg(pg, |pg| {
-                let st = pg.statement(sql)?;
-                let refs: Vec<&(dyn ToSql + Sync)> =
-                    params.iter().map(|v| v as &(dyn ToSql + Sync)).collect();
-                let rows = pg.client()?.query(&st, &refs)?;
-                let rows = rows
-                    .iter()
-                    .map(|r| {
-                        (0..r.len())
-                            .map(|i| r.try_get::<_, Value>(i))
-                            .collect::<Result<Vec<_>, _>>()
-                            .map(Row)
-                    })
-                    .collect::<Result<Vec<_>, _>>()?;
-                Ok(rows)
-            }),
+            Conn::Postgres(pg) => {
+                let (sql, params) = (sql.to_string(), params.to_vec());
+                pg.run(move |pg| pg.query(&sql, &params))
+            }
         }
     }
 
@@ -672,17 +444,10 @@ impl Conn {
     pub fn batch(&self, sql: &str) -> Result<(), DbError> {
         match self {
             Conn::Sqlite(c) => Ok(c.execute_batch(sql)?),
-            Conn::Postgres(pg) => Self::with_pg(pg, |pg| {
-                // A transaction's statements stay on the connection that began it.
-                let ends = matches!(sql, "COMMIT" | "ROLLBACK");
-                let result = pg.client().and_then(|c| Ok(c.batch_execute(sql)?));
-                if sql.starts_with("BEGIN") && result.is_ok() {
-                    pg.in_transaction = true;
-                } else if ends {
-                    pg.in_transaction = false;
-                }
-                result
-            }),
+            Conn::Postgres(pg) => {
+                let sql = sql.to_string();
+                pg.run(move |pg| pg.batch(&sql))
+            }
         }
     }
 
@@ -720,14 +485,6 @@ impl Conn {
 #[cfg(test)]
 mod tests {
     use super::*;
-
-    #[test]
-    fn placeholders_become_dollars_outside_quotes() {
-        assert_eq!(
-            postgres_placeholders("SELECT '?1', x FROM t WHERE a = ?1 AND b IS ?12"),
-            "SELECT '?1', x FROM t WHERE a = $1 AND b IS $12"
-        );
-    }
 
     #[test]
     fn values_round_trip_through_sqlite() {

@@ -17,6 +17,7 @@ mod connect;
 mod copy;
 pub(crate) mod db;
 mod frames;
+mod limits;
 mod lock;
 mod outbox;
 mod schema;
@@ -181,7 +182,19 @@ impl Store {
                         values![rig],
                     )?;
                 }
-                for table in ["alerts", "outbox", "catalog_nights", "catalog"] {
+                // As are the limits of a night the rig judged under its name already.
+                self.conn.execute(
+                    "DELETE FROM night_limits WHERE rig = '' AND night IN
+                        (SELECT night FROM night_limits WHERE rig = ?1)",
+                    values![rig],
+                )?;
+                for table in [
+                    "alerts",
+                    "outbox",
+                    "catalog_nights",
+                    "catalog",
+                    "night_limits",
+                ] {
                     self.conn.execute(
                         &format!("UPDATE {table} SET rig = ?1 WHERE rig = ''"),
                         values![rig],

@@ -9,7 +9,7 @@
 use super::db::{values, Conn, DbError, Kind};
 use super::StoreError;
 
-pub const SCHEMA_VERSION: i64 = 12;
+pub const SCHEMA_VERSION: i64 = 13;
 
 /// Migrations (numbered from 1) that rebuild a table, run with foreign keys off.
 const REBUILDS_TABLES: &[usize] = &[10];
@@ -200,6 +200,17 @@ pub(crate) const MIGRATIONS: &[&str] = &[
      UPDATE rejected SET seq = rowid;
      ALTER TABLE catalog ADD COLUMN seq INTEGER;
      UPDATE catalog SET seq = rowid;",
+    // 13: the limits each group of a rig's night was judged against, written with the
+    // verdicts when its daemon judges the night, so that a site's summary draws every
+    // rig's own limits. A store from before has none: its summary says so.
+    "CREATE TABLE night_limits (
+        rig TEXT NOT NULL DEFAULT '',
+        night TEXT NOT NULL,
+        target TEXT,
+        filter TEXT,
+        limits_json TEXT NOT NULL
+     );
+     CREATE INDEX night_limits_night ON night_limits (rig, night);",
 ];
 
 /// Migrations PostgreSQL runs in place of SQLite's text (which rebuilds a table there).

@@ -136,6 +136,8 @@ fn judge_frame(
     let j = &judged.frames[k];
     let verdict = j.judgement.verdict;
     store.set_live_verdict(id, &j.judgement, j.transparency_loss_mag)?;
+    let (target, filter) = (key.target.as_deref(), key.filter.as_deref());
+    store.set_group_limits(night, target, filter, &judged.limits)?;
     if let Some(lists) = judging.lists.as_ref() {
         if let Err(e) = crate::lists::rewrite(
             store,

@@ -21,6 +21,10 @@
 //!
 //! This module reads the wall clock and the file system; reading, recording and judging
 //! live in `reader`, `store` and `judge`.
+//!
+//! Longer than most modules: `Daemon` and its hand-offs are one state machine, kept
+//! together so each row of ARCHITECTURE.md's durability table is one of its methods; what
+//! a hand-off does lives in `frame`, `judge` and `checks`.
 
 pub mod alerts;
 mod checks;

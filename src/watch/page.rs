@@ -7,6 +7,10 @@
 //! priority than the daemon's ingestion. What it shows is for anyone who can open the
 //! page: a message that names a frame's path or a folder of the PC shows file and folder
 //! names only ([`Viewer`]).
+//!
+//! Longer than most modules: the snapshot is one thing built from many reads of the
+//! store, a function for each part of the page (what the page shows is `live`'s); the
+//! rest is tests.
 
 use std::collections::HashMap;
 use std::path::{Path, PathBuf};

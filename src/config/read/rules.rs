@@ -91,18 +91,7 @@ fn rule(
     table: &toml::Table,
     span: Option<(usize, usize)>,
 ) -> Result<RuleSpec, Vec<String>> {
-    let mut problems = Vec::new();
-    for key in table.keys() {
-        if !KEYS.contains(&key.as_str()) {
-            let hint = crate::text::nearest(key, &KEYS)
-                .map(|k| format!("; did you mean `{k}`?"))
-                .unwrap_or_default();
-            problems.push(format!(
-                "{key}: unknown key{hint} (known in a rule: {})",
-                KEYS.join(", ")
-            ));
-        }
-    }
+    let problems = super::unknown_keys(table, &KEYS, "a rule");
     let mut rr = RuleReader {
         r,
         table,

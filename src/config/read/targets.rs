@@ -54,18 +54,7 @@ pub(super) fn read(r: &mut Reader<'_>) -> Vec<TargetPlan> {
 
 /// One target's keys into a plan, or what is wrong with them, in words.
 fn target(table: &toml::Table) -> Result<TargetPlan, Vec<String>> {
-    let mut problems = Vec::new();
-    for key in table.keys() {
-        if !KEYS.contains(&key.as_str()) {
-            let hint = crate::text::nearest(key, &KEYS)
-                .map(|k| format!("; did you mean `{k}`?"))
-                .unwrap_or_default();
-            problems.push(format!(
-                "{key}: unknown key{hint} (known in a target: {})",
-                KEYS.join(", ")
-            ));
-        }
-    }
+    let mut problems = super::unknown_keys(table, &KEYS, "a target");
     let name = match table.get("name") {
         None => {
             problems.push("name: missing: give the target as its frames name it (OBJECT, else the folder), such as name = \"Kestrel Field A\"".into());

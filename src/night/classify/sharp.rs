@@ -84,14 +84,7 @@ pub(super) fn hot_pixels_and_cosmic_rays(night: &Night) -> Vec<Anomaly> {
                         frames,
                         AnomalyKind::Transient,
                         vec![d],
-                        Detail::Transient(TransientDetail {
-                            cosmic_ray: true,
-                            reason: "sharper than the PSF",
-                            snr: None,
-                            flux_adu: None,
-                            fwhm_px: None,
-                            instrumental_mag: None,
-                        }),
+                        Detail::Transient(TransientDetail::cosmic_ray()),
                     ));
                 }
             }

@@ -11,6 +11,9 @@
 //! the cookie a browser gets from `/?token=` once), compared in constant time; a client
 //! that keeps failing waits longer before each attempt is looked at, and is named in the
 //! log once per window.
+//!
+//! Its length past 600 lines is tests (each bound has one); the per-client accounting is
+//! `clients`, the answers `answer`.
 
 mod clients;
 
