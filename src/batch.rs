@@ -237,7 +237,17 @@ impl Analysis<'_, '_> {
         };
         let earlier: Vec<&FrameRecord> = earlier.iter().collect();
         let judged = crate::night::calibration::judge_calibration(&all, &earlier, calibration);
-        for c in &judged.frames {
+        // In time order, then by path, as the lights: the same night gives the same
+        // document whatever order its frames were recorded in.
+        let mut frames: Vec<_> = judged.frames.iter().collect();
+        frames.sort_by(|a, b| {
+            let (a, b) = (all[a.index], all[b.index]);
+            let time = |r: &FrameRecord| r.time_unix.unwrap_or(f64::NEG_INFINITY);
+            time(a)
+                .total_cmp(&time(b))
+                .then_with(|| a.identity.path.cmp(&b.identity.path))
+        });
+        for c in frames {
             let r = all[c.index];
             self.doc.calibration.push(NightFrameRecord {
                 kind: c.kind,
