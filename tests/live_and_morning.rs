@@ -12,15 +12,13 @@
 
 mod common;
 
-use std::borrow::Cow;
 use std::collections::BTreeMap;
-use std::process::Command;
 use std::time::{Duration, Instant};
 
 use common::daemon::{feed_one_by_one, site, Daemon};
 use ndarray::Array2;
 use subwatch::frame::write::{write_frame, Encoding};
-use subwatch::night::judge::{judge_group, reference, time_order, Held};
+use subwatch::night::judge::{judge_records, reference, time_order};
 use subwatch::record::FrameRecord;
 use subwatch::sim::night::{render_night, NightFrame, NightPlan};
 use subwatch::sim::SimParams;
@@ -71,15 +69,7 @@ fn live_verdicts_are_the_night_model_on_the_night_so_far_and_the_morning_is_the_
         .unwrap();
 
     // The morning (report, from the store) and the batch (night, from the folder).
-    let run = |args: &[&str]| -> serde_json::Value {
-        let out = Command::new(common::binary()).args(args).output().unwrap();
-        assert!(
-            out.status.success(),
-            "{}",
-            String::from_utf8_lossy(&out.stderr)
-        );
-        serde_json::from_slice(&out.stdout).unwrap()
-    };
+    let run = common::json_of::<&str>;
     let config = s.config.to_string_lossy().into_owned();
     let morning = run(&["report", "--config", &config, "--night", &night, "--json"]);
     let batch = run(&[
@@ -127,20 +117,8 @@ fn live_verdicts_are_the_night_model_on_the_night_so_far_and_the_morning_is_the_
             .filter(|r| r.target == me.target && r.filter == me.filter)
             .filter(|r| order_landed[..=k].contains(&r.identity.path.as_str()))
             .collect();
-        // Nothing known: every frame placed afresh, each named by its position.
-        let held: Vec<Held> = so_far
-            .iter()
-            .enumerate()
-            .map(|(i, r)| Held {
-                record: r,
-                id: i as i64,
-                known: None,
-            })
-            .collect();
-        let stars = |i: usize| Ok::<_, ()>(Cow::from(&so_far[i].stars[..]));
-        let judged = judge_group(&held, stars, &config.rule_specs(), config.site_position())
-            .unwrap()
-            .frames;
+        // Nothing kept: every frame placed afresh, each named by its position.
+        let judged = judge_records(&so_far, &config.rule_specs(), config.site_position()).frames;
         let at = so_far
             .iter()
             .position(|r| &r.identity.path == path)
@@ -322,22 +300,13 @@ fn a_rewritten_reference_frame_is_judged_on_its_new_stars_as_a_batch_run_judges_
     );
 
     // The batch run over the final files.
-    let out = Command::new(common::binary())
-        .args([
-            "night",
-            &s.capture.to_string_lossy(),
-            "--json",
-            "--config",
-            &s.config.to_string_lossy(),
-        ])
-        .output()
-        .unwrap();
-    assert!(
-        out.status.success(),
-        "{}",
-        String::from_utf8_lossy(&out.stderr)
-    );
-    let batch: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    let batch = common::json_of(&[
+        "night".as_ref(),
+        s.capture.as_os_str(),
+        "--json".as_ref(),
+        "--config".as_ref(),
+        s.config.as_os_str(),
+    ]);
     let batch: BTreeMap<String, (String, Vec<String>)> = batch["frames"]
         .as_array()
         .unwrap()

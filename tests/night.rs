@@ -21,18 +21,11 @@ fn write_night(dir: &Path, plan: &NightPlan) -> (Vec<NightFrame>, Vec<TrueAnomal
 }
 
 fn run_night(dir: &Path, config: Option<&Path>) -> Value {
-    let mut cmd = Command::new(common::binary());
-    cmd.arg("night").arg(dir).arg("--json");
+    let mut args = vec!["night".as_ref(), dir.as_os_str(), "--json".as_ref()];
     if let Some(c) = config {
-        cmd.arg("--config").arg(c);
+        args.extend(["--config".as_ref(), c.as_os_str()]);
     }
-    let out = cmd.output().unwrap();
-    assert!(
-        out.status.success(),
-        "{}",
-        String::from_utf8_lossy(&out.stderr)
-    );
-    serde_json::from_slice(&out.stdout).unwrap()
+    common::json_of(&args)
 }
 
 /// Per kind: (injected, found among them, reported, false reports).

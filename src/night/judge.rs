@@ -303,15 +303,13 @@ pub struct NightJudgement {
     pub limits: Vec<Limit>,
 }
 
-/// Judge a whole night of one group (frames with their stars, any order), with earlier
-/// nights' catalogues of the target for new sources: [`judge_group`] with nothing
-/// known (the records named by their position), then what is unusual.
-pub fn judge_night(
+/// [`judge_group`] with nothing kept: records that carry their stars, named by their
+/// position, every frame placed afresh (the batch, and a check of the live rule).
+pub fn judge_records(
     frames: &[&FrameRecord],
-    earlier: &[EarlierNight],
     rules: &[RuleSpec],
     site: Option<Site>,
-) -> NightJudgement {
+) -> GroupJudgement {
     let held: Vec<Held> = frames
         .iter()
         .enumerate()
@@ -322,10 +320,22 @@ pub fn judge_night(
         })
         .collect();
     let with_stars = |i: usize| Ok::<_, std::convert::Infallible>(Cow::from(&frames[i].stars[..]));
-    let group = match judge_group(&held, with_stars, rules, site) {
+    match judge_group(&held, with_stars, rules, site) {
         Ok(group) => group,
         Err(never) => match never {},
-    };
+    }
+}
+
+/// Judge a whole night of one group (frames with their stars, any order), with earlier
+/// nights' catalogues of the target for new sources: [`judge_records`], then what is
+/// unusual.
+pub fn judge_night(
+    frames: &[&FrameRecord],
+    earlier: &[EarlierNight],
+    rules: &[RuleSpec],
+    site: Option<Site>,
+) -> NightJudgement {
+    let group = judge_records(frames, rules, site);
     // What is unusual: the readable frames, placed on the same reference.
     let readable_idx: Vec<usize> = (0..frames.len()).filter(|&i| readable(frames[i])).collect();
     let inputs: Vec<FrameInput> = readable_idx

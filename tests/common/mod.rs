@@ -16,6 +16,17 @@ pub fn binary() -> &'static str {
     env!("CARGO_BIN_EXE_subwatch")
 }
 
+/// Run the binary with `args`, which must succeed: its standard output read as JSON.
+pub fn json_of<S: AsRef<std::ffi::OsStr>>(args: &[S]) -> Value {
+    let out = Command::new(binary()).args(args).output().unwrap();
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    serde_json::from_slice(&out.stdout).unwrap()
+}
+
 /// Render `params` into `dir/name` and return the path and the truth.
 pub fn render_to(
     dir: &Path,
